@@ -1,0 +1,221 @@
+"""Command line: ``clearaudit audit | info | sample | report | view | sag | conductors``.
+
+Every user-input problem ends as one line on stderr naming the file and the problem, exit code 2,
+no traceback, nothing half-written (outputs go to a temporary folder renamed at the end).
+"""
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+
+from . import CAUTION, __version__
+from .errors import ClearauditError, InputError
+
+log = logging.getLogger("clearaudit")
+
+EXIT_INPUT = 2
+
+
+def _console():
+    from rich.console import Console
+
+    return Console(stderr=False, highlight=False)
+
+
+# ----------------------------------------------------------------------------------- commands
+
+def cmd_info(args: argparse.Namespace) -> int:
+    from rich.table import Table
+
+    from .cloud import CLASS_NAMES
+    from .io.las import describe
+
+    console = _console()
+    for d in describe(args.clouds, crs=args.crs):
+        table = Table(title=str(d["path"]), show_header=False, title_justify="left")
+        table.add_column("key", style="bold")
+        table.add_column("value")
+        table.add_row("points", f"{d['point_count']:,}")
+        table.add_row("LAS version / point format", f"{d['version']} / {d['point_format']}")
+        table.add_row("CRS", str(d.get("crs_name") or "none (use --crs)"))
+        table.add_row("horizontal / vertical unit",
+                      f"{d.get('horizontal_unit')} / {d.get('vertical_unit')}")
+        lo, hi = d["bounds_min"], d["bounds_max"]
+        table.add_row("bounds min (x, y, z)", ", ".join(f"{v:.3f}" for v in lo))
+        table.add_row("bounds max (x, y, z)", ", ".join(f"{v:.3f}" for v in hi))
+        hist = d.get("class_histogram", {})
+        table.add_row("classes", "\n".join(
+            f"{int(c):>3} {CLASS_NAMES.get(int(c), 'user defined'):<38} {n:>12,}"
+            for c, n in sorted(hist.items(), key=lambda kv: int(kv[0]))))
+        console.print(table)
+    return 0
+
+
+def cmd_sample(args: argparse.Namespace) -> int:
+    from .synth import regenerate_samples
+
+    paths = regenerate_samples(Path(args.out))
+    console = _console()
+    for p in (paths.values() if isinstance(paths, dict) else paths):
+        console.print(f"wrote {p}")
+    return 0
+
+
+def cmd_audit(args: argparse.Namespace) -> int:
+    from .pipeline import AuditOptions, run_audit
+
+    options = AuditOptions(
+        clouds=[Path(p) for p in args.clouds], out=Path(args.out),
+        line_file=Path(args.line) if args.line else None, crs=args.crs,
+        voltage_kv=args.voltage_kv, units=args.units, trust_classes=args.trust_classes,
+        survey_temperature_c=args.survey_temperature_c,
+        max_operating_temperature_c=args.mot_c, structures_file=args.structures,
+        overwrite=args.overwrite, workers=args.workers, scheduler=args.scheduler,
+        corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
+    )
+    result = run_audit(options, console=_console())
+    return 0 if result is not None else 1
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from .report import build_report
+
+    out = Path(args.out_dir)
+    if not (out / "model.json").exists():
+        raise InputError(out, "is not an audit output folder (no model.json)")
+    path = build_report(out, units=args.units)
+    _console().print(f"wrote {path}")
+    return 0
+
+
+def cmd_view(args: argparse.Namespace) -> int:
+    from . import viewer
+
+    out = Path(args.out_dir)
+    if not (out / "model.json").exists():
+        raise InputError(out, "is not an audit output folder (no model.json)")
+    if args.screenshot:
+        viewer.screenshot(out, Path(args.screenshot))
+        _console().print(f"wrote {args.screenshot}")
+    elif args.html:
+        viewer.export_html(out, Path(args.html))
+        _console().print(f"wrote {args.html}")
+    else:
+        viewer.show(out)
+    return 0
+
+
+def cmd_conductors(args: argparse.Namespace) -> int:
+    from rich.table import Table
+
+    from .physics.conductors import list_conductors
+
+    table = Table(title="Conductor library (SI units; see the source column)")
+    for col in ("name", "code word", "kind", "diameter mm", "weight N/m", "RBS kN", "source"):
+        table.add_column(col)
+    for c in list_conductors():
+        if args.filter and args.filter.lower() not in (c.name + " " + (c.code_word or "")).lower():
+            continue
+        table.add_row(c.name, c.code_word or "", c.kind, f"{c.diameter_m * 1e3:.2f}",
+                      f"{c.unit_weight_n_per_m:.3f}", f"{c.rated_strength_n / 1e3:.1f}", c.source)
+    _console().print(table)
+    return 0
+
+
+def cmd_sag(args: argparse.Namespace) -> int:
+    from .calculator import run_sag_calculator
+
+    return run_sag_calculator(args, _console())
+
+
+# ------------------------------------------------------------------------------------- parser
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="clearaudit",
+        description="Overhead power line audits from airborne laser scans. " + CAUTION)
+    parser.add_argument("--version", action="version", version=f"clearaudit {__version__}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="log progress details")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("audit", help="audit a line corridor (the main job)",
+                       description="Classify the cloud, fit every wire, project sag to MOT, wind "
+                                   "and ice, and check clearances. " + CAUTION)
+    p.add_argument("clouds", nargs="+", metavar="CLOUD", help="LAS/LAZ files or folders of tiles")
+    p.add_argument("--line", metavar="LINE.toml", help="line file (see docs/line-file.md)")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created)")
+    p.add_argument("--crs", help="CRS of the cloud when the file has none (e.g. EPSG:32617)")
+    p.add_argument("--voltage-kv", type=float, help="nominal voltage [kV] (overrides the line file)")
+    p.add_argument("--mot-c", type=float, help="maximum operating temperature [°C] (overrides)")
+    p.add_argument("--survey-temperature-c", type=float,
+                   help="conductor temperature during the flight [°C] (overrides)")
+    p.add_argument("--structures", metavar="CSV", help="structures CSV (id, x, y[, type])")
+    p.add_argument("--trust-classes", action="store_true",
+                   help="use the cloud's own classes; only fill in what is missing")
+    p.add_argument("--units", choices=("metric", "imperial"), default="metric",
+                   help="unit system of the report and terminal summary")
+    p.add_argument("--corridor-buffer-m", type=float, default=60.0,
+                   help="half-width of the corridor kept around the structures [m] (default 60)")
+    p.add_argument("--workers", type=int, default=0,
+                   help="run on a local Dask cluster with N workers (0: in-process)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--no-report", action="store_true", help="skip the HTML report")
+    p.set_defaults(func=cmd_audit)
+
+    p = sub.add_parser("info", help="describe LAS/LAZ files (points, bounds, CRS, classes)")
+    p.add_argument("clouds", nargs="+", metavar="CLOUD")
+    p.add_argument("--crs", help="CRS to assume when a file has none")
+    p.set_defaults(func=cmd_info)
+
+    p = sub.add_parser("sample", help="regenerate the bundled sample corridor")
+    p.add_argument("--out", default="sample_clouds", metavar="DIR")
+    p.set_defaults(func=cmd_sample)
+
+    p = sub.add_parser("report", help="rebuild report.html from a saved audit folder")
+    p.add_argument("out_dir", metavar="OUT_DIR")
+    p.add_argument("--units", choices=("metric", "imperial"), default="metric")
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("view", help="3D viewer of a saved audit folder")
+    p.add_argument("out_dir", metavar="OUT_DIR")
+    p.add_argument("--screenshot", metavar="FILE.png", help="render off-screen to a PNG")
+    p.add_argument("--html", metavar="FILE.html", help="export an interactive HTML scene")
+    p.set_defaults(func=cmd_view)
+
+    p = sub.add_parser("conductors", help="list the conductor library")
+    p.add_argument("filter", nargs="?", help="show names containing this text")
+    p.set_defaults(func=cmd_conductors)
+
+    p = sub.add_parser("sag", help="field calculator: sag and tension, stringing table",
+                       description="Sag and tension of a conductor for a span or ruling span at "
+                                   "a list of temperatures and load cases. " + CAUTION)
+    from .calculator import add_sag_arguments
+
+    add_sag_arguments(p)
+    p.set_defaults(func=cmd_sag)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    try:
+        return int(args.func(args) or 0)
+    except InputError as exc:
+        print(f"clearaudit: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except ClearauditError as exc:
+        print(f"clearaudit: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("clearaudit: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,348 @@
+"""The audit as a chain of named stages, with progress, a run record and atomic outputs.
+
+Stages (each timed, with the process's peak memory recorded after it):
+
+``validate``  read the line file, structures, rule set and conductors; check the inputs exist —
+              everything that can fail on bad input fails here, before heavy work;
+``read``      read the clouds (chunked, culled to the corridor around the structures if known);
+``classify``  ground, height above ground, noise, wires, structures, vegetation, buildings;
+``model``     structures, spans, tension sections, wire separation and catenary fits;
+``audit``     survey temperature, conditions (survey, MOT, wind, ice), clearances, priorities;
+``tolerance`` construction check against design sags (only with design values);
+``write``     spans.csv, violations.csv/.geojson, line.gpkg, model.json, classified.laz, run.json,
+              report.html — into a temporary folder renamed to ``--out`` only when complete.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import platform
+import resource
+import shutil
+import sys
+import tempfile
+import time
+from collections.abc import Callable
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import CAUTION, __version__
+from .errors import InputError, StageError
+
+SPAN_COLUMNS = [
+    "span_id", "wire_id", "role", "from_structure", "to_structure",
+    "x1", "y1", "z1", "x2", "y2", "z2", "span_length_m", "n_points", "coverage", "rms_m",
+    "catenary_constant_m", "horizontal_tension_n", "horizontal_tension_ci95_n",
+    "conductor_temperature_c", "sag_survey_m", "horizontal_tension_mot_n", "sag_mot_m",
+    "min_ground_clearance_survey_m", "min_ground_clearance_mot_m", "status", "note",
+]
+SPAN_EXTRA_COLUMNS = [
+    "section_id", "ruling_span_m", "catenary_constant_ci95_m", "sag_survey_ci95_m",
+    "sag_mot_ci95_m", "rated_strength_pct", "largest_gap_m", "bundle_count",
+]
+VIOLATION_COLUMNS = [
+    "id", "kind", "condition", "span_id", "wire_id", "x", "y", "z",
+    "clearance_m", "required_m", "deficit_m", "priority", "longitude", "latitude",
+]
+VIOLATION_EXTRA_COLUMNS = [
+    "clearance_ci95_m", "certainty", "reason", "grow_in_years", "fall_in", "station_m",
+    "obstacle_points",
+]
+OUTPUT_SCHEMA_VERSION = "1.0"
+
+
+@dataclass
+class AuditOptions:
+    """Options of one audit run (recorded in run.json)."""
+
+    clouds: list[Path]
+    out: Path
+    line_file: Path | None = None
+    crs: str | None = None
+    voltage_kv: float | None = None
+    units: str = "metric"
+    trust_classes: bool = False
+    survey_temperature_c: float | None = None
+    max_operating_temperature_c: float | None = None
+    structures_file: str | Path | None = None
+    overwrite: bool = False
+    workers: int = 0
+    scheduler: str | None = None
+    corridor_buffer_m: float = 60.0
+    skip_report: bool = False
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: (str(v) if isinstance(v, Path) else
+                    [str(x) for x in v] if isinstance(v, list) else v)
+                for k, v in self.__dict__.items()}
+
+
+@dataclass
+class RunRecord:
+    """What the run did: inputs with hashes, options, versions, stage timings."""
+
+    command: list[str]
+    started: str
+    options: dict[str, Any]
+    stages: list[dict[str, Any]] = field(default_factory=list)
+    inputs: list[dict[str, Any]] = field(default_factory=list)
+    missing_stages: list[str] = field(default_factory=list)
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @contextmanager
+    def stage(self, name: str, progress=None):
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+            self.stages.append({"name": name, "seconds": round(time.perf_counter() - t0, 3),
+                                "peak_rss_mb": round(peak_kb / 1024.0, 1)})
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "schema": f"clearaudit.run/{OUTPUT_SCHEMA_VERSION}",
+            "clearaudit_version": __version__, "command": self.command, "started": self.started,
+            "finished": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+            "machine": {"python": sys.version.split()[0], "platform": platform.platform()},
+            "versions": package_versions(), "inputs": self.inputs, "options": self.options,
+            "stages": self.stages, "missing_stages": self.missing_stages, "caution": CAUTION,
+            **self.extra,
+        }
+
+
+def package_versions() -> dict[str, str]:
+    from importlib import metadata
+
+    out = {}
+    for name in ("numpy", "scipy", "laspy", "lazrs", "open3d", "pyvista", "pyproj", "matplotlib",
+                 "dask", "distributed", "rich"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def sha256_of(path: Path, chunk: int = 1 << 22) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        while block := f.read(chunk):
+            h.update(block)
+    return h.hexdigest()
+
+
+# ------------------------------------------------------------------------------ output folder
+
+@contextmanager
+def atomic_output_dir(out: Path, overwrite: bool):
+    """Yield a temporary folder beside ``out``; move it into place only on success."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(out, "output path exists and is not a folder")
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise InputError(out, "output folder already exists and is not empty "
+                              "(use --overwrite to replace it)")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        yield tmp
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    if out.exists():
+        old = out.with_name(f".{out.name}.old-{int(time.time())}")
+        out.rename(old)
+        tmp.rename(out)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        tmp.rename(out)
+
+
+# ----------------------------------------------------------------------------------- the run
+
+def _progress_bar(console):
+    from rich.progress import (BarColumn, Progress, TaskProgressColumn, TextColumn,
+                               TimeElapsedColumn)
+
+    return Progress(TextColumn("[bold]{task.description:<10}"), BarColumn(),
+                    TaskProgressColumn(), TextColumn("{task.fields[rate]}"),
+                    TimeElapsedColumn(), console=console, transient=False,
+                    disable=console is None)
+
+
+def _stage_progress(bar, task) -> Callable[[int, int], None]:
+    t0 = time.perf_counter()
+
+    def update(done: int, total: int) -> None:
+        dt = max(time.perf_counter() - t0, 1e-9)
+        bar.update(task, completed=done, total=max(total, 1),
+                   rate=f"{done / dt / 1e6:.2f} M pts/s" if total > 1000 else "")
+    return update
+
+
+def run_audit(options: AuditOptions, console=None):
+    """Run the whole audit; returns the output folder path."""
+    from .config import load_line_file, read_structures_csv
+    from .io.las import corridor_mask, read_cloud, resolve_inputs
+
+    record = RunRecord(command=sys.argv[:], options=options.to_dict(),
+                       started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
+    if options.workers or options.scheduler:
+        from .distributed import check_engine
+
+        check_engine(options)
+
+    # ---- validate: all input checks before heavy work
+    with record.stage("validate"):
+        paths = resolve_inputs(options.clouds)
+        config = load_line_file(options.line_file)
+        if options.voltage_kv is not None:
+            config.line.voltage_kv = float(options.voltage_kv)
+        if options.max_operating_temperature_c is not None:
+            config.line.max_operating_temperature_c = float(options.max_operating_temperature_c)
+        if options.survey_temperature_c is not None:
+            config.survey.conductor_temperature_c = float(options.survey_temperature_c)
+        if options.trust_classes:
+            config.trust_classes = True
+        if options.structures_file:
+            config.structures_file = Path(options.structures_file)
+        if config.line.voltage_kv is None:
+            raise InputError(options.line_file or "--voltage-kv",
+                             "the line voltage is unknown: give --voltage-kv or [line] voltage_kv")
+        structures_rows = (read_structures_csv(config.structures_file)
+                           if config.structures_file else None)
+        conductors = resolve_conductors(config)
+        from .audit.rules import load_rule_set
+
+        rules = load_rule_set(config.line.rule_set, config.clearance,
+                              base_dir=config.source.parent if config.source else None)
+        record.inputs = [{"path": str(p), "sha256": sha256_of(p), "bytes": p.stat().st_size}
+                         for p in paths]
+        if config.source:
+            record.inputs.append({"path": str(config.source), "sha256": sha256_of(config.source),
+                                  "role": "line file"})
+        if config.structures_file:
+            record.inputs.append({"path": str(config.structures_file), "role": "structures",
+                                  "sha256": sha256_of(Path(config.structures_file))})
+        record.options["line_config"] = config.to_dict()
+        record.options["rule_set"] = rules.describe()
+
+    with atomic_output_dir(options.out, options.overwrite) as tmp, _progress_bar(console) as bar:
+        # ---- read
+        with record.stage("read"):
+            task = bar.add_task("read", total=None, rate="")
+            keep = None
+            if structures_rows and options.corridor_buffer_m > 0:
+                poly = np.array([[r["x"], r["y"]] for r in structures_rows])
+                keep = corridor_mask(poly, options.corridor_buffer_m,
+                                     buffer_unit="m")
+            cloud = read_cloud(paths, crs=options.crs, keep=keep,
+                               progress=_stage_progress(bar, task))
+            for info, entry in zip(cloud.sources, record.inputs, strict=False):
+                entry.update({"point_count": info.point_count, "point_format": info.point_format,
+                              "las_version": info.version, "crs": info.crs_origin})
+            record.extra["points_read"] = cloud.n_points
+            record.extra["crs"] = None if cloud.crs is None else cloud.crs.to_string()
+            record.extra["horizontal_unit_m"] = cloud.horizontal_unit_m
+            record.extra["vertical_unit_m"] = cloud.vertical_unit_m
+
+        # ---- classify
+        from .classify import ClassifyOptions, classify
+
+        with record.stage("classify"):
+            task = bar.add_task("classify", total=None, rate="")
+            cls = classify(cloud, ClassifyOptions(trust_classes=config.trust_classes),
+                           progress=_stage_progress(bar, task))
+            cloud.classification = cls.classification
+            record.extra["class_counts"] = {str(k): v for k, v in sorted(cls.counts.items())}
+            record.extra["classification"] = {"options": cls.options, "timings_s": cls.timings_s}
+
+        # ---- model
+        from .model import build_line_model
+
+        with record.stage("model"):
+            task = bar.add_task("model", total=None, rate="")
+            structures_local = None
+            if structures_rows:
+                structures_local = [
+                    {**r, "xy": cloud.from_crs(np.array([r["x"], r["y"], cloud.origin[2]]))[:2]}
+                    for r in structures_rows]
+            model = build_line_model(
+                cloud, structures=structures_local,
+                unit_weight_n_per_m={"phase": conductors["phase"].unit_weight_n_per_m,
+                                     "shield": conductors["shield"].unit_weight_n_per_m},
+                bundle=config.phase.bundle, progress=_stage_progress(bar, task))
+
+        # ---- audit
+        from .audit import audit_line
+
+        with record.stage("audit"):
+            task = bar.add_task("audit", total=None, rate="")
+            audit = audit_line(cloud, cls, model, config, conductors, rules,
+                               progress=_stage_progress(bar, task))
+
+        # ---- tolerance (construction check) when design values are given
+        tolerance_rows = None
+        if config.design:
+            from .audit.tolerance import check_tolerance
+
+            with record.stage("tolerance"):
+                tolerance_rows = check_tolerance(model, audit, config, conductors)
+
+        # ---- write
+        with record.stage("write"):
+            task = bar.add_task("write", total=None, rate="")
+            from .outputs import write_outputs
+
+            summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
+                                    record, tolerance_rows=tolerance_rows,
+                                    progress=_stage_progress(bar, task))
+            if not options.skip_report:
+                from .report import build_report
+
+                build_report(tmp, units=options.units)
+            else:
+                record.missing_stages.append("report (skipped by --no-report)")
+        (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1, default=_json_default),
+                                      encoding="utf-8")
+    if console is not None:
+        from .outputs import print_summary
+
+        print_summary(console, summary, options.out, options.units)
+    return options.out
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def resolve_conductors(config) -> dict[str, Any]:
+    """Conductor properties per role from the line file (library name + explicit overrides)."""
+    from .physics.conductors import conductor_from_config
+
+    out = {}
+    for role, settings in (("phase", config.phase), ("shield", config.shield)):
+        table = dict(settings.overrides)
+        if settings.name:
+            table["name"] = settings.name
+        try:
+            out[role] = conductor_from_config(table)
+        except ValueError as exc:
+            raise InputError(config.source or "line file", f"[conductors.{role}]: {exc}") from None
+    return out
+
+
+__all__ = ["AuditOptions", "run_audit", "RunRecord", "StageError", "SPAN_COLUMNS",
+           "VIOLATION_COLUMNS"]

@@ -1,0 +1,49 @@
+#!/usr/bin/env bash
+# Set up clearaudit in ./.venv on a Debian/Ubuntu machine with Python 3.11+.
+# Installs the system libraries open3d and VTK need (apt-get, when running as root; otherwise it
+# prints the exact command), creates the virtual environment and installs the package with its
+# test extras. Safe to run again: it skips what is already done.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+PYTHON=${PYTHON:-python3}
+if ! "$PYTHON" -c 'import sys; sys.exit(0 if sys.version_info >= (3, 11) else 1)' 2>/dev/null; then
+  echo "clearaudit needs Python 3.11 or newer (found: $("$PYTHON" --version 2>&1))." >&2
+  exit 2
+fi
+
+# System libraries: open3d needs libusb-1.0 and libgomp; VTK (pyvista) needs GL/EGL/X libraries
+# for off-screen rendering; xvfb is the fallback display for rendering without a GPU.
+SYSTEM_PACKAGES="libusb-1.0-0 libgomp1 libgl1 libegl1 libxrender1 libxext6 libsm6 libx11-6 xvfb"
+if [ "${CLEARAUDIT_WITH_BROWSER:-0}" = "1" ]; then
+  SYSTEM_PACKAGES="$SYSTEM_PACKAGES chromium"
+fi
+missing=""
+for pkg in $SYSTEM_PACKAGES; do
+  dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || missing="$missing $pkg"
+done
+if ! "$PYTHON" -m venv --help >/dev/null 2>&1 || ! "$PYTHON" -c 'import ensurepip' 2>/dev/null; then
+  missing="$missing python3-venv"
+fi
+if [ -n "$missing" ]; then
+  if [ "$(id -u)" = "0" ] && command -v apt-get >/dev/null; then
+    echo "Installing system packages:$missing"
+    apt-get update -qq >/dev/null
+    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq $missing >/dev/null
+  else
+    echo "Missing system packages:$missing" >&2
+    echo "Install them with:  sudo apt-get install -y$missing" >&2
+    exit 2
+  fi
+fi
+
+if [ ! -x .venv/bin/python ]; then
+  "$PYTHON" -m venv .venv
+fi
+stamp=.venv/.clearaudit-installed
+want=$(sha256sum pyproject.toml | cut -d' ' -f1)
+if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ]; then
+  .venv/bin/python -m pip install -q --upgrade pip >/dev/null
+  .venv/bin/python -m pip install -q -e ".[test]"
+  echo "$want" > "$stamp"
+fi
