@@ -1,0 +1,474 @@
+"""LAS/LAZ reading and writing (clearaudit.io.las).
+
+External references used here:
+- laspy 2.7 (the reference LAS reader: ``laspy.read`` gives the file's scaled coordinates,
+  classes and fields directly, independent of clearaudit's integer-shift arithmetic);
+- pyproj / the EPSG registry (unit of each CRS axis);
+- NIST Handbook 44 (2023), Appendix C: international foot = 0.3048 m exactly,
+  US survey foot = 1200/3937 m exactly;
+- ASPRS LAS Specification 1.4 R15 (2019): point formats 0-10, version/format pairs;
+- shapely 2 (GEOS) point-to-line distance for the corridor buffer.
+"""
+from __future__ import annotations
+
+import hashlib
+import shutil
+from pathlib import Path
+
+import laspy
+import numpy as np
+import pyproj
+import pytest
+
+from clearaudit.cloud import Cloud
+from clearaudit.errors import InputError
+from clearaudit.io.las import (
+    corridor_mask,
+    describe,
+    read_cloud,
+    resolve_inputs,
+    write_cloud,
+)
+
+DATA = Path(__file__).parent / "data" / "laspy"
+REAL = Path(__file__).resolve().parents[1].parent / "shared" / "real-clouds"
+
+# NIST Handbook 44 (2023), Appendix C, section 4: exact definitions.
+US_FT_NIST = 1200.0 / 3937.0
+FT_NIST = 0.3048
+
+# Smallest LAS version for each point format: ASPRS LAS 1.2 (formats 0-3), 1.3 (4-5),
+# 1.4 R15 (6-10).
+VERSION_FOR_FORMAT = {0: "1.2", 1: "1.2", 2: "1.2", 3: "1.2", 4: "1.3", 5: "1.3",
+                      6: "1.4", 7: "1.4", 8: "1.4", 9: "1.4", 10: "1.4"}
+
+
+def make_cloud(n=2000, seed=0, crs="EPSG:32617", origin=(500_000.0, 4_400_000.0, 0.0),
+               unit=(1.0, 1.0), scale=0.001, span=800.0):
+    """A random cloud whose CRS coordinates sit exactly on the ``scale`` grid."""
+    rng = np.random.default_rng(seed)
+    ints = rng.integers(0, int(span / scale), size=(n, 3))
+    ints[:, 2] = rng.integers(int(50 / scale), int(120 / scale), size=n)
+    local_crs = ints * scale
+    xyz = local_crs * np.array([unit[0], unit[0], unit[1]])
+    returns = rng.integers(1, 6, n).astype(np.uint8)
+    fields = {
+        "intensity": rng.integers(0, 65536, n).astype(np.uint16),
+        "number_of_returns": returns,
+        "return_number": np.minimum(rng.integers(1, 6, n), returns).astype(np.uint8),
+        "gps_time": rng.uniform(1e8, 2e8, n),
+    }
+    return Cloud(xyz=xyz, origin=np.array(origin), crs=None if crs is None else pyproj.CRS(crs),
+                 horizontal_unit_m=unit[0], vertical_unit_m=unit[1],
+                 classification=rng.integers(0, 19, n).astype(np.uint8), fields=fields)
+
+
+# ----------------------------------------------------------------------------- round trips
+@pytest.mark.parametrize("point_format", range(11))
+@pytest.mark.parametrize("suffix", [".las", ".laz"])
+def test_round_trip_every_point_format(tmp_path, point_format, suffix):
+    cloud = make_cloud(seed=point_format)
+    version = VERSION_FOR_FORMAT[point_format]
+    hag = np.random.default_rng(1).uniform(0, 40, cloud.n_points)
+    flag = (hag > 20).astype(np.uint8)
+    out = write_cloud(cloud, tmp_path / f"f{point_format}{suffix}", point_format=point_format,
+                      version=version, extra_dims={"hag": (hag, "height above ground"),
+                                                   "flag": (flag, "above 20 m")})
+    # Reference: laspy reads the file by itself.
+    las = laspy.read(out)
+    assert las.header.point_format.id == point_format
+    assert str(las.header.version) == version
+    expected_crs = cloud.to_crs(cloud.xyz)
+    for axis, name in enumerate("xyz"):
+        np.testing.assert_allclose(np.asarray(las[name]), expected_crs[:, axis], rtol=0,
+                                   atol=1e-6)  # well below the 1 mm scale
+    np.testing.assert_array_equal(np.asarray(las.classification), cloud.classification)
+    dims = set(las.point_format.dimension_names)
+    for name, values in cloud.fields.items():
+        if name in dims:
+            np.testing.assert_array_equal(np.asarray(las[name]), values)
+    np.testing.assert_array_equal(np.asarray(las.hag), hag.astype(np.float32))
+    np.testing.assert_array_equal(np.asarray(las.flag), flag)
+    assert las.header.parse_crs().to_epsg() == 32617
+
+    back = read_cloud(out, fields=("intensity", "gps_time", "return_number",
+                                   "number_of_returns", "hag", "flag"))
+    np.testing.assert_array_equal(back.classification, cloud.classification)
+    # Coordinates at scale: integer records equal, so CRS coordinates agree to rounding.
+    np.testing.assert_allclose(back.to_crs(back.xyz), expected_crs, rtol=1e-15, atol=1e-9)
+    assert np.array_equal(np.rint((back.to_crs(back.xyz) - las.header.offsets) / 0.001),
+                          np.column_stack([las.X, las.Y, las.Z]))
+    for name, values in cloud.fields.items():
+        if name in dims:
+            np.testing.assert_array_equal(back.fields[name], values)
+        else:
+            assert name not in back.fields
+    np.testing.assert_array_equal(back.fields["hag"], hag.astype(np.float32))
+    np.testing.assert_array_equal(back.source_index, np.arange(cloud.n_points))
+    assert back.sources[0].point_format == point_format
+    assert back.sources[0].crs_origin == "file-wkt" or (
+        version < "1.4" and back.sources[0].crs_origin in ("file-geotiff", "file-wkt"))
+
+
+def test_write_is_atomic(tmp_path):
+    cloud = make_cloud(n=50)
+    target = tmp_path / "out.laz"
+    target.write_bytes(b"old content")
+    with pytest.raises(ValueError, match="one value per point"):
+        write_cloud(cloud, target, extra_dims={"bad": (np.zeros(3), "wrong length")})
+    assert target.read_bytes() == b"old content"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out.laz"]
+    with pytest.raises(ValueError, match=".las or .laz"):
+        write_cloud(cloud, tmp_path / "out.txt")
+    with pytest.raises(ValueError, match="cannot hold point format"):
+        write_cloud(cloud, tmp_path / "x.las", point_format=6, version="1.2")
+
+
+def test_default_scale_is_centimetre_for_foot_crs(tmp_path):
+    cloud = make_cloud(crs="EPSG:2264", unit=(US_FT_NIST, US_FT_NIST), scale=0.01,
+                       origin=(2_000_000.0, 600_000.0, 0.0))
+    las = laspy.read(write_cloud(cloud, tmp_path / "ft.las"))
+    np.testing.assert_array_equal(las.header.scales, [0.01, 0.01, 0.01])
+    np.testing.assert_allclose(np.asarray(las.x), cloud.to_crs(cloud.xyz)[:, 0], atol=1e-6)
+
+
+# ----------------------------------------------------------------------------- CRS and units
+def test_metre_crs(tmp_path):
+    path = write_cloud(make_cloud(), tmp_path / "m.laz")
+    cloud = read_cloud(path)
+    assert cloud.crs.to_epsg() == 32617
+    assert (cloud.horizontal_unit_m, cloud.vertical_unit_m) == (1.0, 1.0)
+
+
+def test_us_survey_foot_crs_gives_metres(tmp_path):
+    # EPSG:2264 NAD83 / North Carolina (ftUS): both axes in US survey feet (EPSG registry).
+    cloud_ft = make_cloud(crs="EPSG:2264", unit=(US_FT_NIST, US_FT_NIST), scale=0.01,
+                          origin=(2_000_000.0, 600_000.0, 0.0))
+    path = write_cloud(cloud_ft, tmp_path / "ft.laz")
+    cloud = read_cloud(path)
+    assert cloud.horizontal_unit_m == US_FT_NIST  # exact, NIST HB44 App. C
+    assert cloud.vertical_unit_m == US_FT_NIST  # no vertical CRS: heights in the same feet
+    las = laspy.read(path)
+    crs_xyz = np.column_stack([las.x, las.y, las.z])
+    expected_m = (crs_xyz - cloud.origin) * US_FT_NIST
+    np.testing.assert_allclose(cloud.xyz, expected_m, rtol=0, atol=1e-9)
+    # 1000 US survey feet = 304.8006096... m (NIST HB44 App. C).
+    # (the distance in feet from the integer records, exact at 0.01 ft steps)
+    i, j = 0, 1
+    ints = np.column_stack([las.X, las.Y]).astype(np.int64)
+    d_ft = np.hypot(*((ints[i] - ints[j]) * 0.01))
+    d_m = np.hypot(*(cloud.xyz[i, :2] - cloud.xyz[j, :2]))
+    assert d_m == pytest.approx(d_ft * 1200 / 3937, rel=1e-14)
+
+
+def test_compound_crs_with_metre_height(tmp_path):
+    # EPSG:2264 (ftUS) + EPSG:5703 NAVD88 height (metre): horizontal and vertical differ.
+    crs = "EPSG:2264+5703"
+    cloud_in = make_cloud(crs=crs, unit=(US_FT_NIST, 1.0), scale=0.01,
+                          origin=(2_000_000.0, 600_000.0, 0.0))
+    path = write_cloud(cloud_in, tmp_path / "compound.laz")
+    las = laspy.read(path)
+    np.testing.assert_array_equal(las.header.scales, [0.01, 0.01, 0.001])
+    cloud = read_cloud(path)
+    assert cloud.crs.is_compound
+    assert cloud.horizontal_unit_m == US_FT_NIST
+    assert cloud.vertical_unit_m == 1.0
+    np.testing.assert_allclose(cloud.xyz[:, 2], np.asarray(las.z) - cloud.origin[2], atol=1e-9)
+    np.testing.assert_allclose(cloud.xyz[:, 0], (np.asarray(las.x) - cloud.origin[0])
+                               * US_FT_NIST, atol=1e-9)
+
+
+def test_file_without_crs_plus_override(tmp_path):
+    path = write_cloud(make_cloud(crs=None), tmp_path / "nocrs.las")
+    assert laspy.read(path).header.parse_crs() is None
+    plain = read_cloud(path)
+    assert plain.crs is None and plain.sources[0].crs_origin == "none"
+    cloud = read_cloud(path, crs="EPSG:2264")
+    assert cloud.crs.to_epsg() == 2264
+    assert cloud.horizontal_unit_m == US_FT_NIST
+    assert cloud.sources[0].crs_origin == "override"
+    assert cloud.sources[0].crs_wkt is None
+
+
+def test_override_wins_over_file_crs(tmp_path):
+    path = write_cloud(make_cloud(crs="EPSG:32617"), tmp_path / "utm.laz")
+    cloud = read_cloud(path, crs=pyproj.CRS("EPSG:32618"))
+    assert cloud.crs.to_epsg() == 32618
+    assert cloud.sources[0].crs_origin == "override"
+    assert "UTM zone 17N" in cloud.sources[0].crs_wkt  # the file's own CRS is kept
+
+
+def test_unparseable_crs_option(tmp_path):
+    path = write_cloud(make_cloud(crs=None), tmp_path / "a.las")
+    with pytest.raises(InputError) as err:
+        read_cloud(path, crs="EPSG:not-a-code")
+    assert err.value.source == "--crs"
+
+
+def test_geographic_crs_is_refused(tmp_path):
+    path = write_cloud(make_cloud(crs=None), tmp_path / "a.las")
+    with pytest.raises(InputError, match="geographic"):
+        read_cloud(path, crs="EPSG:4326")
+
+
+# ----------------------------------------------------------------------------- precision
+def test_round_trip_precision_against_laspy_on_large_offsets(tmp_path):
+    # UTM northings of 4.4e6 m with 0.1 mm scale and an offset that is not on the origin grid.
+    cloud = make_cloud(scale=0.0001, origin=(712_345.6789, 4_412_345.4321, 0.0), span=300)
+    path = write_cloud(cloud, tmp_path / "p.las", scale_crs_units=0.0001)
+    las = laspy.read(path)
+    back = read_cloud(path)
+    crs_xyz = np.column_stack([las.x, las.y, las.z])
+    rel = np.abs(back.to_crs(back.xyz) - crs_xyz) / np.abs(crs_xyz)
+    assert rel.max() < 1e-9
+    assert np.abs(back.to_crs(back.xyz) - crs_xyz).max() < 1e-6 * 0.0001 * 1e3  # << scale
+
+
+def test_real_sample_with_odd_scales_keeps_precision():
+    # test1_4.las: scales ~1.16e-6 ftUS, offsets 1692500.352 / 1817499.596 (written by others).
+    path = DATA / "test1_4.las"
+    las = laspy.read(path)
+    cloud = read_cloud(path)
+    crs_xyz = np.column_stack([las.x, las.y, las.z])
+    rel = np.abs(cloud.to_crs(cloud.xyz) - crs_xyz) / np.abs(crs_xyz)
+    assert rel.max() < 1e-9
+    assert cloud.horizontal_unit_m == US_FT_NIST
+    assert cloud.sources[0].crs_origin == "file-wkt"
+
+
+# ----------------------------------------------------------------------------- real sample files
+def test_laspy_samples_read_like_laspy():
+    for name, epsg_unit in [("simple.laz", None), ("autzen.las", FT_NIST),
+                            ("1_4_w_evlr.laz", US_FT_NIST), ("extrabytes.las", None)]:
+        path = DATA / name
+        las = laspy.read(path)
+        cloud = read_cloud(path, crs=None if epsg_unit else "EPSG:32617")
+        assert cloud.n_points == las.header.point_count
+        crs_xyz = np.column_stack([las.x, las.y, las.z])
+        np.testing.assert_allclose(cloud.to_crs(cloud.xyz), crs_xyz, rtol=1e-12)
+        np.testing.assert_array_equal(cloud.classification, np.asarray(las.classification))
+        np.testing.assert_array_equal(cloud.fields["intensity"], np.asarray(las.intensity))
+        if epsg_unit:
+            assert cloud.horizontal_unit_m == epsg_unit
+    autzen = read_cloud(DATA / "autzen.las")
+    assert autzen.sources[0].crs_origin == "file-geotiff"
+    assert autzen.crs.to_epsg() == 2994  # NAD83(HARN) / Oregon GIC Lambert (ft)
+    sha = hashlib.sha256((DATA / "autzen.las").read_bytes()).hexdigest()
+    assert autzen.sources[0].sha256 == sha
+
+
+def test_real_crops_point_counts():
+    # Counts from /work/shared/real-clouds/README.md (AHN4 crops, CC0).
+    if not REAL.is_dir():
+        pytest.skip("shared real-cloud crops not present")
+    cloud = read_cloud(REAL, fields=("intensity",))
+    counts = [s.point_count for s in cloud.sources]
+    assert counts == [699_634, 893_073]
+    assert cloud.n_points == 699_634 + 893_073
+    assert cloud.crs.to_epsg() == 7415
+    assert (cloud.horizontal_unit_m, cloud.vertical_unit_m) == (1.0, 1.0)
+    np.testing.assert_array_equal(np.bincount(cloud.source_id), counts)
+    # Coordinates agree with laspy's own scaling of the second file.
+    las = laspy.read(REAL / "ahn4_powerline_12BZ1_21.laz")
+    second = cloud.source_id == 1
+    np.testing.assert_allclose(cloud.to_crs(cloud.xyz[second]),
+                               np.column_stack([las.x, las.y, las.z]), rtol=1e-15, atol=1e-9)
+    assert set(np.unique(cloud.classification)) == {1, 2, 9}
+
+
+# ----------------------------------------------------------------------------- several files
+def test_multi_file_and_folder_input(tmp_path):
+    a = make_cloud(n=300, seed=1)
+    b = make_cloud(n=500, seed=2, origin=(500_900.0, 4_400_100.0, 0.0))
+    folder = tmp_path / "tiles"
+    folder.mkdir()
+    write_cloud(b, folder / "tile_b.LAZ")
+    write_cloud(a, folder / "tile_a.las", scale_crs_units=0.0005)
+    (folder / "notes.txt").write_text("not a tile")
+    files = resolve_inputs(folder)
+    assert [f.name for f in files] == ["tile_a.las", "tile_b.LAZ"]
+    cloud = read_cloud(folder)
+    assert cloud.n_points == 800
+    assert [Path(s.path).name for s in cloud.sources] == ["tile_a.las", "tile_b.LAZ"]
+    np.testing.assert_array_equal(cloud.source_id, np.repeat([0, 1], [300, 500]))
+    np.testing.assert_array_equal(cloud.source_index[300:], np.arange(500))
+    for sid, src in enumerate((a, b)):
+        sel = cloud.source_id == sid
+        np.testing.assert_allclose(cloud.to_crs(cloud.xyz[sel]), src.to_crs(src.xyz),
+                                   rtol=1e-15, atol=1e-9)
+    # the same two files listed explicitly, in the other order
+    cloud2 = read_cloud([folder / "tile_b.LAZ", folder / "tile_a.las"])
+    assert [Path(s.path).name for s in cloud2.sources] == ["tile_b.LAZ", "tile_a.las"]
+
+
+def test_multi_file_with_different_crs_is_refused(tmp_path):
+    write_cloud(make_cloud(n=10, crs="EPSG:32617"), tmp_path / "a.las")
+    write_cloud(make_cloud(n=10, crs="EPSG:32618"), tmp_path / "b.las")
+    with pytest.raises(InputError) as err:
+        read_cloud(tmp_path)
+    assert err.value.source.endswith("b.las")
+    # an override makes them one
+    assert read_cloud(tmp_path, crs="EPSG:32617").n_points == 20
+
+
+# ----------------------------------------------------------------------------- culling
+def test_chunked_culling_equals_in_memory_filter(tmp_path):
+    cloud = make_cloud(n=20_000, seed=5)
+    path = write_cloud(cloud, tmp_path / "c.laz")
+    line = np.array([[500_050.0, 4_400_050.0], [500_400.0, 4_400_500.0],
+                     [500_750.0, 4_400_450.0]])
+    keep = corridor_mask(line, 40.0)
+    seen = []
+    culled = read_cloud(path, chunk_size=1_500, keep=keep,
+                        progress=lambda done, total: seen.append((done, total)))
+    full = read_cloud(path)
+    mask = keep(full.to_crs(full.xyz)[:, :2])
+    assert 0 < mask.sum() < full.n_points
+    np.testing.assert_array_equal(culled.xyz, full.xyz[mask])
+    np.testing.assert_array_equal(culled.source_index, np.flatnonzero(mask))
+    np.testing.assert_array_equal(culled.fields["gps_time"], full.fields["gps_time"][mask])
+    assert seen[-1] == (20_000, 20_000) and len(seen) == 14
+    assert all(a[0] < b[0] for a, b in zip(seen, seen[1:], strict=False))
+
+
+def test_corridor_mask_matches_shapely_distance():
+    shapely = pytest.importorskip("shapely")
+    rng = np.random.default_rng(3)
+    line = np.array([[0.0, 0.0], [100.0, 20.0], [150.0, 120.0], [150.0, 120.0], [40.0, 200.0]])
+    pts = rng.uniform(-60, 220, size=(50_000, 2))
+    buffer = 25.0
+    mask = corridor_mask(line, buffer)(pts)
+    dist = shapely.distance(shapely.points(pts), shapely.LineString(line))
+    clear = np.abs(dist - buffer) > 1e-9
+    np.testing.assert_array_equal(mask[clear], (dist <= buffer)[clear])
+    # one vertex: a disc
+    disc = corridor_mask(line[:1], 10.0)(pts)
+    np.testing.assert_array_equal(disc, np.hypot(pts[:, 0], pts[:, 1]) <= 10.0)
+    with pytest.raises(ValueError):
+        corridor_mask(np.zeros((3, 3)), 1.0)
+    with pytest.raises(ValueError):
+        corridor_mask(line, -1.0)
+
+
+# ----------------------------------------------------------------------------- bad inputs
+def test_missing_file(tmp_path):
+    with pytest.raises(InputError) as err:
+        read_cloud(tmp_path / "nope.laz")
+    assert err.value.source.endswith("nope.laz") and "does not exist" in err.value.problem
+
+
+def test_empty_folder_and_wrong_suffix(tmp_path):
+    with pytest.raises(InputError, match="no .las or .laz"):
+        resolve_inputs(tmp_path)
+    (tmp_path / "a.xyz").write_text("1 2 3")
+    with pytest.raises(InputError, match="not a LAS/LAZ"):
+        resolve_inputs(tmp_path / "a.xyz")
+    with pytest.raises(InputError):
+        resolve_inputs([])
+
+
+def test_text_file_named_laz(tmp_path):
+    fake = tmp_path / "fake.laz"
+    fake.write_text("x,y,z\n1,2,3\n")
+    with pytest.raises(InputError) as err:
+        read_cloud(fake)
+    assert err.value.source == str(fake) and "not a LAS/LAZ" in err.value.problem
+
+
+def test_truncated_laz(tmp_path):
+    src = REAL / "ahn4_powerline_07CZ2_14.laz" if REAL.is_dir() else DATA / "simple.laz"
+    data = src.read_bytes()
+    cut = tmp_path / "half.laz"
+    cut.write_bytes(data[: len(data) // 2])
+    with pytest.raises(InputError) as err:
+        read_cloud(cut)
+    assert err.value.source == str(cut)
+    assert "truncated or corrupt" in err.value.problem
+    with pytest.raises(InputError, match="truncated or corrupt"):
+        describe(cut)
+
+
+def test_truncated_las_and_cut_header(tmp_path):
+    data = (DATA / "autzen.las").read_bytes()
+    for name, size in [("half.las", len(data) // 2), ("head.las", 100)]:
+        cut = tmp_path / name
+        cut.write_bytes(data[:size])
+        with pytest.raises(InputError) as err:
+            read_cloud(cut)
+        assert err.value.source == str(cut)
+
+
+def test_corrupt_laz_body(tmp_path):
+    data = bytearray((DATA / "simple.laz").read_bytes())
+    with laspy.open(DATA / "simple.laz") as r:
+        start = r.header.offset_to_point_data
+    rng = np.random.default_rng(0)
+    data[start + 200: start + 4000] = rng.integers(0, 256, 3800, dtype=np.uint8).tobytes()
+    bad = tmp_path / "garbled.laz"
+    bad.write_bytes(bytes(data))
+    try:
+        cloud = read_cloud(bad, crs="EPSG:32617")
+    except InputError as err:
+        assert err.source == str(bad)
+    else:  # LAZ has no checksums: garbage may decode; it must at least be the right count
+        assert cloud.n_points == 1065
+
+
+def test_empty_cloud(tmp_path):
+    empty = Cloud(xyz=np.empty((0, 3)), origin=np.zeros(3), crs=pyproj.CRS("EPSG:32617"))
+    path = write_cloud(empty, tmp_path / "empty.laz")
+    with pytest.raises(InputError) as err:
+        read_cloud(path)
+    assert err.value.source == str(path) and "contains no points" in err.value.problem
+    full = write_cloud(make_cloud(n=100), tmp_path / "full.laz")
+    with pytest.raises(InputError, match="no points inside"):
+        read_cloud(full, keep=corridor_mask(np.array([[0.0, 0.0], [1.0, 1.0]]), 1.0))
+
+
+# ----------------------------------------------------------------------------- describe
+def test_describe_matches_laspy(tmp_path):
+    shutil.copy(DATA / "autzen.las", tmp_path / "autzen.las")
+    info = describe(tmp_path)[0]
+    las = laspy.read(DATA / "autzen.las")
+    codes, counts = np.unique(np.asarray(las.classification), return_counts=True)
+    assert info["class_counts"] == {int(c): int(k) for c, k in zip(codes, counts, strict=True)}
+    assert info["point_count"] == 106 and info["point_format"] == 1 and info["version"] == "1.2"
+    np.testing.assert_allclose(info["bounds_min"], [las.x.min(), las.y.min(), las.z.min()])
+    np.testing.assert_allclose(info["bounds_max"], [las.x.max(), las.y.max(), las.z.max()])
+    assert info["crs_epsg"] == 2994 and info["horizontal_unit"] == "foot"
+    assert info["crs_origin"] == "file-geotiff"
+    no_crs = describe(DATA / "simple.laz", crs="EPSG:2264")[0]
+    assert no_crs["horizontal_unit"] == "US survey foot" and no_crs["crs_origin"] == "override"
+
+
+def test_keep_errors_are_not_blamed_on_the_file(tmp_path):
+    path = write_cloud(make_cloud(n=100), tmp_path / "k.laz")
+    with pytest.raises(ValueError, match="boolean array"):
+        read_cloud(path, keep=lambda xy: np.ones(3, dtype=bool))
+    with pytest.raises(ValueError, match="chunk_size"):
+        read_cloud(path, chunk_size=0)
+
+
+def test_unparseable_crs_record_needs_override(tmp_path):
+    from laspy.vlrs.known import WktCoordinateSystemVlr
+
+    path = write_cloud(make_cloud(n=20, crs=None), tmp_path / "badcrs.las")
+    las = laspy.read(path)
+    las.header.vlrs.append(WktCoordinateSystemVlr("PROJCS[this is not WKT"))
+    las.write(path)
+    with pytest.raises(InputError) as err:
+        read_cloud(path)
+    assert err.value.source == str(path) and "CRS record" in err.value.problem
+    cloud = read_cloud(path, crs="EPSG:32617")
+    assert cloud.crs.to_epsg() == 32617 and cloud.sources[0].crs_origin == "override"
+
+
+def test_field_values_must_fit_the_format(tmp_path):
+    cloud = make_cloud(n=10)
+    cloud.fields["return_number"] = np.full(10, 9, dtype=np.uint8)  # 3 bits in formats 0-5
+    with pytest.raises(ValueError, match="return_number"):
+        write_cloud(cloud, tmp_path / "r.las", point_format=1, version="1.2")
+    assert write_cloud(cloud, tmp_path / "r.laz", point_format=6).exists()  # 4 bits in 6-10
+    cloud.classification[:] = 40
+    with pytest.raises(ValueError, match="class code 40"):
+        write_cloud(cloud, tmp_path / "c.las", point_format=3, version="1.2")
