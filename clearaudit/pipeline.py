@@ -15,7 +15,6 @@ Stages (each timed, with the process's peak memory recorded after it):
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import json
 import platform
 import resource
@@ -129,14 +128,6 @@ def package_versions() -> dict[str, str]:
     return out
 
 
-def sha256_of(path: Path, chunk: int = 1 << 22) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        while block := f.read(chunk):
-            h.update(block)
-    return h.hexdigest()
-
-
 # ------------------------------------------------------------------------------ output folder
 
 @contextmanager
@@ -167,8 +158,7 @@ def atomic_output_dir(out: Path, overwrite: bool):
 # ----------------------------------------------------------------------------------- the run
 
 def _progress_bar(console):
-    from rich.progress import (BarColumn, Progress, TaskProgressColumn, TextColumn,
-                               TimeElapsedColumn)
+    from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
 
     return Progress(TextColumn("[bold]{task.description:<10}"), BarColumn(),
                     TaskProgressColumn(), TextColumn("{task.fields[rate]}"),
@@ -189,7 +179,7 @@ def _stage_progress(bar, task) -> Callable[[int, int], None]:
 def run_audit(options: AuditOptions, console=None):
     """Run the whole audit; returns the output folder path."""
     from .config import load_line_file, read_structures_csv
-    from .io.las import corridor_mask, read_cloud, resolve_inputs
+    from .io.las import corridor_mask, file_sha256, inputs_crs, read_cloud, resolve_inputs
 
     record = RunRecord(command=sys.argv[:], options=options.to_dict(),
                        started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
@@ -222,14 +212,13 @@ def run_audit(options: AuditOptions, console=None):
 
         rules = load_rule_set(config.line.rule_set, config.clearance,
                               base_dir=config.source.parent if config.source else None)
-        record.inputs = [{"path": str(p), "sha256": sha256_of(p), "bytes": p.stat().st_size}
-                         for p in paths]
+        record.inputs = [{"path": str(p), "bytes": p.stat().st_size} for p in paths]
         if config.source:
-            record.inputs.append({"path": str(config.source), "sha256": sha256_of(config.source),
+            record.inputs.append({"path": str(config.source), "sha256": file_sha256(config.source),
                                   "role": "line file"})
         if config.structures_file:
             record.inputs.append({"path": str(config.structures_file), "role": "structures",
-                                  "sha256": sha256_of(Path(config.structures_file))})
+                                  "sha256": file_sha256(Path(config.structures_file))})
         record.options["line_config"] = config.to_dict()
         record.options["rule_set"] = rules.describe()
 
@@ -239,14 +228,15 @@ def run_audit(options: AuditOptions, console=None):
             task = bar.add_task("read", total=None, rate="")
             keep = None
             if structures_rows and options.corridor_buffer_m > 0:
+                _, unit_m, _ = inputs_crs(paths, crs=options.crs)
                 poly = np.array([[r["x"], r["y"]] for r in structures_rows])
-                keep = corridor_mask(poly, options.corridor_buffer_m,
-                                     buffer_unit="m")
+                keep = corridor_mask(poly, options.corridor_buffer_m / unit_m)
             cloud = read_cloud(paths, crs=options.crs, keep=keep,
                                progress=_stage_progress(bar, task))
             for info, entry in zip(cloud.sources, record.inputs, strict=False):
-                entry.update({"point_count": info.point_count, "point_format": info.point_format,
-                              "las_version": info.version, "crs": info.crs_origin})
+                entry.update({"sha256": info.sha256, "point_count": info.point_count,
+                              "point_format": info.point_format, "las_version": info.version,
+                              "crs": info.crs_origin})
             record.extra["points_read"] = cloud.n_points
             record.extra["crs"] = None if cloud.crs is None else cloud.crs.to_string()
             record.extra["horizontal_unit_m"] = cloud.horizontal_unit_m

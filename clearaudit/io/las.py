@@ -244,6 +244,22 @@ def _resolve_crs(metas: Sequence[_FileMeta], override: Any) -> Any:
     return first.crs
 
 
+def inputs_crs(paths: str | Path | Iterable[str | Path], crs: Any = None) -> tuple[Any, float, float]:
+    """The CRS the inputs will be read in and its units, from the headers alone (cheap).
+
+    Returns
+    -------
+    (crs, horizontal_unit_m, vertical_unit_m)
+        ``crs`` may be None (coordinates taken as metres). [m/unit]
+    """
+    files = resolve_inputs(paths)
+    override = parse_crs_option(crs) if crs is not None else None
+    metas = _scan_headers(files, tolerate_bad_crs=override is not None)
+    resolved = _resolve_crs(metas, override)
+    hu, vu = crs_units_m(resolved, str(files[0]))
+    return resolved, hu, vu
+
+
 # =============================================================================== coordinates
 def _auto_origin(metas: Sequence[_FileMeta]) -> np.ndarray:
     """Local origin: header minimum x, y rounded down (z = 0), snapped to the first file's grid.
