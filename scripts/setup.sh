@@ -13,8 +13,8 @@ if ! "$PYTHON" -c 'import sys; sys.exit(0 if sys.version_info >= (3, 11) else 1)
 fi
 
 # System libraries: open3d needs libusb-1.0 and libgomp; VTK (pyvista) needs GL/EGL/X libraries
-# for off-screen rendering; xvfb is the fallback display for rendering without a GPU.
-SYSTEM_PACKAGES="libusb-1.0-0 libgomp1 libgl1 libegl1 libxrender1 libxext6 libsm6 libx11-6 xvfb"
+# (Mesa EGL) for off-screen rendering without a GPU or display.
+SYSTEM_PACKAGES="libusb-1.0-0 libgomp1 libgl1 libegl1 libegl-mesa0 libgl1-mesa-dri libgbm1 libxrender1 libxext6 libsm6 libx11-6"
 if [ "${CLEARAUDIT_WITH_BROWSER:-0}" = "1" ]; then
   SYSTEM_PACKAGES="$SYSTEM_PACKAGES chromium"
 fi
