@@ -33,25 +33,6 @@ import numpy as np
 from . import CAUTION, __version__
 from .errors import InputError, StageError
 
-SPAN_COLUMNS = [
-    "span_id", "wire_id", "role", "from_structure", "to_structure",
-    "x1", "y1", "z1", "x2", "y2", "z2", "span_length_m", "n_points", "coverage", "rms_m",
-    "catenary_constant_m", "horizontal_tension_n", "horizontal_tension_ci95_n",
-    "conductor_temperature_c", "sag_survey_m", "horizontal_tension_mot_n", "sag_mot_m",
-    "min_ground_clearance_survey_m", "min_ground_clearance_mot_m", "status", "note",
-]
-SPAN_EXTRA_COLUMNS = [
-    "section_id", "ruling_span_m", "catenary_constant_ci95_m", "sag_survey_ci95_m",
-    "sag_mot_ci95_m", "rated_strength_pct", "largest_gap_m", "bundle_count",
-]
-VIOLATION_COLUMNS = [
-    "id", "kind", "condition", "span_id", "wire_id", "x", "y", "z",
-    "clearance_m", "required_m", "deficit_m", "priority", "longitude", "latitude",
-]
-VIOLATION_EXTRA_COLUMNS = [
-    "clearance_ci95_m", "certainty", "reason", "grow_in_years", "fall_in", "station_m",
-    "obstacle_points",
-]
 OUTPUT_SCHEMA_VERSION = "1.0"
 
 
@@ -334,5 +315,4 @@ def resolve_conductors(config) -> dict[str, Any]:
     return out
 
 
-__all__ = ["AuditOptions", "run_audit", "RunRecord", "StageError", "SPAN_COLUMNS",
-           "VIOLATION_COLUMNS"]
+__all__ = ["AuditOptions", "run_audit", "RunRecord", "StageError"]

@@ -1,0 +1,268 @@
+"""Turn the line model and the audit into the output files (docs/outputs.md).
+
+Everything inside is local metres; this module converts to the cloud's CRS units (and WGS 84
+longitude/latitude for field crews) at the edge.
+"""
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import CAUTION, __version__
+from .cloud import Cloud
+from .io.exports import Layer, to_wgs84, write_csv, write_geojson_points, write_geopackage
+from .io.las import write_classified
+
+SPAN_COLUMNS = [
+    "span_id", "wire_id", "role", "from_structure", "to_structure",
+    "x1", "y1", "z1", "x2", "y2", "z2", "span_length_m", "n_points", "coverage", "rms_m",
+    "catenary_constant_m", "horizontal_tension_n", "horizontal_tension_ci95_n",
+    "conductor_temperature_c", "sag_survey_m", "horizontal_tension_mot_n", "sag_mot_m",
+    "min_ground_clearance_survey_m", "min_ground_clearance_mot_m", "status", "note",
+]
+SPAN_EXTRA_COLUMNS = [
+    "section_id", "ruling_span_m", "catenary_constant_ci95_m", "sag_survey_ci95_m",
+    "sag_mot_ci95_m", "rated_strength_pct", "largest_gap_m", "bundle_count",
+]
+VIOLATION_COLUMNS = [
+    "id", "kind", "condition", "span_id", "wire_id", "x", "y", "z",
+    "clearance_m", "required_m", "deficit_m", "priority", "longitude", "latitude",
+]
+VIOLATION_EXTRA_COLUMNS = [
+    "clearance_ci95_m", "certainty", "reason", "grow_in_years", "fall_in", "station_m",
+    "obstacle_points",
+]
+MODEL_SCHEMA = "clearaudit.model/1.0"
+
+
+def _f(x: Any) -> float | None:
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _crs_list(cloud: Cloud, xyz_local: np.ndarray) -> list:
+    return [round(float(v), 4) for v in cloud.to_crs(np.asarray(xyz_local, dtype=float))]
+
+
+def span_rows_crs(cloud: Cloud, rows: list[dict]) -> list[dict]:
+    """spans.csv rows: attachment points converted from local metres to CRS units."""
+    out = []
+    for row in rows:
+        r = {k: v for k, v in row.items() if not k.endswith("_local")}
+        for key, cols in (("attachment_a_local", ("x1", "y1", "z1")),
+                          ("attachment_b_local", ("x2", "y2", "z2"))):
+            p = row.get(key)
+            if p is not None and np.all(np.isfinite(p)):
+                r.update(dict(zip(cols, cloud.to_crs(np.asarray(p, dtype=float)), strict=True)))
+        out.append(r)
+    return out
+
+
+def violation_rows_crs(cloud: Cloud, rows: list[dict]) -> tuple[list[dict], np.ndarray | None]:
+    """violations rows with CRS x, y, z and WGS 84 longitude/latitude."""
+    pts = np.array([np.asarray(r["point_local"], dtype=float) for r in rows]).reshape(-1, 3)
+    crs_xyz = cloud.to_crs(pts) if len(pts) else np.empty((0, 3))
+    lonlat = to_wgs84(crs_xyz, cloud.crs) if len(pts) else None
+    out = []
+    for i, row in enumerate(rows):
+        r = {k: v for k, v in row.items() if k != "point_local"}
+        r["x"], r["y"], r["z"] = (float(v) for v in crs_xyz[i])
+        if lonlat is not None:
+            r["longitude"], r["latitude"] = float(lonlat[i, 0]), float(lonlat[i, 1])
+        out.append(r)
+    return out, lonlat
+
+
+def build_model_json(cloud: Cloud, model: Any, audit: Any, config: Any, rules: Any) -> dict:
+    """The model.json document (docs/outputs.md)."""
+    rows_by_key = {(r["span_id"], r["wire_id"]): r for r in audit.span_rows}
+    structures = []
+    for s in model.structures:
+        z_ground = _f(s.z_ground)
+        xyz = cloud.to_crs(np.array([s.xy[0], s.xy[1], z_ground if z_ground is not None else 0.0]))
+        z_top = _f(s.z_top)
+        structures.append({
+            "id": s.id, "x": float(xyz[0]), "y": float(xyz[1]),
+            "z_ground": None if z_ground is None else float(xyz[2]),
+            "z_top": None if z_top is None else float(cloud.to_crs(np.array([0, 0, z_top]))[2]),
+            "kind": s.kind, "kind_reason": s.kind_reason, "source": s.source,
+            "line_angle_deg": _f(s.line_angle_deg)})
+    spans = []
+    for span in model.spans:
+        wires = []
+        for w in span.wires:
+            row = rows_by_key.get((span.id, w.wire_id), {})
+            curves = audit.curves.get((span.id, w.wire_id), {})
+            wires.append({
+                "wire_id": w.wire_id, "role": w.role, "status": row.get("status", w.status),
+                "note": row.get("note", w.note), "bundle_count": int(w.bundle_count),
+                "n_points": int(len(w.point_indices)),
+                **{k: _f(row.get(k)) for k in (
+                    "coverage", "rms_m", "catenary_constant_m", "catenary_constant_ci95_m",
+                    "horizontal_tension_n", "horizontal_tension_ci95_n", "sag_survey_m",
+                    "sag_survey_ci95_m", "sag_mot_m", "sag_mot_ci95_m", "horizontal_tension_mot_n",
+                    "min_ground_clearance_survey_m", "min_ground_clearance_mot_m",
+                    "rated_strength_pct", "largest_gap_m", "conductor_temperature_c")},
+                "curves": {name: [_crs_list(cloud, p) for p in np.asarray(c)]
+                           for name, c in curves.items()},
+            })
+        spans.append({
+            "span_id": span.id, "from_structure": span.from_structure,
+            "to_structure": span.to_structure, "span_length_m": _f(span.length_m),
+            "section_id": span.section_id, "partial_at": span.partial_at,
+            "status": "partial" if span.partial_at else (
+                "fitted" if any(w.status == "fitted" for w in span.wires) else "not_fitted"),
+            "wires": wires,
+        })
+    profiles = {}
+    for span_id, prof in audit.ground_profiles.items():
+        prof = np.asarray(prof, dtype=float)
+        if len(prof):
+            z = prof[:, 1] / cloud.vertical_unit_m + cloud.origin[2]
+            profiles[span_id] = [[round(float(s), 3), round(float(zz), 4)]
+                                 for s, zz in zip(prof[:, 0], z, strict=True)]
+    requirements = {}
+    if hasattr(rules, "summary_requirements"):
+        requirements = rules.summary_requirements(config.line.voltage_kv)
+    return {
+        "schema": MODEL_SCHEMA, "clearaudit_version": __version__, "caution": CAUTION,
+        "line": {"name": config.line.name, "voltage_kv": config.line.voltage_kv,
+                 "owner": config.line.owner,
+                 "max_operating_temperature_c": config.line.max_operating_temperature_c,
+                 "rule_set": config.line.rule_set, "clearance": requirements},
+        "crs_wkt": None if cloud.crs is None else cloud.crs.to_wkt(),
+        "crs_name": None if cloud.crs is None else cloud.crs.name,
+        "horizontal_unit_m": cloud.horizontal_unit_m, "vertical_unit_m": cloud.vertical_unit_m,
+        "origin": [float(v) for v in cloud.origin],
+        "survey_temperature": audit.survey_temperature,
+        "conditions": audit.conditions,
+        "structures": structures,
+        "sections": [{"id": s.id, "span_ids": list(s.span_ids),
+                      "ruling_span_m": _f(s.ruling_span_m), "note": s.note}
+                     for s in model.sections],
+        "spans": spans,
+        "other_wires": [{"id": o.id, "span_id": o.span_id, "reason": o.reason,
+                         "angle_to_span_deg": _f(o.angle_to_span_deg),
+                         "n_points": int(len(o.point_indices))} for o in model.other_wires],
+        "tension_checks": model.tension_checks,
+        "ground_profile": profiles,
+        "warnings": list(model.warnings) + list(audit.summary.get("notes", [])),
+        "summary": audit.summary,
+    }
+
+
+def _wire_layers(cloud: Cloud, model_doc: dict) -> Layer:
+    layer = Layer("wires", "LINESTRING",
+                  {"span_id": "TEXT", "wire_id": "TEXT", "role": "TEXT", "condition": "TEXT",
+                   "status": "TEXT", "sag_survey_m": "REAL", "sag_mot_m": "REAL",
+                   "horizontal_tension_n": "REAL"},
+                  description="fitted wires, one feature per wire per span per condition")
+    for span in model_doc["spans"]:
+        for w in span["wires"]:
+            for cond, coords in w["curves"].items():
+                if len(coords) >= 2:
+                    layer.features.append((np.asarray(coords), {
+                        "span_id": span["span_id"], "wire_id": w["wire_id"], "role": w["role"],
+                        "condition": cond, "status": w["status"],
+                        "sag_survey_m": w.get("sag_survey_m"), "sag_mot_m": w.get("sag_mot_m"),
+                        "horizontal_tension_n": w.get("horizontal_tension_n")}))
+    return layer
+
+
+def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, config: Any,
+                  conductors: dict, rules: Any, record: Any, *, tolerance_rows=None,
+                  progress=None) -> dict:
+    """Write every output file into ``out``; returns the summary for the terminal."""
+    out = Path(out)
+    span_rows = span_rows_crs(cloud, audit.span_rows)
+    write_csv(out / "spans.csv", span_rows, SPAN_COLUMNS + SPAN_EXTRA_COLUMNS)
+    violations, lonlat = violation_rows_crs(cloud, audit.violations)
+    columns = VIOLATION_COLUMNS + VIOLATION_EXTRA_COLUMNS
+    write_csv(out / "violations.csv", violations, columns)
+    z_m = (np.array([r["z"] for r in violations]) * cloud.vertical_unit_m) if violations else None
+    write_geojson_points(out / "violations.geojson", violations, columns, lonlat, z_m,
+                         name=f"{config.line.name} — clearance violations")
+    model_doc = build_model_json(cloud, model, audit, config, rules)
+    (out / "model.json").write_text(json.dumps(model_doc, indent=1, allow_nan=False),
+                                    encoding="utf-8")
+    structures = Layer("structures", "POINT",
+                       {"structure_id": "TEXT", "kind": "TEXT", "source": "TEXT",
+                        "line_angle_deg": "REAL"}, description="towers and poles")
+    for s in model_doc["structures"]:
+        z = s["z_ground"] if s["z_ground"] is not None else float("nan")
+        structures.features.append((np.array([s["x"], s["y"], z if math.isfinite(z) else 0.0]),
+                                    {"structure_id": s["id"], "kind": s["kind"],
+                                     "source": s["source"],
+                                     "line_angle_deg": s["line_angle_deg"]}))
+    viol_layer = Layer("violations", "POINT",
+                       {c: ("REAL" if c in ("clearance_m", "required_m", "deficit_m",
+                                            "longitude", "latitude", "clearance_ci95_m",
+                                            "grow_in_years", "station_m") else
+                            "INTEGER" if c in ("id", "priority", "obstacle_points") else "TEXT")
+                        for c in columns if c not in ("x", "y", "z")},
+                       description="clearance violations (one per obstacle per condition)")
+    for r in violations:
+        viol_layer.features.append((np.array([r["x"], r["y"], r["z"]]),
+                                    {**r, "fall_in": None if r.get("fall_in") is None
+                                     else str(bool(r.get("fall_in"))).lower()}))
+    write_geopackage(out / "line.gpkg", [structures, _wire_layers(cloud, model_doc), viol_layer],
+                     cloud.crs)
+    if tolerance_rows is not None:
+        from .audit.tolerance import TOLERANCE_COLUMNS
+
+        write_csv(out / "tolerance.csv", tolerance_rows, TOLERANCE_COLUMNS)
+    write_classified(cloud, out / "classified.laz", cls.classification,
+                     {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
+                                              "height above ground [m]")})
+    return {"line": config.line.name, "spans": len(model.spans),
+            "wires": len(span_rows),
+            "fitted": sum(r.get("status") == "fitted" for r in span_rows),
+            "partial": sum(r.get("status") == "partial" for r in span_rows),
+            "not_fitted": sum(r.get("status") == "not_fitted" for r in span_rows),
+            "violations": violations, "survey_temperature": audit.survey_temperature,
+            "class_counts": cls.counts}
+
+
+def print_summary(console: Any, summary: dict, out: Path, units: str = "metric") -> None:
+    """A short terminal summary: counts, the worst violations, where the files are."""
+    from rich.table import Table
+
+    from .cloud import CLASS_NAMES
+    from .units import FOOT_M
+
+    f = 1.0 if units == "metric" else 1.0 / FOOT_M
+    u = "m" if units == "metric" else "ft"
+    table = Table(title="points per class", title_justify="left")
+    table.add_column("class")
+    table.add_column("points", justify="right")
+    for code, n in sorted(summary["class_counts"].items()):
+        table.add_row(f"{code} {CLASS_NAMES.get(int(code), '')}", f"{n:,}")
+    console.print(table)
+    st = summary["survey_temperature"]
+    console.print(f"[bold]{summary['line']}[/]: {summary['spans']} spans, {summary['wires']} wires "
+                  f"({summary['fitted']} fitted, {summary['partial']} partial, "
+                  f"{summary['not_fitted']} not fitted); conductor at survey "
+                  f"{st.get('value_c', float('nan')):.1f} ± {st.get('ci95_c', float('nan')):.1f} °C "
+                  f"({st.get('method', '')})")
+    viol = summary["violations"]
+    if viol:
+        t = Table(title=f"{len(viol)} clearance violations — most urgent first", title_justify="left")
+        for col in ("priority", "kind", "condition", "span", "wire", f"clearance {u}",
+                    f"required {u}", f"deficit {u}", "certainty"):
+            t.add_column(col)
+        for r in sorted(viol, key=lambda r: r.get("priority") or 1e9)[:10]:
+            t.add_row(str(r.get("priority")), r["kind"], r["condition"], str(r["span_id"]),
+                      str(r["wire_id"]), f"{r['clearance_m'] * f:.2f}", f"{r['required_m'] * f:.2f}",
+                      f"{r['deficit_m'] * f:.2f}", str(r.get("certainty", "")))
+        console.print(t)
+    else:
+        console.print("No clearance violations found.")
+    console.print(f"Results in {out}/ (report.html, spans.csv, violations.csv, line.gpkg …)")
+    console.print(f"[italic]{CAUTION}[/]")
