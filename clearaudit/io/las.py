@@ -827,6 +827,9 @@ def _write_atomically(path: Path, header: Any, compress: bool,
         with os.fdopen(fd, "wb") as fh:
             with laspy.LasWriter(fh, header=header, do_compress=compress, closefd=False) as w:
                 produce(w)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the file normal permissions
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
