@@ -151,8 +151,10 @@ def test_without_supports_and_with_outliers(seed, span, constant):
     fit = fit_catenary(truth.points)
     assert fit.ok, fit.reason
     assert abs(fit.catenary_constant_m / constant - 1) < 0.01
-    # without supports the span is the data extent: within a metre of the true one
-    assert abs(fit.span_length_m - span) < 1.0
+    # without supports the span is the extent of the inlier points: the samples start up to one
+    # spacing (0.5 m) inside each support and an end sample may be one of the outliers, so the
+    # extent is within 1 m + 2 spacings + 1 spacing of the true span
+    assert abs(fit.span_length_m - span) < 2.5
     assert fit.n_inliers >= 0.96 * len(truth.points)
 
 
