@@ -45,7 +45,7 @@ def cmd_info(args: argparse.Namespace) -> int:
         lo, hi = d["bounds_min"], d["bounds_max"]
         table.add_row("bounds min (x, y, z)", ", ".join(f"{v:.3f}" for v in lo))
         table.add_row("bounds max (x, y, z)", ", ".join(f"{v:.3f}" for v in hi))
-        hist = d.get("class_histogram", {})
+        hist = d.get("class_counts", {})
         table.add_row("classes", "\n".join(
             f"{int(c):>3} {CLASS_NAMES.get(int(c), 'user defined'):<38} {n:>12,}"
             for c, n in sorted(hist.items(), key=lambda kv: int(kv[0]))))
@@ -202,8 +202,14 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+    # Without -v only the final one-line error reaches stderr; notes and warnings of a run are
+    # kept in run.json and the report. Third-party libraries (laspy logs decoding errors that
+    # we turn into InputError) stay quiet unless -v.
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.ERROR,
                         format="%(levelname)s %(name)s: %(message)s")
+    if not args.verbose:
+        logging.getLogger("laspy").setLevel(logging.CRITICAL)
+        logging.getLogger("clearaudit").setLevel(logging.CRITICAL)
     try:
         return int(args.func(args) or 0)
     except InputError as exc:

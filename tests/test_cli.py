@@ -1,0 +1,117 @@
+"""Command line: subcommands, the field calculator and bad-input handling (exit 2, one line,
+no traceback, nothing written)."""
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import laspy
+import numpy as np
+import pytest
+
+from clearaudit.cli import main
+
+SAMPLE = Path(__file__).parent.parent / "sample_clouds"
+REAL = Path(__file__).parent / "data" / "real"
+
+
+def run_cli(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "clearaudit.cli", *args],
+                          capture_output=True, text=True, timeout=300)
+
+
+def test_help_of_every_subcommand():
+    for sub in ("audit", "info", "sample", "report", "view", "sag", "conductors"):
+        r = run_cli(sub, "--help")
+        assert r.returncode == 0, r.stderr
+        assert "usage" in r.stdout
+
+
+def test_info_on_sample(capsys):
+    assert main(["info", str(SAMPLE / "tarnwick_velloran_230kv.laz")]) == 0
+    out = capsys.readouterr().out
+    assert "WGS 84 / UTM zone 17N" in out
+    assert "unclassified" in out
+
+
+def test_conductors_listing(capsys):
+    assert main(["conductors", "drake"]) == 0
+    assert "795" in capsys.readouterr().out
+
+
+def test_sag_calculator_handbook_level_span(capsys):
+    # Level span 600 ft, 795 kcmil 26/7 ACSR (1.094 lb/ft), H = 6,300 lb at the reference:
+    # sag 7.81 ft (from memory, handbook worked example). The library weight of Drake is
+    # 1.0937 lb/ft, so the reference row must reproduce 7.81 ft to the quoted precision.
+    assert main(["sag", "--conductor", "Drake", "--span", "600", "--units", "imperial",
+                 "--tension", "6300", "--at", "60", "--temperatures", "60,120"]) == 0
+    out = capsys.readouterr().out
+    row = next(line for line in out.splitlines() if "│    60.0 │" in line)
+    assert "7.8" in row and "6,300.0" in row
+
+
+def test_sag_calculator_measured_temperature_and_csv(tmp_path, capsys):
+    csv_path = tmp_path / "table.csv"
+    assert main(["sag", "--conductor", "795 26/7 ACSR", "--span", "300,350,420",
+                 "--percent-rbs", "20", "--at", "15", "--measured", "31", "--district", "heavy",
+                 "--csv", str(csv_path)]) == 0
+    out = capsys.readouterr().out
+    assert "set each span to" in out
+    text = csv_path.read_text().splitlines()
+    assert text[0].startswith("temperature_c,load_case")
+    assert any("heavy district" in line for line in text)
+
+
+@pytest.mark.parametrize("make, fragment", [
+    (lambda d: d / "missing.laz", "does not exist"),
+    (lambda d: (d / "text.laz").write_text("hello") and d / "text.laz", "not a las"),
+    (lambda d: _truncated(d), "truncated or corrupt"),
+    (lambda d: _empty(d), "no points"),
+])
+def test_audit_bad_cloud_exit_2_nothing_written(tmp_path, make, fragment):
+    cloud = make(tmp_path)
+    out = tmp_path / "out"
+    r = run_cli("audit", str(cloud), "--voltage-kv", "230", "--out", str(out))
+    assert r.returncode == 2, r.stderr
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in r.stderr
+    assert str(cloud.name) in lines[0] and fragment in lines[0].lower()
+    assert not out.exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_audit_bad_crs_and_existing_output(tmp_path):
+    laz = REAL / "ahn4_powerline_07CZ2_14.laz"
+    r = run_cli("audit", str(laz), "--voltage-kv", "150", "--crs", "EPSG:nonsense",
+                "--out", str(tmp_path / "o"))
+    assert r.returncode == 2 and "--crs" in r.stderr and "Traceback" not in r.stderr
+    existing = tmp_path / "existing"
+    existing.mkdir()
+    (existing / "keep.txt").write_text("mine")
+    r = run_cli("audit", str(laz), "--voltage-kv", "150", "--out", str(existing))
+    assert r.returncode == 2 and "already exists" in r.stderr
+    assert (existing / "keep.txt").read_text() == "mine"
+
+
+def test_audit_needs_voltage(tmp_path):
+    r = run_cli("audit", str(REAL / "ahn4_powerline_07CZ2_14.laz"), "--out", str(tmp_path / "o"))
+    assert r.returncode == 2 and "voltage" in r.stderr
+
+
+def _truncated(d: Path) -> Path:
+    src = (SAMPLE / "tarnwick_velloran_230kv.laz").read_bytes()
+    p = d / "cut.laz"
+    p.write_bytes(src[: len(src) // 2])
+    return p
+
+
+def _empty(d: Path) -> Path:
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    las = laspy.LasData(header)
+    las.x = np.zeros(0)
+    las.y = np.zeros(0)
+    las.z = np.zeros(0)
+    p = d / "empty.las"
+    las.write(p)
+    return p
