@@ -210,7 +210,8 @@ def load_line_file(path: str | Path | None) -> LineConfig:
 def read_structures_csv(path: str | Path) -> list[dict[str, Any]]:
     """Read a structures CSV: columns id, x, y and optional type (suspension|deadend).
 
-    Coordinates are in the cloud's CRS units.
+    Coordinates are in the cloud's CRS units. A missing or empty type gives ``None`` so the
+    line model can infer the kind (line angle, horizontal insulator strings, end of wires).
     """
     import csv
 
@@ -231,10 +232,11 @@ def read_structures_csv(path: str | Path) -> list[dict[str, Any]]:
                     x, y = float(row["x"]), float(row["y"])
                 except ValueError:
                     raise InputError(path, f"line {i}: x and y must be numbers") from None
-                kind = (row.get("type") or "suspension").lower().replace("-", "").replace(" ", "")
-                if kind in ("deadend", "dead_end", "tension", "angle"):
+                raw_kind = (row.get("type") or "").lower().replace("-", "").replace(" ", "")
+                kind = raw_kind or None  # None: not given, the line model infers it
+                if raw_kind in ("deadend", "dead_end", "tension", "angle", "strain"):
                     kind = "deadend"
-                elif kind != "suspension":
+                elif raw_kind not in ("", "suspension"):
                     raise InputError(path, f"line {i}: type {row.get('type')!r} is not "
                                            "suspension or deadend")
                 rows.append({"id": row["id"], "x": x, "y": y, "type": kind})

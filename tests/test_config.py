@@ -87,3 +87,8 @@ def test_bad_structures(tmp_path, text, fragment):
     p = write(tmp_path, text, "s.csv")
     with pytest.raises(InputError, match=fragment):
         read_structures_csv(p)
+
+
+def test_structure_type_optional(tmp_path):
+    p = write(tmp_path, "id,x,y\nA,1,2\nB,3,4\n", "s.csv")
+    assert [r["type"] for r in read_structures_csv(p)] == [None, None]
