@@ -1,0 +1,683 @@
+"""The clearance audit orchestrator: :func:`audit_line` -> :class:`AuditResult`.
+
+Order of work:
+
+1. conductor temperature at survey time (:mod:`.temperature`);
+2. conditions: every fitted wire's curve at survey, MOT, wind (both sides) and ice
+   (:mod:`.conditions`);
+3. the corridor: classified points within reach of any curve, one k-d tree per obstacle group
+   (vegetation, buildings, ground surfaces, other wires);
+4. clearances per wire and condition (:mod:`.clearance`), obstacles, one finding per obstacle per
+   condition group;
+5. trees, fall-in risk, grow-in time and priorities (:mod:`.priority`);
+6. span rows, curves for the model file and ground profiles.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from clearaudit.cloud import (
+    BUILDING,
+    HIGH_VEGETATION,
+    LOW_VEGETATION,
+    MEDIUM_VEGETATION,
+    Cloud,
+)
+from clearaudit.errors import InputError
+
+from .clearance import (
+    Findings,
+    group_obstacles,
+    polyline_overhead,
+    radial_findings,
+    reduce_findings,
+)
+from .conditions import CONDITION_GROUP, WireState, project_conditions, resolve_conditions
+from .priority import fall_in_distance, find_tree_tops, rank_findings
+from .temperature import survey_conductor_temperature
+
+__all__ = ["AuditOptions", "AuditResult", "audit_line", "default_insulator_length_m"]
+
+VEGETATION_CLASSES = (LOW_VEGETATION, MEDIUM_VEGETATION, HIGH_VEGETATION)
+CURVE_VERTICES = 101
+
+
+@dataclass
+class AuditOptions:
+    """Options of the clearance audit (each with its default and unit).
+
+    Attributes
+    ----------
+    spacing_m
+        Largest sample spacing along every condition curve. [m]
+    ground_lateral_m
+        Ground points within this horizontal distance of a wire's plan count as "under" it. [m]
+    link_m
+        Violating points closer than this form one obstacle. [m]
+    max_obstacle_extent_m
+        Longer obstacles are cut into tiles of this size. [m]
+    search_margin_m
+        Extra search distance beyond each requirement (room for the uncertainty). [m]
+    growth_rate_m_per_year
+        Vegetation growth rate for the grow-in time (0.5 m/year: a fast-growing broadleaf;
+        common practice (no source) — set it for the species of the corridor). [m/year]
+    fall_in
+        Find trees that can fall into the line.
+    fall_in_buffer_m
+        Horizontal distance from the wires within which trees are examined for fall-in. [m]
+    min_tree_height_m
+        Lowest vegetation counted as a tree. [m]
+    report_fall_in_only
+        Report fall-in trees that violate no clearance as their own rows.
+    insulator_length_m
+        Suspension insulator string length; ``None``: estimated from the voltage
+        (:func:`default_insulator_length_m`). [m]
+    strain_model
+        ``"auto"``, ``"linear"`` or ``"two-material"`` for the change of state.
+    creep_shift_c
+        Equivalent temperature for future creep added to projected conditions. [°C]
+    """
+
+    spacing_m: float = 0.5
+    ground_lateral_m: float = 1.0
+    link_m: float = 1.5
+    max_obstacle_extent_m: float = 15.0
+    search_margin_m: float = 1.0
+    growth_rate_m_per_year: float = 0.5
+    fall_in: bool = True
+    fall_in_buffer_m: float = 40.0
+    min_tree_height_m: float = 2.0
+    report_fall_in_only: bool = True
+    insulator_length_m: float | None = None
+    strain_model: str = "auto"
+    creep_shift_c: float = 0.0
+
+    def __post_init__(self) -> None:
+        for name in ("spacing_m", "ground_lateral_m", "link_m", "max_obstacle_extent_m",
+                     "growth_rate_m_per_year", "fall_in_buffer_m"):
+            value = getattr(self, name)
+            if not (isinstance(value, (int, float)) and value > 0 and math.isfinite(value)):
+                raise ValueError(f"The audit option {name} must be a positive number.")
+        if self.spacing_m > 0.5:
+            raise ValueError("The curve sample spacing must be 0.5 m or less.")
+
+
+@dataclass
+class AuditResult:
+    """Everything the audit found (local metres; the writer converts to CRS units).
+
+    Attributes
+    ----------
+    survey_temperature
+        ``{"value_c", "ci95_c", "method", "note"}``: conductor temperature at survey. [°C]
+    conditions
+        Condition name -> ``{"description", "temperature_c", "ice_radial_m",
+        "wind_pressure_pa", "source", ...}``.
+    span_rows
+        One dict per wire per span: every ``spans.csv`` column; attachment points as
+        ``attachment_a_local`` / ``attachment_b_local`` (numpy (3,), local m).
+    violations
+        One dict per obstacle per condition: ``violations.csv`` columns, position as
+        ``point_local`` (numpy (3,), local m), priority filled (1 = most urgent).
+    curves
+        (span_id, wire_id) -> {condition: (k, 3) local m}, ~101 vertices from A to B.
+    ground_profiles
+        span_id -> (k, 2) [station from A (m), ground z (local m)].
+    summary
+        Counts and notes for the terminal and the report.
+    rules
+        The rule set name, path and overrides used.
+    """
+
+    survey_temperature: dict
+    conditions: dict[str, dict]
+    span_rows: list[dict]
+    violations: list[dict]
+    curves: dict[tuple[str, str], dict[str, np.ndarray]]
+    ground_profiles: dict[str, np.ndarray]
+    summary: dict
+    rules: dict = field(default_factory=dict)
+
+
+def default_insulator_length_m(voltage_kv: float) -> float:
+    """Rough suspension insulator string length for a voltage.
+
+    Parameters
+    ----------
+    voltage_kv
+        Nominal phase-to-phase voltage. [kV]
+
+    Returns
+    -------
+    length : ``0.3 + 0.009 V`` (about 1.3 m at 115 kV, 2.4 m at 230 kV, 4.8 m at 500 kV;
+        common practice (no source) — give the real length when known). [m]
+    """
+    return 0.3 + 0.009 * float(voltage_kv)
+
+
+# ------------------------------------------------------------------------------ helpers
+def _latitude(cloud: Cloud) -> float | None:
+    if cloud.crs is None or cloud.n_points == 0:
+        return None
+    try:
+        from pyproj import Transformer
+
+        centre = cloud.to_crs(np.mean(cloud.xyz[:: max(1, cloud.n_points // 1000)], axis=0))
+        transformer = Transformer.from_crs(cloud.crs, "EPSG:4326", always_xy=True)
+        _, lat = transformer.transform(centre[0], centre[1])
+        return float(lat) if math.isfinite(lat) else None
+    except Exception:  # noqa: BLE001 - a CRS that cannot go to WGS 84 only loses the sun
+        return None
+
+
+def _downsample(curve: np.ndarray, n: int = CURVE_VERTICES) -> np.ndarray:
+    if len(curve) <= n:
+        return curve.copy()
+    idx = np.unique(np.round(np.linspace(0, len(curve) - 1, n)).astype(int))
+    return curve[idx]
+
+
+def _within(points_xy: np.ndarray, samples_tree: cKDTree, buffer_m: float) -> np.ndarray:
+    if len(points_xy) == 0:
+        return np.zeros(0, dtype=bool)
+    d, _ = samples_tree.query(points_xy, distance_upper_bound=buffer_m)
+    return np.isfinite(d)
+
+
+@dataclass
+class _Group:
+    kind: str
+    index: np.ndarray        # cloud indices
+    xyz: np.ndarray
+    tree: cKDTree | None
+
+
+def _group(cloud_xyz, mask, kind, samples_tree, buffer_m, two_d=False) -> _Group:
+    idx = np.flatnonzero(mask)
+    if idx.size:
+        idx = idx[_within(cloud_xyz[idx, :2], samples_tree, buffer_m)]
+    xyz = cloud_xyz[idx]
+    tree = None
+    if len(xyz):
+        tree = cKDTree(xyz[:, :2] if two_d else xyz)
+    return _Group(kind, idx, xyz, tree)
+
+
+# ------------------------------------------------------------------------------ main
+def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
+               conductors: dict[str, Any], rules: Any, *,
+               progress: Callable[[int, int], None] | None = None,
+               options: AuditOptions | None = None) -> AuditResult:
+    """Audit the clearances of a fitted line.
+
+    Parameters
+    ----------
+    cloud
+        The point cloud (local metres).
+    classification
+        :class:`clearaudit.classify.ClassificationResult` (``classification``,
+        ``height_above_ground_m``, ``ground`` with ``height_at``); ``None``: the cloud's own
+        classes, no ground model, HAG from the points.
+    model
+        :class:`clearaudit.model.line.LineModel`.
+    config
+        :class:`clearaudit.config.LineConfig`.
+    conductors
+        ``{"phase": Conductor, "shield": Conductor}``.
+    rules
+        :class:`clearaudit.audit.rules.RuleSet`.
+    progress
+        Called as ``progress(done, total)`` over the wire states.
+    options
+        :class:`AuditOptions`.
+
+    Returns
+    -------
+    AuditResult
+
+    Raises
+    ------
+    InputError
+        When the line voltage is unknown.
+    """
+    opts = options or AuditOptions()
+    voltage = getattr(config.line, "voltage_kv", None)
+    if voltage is None or not voltage > 0:
+        raise InputError(getattr(config, "source", None) or "--voltage-kv",
+                         "the line voltage is needed for the clearance audit "
+                         "(give [line] voltage_kv or --voltage-kv)")
+    voltage = float(voltage)
+    classes = (np.asarray(classification.classification) if classification is not None
+               else np.asarray(cloud.classification))
+    hag = (np.asarray(classification.height_above_ground_m, dtype=float)
+           if classification is not None and getattr(classification, "height_above_ground_m",
+                                                    None) is not None
+           else np.asarray(cloud.fields.get("height_above_ground",
+                                            np.full(cloud.n_points, np.nan)), dtype=float))
+    ground_model = getattr(classification, "ground", None) if classification is not None else None
+    xyz = cloud.xyz
+    notes: list[str] = []
+
+    # ---- altitude (vegetation rules)
+    ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces else \
+        np.array([2], dtype=np.uint8)
+    is_ground = np.isin(classes, ground_classes)
+    altitude = getattr(config.line, "altitude_m", None)
+    if altitude is None and np.any(is_ground):
+        altitude = float(np.median(xyz[is_ground, 2])) + float(cloud.origin[2]) * float(
+            cloud.vertical_unit_m)
+        altitude_note = "from the cloud's ground heights (assumed above sea level)"
+    else:
+        altitude_note = "from the line file" if altitude is not None else "unknown"
+
+    # ---- 1. survey temperature
+    latitude = _latitude(cloud)
+    wire_fits = [w for s in model.spans for w in s.wires
+                 if w.fit is not None and getattr(w.fit, "ok", False)]
+    azimuth = 90.0
+    if wire_fits:
+        d = np.mean([w.fit.direction for w in wire_fits], axis=0)
+        azimuth = float(np.degrees(np.arctan2(d[0], d[1])) % 360.0)
+    survey_t = survey_conductor_temperature(
+        config.survey, conductors["phase"], latitude_deg=latitude,
+        elevation_m=float(altitude) if altitude is not None and math.isfinite(altitude) else 0.0,
+        line_azimuth_deg=azimuth)
+    if survey_t["method"] == "default":
+        notes.append(survey_t["note"])
+
+    # ---- 2. conditions
+    specs = resolve_conditions(rules, config.line.max_operating_temperature_c,
+                               survey_t["value_c"])
+    insulator = (opts.insulator_length_m if opts.insulator_length_m is not None
+                 else default_insulator_length_m(voltage))
+    states = project_conditions(model, conductors, specs, survey_t["ci95_c"],
+                                insulator_length_m=insulator, strain_model=opts.strain_model,
+                                creep_shift_c=opts.creep_shift_c, spacing_m=opts.spacing_m)
+    for st in states:
+        notes.extend(f"{st.span_id} {st.wire_id}: {n}" for n in st.notes)
+
+    # ---- 3. corridor and obstacle groups
+    all_samples = [c for st in states for c in st.curves.values()]
+    max_req = rules.max_required_m(voltage, altitude)
+    buffer_m = max_req + opts.search_margin_m + 2.0
+    findings: dict[str, Findings] = {k: Findings.empty() for k in
+                                     ("vegetation", "building", "ground", "wire")}
+    ground_min: dict[tuple[int, str], float] = {}
+    groups: dict[str, _Group] = {}
+    if all_samples:
+        samples = np.concatenate(all_samples)
+        samples_tree = cKDTree(samples[:, :2])
+        groups["vegetation"] = _group(xyz, np.isin(classes, VEGETATION_CLASSES), "vegetation",
+                                      samples_tree, buffer_m)
+        groups["building"] = _group(xyz, classes == BUILDING, "building", samples_tree, buffer_m)
+        groups["ground"] = _group(xyz, is_ground, "ground", samples_tree,
+                                  opts.ground_lateral_m + 1.0, two_d=True)
+        other = np.zeros(cloud.n_points, dtype=bool)
+        for ow in getattr(model, "other_wires", []) or []:
+            other[np.asarray(ow.point_indices, dtype=np.int64)] = True
+        groups["wire"] = _group(xyz, other, "wire", samples_tree, buffer_m)
+        surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
+
+        for i, st in enumerate(states):
+            req = {kind: rules.required(kind, st.role, voltage, altitude_m=altitude).value_m
+                   for kind in ("vegetation", "wire")}
+            ground_req = {key: rules.required("ground", st.role, voltage, key=key).value_m
+                          for key in rules.ground[st.role]}
+            b_v = rules.required("building", st.role, voltage, key="vertical").value_m
+            b_h = rules.required("building", st.role, voltage, key="horizontal").value_m
+            parts: dict[str, list[Findings]] = {k: [] for k in findings}
+            for cond, curve in st.curves.items():
+                frac = st.fractions[cond]
+                ci_along = st.position_ci95(cond, frac)
+                margin = opts.search_margin_m + float(np.max(ci_along))
+                for kind in ("vegetation", "wire"):
+                    g = groups[kind]
+                    if g.tree is None:
+                        continue
+                    idx, d, ci, fr = radial_findings(g.xyz, g.tree, curve, frac, req[kind],
+                                                     ci_along, margin)
+                    if idx.size:
+                        parts[kind].append(_findings(idx, i, cond, d, req[kind], ci, fr, "any"
+                                                     if kind == "wire" else "value"))
+                # buildings: box envelope
+                g = groups["building"]
+                if g.tree is not None:
+                    hits = g.tree.query_ball_point(curve, math.hypot(b_h, b_v) + margin,
+                                                   return_sorted=False)
+                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
+                    if idx.size:
+                        lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
+                        d_v = np.abs(wire_z - g.xyz[idx, 2])
+                        ci = np.interp(param, np.arange(len(curve)), ci_along)
+                        fr = np.interp(param, np.arange(len(curve)), frac)
+                        keep = (lateral < b_h) & (d_v - ci < b_v)
+                        vertical = (b_v - d_v) <= (b_h - lateral)
+                        clearance = np.where(vertical, d_v, lateral)
+                        required = np.where(vertical, b_v, b_h)
+                        ci = np.where(vertical, ci, 0.0)
+                        key = np.where(vertical, "vertical", "horizontal").astype(object)
+                        if np.any(keep):
+                            parts["building"].append(Findings(
+                                idx[keep], np.full(int(keep.sum()), i), np.full(
+                                    int(keep.sum()), cond, dtype=object), clearance[keep],
+                                required[keep], ci[keep], fr[keep], key[keep]))
+                # ground: vertical clearance under the wire
+                g = groups["ground"]
+                if g.tree is not None:
+                    hits = g.tree.query_ball_point(curve[:, :2], opts.ground_lateral_m,
+                                                   return_sorted=False)
+                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
+                    model_min = _ground_model_clearance(ground_model, curve)
+                    if idx.size:
+                        lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
+                        near = lateral <= opts.ground_lateral_m
+                        idx, wire_z, param = idx[near], wire_z[near], param[near]
+                        dz = wire_z - g.xyz[idx, 2]
+                        point_min = float(np.min(dz)) if dz.size else math.inf
+                        ground_min[(i, cond)] = min(point_min, model_min)
+                        surf = surface_lookup[classes[g.index[idx]]]
+                        required = np.array([ground_req.get(s, ground_req["land"]) for s in surf])
+                        ci = np.interp(param, np.arange(len(curve)), ci_along)
+                        fr = np.interp(param, np.arange(len(curve)), frac)
+                        keep = dz - ci < required
+                        if np.any(keep):
+                            parts["ground"].append(Findings(
+                                idx[keep], np.full(int(keep.sum()), i),
+                                np.full(int(keep.sum()), cond, dtype=object), dz[keep],
+                                required[keep], ci[keep], fr[keep], surf[keep]))
+                    elif math.isfinite(model_min):
+                        ground_min[(i, cond)] = model_min
+            for kind in findings:
+                findings[kind] = Findings.concat([findings[kind], *parts[kind]])
+            if progress is not None:
+                progress(i + 1, len(states))
+
+    # ---- 4. obstacles and rows
+    rows: list[dict] = []
+    for kind, f in findings.items():
+        rows.extend(_obstacle_rows(kind, f, groups.get(kind), states, opts))
+
+    # ---- 5. trees, fall-in, priorities
+    trees_info = {"trees": 0, "fall_in_trees": 0}
+    if opts.fall_in and states:
+        _fall_in(rows, xyz, classes, hag, states, rules, voltage, altitude, opts, trees_info,
+                 ground_model)
+    for row in rows:
+        if row["kind"] == "vegetation":
+            gap = max(0.0, row["clearance_m"] - row["required_m"])
+            row["grow_in_years"] = gap / opts.growth_rate_m_per_year
+        else:
+            row["grow_in_years"] = None
+    rows = rank_findings(rows)
+    for n, row in enumerate(rows, start=1):
+        row["id"] = n
+
+    # ---- 6. span rows, curves, profiles
+    span_rows = _span_rows(model, states, survey_t, ground_min, conductors)
+    curves = {(st.span_id, st.wire_id): {c: _downsample(v) for c, v in st.curves.items()}
+              for st in states}
+    profiles = _ground_profiles(model, ground_model, groups.get("ground"))
+
+    summary = _summary(rows, states, span_rows, survey_t, notes, trees_info, rules, voltage,
+                       altitude, altitude_note, insulator)
+    return AuditResult(
+        survey_temperature={k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
+        conditions={name: spec.as_dict() for name, spec in specs.items()},
+        span_rows=span_rows, violations=rows, curves=curves, ground_profiles=profiles,
+        summary=summary, rules=rules.describe())
+
+
+def _findings(idx, state, cond, d, required, ci, frac, key) -> Findings:
+    n = len(idx)
+    return Findings(idx, np.full(n, state), np.full(n, cond, dtype=object), d,
+                    np.full(n, float(required)), ci, frac, np.full(n, key, dtype=object))
+
+
+def _ground_model_clearance(ground_model, curve: np.ndarray) -> float:
+    if ground_model is None:
+        return math.inf
+    try:
+        z = np.asarray(ground_model.height_at(curve[:, :2]), dtype=float)
+    except Exception:  # noqa: BLE001 - a model that cannot be sampled adds nothing
+        return math.inf
+    dz = curve[:, 2] - z
+    dz = dz[np.isfinite(dz)]
+    return float(dz.min()) if dz.size else math.inf
+
+
+def _obstacle_rows(kind: str, f: Findings, group: _Group | None, states: list[WireState],
+                   opts: AuditOptions) -> list[dict]:
+    if group is None or len(f.point) == 0:
+        return []
+    unique, inverse = np.unique(f.point, return_inverse=True)
+    labels_u = group_obstacles(group.xyz[unique], opts.link_m, opts.max_obstacle_extent_m)
+    labels = labels_u[inverse.reshape(-1)]
+    cond_group = np.array([CONDITION_GROUP[c] for c in f.condition], dtype=object)
+    keep = reduce_findings(f, cond_group, labels)
+    survey_bad = set(labels[(cond_group == "survey") & (f.deficit_m > 0)].tolist())
+    rows = []
+    prefix = {"vegetation": "V", "building": "B", "ground": "G", "wire": "W"}[kind]
+    for j in keep:
+        st = states[int(f.state[j])]
+        clearance = float(f.clearance_m[j])
+        required = float(f.required_m[j])
+        ci = float(f.ci95_m[j])
+        cond = str(f.condition[j])
+        row = {
+            "kind": kind, "condition": CONDITION_GROUP[cond], "condition_detail": cond,
+            "span_id": st.span_id, "wire_id": st.wire_id, "role": st.role,
+            "point_local": group.xyz[int(f.point[j])].copy(),
+            "cloud_index": int(group.index[int(f.point[j])]),
+            "clearance_m": clearance, "required_m": required,
+            "deficit_m": required - clearance, "clearance_ci95_m": ci,
+            "certainty": "certain" if clearance + ci < required else "uncertain",
+            "finding": "clearance" if clearance < required else "possible",
+            "station_m": float(f.fraction[j]) * float(st.fit.span_length_m),
+            "obstacle_id": f"{prefix}{int(labels[j]) + 1:04d}",
+            "fall_in": False, "violated_at_survey": int(labels[j]) in survey_bad,
+            "surface": str(f.key[j]) if kind == "ground" else "",
+            "direction": str(f.key[j]) if kind == "building" else "",
+        }
+        rows.append(row)
+    return rows
+
+
+def _fall_in(rows, xyz, classes, hag, states, rules, voltage, altitude, opts, info,
+             ground_model) -> None:
+    veg = np.isin(classes, VEGETATION_CLASSES)
+    if not np.any(veg):
+        return
+    survey_mot = [st.curves[c] for st in states for c in ("survey", "mot") if c in st.curves]
+    wires = np.concatenate(survey_mot)
+    wire_tree = cKDTree(wires[:, :2])
+    idx = np.flatnonzero(veg)
+    idx = idx[_within(xyz[idx, :2], wire_tree, opts.fall_in_buffer_m)]
+    if idx.size == 0:
+        return
+    heights = hag[idx]
+    if not np.all(np.isfinite(heights)) and ground_model is not None:
+        missing = ~np.isfinite(heights)
+        heights = heights.copy()
+        heights[missing] = xyz[idx[missing], 2] - ground_model.height_at(xyz[idx[missing], :2])
+    tops = find_tree_tops(xyz[idx], heights, min_height_m=opts.min_tree_height_m)
+    info["trees"] = len(tops)
+    if len(tops) == 0:
+        return
+    dist = fall_in_distance(tops.base_xyz, wires)
+    risk = dist < tops.height_m
+    info["fall_in_trees"] = int(risk.sum())
+    top_tree = cKDTree(tops.xy)
+    matched = np.zeros(len(tops), dtype=bool)
+    for row in rows:
+        if row["kind"] != "vegetation":
+            continue
+        near = top_tree.query_ball_point(row["point_local"][:2], 4.0)
+        if not near:
+            continue
+        best = max(near, key=lambda t: tops.top_z[t])
+        matched[best] = True
+        row["tree_height_m"] = float(tops.height_m[best])
+        row["fall_in_distance_m"] = float(dist[best])
+        row["fall_in"] = bool(risk[best])
+    if not opts.report_fall_in_only:
+        return
+    only = np.flatnonzero(risk & ~matched)
+    if only.size == 0:
+        return
+    # Clearance of each such tree at survey: its crown cells' distance to the survey curves.
+    survey_curves = [(k, st) for k, st in enumerate(states)]
+    cell_of_tree = tops.cell_tree
+    cells = np.flatnonzero(np.isin(cell_of_tree, only))
+    cell_xyz = tops.cell_xyz[cells]
+    best_d = np.full(len(cells), np.inf)
+    best_state = np.zeros(len(cells), dtype=int)
+    best_frac = np.zeros(len(cells))
+    from .clearance import polyline_distance
+
+    for k, st in survey_curves:
+        d, _, param = polyline_distance(cell_xyz, st.curves["survey"])
+        better = d < best_d
+        best_d = np.where(better, d, best_d)
+        best_state = np.where(better, k, best_state)
+        best_frac = np.where(better, np.interp(param, np.arange(len(st.curves["survey"])),
+                                               st.fractions["survey"]), best_frac)
+    for t in only:
+        mine = np.flatnonzero(cell_of_tree[cells] == t)
+        if mine.size == 0:
+            continue
+        j = mine[np.argmin(best_d[mine])]
+        st = states[int(best_state[j])]
+        required = rules.required("vegetation", st.role, voltage, altitude_m=altitude).value_m
+        clearance = float(best_d[j])
+        rows.append({
+            "kind": "vegetation", "condition": "survey", "condition_detail": "survey",
+            "span_id": st.span_id, "wire_id": st.wire_id, "role": st.role,
+            "point_local": cell_xyz[j].copy(), "cloud_index": -1,
+            "clearance_m": clearance, "required_m": required, "deficit_m": required - clearance,
+            "clearance_ci95_m": float(st.position_ci95("survey", np.array([best_frac[j]]))[0]),
+            "certainty": "certain", "finding": "fall_in",
+            "station_m": float(best_frac[j]) * float(st.fit.span_length_m),
+            "obstacle_id": f"T{int(t) + 1:04d}", "fall_in": True, "violated_at_survey": False,
+            "surface": "", "direction": "", "tree_height_m": float(tops.height_m[t]),
+            "fall_in_distance_m": float(dist[t]),
+        })
+
+
+def _num(x) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _span_rows(model, states: list[WireState], survey_t: dict, ground_min: dict,
+               conductors: dict) -> list[dict]:
+    index = {(st.span_id, st.wire_id): k for k, st in enumerate(states)}
+    rows = []
+    for span in model.spans:
+        for wire in span.wires:
+            if wire.role not in ("phase", "shield"):
+                continue
+            fit = wire.fit
+            ok = fit is not None and getattr(fit, "ok", False)
+            k = index.get((span.id, wire.wire_id))
+            st = states[k] if k is not None else None
+            rbs = getattr(conductors.get(wire.role), "rated_strength_n", None)
+            h = st.horizontal_tension_n.get("survey") if st else None
+            row = {
+                "span_id": span.id, "wire_id": wire.wire_id, "role": wire.role,
+                "from_structure": span.from_structure or "", "to_structure": span.to_structure
+                or "", "section_id": span.section_id,
+                "attachment_a_local": fit.attachment_a if ok else np.full(3, np.nan),
+                "attachment_b_local": fit.attachment_b if ok else np.full(3, np.nan),
+                "span_length_m": _num(fit.span_length_m) if ok else _num(span.length_m),
+                "n_points": int(wire.n_points),
+                "coverage": _num(fit.coverage) if ok else None,
+                "rms_m": _num(fit.rms_m) if ok else None,
+                "catenary_constant_m": _num(fit.catenary_constant_m) if ok else None,
+                "catenary_constant_ci95_m": _num(fit.catenary_constant_ci95_m) if ok else None,
+                "horizontal_tension_n": _num(h),
+                "horizontal_tension_ci95_n": _num(st.horizontal_tension_ci95_n.get("survey"))
+                if st else None,
+                "bundle_count": int(getattr(wire, "bundle_count", 1) or 1),
+                "conductor_temperature_c": survey_t["value_c"],
+                "conductor_temperature_ci95_c": survey_t["ci95_c"],
+                "sag_survey_m": _num(fit.sag_m) if ok else None,
+                "sag_survey_ci95_m": _num(fit.sag_ci95_m) if ok else None,
+                "largest_gap_m": _num(fit.largest_gap_m) if ok else None,
+                "rated_strength_pct": (100.0 * h / rbs if h is not None and rbs
+                                       and math.isfinite(rbs) else None),
+                "status": wire.status, "note": wire.note,
+            }
+            for cond in ("mot", "wind_left", "wind_right", "ice"):
+                tag = {"wind_left": "wind_left", "wind_right": "wind_right"}.get(cond, cond)
+                row[f"horizontal_tension_{tag}_n"] = _num(st.horizontal_tension_n.get(cond)) \
+                    if st else None
+                row[f"sag_{tag}_m"] = _num(st.sag_m.get(cond)) if st else None
+                row[f"sag_{tag}_ci95_m"] = _num(st.sag_ci95_m.get(cond)) if st else None
+            for cond in ("survey", "mot", "wind_left", "wind_right", "ice"):
+                value = ground_min.get((k, cond)) if k is not None else None
+                row[f"min_ground_clearance_{cond}_m"] = _num(value)
+            if st and st.notes:
+                row["note"] = "; ".join([row["note"], *st.notes]) if row["note"] else \
+                    "; ".join(st.notes)
+            rows.append(row)
+    return rows
+
+
+def _ground_profiles(model, ground_model, ground_group: _Group | None) -> dict[str, np.ndarray]:
+    profiles = {}
+    for span in model.spans:
+        a, b = np.asarray(span.a_xy, float), np.asarray(span.b_xy, float)
+        length = float(np.linalg.norm(b - a))
+        if not length > 0:
+            continue
+        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
+        xy = a + np.outer(stations / length, b - a)
+        z = np.full(len(stations), np.nan)
+        if ground_model is not None:
+            try:
+                z = np.asarray(ground_model.height_at(xy), dtype=float)
+            except Exception:  # noqa: BLE001 - fall back to the points
+                z = np.full(len(stations), np.nan)
+        if np.any(~np.isfinite(z)) and ground_group is not None and ground_group.tree is not None:
+            d, j = ground_group.tree.query(xy, distance_upper_bound=3.0)
+            fill = ~np.isfinite(z) & np.isfinite(d)
+            z[fill] = ground_group.xyz[j[fill], 2]
+        profiles[span.id] = np.column_stack([stations, z])
+    return profiles
+
+
+def _summary(rows, states, span_rows, survey_t, notes, trees_info, rules, voltage, altitude,
+             altitude_note, insulator) -> dict:
+    counts: dict[str, dict[str, int]] = {}
+    for row in rows:
+        if row["finding"] == "fall_in":
+            continue
+        counts.setdefault(row["kind"], {}).setdefault(row["condition"], 0)
+        counts[row["kind"]][row["condition"]] += 1
+    violations = [r for r in rows if r["deficit_m"] > 0]
+    return {
+        "findings": len(rows),
+        "violations": len(violations),
+        "violations_certain": sum(r["certainty"] == "certain" for r in violations),
+        "violations_uncertain": sum(r["certainty"] == "uncertain" for r in violations),
+        "possible_violations": sum(r["finding"] == "possible" for r in rows),
+        "fall_in_only": sum(r["finding"] == "fall_in" for r in rows),
+        "by_kind_and_condition": counts,
+        "wires_projected": len(states),
+        "spans": len({r["span_id"] for r in span_rows}),
+        "survey_temperature": {k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
+        "voltage_kv": voltage,
+        "altitude_m": altitude, "altitude_source": altitude_note,
+        "insulator_length_m": insulator,
+        "rule_set": rules.name,
+        "trees_examined": trees_info["trees"], "fall_in_trees": trees_info["fall_in_trees"],
+        "notes": notes,
+    }
