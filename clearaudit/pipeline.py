@@ -147,10 +147,17 @@ def _progress_bar(console):
                     disable=console is None)
 
 
-def _stage_progress(bar, task) -> Callable[[int, int], None]:
+def _stage_progress(bar, task) -> Callable[[Any, float], None]:
+    """A progress callback for one stage.
+
+    Accepts ``(done, total)`` counts (points, spans, wires) or ``(step_name, fraction)``.
+    """
     t0 = time.perf_counter()
 
-    def update(done: int, total: int) -> None:
+    def update(done: Any, total: float) -> None:
+        if isinstance(done, str):
+            bar.update(task, completed=float(total) * 100.0, total=100.0, rate=done)
+            return
         dt = max(time.perf_counter() - t0, 1e-9)
         bar.update(task, completed=done, total=max(total, 1),
                    rate=f"{done / dt / 1e6:.2f} M pts/s" if total > 1000 else "")
