@@ -33,8 +33,9 @@ VIOLATION_COLUMNS = [
     "clearance_m", "required_m", "deficit_m", "priority", "longitude", "latitude",
 ]
 VIOLATION_EXTRA_COLUMNS = [
-    "clearance_ci95_m", "certainty", "reason", "grow_in_years", "fall_in", "station_m",
-    "obstacle_points",
+    "clearance_ci95_m", "certainty", "finding", "direction", "condition_detail", "reason",
+    "grow_in_years", "fall_in", "tree_height_m", "fall_in_distance_m", "station_m",
+    "obstacle_id", "obstacle_points", "surface",
 ]
 MODEL_SCHEMA = "clearaudit.model/1.0"
 
@@ -204,8 +205,9 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
     viol_layer = Layer("violations", "POINT",
                        {c: ("REAL" if c in ("clearance_m", "required_m", "deficit_m",
                                             "longitude", "latitude", "clearance_ci95_m",
-                                            "grow_in_years", "station_m") else
-                            "INTEGER" if c in ("id", "priority", "obstacle_points") else "TEXT")
+                                            "grow_in_years", "station_m", "tree_height_m",
+                                            "fall_in_distance_m") else
+                            "INTEGER" if c in ("id", "priority", "obstacle_points", "obstacle_id") else "TEXT")
                         for c in columns if c not in ("x", "y", "z")},
                        description="clearance violations (one per obstacle per condition)")
     for r in violations:
