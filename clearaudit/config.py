@@ -204,6 +204,10 @@ def load_line_file(path: str | Path | None) -> LineConfig:
         raise InputError(path, f"unknown key(s) {', '.join(sorted(unknown))} in [classification]")
     cfg.trust_classes = bool(classification.get("trust_classes", False))
     cfg.design = dict(doc.get("design", {}))
+    if cfg.design:
+        from .audit.tolerance import parse_design
+
+        parse_design(cfg.design, path)  # design mistakes surface now, before the heavy stages
     return cfg
 
 

@@ -379,6 +379,92 @@ def _not_fitted_section(folder: OutputFolder) -> str:
     return "".join(parts)
 
 
+TOLERANCE_STATUS_LABELS = {"ok": "ok", "out_of_tolerance": "out of tolerance",
+                           "uncertain": "uncertain", "not_checked": "not checked"}
+
+
+def _tolerance_span_rows(rows: list[dict], units: DisplayUnits) -> list[list[str]]:
+    out = []
+    for r in rows:
+        pct = to_number(r.get("sag_difference_percent"))
+        out.append([
+            r.get("section_id", "") or MISSING, r.get("span_id", "") or MISSING,
+            r.get("wire_id", "") or MISSING,
+            TOLERANCE_STATUS_LABELS.get(r.get("status"), r.get("status", "")),
+            units.fmt_length(r.get("sag_survey_m"), 2, r.get("sag_survey_ci95_m")),
+            units.fmt_length(r.get("sag_corrected_m"), 2, r.get("sag_corrected_ci95_m")),
+            units.fmt_length(r.get("design_sag_m")),
+            units.fmt_length(r.get("sag_difference_m"))
+            + (f" ({pct:+.1f} %)" if math.isfinite(pct) else ""),
+            units.fmt_length(r.get("tolerance_m")), r.get("deviation", "") or MISSING,
+            _as_text(r.get("note") or r.get("design_source") or MISSING)])
+    return out
+
+
+def _tolerance_structure_rows(rows: list[dict], units: DisplayUnits) -> list[list[str]]:
+    out = []
+    for r in rows:
+        swing = to_number(r.get("swing_deg"))
+        swing_ci = to_number(r.get("swing_ci95_deg"))
+        out.append([
+            r.get("section_id", "") or MISSING, r.get("structure_id", "") or MISSING,
+            r.get("wire_id", "") or MISSING,
+            TOLERANCE_STATUS_LABELS.get(r.get("status"), r.get("status", "")),
+            units.fmt_force(r.get("imbalance_n"), r.get("imbalance_ci95_n")),
+            units.fmt_force(r.get("allowed_imbalance_n")),
+            (f"{swing:+.1f}°" + (f" ± {swing_ci:.1f}°" if math.isfinite(swing_ci) else ""))
+            if math.isfinite(swing) else MISSING,
+            units.fmt_length(r.get("clamp_offset_m"), 3, r.get("clamp_offset_ci95_m")),
+            r.get("offset_method", "") or MISSING, _as_text(r.get("note") or MISSING)])
+    return out
+
+
+def _construction_section(folder: OutputFolder, units: DisplayUnits) -> str:
+    """Construction check from tolerance.csv; empty when the file is absent."""
+    rows = folder.tolerance
+    if not rows:
+        return ""
+    spans = [r for r in rows if r.get("kind") == "span"]
+    structures = [r for r in rows if r.get("kind") == "structure"]
+    counts = Counter(str(r.get("status", "")) for r in spans)
+    s_counts = Counter(str(r.get("status", "")) for r in structures)
+    ref = next((to_number(r.get("reference_temperature_c")) for r in spans
+                if math.isfinite(to_number(r.get("reference_temperature_c")))), math.nan)
+    parts = ['<section id="construction"><h2>Construction check</h2>',
+             '<p class="muted">Each measured sag is corrected from the survey conductor '
+             'temperature to the design reference temperature'
+             + (f" ({esc(units.fmt_temperature(ref))})" if math.isfinite(ref) else "")
+             + " by the ruling-span change of state of its tension section and compared with "
+             "the design sag. “Uncertain”: the 95 % interval straddles the tolerance "
+             "limit. See docs/construction-check.md.</p>",
+             _kv_table([
+                 ("spans out of tolerance", counts.get("out_of_tolerance", 0)),
+                 ("spans uncertain", counts.get("uncertain", 0)),
+                 ("spans within tolerance", counts.get("ok", 0)),
+                 ("spans not checked", counts.get("not_checked", 0)),
+                 ("suspension clamps out of plumb", s_counts.get("out_of_tolerance", 0)),
+                 ("suspension clamps uncertain", s_counts.get("uncertain", 0))])]
+    if spans:
+        parts.append("<h3>Sags at the design reference temperature</h3>")
+        parts.append(_table(
+            ["Section", "Span", "Wire", "Status", "Sag at survey (± 95 %)",
+             "Corrected sag (± 95 %)", "Design sag", "Difference", "Tolerance", "Deviation",
+             "Note / design"], _tolerance_span_rows(spans, units), numeric={4, 5, 6, 7, 8}))
+    if structures:
+        parts.append("<h3>Suspension structures: tension imbalance and clamp offsets</h3>")
+        parts.append('<p class="muted">Imbalance = back-span minus ahead-span horizontal '
+                     'tension; swing from plumb along the line (positive towards the back '
+                     'span); clamp offset = conductor to move through the clamp from the ahead '
+                     'span into the back span (positive: move the clamp towards the ahead '
+                     'span) so that every string hangs plumb.</p>')
+        parts.append(_table(
+            ["Section", "Structure", "Wire", "Status", "Imbalance (± 95 %)", "Allowed",
+             "Swing", "Clamp offset (± 95 %)", "Method", "Note"],
+            _tolerance_structure_rows(structures, units), numeric={4, 5, 6, 7}))
+    parts.append("</section>")
+    return "".join(parts)
+
+
 def render_report(folder: OutputFolder, units: str = "metric") -> str:
     """The report as an HTML string (see :func:`build_report`)."""
     du = DisplayUnits(units)
@@ -399,12 +485,14 @@ def render_report(folder: OutputFolder, units: str = "metric") -> str:
           f"({esc(fmt_number(folder.origin[0], 1))}, {esc(fmt_number(folder.origin[1], 1))}) "
           f"in CRS units, shown in {esc(du.length_unit)}.</figcaption></figure></section>",
         _spans_section(folder, du), _vegetation_section(folder, du),
-        _other_violations_section(folder, du), _not_fitted_section(folder),
+        _other_violations_section(folder, du), _construction_section(folder, du),
+        _not_fitted_section(folder),
     ]
     toc = ("<nav><ol>"
            + "".join(f'<li><a href="#{a}">{esc(t)}</a></li>' for a, t in [
                ("run", "Survey and run"), ("summary", "Summary"), ("plan", "Plan view"),
                ("spans", "Spans"), ("vegetation", "Vegetation work list"),
+               *([("construction", "Construction check")] if folder.tolerance else []),
                ("not-fitted", "Spans and wires not fully fitted")])
            + "</ol></nav>")
     return (

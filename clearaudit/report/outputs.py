@@ -22,11 +22,18 @@ SPANS_FILE = "spans.csv"
 VIOLATIONS_FILE = "violations.csv"
 RUN_FILE = "run.json"
 CLOUD_FILE = "classified.laz"
+#: Construction check (only when the line file has a [design] table).
+TOLERANCE_FILE = "tolerance.csv"
 
 #: Columns of spans.csv / violations.csv that are not numbers.
 TEXT_COLUMNS = {
     "span_id", "wire_id", "role", "from_structure", "to_structure", "status", "note",
     "section_id", "id", "kind", "condition", "certainty", "reason", "fall_in",
+}
+#: Columns of tolerance.csv that are not numbers.
+TOLERANCE_TEXT_COLUMNS = TEXT_COLUMNS | {
+    "structure_id", "back_span_id", "ahead_span_id", "deviation", "design_source",
+    "offset_method",
 }
 
 
@@ -52,7 +59,7 @@ def _read_json(path: Path) -> dict:
     return doc
 
 
-def _read_csv(path: Path) -> list[dict[str, Any]]:
+def _read_csv(path: Path, text_columns: set[str] = TEXT_COLUMNS) -> list[dict[str, Any]]:
     try:
         with open(path, newline="", encoding="utf-8") as f:
             rows = list(csv.DictReader(f))
@@ -66,7 +73,7 @@ def _read_csv(path: Path) -> list[dict[str, Any]]:
                 continue
             k = k.strip()
             v = "" if v is None else v.strip()
-            rec[k] = v if k in TEXT_COLUMNS else (to_number(v) if v != "" else math.nan)
+            rec[k] = v if k in text_columns else (to_number(v) if v != "" else math.nan)
         out.append(rec)
     return out
 
@@ -93,6 +100,8 @@ class OutputFolder:
         Local origin in CRS units, shape (3,). [CRS unit]
     missing
         Names of contract files not found in the folder.
+    tolerance
+        Rows of tolerance.csv (construction check; empty when the file is absent).
     """
 
     path: Path
@@ -104,6 +113,7 @@ class OutputFolder:
     vertical_unit_m: float
     origin: np.ndarray
     missing: list[str] = field(default_factory=list)
+    tolerance: list[dict[str, Any]] = field(default_factory=list)
 
     # ---- geometry ---------------------------------------------------------------------------
     @property
@@ -393,5 +403,8 @@ def read_outputs(out_dir: str | Path) -> OutputFolder:
     origin = np.asarray(model.get("origin") or [0.0, 0.0, 0.0], dtype=float).reshape(-1)
     if origin.size != 3 or not np.all(np.isfinite(origin)):
         raise InputError(model_path, "'origin' must be three numbers [x, y, z].")
+    tolerance = (_read_csv(path / TOLERANCE_FILE, TOLERANCE_TEXT_COLUMNS)
+                 if (path / TOLERANCE_FILE).exists() else [])
     return OutputFolder(path=path, model=model, run=run, spans=spans, violations=violations,
-                        horizontal_unit_m=hu, vertical_unit_m=vu, origin=origin, missing=missing)
+                        horizontal_unit_m=hu, vertical_unit_m=vu, origin=origin, missing=missing,
+                        tolerance=tolerance)
