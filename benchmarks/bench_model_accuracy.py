@@ -11,7 +11,8 @@ file and compared with the generator's truth (exact catenaries, Irvine 1981):
 - wires: share of true wires found and fitted;
 - attachments: 3-D error at suspension and at dead-end ends (bundle centre);
 - H = w·C: relative error, and 95 % interval coverage (|H_fit - H_true| <= ci95);
-- sag: error for coverage >= 60 %, and 95 % interval coverage of the sag;
+- sag: error for coverage >= 60 %, and 95 % interval coverage of the sag (the model's
+  ``sag_ci95_m`` includes the attachment stations' uncertainty), also by span type;
 - run time per corridor.
 """
 from __future__ import annotations
@@ -92,7 +93,7 @@ def evaluate(seed: int) -> dict:
             if da > 2.0:
                 continue
             H = subs[0]["horizontal_tension_n"]
-            row.update(found=True, status=w.status, dead=dead, d_a=da,
+            row.update(found=True, status=w.status, dead=dead, d_a=da, n_sub=len(subs),
                        d_b=float(np.linalg.norm(w.fit.attachment_b - tb)),
                        h_rel=(w.horizontal_tension_n / H - 1.0) if w.horizontal_tension_n else np.nan,
                        h_in=abs(w.horizontal_tension_n - H) <= w.horizontal_tension_ci95_n
@@ -138,6 +139,12 @@ def main(n_seeds: int = 20) -> None:
     print(f"attachments at dead-end ends:   n {len(att_d)}, p50 {pct(att_d, 50):.3f} m, "
           f"p95 {pct(att_d, 95):.3f} m, max {max(att_d):.3f} m, share < 0.15 m "
           f"{np.mean(np.array(att_d) < 0.15):.3f}")
+    for role, label in (("phase", "phase (strain string)"), ("shield", "shield (no string)")):
+        a = [x["d_a"] for x in fitted if x["dead"][0] and x["role"] == role] + \
+            [x["d_b"] for x in fitted if x["dead"][1] and x["role"] == role]
+        if a:
+            print(f"  dead-end, {label}: n {len(a)}, p95 {pct(a, 95):.3f} m, max {max(a):.3f} m, "
+                  f"share < 0.15 m {np.mean(np.array(a) < 0.15):.3f}")
     print(f"H relative error: p50 {100 * pct(h, 50):.3f} %, p95 {100 * pct(h, 95):.3f} %, "
           f"max {100 * np.nanmax(np.abs(h)):.3f} %, share within 2 % {np.mean(np.abs(h) < 0.02):.3f}; "
           f"95 % interval coverage {np.mean([x['h_in'] for x in fitted]):.3f}")
@@ -145,6 +152,13 @@ def main(n_seeds: int = 20) -> None:
           f"{pct(sag, 95):.3f} m, max {np.max(np.abs(sag)):.3f} m, share within 0.10 m "
           f"{np.mean(np.abs(sag) < 0.10):.3f}; 95 % interval coverage "
           f"{np.mean([x['sag_in'] for x in good]):.3f}")
+    for label, sel in (("spans with a dead-end", lambda x: any(x["dead"])),
+                       ("suspension-only spans", lambda x: not any(x["dead"])),
+                       ("bundles", lambda x: x["n_sub"] > 1), ("single", lambda x: x["n_sub"] == 1)):
+        sub = [x for x in good if sel(x)]
+        if sub:
+            print(f"  sag 95 % interval coverage, {label}: n {len(sub)}, "
+                  f"{np.mean([x['sag_in'] for x in sub]):.3f}")
     print(f"model time per corridor: median {np.median([r['time_s'] for r in results]):.1f} s")
 
 

@@ -225,10 +225,6 @@ def test_mot_sag_matches_truth_for_well_covered_suspension_spans(scene):
     assert max(abs(e) for e in errors.values()) < 0.20, errors
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "the line model places a span's ends at the structure axis, so next to a dead-end the "
-    "projected conductor includes the strain insulator (3.1 m in this corridor); measured MOT "
-    "sag error up to +0.20 m — needs the insulator-end attachment from the model"))
 def test_mot_sag_matches_truth_for_well_covered_deadend_spans(scene):
     errors = _mot_sag_errors(scene, deadend_spans=True)
     assert len(errors) >= 3

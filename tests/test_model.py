@@ -208,9 +208,13 @@ def test_spans_partial_and_sections(single):
     # wires run on at both ends: no end-of-wire dead-end, one section
     assert [s.kind for s in model.structures] == ["suspension"] * 3
     assert len(model.sections) == 1
-    L = [s.length_m for s in model.spans[1:3]]
-    # ruling span, IEEE Std 524-2016: sqrt(sum L^3 / sum L)
+    # ruling span, IEEE Std 524-2016: sqrt(sum L^3 / sum L), over the complete spans' conductor
+    # lengths (between the phase attachments); the structure-to-structure one for reference
+    L = [s.conductor_length_m for s in model.spans[1:3]]
     assert model.sections[0].ruling_span_m == pytest.approx(np.sqrt(sum(x**3 for x in L) / sum(L)))
+    L = [s.length_m for s in model.spans[1:3]]
+    assert model.sections[0].structure_ruling_span_m == pytest.approx(
+        np.sqrt(sum(x**3 for x in L) / sum(L)))
 
 
 def test_wires_fitted_accurately(single):

@@ -22,6 +22,7 @@ Conventions
 """
 from __future__ import annotations
 
+import dataclasses
 import importlib
 import logging
 from collections.abc import Callable, Sequence
@@ -39,6 +40,7 @@ from ..cloud import (
     WIRE_GUARD,
     Cloud,
 )
+from .attachments import pool_stations, regular_start, sag_ci95_with_stations, uniform_end
 from .structures import (
     DEADEND,
     STRUCTURE_KINDS,
@@ -56,7 +58,8 @@ from .wires import SeparationOptions, WireCluster, separate_wires, span_frame, t
 
 log = logging.getLogger(__name__)
 
-MODEL_JSON_VERSION = "1.0"
+MODEL_JSON_VERSION = "1.1"
+_Z95 = 1.959963984540054  # two-sided 95 % quantile of the standard normal distribution
 STATUS_FITTED = "fitted"
 STATUS_PARTIAL = "partial"
 STATUS_NOT_FITTED = "not_fitted"
@@ -205,6 +208,15 @@ class WireFit:
         Indices of the wire's points into the cloud.
     lateral_offset_m, height_m
         Lateral offset (right positive) and height at the middle of the wire's data. [m]
+    attachment_methods
+        How each attachment (A, B) was placed: ``"plumb string"`` (median of the suspension
+        insulator points), ``"strain string"`` / ``"strain strings"`` (far end of the dead-end
+        strain string, alone / pooled over the strings of that structure side), ``"wire end"``
+        (where the wire's points begin), ``"crossarm line"`` (through the structure position)
+        or ``"span end"`` (virtual end of a partial span).
+    attachment_along_ci95_m
+        95 % half-widths of the along-span positions of attachments A and B; they are included
+        in ``fit.sag_ci95_m``. [m]
     """
 
     wire_id: str
@@ -222,6 +234,8 @@ class WireFit:
     lateral_offset_m: float = 0.0
     height_m: float = 0.0
     majority_class: int = 0
+    attachment_methods: tuple[str, str] = ("", "")
+    attachment_along_ci95_m: tuple[float, float] | None = None
     cluster: WireCluster | None = field(default=None, repr=False)
 
     @property
@@ -237,6 +251,12 @@ class WireFit:
             "horizontal_tension_n": self.horizontal_tension_n,
             "horizontal_tension_ci95_n": self.horizontal_tension_ci95_n,
             "phase_horizontal_tension_n": self.phase_horizontal_tension_n,
+            "attachment_a_method": self.attachment_methods[0] or None,
+            "attachment_b_method": self.attachment_methods[1] or None,
+            "attachment_a_along_ci95_m": (None if self.attachment_along_ci95_m is None
+                                          else float(self.attachment_along_ci95_m[0])),
+            "attachment_b_along_ci95_m": (None if self.attachment_along_ci95_m is None
+                                          else float(self.attachment_along_ci95_m[1])),
             "fit": _fit_json(self.fit),
             "sub_conductors": [s.to_json() for s in self.sub_conductors],
         }
@@ -256,7 +276,16 @@ class Span:
     a_xy, b_xy
         Horizontal positions of the two ends (structure or virtual end). [m]
     length_m
-        Horizontal length between the ends. [m]
+        Horizontal length between the ends (structure axes or virtual ends); the frame in
+        which the span's wire points are collected. [m]
+    conductor_length_m
+        Horizontal distance between the actual attachment points of the span's conductors:
+        the median ``fit.span_length_m`` of its fitted phase wires (of its shield wires when
+        no phase is fitted); shorter than ``length_m`` next to a dead-end by the strain
+        string. ``None`` when no wire is fitted. Each wire's own value is its
+        ``fit.span_length_m`` (``span_length_m`` in ``spans.csv``). [m]
+    conductor_length_by_role_m
+        The same per role (``"phase"``, ``"shield"``). [m]
     section_id
         Tension section.
     partial_at
@@ -276,6 +305,8 @@ class Span:
     section_id: str = ""
     partial_at: str | None = None
     wires: list[WireFit] = field(default_factory=list)
+    conductor_length_m: float | None = None
+    conductor_length_by_role_m: dict[str, float] = field(default_factory=dict)
 
     @property
     def direction(self) -> np.ndarray:
@@ -291,7 +322,9 @@ class Span:
             "to_structure": self.to_structure,
             "a_x_m": float(self.a_xy[0]), "a_y_m": float(self.a_xy[1]),
             "b_x_m": float(self.b_xy[0]), "b_y_m": float(self.b_xy[1]),
-            "length_m": self.length_m, "section_id": self.section_id,
+            "length_m": self.length_m, "conductor_length_m": self.conductor_length_m,
+            "conductor_length_by_role_m": dict(self.conductor_length_by_role_m),
+            "section_id": self.section_id,
             "partial_at": self.partial_at, "wires": [w.to_json() for w in self.wires],
         }
 
@@ -307,20 +340,31 @@ class TensionSection:
     span_ids
         Spans of the section in line order (partial spans included).
     ruling_span_m
-        :math:`\\sqrt{\\sum L^3 / \\sum L}` over the complete spans; ``None`` when the section
-        has only partial spans. [m]
+        :math:`\\sqrt{\\sum L^3 / \\sum L}` over the complete spans with :math:`L` the
+        conductor length of each span (between the phase conductors' attachment points,
+        :attr:`Span.conductor_length_m`; the structure-to-structure length for a span without
+        a fitted phase); ``None`` when the section has only partial spans. [m]
     note
         E.g. which spans were left out of the ruling span.
+    ruling_span_by_role_m
+        The ruling span of each role's conductors (``"phase"``, ``"shield"``): a shield wire
+        without a strain string spans the full structure-to-structure length. [m]
+    structure_ruling_span_m
+        The ruling span of the structure-to-structure lengths, for reference. [m]
     """
 
     id: str
     span_ids: list[str]
     ruling_span_m: float | None
     note: str = ""
+    ruling_span_by_role_m: dict[str, float] = field(default_factory=dict)
+    structure_ruling_span_m: float | None = None
 
     def to_json(self) -> dict:
         return {"id": self.id, "span_ids": list(self.span_ids),
-                "ruling_span_m": self.ruling_span_m, "note": self.note}
+                "ruling_span_m": self.ruling_span_m,
+                "ruling_span_by_role_m": dict(self.ruling_span_by_role_m),
+                "structure_ruling_span_m": self.structure_ruling_span_m, "note": self.note}
 
 
 @dataclass(eq=False)
@@ -757,6 +801,8 @@ def build_line_model(
     arm_normals = _arm_normals(spans)
     for span in spans:
         line_wires = []
+        stations = _attachment_stations(span, [w for w in span.wires if w.role != "other"],
+                                        xyz, insulator_xyz, struct_by_id, arm_normals)
         for w in span.wires:
             if w.role == "other":
                 ang = (w.cluster.extra.get("angle_deg") if w.cluster is not None else None)
@@ -766,8 +812,9 @@ def build_line_model(
                                         angle_to_span_deg=float(ang or 0.0),
                                         point_indices=w.point_indices))
                 continue
-            a_sup, b_sup = _supports(span, w, xyz, insulator_xyz, struct_by_id, arm_normals)
-            _fit_wire(span, w, xyz, opts, weights, bundle_hint, fitmod, a_sup, b_sup)
+            a_sup, b_sup = _supports(span, stations[id(w)])
+            _fit_wire(span, w, xyz, opts, weights, bundle_hint, fitmod, a_sup, b_sup,
+                      stations[id(w)])
             if w.role == "other":  # rejected by the fit: attachments not at our structures
                 others.append(OtherWire(id="", span_id=span.id, reason=w.note,
                                         angle_to_span_deg=0.0, point_indices=w.point_indices,
@@ -776,6 +823,7 @@ def build_line_model(
             line_wires.append(w)
         span.wires = line_wires
     _add_missing_wires(spans)
+    _conductor_ruling_spans(spans, sections)
     for k, o in enumerate(others, start=1):
         o.id = f"X{k:02d}"
         if o.fit is None and len(o.point_indices) >= opts.min_fit_points:
@@ -985,7 +1033,8 @@ def _make_sections(structs, spans: list[Span]) -> list[TensionSection]:
         for s in current:
             s.section_id = sid
         sections.append(TensionSection(id=sid, span_ids=[s.id for s in current],
-                                       ruling_span_m=rs, note=note))
+                                       ruling_span_m=rs, note=note,
+                                       structure_ruling_span_m=rs))
 
     for sp in spans:
         current.append(sp)
@@ -994,6 +1043,36 @@ def _make_sections(structs, spans: list[Span]) -> list[TensionSection]:
             current = []
     close()
     return sections
+
+
+def _conductor_ruling_spans(spans: list[Span], sections: list[TensionSection]) -> None:
+    """Conductor lengths of the spans and the sections' ruling spans from them.
+
+    The conductor of a span ends at its attachment points: next to a dead-end at the far end
+    of the strain string, so the conductor span is shorter than the structure span by the
+    string. The ruling span :math:`\\sqrt{\\sum L^3/\\sum L}` (IEEE Std 524-2016) of a
+    section uses these conductor lengths, per role.
+    """
+    for sp in spans:
+        by_role: dict[str, float] = {}
+        for role in ("phase", "shield"):
+            lengths = [w.fit.span_length_m for w in sp.wires
+                       if w.role == role and w.fit is not None and w.fit.ok]
+            if lengths:
+                by_role[role] = float(np.median(lengths))
+        sp.conductor_length_by_role_m = by_role
+        sp.conductor_length_m = by_role.get("phase", by_role.get("shield"))
+    by_id = {sp.id: sp for sp in spans}
+    for sec in sections:
+        complete = [by_id[i] for i in sec.span_ids if i in by_id and by_id[i].partial_at is None]
+        if not complete:
+            continue
+        roles = sorted({r for sp in complete for r in sp.conductor_length_by_role_m})
+        sec.ruling_span_by_role_m = {
+            role: ruling_span([sp.conductor_length_by_role_m.get(role, sp.length_m)
+                               for sp in complete]) for role in roles}
+        sec.ruling_span_m = sec.ruling_span_by_role_m.get(
+            "phase", sec.ruling_span_by_role_m.get("shield", sec.structure_ruling_span_m))
 
 
 def _span_wires(span: Span, xyz, cls, wire_idx, opts: ModelOptions, struct_by_id) -> None:
@@ -1163,9 +1242,17 @@ def _tension(fit, w) -> tuple[float | None, float | None]:
     return _num(h), _num(ci)
 
 
-def _suspension_station(span: Span, w: WireFit, end: str, insulator_xyz) -> float | None:
-    """Station of a wire's clamp at a suspension structure: the median station of the
-    insulator points hanging above the wire's end (plumb strings). ``None`` without them."""
+# Standard deviation along the span of an attachment placed on the crossarm line through the
+# structure position (no insulator evidence): the along-line uncertainty of a detected
+# structure's position. Measured p95 0.11 m over the synthetic sweep; common practice (no
+# source) for a conservative value.
+_CROSSARM_STATION_SD_M = 0.10
+
+
+def _suspension_station(span: Span, w: WireFit, end: str, insulator_xyz):
+    """Station of a wire's clamp at a suspension structure and its standard deviation: the
+    median station of the insulator points hanging above the wire's end (plumb strings).
+    ``None`` without them."""
     c = w.cluster
     if c is None or "coef_t" not in c.extra or insulator_xyz is None or not len(insulator_xyz):
         return None
@@ -1182,17 +1269,49 @@ def _suspension_station(span: Span, w: WireFit, end: str, insulator_xyz) -> floa
     ok = (dt < 1.0) & (dz > -1.0) & (dz < 5.0)
     if ok.sum() < 5:
         return None
-    return float(np.median(stn[ok]))
+    q = stn[ok]
+    med = float(np.median(q))
+    # standard error of a median: sqrt(pi/2) sigma / sqrt(n), sigma from the MAD
+    sigma = 1.4826 * float(np.median(np.abs(q - med)))
+    return med, max(1.2533 * sigma / np.sqrt(len(q)), 0.01)
 
 
-def _deadend_station(span: Span, w: WireFit, end: str, xyz, insulator_xyz) -> float | None:
-    """Station of a wire's attachment at a dead-end: the far end of its strain string.
+def _wire_start(span: Span, w: WireFit, end: str, xyz):
+    """Station where the wire's points begin at one end and its standard deviation
+    (:func:`~clearaudit.model.attachments.regular_start`, averaged over the sub-conductors of
+    a bundle), or ``None`` when its first points are not within 10 m of the end."""
+    c = w.cluster
+    if c is None:
+        return None
+    u, _, L = span_frame(span.a_xy, span.b_xy)
+    sign = 1.0 if end == "a" else -1.0
+    base = 0.0 if end == "a" else L
+    inward = sign * ((xyz[w.point_indices, :2] - span.a_xy[None, :]) @ u - base)
+    labels = (c.sub_label if c.n_sub > 1 and len(c.sub_label) == len(inward)
+              else np.zeros(len(inward), dtype=int))
+    starts = []
+    for k in np.unique(labels[labels >= 0]):
+        q = inward[(labels == k) & (inward > -1.0)]
+        if len(q) >= 5 and q.min() < 10.0:
+            starts.append(regular_start(q)[:2])
+    if not starts:
+        return None
+    return (base + sign * float(np.mean([x[0] for x in starts])),
+            float(np.mean([x[1] for x in starts])))
 
-    The strain insulator lies along the line from the crossarm tip; the wire is attached at
-    its end, inside the span. Two estimates: the far end of the insulator points near the
-    wire's extrapolated curve, and the wire's first point less half its point spacing; their
-    mean when both exist and agree within 1 m, else the one available (the wire's alone only
-    when it is more than 1.5 m inside). ``None`` when neither is available.
+
+def _deadend_station(span: Span, w: WireFit, end: str, xyz, insulator_xyz):
+    """Station of a wire's attachment at a dead-end (the far end of its strain string) and
+    its standard deviation, or ``None``.
+
+    The strain insulator lies along the line from the crossarm tip; the conductor starts at its
+    far end, inside the span. Two estimates: the far end of the insulator points near the
+    wire's extrapolated curve (:func:`~clearaudit.model.attachments.uniform_end` on the top
+    points), and where the wire's points begin
+    (:func:`~clearaudit.model.attachments.regular_start`, averaged over the sub-conductors of a
+    bundle). Their inverse-variance weighted mean when both exist and agree within 1 m, else
+    the insulator estimate; the wire's alone only when it lies more than 1.5 m inside (a wire
+    starting at the structure has no strain string). Returns ``(station, sd, has_string)``.
     """
     c = w.cluster
     if c is None or "coef_t" not in c.extra:
@@ -1212,23 +1331,18 @@ def _deadend_station(span: Span, w: WireFit, end: str, xyz, insulator_xyz) -> fl
             dz = np.abs(insulator_xyz[near, 2] - np.polyval(c.extra["coef_z"], stn))
             ok = (dt < 1.0) & (dz < 2.5)
             if ok.sum() >= 3:
-                q = inward[near][ok]
-                # end of a uniformly sampled string: max + (max - min) / (n - 1) (the
-                # minimum-variance unbiased estimate of a uniform distribution's upper end)
-                est_ins = float(q.max() + np.ptp(q) / (len(q) - 1))
-    s_w = (xyz[w.point_indices, :2] - span.a_xy[None, :]) @ u
-    inward_w = np.sort(sign * (s_w - base))
-    inward_w = inward_w[inward_w > -1.0]
-    if len(inward_w) >= 5 and inward_w[0] < 10.0:
-        spacing = float(np.median(np.diff(inward_w[:50])))
-        # the first point lies on average half a spacing beyond the attachment
-        est_wire = float(inward_w[0] - 0.5 * spacing)
-    if est_ins is not None and est_wire is not None and abs(est_ins - est_wire) < 1.0:
-        return base + sign * 0.5 * (est_ins + est_wire)
+                est_ins = uniform_end(inward[near][ok], top=20)
+    own = _wire_start(span, w, end, xyz)
+    if own is not None:
+        est_wire = (sign * (own[0] - base), own[1])
+    if est_ins is not None and est_wire is not None and abs(est_ins[0] - est_wire[0]) < 1.0:
+        wi, ww = est_ins[1] ** -2, est_wire[1] ** -2
+        value = (wi * est_ins[0] + ww * est_wire[0]) / (wi + ww)
+        return base + sign * value, (wi + ww) ** -0.5, True
     if est_ins is not None:
-        return base + sign * est_ins
-    if est_wire is not None and est_wire > 1.5:
-        return base + sign * est_wire
+        return base + sign * est_ins[0], est_ins[1], True
+    if est_wire is not None and est_wire[0] > 1.5:
+        return base + sign * est_wire[0], est_wire[1], False
     return None
 
 
@@ -1245,46 +1359,114 @@ def _arm_normals(spans: list[Span]) -> dict[str, np.ndarray]:
     return {k: n / max(np.hypot(*n), 1e-12) for k, n in acc.items()}
 
 
-def _supports(span: Span, w: WireFit, xyz, insulator_xyz, struct_by_id, arm_normals=None):
+@dataclass
+class _Station:
+    """Along-span station of one attachment (span frame of the structures), its lateral offset
+    and standard deviation [m], and how it was found."""
+
+    station_m: float
+    lateral_m: float
+    sd_m: float
+    method: str
+
+
+def _crossarm_station(span: Span, sid: str, end: str, lateral: float, arm_normals) -> float:
+    """Station where a wire at ``lateral`` meets the crossarm line through the structure."""
+    u, v, L = span_frame(span.a_xy, span.b_xy)
+    base = 0.0 if end == "a" else L
+    n = (arm_normals or {}).get(sid)
+    if n is not None and abs(float(n @ v)) > 0.2:
+        s_att = base + lateral * float(n @ u) / float(n @ v)
+        if abs(s_att - base) < 10.0:
+            return s_att
+    return base
+
+
+def _attachment_stations(span: Span, wires: list[WireFit], xyz, insulator_xyz,
+                         struct_by_id, arm_normals) -> dict[int, tuple[_Station, _Station]]:
+    """Both attachments of every wire of a span (see :func:`_supports`), dead-end strain
+    strings pooled per structure side (:func:`~clearaudit.model.attachments.pool_stations`)."""
+    u, v, L = span_frame(span.a_xy, span.b_xy)
+    out: dict[int, list[_Station]] = {}
+    strings: dict[str, list[int]] = {"a": [], "b": []}
+    for w in wires:
+        c = w.cluster
+        pair = []
+        for end, sid in (("a", span.from_structure), ("b", span.to_structure)):
+            base = 0.0 if end == "a" else L
+            st = struct_by_id.get(sid) if sid is not None else None
+            if st is None or c is None or "coef_t" not in c.extra:
+                pair.append(_Station(base, 0.0, _CROSSARM_STATION_SD_M, "span end"))
+                continue
+            lateral = float(np.polyval(c.extra["coef_t"], base))
+            if st.kind == DEADEND:
+                found = _deadend_station(span, w, end, xyz, insulator_xyz)
+                if found is not None:
+                    s_att, sd, has_string = found
+                    pair.append(_Station(s_att, float(np.polyval(c.extra["coef_t"], s_att)),
+                                         sd, "strain string" if has_string else "wire end"))
+                    if has_string:
+                        strings[end].append(len(out))
+                    continue
+            else:
+                found = _suspension_station(span, w, end, insulator_xyz)
+                if found is not None:
+                    s_att, sd = found
+                    pair.append(_Station(s_att, float(np.polyval(c.extra["coef_t"], s_att)),
+                                         sd, "plumb string"))
+                    continue
+            s_att = _crossarm_station(span, sid, end, lateral, arm_normals)
+            # a wire without a strain string (shield wire) starts at the structure, where the
+            # tower hides its first points: the crossarm line through the structure position
+            pair.append(_Station(s_att, lateral, _CROSSARM_STATION_SD_M, "crossarm line"))
+        out[len(out)] = pair
+    # strain strings of one structure side: one assembly, far ends parallel to the crossarm line
+    for k, end in ((0, "a"), (1, "b")):
+        members = strings[end]
+        if len(members) < 2:
+            continue
+        sid = span.from_structure if end == "a" else span.to_structure
+        n = (arm_normals or {}).get(sid)
+        slope = float(n @ u) / float(n @ v) if n is not None and abs(float(n @ v)) > 0.2 else 0.0
+        rows = [out[i][k] for i in members]
+        pooled_s, pooled_sd, used = pool_stations([r.station_m for r in rows],
+                                                  [r.lateral_m for r in rows],
+                                                  [max(r.sd_m, 1e-3) for r in rows], slope)
+        for r, s_new, sd_new, ok in zip(rows, pooled_s, pooled_sd, used, strict=True):
+            if ok:
+                r.station_m, r.sd_m, r.method = float(s_new), float(sd_new), "strain strings"
+    return {id(w): (out[i][0], out[i][1]) for i, w in enumerate(wires)}
+
+
+def _supports(span: Span, stations: tuple[_Station, _Station]):
     """Horizontal support positions for the fit of one wire.
 
     The wire's attachment lies where its (horizontal) line meets the crossarm line through
     the structure (on a straight line: the structure's projection on the wire); at a
-    dead-end, at the far end of the strain string (see :func:`_deadend_station`).
+    suspension structure at the clamp below the plumb insulator string; at a dead-end at the
+    far end of the strain string (see :func:`_deadend_station`), not at the structure axis.
     """
-    u, v, L = span_frame(span.a_xy, span.b_xy)
-    out = []
-    c = w.cluster
-    for end, sid, xy in (("a", span.from_structure, span.a_xy), ("b", span.to_structure,
-                                                                  span.b_xy)):
-        st = struct_by_id.get(sid) if sid is not None else None
-        if st is None or c is None or "coef_t" not in c.extra:
-            out.append(xy)
-            continue
-        s_att = (_deadend_station(span, w, end, xyz, insulator_xyz) if st.kind == DEADEND
-                 else _suspension_station(span, w, end, insulator_xyz))
-        if s_att is not None:
-            if True:
-                lat = float(np.polyval(c.extra["coef_t"], s_att))
-                out.append(span.a_xy + u * s_att + v * lat)
-                continue
-        n = (arm_normals or {}).get(sid)
-        base = 0.0 if end == "a" else L
-        t0 = float(np.polyval(c.extra["coef_t"], base))
-        if n is not None and abs(float(u[0] * n[1] - u[1] * n[0])) > 0.2:
-            r = span.a_xy + v * t0 - xy
-            s_att = -float(r[0] * n[1] - r[1] * n[0]) / float(u[0] * n[1] - u[1] * n[0])
-            if abs(s_att - base) < 10.0:
-                out.append(span.a_xy + u * s_att + v * t0)
-                continue
-        out.append(xy)
-    return out[0], out[1]
+    u, v, _ = span_frame(span.a_xy, span.b_xy)
+    a, b = stations
+    return (span.a_xy + u * a.station_m + v * a.lateral_m,
+            span.a_xy + u * b.station_m + v * b.lateral_m)
+
+
+def _with_station_uncertainty(fit, stations):
+    """The fit with its sag half-width widened by the attachment stations' uncertainty."""
+    if stations is None or fit is None or not fit.ok:
+        return fit
+    ci = sag_ci95_with_stations(fit, stations[0].sd_m, stations[1].sd_m)
+    return dataclasses.replace(fit, sag_ci95_m=ci)
 
 
 def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_hint,
-              fitmod, a_xy=None, b_xy=None) -> None:
+              fitmod, a_xy=None, b_xy=None, stations=None) -> None:
     """Fit one wire (and its sub-conductors) and set its status."""
     c = w.cluster
+    if stations is not None:
+        w.attachment_methods = (stations[0].method, stations[1].method)
+        w.attachment_along_ci95_m = (_Z95 * stations[0].sd_m, _Z95 * stations[1].sd_m)
     a_xy = span.a_xy if a_xy is None else a_xy
     b_xy = span.b_xy if b_xy is None else b_xy
     pts_idx = w.point_indices
@@ -1307,7 +1489,7 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
         ok = lab >= 0
         pts[ok, :2] -= off[lab[ok], 0][:, None] * v[None, :]
         pts[ok, 2] -= off[lab[ok], 1]
-    fit = fitmod.fit_catenary(pts, a_xy, b_xy, **kw)
+    fit = _with_station_uncertainty(fitmod.fit_catenary(pts, a_xy, b_xy, **kw), stations)
     w.fit = fit
     hint = bundle_hint.get(w.role, 1)
     if n_sub > 1:
@@ -1350,7 +1532,8 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
                                   vertical_offset_m=float(c.sub_offsets[j, 1]),
                                   point_indices=sidx)
             if len(sidx) >= opts.min_fit_points:
-                sub.fit = fitmod.fit_catenary(xyz[sidx], a_xy, b_xy, **kw)
+                sub.fit = _with_station_uncertainty(
+                    fitmod.fit_catenary(xyz[sidx], a_xy, b_xy, **kw), stations)
                 sub.horizontal_tension_n, sub.horizontal_tension_ci95_n = _tension(sub.fit,
                                                                                    unit_w)
             w.sub_conductors.append(sub)
