@@ -1161,10 +1161,20 @@ def _truth(params, seed, crs_obj, unit, unit_m, origin, ground, structures, layo
         ruling = float(np.sqrt(np.sum(L**3) / np.sum(L)))
         w_ph = next((w.unit_weight_n_per_m for w in wires if w.role == "phase"), None)
         w_sh = next((w.unit_weight_n_per_m for w in wires if w.role == "shield"), None)
+        # Ruling span of the conductors themselves (horizontal distance between attachment
+        # points, i.e. without dead-end strain strings), per role: what the change of state uses.
+        by_role = {}
+        for role in ("phase", "shield"):
+            lr = np.array([np.mean([w.span_length_m for w in wires
+                                    if w.role == role and w.span_index == j] or [np.nan])
+                           for j in spans])
+            if np.all(np.isfinite(lr)):
+                by_role[role] = float(np.sqrt(np.sum(lr**3) / np.sum(lr)))
         sec_records.append({
             "id": f"TS{k + 1}", "span_ids": [span_ids[j] for j in spans],
             "structures": [structures[spans[0]].id, structures[spans[-1] + 1].id],
-            "ruling_span_m": ruling, "horizontal_tension_n": dict(tensions[k]),
+            "ruling_span_m": ruling, "ruling_span_by_role_m": by_role,
+            "horizontal_tension_n": dict(tensions[k]),
             "catenary_constant_m": {"phase": tensions[k]["phase"] / w_ph,
                                     **({"shield": tensions[k]["shield"] / w_sh} if w_sh else {})},
         })
