@@ -37,6 +37,11 @@ def scene():
     tree[:, 2] = z100 - 0.8 - np.abs(rng.normal(0, 0.5, 200))  # crown top 0.8 m under wire
     roof = np.column_stack([rng.uniform(220, 230, 300), rng.uniform(-4, 4, 300),
                             np.full(300, low_z + 2.0 - 4.0)])  # 4 m under the wire there
+    # Walls under the eaves, 1.6 m or more below the roof: the same building.
+    wall_x, wall_z = np.meshgrid(np.arange(220.0, 230.0, 0.5), np.arange(0.0, 3.0, 0.5))
+    walls = np.column_stack([np.tile(wall_x.ravel(), 2), np.repeat([-4.2, 4.2], wall_x.size),
+                             np.tile(low_z + 2.0 - 4.0 - 1.6 - wall_z.ravel(), 2)])
+    roof = np.concatenate([roof, walls])
     other = np.column_stack([np.full(60, 60.0), np.linspace(-15, 15, 60),
                              np.full(60, float(np.interp(60.0, wire_curve[:, 0],
                                                          wire_curve[:, 2])) - 1.0)])
@@ -134,3 +139,18 @@ def test_bad_options():
     with pytest.raises(ValueError):
         AuditOptions(growth_rate_m_per_year=0.0)
     assert math.isfinite(AuditOptions().link_m)
+
+
+def test_one_building_is_one_obstacle(scene):
+    # "Points are grouped into obstacles (one tree, one roof, one patch of ground), and each
+    # obstacle gives one violation per condition": the roof and its walls are one building.
+    rows = [r for r in scene.result.violations if r["kind"] == "building"]
+    assert len({r["obstacle_id"] for r in rows}) == 1
+    assert len(rows) == len({r["condition"] for r in rows})
+    for r in rows:
+        # The governing direction is named in the row and in the reason, with both moves.
+        assert r["direction"] in r["reason"]
+        assert r["deficit_m"] == pytest.approx(min(r["deficit_vertical_m"],
+                                                   r["deficit_horizontal_m"]))
+        req = scene.rules.required("building", "phase", 230.0, key=r["direction"]).value_m
+        assert r["required_m"] == pytest.approx(req)

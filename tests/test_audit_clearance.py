@@ -11,7 +11,10 @@ from scipy.spatial import cKDTree
 
 from clearaudit.audit.clearance import (
     Findings,
+    building_envelope,
+    clearing_shift,
     group_obstacles,
+    points_near_curves,
     polyline_distance,
     polyline_overhead,
     radial_findings,
@@ -114,3 +117,83 @@ def test_bad_arguments():
         polyline_distance(np.zeros((1, 3)), np.zeros((1, 3)))
     with pytest.raises(ValueError):
         group_obstacles(np.zeros((2, 3)), link_m=0.0)
+
+
+def test_group_obstacles_without_cap_and_thinned_is_a_coarsening():
+    # A 60 m long roof stays one obstacle without a cap; the voxel-thinned linkage never
+    # splits what exact single linkage (scipy.cluster.hierarchy, the reference) joins.
+    rng = np.random.default_rng(3)
+    roof = np.column_stack([rng.uniform(0, 60, 3000), rng.uniform(0, 10, 3000),
+                            np.full(3000, 8.0)])
+    assert len(np.unique(group_obstacles(roof, 1.5, None))) == 1
+    pts = np.concatenate([c + rng.normal(0, 0.5, (80, 3)) for c in rng.uniform(0, 80, (8, 3))])
+    ref = fcluster(linkage(pts, method="single"), t=1.5, criterion="distance")
+    thin = group_obstacles(pts, 1.5, None, thin_m=0.5)
+    same_ref = ref[:, None] == ref[None, :]
+    same = thin[:, None] == thin[None, :]
+    assert np.all(same[same_ref])
+
+
+def test_points_near_curves_is_a_superset_of_the_exact_search():
+    # Reference: exact polyline distance of every point (brute force, no thinning).
+    curve, _, _, _ = catenary_curve(A, B, C, spacing_m=0.5)
+    rng = np.random.default_rng(11)
+    pts = np.column_stack([rng.uniform(-10, 310, 20000), rng.uniform(-20, 60, 20000),
+                           rng.uniform(10, 40, 20000)])
+    d, _, _ = polyline_distance(pts, curve)
+    got = points_near_curves(cKDTree(pts), [curve], 4.0, step_m=3.0)
+    exact = np.flatnonzero(d < 4.0)
+    assert set(exact.tolist()) <= set(got.tolist())
+    # ... and not much more: at most the thinning pad (half of 3 m) further out.
+    assert np.all(d[got] < 4.0 + 1.5 + 1e-9)
+
+
+def _brute_force_moves(points, curve, h, v):
+    """Smallest rise and smallest sideways shift of a rigid wire that empty the box envelope.
+
+    Reference by brute force over 1 mm steps (no closed form): the wire (a straight level
+    line here) is moved and every point re-tested with |offset| < h and |dz| < v.
+    """
+    y_wire, z_wire = curve[0, 1], curve[0, 2]
+
+    def inside(dy, dz):
+        return np.any((np.abs(points[:, 1] - (y_wire + dy)) < h)
+                      & (np.abs(points[:, 2] - (z_wire + dz)) < v))
+
+    steps = np.arange(0.0, 40.0, 0.001)
+    rise = next(s for s in steps if not inside(0.0, s))
+    shift = min(next(s for s in steps if not inside(s, 0.0)),
+                next(s for s in steps if not inside(-s, 0.0)))
+    return rise, shift
+
+
+@pytest.mark.parametrize("case", ["edge", "straddle", "beside"])
+def test_building_envelope_matches_brute_force_moves(case):
+    # A level wire along x at y = 0, z = 20; a box house 10 m wide (y), roof at 15-17 m.
+    curve = np.column_stack([np.linspace(-50, 50, 201), np.zeros(201), np.full(201, 20.0)])
+    gx, gy = np.meshgrid(np.linspace(-5, 5, 21), np.linspace(0, 10, 21))
+    roof_z = 17.0 - 0.2 * np.abs(gy - 5.0)                   # gable roof, ridge along x
+    y0 = {"edge": 3.0, "straddle": -5.0, "beside": -14.0}[case]
+    pts = np.column_stack([gx.ravel(), gy.ravel() + y0, roof_z.ravel()])
+    h, v = 3.48, 4.98
+    env = building_envelope(pts, curve, h, v)
+    rise, shift = _brute_force_moves(pts, curve, h, v)
+    if case == "beside":
+        assert not env["violated"]
+        return
+    assert env["violated"]
+    assert env["rise_m"] == pytest.approx(rise, abs=2e-3)
+    assert env["shift_m"] == pytest.approx(shift, abs=2e-3)
+
+
+def test_clearing_shift_hand_example():
+    # Offsets -1, 0.5 and 6 m, 2 m required: the block [-1, 0.5] must be passed on either
+    # side, 0.5 + 2 = 2.5 m to the left (but 6 - 2 = 4 > 2.5 is clear) or 2 + 1 = 3 m to the
+    # right: 2.5 m, set by the point at 0.5 m (hand calculation).
+    shift, j = clearing_shift(np.array([-1.0, 0.5, 6.0]), 2.0)
+    assert shift == pytest.approx(2.5) and j == 1
+    # Points 1 m apart in a row from 0 to 10: the block has no gap, so the shift is 2 m to
+    # the right (past the point at 0).
+    assert clearing_shift(np.arange(0.0, 10.5, 1.0), 2.0)[0] == pytest.approx(2.0)
+    # Nothing within 2 m: negative, the room left.
+    assert clearing_shift(np.array([3.0, -5.0]), 2.0)[0] == pytest.approx(-1.0)

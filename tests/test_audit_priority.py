@@ -90,3 +90,30 @@ def test_survey_temperature_heat_balance():
     survey.current_a = 800.0
     warm = survey_conductor_temperature(survey, conductor)
     assert warm["value_c"] > 25.0 and warm["ci95_c"] > 2.0
+
+
+def test_crowns_follow_the_trees_that_made_them():
+    # Reference: the generating tree of every point (synthetic truth). Two touching cones of
+    # different height and a wide 18 m crown that a fixed 15 m tile would have cut in two.
+    rng = np.random.default_rng(4)
+    trees = [(0.0, 0.0, 20.0, 4.0), (7.0, 0.0, 12.0, 4.0), (40.0, 0.0, 25.0, 9.0)]
+    parts = [_cone(rng, x, y, h, r, n=1500) for x, y, h, r in trees]
+    pts = np.concatenate(parts)
+    truth = np.repeat(np.arange(3), [len(p) for p in parts])
+    tops = find_tree_tops(pts, pts[:, 2])
+    assert len(tops) == 3
+    label = tops.tree_of(pts)
+    # Map each found tree to the generating tree under its top.
+    top_owner = np.array([truth[np.argmin(np.hypot(*(pts[:, :2] - xy).T))] for xy in tops.xy])
+    agree = top_owner[label[label >= 0]] == truth[label >= 0]
+    assert np.mean(agree) > 0.95
+    # The wide crown is one tree: every point of it that belongs to a tree has one label.
+    wide = label[(truth == 2) & (label >= 0)]
+    assert len(np.unique(wide)) == 1 and len(wide) > 0.95 * np.sum(truth == 2)
+
+
+def test_tree_of_points_off_the_grid_is_minus_one():
+    rng = np.random.default_rng(1)
+    pts = _cone(rng, 0.0, 0.0, 15.0, 3.0)
+    tops = find_tree_tops(pts, pts[:, 2])
+    assert list(tops.tree_of(np.array([[100.0, 100.0, 0.0], [-50.0, 3.0, 1.0]]))) == [-1, -1]

@@ -153,3 +153,25 @@ def test_bad_arguments(rules):
         rules.required("ground", "phase", -1.0)
     with pytest.raises(ValueError):
         rules.required("ground", "phase", 230.0, key="lava")
+
+
+def test_shield_wires_have_no_vegetation_requirement_unless_overridden():
+    # NERC FAC-003-4 minimum vegetation clearance distances are for energised conductors
+    # (from memory — verify); the rule set says so with a reason instead of a 0 m value.
+    rules = load_rule_set("na-transmission")
+    assert rules.applies("vegetation", "phase")
+    assert not rules.applies("vegetation", "shield")
+    assert "energised" in rules.not_applicable_reason("vegetation", "shield")
+    assert rules.applies("building", "shield")
+    over = load_rule_set("na-transmission", {"shield_vegetation_m": 0.5})
+    assert over.applies("vegetation", "shield")
+    assert over.required("vegetation", "shield", 230.0).value_m == 0.5
+
+
+def test_vegetation_applies_must_be_a_boolean(tmp_path):
+    text = resources.files("clearaudit").joinpath("data/rules/na-transmission.toml").read_text(
+        encoding="utf-8").replace("applies = false", 'applies = "no"')
+    path = tmp_path / "bad.toml"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(InputError, match="applies"):
+        load_rule_set(path)

@@ -6,18 +6,24 @@
 * **vertical** clearance to ground: for ground points within ``lateral_m`` horizontally of the
   wire, the wire's height above the point where the wire passes over it;
 * **buildings**: a box envelope — a point violates when it is closer than the horizontal
-  requirement sideways *and* closer than the vertical requirement above/below the wire; the
-  deficit is the smaller move that clears it.
+  requirement sideways *and* closer than the vertical requirement above/below the wire. A
+  violated building's deficit is the smaller of two whole-building moves of the wire: the rise
+  that clears every point within the horizontal requirement, and the sideways shift that
+  clears every point within the vertical requirement (:func:`building_envelope`).
 
 Candidates are found with one :class:`scipy.spatial.cKDTree` per obstacle group (built once over
-the corridor points of that group), queried with every curve's samples. Violating points are then
-grouped into obstacles (single linkage at ``link_m``; components longer than ``max_extent_m`` are
-cut into tiles of that size), and each obstacle gives one finding per condition: its point
-nearest to violating, with clearance, requirement and deficit.
+the corridor points of that group), queried with a thinned copy of the curve samples
+(:func:`points_near_curves`, radius padded by half the thinned spacing so no candidate is lost).
+Points are grouped into obstacles by the engine (one building, one tree crown, one patch of
+ground, one crossing wire); :func:`group_obstacles` is the single-linkage grouping used for
+buildings (no extent cap) and for vegetation and ground patches that belong to no tree (cut into
+tiles a crew can find).
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from itertools import chain
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -26,9 +32,14 @@ from scipy.spatial import cKDTree
 
 __all__ = [
     "Findings",
+    "building_envelope",
+    "clearing_shift",
     "group_obstacles",
+    "points_near_curves",
     "polyline_distance",
+    "polyline_offsets",
     "polyline_overhead",
+    "radial_findings",
     "reduce_findings",
 ]
 
@@ -101,6 +112,44 @@ def polyline_distance(points: np.ndarray, polyline: np.ndarray,
     return _nearest_segment(pts, poly, tree)
 
 
+def polyline_offsets(points: np.ndarray, polyline: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Where a polyline passes over points: signed horizontal offset and the wire's height.
+
+    Parameters
+    ----------
+    points
+        Shape (n, 3). [m]
+    polyline
+        Vertices, shape (k, 3), k >= 2. [m]
+
+    Returns
+    -------
+    offset : (n,) signed horizontal distance from the polyline's plan to the point, positive
+        to the left of the direction from the first to the last vertex. [m]
+    wire_z : (n,) height of the polyline at the nearest plan position. [m]
+    parameter : (n,) vertex index plus fraction (0 .. k-1). [-]
+
+    Notes
+    -----
+    The sign is that of the cross product :math:`d_x (p_y - c_y) - d_y (p_x - c_x)` of the
+    nearest segment's direction :math:`d` and the vector from the nearest plan point :math:`c`
+    to the point :math:`p`.
+    """
+    pts = np.asarray(points, dtype=float).reshape(-1, 3)
+    poly = _segments(polyline)
+    if len(pts) == 0:
+        return np.zeros(0), np.zeros(0), np.zeros(0)
+    lateral, closest, param = _nearest_segment(pts[:, :2], poly[:, :2], None)
+    i0 = np.clip(np.floor(param).astype(int), 0, len(poly) - 2)
+    t = param - i0
+    wire_z = poly[i0, 2] + t * (poly[i0 + 1, 2] - poly[i0, 2])
+    d = poly[i0 + 1, :2] - poly[i0, :2]
+    rel = pts[:, :2] - closest
+    cross = d[:, 0] * rel[:, 1] - d[:, 1] * rel[:, 0]
+    return np.where(cross < 0, -lateral, lateral), wire_z, param
+
+
 def polyline_overhead(points: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree | None = None
                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Where a polyline passes over points: horizontal offset and the wire's height there.
@@ -131,9 +180,62 @@ def polyline_overhead(points: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree
     return lateral, wire_z, param
 
 
-def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float = 15.0
-                    ) -> np.ndarray:
-    """Group points into obstacles (single linkage), cutting long groups into tiles.
+def points_near_curves(tree: cKDTree, curves: list[np.ndarray], radius_m: float, *,
+                       two_d: bool = False, step_m: float = 2.0) -> np.ndarray:
+    """Indices of the tree's points within ``radius_m`` of any curve (a superset).
+
+    Parameters
+    ----------
+    tree
+        k-d tree of the obstacle points (3-D, or xy when ``two_d``).
+    curves
+        Densely sampled curves, each (k, 3). [m]
+    radius_m
+        Search distance from the curves. [m]
+    two_d
+        Search in plan (the tree holds xy).
+    step_m
+        Spacing of the thinned samples the tree is queried with. [m]
+
+    Returns
+    -------
+    index : sorted unique int64 indices into the tree's points.
+
+    Notes
+    -----
+    The curves are thinned to samples at most :math:`s` = ``step_m`` apart along each polyline;
+    a point within :math:`r` of the polyline lies within :math:`r + s/2` of a thinned sample,
+    so querying with that radius loses no candidate while each point is returned only a few
+    times (instead of once per dense sample).
+    """
+    if radius_m <= 0 or tree is None or tree.n == 0 or not curves:
+        return np.zeros(0, dtype=np.int64)
+    thinned, pad = [], 0.0
+    for curve in curves:
+        c = np.asarray(curve, dtype=float)
+        if len(c) == 0:
+            continue
+        seg = np.linalg.norm(np.diff(c, axis=0), axis=1) if len(c) > 1 else np.zeros(0)
+        along = np.concatenate([[0.0], np.cumsum(seg)])
+        total = float(along[-1])
+        n = max(2, int(np.ceil(total / step_m)) + 1)
+        at = np.linspace(0.0, total, n) if total > 0 else np.zeros(1)
+        thinned.append(np.column_stack([np.interp(at, along, c[:, j]) for j in range(3)]))
+        if total > 0:
+            pad = max(pad, 0.5 * total / (n - 1))
+    if not thinned:
+        return np.zeros(0, dtype=np.int64)
+    queries = np.concatenate(thinned)
+    if two_d:
+        queries = queries[:, :2]
+    hits = tree.query_ball_point(queries, radius_m + pad + 1e-9, return_sorted=False)
+    flat = np.fromiter(chain.from_iterable(hits), dtype=np.int64)
+    return np.unique(flat)
+
+
+def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | None = 15.0,
+                    *, thin_m: float | None = None) -> np.ndarray:
+    """Group points into obstacles (single linkage), optionally cutting long groups into tiles.
 
     Parameters
     ----------
@@ -143,7 +245,12 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float = 
         Two points closer than this belong to the same obstacle. [m]
     max_extent_m
         Groups whose horizontal extent exceeds this are cut into ``max_extent_m`` square tiles
-        (a hedge row or a forest edge becomes several obstacles a crew can find). [m]
+        (a hedge row or a forest edge becomes several obstacles a crew can find); ``None``:
+        never cut (one building is one obstacle however long). [m]
+    thin_m
+        Dense clouds: link the first point of every ``thin_m`` voxel instead of every point,
+        with the link distance widened by the voxel diagonal so no link is lost (groups may
+        join points up to ``link_m + 2 sqrt(3) thin_m`` apart). ``None``: exact. [m]
 
     Returns
     -------
@@ -151,13 +258,23 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float = 
     """
     pts = np.asarray(xyz, dtype=float).reshape(-1, 3)
     n = len(pts)
+    if not link_m > 0 or not (max_extent_m is None or max_extent_m > 0) or \
+            not (thin_m is None or thin_m > 0):
+        raise ValueError("The link distance, the largest extent and the voxel size must be "
+                         "positive.")
     if n == 0:
         return np.zeros(0, dtype=int)
-    if not link_m > 0 or not max_extent_m > 0:
-        raise ValueError("The link distance and the largest extent must be positive.")
-    pairs = cKDTree(pts).query_pairs(link_m, output_type="ndarray")
-    graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
-    _, labels = connected_components(graph, directed=False)
+    if thin_m is not None:
+        vox = np.floor((pts - pts.min(axis=0)) / thin_m).astype(np.int64)
+        _, first, rep_of = np.unique(vox, axis=0, return_index=True, return_inverse=True)
+        rep_labels = group_obstacles(pts[first], link_m + 2.0 * math.sqrt(3.0) * thin_m, None)
+        labels = rep_labels[rep_of.reshape(-1)]
+    else:
+        pairs = cKDTree(pts).query_pairs(link_m, output_type="ndarray")
+        graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+        _, labels = connected_components(graph, directed=False)
+    if max_extent_m is None:
+        return labels
     lo = np.full((labels.max() + 1, 2), np.inf)
     hi = np.full((labels.max() + 1, 2), -np.inf)
     np.minimum.at(lo, labels, pts[:, :2])
@@ -170,6 +287,100 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float = 
         _, labels = np.unique(key, axis=0, return_inverse=True)
         labels = labels.reshape(-1)
     return labels
+
+
+def clearing_shift(offsets: np.ndarray, half_width_m: float) -> tuple[float, int]:
+    r"""Smallest sideways shift of a wire that clears every point by ``half_width_m``.
+
+    Parameters
+    ----------
+    offsets
+        Signed horizontal offsets of the points from the wire (positive: left). [m]
+    half_width_m
+        Horizontal clearance required. [m]
+
+    Returns
+    -------
+    shift : the smallest shift (either side) after which every point is at least
+        ``half_width_m`` away; negative when no point is within ``half_width_m``: minus the
+        distance the wire could move before the nearest point is. [m]
+    index : the point that sets the shift (the last point cleared, or the nearest one).
+
+    Notes
+    -----
+    The forbidden wire positions are the union of the intervals
+    :math:`(o_i - h, o_i + h)`. Sorted offsets whose gaps are shorter than :math:`2h` form
+    one connected block; if the block :math:`[o_{lo}, o_{hi}]` covers 0 the shift is
+    :math:`\min(o_{hi} + h, h - o_{lo})`.
+    """
+    o = np.asarray(offsets, dtype=float).reshape(-1)
+    if o.size == 0:
+        return -math.inf, -1
+    h = float(half_width_m)
+    order = np.argsort(o)
+    so = o[order]
+    nearest = int(np.argmin(np.abs(so)))
+    if abs(so[nearest]) >= h:
+        return float(h - abs(so[nearest])), int(order[nearest])
+    block = np.concatenate([[0], np.cumsum(np.diff(so) >= 2.0 * h)])
+    members = np.flatnonzero(block == block[nearest])
+    lo, hi = members[0], members[-1]
+    to_left = so[hi] + h       # shift towards positive offsets, past the block's last point
+    to_right = h - so[lo]      # shift towards negative offsets, past its first point
+    if to_left <= to_right:
+        return float(to_left), int(order[hi])
+    return float(to_right), int(order[lo])
+
+
+def building_envelope(points: np.ndarray, curve: np.ndarray, horizontal_m: float,
+                      vertical_m: float) -> dict:
+    r"""Box-envelope clearance of one building to one wire curve.
+
+    Parameters
+    ----------
+    points
+        Every point of the building, shape (n, 3). [m]
+    curve
+        The wire's sampled curve, shape (k, 3). [m]
+    horizontal_m, vertical_m
+        Horizontal and vertical requirement. [m]
+
+    Returns
+    -------
+    dict
+        ``violated`` (some point is inside the box envelope), ``rise_m`` (the wire's rise that
+        clears every point within ``horizontal_m`` sideways; negative: the vertical margin),
+        ``rise_point``, ``shift_m`` (the sideways shift that clears every point within
+        ``vertical_m`` above/below; negative: the horizontal margin), ``shift_point``, and the
+        per-point ``offset`` [m], ``wire_z`` [m] and ``parameter`` [-].
+
+    Notes
+    -----
+    A point :math:`i` violates when :math:`|o_i| < h` and :math:`|z_w - z_i| < v`. Raising the
+    wire by :math:`\delta_v = \max_{|o_i| < h}(z_i + v - z_w)` clears every point sideways
+    closer than :math:`h`; shifting it by :math:`\delta_h` from :func:`clearing_shift` over the
+    points with :math:`|z_w - z_i| < v` clears the rest. The building's deficit is
+    :math:`\min(\delta_v, \delta_h)` and the governing direction the one that needs the
+    smaller move (the wire is moved rigidly, its shape unchanged).
+    """
+    pts = np.asarray(points, dtype=float).reshape(-1, 3)
+    offset, wire_z, param = polyline_offsets(pts, curve)
+    h, v = float(horizontal_m), float(vertical_m)
+    side = np.abs(offset) < h
+    band = np.abs(wire_z - pts[:, 2]) < v
+    out = {"violated": bool(np.any(side & band)), "offset": offset, "wire_z": wire_z,
+           "parameter": param}
+    if np.any(side):
+        need = pts[:, 2] + v - wire_z
+        cand = np.flatnonzero(side)
+        j = cand[int(np.argmax(need[cand]))]
+        out["rise_m"], out["rise_point"] = float(need[j]), int(j)
+    else:
+        out["rise_m"], out["rise_point"] = -math.inf, -1
+    cand = np.flatnonzero(band)
+    shift, k = clearing_shift(offset[cand], h)
+    out["shift_m"], out["shift_point"] = shift, (int(cand[k]) if k >= 0 else -1)
+    return out
 
 
 @dataclass
@@ -190,6 +401,9 @@ class Findings:
         Position of the nearest wire point along the span, 0..1. [-]
     key
         Ground surface / building direction / ``value`` / ``any``.
+    other_deficit_m
+        Buildings: the deficit in the other direction (the move that is not governing); NaN
+        for other kinds. ``None``: all NaN. [m]
     """
 
     point: np.ndarray
@@ -200,6 +414,11 @@ class Findings:
     ci95_m: np.ndarray
     fraction: np.ndarray
     key: np.ndarray
+    other_deficit_m: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.other_deficit_m is None:
+            self.other_deficit_m = np.full(len(self.point), np.nan)
 
     @property
     def deficit_m(self) -> np.ndarray:
@@ -218,12 +437,12 @@ class Findings:
             return cls.empty()
         return cls(*(np.concatenate([getattr(p, f) for p in parts]) for f in (
             "point", "state", "condition", "clearance_m", "required_m", "ci95_m", "fraction",
-            "key")))
+            "key", "other_deficit_m")))
 
     def select(self, mask: np.ndarray) -> Findings:
         return Findings(self.point[mask], self.state[mask], self.condition[mask],
                         self.clearance_m[mask], self.required_m[mask], self.ci95_m[mask],
-                        self.fraction[mask], self.key[mask])
+                        self.fraction[mask], self.key[mask], self.other_deficit_m[mask])
 
 
 def reduce_findings(findings: Findings, groups: np.ndarray, labels: np.ndarray
@@ -283,8 +502,7 @@ def radial_findings(points: np.ndarray, tree: cKDTree, curve: np.ndarray,
     if radius <= 0 or len(points) == 0:
         empty = np.zeros(0)
         return empty.astype(int), empty, empty, empty
-    hits = tree.query_ball_point(curve, radius, return_sorted=False)
-    idx = np.unique(np.fromiter((i for lst in hits for i in lst), dtype=np.int64))
+    idx = points_near_curves(tree, [curve], radius)
     if idx.size == 0:
         empty = np.zeros(0)
         return empty.astype(int), empty, empty, empty

@@ -454,10 +454,14 @@ def project_conditions(model: Any, conductors: dict[str, Any], specs: dict[str, 
             rs = ruling_span([f.span_length_m for f in fits])
         ts = specs["survey"].temperature_c
         dt = max(float(survey_temperature_ci95_c), 0.0)
+        # The change of state depends only on the section's ruling span, the wire's survey
+        # tension and the final load and temperature: solve it once per wire and section for
+        # every distinct load (both wind sides share one), not once per span.
+        cache: dict[tuple[float, float], Any] = {}
         for span, wire in members:
             states.append(_wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci,
                                       ts, dt, model, spans, insulator_length_m, creep_shift_c,
-                                      spacing_m, conductors[role]))
+                                      spacing_m, conductors[role], cache))
     order = {(s.id, w.wire_id): i for i, s in enumerate(model.spans)
              for w in s.wires}
     states.sort(key=lambda st: (order.get((st.span_id, st.wire_id), 0),
@@ -473,7 +477,8 @@ def _is_suspension(model, structure_id) -> bool:
 
 
 def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt, model, spans,
-                insulator_length_m, creep_shift_c, spacing_m, conductor) -> WireState:
+                insulator_length_m, creep_shift_c, spacing_m, conductor,
+                cache: dict | None = None) -> WireState:
     fit = wire.fit
     w = mech.weight_n_per_m
     state = WireState(span.id, wire.wire_id, wire.role, section_id,
@@ -501,11 +506,19 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
                   if spec.wind_pressure_pa else 0.0)
         vertical = w + ice_w
         w_final = math.hypot(vertical, wind_f)
-        try:
-            h_final = mech.final_tension(rs, h_var, w, t_var, w_final, t_final,
-                                         creep_shift=creep_shift_c)
-        except ValueError as exc:
-            state.notes.append(f"{name}: change of state failed ({exc})")
+        load = (float(w_final), float(t_final))
+        if cache is not None and load in cache:
+            h_final = cache[load]
+        else:
+            try:
+                h_final = mech.final_tension(rs, h_var, w, t_var, w_final, t_final,
+                                             creep_shift=creep_shift_c)
+            except ValueError as exc:
+                h_final = exc
+            if cache is not None:
+                cache[load] = h_final
+        if isinstance(h_final, ValueError):
+            state.notes.append(f"{name}: change of state failed ({h_final})")
             continue
         angle = math.atan2(wind_f, vertical)
         side = spec.side

@@ -5,11 +5,13 @@ Order of work:
 1. conductor temperature at survey time (:mod:`.temperature`);
 2. conditions: every fitted wire's curve at survey, MOT, wind (both sides) and ice
    (:mod:`.conditions`);
-3. the corridor: classified points within reach of any curve, one k-d tree per obstacle group
-   (vegetation, buildings, ground surfaces, other wires);
-4. clearances per wire and condition (:mod:`.clearance`), obstacles, one finding per obstacle per
-   condition group;
-5. trees, fall-in risk, grow-in time and priorities (:mod:`.priority`);
+3. the corridor: classified points within reach of any curve (a plan grid, then one k-d tree
+   of the thinned curves), one k-d tree per obstacle group (vegetation, buildings, ground
+   surfaces, other wires), built once; obstacles: buildings as connected footprints, trees as
+   crowns (:func:`.priority.find_tree_tops`), crossing wires by wire;
+4. clearances per wire and condition (:mod:`.clearance`; candidates per wire from the thinned
+   curves, exact distances per condition), one finding per obstacle per condition group;
+5. fall-in risk of every tree, grow-in time and priorities (:mod:`.priority`);
 6. span rows, curves for the model file and ground profiles.
 """
 from __future__ import annotations
@@ -33,13 +35,16 @@ from clearaudit.errors import InputError
 
 from .clearance import (
     Findings,
+    building_envelope,
     group_obstacles,
+    points_near_curves,
+    polyline_distance,
+    polyline_offsets,
     polyline_overhead,
-    radial_findings,
     reduce_findings,
 )
 from .conditions import CONDITION_GROUP, WireState, project_conditions, resolve_conditions
-from .priority import fall_in_distance, find_tree_tops, rank_findings
+from .priority import find_tree_tops, rank_findings
 from .temperature import survey_conductor_temperature
 
 __all__ = ["AuditOptions", "AuditResult", "audit_line", "default_insulator_length_m"]
@@ -59,9 +64,21 @@ class AuditOptions:
     ground_lateral_m
         Ground points within this horizontal distance of a wire's plan count as "under" it. [m]
     link_m
-        Violating points closer than this form one obstacle. [m]
+        Violating vegetation points outside any tree crown that are closer than this form one
+        obstacle (low vegetation, hedges). [m]
     max_obstacle_extent_m
-        Longer obstacles are cut into tiles of this size. [m]
+        Such vegetation obstacles longer than this are cut into tiles of this size. [m]
+    building_link_m
+        Building points closer than this in plan belong to one building (never cut). [m]
+    building_context_m
+        Building points this far beyond the search buffer are kept, so a building reaching
+        into the corridor is grouped whole. [m]
+    ground_link_m
+        Violating ground points closer than this in plan form one patch. [m]
+    ground_patch_m
+        Longer ground patches are cut into pieces of this size. [m]
+    tree_window_m
+        Window in which a tree top is the highest canopy cell (crowns, fall-in). [m]
     search_margin_m
         Extra search distance beyond each requirement (room for the uncertainty). [m]
     growth_rate_m_per_year
@@ -88,6 +105,11 @@ class AuditOptions:
     ground_lateral_m: float = 1.0
     link_m: float = 1.5
     max_obstacle_extent_m: float = 15.0
+    building_link_m: float = 1.5
+    building_context_m: float = 20.0
+    ground_link_m: float = 3.0
+    ground_patch_m: float = 30.0
+    tree_window_m: float = 5.0
     search_margin_m: float = 1.0
     growth_rate_m_per_year: float = 0.5
     fall_in: bool = True
@@ -100,7 +122,8 @@ class AuditOptions:
 
     def __post_init__(self) -> None:
         for name in ("spacing_m", "ground_lateral_m", "link_m", "max_obstacle_extent_m",
-                     "growth_rate_m_per_year", "fall_in_buffer_m"):
+                     "building_link_m", "building_context_m", "ground_link_m", "ground_patch_m",
+                     "tree_window_m", "growth_rate_m_per_year", "fall_in_buffer_m"):
             value = getattr(self, name)
             if not (isinstance(value, (int, float)) and value > 0 and math.isfinite(value)):
                 raise ValueError(f"The audit option {name} must be a positive number.")
@@ -310,89 +333,113 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
                                      ("vegetation", "building", "ground", "wire")}
     ground_min: dict[tuple[int, str], float] = {}
     groups: dict[str, _Group] = {}
+    labels: dict[str, np.ndarray] = {}
+    tops = None
+    trees_info = {"trees": 0, "fall_in_trees": 0}
     if all_samples:
-        samples = np.concatenate(all_samples)
-        samples_tree = cKDTree(samples[:, :2])
-        groups["vegetation"] = _group(xyz, np.isin(classes, VEGETATION_CLASSES), "vegetation",
-                                      samples_tree, buffer_m)
-        groups["building"] = _group(xyz, classes == BUILDING, "building", samples_tree, buffer_m)
-        groups["ground"] = _group(xyz, is_ground, "ground", samples_tree,
-                                  opts.ground_lateral_m + 1.0, two_d=True)
-        other = np.zeros(cloud.n_points, dtype=bool)
-        for ow in getattr(model, "other_wires", []) or []:
-            other[np.asarray(ow.point_indices, dtype=np.int64)] = True
-        groups["wire"] = _group(xyz, other, "wire", samples_tree, buffer_m)
+        plan_tree, pad = _plan_samples(all_samples)
+        is_veg = np.isin(classes, VEGETATION_CLASSES)
+        context_m = (max(opts.fall_in_buffer_m, buffer_m) if opts.fall_in
+                     else buffer_m + opts.tree_window_m)
+        veg_ctx = _near_plan(xyz, is_veg, plan_tree, context_m + pad)
+        veg_ctx_d = veg_ctx[1]
+        veg_ctx = veg_ctx[0]
+        corridor = veg_ctx_d <= buffer_m + pad
+        groups["vegetation"] = _make_group("vegetation", xyz, veg_ctx[corridor])
+        building_idx, building_d = _near_plan(xyz, classes == BUILDING, plan_tree,
+                                              buffer_m + opts.building_context_m + pad)
+        groups["building"] = _make_group("building", xyz, building_idx, two_d=True)
+        ground_idx, _ = _near_plan(xyz, is_ground, plan_tree, opts.ground_lateral_m + 1.0 + pad)
+        groups["ground"] = _make_group("ground", xyz, ground_idx, two_d=True)
+        other = np.full(cloud.n_points, -1, dtype=np.int64)
+        for k, ow in enumerate(getattr(model, "other_wires", []) or []):
+            other[np.asarray(ow.point_indices, dtype=np.int64)] = k
+        wire_idx, _ = _near_plan(xyz, other >= 0, plan_tree, buffer_m + pad)
+        groups["wire"] = _make_group("wire", xyz, wire_idx)
+
+        # ---- obstacles: one building, one tree crown, one crossing wire
+        g = groups["building"]
+        # One building = one connected footprint in plan (walls under the eaves, roof planes
+        # and chimneys join however they are spaced vertically), never cut.
+        labels["building"] = group_obstacles(
+            np.column_stack([g.xyz[:, :2], np.zeros(len(g.xyz))]), opts.building_link_m, None,
+            thin_m=opts.building_link_m / 3.0 if len(g.xyz) > 50_000 else None)
+        labels["wire"] = other[groups["wire"].index]
+        heights = hag[veg_ctx]
+        if not np.all(np.isfinite(heights)) and ground_model is not None:
+            missing = ~np.isfinite(heights)
+            heights = heights.copy()
+            heights[missing] = xyz[veg_ctx[missing], 2] - ground_model.height_at(
+                xyz[veg_ctx[missing], :2])
+        tops = find_tree_tops(xyz[veg_ctx], heights, window_m=opts.tree_window_m,
+                              min_height_m=opts.min_tree_height_m)
+        labels["vegetation"] = tops.tree_of(groups["vegetation"].xyz)
+        by_label = _members(labels["building"])
+
+        ground_req_by_class = {role: np.array([rules.required(
+            "ground", role, voltage, key=rules.surface_of_class(c)
+            if rules.surface_of_class(c) in rules.ground[role] else "land").value_m
+            for c in range(256)]) for role in {st.role for st in states}}
         surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
 
         for i, st in enumerate(states):
+            applies = {kind: rules.applies(kind, st.role) for kind in ("vegetation", "wire")}
             req = {kind: rules.required(kind, st.role, voltage, altitude_m=altitude).value_m
                    for kind in ("vegetation", "wire")}
-            ground_req = {key: rules.required("ground", st.role, voltage, key=key).value_m
-                          for key in rules.ground[st.role]}
             b_v = rules.required("building", st.role, voltage, key="vertical").value_m
             b_h = rules.required("building", st.role, voltage, key="horizontal").value_m
+            conds = list(st.curves)
+            ci_of = {c: st.position_ci95(c, st.fractions[c]) for c in conds}
+            margin = opts.search_margin_m + max(float(np.max(ci_of[c])) for c in conds)
+            curves = [st.curves[c] for c in conds]
+            cand = {}
+            for kind in ("vegetation", "wire"):
+                g = groups[kind]
+                cand[kind] = (points_near_curves(g.tree, curves, req[kind] + margin)
+                              if applies[kind] and g.tree is not None
+                              else np.zeros(0, dtype=np.int64))
+            cand["building"] = points_near_curves(groups["building"].tree, curves,
+                                                  b_h + margin, two_d=True)
             parts: dict[str, list[Findings]] = {k: [] for k in findings}
             for cond, curve in st.curves.items():
                 frac = st.fractions[cond]
-                ci_along = st.position_ci95(cond, frac)
-                margin = opts.search_margin_m + float(np.max(ci_along))
+                ci_along = ci_of[cond]
                 for kind in ("vegetation", "wire"):
-                    g = groups[kind]
-                    if g.tree is None:
-                        continue
-                    idx, d, ci, fr = radial_findings(g.xyz, g.tree, curve, frac, req[kind],
-                                                     ci_along, margin)
+                    idx = cand[kind]
                     if idx.size:
-                        parts[kind].append(_findings(idx, i, cond, d, req[kind], ci, fr, "any"
-                                                     if kind == "wire" else "value"))
-                # buildings: box envelope
-                g = groups["building"]
-                if g.tree is not None:
-                    hits = g.tree.query_ball_point(curve, math.hypot(b_h, b_v) + margin,
-                                                   return_sorted=False)
-                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
-                    if idx.size:
-                        lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
-                        d_v = np.abs(wire_z - g.xyz[idx, 2])
-                        ci = np.interp(param, np.arange(len(curve)), ci_along)
-                        fr = np.interp(param, np.arange(len(curve)), frac)
-                        keep = (lateral < b_h) & (d_v - ci < b_v)
-                        vertical = (b_v - d_v) <= (b_h - lateral)
-                        clearance = np.where(vertical, d_v, lateral)
-                        required = np.where(vertical, b_v, b_h)
-                        ci = np.where(vertical, ci, 0.0)
-                        key = np.where(vertical, "vertical", "horizontal").astype(object)
-                        if np.any(keep):
-                            parts["building"].append(Findings(
-                                idx[keep], np.full(int(keep.sum()), i), np.full(
-                                    int(keep.sum()), cond, dtype=object), clearance[keep],
-                                required[keep], ci[keep], fr[keep], key[keep]))
+                        f = _radial(groups[kind].xyz, idx, i, cond, curve, frac, ci_along,
+                                    req[kind], "any" if kind == "wire" else "value")
+                        if len(f.point):
+                            parts[kind].append(f)
+                if cand["building"].size:
+                    f = _building(groups["building"].xyz, cand["building"], labels["building"],
+                                  by_label, i, cond, curve, frac, ci_along, b_h, b_v)
+                    if len(f.point):
+                        parts["building"].append(f)
                 # ground: vertical clearance under the wire
                 g = groups["ground"]
-                if g.tree is not None:
-                    hits = g.tree.query_ball_point(curve[:, :2], opts.ground_lateral_m,
-                                                   return_sorted=False)
-                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
-                    model_min = _ground_model_clearance(ground_model, curve)
-                    if idx.size:
-                        lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
-                        near = lateral <= opts.ground_lateral_m
-                        idx, wire_z, param = idx[near], wire_z[near], param[near]
-                        dz = wire_z - g.xyz[idx, 2]
-                        point_min = float(np.min(dz)) if dz.size else math.inf
-                        ground_min[(i, cond)] = min(point_min, model_min)
-                        surf = surface_lookup[classes[g.index[idx]]]
-                        required = np.array([ground_req.get(s, ground_req["land"]) for s in surf])
-                        ci = np.interp(param, np.arange(len(curve)), ci_along)
-                        fr = np.interp(param, np.arange(len(curve)), frac)
-                        keep = dz - ci < required
-                        if np.any(keep):
-                            parts["ground"].append(Findings(
-                                idx[keep], np.full(int(keep.sum()), i),
-                                np.full(int(keep.sum()), cond, dtype=object), dz[keep],
-                                required[keep], ci[keep], fr[keep], surf[keep]))
-                    elif math.isfinite(model_min):
-                        ground_min[(i, cond)] = model_min
+                idx = points_near_curves(g.tree, [curve], opts.ground_lateral_m, two_d=True,
+                                         step_m=1.0)
+                model_min = _ground_model_clearance(ground_model, curve)
+                if idx.size:
+                    lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
+                    near = lateral <= opts.ground_lateral_m
+                    idx, wire_z, param = idx[near], wire_z[near], param[near]
+                    dz = wire_z - g.xyz[idx, 2]
+                    point_min = float(np.min(dz)) if dz.size else math.inf
+                    ground_min[(i, cond)] = min(point_min, model_min)
+                    cls_here = classes[g.index[idx]]
+                    required = ground_req_by_class[st.role][cls_here]
+                    ci = np.interp(param, np.arange(len(curve)), ci_along)
+                    keep = dz - ci < required
+                    if np.any(keep):
+                        fr = np.interp(param[keep], np.arange(len(curve)), frac)
+                        m = int(keep.sum())
+                        parts["ground"].append(Findings(
+                            idx[keep], np.full(m, i), np.full(m, cond, dtype=object), dz[keep],
+                            required[keep], ci[keep], fr, surface_lookup[cls_here[keep]]))
+                elif math.isfinite(model_min):
+                    ground_min[(i, cond)] = model_min
             for kind in findings:
                 findings[kind] = Findings.concat([findings[kind], *parts[kind]])
             if progress is not None:
@@ -401,13 +448,14 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
     # ---- 4. obstacles and rows
     rows: list[dict] = []
     for kind, f in findings.items():
-        rows.extend(_obstacle_rows(kind, f, groups.get(kind), states, opts))
+        rows.extend(_obstacle_rows(kind, f, groups.get(kind), states, opts,
+                                   labels=labels.get(kind)))
 
     # ---- 5. trees, fall-in, priorities
-    trees_info = {"trees": 0, "fall_in_trees": 0}
-    if opts.fall_in and states:
-        _fall_in(rows, xyz, classes, hag, states, rules, voltage, altitude, opts, trees_info,
-                 ground_model)
+    if tops is not None:
+        trees_info["trees"] = len(tops)
+        if opts.fall_in and states:
+            _fall_in(rows, tops, states, rules, voltage, altitude, opts, trees_info)
     for row in rows:
         if row["kind"] == "vegetation":
             gap = max(0.0, row["clearance_m"] - row["required_m"])
@@ -451,18 +499,175 @@ def _ground_model_clearance(ground_model, curve: np.ndarray) -> float:
     return float(dz.min()) if dz.size else math.inf
 
 
+def _plan_samples(curves: list[np.ndarray], step_m: float = 4.0) -> tuple[cKDTree, float]:
+    """A plan k-d tree of the curves thinned to ``step_m``, and half the largest gap. [m]"""
+    thinned, pad = [], 0.0
+    for c in curves:
+        if len(c) < 2:
+            thinned.append(c[:, :2])
+            continue
+        every = max(1, int(step_m / max(float(np.max(np.linalg.norm(np.diff(c[:, :2], axis=0),
+                                                                     axis=1))), 1e-6)))
+        idx = np.unique(np.append(np.arange(0, len(c), every), len(c) - 1))
+        gaps = np.linalg.norm(np.diff(c[idx, :2], axis=0), axis=1)
+        pad = max(pad, 0.5 * float(gaps.max()) if gaps.size else 0.0)
+        thinned.append(c[idx, :2])
+    return cKDTree(np.concatenate(thinned)), pad
+
+
+def _near_plan(xyz: np.ndarray, mask: np.ndarray, plan_tree: cKDTree, bound_m: float
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Indices of the masked points within ``bound_m`` in plan of a thinned sample, distances.
+
+    A grid of ``bound_m`` cells first keeps the points in the cells around the samples (a
+    point within ``bound_m`` of a sample is in the sample's cell or one of its 8 neighbours);
+    only those are queried in the k-d tree.
+    """
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return idx, np.zeros(0)
+    cell = float(bound_m)
+    samples = np.floor(plan_tree.data / cell).astype(np.int64)
+    shifts = np.array([(dx, dy) for dx in (-1, 0, 1) for dy in (-1, 0, 1)])
+    near = np.unique((samples[:, None, :] + shifts[None]).reshape(-1, 2), axis=0)
+    lo = near.min(axis=0)
+    stride = int(near[:, 1].max() - lo[1]) + 1
+    near_key = np.unique((near[:, 0] - lo[0]) * stride + (near[:, 1] - lo[1]))
+    ij = np.floor(xyz[idx, :2] / cell).astype(np.int64) - lo
+    inside = (ij[:, 1] >= 0) & (ij[:, 1] < stride) & (ij[:, 0] >= 0)
+    key = np.where(inside, ij[:, 0] * stride + ij[:, 1], -1)
+    idx = idx[np.isin(key, near_key)]
+    if idx.size == 0:
+        return idx, np.zeros(0)
+    d, _ = plan_tree.query(xyz[idx, :2], distance_upper_bound=bound_m)
+    keep = np.isfinite(d)
+    return idx[keep], d[keep]
+
+
+def _make_group(kind: str, xyz: np.ndarray, idx: np.ndarray, two_d: bool = False) -> _Group:
+    pts = xyz[idx]
+    tree = cKDTree(pts[:, :2] if two_d else pts) if len(pts) else None
+    return _Group(kind, idx, pts, tree)
+
+
+def _members(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Point order sorted by label and the start of every label in it."""
+    order = np.argsort(labels, kind="stable")
+    n = int(labels.max()) + 1 if len(labels) else 0
+    starts = np.searchsorted(labels[order], np.arange(n + 1))
+    return order, starts
+
+
+def _radial(points, idx, state, cond, curve, frac, ci_along, required, key) -> Findings:
+    """3-D clearance of candidate points ``idx`` to one curve; entries within reach."""
+    p = points[idx]
+    d, closest, param = polyline_distance(p, curve)
+    ci = np.interp(param, np.arange(len(curve)), ci_along)
+    # The curve's uncertainty is vertical; project it on the point-to-wire direction.
+    ci = ci * np.where(d > 1e-9, np.abs(closest[:, 2] - p[:, 2]) / np.maximum(d, 1e-9), 1.0)
+    keep = d - ci < required
+    fr = np.interp(param[keep], np.arange(len(curve)), frac)
+    return _findings(idx[keep], state, cond, d[keep], required, ci[keep], fr, key)
+
+
+def _building(points, idx, labels, by_label, state, cond, curve, frac, ci_along, b_h, b_v
+              ) -> Findings:
+    """One entry per building inside (or, within the 95 % interval, near) the box envelope."""
+    offset, wire_z, param = polyline_offsets(points[idx], curve)
+    ci = np.interp(param, np.arange(len(curve)), ci_along)
+    d_v = np.abs(wire_z - points[idx, 2])
+    flagged = (np.abs(offset) < b_h) & (d_v - ci < b_v)
+    if not np.any(flagged):
+        return Findings.empty()
+    order, starts = by_label
+    out = {k: [] for k in ("point", "clearance", "required", "ci", "frac", "key", "other")}
+    for label in np.unique(labels[idx[flagged]]):          # a loop over buildings
+        members = order[starts[label]:starts[label + 1]]
+        env = building_envelope(points[members], curve, b_h, b_v)
+        m_ci = np.interp(env["parameter"], np.arange(len(curve)), ci_along)
+        if env["violated"]:
+            rise, shift = env["rise_m"], env["shift_m"]
+            vertical = rise <= shift
+            j = env["rise_point"] if vertical else env["shift_point"]
+            deficit, other = (rise, shift) if vertical else (shift, rise)
+        else:
+            # Only the 95 % interval reaches the envelope: the point nearest to violating.
+            near = idx[flagged]
+            pos = np.minimum(np.searchsorted(members, near), len(members) - 1)
+            lookup = pos[members[pos] == near]       # members are sorted (stable argsort)
+            move_v = b_v - np.abs(env["wire_z"][lookup] - points[members[lookup], 2])
+            move_h = b_h - np.abs(env["offset"][lookup])
+            best = int(np.argmax(np.minimum(move_v, move_h)))
+            vertical = move_v[best] <= move_h[best]
+            j = int(lookup[best])
+            deficit, other = ((move_v[best], move_h[best]) if vertical
+                              else (move_h[best], move_v[best]))
+        required = b_v if vertical else b_h
+        out["point"].append(int(members[j]))
+        out["clearance"].append(required - deficit)
+        out["required"].append(required)
+        out["ci"].append(float(m_ci[j]) if vertical else 0.0)
+        out["frac"].append(float(np.interp(env["parameter"][j], np.arange(len(curve)), frac)))
+        out["key"].append("vertical" if vertical else "horizontal")
+        out["other"].append(other)
+    n = len(out["point"])
+    return Findings(np.array(out["point"], dtype=np.int64), np.full(n, state),
+                    np.full(n, cond, dtype=object), np.array(out["clearance"]),
+                    np.array(out["required"]), np.array(out["ci"]), np.array(out["frac"]),
+                    np.array(out["key"], dtype=object), np.array(out["other"], dtype=float))
+
+
 def _obstacle_rows(kind: str, f: Findings, group: _Group | None, states: list[WireState],
-                   opts: AuditOptions) -> list[dict]:
+                   opts: AuditOptions, labels: np.ndarray | None = None) -> list[dict]:
+    """One row per obstacle per condition group.
+
+    ``labels`` gives the obstacle of every point of the group (buildings: connected
+    components; vegetation: tree crowns, -1 outside any crown; wires: the crossing wire).
+    Without labels, and for vegetation outside crowns, the violating points are grouped by
+    single linkage (vegetation: ``link_m``, cut into ``max_obstacle_extent_m`` tiles; ground:
+    ``ground_link_m`` in plan per surface type, cut into ``ground_patch_m`` tiles; buildings:
+    ``building_link_m``, never cut).
+    """
     if group is None or len(f.point) == 0:
         return []
     unique, inverse = np.unique(f.point, return_inverse=True)
-    labels_u = group_obstacles(group.xyz[unique], opts.link_m, opts.max_obstacle_extent_m)
-    labels = labels_u[inverse.reshape(-1)]
-    cond_group = np.array([CONDITION_GROUP[c] for c in f.condition], dtype=object)
-    keep = reduce_findings(f, cond_group, labels)
-    survey_bad = set(labels[(cond_group == "survey") & (f.deficit_m > 0)].tolist())
-    rows = []
+    inverse = inverse.reshape(-1)
     prefix = {"vegetation": "V", "building": "B", "ground": "G", "wire": "W"}[kind]
+    name_u = np.empty(len(unique), dtype=object)
+    known = (np.asarray(labels)[unique] if labels is not None
+             else np.full(len(unique), -1, dtype=np.int64))
+    has = known >= 0
+    if kind == "vegetation":
+        name_u[has] = [f"T{int(t) + 1:04d}" for t in known[has]]
+    else:
+        name_u[has] = [f"{prefix}{int(t) + 1:04d}" for t in known[has]]
+    rest = np.flatnonzero(~has)
+    if rest.size:
+        pts = group.xyz[unique[rest]]
+        if kind == "ground":
+            flat = pts.copy()
+            flat[:, 2] = 0.0
+            sub = group_obstacles(flat, opts.ground_link_m, opts.ground_patch_m)
+            # Different surfaces (road, land ...) are different patches.
+            first = np.zeros(len(unique), dtype=np.int64)
+            first[inverse[::-1]] = np.arange(len(f.point))[::-1]
+            surface = f.key[first[rest]].astype(str)
+            _, sub = np.unique(np.column_stack([sub, np.unique(surface, return_inverse=True)[1]
+                                                .reshape(-1)]), axis=0, return_inverse=True)
+            sub = sub.reshape(-1)
+        elif kind == "building":
+            flat = np.column_stack([pts[:, :2], np.zeros(len(pts))])
+            sub = group_obstacles(flat, opts.building_link_m, None)
+        else:
+            sub = group_obstacles(pts, opts.link_m, opts.max_obstacle_extent_m)
+        name_u[rest] = [f"{prefix}{int(t) + 1:04d}" for t in sub]
+    names = name_u[inverse]
+    _, label_codes = np.unique(names.astype(str), return_inverse=True)
+    label_codes = label_codes.reshape(-1)
+    cond_group = np.array([CONDITION_GROUP[c] for c in f.condition], dtype=object)
+    keep = reduce_findings(f, cond_group, label_codes)
+    survey_bad = set(names[(cond_group == "survey") & (f.deficit_m > 0)].tolist())
+    rows = []
     for j in keep:
         st = states[int(f.state[j])]
         clearance = float(f.clearance_m[j])
@@ -479,83 +684,81 @@ def _obstacle_rows(kind: str, f: Findings, group: _Group | None, states: list[Wi
             "certainty": "certain" if clearance + ci < required else "uncertain",
             "finding": "clearance" if clearance < required else "possible",
             "station_m": float(f.fraction[j]) * float(st.fit.span_length_m),
-            "obstacle_id": f"{prefix}{int(labels[j]) + 1:04d}",
-            "fall_in": False, "violated_at_survey": int(labels[j]) in survey_bad,
+            "obstacle_id": str(names[j]),
+            "fall_in": False, "violated_at_survey": str(names[j]) in survey_bad,
             "surface": str(f.key[j]) if kind == "ground" else "",
             "direction": str(f.key[j]) if kind == "building" else "",
         }
+        if kind == "building":
+            other = float(f.other_deficit_m[j])
+            row["deficit_vertical_m"] = row["deficit_m"] if row["direction"] == "vertical" \
+                else other
+            row["deficit_horizontal_m"] = row["deficit_m"] if row["direction"] == \
+                "horizontal" else other
         rows.append(row)
     return rows
 
 
-def _fall_in(rows, xyz, classes, hag, states, rules, voltage, altitude, opts, info,
-             ground_model) -> None:
-    veg = np.isin(classes, VEGETATION_CLASSES)
-    if not np.any(veg):
-        return
-    survey_mot = [st.curves[c] for st in states for c in ("survey", "mot") if c in st.curves]
-    wires = np.concatenate(survey_mot)
-    wire_tree = cKDTree(wires[:, :2])
-    idx = np.flatnonzero(veg)
-    idx = idx[_within(xyz[idx, :2], wire_tree, opts.fall_in_buffer_m)]
-    if idx.size == 0:
-        return
-    heights = hag[idx]
-    if not np.all(np.isfinite(heights)) and ground_model is not None:
-        missing = ~np.isfinite(heights)
-        heights = heights.copy()
-        heights[missing] = xyz[idx[missing], 2] - ground_model.height_at(xyz[idx[missing], :2])
-    tops = find_tree_tops(xyz[idx], heights, min_height_m=opts.min_tree_height_m)
-    info["trees"] = len(tops)
+def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: float,
+             altitude: float | None, opts: AuditOptions, info: dict) -> None:
+    """Fall-in risk of every tree; rows for risky trees that violate no clearance.
+
+    The reach is checked against every wire (shield wires included: a tree on a shield wire
+    is a reliability and fire risk); the clearance of a fall-in-only row is the crown's
+    distance to the nearest wire whose vegetation rule applies (the energised phases).
+    """
     if len(tops) == 0:
         return
-    dist = fall_in_distance(tops.base_xyz, wires)
+    curves, owner = [], []
+    for k, st in enumerate(states):
+        for c in ("survey", "mot"):
+            if c in st.curves:
+                curves.append(st.curves[c])
+                owner.append(np.full(len(st.curves[c]), k))
+    wires = np.concatenate(curves)
+    owner = np.concatenate(owner)
+    dist, nearest = cKDTree(wires).query(tops.base_xyz)
+    reach_state = owner[np.minimum(nearest, len(owner) - 1)]
     risk = dist < tops.height_m
     info["fall_in_trees"] = int(risk.sum())
-    top_tree = cKDTree(tops.xy)
     matched = np.zeros(len(tops), dtype=bool)
-    for row in rows:
-        if row["kind"] != "vegetation":
+    for row in rows:                                      # a loop over findings
+        oid = str(row.get("obstacle_id", ""))
+        if row["kind"] != "vegetation" or not oid.startswith("T"):
             continue
-        near = top_tree.query_ball_point(row["point_local"][:2], 4.0)
-        if not near:
-            continue
-        best = max(near, key=lambda t: tops.top_z[t])
-        matched[best] = True
-        row["tree_height_m"] = float(tops.height_m[best])
-        row["fall_in_distance_m"] = float(dist[best])
-        row["fall_in"] = bool(risk[best])
+        t = int(oid[1:]) - 1
+        matched[t] = True
+        _tree_fields(row, tops, t, dist, risk, states[int(reach_state[t])])
     if not opts.report_fall_in_only:
         return
     only = np.flatnonzero(risk & ~matched)
-    if only.size == 0:
+    targets = [k for k, st in enumerate(states) if rules.applies("vegetation", st.role)
+               and "survey" in st.curves]
+    if only.size == 0 or not targets:
         return
-    # Clearance of each such tree at survey: its crown cells' distance to the survey curves.
-    survey_curves = [(k, st) for k, st in enumerate(states)]
-    cell_of_tree = tops.cell_tree
-    cells = np.flatnonzero(np.isin(cell_of_tree, only))
+    cells = np.flatnonzero(np.isin(tops.cell_tree, only))
     cell_xyz = tops.cell_xyz[cells]
     best_d = np.full(len(cells), np.inf)
     best_state = np.zeros(len(cells), dtype=int)
     best_frac = np.zeros(len(cells))
-    from .clearance import polyline_distance
-
-    for k, st in survey_curves:
+    for k in targets:                                    # a loop over wires
+        st = states[k]
         d, _, param = polyline_distance(cell_xyz, st.curves["survey"])
         better = d < best_d
         best_d = np.where(better, d, best_d)
         best_state = np.where(better, k, best_state)
         best_frac = np.where(better, np.interp(param, np.arange(len(st.curves["survey"])),
                                                st.fractions["survey"]), best_frac)
-    for t in only:
-        mine = np.flatnonzero(cell_of_tree[cells] == t)
-        if mine.size == 0:
-            continue
-        j = mine[np.argmin(best_d[mine])]
+    tree_of_cell = tops.cell_tree[cells]
+    order = np.lexsort((best_d, tree_of_cell))
+    first = np.ones(len(order), dtype=bool)
+    first[1:] = tree_of_cell[order][1:] != tree_of_cell[order][:-1]
+    for j in order[first]:                               # one per tree
+        t = int(tree_of_cell[j])
         st = states[int(best_state[j])]
         required = rules.required("vegetation", st.role, voltage, altitude_m=altitude).value_m
         clearance = float(best_d[j])
-        rows.append({
+        row = {
             "kind": "vegetation", "condition": "survey", "condition_detail": "survey",
             "span_id": st.span_id, "wire_id": st.wire_id, "role": st.role,
             "point_local": cell_xyz[j].copy(), "cloud_index": -1,
@@ -563,10 +766,21 @@ def _fall_in(rows, xyz, classes, hag, states, rules, voltage, altitude, opts, in
             "clearance_ci95_m": float(st.position_ci95("survey", np.array([best_frac[j]]))[0]),
             "certainty": "certain", "finding": "fall_in",
             "station_m": float(best_frac[j]) * float(st.fit.span_length_m),
-            "obstacle_id": f"T{int(t) + 1:04d}", "fall_in": True, "violated_at_survey": False,
-            "surface": "", "direction": "", "tree_height_m": float(tops.height_m[t]),
-            "fall_in_distance_m": float(dist[t]),
-        })
+            "obstacle_id": f"T{t + 1:04d}", "fall_in": True, "violated_at_survey": False,
+            "surface": "", "direction": "",
+        }
+        _tree_fields(row, tops, t, dist, risk, states[int(reach_state[t])])
+        rows.append(row)
+
+
+def _tree_fields(row: dict, tops, t: int, dist: np.ndarray, risk: np.ndarray,
+                 reach: WireState) -> None:
+    row["tree_height_m"] = float(tops.height_m[t])
+    row["fall_in_distance_m"] = float(dist[t])
+    row["fall_in"] = bool(risk[t])
+    row["fall_in_span_id"] = reach.span_id
+    row["fall_in_wire_id"] = reach.wire_id
+    row["fall_in_wire_role"] = reach.role
 
 
 def _num(x) -> float | None:

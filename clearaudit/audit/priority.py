@@ -1,8 +1,13 @@
 """Vegetation work priorities: trees, fall-in risk, grow-in time and the ranking of findings.
 
 Trees are found on a canopy grid: the highest vegetation point of each ``cell_m`` cell, and a
-tree top where a cell is the highest within ``window_m``. A tree's height is its top's height
-above ground; its trunk base is the ground point under the top.
+tree top where a cell is the highest within ``window_m`` (local-maximum filtering, Popescu &
+Wynne 2004). Crowns are delineated by steepest ascent on the canopy grid: every cell climbs to
+its highest neighbour until it reaches a local maximum (the flow-path form of the watershed
+segmentation of a canopy height model, Koch, Heyder & Weinacker 2006); a local maximum that is
+not a tree top joins the nearest top within the window. One crown is one tree, hence one
+obstacle. A tree's height is its top's height above ground; its trunk base is the ground point
+under the top.
 
 **Fall-in risk** (common practice (no source)): a tree can reach the line if it falls when the
 3-D distance from its trunk base to the nearest wire point (survey or MOT curve) is shorter than
@@ -20,6 +25,15 @@ then the shortest grow-in time:
 4. possible violations (the clearance meets the requirement but its 95 % interval does not);
 5. fall-in risks that violate no clearance (reported as separate vegetation rows with
    ``finding = "fall_in"``, condition ``survey``, a negative deficit).
+
+References
+----------
+Popescu, S. C. and Wynne, R. H. (2004). Seeing the trees in the forest: using lidar and
+multispectral data fusion with local filtering and variable window size for estimating tree
+height. Photogrammetric Engineering & Remote Sensing 70(5), 589-604 (from memory).
+
+Koch, B., Heyder, U. and Weinacker, H. (2006). Detection of individual tree crowns in airborne
+lidar data. Photogrammetric Engineering & Remote Sensing 72(4), 357-363 (from memory).
 """
 from __future__ import annotations
 
@@ -34,9 +48,12 @@ _CONDITION_WORDS = {"survey": "at survey", "mot": "at MOT", "wind": "in wind",
                     "ice": "under ice"}
 
 
+_NEIGHBOURS = ((-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1))
+
+
 @dataclass
 class TreeTops:
-    """Tree tops found on the canopy grid.
+    """Tree tops and crowns found on the canopy grid.
 
     Attributes
     ----------
@@ -49,7 +66,12 @@ class TreeTops:
     cell_xyz
         The canopy grid's cell tops (highest vegetation point per cell), shape (m, 3). [m]
     cell_tree
-        Index of the tree each cell belongs to (nearest top within the window), -1 none.
+        Index of the tree each cell belongs to (its crown, by steepest ascent), -1 none.
+    cell_key
+        Sorted integer key of each cell (see :meth:`cell_of`).
+    grid
+        ``(cell_m, ix0, iy0, stride)``: the key of cell (ix, iy) is
+        ``(ix - ix0) * stride + (iy - iy0)``.
     """
 
     xy: np.ndarray
@@ -57,6 +79,8 @@ class TreeTops:
     height_m: np.ndarray
     cell_xyz: np.ndarray
     cell_tree: np.ndarray
+    cell_key: np.ndarray | None = None
+    grid: tuple[float, int, int, int] | None = None
 
     @property
     def base_xyz(self) -> np.ndarray:
@@ -66,10 +90,42 @@ class TreeTops:
     def __len__(self) -> int:
         return len(self.top_z)
 
+    def cell_of(self, xyz: np.ndarray) -> np.ndarray:
+        """Index of the canopy cell under each point (-1 outside the grid's cells).
+
+        Parameters
+        ----------
+        xyz
+            Points, shape (n, 2) or (n, 3). [m]
+        """
+        pts = np.asarray(xyz, dtype=float)
+        pts = pts.reshape(-1, pts.shape[-1] if pts.ndim > 1 else 3)
+        if self.grid is None or self.cell_key is None or len(self.cell_key) == 0:
+            return np.full(len(pts), -1)
+        cell_m, ix0, iy0, stride = self.grid
+        ix = np.floor(pts[:, 0] / cell_m).astype(np.int64) - ix0
+        iy = np.floor(pts[:, 1] / cell_m).astype(np.int64) - iy0
+        ok = (ix >= 0) & (iy >= 0) & (iy < stride)
+        key = np.where(ok, ix * stride + iy, -1)
+        at = np.clip(np.searchsorted(self.cell_key, key), 0, len(self.cell_key) - 1)
+        return np.where(ok & (self.cell_key[at] == key), at, -1)
+
+    def tree_of(self, xyz: np.ndarray) -> np.ndarray:
+        """Index of the tree whose crown holds each point (-1: none).
+
+        Parameters
+        ----------
+        xyz
+            Points, shape (n, 3). [m]
+        """
+        cell = self.cell_of(xyz)
+        return np.where(cell >= 0, self.cell_tree[np.maximum(cell, 0)], -1) \
+            if len(self.cell_tree) else np.full(len(cell), -1)
+
 
 def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m: float = 1.0,
                    window_m: float = 5.0, min_height_m: float = 2.0) -> TreeTops:
-    """Tree tops as local maxima of the vegetation canopy.
+    r"""Tree tops as local maxima of the vegetation canopy, and their crowns.
 
     Parameters
     ----------
@@ -87,6 +143,15 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     Returns
     -------
     tops : :class:`TreeTops`
+
+    Notes
+    -----
+    A cell is a top when its highest point is the highest within ``window_m / 2`` and stands at
+    least ``min_height_m`` above ground (Popescu & Wynne 2004, fixed window). Crowns: each cell
+    points to the highest of itself and its 8 neighbours; following the pointers (pointer
+    jumping, :math:`O(\log n)` vectorised passes) leads every cell to a local maximum, which
+    is a top or joins the nearest top within ``window_m``; maxima lower than ``min_height_m``
+    with no top are not trees (Koch et al. 2006, flow-path watershed).
     """
     pts = np.asarray(xyz, dtype=float).reshape(-1, 3)
     hag = np.asarray(height_above_ground_m, dtype=float).reshape(-1)
@@ -94,46 +159,78 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
         raise ValueError("Give one height above ground per point.")
     if not (cell_m > 0 and window_m > 0):
         raise ValueError("The cell size and the window must be positive.")
-    empty = TreeTops(np.zeros((0, 2)), np.zeros(0), np.zeros(0), np.zeros((0, 3)),
-                     np.zeros(0, dtype=int))
     ok = np.isfinite(hag)
     pts, hag = pts[ok], hag[ok]
     if len(pts) == 0:
-        return empty
-    cells = np.floor(pts[:, :2] / cell_m).astype(np.int64)
-    _, cell_of = np.unique(cells, axis=0, return_inverse=True)
-    cell_of = cell_of.reshape(-1)
-    # Highest point per cell: sort by z, last per cell wins.
-    order = np.lexsort((pts[:, 2], cell_of))
+        return TreeTops(np.zeros((0, 2)), np.zeros(0), np.zeros(0), np.zeros((0, 3)),
+                        np.zeros(0, dtype=int))
+    ixy = np.floor(pts[:, :2] / cell_m).astype(np.int64)
+    ix0, iy0 = int(ixy[:, 0].min()), int(ixy[:, 1].min())
+    stride = int(ixy[:, 1].max()) - iy0 + 2
+    key = (ixy[:, 0] - ix0) * stride + (ixy[:, 1] - iy0)
+    # Highest point per cell: sort by (key, z), the last of each key wins.
+    order = np.lexsort((pts[:, 2], key))
+    skey = key[order]
     last = np.ones(len(order), dtype=bool)
-    last[:-1] = cell_of[order][1:] != cell_of[order][:-1]
+    last[:-1] = skey[1:] != skey[:-1]
     top_idx = order[last]
+    cell_key = skey[last]
     cell_xyz = pts[top_idx]
     cell_h = hag[top_idx]
+    n_cells = len(cell_key)
+    grid = (float(cell_m), ix0, iy0, stride)
+
+    # ---- steepest ascent on the 8-neighbourhood
+    parent = np.arange(n_cells)
+    best_z = cell_xyz[:, 2].copy()
+    for dx, dy in _NEIGHBOURS:
+        nk = cell_key + dx * stride + dy
+        at = np.clip(np.searchsorted(cell_key, nk), 0, n_cells - 1)
+        exists = cell_key[at] == nk
+        higher = exists & (cell_xyz[at, 2] > best_z)
+        parent = np.where(higher, at, parent)
+        best_z = np.where(higher, cell_xyz[at, 2], best_z)
+    while True:
+        nxt = parent[parent]
+        if np.array_equal(nxt, parent):
+            break
+        parent = nxt
+    roots = np.flatnonzero(parent == np.arange(n_cells))
+
+    # ---- tops: highest within window_m / 2 and tall enough
     tree = cKDTree(cell_xyz[:, :2])
-    k = min(len(cell_xyz), int(np.ceil(np.pi * (window_m / 2 / cell_m + 1) ** 2)) + 1)
-    dist, nbr = tree.query(cell_xyz[:, :2], k=k, distance_upper_bound=window_m / 2)
-    dist = np.asarray(dist).reshape(len(cell_xyz), -1)
-    nbr = np.asarray(nbr).reshape(len(cell_xyz), -1)
-    valid = np.isfinite(dist)
-    nbr_z = np.where(valid, cell_xyz[np.minimum(nbr, len(cell_xyz) - 1), 2], -np.inf)
-    is_top = (cell_xyz[:, 2] >= nbr_z.max(axis=1)) & (cell_h >= min_height_m)
-    # Ties (flat tops): keep the first of equal neighbours only.
-    tops = np.flatnonzero(is_top)
+    k = min(n_cells, int(np.ceil(np.pi * (window_m / 2 / cell_m + 1) ** 2)) + 1)
+    cand = roots[cell_h[roots] >= min_height_m]    # a top is always a 3x3 local maximum
+    tops = np.zeros(0, dtype=int)
+    if cand.size:
+        dist, nbr = tree.query(cell_xyz[cand, :2], k=k, distance_upper_bound=window_m / 2)
+        dist = np.asarray(dist).reshape(len(cand), -1)
+        nbr = np.asarray(nbr).reshape(len(cand), -1)
+        nbr_z = np.where(np.isfinite(dist), cell_xyz[np.minimum(nbr, n_cells - 1), 2], -np.inf)
+        tops = cand[cell_xyz[cand, 2] >= nbr_z.max(axis=1)]
+    if tops.size:
+        # Ties (flat tops): keep the first of equal neighbours only.
+        dup = cKDTree(cell_xyz[tops, :2]).query_pairs(cell_m * 1.5, output_type="ndarray")
+        drop = np.zeros(tops.size, dtype=bool)
+        if len(dup):
+            drop[np.maximum(dup[:, 0], dup[:, 1])] = True
+        tops = tops[~drop]
     if tops.size == 0:
         return TreeTops(np.zeros((0, 2)), np.zeros(0), np.zeros(0), cell_xyz,
-                        np.full(len(cell_xyz), -1))
-    top_tree = cKDTree(cell_xyz[tops, :2])
-    dup = top_tree.query_pairs(cell_m * 1.5, output_type="ndarray")
-    drop = np.zeros(tops.size, dtype=bool)
-    if len(dup):
-        drop[np.maximum(dup[:, 0], dup[:, 1])] = True
-    tops = tops[~drop]
-    top_tree = cKDTree(cell_xyz[tops, :2])
-    d_cell, which = top_tree.query(cell_xyz[:, :2], distance_upper_bound=window_m)
-    cell_tree = np.where(np.isfinite(d_cell), which, -1)
+                        np.full(n_cells, -1), cell_key, grid)
+
+    # ---- crowns: every root to a tree
+    root_tree = np.full(n_cells, -1)
+    root_tree[tops] = np.arange(tops.size)
+    minor = roots[root_tree[roots] < 0]
+    if minor.size:
+        d_top, which = cKDTree(cell_xyz[tops, :2]).query(cell_xyz[minor, :2],
+                                                          distance_upper_bound=window_m)
+        joins = np.isfinite(d_top) & (cell_h[minor] >= min_height_m)
+        root_tree[minor[joins]] = which[joins]
+    cell_tree = root_tree[parent]
     return TreeTops(cell_xyz[tops, :2].copy(), cell_xyz[tops, 2].copy(), cell_h[tops].copy(),
-                    cell_xyz, cell_tree)
+                    cell_xyz, cell_tree, cell_key, grid)
 
 
 def fall_in_distance(base_xyz: np.ndarray, wire_samples: np.ndarray) -> np.ndarray:
@@ -204,9 +301,29 @@ def _reason(row: dict) -> str:
     where = f"wire {row['wire_id']} in span {row['span_id']}"
     cond = _CONDITION_WORDS.get(row["condition"], row["condition"])
     if row.get("finding") == "fall_in":
+        reach = row.get("fall_in_wire_id", row["wire_id"])
+        role = row.get("fall_in_wire_role", row.get("role", ""))
+        reach_span = row.get("fall_in_span_id", row["span_id"])
         text = (f"fall-in risk: tree {row.get('tree_height_m', float('nan')):.1f} m tall, trunk "
-                f"{row.get('fall_in_distance_m', float('nan')):.1f} m from {where}; clears the "
-                f"{row['required_m']:.2f} m requirement by {-row['deficit_m']:.2f} m")
+                f"{row.get('fall_in_distance_m', float('nan')):.1f} m from wire {reach}"
+                f"{' (shield)' if role == 'shield' else ''} in span {reach_span}; its crown is "
+                f"{row['clearance_m']:.2f} m from {where}, outside the {row['required_m']:.2f} m "
+                f"vegetation requirement by {-row['deficit_m']:.2f} m")
+    elif row["kind"] == "building" and row.get("direction"):
+        direction = row["direction"]
+        dv, dh = row.get("deficit_vertical_m"), row.get("deficit_horizontal_m")
+        measure = "vertically" if direction == "vertical" else "sideways"
+        head = ("building inside the box envelope" if row["deficit_m"] > 0
+                else "possible building violation")
+        text = (f"{head} {cond} ({where}): {row['clearance_m']:.2f} m {measure} against the "
+                f"{row['required_m']:.2f} m {direction} requirement, deficit "
+                f"{row['deficit_m']:.2f} m ({direction} governs")
+        if dv is not None and dh is not None and row["deficit_m"] > 0:
+            text += (f": the wire must rise {dv:.2f} m or move {dh:.2f} m sideways to clear "
+                     "the whole building")
+        text += ")"
+        if row["condition"] != "survey" and row.get("violated_at_survey"):
+            text += "; also violated at survey"
     elif row["deficit_m"] > 0:
         text = (f"{row['kind']} {row['deficit_m']:.2f} m inside the {row['required_m']:.2f} m "
                 f"requirement {cond} ({where})")
@@ -221,7 +338,7 @@ def _reason(row: dict) -> str:
         text += "; uncertain (the 95 % interval reaches the requirement)"
     if row.get("fall_in") and row.get("finding") != "fall_in":
         text += (f"; tree {row.get('tree_height_m', float('nan')):.1f} m tall can fall into "
-                 "the line")
+                 f"the line (reaches wire {row.get('fall_in_wire_id', row['wire_id'])})")
     grow = row.get("grow_in_years")
     if row["kind"] == "vegetation" and grow is not None and grow > 0:
         text += f"; grows into the requirement in {grow:.1f} years"

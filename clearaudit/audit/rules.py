@@ -133,6 +133,8 @@ class _VegetationTable:
     values_m: np.ndarray
     band_top_altitude_m: float
     source: str
+    applies: bool = True
+    reason: str = ""
 
 
 @dataclass
@@ -219,6 +221,25 @@ class RuleSet:
         return float(np.interp(altitude_m, self.altitude_m, self.altitude_factors,
                                left=1.0, right=float(self.altitude_factors[-1])))
 
+    def applies(self, kind: str, role: str) -> bool:
+        """Whether the rule set requires a clearance of this kind for this wire role.
+
+        Only vegetation can be switched off (``applies = false`` in
+        ``[clearance.vegetation.<role>]``, e.g. grounded shield wires); a line file override
+        (``shield_vegetation_m``) switches it back on.
+        """
+        if kind != "vegetation":
+            return True
+        prefix = "" if role == "phase" else "shield_"
+        table = self.vegetation[role]
+        return table.applies or self._override("vegetation", "value", prefix) is not None
+
+    def not_applicable_reason(self, kind: str, role: str) -> str:
+        """The rule set's reason for not requiring a clearance (empty when it applies)."""
+        if self.applies(kind, role):
+            return ""
+        return self.vegetation[role].reason
+
     def required(self, kind: str, role: str, voltage_kv: float, *, key: str | None = None,
                  altitude_m: float | None = None) -> Requirement:
         """Required clearance for one obstacle kind, wire role and line voltage.
@@ -285,6 +306,9 @@ class RuleSet:
             return Requirement(override[1], "vegetation", role, "value", OVERRIDE_SOURCE,
                                f"{override[0]} = {override[1]:.2f} m (line file)")
         table = self.vegetation[role]
+        if not table.applies:
+            return Requirement(0.0, "vegetation", role, "value", table.source,
+                               f"no requirement ({table.reason})")
         index = int(np.searchsorted(table.voltages_kv, voltage_kv - 1e-9))
         beyond = index >= len(table.voltages_kv)
         index = min(index, len(table.voltages_kv) - 1)
@@ -398,6 +422,14 @@ def _vegetation_tables(doc: dict, path: str) -> tuple[dict[str, _VegetationTable
         where = f"[clearance.vegetation.{role}]"
         if not isinstance(raw, dict):
             raise InputError(path, f"{where} is missing")
+        applies = raw.get("applies", True)
+        if not isinstance(applies, bool):
+            raise InputError(path, f"{where} applies must be true or false")
+        if not applies:
+            tables[role] = _VegetationTable(np.zeros(1), np.zeros(1), 1e9,
+                                            _text(raw, "source", where, path), False,
+                                            _text(raw, "reason", where, path))
+            continue
         volts = raw.get("voltages_kv")
         values = raw.get("values_m")
         if (not isinstance(volts, list) or not isinstance(values, list) or not volts
