@@ -125,7 +125,9 @@ def _truth_curves(corridor, conductors):
             a = np.array(wire["attachment_a_local_m"])
             b = np.array(wire["attachment_b_local_m"])
             t_mot = MOT_C if wire["role"] == "phase" else max(SURVEY_C, 50.0)
-            h_mot = reference_change_of_state(section["ruling_span_m"], h1, w, SURVEY_C, w, t_mot,
+            # the conductors' own ruling span (attachment to attachment, per role)
+            rs = section.get("ruling_span_by_role_m", {}).get(wire["role"], section["ruling_span_m"])
+            h_mot = reference_change_of_state(rs, h1, w, SURVEY_C, w, t_mot,
                                               cond.area_total_m2 * cond.modulus_final_pa,
                                               cond.thermal_expansion_per_c)
             key = (span["id"], wire["wire_id"])

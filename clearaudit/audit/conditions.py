@@ -449,7 +449,10 @@ def project_conditions(model: Any, conductors: dict[str, Any], specs: dict[str, 
         tens = np.array([_fit_tension(f, w) for f in fits])
         h_survey, h_ci = section_tension(tens[:, 0], tens[:, 1])
         section = next((s for s in model.sections if s.id == section_id), None)
-        rs = getattr(section, "ruling_span_m", None)
+        # The ruling span of this wire's role (phases end at strain strings, shield wires at
+        # the structure), falling back to the section's phase ruling span.
+        rs = (getattr(section, "ruling_span_by_role_m", None) or {}).get(role) \
+            or getattr(section, "ruling_span_m", None)
         if not rs:
             rs = ruling_span([f.span_length_m for f in fits])
         ts = specs["survey"].temperature_c
