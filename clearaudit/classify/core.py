@@ -1,0 +1,237 @@
+"""The classification stage: noise → ground (SMRF) → HAG → above-ground objects."""
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..cloud import (
+    GROUND,
+    HIGH_NOISE,
+    LOW_NOISE,
+    TRANSMISSION_TOWER,
+    UNCLASSIFIED,
+    UNCLASSIFIED_NEVER,
+    WATER,
+    WIRE_CONNECTOR,
+    Cloud,
+)
+from ..errors import InputError
+from .features import eigen_features
+from .grid import GridFrame, cell_min
+from .ground import GroundModel, build_ground_model, refine_ground, smrf
+from .noise import isolated_points, pit_cells
+from .objects import classify_objects, vegetation_class
+from .options import ClassifyOptions
+
+Progress = Callable[[str, float], None]
+
+#: Class groups used by ``trust_classes``: a group present in the file is kept as it is.
+CLASS_GROUPS: dict[str, tuple[int, ...]] = {
+    "ground": (GROUND,),
+    "noise": (LOW_NOISE, HIGH_NOISE),
+    "vegetation": (3, 4, 5),
+    "building": (6,),
+    "wire": (13, 14),
+    "structure": (TRANSMISSION_TOWER, WIRE_CONNECTOR),
+}
+
+
+@dataclass
+class ClassificationResult:
+    """Result of :func:`classify`.
+
+    Attributes
+    ----------
+    classification
+        ASPRS class code per point of the input cloud, same order, uint8.
+    height_above_ground_m
+        Height above the ground model per point. [m], float32
+    ground
+        The ground model (``height_at(xy)`` in local metres).
+    counts
+        Number of points per class code.
+    timings_s
+        Wall time per step. [s]
+    options
+        The option values of the run.
+    info
+        Derived values of the run (SMRF slope threshold used, ground source, segments found).
+    """
+
+    classification: np.ndarray
+    height_above_ground_m: np.ndarray
+    ground: GroundModel
+    counts: dict[int, int]
+    timings_s: dict[str, float]
+    options: dict
+    info: dict = field(default_factory=dict)
+
+
+def _source_name(cloud: Cloud) -> str | None:
+    return cloud.sources[0].path if cloud.sources else None
+
+
+def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
+             progress: Progress | None = None) -> ClassificationResult:
+    """Classify every point of a cloud into ASPRS classes and compute its height above ground.
+
+    Parameters
+    ----------
+    cloud
+        The point cloud (local metric coordinates).
+    options
+        Settings; defaults when ``None`` (see :meth:`ClassifyOptions.describe`).
+    progress
+        Optional callback ``progress(step_name, fraction_done)`` with fraction in [0, 1].
+
+    Returns
+    -------
+    ClassificationResult
+
+    Notes
+    -----
+    Steps: (1) isolated points and single-cell pits of the minimum surface are kept out of the
+    ground filter; (2) SMRF ground filter (Pingel et al., 2013) and a ground grid; (3) height
+    above ground (HAG) for every point; (4) noise labels: isolated points high above ground →
+    18, non-ground points more than ``noise_low_depth_m`` below ground → 7; (5) points above
+    ``object_min_hag_m`` get eigen features and are split into wires, structures, buildings and
+    vegetation (see :mod:`clearaudit.classify.objects`); (6) lower non-ground points are low
+    vegetation. With ``trust_classes`` the file's classes are kept and only groups missing
+    from the file are filled in (HAG is always computed).
+
+    References
+    ----------
+    Pingel, T. J., Clarke, K. C., McBride, W. A. (2013). An improved simple morphological
+    filter for the terrain classification of airborne LIDAR data. ISPRS J. Photogramm. Remote
+    Sens. 77, 21-30.
+    """
+    opts = ClassifyOptions() if options is None else options
+    if not isinstance(opts, ClassifyOptions):
+        raise ValueError("options must be a ClassifyOptions instance or None")
+    if not isinstance(cloud, Cloud):
+        raise ValueError("classify expects a clearaudit Cloud")
+    if cloud.n_points == 0:
+        raise InputError(_source_name(cloud), "the point cloud has no points to classify")
+    xyz = cloud.xyz
+    if not np.isfinite(xyz).all():
+        raise InputError(_source_name(cloud), "the point cloud has non-finite coordinates")
+    timings: dict[str, float] = {}
+    info: dict[str, object] = {}
+
+    def step(name: str, fraction: float, started: float) -> float:
+        now = time.perf_counter()
+        timings[name] = round(now - started, 4)
+        if progress is not None:
+            progress(name, fraction)
+        return now
+
+    t = time.perf_counter()
+    vendor = np.asarray(cloud.classification, dtype=np.uint8)
+    present = {name: bool(np.isin(vendor, codes).any()) for name, codes in CLASS_GROUPS.items()}
+    frame = GridFrame.fit(xyz[:, :2], opts.smrf_cell_m, margin=opts.smrf_cell_m)
+
+    # 1. noise candidates kept out of the ground filter
+    isolated = isolated_points(xyz, opts.noise_voxel_m, opts.noise_min_neighbours)
+    use = ~isolated
+    flat = frame.flat_index(xyz[:, :2])
+    for _ in range(2):
+        zmin = cell_min(flat[use], xyz[use, 2], frame.size).reshape(frame.shape)
+        pits, lowest = pit_cells(zmin, opts.noise_low_depth_m)
+        if not pits.any():
+            break
+        in_pit = pits.ravel()[flat] & (xyz[:, 2] < lowest.ravel()[flat] - opts.noise_low_depth_m)
+        use &= ~in_pit
+    t = step("noise_candidates", 0.1, t)
+
+    # 2. ground
+    if opts.trust_classes and present["ground"]:
+        is_ground = vendor == GROUND
+        model_points = np.isin(vendor, (GROUND, WATER))
+        info["ground_source"] = "file classes 2 and 9"
+        info["smrf_slope"] = None
+    else:
+        result = smrf(xyz, frame, slope=opts.smrf_slope, window_m=opts.smrf_window_m,
+                      elevation_threshold_m=opts.smrf_elevation_threshold_m,
+                      elevation_scaler=opts.smrf_elevation_scaler,
+                      slope_min=opts.smrf_slope_min, slope_max=opts.smrf_slope_max,
+                      use=use, max_cells=opts.inpaint_max_cells)
+        is_ground = result.is_ground
+        info["ground_source"] = "SMRF"
+        info["smrf_slope"] = result.slope_threshold
+        if opts.ground_refine:
+            is_ground, threshold = refine_ground(
+                xyz, is_ground, frame.with_cell(opts.ground_cell_m),
+                sigma_factor=opts.ground_refine_sigma_factor,
+                min_threshold_m=opts.ground_refine_min_m,
+                max_threshold_m=opts.smrf_elevation_threshold_m,
+                max_cells=opts.inpaint_max_cells)
+            info["ground_refine_threshold_m"] = threshold
+        model_points = is_ground
+    if not model_points.any():
+        raise InputError(_source_name(cloud), "no ground points were found; cannot build a ground model")
+    t = step("ground", 0.35, t)
+
+    ground = build_ground_model(xyz[model_points], frame.with_cell(opts.ground_cell_m),
+                                opts.inpaint_max_cells)
+    hag = xyz[:, 2] - ground.height_at(xyz[:, :2])
+    hag = np.nan_to_num(hag, nan=0.0)
+    t = step("height_above_ground", 0.45, t)
+
+    # 3. noise labels
+    low_noise = ~is_ground & (hag < -opts.noise_low_depth_m)
+    high_noise = ~low_noise & ((isolated & (hag > opts.noise_high_min_hag_m))
+                               | (hag > opts.noise_max_hag_m))
+    classes = np.full(cloud.n_points, UNCLASSIFIED, dtype=np.uint8)
+    classes[is_ground] = GROUND
+    rest = ~is_ground & ~low_noise & ~high_noise
+    low = rest & (hag < opts.object_min_hag_m)
+    classes[low] = vegetation_class(hag[low], opts)
+    classes[low_noise] = LOW_NOISE
+    classes[high_noise] = HIGH_NOISE
+
+    # 4. above-ground objects
+    above = np.flatnonzero(rest & (hag >= opts.object_min_hag_m))
+    info["object_points"] = int(len(above))
+    if len(above):
+        feats = eigen_features(xyz[above], opts.feature_radius_m, opts.feature_max_neighbours,
+                               sparse_radius=opts.feature_sparse_radius_m)
+        t = step("features", 0.75, t)
+        object_classes, object_info = classify_objects(xyz[above], hag[above], feats, frame, opts)
+        classes[above] = object_classes
+        info.update(object_info)
+        # low parts of structures (footings, leg bases) below the object height threshold
+        tower = above[(object_classes == TRANSMISSION_TOWER) & (hag[above] < 2.0)]
+        if len(tower) and low.any():
+            cells = frame.with_cell(opts.column_cell_m)
+            has_tower = np.zeros(cells.size, bool)
+            has_tower[cells.flat_index(xyz[tower, :2])] = True
+            low_idx = np.flatnonzero(low)
+            classes[low_idx[has_tower[cells.flat_index(xyz[low_idx, :2])]]] = TRANSMISSION_TOWER
+    t = step("objects", 0.95, t)
+
+    # 5. trusted file classes: keep them, fill in only the missing groups
+    if opts.trust_classes:
+        open_points = np.isin(vendor, (UNCLASSIFIED_NEVER, UNCLASSIFIED))
+        allowed = np.zeros(256, bool)
+        for name, codes in CLASS_GROUPS.items():
+            if not present[name]:
+                allowed[list(codes)] = True
+        take = open_points & allowed[classes]
+        final = vendor.copy()
+        final[take] = classes[take]
+        classes = final
+    step("merge", 1.0, t)
+
+    codes, counts = np.unique(classes, return_counts=True)
+    return ClassificationResult(
+        classification=classes,
+        height_above_ground_m=hag.astype(np.float32),
+        ground=ground,
+        counts={int(c): int(k) for c, k in zip(codes, counts, strict=True)},
+        timings_s=timings,
+        options=opts.to_dict(),
+        info=info,
+    )

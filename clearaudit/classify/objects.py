@@ -1,0 +1,521 @@
+"""Above-ground objects: wires, transmission structures, buildings, vegetation.
+
+Only points higher than ``object_min_hag_m`` above the ground model come here. The order is:
+
+1. **columns** — a 2D grid of vertical columns; a column is *filled* when most 1 m height
+   slices between its lowest and highest point hold points (trees, towers, walls), *sparse*
+   when it only holds a few levels (wires stacked on crossarms).
+2. **wires** — seed points are linear, near-horizontal, high and outside filled columns; seeds
+   are chained (voxel connectivity) into segments; a segment that is long, thin and follows a
+   smooth curve (a parabola in its vertical plane, a close approximation of the catenary over
+   one span) is a wire. Each wire segment is then *followed* along its fitted curve past its
+   ends: every point within a tight tolerance of the curve becomes wire, which keeps the wire
+   where it passes through or just above tree crowns and next to structures.
+3. **structures** — connected filled columns that are tall, slender and touch wires; their
+   points (and all points 3D-connected to them near the column) are class 15; wire points
+   inside the structure's footprint become 15 too (crossarms, insulators).
+4. **buildings** — connected cells of planar, level-ish points (roofs) of sufficient area;
+   all points above them higher than ``building_min_hag_m`` are class 6.
+5. **vegetation** — everything else by height bands (3/4/5).
+
+References
+----------
+Irvine, H. M. (1981). Cable Structures. MIT Press (the parabola as the shallow-sag form of
+the catenary, used here only to follow a wire over short gaps).
+Weinmann, M., Jutzi, B., Hinz, S., Mallet, C. (2015). Semantic point cloud interpretation
+based on optimal neighborhoods, relevant features and efficient classifiers. ISPRS Journal
+of Photogrammetry and Remote Sensing 105, 286-304 (eigen features).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, sparse
+from scipy.sparse.csgraph import connected_components
+
+from ..cloud import (
+    BUILDING,
+    HIGH_VEGETATION,
+    LOW_VEGETATION,
+    MEDIUM_VEGETATION,
+    TRANSMISSION_TOWER,
+    WIRE_CONDUCTOR,
+    WIRE_GUARD,
+)
+from .features import EigenFeatures
+from .grid import GridFrame, cell_max, cell_min
+from .options import ClassifyOptions
+
+
+def voxel_components(xyz: np.ndarray, voxel: float, group: np.ndarray | None = None) -> np.ndarray:
+    """Connected components of points through face/edge/corner-adjacent occupied voxels.
+
+    Parameters
+    ----------
+    xyz
+        Points. [m], shape (n, 3)
+    voxel
+        Voxel edge; points up to one voxel apart are always linked. [m]
+    group
+        Optional integer group per point; points of different groups are never linked.
+
+    Returns
+    -------
+    numpy.ndarray
+        Component label per point (0 … m-1).
+    """
+    n = len(xyz)
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    ijk = np.floor(np.asarray(xyz) / voxel).astype(np.int64)
+    if group is None:
+        group = np.zeros(n, dtype=np.int64)
+    _, group = np.unique(group, return_inverse=True)
+    lo = np.full((int(group.max()) + 1, 3), np.iinfo(np.int64).max)
+    np.minimum.at(lo, group, ijk)
+    ijk = ijk - lo[group] + 1  # local to the group, with a free voxel below
+    bits = max(int(ijk.max()).bit_length() + 1, 2)
+    gbits = max(int(group.max()).bit_length(), 1)
+    if 3 * bits + gbits > 63:
+        raise ValueError("cloud too large for the voxel size (keys exceed 63 bits)")
+    keys = (group << (3 * bits)) | (ijk[:, 0] << (2 * bits)) | (ijk[:, 1] << bits) | ijk[:, 2]
+    uniq, inverse = np.unique(keys, return_inverse=True)
+    m = len(uniq)
+    rows, cols = [np.arange(m)], [np.arange(m)]
+    d = np.array([-1, 0, 1], dtype=np.int64)
+    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
+    offsets = ((di << (2 * bits)) + (dj << bits) + dk).ravel()
+    for off in offsets[offsets > 0]:
+        target = uniq + off
+        pos = np.clip(np.searchsorted(uniq, target), 0, m - 1)
+        found = np.flatnonzero(uniq[pos] == target)
+        rows.append(found)
+        cols.append(pos[found])
+    r = np.concatenate(rows)
+    c = np.concatenate(cols)
+    graph = sparse.coo_matrix((np.ones(len(r), dtype=np.int8), (r, c)), shape=(m, m))
+    _, labels = connected_components(graph, directed=False)
+    return labels[inverse].astype(np.int64)
+
+
+@dataclass
+class ColumnGrid:
+    """Vertical columns of above-ground points on a 2D grid."""
+
+    frame: GridFrame
+    top: np.ndarray     # highest HAG per cell [m] (NaN empty)
+    bottom: np.ndarray  # lowest HAG per cell [m]
+    fill: np.ndarray    # share of occupied 1 m slices between bottom and top
+    count: np.ndarray
+
+
+def column_grid(xy: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
+    """Per-cell top, bottom, point count and vertical fill of points (HAG in metres)."""
+    flat = frame.flat_index(xy)
+    size = frame.size
+    top = cell_max(flat, hag, size)
+    bottom = cell_min(flat, hag, size)
+    count = np.bincount(flat, minlength=size)
+    slices = np.floor(hag).astype(np.int64)
+    slices -= slices.min() if len(slices) else 0
+    pair = np.unique(flat.astype(np.int64) * (int(slices.max(initial=0)) + 1) + slices)
+    occupied = np.bincount(pair // (int(slices.max(initial=0)) + 1), minlength=size)
+    with np.errstate(invalid="ignore"):
+        span = np.floor(top) - np.floor(bottom) + 1
+        fill = np.where(count > 0, occupied / span, 0.0)
+    shape = frame.shape
+    return ColumnGrid(frame, top.reshape(shape), bottom.reshape(shape), fill.reshape(shape),
+                      count.reshape(shape))
+
+
+@dataclass
+class WireSegment:
+    """A wire segment: straight in plan, a polynomial z(s) in its vertical plane."""
+
+    centre: np.ndarray     # xy of the segment's mean [m]
+    direction: np.ndarray  # unit xy direction
+    s_range: tuple[float, float]  # along-track extent [m]
+    z_coef: np.ndarray     # polynomial coefficients of z(s), highest power first [m]
+    rms_m: float
+
+
+def _segment_geometry(xy: np.ndarray, labels: np.ndarray, m: int):
+    """Vectorised per-label principal direction, along-track range and across-track spread."""
+    n = np.bincount(labels, minlength=m).astype(np.float64)
+    mx = np.bincount(labels, xy[:, 0], m) / n
+    my = np.bincount(labels, xy[:, 1], m) / n
+    dx = xy[:, 0] - mx[labels]
+    dy = xy[:, 1] - my[labels]
+    cxx = np.bincount(labels, dx * dx, m) / n
+    cyy = np.bincount(labels, dy * dy, m) / n
+    cxy = np.bincount(labels, dx * dy, m) / n
+    theta = 0.5 * np.arctan2(2 * cxy, cxx - cyy)
+    c, s = np.cos(theta), np.sin(theta)
+    along = dx * c[labels] + dy * s[labels]
+    across = -dx * s[labels] + dy * c[labels]
+    smin = np.full(m, np.inf)
+    smax = np.full(m, -np.inf)
+    np.minimum.at(smin, labels, along)
+    np.maximum.at(smax, labels, along)
+    width = np.sqrt(np.bincount(labels, across * across, m) / n)
+    return n, np.c_[mx, my], np.c_[c, s], smin, smax, width, along
+
+
+def _chain_segments(xyz: np.ndarray, direction: np.ndarray, seed_idx: np.ndarray, link: float,
+                    opts: ClassifyOptions, is_wire: np.ndarray, segment_id: np.ndarray,
+                    segments: list[WireSegment]) -> None:
+    """Chain seed points into wire segments (updates ``is_wire``, ``segment_id``, ``segments``).
+
+    Rounds: whole chains first, then chains cut into 60 m and 20 m pieces along their
+    principal direction (bends at angle structures, chains joined through crossarms) and
+    re-chained inside each piece. A piece is a wire segment when it is long, thin and close to
+    a straight line (pieces under 40 m) or a parabola in its vertical plane.
+    """
+    pts = xyz[seed_idx]
+    labels = voxel_components(pts, link)
+    for chunk in (None, 60.0, 20.0):
+        if chunk is not None:
+            pending = np.flatnonzero(labels >= 0)
+            if len(pending) == 0:
+                break
+            lab = labels[pending]
+            _, lab = np.unique(lab, return_inverse=True)
+            m = int(lab.max()) + 1
+            *_, smin, _, _, along = _segment_geometry(pts[pending, :2], lab, m)
+            piece = np.floor((along - smin[lab]) / chunk).astype(np.int64)
+            sub = voxel_components(pts[pending], link, group=lab * 1_000_000 + piece)
+            labels = np.full(len(pts), -1, dtype=np.int64)
+            labels[pending] = sub
+        live = np.flatnonzero(labels >= 0)
+        if len(live) == 0:
+            break
+        _, lab = np.unique(labels[live], return_inverse=True)
+        m = int(lab.max()) + 1
+        count, centre, direction_xy, smin, smax, width, along = _segment_geometry(
+            pts[live, :2], lab, m)
+        long_enough = (smax - smin >= opts.wire_min_length_m) & (count >= 5)
+        candidate = long_enough & (width <= opts.wire_max_width_m)
+        order = np.argsort(lab, kind="stable")
+        bounds = np.searchsorted(lab[order], np.arange(m + 1))
+        done = ~long_enough  # too short: dropped in every round
+        for label in np.flatnonzero(candidate):
+            members = order[bounds[label]:bounds[label + 1]]
+            # members must run along the segment (drops crossarms and insulator strings)
+            local = direction[seed_idx[live[members]], :2]
+            run = np.abs(local @ direction_xy[label]) / np.maximum(np.hypot(*local.T), 1e-9)
+            members = members[run >= 0.9]
+            if len(members) < 5:
+                continue
+            s = along[members]
+            z = pts[live[members], 2]
+            degree = 2 if smax[label] - smin[label] >= 40.0 else 1
+            coef = np.polyfit(s, z, degree)
+            resid = z - np.polyval(coef, s)
+            rms = float(np.sqrt(np.mean(resid**2)))
+            if rms > opts.wire_max_rms_m:
+                continue
+            keep = np.abs(resid) <= max(4 * rms, 0.15)
+            sid = len(segments)
+            segments.append(WireSegment(centre[label], direction_xy[label],
+                                        (float(smin[label]), float(smax[label])), coef, rms))
+            target = seed_idx[live[members[keep]]]
+            is_wire[target] = True
+            segment_id[target] = sid
+            done[label] = True
+        finished = done[lab]
+        labels[live[finished]] = -1
+
+
+def frame_for_points(xy: np.ndarray, cell: float) -> GridFrame:
+    """An axis-aligned bucket grid over ``xy`` (for gathering points near a curve)."""
+    return GridFrame(np.zeros(2), np.eye(2), xy.min(axis=0) - cell, cell,
+                     tuple(int(v) for v in np.ceil(np.ptp(xy, axis=0) / cell) + 3))
+
+
+def find_wires(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, filled_column: np.ndarray,
+               opts: ClassifyOptions) -> tuple[np.ndarray, np.ndarray, list[WireSegment]]:
+    """Wire points among above-ground points.
+
+    Parameters
+    ----------
+    xyz
+        Above-ground points. [m], shape (n, 3)
+    hag
+        Their height above ground. [m]
+    feats
+        Their eigen features.
+    filled_column
+        True for points in filled columns (not used as seeds).
+    opts
+        Options.
+
+    Returns
+    -------
+    is_wire, segment_id, segments
+        Wire mask, the segment each wire point belongs to (-1 elsewhere), the segments.
+    """
+    n = len(xyz)
+    is_wire = np.zeros(n, bool)
+    segment_id = np.full(n, -1, dtype=np.int64)
+    seed = ((hag >= opts.wire_min_hag_m) & (feats.linearity >= opts.wire_min_linearity)
+            & (np.abs(feats.direction[:, 2]) <= opts.wire_max_direction_dip)
+            & (feats.count >= 2) & ~filled_column)
+    seed_idx = np.flatnonzero(seed)
+    segments: list[WireSegment] = []
+    if len(seed_idx) < 3:
+        return is_wire, segment_id, segments
+    for link in (opts.wire_link_m, opts.wire_sparse_link_m):
+        left = np.flatnonzero(~is_wire[seed_idx])
+        if len(left) < 3:
+            break
+        _chain_segments(xyz, feats.direction, seed_idx[left], link, opts, is_wire, segment_id,
+                        segments)
+    if not segments:
+        return is_wire, segment_id, segments
+    # follow every segment along its curve past its ends
+    eligible = np.flatnonzero(hag >= opts.wire_min_hag_m - opts.wire_tolerance_z_m)
+    if len(eligible) == 0:
+        return is_wire, segment_id, segments
+    bucket = frame_for_points(xyz[eligible, :2], 2.0)
+    cell_of = bucket.flat_index(xyz[eligible, :2])
+    order = np.argsort(cell_of, kind="stable")
+    first = np.searchsorted(cell_of[order], np.arange(bucket.size + 1))
+    ring = np.array([(a, b) for a in (-1, 0, 1) for b in (-1, 0, 1)])
+    for sid, seg in enumerate(segments):
+        s0 = seg.s_range[0] - opts.wire_gap_m
+        s1 = seg.s_range[1] + opts.wire_gap_m
+        stations = np.arange(s0, s1 + 1.0, 1.0)
+        centres = seg.centre + stations[:, None] * seg.direction
+        ci, cj = bucket.index(centres)
+        ci = (ci[:, None] + ring[:, 0]).ravel()
+        cj = (cj[:, None] + ring[:, 1]).ravel()
+        ok = (ci >= 0) & (ci < bucket.shape[0]) & (cj >= 0) & (cj < bucket.shape[1])
+        cells = np.unique(ci[ok] * bucket.shape[1] + cj[ok])
+        lens = first[cells + 1] - first[cells]
+        if lens.sum() == 0:
+            continue
+        offsets = np.repeat(first[cells] - np.cumsum(lens) + lens, lens)
+        cand = order[offsets + np.arange(lens.sum())]
+        pts = xyz[eligible[cand]]
+        d = pts[:, :2] - seg.centre
+        s = d @ seg.direction
+        t = d @ np.array([-seg.direction[1], seg.direction[0]])
+        on = ((s >= s0) & (s <= s1) & (np.abs(t) <= opts.wire_tolerance_xy_m)
+              & (np.abs(pts[:, 2] - np.polyval(seg.z_coef, s)) <= opts.wire_tolerance_z_m))
+        idx = eligible[cand[on]]
+        # not points that clearly run another way (insulator strings, crossarms, bracing)
+        dirs = feats.direction[idx]
+        run = np.abs(dirs[:, :2] @ seg.direction)
+        idx = idx[(feats.linearity[idx] < opts.wire_min_linearity) | (run >= 0.9)]
+        new = idx[~is_wire[idx]]
+        is_wire[new] = True
+        segment_id[new] = sid
+    return is_wire, segment_id, segments
+
+
+def shield_wires(segments: list[WireSegment], opts: ClassifyOptions,
+                 lateral_m: float = 15.0) -> np.ndarray:
+    """Which wire segments are shield (earth) wires: topmost, above at least one lower wire.
+
+    Each segment is sampled at 9 stations; every other segment whose plan line passes within
+    ``lateral_m`` of a station (inside its along-track range) gives its fitted height there.
+    A segment is a shield wire when no other segment is higher than it by more than 0.5 m at
+    any station and some other segment is lower by at least ``shield_min_gap_m``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Boolean per segment.
+    """
+    m = len(segments)
+    if m < 2:
+        return np.zeros(m, bool)
+    centre = np.array([g.centre for g in segments])
+    direction = np.array([g.direction for g in segments])
+    s0 = np.array([g.s_range[0] for g in segments])
+    s1 = np.array([g.s_range[1] for g in segments])
+    coef = np.zeros((m, 3))
+    for i, g in enumerate(segments):
+        coef[i, 3 - len(g.z_coef):] = g.z_coef
+    frac = np.linspace(0.05, 0.95, 9)
+    st = s0[:, None] + frac[None, :] * (s1 - s0)[:, None]                 # (m, 9)
+    xy = centre[:, None, :] + st[..., None] * direction[:, None, :]       # (m, 9, 2)
+    z = coef[:, 0, None] * st**2 + coef[:, 1, None] * st + coef[:, 2, None]
+    d = xy[:, :, None, :] - centre[None, None, :, :]                        # (m, 9, m, 2)
+    sb = np.einsum("aikx,kx->aik", d, direction)
+    tb = np.einsum("aikx,kx->aik", d, np.c_[-direction[:, 1], direction[:, 0]])
+    zb = coef[None, None, :, 0] * sb**2 + coef[None, None, :, 1] * sb + coef[None, None, :, 2]
+    overlap = (sb >= s0[None, None, :]) & (sb <= s1[None, None, :]) & (np.abs(tb) <= lateral_m)
+    overlap &= ~np.eye(m, dtype=bool)[:, None, :]
+    dz = z[:, :, None] - zb
+    higher_other = (overlap & (dz < -0.5)).any(axis=(1, 2))
+    lower_other = (overlap & (dz >= opts.shield_min_gap_m)).any(axis=(1, 2))
+    return lower_other & ~higher_other
+
+
+def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
+                    scattering: np.ndarray, frame: GridFrame, opts: ClassifyOptions) -> np.ndarray:
+    """Transmission-structure points (towers, poles, their crossarms) among above-ground points.
+
+    A structure is a connected group of tall filled columns that is slender, near wires and
+    made of members (lattice bars, pole surfaces) rather than foliage: the median scattering
+    :math:`\\lambda_3/\\lambda_1` of its points is low (tree crowns scatter in 3D).
+    Returns a boolean mask over ``xyz``.
+    """
+    n = len(xyz)
+    structure = np.zeros(n, bool)
+    other = np.flatnonzero(~is_wire)
+    if len(other) == 0:
+        return structure
+    cols = column_grid(xyz[other, :2], hag[other], frame)
+    top = np.nan_to_num(cols.top)
+    extent = top - np.nan_to_num(cols.bottom)
+    tall = ((top >= opts.structure_min_height_m) & (cols.fill >= opts.column_min_fill)
+            & (extent >= 0.5 * top))
+    labels, m = ndimage.label(tall, structure=np.ones((3, 3)))
+    if m == 0:
+        return structure
+    index = np.arange(1, m + 1)
+    cell_area = frame.cell**2
+    area = ndimage.sum_labels(np.ones_like(cols.top), labels, index) * cell_area
+    height = ndimage.maximum(np.nan_to_num(cols.top), labels, index)
+    accept = ((height >= opts.structure_min_height_m) & (area <= opts.structure_max_footprint_m2)
+              & (height / np.sqrt(area) >= opts.structure_min_slenderness))
+    if is_wire.any():
+        wire_flat = frame.flat_index(xyz[is_wire, :2])
+        wire_grid = np.zeros(frame.size, bool)
+        wire_grid[wire_flat] = True
+        reach = max(1, int(np.ceil(opts.structure_wire_search_m / frame.cell)))
+        near = ndimage.binary_dilation(wire_grid.reshape(frame.shape),
+                                       structure=np.ones((2 * reach + 1, 2 * reach + 1), bool))
+        accept &= ndimage.maximum(near.astype(np.int8), labels, index) > 0
+    flat_other = frame.flat_index(xyz[other, :2])
+    point_label = labels.ravel()[flat_other]
+    labelled = point_label > 0
+    if labelled.any():
+        median_scatter = ndimage.median(scattering[other[labelled]], point_label[labelled], index)
+        accept &= np.nan_to_num(np.asarray(median_scatter, float), nan=1.0) <= opts.structure_max_scattering
+    if not accept.any():
+        return structure
+    core = np.isin(labels, index[accept])
+    # the base of a lattice tower is wider than its body: grow through 3D-connected points
+    # that stay within a few cells of the tall core
+    spread = max(1, int(np.ceil(8.0 / frame.cell)))
+    dist = ndimage.distance_transform_edt(~core)
+    region = dist <= spread
+    in_region = region.ravel()[flat_other]
+    in_core = core.ravel()[flat_other]
+    cand = other[in_region]
+    if len(cand):
+        comp = voxel_components(xyz[cand], 1.0)
+        touching = np.unique(comp[in_core[in_region]])
+        structure[cand[np.isin(comp, touching)]] = True
+    # wire points inside the tall core (crossarms, insulators, attachment hardware)
+    wire_idx = np.flatnonzero(is_wire)
+    structure[wire_idx[core.ravel()[frame.flat_index(xyz[wire_idx, :2])]]] = True
+    return structure
+
+
+def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free: np.ndarray,
+                   frame: GridFrame, opts: ClassifyOptions) -> np.ndarray:
+    """Building points among ``free`` above-ground points (planar roofs of enough area)."""
+    building = np.zeros(len(xyz), bool)
+    high = np.flatnonzero(free & (hag >= opts.building_min_hag_m))
+    if len(high) == 0:
+        return building
+    grid = frame.with_cell(opts.building_cell_m)
+    flat = grid.flat_index(xyz[high, :2])
+    roof_like = ((feats.planarity[high] >= opts.building_min_planarity)
+                 & (np.abs(feats.normal[high, 2]) >= 0.5))
+    count = np.bincount(flat, minlength=grid.size)
+    roof_count = np.bincount(flat, weights=roof_like, minlength=grid.size)
+    # vertical spread of a roof cell: noise plus the tilt of the roof plane across the cell
+    # (tan of the roof pitch from the normal); foliage spreads much more
+    nz = np.abs(feats.normal[high, 2])
+    zz = xyz[high, 2]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.bincount(flat, zz, grid.size) / count
+        var = np.bincount(flat, zz * zz, grid.size) / count - mean**2
+        pitch = np.bincount(flat, np.sqrt(np.maximum(1 - nz**2, 0)) / np.maximum(nz, 0.5),
+                            grid.size) / count
+    allowed = opts.building_max_roof_spread_m + 0.5 * grid.cell * np.nan_to_num(pitch)
+    spread = np.sqrt(np.maximum(np.nan_to_num(var), 0))
+    roof = (count >= 2) & (roof_count >= 0.6 * count) & (spread <= allowed)
+    roof = ndimage.binary_closing(roof.reshape(grid.shape), structure=np.ones((3, 3)))
+    labels, m = ndimage.label(roof, structure=np.ones((3, 3)))
+    if m == 0:
+        return building
+    index = np.arange(1, m + 1)
+    area = ndimage.sum_labels(np.ones(grid.shape), labels, index) * grid.cell**2
+    footprint = np.isin(labels, index[area >= opts.building_min_area_m2])
+    footprint = ndimage.binary_dilation(footprint, structure=np.ones((3, 3)))
+    building[high[footprint.ravel()[flat]]] = True
+    return building
+
+
+def vegetation_class(hag: np.ndarray, opts: ClassifyOptions) -> np.ndarray:
+    """ASPRS vegetation class by height above ground (bands documented in the options)."""
+    return np.where(hag < opts.low_vegetation_max_m, LOW_VEGETATION,
+                    np.where(hag < opts.medium_vegetation_max_m, MEDIUM_VEGETATION,
+                             HIGH_VEGETATION)).astype(np.uint8)
+
+
+def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, frame: GridFrame,
+                     opts: ClassifyOptions) -> tuple[np.ndarray, dict[str, int]]:
+    """ASPRS class of every above-ground point (wires, structures, buildings, vegetation).
+
+    Parameters
+    ----------
+    xyz
+        Above-ground points. [m], shape (n, 3)
+    hag
+        Their height above ground. [m]
+    feats
+        Their eigen features.
+    frame
+        Orientation of the column grids (cell from ``column_cell_m``).
+    opts
+        Options.
+
+    Returns
+    -------
+    classes, info
+        uint8 ASPRS class per point; counts of segments found (for the run record).
+    """
+    col_frame = frame.with_cell(opts.column_cell_m)
+    cols = column_grid(xyz[:, :2], hag, col_frame)
+    filled_cell = (cols.fill >= opts.column_min_fill) & (np.nan_to_num(cols.top) - np.nan_to_num(cols.bottom) >= 4.0)
+    filled_point = filled_cell.ravel()[col_frame.flat_index(xyz[:, :2])]
+    is_wire, segment_id, segments = find_wires(xyz, hag, feats, filled_point, opts)
+    structure = find_structures(xyz, hag, is_wire, feats.scattering, col_frame, opts)
+    is_wire &= ~structure
+    if structure.any() and is_wire.any() and segments:
+        # short "wire" segments lying mostly on a structure are its members (bracing, arms)
+        has_structure = np.zeros(col_frame.size, bool)
+        has_structure[col_frame.flat_index(xyz[structure, :2])] = True
+        footprint = ndimage.binary_dilation(has_structure.reshape(col_frame.shape),
+                                            structure=np.ones((3, 3), bool)).ravel()
+        w = np.flatnonzero(is_wire & (segment_id >= 0))
+        on = footprint[col_frame.flat_index(xyz[w, :2])]
+        m = len(segments)
+        share = (np.bincount(segment_id[w], weights=on, minlength=m)
+                 / np.maximum(np.bincount(segment_id[w], minlength=m), 1))
+        length = np.array([seg.s_range[1] - seg.s_range[0] for seg in segments])
+        member = (share >= 0.5) & (length < 15.0)
+        moved = w[member[segment_id[w]]]
+        structure[moved] = True
+        is_wire[moved] = False
+    free = ~is_wire & ~structure
+    building = find_buildings(xyz, hag, feats, free, frame, opts)
+    classes = vegetation_class(hag, opts)
+    classes[building] = BUILDING
+    classes[structure] = TRANSMISSION_TOWER
+    classes[is_wire] = WIRE_CONDUCTOR
+    if opts.detect_shield_wires and segments:
+        shield_segment = shield_wires(segments, opts)
+        shield = is_wire & (segment_id >= 0)
+        shield[shield] = shield_segment[segment_id[shield]]
+        classes[shield] = WIRE_GUARD
+    info = {"wire_segments": len(segments)}
+    return classes, info
