@@ -125,7 +125,7 @@ def _run_section(folder: OutputFolder, units: DisplayUnits) -> str:
         ("clearaudit version (audit run)", run.get("clearaudit_version", MISSING)),
         ("Command", run.get("command", MISSING)),
         ("Run started", run.get("started", MISSING)),
-        ("Output folder", folder.path.name),
+        ("Output folder", run.get("output_folder") or folder.path.name),
     ]
     parts = ['<section id="run"><h2>Survey and run</h2>', _kv_table(pairs)]
     inputs = run.get("inputs") or []
@@ -138,14 +138,26 @@ def _run_section(folder: OutputFolder, units: DisplayUnits) -> str:
              for i in inputs], numeric={2}))
     options = run.get("options") or {}
     if options:
+        # Plain options here; the line file and the rule set (long nested tables) are listed by
+        # name — run.json keeps every value with its source.
+        simple = [(k, _as_text(v)) for k, v in options.items()
+                  if not isinstance(v, (dict, list)) or k == "clouds"]
+        line_cfg = options.get("line_config") or {}
+        rule_set = options.get("rule_set") or {}
+        if line_cfg:
+            simple.append(("line file", _as_text(line_cfg.get("source") or "none (defaults)")))
+        if rule_set:
+            simple.append(("rule set", _as_text(rule_set.get("name") or rule_set.get("path")
+                                                or MISSING)
+                           + " — every value and its source are recorded in run.json"))
         parts.append("<h3>Options</h3>")
-        parts.append(_kv_table((k, _as_text(v)) for k, v in options.items()))
+        parts.append(_kv_table(simple))
     stages = run.get("stages") or []
     if stages:
         parts.append("<h3>Stages</h3>")
         parts.append(_table(["Stage", "Time", "Peak memory"],
                             [[s.get("name", ""), fmt_number(s.get("seconds"), 1, "s"),
-                              fmt_number(s.get("peak_memory_mb"), 0, "MB")] for s in stages],
+                              fmt_number(s.get("peak_memory_mb", s.get("peak_rss_mb")), 0, "MB")] for s in stages],
                             numeric={1, 2}))
     counts = run.get("class_counts") or {}
     if counts:

@@ -171,15 +171,33 @@ class OutputFolder:
         st = self.structures
         a = st.get(str(span.get("from_structure")))
         b = st.get(str(span.get("to_structure")))
-        if a is None or b is None:
+        ends = self._curve_ends(span)
+        if (a is None or b is None) and ends is None:
             return None
-        pa = self.to_local_m([[to_number(a.get("x")), to_number(a.get("y"))]])[0]
-        pb = self.to_local_m([[to_number(b.get("x")), to_number(b.get("y"))]])[0]
+        # A partial span has a virtual end where it runs off the survey: take that end from the
+        # fitted curves (their first/last vertices, averaged over the span's wires).
+        pa = (self.to_local_m([[to_number(a.get("x")), to_number(a.get("y"))]])[0]
+              if a is not None else ends[0])
+        pb = (self.to_local_m([[to_number(b.get("x")), to_number(b.get("y"))]])[0]
+              if b is not None else ends[1])
         d = pb - pa
         length = float(np.hypot(*d))
         if not np.isfinite(length) or length <= 0:
             return None
         return pa, d / length, length
+
+    def _curve_ends(self, span: dict) -> tuple[np.ndarray, np.ndarray] | None:
+        """Mean first and last plan vertices of the span's survey curves (local m), if any."""
+        firsts, lasts = [], []
+        for w in span.get("wires", []) or []:
+            curve = (w.get("curves") or {}).get("survey")
+            if curve and len(curve) >= 2:
+                firsts.append(curve[0][:2])
+                lasts.append(curve[-1][:2])
+        if not firsts:
+            return None
+        xy = self.to_local_m(np.array([np.mean(firsts, axis=0), np.mean(lasts, axis=0)]))
+        return xy[0], xy[1]
 
     def station_offset(self, span: dict, xy_local_m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Station along and offset across a span for points in local metres.

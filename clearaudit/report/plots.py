@@ -107,7 +107,7 @@ def plan_view(folder: OutputFolder, units: DisplayUnits) -> bytes:
         norm, cmap = _deficit_norm(folder, units)
         v = folder.violation_xyz_local_m() * f
         d = units.length(np.nan_to_num([to_number(r.get("deficit_m")) for r in folder.violations]))
-        sc = ax.scatter(v[:, 0], v[:, 1], c=d, cmap=cmap, norm=norm, s=30 + 90 * norm(d),
+        sc = ax.scatter(v[:, 0], v[:, 1], c=d, cmap=cmap, norm=norm, s=30 + 90 * np.clip(norm(d), 0.0, 1.0),
                         edgecolors="black", linewidths=0.6, zorder=5, label="violation")
         cb = fig.colorbar(sc, ax=ax, shrink=0.8, pad=0.02)
         cb.set_label(f"clearance deficit [{units.length_unit}]")
@@ -276,7 +276,8 @@ def span_profile(
     if not any(folder.curve_local_m(w, c) is not None for w in wires for c in ("survey", "mot")):
         ax.text(0.5, 0.92, "no wire fitted in this span", transform=ax.transAxes, ha="center",
                 va="top", color=theme.DARK_GREY, fontsize=10, style="italic")
-    ax.set_xlabel(f"distance from {span.get('from_structure')} [{units.length_unit}]")
+    start = span.get("from_structure") or "the survey edge (partial span)"
+    ax.set_xlabel(f"distance from {start} [{units.length_unit}]")
     ax.set_ylabel(f"elevation [{units.length_unit}]")
     title = f"Span {span_id}"
     if math.isfinite(length):
