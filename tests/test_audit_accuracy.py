@@ -236,7 +236,7 @@ def test_mot_sag_matches_truth_for_well_covered_deadend_spans(scene):
 def test_fall_in_tree_reported(scene):
     planted = [t for t in scene.corridor.truth["planted_trees"] if t["kind"] == "fall_in"]
     assert planted
-    rows = [r for r in scene.result.violations if r["fall_in"]]
+    rows = [r for r in scene.result.violations + scene.result.hazard_trees if r["fall_in"]]
     for tree in planted:
         xy = np.array(tree["xy_local_m"])
         assert any(np.hypot(*(r["point_local"][:2] - xy)) < tree["crown_radius_m"] + 3.0

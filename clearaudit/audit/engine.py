@@ -156,6 +156,9 @@ class AuditResult:
         Counts and notes for the terminal and the report.
     rules
         The rule set name, path and overrides used.
+    hazard_trees
+        Trees clear of every requirement but tall enough to fall into the line (same columns
+        as violations, ``finding = "fall_in"``), ranked among themselves.
     """
 
     survey_temperature: dict
@@ -166,6 +169,7 @@ class AuditResult:
     ground_profiles: dict[str, np.ndarray]
     summary: dict
     rules: dict = field(default_factory=dict)
+    hazard_trees: list[dict] = field(default_factory=list)
 
 
 def default_insulator_length_m(voltage_kv: float) -> float:
@@ -462,8 +466,14 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
             row["grow_in_years"] = gap / opts.growth_rate_m_per_year
         else:
             row["grow_in_years"] = None
-    rows = rank_findings(rows)
+    # Clearance violations (found or possible) and hazard trees (tall enough to fall into the
+    # line but clear of every requirement) are ranked separately: a hazard tree is a work item
+    # for the vegetation crews, not a clearance violation.
+    hazard_trees = rank_findings([r for r in rows if r["finding"] == "fall_in"])
+    rows = rank_findings([r for r in rows if r["finding"] != "fall_in"])
     for n, row in enumerate(rows, start=1):
+        row["id"] = n
+    for n, row in enumerate(hazard_trees, start=1):
         row["id"] = n
 
     # ---- 6. span rows, curves, profiles
@@ -472,13 +482,13 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
               for st in states}
     profiles = _ground_profiles(model, ground_model, groups.get("ground"))
 
-    summary = _summary(rows, states, span_rows, survey_t, notes, trees_info, rules, voltage,
-                       altitude, altitude_note, insulator)
+    summary = _summary(rows + hazard_trees, states, span_rows, survey_t, notes, trees_info,
+                       rules, voltage, altitude, altitude_note, insulator)
     return AuditResult(
         survey_temperature={k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
         conditions={name: spec.as_dict() for name, spec in specs.items()},
         span_rows=span_rows, violations=rows, curves=curves, ground_profiles=profiles,
-        summary=summary, rules=rules.describe())
+        summary=summary, rules=rules.describe(), hazard_trees=hazard_trees)
 
 
 def _findings(idx, state, cond, d, required, ci, frac, key) -> Findings:
