@@ -74,6 +74,9 @@ def cmd_audit(args: argparse.Namespace) -> int:
         max_operating_temperature_c=args.mot_c, structures_file=args.structures,
         overwrite=args.overwrite, workers=args.workers, scheduler=args.scheduler,
         corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
+        tiled=True if args.tiled else None, work_dir=Path(args.work_dir) if args.work_dir else None,
+        **({"tile_points": args.tile_points} if args.tile_points else {}),
+        **({"tile_overlap_m": args.tile_overlap_m} if args.tile_overlap_m is not None else {}),
     )
     result = run_audit(options, console=_console())
     return 0 if result is not None else 1
@@ -161,6 +164,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=0,
                    help="run on a local Dask cluster with N workers (0: in-process)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster")
+    p.add_argument("--tiled", action="store_true",
+                   help="bounded-memory run in tiles even for a small survey (automatic above "
+                        "20 million points or with --workers/--scheduler)")
+    p.add_argument("--tile-points", type=int, metavar="N",
+                   help="largest number of points owned by one tile (default 1500000)")
+    p.add_argument("--tile-overlap-m", type=float, metavar="M",
+                   help="context read around each tile [m] (default 40)")
+    p.add_argument("--work-dir", metavar="DIR",
+                   help="folder for the temporary tile files (default: beside --out; must be "
+                        "reachable by every Dask worker)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
     p.set_defaults(func=cmd_audit)

@@ -179,8 +179,13 @@ def _wire_layers(cloud: Cloud, model_doc: dict) -> Layer:
 
 def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, config: Any,
                   conductors: dict, rules: Any, record: Any, *, tolerance_rows=None,
-                  progress=None) -> dict:
-    """Write every output file into ``out``; returns the summary for the terminal."""
+                  progress=None, classified_writer=None) -> dict:
+    """Write every output file into ``out``; returns the summary for the terminal.
+
+    ``classified_writer(path)``, when given, writes ``classified.laz`` instead of
+    :func:`~clearaudit.io.las.write_classified` (the tiled run streams it from its tiles; then
+    ``cloud`` may hold no points and ``cls`` only needs ``counts``).
+    """
     out = Path(out)
     span_rows = span_rows_crs(cloud, audit.span_rows)
     write_csv(out / "spans.csv", span_rows, SPAN_COLUMNS + SPAN_EXTRA_COLUMNS)
@@ -220,9 +225,12 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
         from .audit.tolerance import TOLERANCE_COLUMNS
 
         write_csv(out / "tolerance.csv", tolerance_rows, TOLERANCE_COLUMNS)
-    write_classified(cloud, out / "classified.laz", cls.classification,
-                     {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
-                                              "height above ground [m]")})
+    if classified_writer is not None:
+        classified_writer(out / "classified.laz")
+    else:
+        write_classified(cloud, out / "classified.laz", cls.classification,
+                         {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
+                                                  "height above ground [m]")})
     return {"line": config.line.name, "spans": len(model.spans),
             "wires": len(span_rows),
             "fitted": sum(r.get("status") == "fitted" for r in span_rows),

@@ -17,7 +17,6 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import platform
-import resource
 import shutil
 import sys
 import tempfile
@@ -55,6 +54,14 @@ class AuditOptions:
     scheduler: str | None = None
     corridor_buffer_m: float = 60.0
     skip_report: bool = False
+    #: Tiled (bounded-memory) run: None = automatic (tiled with Dask or above
+    #: ``in_memory_max_points``), True / False to force it.
+    tiled: bool | None = None
+    tile_points: int = 1_500_000
+    tile_cell_m: float = 100.0
+    tile_overlap_m: float = 40.0
+    in_memory_max_points: int = 20_000_000
+    work_dir: Path | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {k: (str(v) if isinstance(v, Path) else
@@ -75,14 +82,19 @@ class RunRecord:
     extra: dict[str, Any] = field(default_factory=dict)
 
     @contextmanager
-    def stage(self, name: str, progress=None):
+    def stage(self, name: str, progress=None, engine=None):
         t0 = time.perf_counter()
+        entry: dict[str, Any] = {"name": name}
         try:
-            yield
+            yield entry
         finally:
-            peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-            self.stages.append({"name": name, "seconds": round(time.perf_counter() - t0, 3),
-                                "peak_rss_mb": round(peak_kb / 1024.0, 1)})
+            from .tiling import peak_rss_mb
+
+            entry.update({"seconds": round(time.perf_counter() - t0, 3),
+                          "peak_rss_mb": round(peak_rss_mb(), 1)})
+            if engine is not None and engine.name != "in-process":
+                entry["worker_peak_rss_mb"] = engine.worker_peak_memory_mb()
+            self.stages.append(entry)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -210,6 +222,22 @@ def run_audit(options: AuditOptions, console=None):
         record.options["line_config"] = config.to_dict()
         record.options["rule_set"] = rules.describe()
 
+    total_points = sum(_header_point_count(p) for p in paths)
+    tiled = options.tiled
+    if tiled is None:
+        tiled = bool(options.workers or options.scheduler) or \
+            total_points > options.in_memory_max_points
+    record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
+                                 "header_points": total_points}
+    if tiled:
+        summary = _run_tiled(options, record, paths, config, structures_rows, conductors, rules,
+                             console)
+        if console is not None:
+            from .outputs import print_summary
+
+            print_summary(console, summary, options.out, options.units)
+        return options.out
+
     with atomic_output_dir(options.out, options.overwrite) as tmp, _progress_bar(console) as bar:
         # ---- read
         with record.stage("read"):
@@ -294,6 +322,236 @@ def run_audit(options: AuditOptions, console=None):
 
         print_summary(console, summary, options.out, options.units)
     return options.out
+
+
+def _header_point_count(path: Path) -> int:
+    import laspy
+
+    from .io.las import _las_errors
+
+    with _las_errors(path, "open"), laspy.open(str(path)) as reader:
+        return int(reader.header.point_count)
+
+
+def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
+               structures_rows: list[dict] | None, conductors: dict, rules: Any,
+               console=None) -> dict:
+    """The bounded-memory run: split once, classify and audit per tile, merge, stream out.
+
+    See docs/scaling.md. Each stage's tasks run on the engine (in-process or Dask); only
+    paths, tile specs and small summaries go to and from the tasks.
+    """
+    from .classify import ClassifyOptions
+    from .cloud import Cloud
+    from .distributed import engine_for
+    from .io.las import read_setup, write_classified_stream
+    from .model import build_line_model
+    from .tiling import (
+        Corridor,
+        Grid,
+        TileContext,
+        TileResults,
+        audit_tile,
+        classify_tile,
+        finish_audit,
+        plan_parts,
+        plan_tiles,
+        prepare_audit,
+        split_part,
+        tile_audit_input,
+        write_cell_offsets,
+    )
+
+    work_parent = Path(options.work_dir) if options.work_dir else Path(options.out).parent
+    work_parent.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix=".clearaudit-work-", dir=work_parent))
+    try:
+        with engine_for(options.workers, options.scheduler) as engine, \
+                atomic_output_dir(options.out, options.overwrite) as tmp, \
+                _progress_bar(console) as bar:
+            record.extra["execution"].update(engine.describe())
+            # ---- read: split every input once into cell buckets (parallel over ranges)
+            with record.stage("read", engine=engine) as entry:
+                setup = read_setup(paths, crs=options.crs)
+                corridor = None
+                if structures_rows and options.corridor_buffer_m > 0:
+                    poly = np.array([[r["x"], r["y"]] for r in structures_rows])
+                    corridor = Corridor(poly, options.corridor_buffer_m / setup.horizontal_unit_m)
+                grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]),
+                            float(options.tile_cell_m))
+                part_points = max(1_000_000, -(-setup.total_points // (4 * engine.n_workers)))
+                # the plan never depends on the engine: a Dask run equals the in-process run
+                tile_points = options.tile_points
+                parts = plan_parts(setup, min(part_points, 10_000_000))
+                task = bar.add_task("read", total=setup.total_points, rate="")
+                progress = _stage_progress(bar, task)
+                cells: dict[tuple[int, int], int] = {}
+                decoded = kept = 0
+                for _, res in engine.run([(split_part, (str(work), setup, p, grid, corridor), {})
+                                          for p in parts]):
+                    for c, n in res["cells"].items():
+                        cells[c] = cells.get(c, 0) + n
+                    decoded += res["decoded"]
+                    kept += res["kept"]
+                    progress(decoded, setup.total_points)
+                for info, rec_in in zip(setup.sources, record.inputs, strict=False):
+                    rec_in.update({"sha256": info.sha256, "point_count": info.point_count,
+                                   "point_format": info.point_format, "las_version": info.version,
+                                   "crs": info.crs_origin})
+                if kept == 0:
+                    label = str(paths[0]) if len(paths) == 1 else \
+                        f"{paths[0]} (+{len(paths) - 1} more files)"
+                    raise InputError(label, "contains no points inside the area kept "
+                                            f"(0 of {decoded} points kept)")
+                tiles = plan_tiles(cells, grid, tile_points, options.tile_overlap_m)
+                for t in tiles:
+                    write_cell_offsets(work, t)
+                record.extra["points_read"] = kept
+                record.extra["crs"] = None if setup.crs is None else setup.crs.to_string()
+                record.extra["horizontal_unit_m"] = setup.horizontal_unit_m
+                record.extra["vertical_unit_m"] = setup.vertical_unit_m
+                entry["parts"] = len(parts)
+                entry["tiles"] = len(tiles)
+                record.extra["tiles"] = {
+                    "count": len(tiles), "cell_m": options.tile_cell_m,
+                    "overlap_m": options.tile_overlap_m, "target_points": tile_points,
+                    "largest_points": max(t.n_points for t in tiles)}
+            ctx = TileContext(origin=setup.origin, crs=setup.crs,
+                              horizontal_unit_m=setup.horizontal_unit_m,
+                              vertical_unit_m=setup.vertical_unit_m)
+            frame = Cloud(xyz=np.zeros((0, 3)), origin=setup.origin, crs=setup.crs,
+                          horizontal_unit_m=setup.horizontal_unit_m,
+                          vertical_unit_m=setup.vertical_unit_m, sources=list(setup.sources))
+            given_xy = None
+            if structures_rows:
+                given_xy = np.array([frame.from_crs(np.array([r["x"], r["y"], setup.origin[2]]))[:2]
+                                     for r in structures_rows])
+
+            # ---- classify: one task per tile
+            with record.stage("classify", engine=engine):
+                task = bar.add_task("classify", total=kept, rate="")
+                progress = _stage_progress(bar, task)
+                copts = ClassifyOptions(trust_classes=config.trust_classes)
+                results: list[dict | None] = [None] * len(tiles)
+                done = 0
+                for k, res in engine.run([(classify_tile, (str(work), t, ctx, copts, given_xy), {})
+                                          for t in tiles]):
+                    results[k] = res
+                    done += res["n_owned"]
+                    progress(done, kept)
+                counts: dict[int, int] = {}
+                timings: dict[str, float] = {}
+                for res in results:
+                    for c, n in res["counts"].items():
+                        counts[c] = counts.get(c, 0) + n
+                    for name, sec in res["timings_s"].items():
+                        timings[name] = round(timings.get(name, 0.0) + sec, 4)
+                record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}
+                notes = [r["note"] for r in results if r.get("note")]
+                if notes:
+                    record.extra["tile_notes"] = notes
+                record.extra["classification"] = {"options": results[0]["options"],
+                                                  "timings_s": timings,
+                                                  "context_points": sum(r["n_context"]
+                                                                        for r in results)}
+
+            # ---- model: from the gathered wire / structure / insulator points
+            with record.stage("model", engine=engine):
+                task = bar.add_task("model", total=None, rate="")
+                model_cloud = Cloud(
+                    xyz=np.concatenate([r["model_xyz"] for r in results]).reshape(-1, 3),
+                    origin=setup.origin, crs=setup.crs,
+                    horizontal_unit_m=setup.horizontal_unit_m,
+                    vertical_unit_m=setup.vertical_unit_m,
+                    classification=np.concatenate([r["model_cls"] for r in results]),
+                    sources=list(setup.sources))
+                model_tile = np.concatenate([np.full(len(r["model_local"]), k)
+                                             for k, r in enumerate(results)]).astype(np.int64)
+                model_local = np.concatenate([r["model_local"] for r in results]).astype(np.int64)
+                structures_local = None
+                if structures_rows:
+                    structures_local = [{**r, "xy": xy} for r, xy in zip(structures_rows, given_xy,
+                                                                        strict=True)]
+                model = build_line_model(
+                    model_cloud, structures=structures_local,
+                    unit_weight_n_per_m={"phase": conductors["phase"].unit_weight_n_per_m,
+                                         "shield": conductors["shield"].unit_weight_n_per_m},
+                    bundle=config.phase.bundle, progress=_stage_progress(bar, task))
+                record.extra["model_points"] = model_cloud.n_points
+
+            # ---- audit: driver prepares the states; one task per tile; driver merges
+            with record.stage("audit", engine=engine):
+                task = bar.add_task("audit", total=kept, rate="")
+                progress = _stage_progress(bar, task)
+                ground_sample = np.concatenate([r["ground_z_sample"] for r in results])
+                plan = prepare_audit(model, config, conductors, rules, model_cloud, ground_sample)
+                other = np.zeros(model_cloud.n_points, dtype=bool)
+                for ow in model.other_wires:
+                    other[np.asarray(ow.point_indices, dtype=np.int64)] = True
+                jobs = []
+                for k, t in enumerate(tiles):
+                    local = model_local[other & (model_tile == k)]
+                    jobs.append(tile_audit_input(plan, model, t, local))
+                tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
+                audit_results: list[dict | None] = [None] * len(tiles)
+                done = 0
+                for k, res in engine.run([(audit_tile, (str(work), t, tiles_by_cell, j), {})
+                                          for t, j in zip(tiles, jobs, strict=True)]):
+                    audit_results[k] = res
+                    done += res["n_owned"]
+                    progress(done, kept)
+                audit = finish_audit(plan, model, conductors, rules, audit_results)
+
+            tolerance_rows = None
+            if config.design:
+                from .audit.tolerance import check_tolerance
+
+                with record.stage("tolerance"):
+                    tolerance_rows = check_tolerance(model, audit, config, conductors)
+
+            # ---- write: classified.laz streamed in input order from the tiles' results
+            with record.stage("write", engine=engine):
+                task = bar.add_task("write", total=setup.total_points, rate="")
+                progress = _stage_progress(bar, task)
+                from .outputs import write_outputs
+
+                lookup = TileResults(work, tiles)
+                written = [0]
+
+                def values(file_id: int, start: int, stop: int):
+                    written[0] += stop - start
+                    progress(written[0], setup.total_points)
+                    return lookup.values(file_id, start, stop)
+
+                def classified_writer(path: Path) -> None:
+                    write_classified_stream(
+                        setup.sources, path, values, crs=setup.crs,
+                        max_code=max(counts) if counts else 0,
+                        extra_dims={"height_above_ground": (np.float32,
+                                                            "height above ground [m]")})
+
+                cls_summary = _ClassCounts(counts)
+                summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
+                                        rules, record, tolerance_rows=tolerance_rows,
+                                        classified_writer=classified_writer)
+                if not options.skip_report:
+                    from .report import build_report
+
+                    build_report(tmp, units=options.units)
+                else:
+                    record.missing_stages.append("report (skipped by --no-report)")
+            (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1,
+                                                     default=_json_default), encoding="utf-8")
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return summary
+
+
+@dataclass
+class _ClassCounts:
+    """Stand-in for a ClassificationResult when the points stay in their tiles."""
+
+    counts: dict[int, int]
 
 
 def _json_default(o):

@@ -10,6 +10,11 @@ Verbs
 - :func:`write_cloud` — a Cloud as a new LAS/LAZ file.
 - :func:`write_classified` — every point of the original inputs, in input order, with new
   class codes and extra dimensions.
+- :func:`read_setup`, :func:`read_range` — the streaming reader behind tiled audits: the
+  common CRS, units and local origin of the inputs from their headers, then any range of one
+  file's points as local-metre chunks (LAZ chunk tables let a range start mid-file).
+- :func:`write_classified_stream` — like :func:`write_classified`, with the new codes asked
+  for chunk by chunk (memory bounded by the chunk, not the survey).
 
 Precision
 ---------
@@ -455,6 +460,170 @@ def read_cloud(
     )
 
 
+@dataclass(frozen=True)
+class ReadSetup:
+    """What a streaming read of several files shares: files, CRS, units, local origin.
+
+    Attributes
+    ----------
+    files
+        The input files in read order.
+    point_counts
+        Points per file (from the headers).
+    crs
+        The common CRS (``pyproj.CRS``) or None.
+    horizontal_unit_m, vertical_unit_m
+        Metres per CRS unit. [m/unit]
+    origin
+        Local origin (x, y, z). [CRS unit]
+    sources
+        One :class:`~clearaudit.cloud.SourceInfo` per file (``sha256`` filled when asked).
+    header_min, header_max
+        Bounds of all files from the headers, in local metres. [m]
+    """
+
+    files: tuple[Path, ...]
+    point_counts: tuple[int, ...]
+    crs: Any
+    horizontal_unit_m: float
+    vertical_unit_m: float
+    origin: np.ndarray
+    sources: tuple[SourceInfo, ...]
+    header_min: np.ndarray
+    header_max: np.ndarray
+
+    @property
+    def total_points(self) -> int:
+        return int(sum(self.point_counts))
+
+    @property
+    def unit_m(self) -> np.ndarray:
+        return np.array([self.horizontal_unit_m, self.horizontal_unit_m, self.vertical_unit_m])
+
+
+def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
+               origin: Sequence[float] | None = None, hashes: bool = True) -> ReadSetup:
+    """Prepare a streaming read from the headers alone (plus file hashes when asked).
+
+    Parameters
+    ----------
+    paths
+        Files and/or folders of tiles (see :func:`resolve_inputs`).
+    crs
+        CRS override, as in :func:`read_cloud`.
+    origin
+        Local origin in CRS units; default as in :func:`read_cloud` (the same origin, so a
+        streamed read and an in-memory read give identical local coordinates). [CRS unit]
+    hashes
+        Compute each file's SHA-256 (one pass over the file bytes, no decompression).
+
+    Returns
+    -------
+    ReadSetup
+
+    Raises
+    ------
+    InputError
+        As :func:`read_cloud` for missing files, CRS disagreements and empty inputs.
+    """
+    files = resolve_inputs(paths)
+    override = parse_crs_option(crs)
+    metas = _scan_headers(files, tolerate_bad_crs=override is not None)
+    the_crs = _resolve_crs(metas, override)
+    h_unit, v_unit = crs_units_m(the_crs, str(files[0]) if override is None else "--crs")
+    origin_arr = (_auto_origin(metas) if origin is None
+                  else np.asarray(origin, dtype=np.float64).reshape(3))
+    if sum(m.point_count for m in metas) == 0:
+        label = str(files[0]) if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more files)"
+        raise InputError(label, "contains no points")
+    unit = np.array([h_unit, h_unit, v_unit])
+    lo = np.min([np.asarray(m.header.mins, dtype=np.float64) for m in metas], axis=0)
+    hi = np.max([np.asarray(m.header.maxs, dtype=np.float64) for m in metas], axis=0)
+    sources = tuple(
+        SourceInfo(path=str(m.path), version=str(m.header.version),
+                   point_format=int(m.header.point_format.id), point_count=m.point_count,
+                   scales=tuple(float(v) for v in m.header.scales),
+                   offsets=tuple(float(v) for v in m.header.offsets),
+                   crs_wkt=None if m.crs is None else m.crs.to_wkt(),
+                   crs_origin="override" if override is not None else m.crs_origin,
+                   sha256=file_sha256(m.path) if hashes else None)
+        for m in metas)
+    return ReadSetup(files=tuple(files), point_counts=tuple(m.point_count for m in metas),
+                     crs=the_crs, horizontal_unit_m=h_unit, vertical_unit_m=v_unit,
+                     origin=origin_arr, sources=sources, header_min=(lo - origin_arr) * unit,
+                     header_max=(hi - origin_arr) * unit)
+
+
+def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
+               keep: Callable[[np.ndarray], np.ndarray] | None = None,
+               chunk_size: int = DEFAULT_CHUNK_SIZE):
+    """Stream points ``start:stop`` of one input file as local-metre chunks.
+
+    Parameters
+    ----------
+    setup
+        From :func:`read_setup`.
+    file_id
+        Index of the file in ``setup.files``.
+    start, stop
+        Point range (``stop`` None: to the end). LAZ files seek through their chunk table,
+        so a range is decompressed from its start, not from the start of the file. [points]
+    keep
+        Optional ``keep(xy_crs) -> bool mask``, as in :func:`read_cloud`.
+    chunk_size
+        Points decoded per step. [points]
+
+    Yields
+    ------
+    (xyz, classification, index, n_decoded)
+        ``xyz`` (m, 3) float64 local metres, ``classification`` uint8, ``index`` int64 point
+        index in the file, ``n_decoded`` the points decoded for this chunk (before ``keep``).
+
+    Notes
+    -----
+    Coordinates are computed from the integer records exactly as in :func:`read_cloud`, so
+    a point read here and read there has bit-identical local coordinates.
+    """
+    if chunk_size < 1:
+        raise ValueError("chunk_size must be a positive number of points")
+    path = setup.files[file_id]
+    count = setup.point_counts[file_id]
+    stop = count if stop is None else min(int(stop), count)
+    start = int(start)
+    if not 0 <= start <= stop:
+        raise ValueError("start must lie between 0 and stop")
+    unit = setup.unit_m
+    origin = setup.origin
+    with _open_reader(path) as reader:
+        shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
+        if start:
+            with _las_errors(path):
+                reader.seek(start)
+        position = start
+        while position < stop:
+            with _las_errors(path):
+                chunk = reader.read_points(min(chunk_size, stop - position))
+            m = len(chunk)
+            if m == 0:
+                raise InputError(path, f"is truncated or corrupt (header says {count} points, "
+                                       f"{position} could be read)")
+            local_x = shift.local(np.asarray(chunk.X), 0)
+            local_y = shift.local(np.asarray(chunk.Y), 1)
+            index = np.arange(position, position + m, dtype=np.int64)
+            if keep is not None:
+                xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
+                sel = np.flatnonzero(_call_keep(keep, xy_crs))
+            else:
+                sel = slice(None)
+            local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
+            xyz = np.empty((len(local_z), 3), dtype=np.float64)
+            xyz[:, 0] = local_x[sel] * unit[0]
+            xyz[:, 1] = local_y[sel] * unit[1]
+            xyz[:, 2] = local_z * unit[2]
+            yield (xyz, np.asarray(chunk.classification, dtype=np.uint8)[sel], index[sel], m)
+            position += m
+
+
 def _common_fields(metas: Sequence[_FileMeta], fields: Sequence[str]) -> list[str]:
     wanted = []
     for name in fields:
@@ -516,21 +685,32 @@ def corridor_mask(
     all_lo, all_hi = lo.min(axis=0), hi.max(axis=0)
     b2 = buffer * buffer
 
+    # sweep axis: the longer side of the polyline's box; each segment only looks at the points
+    # in its own slab along that axis (found by binary search), so the cost is about
+    # n log n + n * (segments overlapping a slab), not n * segments
+    axis = int(np.argmax(all_hi - all_lo))
+
     def keep(xy_crs: np.ndarray) -> np.ndarray:
         xy = np.asarray(xy_crs, dtype=np.float64)
         mask = np.zeros(len(xy), dtype=bool)
         inside = np.flatnonzero(np.all((xy >= all_lo) & (xy <= all_hi), axis=1))
         if len(inside) == 0:
             return mask
+        order = np.argsort(xy[inside, axis], kind="stable")
+        inside = inside[order]
         pts = xy[inside]
+        sweep = pts[:, axis]
         best = np.zeros(len(pts), dtype=bool)
         for a, b, l0, h0 in zip(starts, ends, lo, hi, strict=True):
-            cand = np.flatnonzero(
-                ~best & np.all((pts >= l0) & (pts <= h0), axis=1)
-            )
+            i0 = np.searchsorted(sweep, l0[axis], side="left")
+            i1 = np.searchsorted(sweep, h0[axis], side="right")
+            if i1 <= i0:
+                continue
+            slab = pts[i0:i1]
+            cand = np.flatnonzero(~best[i0:i1] & np.all((slab >= l0) & (slab <= h0), axis=1))
             if len(cand) == 0:
                 continue
-            p = pts[cand]
+            p = slab[cand]
             ab = b - a
             denom = float(ab @ ab)
             if denom > 0.0:
@@ -539,7 +719,7 @@ def corridor_mask(
             else:
                 nearest = a
             d2 = np.sum((p - nearest) ** 2, axis=1)
-            best[cand[d2 <= b2]] = True
+            best[i0 + cand[d2 <= b2]] = True
         mask[inside] = best
         return mask
 
@@ -910,40 +1090,13 @@ def write_classified(
     if n and (source_id.min() < 0 or source_id.max() >= len(cloud.sources)):
         raise ValueError("cloud.source_id refers to files not in cloud.sources")
 
-    metas = []
-    for info in cloud.sources:
-        src = Path(info.path)
-        if not src.exists():
-            raise InputError(src, "input file no longer exists; cannot write the classified copy")
-        with _open_reader(src) as reader:
-            header = reader.header
-        if int(header.point_count) != info.point_count:
-            raise InputError(src, f"has changed since it was read ({header.point_count} points "
-                                  f"now, {info.point_count} before)")
-        metas.append(_FileMeta(path=src, header=header, crs=None, crs_origin=""))
-
+    metas = _source_metas(cloud.sources)
     max_code = int(codes.max()) if n else 0
-    out_format = _common_point_format([m.header.point_format.id for m in metas], max_code)
-    version = max([str(m.header.version) for m in metas]
-                  + [laspy.point.dims.preferred_file_version_for_point_format(out_format)])
-    point_format = laspy.PointFormat(out_format)
-    new_extras = _prepare_extra_dims(extra_dims, n, point_format.dimension_names)
-    for dim in _union_extra_dims(metas, set(new_extras)):
-        point_format.dimensions.append(dim)
-    header = laspy.LasHeader(point_format=point_format, version=version)
-    header.system_identifier = "clearaudit"
-    header.generating_software = f"clearaudit {__version__}"[:32]
-    first = metas[0].header
-    header.global_encoding.gps_time_type = first.global_encoding.gps_time_type
-    scales = np.min([np.asarray(m.header.scales, dtype=np.float64) for m in metas], axis=0)
-    offsets = np.asarray(first.offsets, dtype=np.float64)
-    header.scales = scales
-    header.offsets = offsets
-    if cloud.crs is not None:
-        _add_crs(header, cloud.crs)
-    if new_extras:
-        header.add_extra_dims([laspy.ExtraBytesParams(name=k, type=v.dtype, description=d)
-                               for k, (v, d) in new_extras.items()])
+    new_extras = _prepare_extra_dims(extra_dims, n, laspy.PointFormat(
+        _common_point_format([m.header.point_format.id for m in metas], max_code)
+    ).dimension_names)
+    header = _classified_header(metas, cloud.crs, max_code,
+                                {k: (v.dtype, d) for k, (v, d) in new_extras.items()})
 
     order = np.argsort(source_id, kind="stable")
     bounds = np.searchsorted(source_id[order], np.arange(len(metas) + 1))
@@ -967,14 +1120,135 @@ def write_classified(
                 arr = np.full(count, fill, dtype=v.dtype)
                 arr[idx] = v[rows]
                 full_extras[k] = arr
-            _stream_file(writer, meta, has_new, new_codes, full_extras, chunk_size)
+
+            def values(start: int, stop: int, has_new=has_new, new_codes=new_codes,
+                       full_extras=full_extras):
+                sl = slice(start, stop)
+                return has_new[sl], new_codes[sl], {k: a[sl] for k, a in full_extras.items()}
+
+            _stream_file(writer, meta, values, chunk_size)
 
     _write_atomically(path, header, compress, produce)
     return path
 
 
-def _stream_file(writer: Any, meta: _FileMeta, has_new: np.ndarray, new_codes: np.ndarray,
-                 extras: dict[str, np.ndarray], chunk_size: int) -> None:
+def _source_metas(sources: Sequence[SourceInfo]) -> list[_FileMeta]:
+    """Re-open the input files of a read; they must still hold the points that were read."""
+    metas = []
+    for info in sources:
+        src = Path(info.path)
+        if not src.exists():
+            raise InputError(src, "input file no longer exists; cannot write the classified copy")
+        with _open_reader(src) as reader:
+            header = reader.header
+        if int(header.point_count) != info.point_count:
+            raise InputError(src, f"has changed since it was read ({header.point_count} points "
+                                  f"now, {info.point_count} before)")
+        metas.append(_FileMeta(path=src, header=header, crs=None, crs_origin=""))
+    return metas
+
+
+def _classified_header(metas: Sequence[_FileMeta], crs: Any, max_code: int,
+                       new_extras: dict[str, tuple[Any, str]]) -> Any:
+    """Header of the classified copy: common point format, finest scale, old + new extras."""
+    out_format = _common_point_format([m.header.point_format.id for m in metas], max_code)
+    version = max([str(m.header.version) for m in metas]
+                  + [laspy.point.dims.preferred_file_version_for_point_format(out_format)])
+    point_format = laspy.PointFormat(out_format)
+    for dim in _union_extra_dims(metas, set(new_extras)):
+        point_format.dimensions.append(dim)
+    header = laspy.LasHeader(point_format=point_format, version=version)
+    header.system_identifier = "clearaudit"
+    header.generating_software = f"clearaudit {__version__}"[:32]
+    first = metas[0].header
+    header.global_encoding.gps_time_type = first.global_encoding.gps_time_type
+    scales = np.min([np.asarray(m.header.scales, dtype=np.float64) for m in metas], axis=0)
+    header.scales = scales
+    header.offsets = np.asarray(first.offsets, dtype=np.float64)
+    if crs is not None:
+        _add_crs(header, crs)
+    if new_extras:
+        header.add_extra_dims([laspy.ExtraBytesParams(name=k, type=dtype, description=d)
+                               for k, (dtype, d) in new_extras.items()])
+    return header
+
+
+ChunkValues = Callable[[int, int, int], tuple[np.ndarray, np.ndarray, dict[str, np.ndarray]]]
+
+
+def write_classified_stream(
+    sources: Sequence[SourceInfo],
+    path: str | Path,
+    values: ChunkValues,
+    *,
+    crs: Any = None,
+    max_code: int = 255,
+    extra_dims: dict[str, tuple[Any, str]] | None = None,
+    chunk_size: int = DEFAULT_CHUNK_SIZE,
+) -> Path:
+    """Write every point of the input files with new codes asked for chunk by chunk.
+
+    Parameters
+    ----------
+    sources
+        The input files (as in ``Cloud.sources``), written in this order, each in its own
+        point order.
+    path
+        Output ``.las`` or ``.laz`` (temporary file in the same folder, renamed on success).
+    values
+        ``values(file_id, start, stop) -> (has_new, codes, extras)`` for the points
+        ``start:stop`` of file ``file_id``: ``has_new`` bool (stop - start,) marks points that
+        get a new code from ``codes`` (uint8, same shape); the others keep their own class.
+        ``extras`` maps each name of ``extra_dims`` to one value per point.
+    crs
+        CRS written into the header (None: no CRS record).
+    max_code
+        Largest class code that ``values`` can return (codes above 31 need point format 6+).
+    extra_dims
+        ``{name: (numpy dtype, description)}`` of the new extra dimensions.
+    chunk_size
+        Points streamed per step. [points]
+
+    Returns
+    -------
+    Path
+        The written file.
+
+    Notes
+    -----
+    Memory is bounded by ``chunk_size`` and what ``values`` holds; the output is the same as
+    :func:`write_classified` given the same codes.
+
+    References
+    ----------
+    ASPRS, LAS Specification 1.4 R15 (2019), Table 17 (class codes), section 2.6 (extra
+    bytes).
+    """
+    path = Path(path)
+    compress = _suffix_compression(path)
+    if chunk_size < 1:
+        raise ValueError("chunk_size must be a positive number of points")
+    if not sources:
+        raise ValueError("sources must name at least one input file")
+    metas = _source_metas(sources)
+    extras = {k: (np.dtype(t), str(d)[:31]) for k, (t, d) in (extra_dims or {}).items()}
+    header = _classified_header(metas, crs, int(max_code), extras)
+
+    def produce(writer: Any) -> None:
+        for file_id, meta in enumerate(metas):
+            def chunk_values(start: int, stop: int, file_id=file_id):
+                has_new, codes, more = values(file_id, start, stop)
+                return (np.asarray(has_new, dtype=bool), np.asarray(codes, dtype=np.uint8),
+                        {k: np.asarray(more[k], dtype=extras[k][0]) for k in extras})
+
+            _stream_file(writer, meta, chunk_values, chunk_size)
+
+    _write_atomically(path, header, compress, produce)
+    return path
+
+
+def _stream_file(writer: Any, meta: _FileMeta, values: Callable[[int, int], tuple],
+                 chunk_size: int) -> None:
     out_header = writer.header
     out_scales = np.asarray(out_header.scales, dtype=np.float64)
     out_offsets = np.asarray(out_header.offsets, dtype=np.float64)
@@ -986,7 +1260,6 @@ def _stream_file(writer: Any, meta: _FileMeta, has_new: np.ndarray, new_codes: n
     with _open_reader(meta.path) as reader:
         for chunk in _chunks(reader, meta.path, chunk_size):
             m = len(chunk)
-            sl = slice(start, start + m)
             out = laspy.ScaleAwarePointRecord.zeros(m, header=out_header)
             out.copy_fields_from(chunk)
             for axis, name in enumerate("XYZ"):
@@ -998,12 +1271,12 @@ def _stream_file(writer: Any, meta: _FileMeta, has_new: np.ndarray, new_codes: n
                 out.scan_angle = np.rint(
                     np.asarray(chunk.scan_angle_rank, dtype=np.float64) / 0.006
                 ).astype(np.int16)
+            has_new, new_codes, extras = values(start, start + m)
             cls = np.array(chunk.classification, dtype=np.uint8)
-            sel = has_new[sl]
-            cls[sel] = new_codes[sl][sel]
+            cls[has_new] = new_codes[has_new]
             out.classification = cls
             for k, arr in extras.items():
-                out[k] = arr[sl]
+                out[k] = arr
             writer.write_points(out)
             start += m
     if start != meta.point_count:

@@ -1,0 +1,217 @@
+"""Scale benchmark: audit time vs plain LAZ decompression, memory per point, time per km, Dask.
+
+Run on demand (minutes to an hour; generated corridors are cached under --cache)::
+
+    .venv/bin/python benchmarks/bench_scale.py --points 10e6 30e6 --km 2 5 10 --dask
+    .venv/bin/python benchmarks/bench_scale.py --tiny          # seconds; used by the test
+
+For every case it prints: the time laspy+lazrs need merely to decompress the LAZ, the
+end-to-end audit time and their ratio (target <= 4), classification alone vs decompression
+(target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
+flat for tiled runs), the time per km of line, and with --dask the speed-up of a local
+2-worker Dask cluster over the in-process tiled run with a check that the outputs are
+identical. Every audit runs in its own child process so its peak memory is its own.
+Generation time is not measured.
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import os
+import platform
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+#: Points per span per (point/m2) of density, measured on the generator (100 m corridor,
+#: spans of 280-420 m): about 50 000.
+POINTS_PER_SPAN_PER_DENSITY = 50_000.0
+MEAN_SPAN_M = 350.0
+
+
+def generate(cache: Path, name: str, n_spans: int, density: float) -> dict[str, Path]:
+    """A cached synthetic corridor (generation is not part of any measurement)."""
+    from clearaudit.synth import generate_corridor, write_corridor
+
+    paths = {"cloud": cache / f"{name}.laz", "line": cache / f"{name}.line.toml"}
+    if paths["cloud"].exists() and paths["line"].exists():
+        return paths
+    corridor = generate_corridor(seed=7, n_spans=n_spans, density_per_m2=density,
+                                 bend_deg=12.0, classified=False, name=name)
+    return write_corridor(corridor, cache, name)
+
+
+def decompress_seconds(path: Path) -> tuple[float, int]:
+    """Wall time for laspy + lazrs to decode every point (chunked, nothing kept). [s]"""
+    import laspy
+    import numpy as np
+
+    t0 = time.perf_counter()
+    n = 0
+    with laspy.open(str(path)) as reader:
+        for chunk in reader.chunk_iterator(2_000_000):
+            np.asarray(chunk.X)  # touch the coordinates
+            n += len(chunk)
+    return time.perf_counter() - t0, n
+
+
+def run_child(cloud: Path, line: Path, out: Path, extra: list[str]) -> dict:
+    """Run one audit in a child process; its wall time, peak RSS and stage timings."""
+    cmd = [sys.executable, __file__, "_child", str(cloud), str(line), str(out), *extra]
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    wall = time.perf_counter() - t0
+    if proc.returncode != 0:
+        raise RuntimeError(f"audit failed: {proc.stderr[-2000:]}")
+    child = json.loads(proc.stdout.strip().splitlines()[-1])
+    run = json.loads((out / "run.json").read_text())
+    return {"wall_s": wall, "audit_s": child["seconds"], "peak_rss_mb": child["peak_rss_mb"],
+            "stages": {s["name"]: s for s in run["stages"]}, "run": run}
+
+
+def _child(argv: list[str]) -> None:
+    cloud, line, out, *extra = argv
+    from clearaudit.pipeline import AuditOptions, run_audit
+
+    kw: dict = {}
+    for item in extra:
+        key, value = item.split("=", 1)
+        kw[key] = {"tiled": lambda v: v == "1", "workers": int, "tile_points": int}[key](value)
+    t0 = time.perf_counter()
+    run_audit(AuditOptions(clouds=[Path(cloud)], out=Path(out), line_file=Path(line),
+                           overwrite=True, skip_report=True, **kw))
+    from clearaudit.tiling import peak_rss_mb
+
+    peak = peak_rss_mb()  # VmHWM: this child's own peak, not its parent's
+    print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak}))
+
+
+def same_outputs(a: Path, b: Path) -> bool:
+    import laspy
+    import numpy as np
+
+    for name in ("spans.csv", "violations.csv"):
+        with open(a / name) as fa, open(b / name) as fb:
+            if list(csv.reader(fa)) != list(csv.reader(fb)):
+                return False
+    ca, cb = laspy.read(a / "classified.laz"), laspy.read(b / "classified.laz")
+    return bool(np.array_equal(np.asarray(ca.classification), np.asarray(cb.classification)))
+
+
+def machine() -> str:
+    cpu = platform.processor() or platform.machine()
+    try:
+        for ln in Path("/proc/cpuinfo").read_text().splitlines():
+            if ln.startswith("model name"):
+                cpu = ln.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    mem = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
+    return (f"{cpu}, {os.cpu_count()} cores, {mem:.0f} GiB RAM, Python "
+            f"{platform.python_version()}, {platform.system()} {platform.release()}")
+
+
+def case(cache: Path, work: Path, label: str, n_spans: int, density: float, modes: list[str],
+         tile_points: int | None) -> dict:
+    paths = generate(cache, label, n_spans, density)
+    dec_s, n = decompress_seconds(paths["cloud"])
+    result = {"case": label, "points": n, "spans": n_spans, "density": density,
+              "line_km": None, "decompress_s": dec_s}
+    for mode in modes:
+        extra = ["tiled=0"] if mode == "memory" else ["tiled=1"]
+        if tile_points and mode != "memory":
+            extra.append(f"tile_points={tile_points}")
+        if mode == "dask":
+            extra.append("workers=2")
+        r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
+        spans = list(csv.DictReader(open(work / f"{label}-{mode}" / "spans.csv")))
+        km = sum(float(s["span_length_m"] or 0) for s in spans
+                 if s["wire_id"] == spans[0]["wire_id"]) / 1000.0 if spans else 0.0
+        result["line_km"] = km
+        result[mode] = {"audit_s": r["audit_s"], "peak_rss_mb": r["peak_rss_mb"],
+                        "classify_s": r["stages"]["classify"]["seconds"],
+                        "ratio_audit": r["audit_s"] / dec_s,
+                        "ratio_classify": r["stages"]["classify"]["seconds"] / dec_s,
+                        "bytes_per_point": r["peak_rss_mb"] * 2**20 / n,
+                        "s_per_km": r["audit_s"] / km if km else None,
+                        "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb")}
+    if "tiled" in modes and "dask" in modes:
+        result["dask_speedup"] = result["tiled"]["audit_s"] / result["dask"]["audit_s"]
+        result["dask_identical"] = same_outputs(work / f"{label}-tiled", work / f"{label}-dask")
+    return result
+
+
+def print_results(results: list[dict]) -> None:
+    print(f"machine: {machine()}")
+    print("| case | points | line km | mode | decompress s | audit s | audit/decompress "
+          "(target <= 4) | classify/decompress (target <= 1.5) | peak RSS MB | "
+          "B/point (target <= 150 in memory) | s per km |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
+    for r in results:
+        for mode in ("memory", "tiled", "dask"):
+            m = r.get(mode)
+            if not m:
+                continue
+            print(f"| {r['case']} | {r['points']:,} | {r['line_km']:.2f} | {mode} | "
+                  f"{r['decompress_s']:.2f} | {m['audit_s']:.1f} | {m['ratio_audit']:.2f} | "
+                  f"{m['ratio_classify']:.2f} | {m['peak_rss_mb']:.0f} | "
+                  f"{m['bytes_per_point']:.0f} | {m['s_per_km'] or float('nan'):.1f} |")
+    for r in results:
+        if "dask_speedup" in r:
+            print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
+                  f"in-process tiled; identical outputs: {r['dask_identical']}")
+    for r in results:
+        for mode in ("memory", "tiled", "dask"):
+            if r.get(mode):
+                m = r[mode]
+                print(f"ratio {r['case']} {mode}: audit/decompress = {m['ratio_audit']:.2f}, "
+                      f"classify/decompress = {m['ratio_classify']:.2f}, "
+                      f"peak RSS per point = {m['bytes_per_point']:.0f} B")
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if argv and argv[0] == "_child":
+        _child(argv[1:])
+        return 0
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--points", type=float, nargs="*", default=[],
+                   help="corridor sizes [points] (density 12 /m2), in memory and tiled")
+    p.add_argument("--km", type=float, nargs="*", default=[],
+                   help="line lengths [km] (density 4 /m2) for the time-per-km table (tiled)")
+    p.add_argument("--dask", action="store_true", help="also run the first --points case on "
+                                                       "a local 2-worker Dask cluster")
+    p.add_argument("--tiled-only-above", type=float, default=20e6,
+                   help="skip the in-memory run above this many points")
+    p.add_argument("--tiny", action="store_true", help="a seconds-long smoke run")
+    p.add_argument("--cache", default="/tmp/clearaudit-bench", help="generated corridors")
+    p.add_argument("--json", help="write the results to this JSON file")
+    args = p.parse_args(argv)
+    cache = Path(args.cache)
+    cache.mkdir(parents=True, exist_ok=True)
+    work = cache / "runs"
+    work.mkdir(exist_ok=True)
+    results = []
+    if args.tiny:
+        results.append(case(cache, work, "tiny", 2, 1.5, ["memory", "tiled", "dask"], 100_000))
+    for pts in args.points:
+        density = 12.0
+        spans = max(2, round(pts / (POINTS_PER_SPAN_PER_DENSITY * density)))
+        modes = (["memory"] if pts <= args.tiled_only_above else []) + ["tiled"]
+        if args.dask and pts == args.points[0]:
+            modes.append("dask")
+        results.append(case(cache, work, f"p{pts / 1e6:g}M", spans, density, modes, None))
+    for km in args.km:
+        spans = max(2, round(km * 1000.0 / MEAN_SPAN_M))
+        results.append(case(cache, work, f"k{km:g}km", spans, 4.0, ["tiled"], None))
+    print_results(results)
+    if args.json:
+        Path(args.json).write_text(json.dumps(results, indent=1, default=str))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

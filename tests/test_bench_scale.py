@@ -1,0 +1,24 @@
+"""The scale benchmark runs on a tiny case and prints its ratios (no timing is asserted)."""
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+SCRIPT = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_scale.py"
+
+
+def test_bench_scale_tiny_prints_ratios(tmp_path):
+    pytest.importorskip("distributed")
+    proc = subprocess.run([sys.executable, str(SCRIPT), "--tiny", "--cache", str(tmp_path)],
+                          capture_output=True, text=True, timeout=600, check=False)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    out = proc.stdout
+    assert "machine:" in out
+    for mode in ("memory", "tiled", "dask"):
+        assert f"ratio tiny {mode}: audit/decompress = " in out
+    assert "classify/decompress = " in out and "peak RSS per point = " in out
+    # the Dask run must reproduce the in-process tiled run exactly
+    assert "identical outputs: True" in out
