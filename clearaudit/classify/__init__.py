@@ -10,5 +10,7 @@ from __future__ import annotations
 from .core import ClassificationResult, classify
 from .ground import GroundModel, smrf
 from .options import ClassifyOptions
+from .refine import refine_with_model
 
-__all__ = ["classify", "ClassifyOptions", "ClassificationResult", "GroundModel", "smrf"]
+__all__ = ["classify", "ClassifyOptions", "ClassificationResult", "GroundModel", "smrf",
+           "refine_with_model"]

@@ -131,19 +131,23 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     t = time.perf_counter()
     vendor = np.asarray(cloud.classification, dtype=np.uint8)
     present = {name: bool(np.isin(vendor, codes).any()) for name, codes in CLASS_GROUPS.items()}
-    frame = GridFrame.fit(xyz[:, :2], opts.smrf_cell_m, margin=opts.smrf_cell_m)
+    # cell coordinates of every point, computed once (float32) and shared by all 1 m grids
+    frame, location = GridFrame.fit_locate(xyz[:, :2], opts.smrf_cell_m, margin=opts.smrf_cell_m)
+    z = np.ascontiguousarray(xyz[:, 2])
 
     # 1. noise candidates kept out of the ground filter
     isolated = isolated_points(xyz, opts.noise_voxel_m, opts.noise_min_neighbours)
     use = ~isolated
-    flat = frame.flat_index(xyz[:, :2])
+    flat = location.flat
     for _ in range(2):
-        zmin = cell_min(flat[use], xyz[use, 2], frame.size).reshape(frame.shape)
+        zmin = cell_min(flat[use], z[use], frame.size).reshape(frame.shape)
         pits, lowest = pit_cells(zmin, opts.noise_low_depth_m)
         if not pits.any():
             break
-        in_pit = pits.ravel()[flat] & (xyz[:, 2] < lowest.ravel()[flat] - opts.noise_low_depth_m)
-        use &= ~in_pit
+        pit_points = np.flatnonzero(pits.ravel()[flat])
+        in_pit = z[pit_points] < lowest.ravel()[flat[pit_points]] - opts.noise_low_depth_m
+        use[pit_points[in_pit]] = False
+    del flat
     t = step("noise_candidates", 0.1, t)
 
     # 2. ground
@@ -157,7 +161,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                       elevation_threshold_m=opts.smrf_elevation_threshold_m,
                       elevation_scaler=opts.smrf_elevation_scaler,
                       slope_min=opts.smrf_slope_min, slope_max=opts.smrf_slope_max,
-                      use=use, max_cells=opts.inpaint_max_cells)
+                      use=use, max_cells=opts.inpaint_max_cells, location=location)
         is_ground = result.is_ground
         info["ground_source"] = "SMRF"
         info["smrf_slope"] = result.slope_threshold
@@ -167,16 +171,26 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                 sigma_factor=opts.ground_refine_sigma_factor,
                 min_threshold_m=opts.ground_refine_min_m,
                 max_threshold_m=opts.smrf_elevation_threshold_m,
-                max_cells=opts.inpaint_max_cells)
+                max_cells=opts.inpaint_max_cells,
+                location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
             info["ground_refine_threshold_m"] = threshold
         model_points = is_ground
     if not model_points.any():
         raise InputError(_source_name(cloud), "no ground points were found; cannot build a ground model")
     t = step("ground", 0.35, t)
 
-    ground = build_ground_model(xyz[model_points], frame.with_cell(opts.ground_cell_m),
-                                opts.inpaint_max_cells)
-    hag = xyz[:, 2] - ground.height_at(xyz[:, :2])
+    ground_frame = frame.with_cell(opts.ground_cell_m)
+    ground_location = location if opts.ground_cell_m == opts.smrf_cell_m else \
+        ground_frame.locate(xyz[:, :2])
+    del location
+    model_idx = np.flatnonzero(model_points)
+    ground = build_ground_model(xyz[model_idx], ground_frame, opts.inpaint_max_cells,
+                                location=ground_location.subset(model_idx))
+    del model_idx
+    # HAG: one vectorised bilinear pass of the float32 ground grid over all points
+    hag = ground_location.sampler()(ground.elevation_m.astype(np.float32))
+    del ground_location
+    np.subtract(z, hag, out=hag, casting="same_kind")
     hag = np.nan_to_num(hag, nan=0.0)
     t = step("height_above_ground", 0.45, t)
 
@@ -228,7 +242,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     codes, counts = np.unique(classes, return_counts=True)
     return ClassificationResult(
         classification=classes,
-        height_above_ground_m=hag.astype(np.float32),
+        height_above_ground_m=hag.astype(np.float32, copy=False),
         ground=ground,
         counts={int(c): int(k) for c, k in zip(codes, counts, strict=True)},
         timings_s=timings,

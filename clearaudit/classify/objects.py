@@ -396,6 +396,23 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
     if labelled.any():
         median_scatter = ndimage.median(scattering[other[labelled]], point_label[labelled], index)
         accept &= np.nan_to_num(np.asarray(median_scatter, float), nan=1.0) <= opts.structure_max_scattering
+    if is_wire.any() and labelled.any():
+        # a tree under a span has the wires passing OVER it: every wire point above its
+        # footprint is higher than its highest point; at a structure the wires attach at or
+        # below its top (shield wires at the peak, phases on the crossarms / insulators)
+        wire_idx = np.flatnonzero(is_wire)
+        wire_label = labels.ravel()[frame.flat_index(xyz[wire_idx, :2])]
+        over = wire_label > 0
+        if over.any():
+            lowest_wire = np.full(m + 1, np.inf)
+            np.minimum.at(lowest_wire, wire_label[over], xyz[wire_idx[over], 2])
+            body_top = np.full(m + 1, -np.inf)
+            np.maximum.at(body_top, point_label[labelled], xyz[other[labelled], 2])
+            # only foliage-like columns (median scattering above half the structure limit):
+            # the wire-following step may take the top of a real tower as wire
+            leafy = np.nan_to_num(np.asarray(median_scatter, float), nan=1.0) \
+                >= 0.5 * opts.structure_max_scattering
+            accept &= ~((lowest_wire[1:] > body_top[1:] + opts.structure_wire_over_m) & leafy)
     if not accept.any():
         return structure
     core = np.isin(labels, index[accept])

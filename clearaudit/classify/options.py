@@ -93,6 +93,8 @@ class ClassifyOptions:
         1.6, "Least ratio of structure height to footprint width (sqrt of the area).")
     structure_max_scattering: float = _opt(
         0.08, "Largest median scattering l3/l1 of a structure's points (tree crowns scatter more).")
+    structure_wire_over_m: float = _opt(
+        0.2, "A column whose wires all pass this far above its top is not a structure (a tree). [m]")
     structure_wire_search_m: float = _opt(
         4.0, "A structure must have wire points within this horizontal distance (if wires exist). [m]")
 
