@@ -177,6 +177,30 @@ def _wire_layers(cloud: Cloud, model_doc: dict) -> Layer:
     return layer
 
 
+_REAL_COLUMNS = {"clearance_m", "required_m", "deficit_m", "longitude", "latitude",
+                 "clearance_ci95_m", "grow_in_years", "station_m", "tree_height_m",
+                 "fall_in_distance_m"}
+_INTEGER_COLUMNS = {"id", "priority", "obstacle_points"}
+
+
+def _write_point_rows(out: Path, name: str, cloud: Cloud, rows: list[dict], columns: list[str],
+                      title: str, description: str) -> tuple[list[dict], Layer]:
+    """``<name>.csv`` and ``<name>.geojson`` from audit rows, and their GeoPackage layer."""
+    rows_crs, lonlat = violation_rows_crs(cloud, rows)
+    write_csv(out / f"{name}.csv", rows_crs, columns)
+    z_m = (np.array([r["z"] for r in rows_crs]) * cloud.vertical_unit_m) if rows_crs else None
+    write_geojson_points(out / f"{name}.geojson", rows_crs, columns, lonlat, z_m, name=title)
+    layer = Layer(name, "POINT",
+                  {c: ("REAL" if c in _REAL_COLUMNS else
+                       "INTEGER" if c in _INTEGER_COLUMNS else "TEXT")
+                   for c in columns if c not in ("x", "y", "z")}, description=description)
+    for r in rows_crs:
+        layer.features.append((np.array([r["x"], r["y"], r["z"]]),
+                               {**r, "fall_in": None if r.get("fall_in") is None
+                                else str(bool(r.get("fall_in"))).lower()}))
+    return rows_crs, layer
+
+
 def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, config: Any,
                   conductors: dict, rules: Any, record: Any, *, tolerance_rows=None,
                   progress=None, classified_writer=None) -> dict:
@@ -189,12 +213,15 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
     out = Path(out)
     span_rows = span_rows_crs(cloud, audit.span_rows)
     write_csv(out / "spans.csv", span_rows, SPAN_COLUMNS + SPAN_EXTRA_COLUMNS)
-    violations, lonlat = violation_rows_crs(cloud, audit.violations)
     columns = VIOLATION_COLUMNS + VIOLATION_EXTRA_COLUMNS
-    write_csv(out / "violations.csv", violations, columns)
-    z_m = (np.array([r["z"] for r in violations]) * cloud.vertical_unit_m) if violations else None
-    write_geojson_points(out / "violations.geojson", violations, columns, lonlat, z_m,
-                         name=f"{config.line.name} — clearance violations")
+    violations, viol_layer = _write_point_rows(
+        out, "violations", cloud, audit.violations, columns,
+        f"{config.line.name} — clearance violations",
+        "clearance violations (one per obstacle per condition)")
+    hazards, hazard_layer = _write_point_rows(
+        out, "hazard_trees", cloud, getattr(audit, "hazard_trees", []), columns,
+        f"{config.line.name} — hazard trees",
+        "trees clear of every requirement but tall enough to fall into the line")
     model_doc = build_model_json(cloud, model, audit, config, rules)
     (out / "model.json").write_text(json.dumps(model_doc, indent=1, allow_nan=False),
                                     encoding="utf-8")
@@ -207,20 +234,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
                                     {"structure_id": s["id"], "kind": s["kind"],
                                      "source": s["source"],
                                      "line_angle_deg": s["line_angle_deg"]}))
-    viol_layer = Layer("violations", "POINT",
-                       {c: ("REAL" if c in ("clearance_m", "required_m", "deficit_m",
-                                            "longitude", "latitude", "clearance_ci95_m",
-                                            "grow_in_years", "station_m", "tree_height_m",
-                                            "fall_in_distance_m") else
-                            "INTEGER" if c in ("id", "priority", "obstacle_points", "obstacle_id") else "TEXT")
-                        for c in columns if c not in ("x", "y", "z")},
-                       description="clearance violations (one per obstacle per condition)")
-    for r in violations:
-        viol_layer.features.append((np.array([r["x"], r["y"], r["z"]]),
-                                    {**r, "fall_in": None if r.get("fall_in") is None
-                                     else str(bool(r.get("fall_in"))).lower()}))
-    write_geopackage(out / "line.gpkg", [structures, _wire_layers(cloud, model_doc), viol_layer],
-                     cloud.crs)
+    write_geopackage(out / "line.gpkg", [structures, _wire_layers(cloud, model_doc), viol_layer,
+                                         hazard_layer], cloud.crs)
     if tolerance_rows is not None:
         from .audit.tolerance import TOLERANCE_COLUMNS
 
@@ -236,7 +251,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
             "fitted": sum(r.get("status") == "fitted" for r in span_rows),
             "partial": sum(r.get("status") == "partial" for r in span_rows),
             "not_fitted": sum(r.get("status") == "not_fitted" for r in span_rows),
-            "violations": violations, "survey_temperature": audit.survey_temperature,
+            "violations": violations, "hazard_trees": hazards,
+            "survey_temperature": audit.survey_temperature,
             "class_counts": cls.counts}
 
 
@@ -263,16 +279,23 @@ def print_summary(console: Any, summary: dict, out: Path, units: str = "metric")
                   f"({st.get('method', '')})")
     viol = summary["violations"]
     if viol:
-        t = Table(title=f"{len(viol)} clearance violations — most urgent first", title_justify="left")
-        for col in ("priority", "kind", "condition", "span", "wire", f"clearance {u}",
-                    f"required {u}", f"deficit {u}", "certainty"):
-            t.add_column(col)
+        t = Table(title=f"{len(viol)} clearance violations, most urgent first (all in "
+                        "violations.csv)", title_justify="left")
+        for col, justify in (("#", "right"), ("kind", "left"), ("case", "left"),
+                             ("span", "left"), ("wire", "left"), (f"found {u}", "right"),
+                             (f"need {u}", "right"), (f"short {u}", "right"), ("sure", "left")):
+            t.add_column(col, justify=justify, no_wrap=True)
         for r in sorted(viol, key=lambda r: r.get("priority") or 1e9)[:10]:
             t.add_row(str(r.get("priority")), r["kind"], r["condition"], str(r["span_id"]),
                       str(r["wire_id"]), f"{r['clearance_m'] * f:.2f}", f"{r['required_m'] * f:.2f}",
-                      f"{r['deficit_m'] * f:.2f}", str(r.get("certainty", "")))
+                      f"{r['deficit_m'] * f:.2f}",
+                      "yes" if r.get("certainty", "certain") == "certain" else "no")
         console.print(t)
     else:
         console.print("No clearance violations found.")
+    hazards = summary.get("hazard_trees") or []
+    if hazards:
+        console.print(f"{len(hazards)} hazard trees (clear today, tall enough to fall into the "
+                      "line) in hazard_trees.csv.")
     console.print(f"Results in {out}/ (report.html, spans.csv, violations.csv, line.gpkg …)")
     console.print(f"[italic]{CAUTION}[/]")

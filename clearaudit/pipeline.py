@@ -285,6 +285,15 @@ def run_audit(options: AuditOptions, console=None):
                                      "shield": conductors["shield"].unit_weight_n_per_m},
                 bundle=config.phase.bundle, progress=_stage_progress(bar, task))
 
+            # Classes the line model can settle: trees under wires that looked like towers,
+            # tower parts that looked like foliage or wire (see docs/classification.md).
+            from .classify import refine_with_model
+
+            record.extra["classification"]["refine_with_model"] = refine_with_model(
+                cloud, cls, model)
+            cloud.classification = cls.classification
+            record.extra["class_counts"] = {str(k): v for k, v in sorted(cls.counts.items())}
+
         # ---- audit
         from .audit import audit_line
 
@@ -309,19 +318,33 @@ def run_audit(options: AuditOptions, console=None):
             summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
                                     record, tolerance_rows=tolerance_rows,
                                     progress=_stage_progress(bar, task))
-            if not options.skip_report:
-                from .report import build_report
-
-                build_report(tmp, units=options.units)
-            else:
-                record.missing_stages.append("report (skipped by --no-report)")
-        (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1, default=_json_default),
-                                      encoding="utf-8")
+        _finish_record_and_report(tmp, record, options)
     if console is not None:
         from .outputs import print_summary
 
         print_summary(console, summary, options.out, options.units)
     return options.out
+
+
+def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOptions) -> None:
+    """Write run.json, then the report (which reads it), then run.json again with the report's
+    stage time. The report names the final output folder, not the temporary one."""
+    record.extra["output_folder"] = str(options.out)
+
+    def dump() -> None:
+        (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1,
+                                                 default=_json_default), encoding="utf-8")
+
+    if options.skip_report:
+        record.missing_stages.append("report (skipped by --no-report)")
+        dump()
+        return
+    dump()
+    from .report import build_report
+
+    with record.stage("report"):
+        build_report(tmp, units=options.units)
+    dump()
 
 
 def _header_point_count(path: Path) -> int:
@@ -534,14 +557,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
                                         rules, record, tolerance_rows=tolerance_rows,
                                         classified_writer=classified_writer)
-                if not options.skip_report:
-                    from .report import build_report
-
-                    build_report(tmp, units=options.units)
-                else:
-                    record.missing_stages.append("report (skipped by --no-report)")
-            (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1,
-                                                     default=_json_default), encoding="utf-8")
+            _finish_record_and_report(tmp, record, options)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return summary

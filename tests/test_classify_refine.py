@@ -123,3 +123,21 @@ def test_refine_rejects_mismatched_inputs(corridor):
 
     with pytest.raises(ValueError):
         refine_with_model(cloud, Fake(), model)
+
+
+def test_isolated_vegetation_return_among_wire_points_is_absorbed():
+    # A lone "vegetation" return 0.3 m from a conductor is hardware, not a tree; a crown of
+    # returns near the same wire stays vegetation (common practice (no source): a tree gives
+    # many returns per square metre of crown at airborne densities).
+    from clearaudit.classify.refine import _absorb_isolated_vegetation
+
+    wire = np.column_stack([np.linspace(0, 50, 101), np.zeros(101), np.full(101, 20.0)])
+    lone = np.array([[10.0, 0.3, 20.0]])
+    rng = np.random.default_rng(1)
+    crown = rng.normal([40.0, 1.5, 19.0], 0.6, size=(60, 3))
+    xyz = np.vstack([wire, lone, crown])
+    cls = np.concatenate([np.full(101, 14), [5], np.full(60, 5)]).astype(np.uint8)
+    hag = xyz[:, 2].copy()
+    _absorb_isolated_vegetation(xyz, cls, hag, 1.5, 2, 1.0)
+    assert cls[101] == 14
+    assert np.all(cls[102:] == 5)

@@ -122,7 +122,8 @@ def _scattering(xyz_all: np.ndarray, which: np.ndarray, radius: float = 1.25,
 def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float = 1.5,
                       arm_depth_m: float = 5.0, top_margin_m: float = 3.0,
                       voxel_m: float = 1.0, max_member_scattering: float = 0.1,
-                      min_foliage_scattering: float = 0.05) -> dict[str, int]:
+                      min_foliage_scattering: float = 0.05, isolated_radius_m: float = 1.5,
+                      isolated_max_points: int = 2, wire_reach_m: float = 1.0) -> dict[str, int]:
     """Correct structure, vegetation and wire labels with the line model (in place).
 
     Parameters
@@ -148,6 +149,12 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     min_foliage_scattering
         Groups of stray structure points with a median scattering at least this become
         vegetation; less scattered groups become unclassified.
+    isolated_radius_m, isolated_max_points
+        A vegetation point 2 m or more above ground with at most this many vegetation points
+        (itself included) within this radius is isolated. [m], [-]
+    wire_reach_m
+        An isolated vegetation point this close to a wire or insulator point takes that
+        point's class. [m]
 
     Returns
     -------
@@ -260,6 +267,11 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
             hardware |= near_any & (behind_all | above_clamp)
         cls[wires_here[hardware]] = WIRE_CONNECTOR
 
+    # 4. isolated "vegetation" returns among wire points: a tree gives a crown of returns, a
+    # lone return next to a conductor, insulator or crossarm tip is part of the wire hardware
+    _absorb_isolated_vegetation(xyz, cls, hag, isolated_radius_m, isolated_max_points,
+                                wire_reach_m)
+
     changed = np.flatnonzero(cls != before)
     counts: dict[str, int] = {}
     if len(changed):
@@ -270,3 +282,24 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     if isinstance(getattr(result, "info", None), dict):
         result.info["refine_with_model"] = counts
     return counts
+
+
+def _absorb_isolated_vegetation(xyz: np.ndarray, cls: np.ndarray, hag: np.ndarray,
+                                radius_m: float, max_points: int, reach_m: float) -> None:
+    """Give isolated high vegetation points next to wire/insulator points the wire's class.
+
+    A tree returns a crown of points; a single "vegetation" return among conductor or
+    insulator returns (at a crossarm tip, on a jumper) is hardware, and left as vegetation it
+    would be reported as a tree touching the line.
+    """
+    veg = np.flatnonzero(np.isin(cls, _VEGETATION) & (hag >= 2.0))
+    wire = np.flatnonzero(np.isin(cls, _WIRE + (WIRE_CONNECTOR,)))
+    if len(veg) == 0 or len(wire) == 0:
+        return
+    neighbours = cKDTree(xyz[veg]).query_ball_point(xyz[veg], radius_m, return_length=True)
+    lone = veg[np.asarray(neighbours) <= max_points]
+    if len(lone) == 0:
+        return
+    dist, nearest = cKDTree(xyz[wire]).query(xyz[lone], distance_upper_bound=reach_m)
+    hit = np.isfinite(dist)
+    cls[lone[hit]] = cls[wire[nearest[hit]]]

@@ -346,15 +346,29 @@ def _vegetation_section(folder: OutputFolder, units: DisplayUnits) -> str:
     rows = [v for v in folder.violations if v.get("kind") == "vegetation"]
     parts = ['<section id="vegetation"><h2>Vegetation work list</h2>']
     if not rows:
-        parts.append("<p>No vegetation violations were recorded.</p></section>")
+        parts.append("<p>No vegetation violations were recorded.</p>"
+                     + _hazard_trees_part(folder, units) + "</section>")
         return "".join(parts)
     parts.append('<p class="muted">Ranked by priority (1 = most urgent). Positions are the '
                  'vegetation point closest to the wire, in the survey\'s coordinate reference '
                  'system and in WGS 84.</p>')
     parts.append(_table(VIOLATION_HEADERS, _violation_rows(folder, rows, units),
                         numeric={0, 7, 8, 9, 11}))
+    parts.append(_hazard_trees_part(folder, units))
     parts.append("</section>")
     return "".join(parts)
+
+
+def _hazard_trees_part(folder: OutputFolder, units: DisplayUnits) -> str:
+    rows = folder.hazard_trees
+    if not rows:
+        return ""
+    return ('<h3 id="hazard-trees">Hazard trees</h3><p class="muted">Trees that clear every '
+            'requirement today but are tall enough to reach a wire if they fall (trunk base '
+            'closer to the wire than the tree is tall), ranked among themselves '
+            '(hazard_trees.csv).</p>'
+            + _table(VIOLATION_HEADERS, _violation_rows(folder, rows, units),
+                     numeric={0, 7, 8, 9, 11}))
 
 
 def _other_violations_section(folder: OutputFolder, units: DisplayUnits) -> str:

@@ -24,6 +24,7 @@ RUN_FILE = "run.json"
 CLOUD_FILE = "classified.laz"
 #: Construction check (only when the line file has a [design] table).
 TOLERANCE_FILE = "tolerance.csv"
+HAZARD_FILE = "hazard_trees.csv"
 
 #: Columns of spans.csv / violations.csv that are not numbers.
 TEXT_COLUMNS = {
@@ -114,6 +115,7 @@ class OutputFolder:
     origin: np.ndarray
     missing: list[str] = field(default_factory=list)
     tolerance: list[dict[str, Any]] = field(default_factory=list)
+    hazard_trees: list[dict[str, Any]] = field(default_factory=list)
 
     # ---- geometry ---------------------------------------------------------------------------
     @property
@@ -423,6 +425,9 @@ def read_outputs(out_dir: str | Path) -> OutputFolder:
         raise InputError(model_path, "'origin' must be three numbers [x, y, z].")
     tolerance = (_read_csv(path / TOLERANCE_FILE, TOLERANCE_TEXT_COLUMNS)
                  if (path / TOLERANCE_FILE).exists() else [])
+    hazards = _read_csv(path / HAZARD_FILE) if (path / HAZARD_FILE).exists() else []
+    hazards.sort(key=lambda r: to_number(r.get("priority")) if math.isfinite(
+        to_number(r.get("priority"))) else math.inf)
     return OutputFolder(path=path, model=model, run=run, spans=spans, violations=violations,
                         horizontal_unit_m=hu, vertical_unit_m=vu, origin=origin, missing=missing,
-                        tolerance=tolerance)
+                        tolerance=tolerance, hazard_trees=hazards)
