@@ -89,8 +89,11 @@ class DisplayUnits:
         if v is None:
             return MISSING
         digits = 1 if self.system == "metric" else 0
-        text = f"{v * self.force_factor:,.{digits}f}"
         ci = _finite(ci95_n)
+        if ci is not None and ci > 0:
+            # show the interval with two significant digits (never "± 0.0")
+            digits = max(digits, min(4, 1 - int(math.floor(math.log10(ci * self.force_factor)))))
+        text = f"{v * self.force_factor:,.{digits}f}"
         if ci is not None:
             text += f" ± {ci * self.force_factor:,.{digits}f}"
         return f"{text} {self.force_unit}"

@@ -1,6 +1,7 @@
-"""Regenerate the screenshots in this folder from the invented test scenario.
+"""Regenerate the screenshots in this folder from an audit of the bundled demo sample.
 
-Usage (from the repository root): .venv/bin/python docs/screenshots/make_screenshots.py
+Usage (from the repository root): .venv/bin/python docs/screenshots/make_screenshots.py [OUT_DIR]
+OUT_DIR is an audit output folder (default: audit the sample into a temporary folder).
 Needs headless Chromium (Debian: apt-get install -y chromium) for the report page.
 """
 from __future__ import annotations
@@ -12,17 +13,23 @@ import tempfile
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE.parents[1] / "tests"))
-
-from report_fixture import make_output_folder  # noqa: E402
+ROOT = HERE.parents[1]
 
 from clearaudit import viewer  # noqa: E402
 from clearaudit.report.html import build_report  # noqa: E402
 
+SAMPLE = ROOT / "sample_clouds" / "tarnwick_velloran_230kv"
+
 
 def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
-        out = make_output_folder(Path(tmp) / "kestrel-ridge")
+        if len(sys.argv) > 1:
+            out = Path(sys.argv[1])
+        else:
+            out = Path(tmp) / "sample"
+            subprocess.run([sys.executable, "-m", "clearaudit.cli", "audit",
+                            f"{SAMPLE}.laz", "--line", f"{SAMPLE}.line.toml", "--out", str(out)],
+                           check=True, capture_output=True, timeout=900)
         viewer.screenshot(out, HERE / "viewer.png", window_size=(1400, 850))
         report = build_report(out)
         # The page below the title: hide the long run details so summary, plan and the first
