@@ -15,6 +15,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 from report_fixture import make_output_folder
 
@@ -121,7 +122,10 @@ def test_metric_units(out_dir, metric_html):
     ci = float(row["sag_survey_ci95_m"])
     assert f"{sag:,.2f} ± {ci:,.2f} m" in metric_html
     tension_kn = float(row["horizontal_tension_n"]) / 1000.0
-    assert f"{tension_kn:,.1f} ± " in metric_html and " kN" in metric_html
+    ci_kn = float(row["horizontal_tension_ci95_n"]) / 1000.0
+    # the interval is shown with two significant digits, the value to the same decimals
+    digits = max(1, 1 - int(np.floor(np.log10(ci_kn))))
+    assert f"{tension_kn:,.{digits}f} ± {ci_kn:,.{digits}f} kN" in metric_html
     assert "18.0 °C" in metric_html
 
 
@@ -132,7 +136,9 @@ def test_imperial_units(out_dir, imperial_html):
     sag_ft = float(row["sag_survey_m"]) / foot
     ci_ft = float(row["sag_survey_ci95_m"]) / foot
     assert f"{sag_ft:,.2f} ± {ci_ft:,.2f} ft" in imperial_html
-    assert f"{float(row['horizontal_tension_n']) / lbf:,.0f} ± " in imperial_html
+    ci_lbf = float(row["horizontal_tension_ci95_n"]) / lbf
+    digits = max(0, 1 - int(np.floor(np.log10(ci_lbf))))
+    assert f"{float(row['horizontal_tension_n']) / lbf:,.{digits}f} ± " in imperial_html
     assert " lbf" in imperial_html
     assert "64.4 °F" in imperial_html  # 18 °C = 64.4 °F (°F = °C × 9/5 + 32)
     # No length in metres left in the span tables.
