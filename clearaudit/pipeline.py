@@ -25,6 +25,7 @@ from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -364,6 +365,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     See docs/scaling.md. Each stage's tasks run on the engine (in-process or Dask); only
     paths, tile specs and small summaries go to and from the tasks.
     """
+    from .audit.engine import merge_findings, prepare_wire_states, survey_latitude
     from .classify import ClassifyOptions
     from .cloud import Cloud
     from .distributed import engine_for
@@ -376,13 +378,12 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         TileResults,
         audit_tile,
         classify_tile,
-        finish_audit,
         plan_parts,
         plan_tiles,
-        prepare_audit,
+        refine_tile,
         split_part,
-        tile_audit_input,
         write_cell_offsets,
+        write_model_labels,
     )
 
     work_parent = Path(options.work_dir) if options.work_dir else Path(options.out).parent
@@ -502,28 +503,53 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     bundle=config.phase.bundle, progress=_stage_progress(bar, task))
                 record.extra["model_points"] = model_cloud.n_points
 
+                # Classes the line model can settle (as in the in-memory run): one task per
+                # tile with the context's classify-stage classes; the refined classes go to
+                # the audit and to classified.laz.
+                wire_labels = np.asarray(model.wire_point_labels, dtype=np.int64)
+                other_of = np.full(model_cloud.n_points, -1, dtype=np.int64)
+                for k, ow in enumerate(getattr(model, "other_wires", []) or []):
+                    other_of[np.asarray(ow.point_indices, dtype=np.int64)] = k
+                for k, t in enumerate(tiles):
+                    mine = model_tile == k
+                    wire = np.full(results[k]["n_owned"], -1, dtype=np.int64)
+                    other = np.full(results[k]["n_owned"], -1, dtype=np.int64)
+                    wire[model_local[mine]] = wire_labels[mine]
+                    other[model_local[mine]] = other_of[mine]
+                    write_model_labels(work, t, wire, other)
+                tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
+                changes: dict[str, int] = {}
+                counts = {}
+                for _, res in engine.run([(refine_tile, (str(work), t, tiles_by_cell, ctx,
+                                                         model.structures, model.spans), {})
+                                          for t in tiles]):
+                    for pair, n in res["changes"].items():
+                        changes[pair] = changes.get(pair, 0) + n
+                    for c, n in res["counts"].items():
+                        counts[c] = counts.get(c, 0) + n
+                record.extra["classification"]["refine_with_model"] = dict(sorted(changes.items()))
+                record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}
+
             # ---- audit: driver prepares the states; one task per tile; driver merges
             with record.stage("audit", engine=engine):
                 task = bar.add_task("audit", total=kept, rate="")
                 progress = _stage_progress(bar, task)
                 ground_sample = np.concatenate([r["ground_z_sample"] for r in results])
-                plan = prepare_audit(model, config, conductors, rules, model_cloud, ground_sample)
-                other = np.zeros(model_cloud.n_points, dtype=bool)
-                for ow in model.other_wires:
-                    other[np.asarray(ow.point_indices, dtype=np.int64)] = True
-                jobs = []
-                for k, t in enumerate(tiles):
-                    local = model_local[other & (model_tile == k)]
-                    jobs.append(tile_audit_input(plan, model, t, local))
-                tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
-                audit_results: list[dict | None] = [None] * len(tiles)
+                plan = prepare_wire_states(
+                    model, config, conductors, rules,
+                    latitude_deg=survey_latitude(model_cloud), ground_z_m=ground_sample,
+                    origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
+                # a building footprint id is unique across tiles: tile number * 2**32 + its id
+                blocks: list[Any] = [None] * len(tiles)
                 done = 0
-                for k, res in engine.run([(audit_tile, (str(work), t, tiles_by_cell, j), {})
-                                          for t, j in zip(tiles, jobs, strict=True)]):
-                    audit_results[k] = res
+                span_ends = SimpleNamespace(spans=model.spans)  # what the tiles need of the model
+                for k, res in engine.run([(audit_tile, (str(work), t, tiles_by_cell, plan,
+                                                        span_ends, rules, k << 32), {})
+                                          for k, t in enumerate(tiles)]):
+                    blocks[k] = res["block"]
                     done += res["n_owned"]
                     progress(done, kept)
-                audit = finish_audit(plan, model, conductors, rules, audit_results)
+                audit = merge_findings(plan, model, conductors, rules, blocks)
 
             tolerance_rows = None
             if config.design:

@@ -18,10 +18,14 @@ and small summaries cross process boundaries):
 :func:`classify_tile`  classify a tile with its overlap; keep owned classes and heights above
                        ground on disk (``.npy``); return the small set of points the line model
                        needs (wires, structures, insulators, ground near structures);
-:func:`audit_tile`     clearances of a tile's owned points to the curves of the spans near it;
-                       return the raw per-point findings, ground minima, tree tops and ground
-                       profile samples;
-:func:`merge_findings` (driver) group findings into obstacles across tile seams, rank.
+:func:`refine_tile`    correct a tile's classes with the line model (built on the driver from
+                       the gathered points), the context's classes from the classify stage;
+:func:`audit_tile`     :func:`clearaudit.audit.engine.point_findings` on the tile's owned points
+                       with their context (crowns and building footprints whole); the driver
+                       prepares the wire states (:func:`~clearaudit.audit.engine.prepare_wire_states`)
+                       and merges the tiles' findings across the seams
+                       (:func:`~clearaudit.audit.engine.merge_findings`) — the same three steps
+                       as the in-memory ``audit_line``.
 
 The classified copy is then streamed in input order from the tiles' owned results
 (:class:`TileResults`), whose point keys are sorted within each tile.
@@ -450,247 +454,195 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
 
 
-# =============================================================================== task B: audit
-@dataclass
-class AuditTileInput:
-    """What :func:`audit_tile` needs besides the tile (the states near the tile only)."""
-
-    states: list[tuple[int, Any]]  # (global state index, WireState)
-    other_wire_local: np.ndarray  # owned point indices that belong to other wires
-    requirements: list[dict]  # per listed state: vegetation, wire, ground{}, b_v, b_h
-    ground_classes: np.ndarray
-    surface_lookup: np.ndarray
-    buffer_m: float
-    options: Any  # clearaudit.audit.engine.AuditOptions
-    profile_spans: list[tuple[str, np.ndarray, np.ndarray]]  # (span id, stations, xy)
-    fall_in: bool = True
+# =============================================================================== task B: refine
+def _load(work: Path, tile_id: str, what: str) -> np.ndarray:
+    return np.load(_tile_file(work, tile_id, f"{what}.npy"))
 
 
-@dataclass
-class TileFindings:
-    """Per kind: the finding points (xyz, key) and their Findings (point indexes them)."""
+def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
+          names: tuple[str, ...]) -> tuple[np.ndarray, int, dict[str, np.ndarray]]:
+    """The tile's owned records followed by its context records, and per-point arrays.
 
-    xyz: dict[str, np.ndarray] = field(default_factory=dict)
-    key: dict[str, np.ndarray] = field(default_factory=dict)
-    findings: dict[str, Any] = field(default_factory=dict)
+    ``names`` are per-point arrays the tiles keep on disk (``cls``, ``rcls``, ``hag``,
+    ``wire``, ``other``): the owned points' from this tile, the context points' from the tiles
+    that own them.
+
+    Returns
+    -------
+    records, n_owned, {name: array over owned + context points}
+    """
+    own = read_cells(work, tile.cells)
+    records, where = read_context(work, tile)
+    arrays = {name: [_load(work, tile.id, name)] for name in names}
+    offset = 0
+    cache: dict[str, tuple[dict[str, np.ndarray], dict]] = {}
+    keep = np.ones(len(records), dtype=bool)
+    for cell, positions in where:
+        n = len(positions)
+        tile_id = tiles_by_cell.get(cell)
+        if tile_id is None:          # not owned by any tile (never happens for planned cells)
+            keep[offset:offset + n] = False
+            offset += n
+            continue
+        if tile_id not in cache:
+            cache[tile_id] = ({name: np.load(_tile_file(work, tile_id, f"{name}.npy"),
+                                             mmap_mode="r") for name in names},
+                              _cell_offsets(work, tile_id))
+        data, offsets = cache[tile_id]
+        at = offsets[cell] + positions
+        for name in names:
+            arrays[name].append(np.asarray(data[name][at]))
+        offset += n
+    records = records[keep]
+    return (np.concatenate([own, records]), len(own),
+            {name: np.concatenate(parts) for name, parts in arrays.items()})
 
 
-def _load_tile_results(work: Path, tile_id: str) -> tuple[np.ndarray, np.ndarray]:
-    return (np.load(_tile_file(work, tile_id, "cls.npy")),
-            np.load(_tile_file(work, tile_id, "hag.npy")))
-
-
-def audit_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
-               job: AuditTileInput) -> dict[str, Any]:
-    """Clearances of one tile's owned points to the condition curves of the nearby spans.
+def write_model_labels(work: str | Path, tile: TileSpec, wire: np.ndarray,
+                       other: np.ndarray) -> None:
+    """Keep the line model's per-point labels of a tile's owned points on disk.
 
     Parameters
     ----------
     work
-        Work folder (holds the split cells and the classified tiles).
+        Work folder.
+    tile
+        The tile.
+    wire
+        Wire label of every owned point (``LineModel.wire_point_labels``; -1 none).
+    other
+        Index of the other (crossing) wire of every owned point (-1 none).
+    """
+    np.save(_tile_file(Path(work), tile.id, "wire.npy"), np.asarray(wire, dtype=np.int64))
+    np.save(_tile_file(Path(work), tile.id, "other.npy"), np.asarray(other, dtype=np.int64))
+
+
+@dataclass
+class _ViewResult:
+    classification: np.ndarray
+    height_above_ground_m: np.ndarray
+    counts: dict = field(default_factory=dict)
+    info: dict = field(default_factory=dict)
+
+
+@dataclass
+class _ViewModel:
+    structures: list
+    spans: list
+    wire_point_labels: np.ndarray
+
+
+def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
+                ctx: TileContext, structures: list, spans: list) -> dict[str, Any]:
+    """Correct a tile's classes with the line model (:func:`clearaudit.classify.refine_with_model`).
+
+    The tile's owned points and their context (the classes of the classify stage, so the result
+    does not depend on the order the tiles run in) are refined together; the owned points'
+    corrected classes are kept (``rcls``) for the audit and the classified copy.
+
+    Parameters
+    ----------
+    work
+        Work folder.
     tile
         The tile.
     tiles_by_cell
-        Owner tile id of every occupied cell (to look up context points' classes).
-    job
-        The nearby wire states, requirements and options.
+        Owner tile id of every occupied cell.
+    ctx
+        Origin, CRS and units.
+    structures, spans
+        ``LineModel.structures`` and ``LineModel.spans``.
 
     Returns
     -------
     dict
-        ``findings`` (:class:`TileFindings`), ``ground_min`` {(state, condition): m},
-        ``tops`` (tree tops owned by the tile: xy, top_z, height_m, dist_m, crown cells of
-        fall-in trees), ``profiles`` {span id: (station indices, z)}, ``seconds``,
+        ``changes`` {"old->new": points}, ``counts`` {class: owned points}, ``seconds``,
         ``peak_rss_mb``.
-
-    Notes
-    -----
-    The per-point tests are those of :func:`clearaudit.audit.engine.audit_line` (radial
-    clearance to vegetation and other wires, box envelope to buildings, vertical clearance
-    to ground under the wire); the grouping of points into obstacles is left to the driver
-    (:func:`merge_findings`), so an obstacle cut by a tile seam becomes one obstacle.
     """
-    from scipy.spatial import cKDTree
-
-    from .audit.clearance import Findings, polyline_overhead, radial_findings
-    from .audit.engine import VEGETATION_CLASSES, _findings, _within
-    from .audit.priority import fall_in_distance, find_tree_tops
-    from .cloud import BUILDING
+    from .classify import refine_with_model
 
     t0 = time.perf_counter()
     work = Path(work)
-    opts = job.options
-    own = read_cells(work, tile.cells)
-    cls, hag = _load_tile_results(work, tile.id)
-    xyz = own["xyz"]
-    keys = own["key"]
-    with open(_tile_file(work, tile.id, "ground.pkl"), "rb") as fh:
-        ground_model = pickle.load(fh)
-    out = TileFindings()
-    ground_min: dict[tuple[int, str], float] = {}
-    states = job.states
-    profiles: dict[str, tuple[np.ndarray, np.ndarray]] = {}
-    tops_out: dict[str, np.ndarray] = {}
-    if states:
-        samples = np.concatenate([c for _, st in states for c in st.curves.values()])
-        samples_tree = cKDTree(samples[:, :2])
-
-        def group(mask, buffer_m, two_d=False):
-            idx = np.flatnonzero(mask)
-            if idx.size:
-                idx = idx[_within(xyz[idx, :2], samples_tree, buffer_m)]
-            g_xyz = xyz[idx]
-            tree = cKDTree(g_xyz[:, :2] if two_d else g_xyz) if len(idx) else None
-            return idx, g_xyz, tree
-
-        is_ground = np.isin(cls, job.ground_classes)
-        other = np.zeros(len(xyz), dtype=bool)
-        other[np.asarray(job.other_wire_local, dtype=np.int64)] = True
-        groups = {"vegetation": group(np.isin(cls, VEGETATION_CLASSES), job.buffer_m),
-                  "building": group(cls == BUILDING, job.buffer_m),
-                  "ground": group(is_ground, opts.ground_lateral_m + 1.0, two_d=True),
-                  "wire": group(other, job.buffer_m)}
-        parts: dict[str, list[Any]] = {k: [] for k in groups}
-        for (i, st), req in zip(states, job.requirements, strict=True):
-            for cond, curve in st.curves.items():
-                frac = st.fractions[cond]
-                ci_along = st.position_ci95(cond, frac)
-                margin = opts.search_margin_m + float(np.max(ci_along))
-                for kind in ("vegetation", "wire"):
-                    _, g_xyz, tree = groups[kind]
-                    if tree is None:
-                        continue
-                    idx, d, ci, fr = radial_findings(g_xyz, tree, curve, frac, req[kind],
-                                                     ci_along, margin)
-                    if idx.size:
-                        parts[kind].append(_findings(idx, i, cond, d, req[kind], ci, fr,
-                                                     "any" if kind == "wire" else "value"))
-                _, g_xyz, tree = groups["building"]
-                b_h, b_v = req["b_h"], req["b_v"]
-                if tree is not None:
-                    hits = tree.query_ball_point(curve, math.hypot(b_h, b_v) + margin,
-                                                 return_sorted=False)
-                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
-                    if idx.size:
-                        lateral, wire_z, param = polyline_overhead(g_xyz[idx], curve)
-                        d_v = np.abs(wire_z - g_xyz[idx, 2])
-                        ci = np.interp(param, np.arange(len(curve)), ci_along)
-                        fr = np.interp(param, np.arange(len(curve)), frac)
-                        keep = (lateral < b_h) & (d_v - ci < b_v)
-                        vertical = (b_v - d_v) <= (b_h - lateral)
-                        clearance = np.where(vertical, d_v, lateral)
-                        required = np.where(vertical, b_v, b_h)
-                        ci = np.where(vertical, ci, 0.0)
-                        key = np.where(vertical, "vertical", "horizontal").astype(object)
-                        if np.any(keep):
-                            m = int(keep.sum())
-                            parts["building"].append(Findings(
-                                idx[keep], np.full(m, i), np.full(m, cond, dtype=object),
-                                clearance[keep], required[keep], ci[keep], fr[keep], key[keep]))
-                g_idx, g_xyz, tree = groups["ground"]
-                # ground model under the owned part of the curve
-                inside = tile.owns(curve[:, :2])
-                model_min = math.inf
-                if inside.any() and ground_model is not None:
-                    z = np.asarray(ground_model.height_at(curve[inside, :2]), dtype=float)
-                    dz = curve[inside, 2] - z
-                    dz = dz[np.isfinite(dz)]
-                    model_min = float(dz.min()) if dz.size else math.inf
-                point_min = math.inf
-                if tree is not None:
-                    hits = tree.query_ball_point(curve[:, :2], opts.ground_lateral_m,
-                                                 return_sorted=False)
-                    idx = np.unique(np.fromiter((j for lst in hits for j in lst), dtype=np.int64))
-                    if idx.size:
-                        lateral, wire_z, param = polyline_overhead(g_xyz[idx], curve)
-                        near = lateral <= opts.ground_lateral_m
-                        idx, wire_z, param = idx[near], wire_z[near], param[near]
-                        dz = wire_z - g_xyz[idx, 2]
-                        point_min = float(np.min(dz)) if dz.size else math.inf
-                        surf = job.surface_lookup[cls[g_idx[idx]]]
-                        ground_req = req["ground"]
-                        required = np.array([ground_req.get(s, ground_req["land"]) for s in surf])
-                        ci = np.interp(param, np.arange(len(curve)), ci_along)
-                        fr = np.interp(param, np.arange(len(curve)), frac)
-                        keep = dz - ci < required
-                        if np.any(keep):
-                            m = int(keep.sum())
-                            parts["ground"].append(Findings(
-                                idx[keep], np.full(m, i), np.full(m, cond, dtype=object),
-                                dz[keep], required[keep], ci[keep], fr[keep], surf[keep]))
-                best = min(point_min, model_min)
-                if math.isfinite(best):
-                    ground_min[(i, cond)] = best
-        for kind, (g_idx, g_xyz, _) in groups.items():
-            f = Findings.concat([Findings.empty(), *parts[kind]])
-            used = np.unique(f.point)
-            remap = np.searchsorted(used, f.point)
-            f.point = remap
-            out.xyz[kind] = g_xyz[used]
-            out.key[kind] = keys[g_idx[used]]
-            out.findings[kind] = f
-
-        # tree tops owned by this tile (crowns read across the seam from the context)
-        if job.fall_in:
-            survey_mot = [st.curves[c] for _, st in states for c in ("survey", "mot")
-                          if c in st.curves]
-            veg_xyz, veg_hag = _vegetation_with_context(work, tile, tiles_by_cell, xyz, cls, hag)
-            if len(veg_xyz) and survey_mot:
-                wires = np.concatenate(survey_mot)
-                sel = _within(veg_xyz[:, :2], cKDTree(wires[:, :2]), opts.fall_in_buffer_m)
-                heights = veg_hag[sel].astype(float)
-                tops = find_tree_tops(veg_xyz[sel], heights, min_height_m=opts.min_tree_height_m)
-                if len(tops):
-                    mine = np.flatnonzero(tile.owns(tops.xy))
-                    dist = fall_in_distance(tops.base_xyz[mine], wires)
-                    renumber = np.full(len(tops), -1)
-                    renumber[mine] = np.arange(len(mine))
-                    cell_tree = renumber[np.maximum(tops.cell_tree, 0)]
-                    cell_tree[tops.cell_tree < 0] = -1
-                    risky = np.zeros(len(mine) + 1, dtype=bool)
-                    risky[:-1] = dist < tops.height_m[mine]
-                    crown = np.flatnonzero((cell_tree >= 0) & risky[cell_tree])
-                    tops_out = {"xy": tops.xy[mine], "top_z": tops.top_z[mine],
-                                "height_m": tops.height_m[mine], "dist_m": dist,
-                                "cell_xyz": tops.cell_xyz[crown], "cell_tree": cell_tree[crown]}
-    # ground profile samples inside the owned box
-    for span_id, _stations, sxy in job.profile_spans:
-        inside = np.flatnonzero(tile.owns(sxy))
-        if inside.size and ground_model is not None:
-            z = np.asarray(ground_model.height_at(sxy[inside]), dtype=float)
-            profiles[span_id] = (inside, z)
-    return {"tile": tile.id, "findings": out, "ground_min": ground_min, "tops": tops_out,
-            "profiles": profiles, "n_owned": len(xyz),
+    rec, n_own, arrays = _view(work, tile, tiles_by_cell, ("cls", "hag", "wire"))
+    result = _ViewResult(arrays["cls"].astype(np.uint8), arrays["hag"].astype(np.float64))
+    before = result.classification[:n_own].copy()
+    if len(rec):
+        refine_with_model(_cloud(ctx, rec["xyz"], result.classification), result,
+                          _ViewModel(structures, spans, arrays["wire"]))
+    cls = result.classification[:n_own]
+    np.save(_tile_file(work, tile.id, "rcls.npy"), cls)
+    changed = np.flatnonzero(cls != before)
+    changes: dict[str, int] = {}
+    if len(changed):
+        pairs, n = np.unique(before[changed].astype(np.int32) * 256 + cls[changed],
+                             return_counts=True)
+        changes = {f"{p // 256}->{p % 256}": int(c) for p, c in zip(pairs, n, strict=True)}
+    codes, counts = np.unique(cls, return_counts=True)
+    return {"tile": tile.id, "n_owned": n_own, "changes": changes,
+            "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
 
 
-def _vegetation_with_context(work: Path, tile: TileSpec, tiles_by_cell, xyz, cls, hag):
-    """Owned vegetation points plus the neighbours' vegetation within the overlap."""
-    from .audit.engine import VEGETATION_CLASSES
+# =============================================================================== task C: audit
+def tile_states(plan: Any, tile: TileSpec) -> np.ndarray:
+    """Indices of the wire states whose curves come near a tile (within the search distances
+    plus the tile's overlap)."""
+    opts = plan.options
+    margin = max(plan.buffer_m, opts.fall_in_buffer_m) + plan.pad_m + 10.0 + tile.overlap_m
+    x0, y0, x1, y1 = tile.box
+    b = plan.state_boxes
+    if len(b) == 0:
+        return np.zeros(0, dtype=np.int64)
+    return np.flatnonzero((b[:, 0] <= x1 + margin) & (b[:, 2] >= x0 - margin)
+                          & (b[:, 1] <= y1 + margin) & (b[:, 3] >= y0 - margin))
 
-    veg = np.isin(cls, VEGETATION_CLASSES)
-    xyz_parts, hag_parts = [xyz[veg]], [hag[veg]]
-    records, where = read_context(work, tile)
-    if len(records):
-        offset = 0
-        cache: dict[str, tuple[np.ndarray, np.ndarray, dict]] = {}
-        for cell, positions in where:
-            tile_id = tiles_by_cell.get(cell)
-            n = len(positions)
-            if tile_id is None:
-                offset += n
-                continue
-            if tile_id not in cache:
-                n_cls, n_hag = _load_tile_results(work, tile_id)
-                cache[tile_id] = (n_cls, n_hag, _cell_offsets(work, tile_id))
-            n_cls, n_hag, offsets = cache[tile_id]
-            at = offsets[cell] + positions
-            rec = records[offset:offset + n]
-            v = np.isin(n_cls[at], VEGETATION_CLASSES)
-            xyz_parts.append(rec["xyz"][v])
-            hag_parts.append(n_hag[at][v])
-            offset += n
-    return np.concatenate(xyz_parts), np.concatenate(hag_parts)
+
+def audit_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
+               plan: Any, model: Any, rules: Any, label_base: int = 0) -> dict[str, Any]:
+    """The clearance findings of one tile (:func:`clearaudit.audit.engine.point_findings`).
+
+    The tile's owned points and its context (refined classes, heights above ground, other
+    wires) make one block; findings are kept for the owned points, while tree crowns and
+    building footprints are formed with the context, so the driver
+    (:func:`clearaudit.audit.engine.merge_findings`) can join obstacles across the seams.
+
+    Parameters
+    ----------
+    work
+        Work folder (holds the split cells and the tiles' per-point results).
+    tile
+        The tile.
+    tiles_by_cell
+        Owner tile id of every occupied cell.
+    plan
+        :class:`clearaudit.audit.engine.WireStates`.
+    model
+        The line model (span ends for the ground profiles).
+    rules
+        The rule set.
+    label_base
+        Makes the tile's building footprint ids unique across tiles.
+
+    Returns
+    -------
+    dict
+        ``block`` (:class:`~clearaudit.audit.engine.BlockFindings`), ``n_owned``,
+        ``seconds``, ``peak_rss_mb``.
+    """
+    from .audit.engine import point_findings
+
+    t0 = time.perf_counter()
+    work = Path(work)
+    rec, n_own, arrays = _view(work, tile, tiles_by_cell, ("rcls", "hag", "other"))
+    with open(_tile_file(work, tile.id, "ground.pkl"), "rb") as fh:
+        ground_model = pickle.load(fh)
+    block = point_findings(rec["xyz"], arrays["rcls"], arrays["hag"].astype(np.float64), plan,
+                           model, rules, keys=rec["key"], owned_box=tile.box,
+                           ground_model=ground_model, other_wire=arrays["other"],
+                           state_indices=tile_states(plan, tile), label_base=label_base)
+    return {"tile": tile.id, "block": block, "n_owned": n_own,
+            "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
+
 
 
 def _cell_offsets(work: Path, tile_id: str) -> dict[tuple[int, int], int]:
@@ -722,16 +674,19 @@ class TileResults:
         self.work = Path(work)
         self.parts = []
         for t in tiles:
+            # the classes refined with the line model when that stage ran
+            cls_name = "rcls.npy" if _tile_file(self.work, t.id, "rcls.npy").exists() \
+                else "cls.npy"
             key = np.load(_tile_file(self.work, t.id, "key.npy"))
             if len(key) and np.any(np.diff(key) < 0):
                 order = np.argsort(key, kind="stable")
                 np.save(_tile_file(self.work, t.id, "key.npy"), key[order])
-                for what in ("cls.npy", "hag.npy"):
+                for what in (cls_name, "hag.npy"):
                     arr = np.load(_tile_file(self.work, t.id, what))
                     np.save(_tile_file(self.work, t.id, what), arr[order])
             del key
             self.parts.append(tuple(np.load(_tile_file(self.work, t.id, w), mmap_mode="r")
-                                    for w in ("key.npy", "cls.npy", "hag.npy")))
+                                    for w in ("key.npy", cls_name, "hag.npy")))
 
     def values(self, file_id: int, start: int, stop: int):
         """``(has_new, codes, {"height_above_ground": hag})`` for points start:stop."""
@@ -751,284 +706,7 @@ class TileResults:
         return has_new, codes, {"height_above_ground": hag}
 
 
-__all__ = ["AuditTileInput", "Corridor", "Grid", "RECORD", "SplitPart", "TileContext",
-           "TileFindings", "TileResults", "TileSpec", "audit_tile", "classify_tile",
-           "peak_rss_mb", "plan_parts", "plan_tiles", "read_cells", "read_context",
-           "split_part", "write_cell_offsets"]
-
-
-# =============================================================================== driver: audit
-@dataclass
-class AuditPlan:
-    """The driver's part of the audit before the tiles: temperature, conditions, states."""
-
-    voltage: float
-    altitude: float | None
-    altitude_note: str
-    survey_t: dict
-    specs: dict
-    insulator_m: float
-    states: list
-    notes: list[str]
-    buffer_m: float
-    requirements: list[dict]
-    ground_classes: np.ndarray
-    surface_lookup: np.ndarray
-    options: Any
-    state_boxes: np.ndarray  # (n, 4) xmin, ymin, xmax, ymax of each state's curves [m]
-
-
-def prepare_audit(model: Any, config: Any, conductors: dict, rules: Any, model_cloud: Cloud,
-                  ground_z_sample: np.ndarray, options: Any = None) -> AuditPlan:
-    """Survey temperature, conditions and the wire states, as in ``audit_line`` steps 1-2.
-
-    Parameters
-    ----------
-    model
-        The line model.
-    config, conductors, rules
-        As for :func:`clearaudit.audit.audit_line`.
-    model_cloud
-        The cloud the model was built from (for the latitude of the survey).
-    ground_z_sample
-        A sample of ground heights of the whole survey (local m) for the altitude. [m]
-    options
-        :class:`clearaudit.audit.engine.AuditOptions`.
-    """
-    from .audit.conditions import project_conditions, resolve_conditions
-    from .audit.engine import AuditOptions, _latitude, default_insulator_length_m
-    from .audit.temperature import survey_conductor_temperature
-    from .errors import InputError
-
-    opts = options or AuditOptions()
-    voltage = getattr(config.line, "voltage_kv", None)
-    if voltage is None or not voltage > 0:
-        raise InputError(getattr(config, "source", None) or "--voltage-kv",
-                         "the line voltage is needed for the clearance audit "
-                         "(give [line] voltage_kv or --voltage-kv)")
-    voltage = float(voltage)
-    notes: list[str] = []
-    altitude = getattr(config.line, "altitude_m", None)
-    if altitude is None and len(ground_z_sample):
-        altitude = float(np.median(ground_z_sample)) + float(model_cloud.origin[2]) * float(
-            model_cloud.vertical_unit_m)
-        altitude_note = "from the cloud's ground heights (assumed above sea level)"
-    else:
-        altitude_note = "from the line file" if altitude is not None else "unknown"
-    latitude = _latitude(model_cloud)
-    wire_fits = [w for s in model.spans for w in s.wires
-                 if w.fit is not None and getattr(w.fit, "ok", False)]
-    azimuth = 90.0
-    if wire_fits:
-        d = np.mean([w.fit.direction for w in wire_fits], axis=0)
-        azimuth = float(np.degrees(np.arctan2(d[0], d[1])) % 360.0)
-    survey_t = survey_conductor_temperature(
-        config.survey, conductors["phase"], latitude_deg=latitude,
-        elevation_m=float(altitude) if altitude is not None and math.isfinite(altitude) else 0.0,
-        line_azimuth_deg=azimuth)
-    if survey_t["method"] == "default":
-        notes.append(survey_t["note"])
-    specs = resolve_conditions(rules, config.line.max_operating_temperature_c,
-                               survey_t["value_c"])
-    insulator = (opts.insulator_length_m if opts.insulator_length_m is not None
-                 else default_insulator_length_m(voltage))
-    states = project_conditions(model, conductors, specs, survey_t["ci95_c"],
-                                insulator_length_m=insulator, strain_model=opts.strain_model,
-                                creep_shift_c=opts.creep_shift_c, spacing_m=opts.spacing_m)
-    for st in states:
-        notes.extend(f"{st.span_id} {st.wire_id}: {n}" for n in st.notes)
-    max_req = rules.max_required_m(voltage, altitude)
-    requirements = []
-    for st in states:
-        req = {kind: rules.required(kind, st.role, voltage, altitude_m=altitude).value_m
-               for kind in ("vegetation", "wire")}
-        req["ground"] = {key: rules.required("ground", st.role, voltage, key=key).value_m
-                         for key in rules.ground[st.role]}
-        req["b_v"] = rules.required("building", st.role, voltage, key="vertical").value_m
-        req["b_h"] = rules.required("building", st.role, voltage, key="horizontal").value_m
-        requirements.append(req)
-    boxes = np.array([[*np.min(np.concatenate(list(st.curves.values()))[:, :2], axis=0),
-                       *np.max(np.concatenate(list(st.curves.values()))[:, :2], axis=0)]
-                      for st in states]).reshape(-1, 4)
-    ground_classes = (np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces
-                      else np.array([GROUND], dtype=np.uint8))
-    surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
-    return AuditPlan(voltage=voltage, altitude=altitude, altitude_note=altitude_note,
-                     survey_t=survey_t, specs=specs, insulator_m=insulator, states=states,
-                     notes=notes, buffer_m=max_req + opts.search_margin_m + 2.0,
-                     requirements=requirements, ground_classes=ground_classes,
-                     surface_lookup=surface_lookup, options=opts, state_boxes=boxes)
-
-
-def tile_audit_input(plan: AuditPlan, model: Any, tile: TileSpec,
-                     other_wire_local: np.ndarray) -> AuditTileInput:
-    """The states, spans and other-wire points that concern one tile."""
-    opts = plan.options
-    margin = max(plan.buffer_m, opts.fall_in_buffer_m + 60.0) + tile.overlap_m
-    x0, y0, x1, y1 = tile.box
-    b = plan.state_boxes
-    near = np.flatnonzero((b[:, 0] <= x1 + margin) & (b[:, 2] >= x0 - margin)
-                          & (b[:, 1] <= y1 + margin) & (b[:, 3] >= y0 - margin)) \
-        if len(b) else np.zeros(0, dtype=int)
-    spans = []
-    for span in model.spans:
-        a, e = np.asarray(span.a_xy, float), np.asarray(span.b_xy, float)
-        length = float(np.linalg.norm(e - a))
-        if not length > 0:
-            continue
-        if (max(a[0], e[0]) < x0 or min(a[0], e[0]) >= x1 or max(a[1], e[1]) < y0
-                or min(a[1], e[1]) >= y1):
-            continue
-        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
-        spans.append((span.id, stations, a + np.outer(stations / length, e - a)))
-    return AuditTileInput(states=[(int(i), plan.states[i]) for i in near],
-                          other_wire_local=np.asarray(other_wire_local, dtype=np.int64),
-                          requirements=[plan.requirements[i] for i in near],
-                          ground_classes=plan.ground_classes,
-                          surface_lookup=plan.surface_lookup, buffer_m=plan.buffer_m,
-                          options=opts, profile_spans=spans, fall_in=bool(opts.fall_in))
-
-
-def finish_audit(plan: AuditPlan, model: Any, conductors: dict, rules: Any,
-                 tile_results: list[dict]) -> Any:
-    """Merge the tiles' findings into one :class:`~clearaudit.audit.engine.AuditResult`.
-
-    Findings of all tiles (in tile order) are grouped into obstacles together, so an obstacle
-    cut by a seam is one obstacle; then fall-in trees, grow-in, priorities, span rows, curves,
-    ground profiles and the summary follow ``audit_line`` steps 4-6.
-    """
-    from scipy.spatial import cKDTree
-
-    from .audit.clearance import Findings, polyline_distance
-    from .audit.engine import (
-        AuditResult,
-        _downsample,
-        _Group,
-        _obstacle_rows,
-        _span_rows,
-        _summary,
-    )
-    from .audit.priority import rank_findings
-
-    opts = plan.options
-    states = plan.states
-    rows: list[dict] = []
-    for kind in ("vegetation", "building", "ground", "wire"):
-        xyz_parts, key_parts, f_parts, offset = [], [], [], 0
-        for res in tile_results:
-            tf = res["findings"]
-            if kind not in tf.findings:
-                continue
-            f = tf.findings[kind]
-            if len(f.point):
-                f_parts.append(Findings(f.point + offset, f.state, f.condition, f.clearance_m,
-                                        f.required_m, f.ci95_m, f.fraction, f.key))
-            xyz_parts.append(tf.xyz[kind])
-            key_parts.append(tf.key[kind])
-            offset += len(tf.xyz[kind])
-        if not f_parts:
-            continue
-        group = _Group(kind, np.concatenate(key_parts), np.concatenate(xyz_parts), None)
-        rows.extend(_obstacle_rows(kind, Findings.concat(f_parts), group, states, opts))
-    ground_min: dict[tuple[int, str], float] = {}
-    for res in tile_results:
-        for k, v in res["ground_min"].items():
-            ground_min[k] = min(ground_min.get(k, math.inf), v)
-
-    # ---- fall-in trees (tops found per tile, each top owned by one tile)
-    trees_info = {"trees": 0, "fall_in_trees": 0}
-    tops = [r["tops"] for r in tile_results if r["tops"]]
-    if opts.fall_in and states and tops:
-        xy = np.concatenate([t["xy"] for t in tops])
-        top_z = np.concatenate([t["top_z"] for t in tops])
-        height = np.concatenate([t["height_m"] for t in tops])
-        dist = np.concatenate([t["dist_m"] for t in tops])
-        offsets = np.cumsum([0] + [len(t["xy"]) for t in tops])
-        cell_xyz = np.concatenate([t["cell_xyz"] for t in tops]).reshape(-1, 3)
-        cell_tree = np.concatenate([t["cell_tree"] + o for t, o in zip(tops, offsets,
-                                                                          strict=False)])
-        risk = dist < height
-        trees_info = {"trees": len(xy), "fall_in_trees": int(risk.sum())}
-        matched = np.zeros(len(xy), dtype=bool)
-        top_tree = cKDTree(xy) if len(xy) else None
-        for row in rows:
-            if row["kind"] != "vegetation" or top_tree is None:
-                continue
-            near = top_tree.query_ball_point(row["point_local"][:2], 4.0)
-            if not near:
-                continue
-            best = max(near, key=lambda t: top_z[t])
-            matched[best] = True
-            row["tree_height_m"] = float(height[best])
-            row["fall_in_distance_m"] = float(dist[best])
-            row["fall_in"] = bool(risk[best])
-        only = np.flatnonzero(risk & ~matched)
-        if opts.report_fall_in_only and only.size:
-            cells = np.flatnonzero(np.isin(cell_tree, only))
-            cxyz = cell_xyz[cells]
-            best_d = np.full(len(cells), np.inf)
-            best_state = np.zeros(len(cells), dtype=int)
-            best_frac = np.zeros(len(cells))
-            for k, st in enumerate(states):
-                d, _, param = polyline_distance(cxyz, st.curves["survey"])
-                better = d < best_d
-                best_d = np.where(better, d, best_d)
-                best_state = np.where(better, k, best_state)
-                best_frac = np.where(better, np.interp(param, np.arange(len(st.curves["survey"])),
-                                                       st.fractions["survey"]), best_frac)
-            for t in only:
-                mine = np.flatnonzero(cell_tree[cells] == t)
-                if mine.size == 0:
-                    continue
-                j = mine[np.argmin(best_d[mine])]
-                st = states[int(best_state[j])]
-                required = rules.required("vegetation", st.role, plan.voltage,
-                                          altitude_m=plan.altitude).value_m
-                clearance = float(best_d[j])
-                rows.append({
-                    "kind": "vegetation", "condition": "survey", "condition_detail": "survey",
-                    "span_id": st.span_id, "wire_id": st.wire_id, "role": st.role,
-                    "point_local": cxyz[j].copy(), "cloud_index": -1,
-                    "clearance_m": clearance, "required_m": required,
-                    "deficit_m": required - clearance,
-                    "clearance_ci95_m": float(st.position_ci95("survey",
-                                                               np.array([best_frac[j]]))[0]),
-                    "certainty": "certain", "finding": "fall_in",
-                    "station_m": float(best_frac[j]) * float(st.fit.span_length_m),
-                    "obstacle_id": f"T{int(t) + 1:04d}", "fall_in": True,
-                    "violated_at_survey": False, "surface": "", "direction": "",
-                    "tree_height_m": float(height[t]), "fall_in_distance_m": float(dist[t]),
-                })
-    for row in rows:
-        if row["kind"] == "vegetation":
-            gap = max(0.0, row["clearance_m"] - row["required_m"])
-            row["grow_in_years"] = gap / opts.growth_rate_m_per_year
-        else:
-            row["grow_in_years"] = None
-    rows = rank_findings(rows)
-    for n, row in enumerate(rows, start=1):
-        row["id"] = n
-
-    survey_t = plan.survey_t
-    span_rows = _span_rows(model, states, survey_t, ground_min, conductors)
-    curves = {(st.span_id, st.wire_id): {c: _downsample(v) for c, v in st.curves.items()}
-              for st in states}
-    profiles = {}
-    for span in model.spans:
-        length = float(np.linalg.norm(np.asarray(span.b_xy, float) - np.asarray(span.a_xy, float)))
-        if not length > 0:
-            continue
-        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
-        z = np.full(len(stations), np.nan)
-        for res in tile_results:
-            got = res["profiles"].get(span.id)
-            if got is not None:
-                z[got[0]] = got[1]
-        profiles[span.id] = np.column_stack([stations, z])
-    summary = _summary(rows, states, span_rows, survey_t, list(plan.notes), trees_info, rules,
-                       plan.voltage, plan.altitude, plan.altitude_note, plan.insulator_m)
-    return AuditResult(
-        survey_temperature={k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
-        conditions={name: spec.as_dict() for name, spec in plan.specs.items()},
-        span_rows=span_rows, violations=rows, curves=curves, ground_profiles=profiles,
-        summary=summary, rules=rules.describe())
+__all__ = ["Corridor", "Grid", "RECORD", "SplitPart", "TileContext", "TileResults", "TileSpec",
+           "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts", "plan_tiles",
+           "read_cells", "read_context", "refine_tile", "split_part", "tile_states",
+           "write_cell_offsets", "write_model_labels"]

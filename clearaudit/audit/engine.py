@@ -1,5 +1,11 @@
 """The clearance audit orchestrator: :func:`audit_line` -> :class:`AuditResult`.
 
+The audit has three public halves that the in-memory run and the tiled run
+(:mod:`clearaudit.tiling`) share: :func:`prepare_wire_states` (steps 1-2, once per line),
+:func:`point_findings` (steps 3-4 on one block of points: the whole cloud, or one tile with its
+overlap) and :func:`merge_findings` (steps 4-6 over all blocks). ``audit_line`` is the three
+with a single block.
+
 Order of work:
 
 1. conductor temperature at survey time (:mod:`.temperature`);
@@ -22,6 +28,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from clearaudit.cloud import (
@@ -44,10 +52,12 @@ from .clearance import (
     reduce_findings,
 )
 from .conditions import CONDITION_GROUP, WireState, project_conditions, resolve_conditions
-from .priority import find_tree_tops, rank_findings
+from .priority import TreeTops, fall_in_distance, find_tree_tops, rank_findings
 from .temperature import survey_conductor_temperature
 
-__all__ = ["AuditOptions", "AuditResult", "audit_line", "default_insulator_length_m"]
+__all__ = ["AuditOptions", "AuditResult", "BlockFindings", "WireStates", "audit_line",
+           "default_insulator_length_m", "merge_findings", "point_findings",
+           "prepare_wire_states", "survey_latitude"]
 
 VEGETATION_CLASSES = (LOW_VEGETATION, MEDIUM_VEGETATION, HIGH_VEGETATION)
 CURVE_VERTICES = 101
@@ -236,12 +246,640 @@ def _group(cloud_xyz, mask, kind, samples_tree, buffer_m, two_d=False) -> _Group
     return _Group(kind, idx, xyz, tree)
 
 
+# ------------------------------------------------------------------------------ the halves
+#: Tree labels are the tree top's canopy cell (ix, iy), coded in one int64 so that every block
+#: that sees a tree names it the same: ``(ix + 2**30) * 2**31 + (iy + 2**30)``.
+_CELL_OFFSET = 2 ** 30
+_CELL_STRIDE = 2 ** 31
+
+
+def _cell_code(xy: np.ndarray, cell_m: float) -> np.ndarray:
+    ij = np.floor(np.asarray(xy, dtype=float).reshape(-1, 2) / cell_m).astype(np.int64)
+    return (ij[:, 0] + _CELL_OFFSET) * _CELL_STRIDE + (ij[:, 1] + _CELL_OFFSET)
+
+
+def _in_box(xy: np.ndarray, box: tuple[float, float, float, float] | None) -> np.ndarray:
+    xy = np.asarray(xy, dtype=float).reshape(-1, 2)
+    if box is None:
+        return np.ones(len(xy), dtype=bool)
+    x0, y0, x1, y1 = box
+    return (xy[:, 0] >= x0) & (xy[:, 0] < x1) & (xy[:, 1] >= y0) & (xy[:, 1] < y1)
+
+
+@dataclass
+class WireStates:
+    """The audit's preparation: survey temperature, conditions and every wire's curves.
+
+    Made once per line (:func:`prepare_wire_states`) and shared by every block of points.
+
+    Attributes
+    ----------
+    voltage_kv
+        Nominal voltage. [kV]
+    altitude_m
+        Altitude for the vegetation rules, or None. [m]
+    altitude_note
+        Where the altitude comes from.
+    survey_temperature
+        ``{"value_c", "ci95_c", "method", "note"}``. [°C]
+    specs
+        Condition name -> condition spec.
+    insulator_length_m
+        Suspension insulator string length used. [m]
+    states
+        One :class:`~clearaudit.audit.conditions.WireState` per fitted wire.
+    notes
+        Notes for the summary.
+    buffer_m
+        Search distance around the curves (largest requirement + margin + 2 m). [m]
+    pad_m
+        Half the largest gap between the thinned plan samples of all curves. [m]
+    options
+        The :class:`AuditOptions`.
+    state_boxes
+        (n, 4) plan box ``xmin, ymin, xmax, ymax`` of each state's curves. [m]
+    """
+
+    voltage_kv: float
+    altitude_m: float | None
+    altitude_note: str
+    survey_temperature: dict
+    specs: dict
+    insulator_length_m: float
+    states: list[WireState]
+    notes: list[str]
+    buffer_m: float
+    pad_m: float
+    options: AuditOptions
+    state_boxes: np.ndarray
+
+
+def survey_latitude(cloud: Cloud) -> float | None:
+    """Latitude of the survey's centre (WGS 84), or None without a usable CRS. [°]"""
+    return _latitude(cloud)
+
+
+def prepare_wire_states(model: Any, config: Any, conductors: dict[str, Any], rules: Any, *,
+                        latitude_deg: float | None, ground_z_m: np.ndarray,
+                        origin_z_m: float = 0.0, options: AuditOptions | None = None
+                        ) -> WireStates:
+    """Survey conductor temperature, conditions and the curves of every fitted wire.
+
+    Parameters
+    ----------
+    model
+        :class:`clearaudit.model.line.LineModel`.
+    config
+        :class:`clearaudit.config.LineConfig`.
+    conductors
+        ``{"phase": Conductor, "shield": Conductor}``.
+    rules
+        :class:`clearaudit.audit.rules.RuleSet`.
+    latitude_deg
+        Latitude of the survey (the sun's position), None if unknown. [°]
+    ground_z_m
+        Heights of the ground points (all, or a sample), local z; their median plus
+        ``origin_z_m`` is the altitude when the line file gives none. [m]
+    origin_z_m
+        Height of the local origin (vertical unit applied). [m]
+    options
+        :class:`AuditOptions`.
+
+    Returns
+    -------
+    WireStates
+
+    Raises
+    ------
+    InputError
+        When the line voltage is unknown.
+    """
+    opts = options or AuditOptions()
+    voltage = getattr(config.line, "voltage_kv", None)
+    if voltage is None or not voltage > 0:
+        raise InputError(getattr(config, "source", None) or "--voltage-kv",
+                         "the line voltage is needed for the clearance audit "
+                         "(give [line] voltage_kv or --voltage-kv)")
+    voltage = float(voltage)
+    notes: list[str] = []
+    ground_z_m = np.asarray(ground_z_m, dtype=float).reshape(-1)
+    altitude = getattr(config.line, "altitude_m", None)
+    if altitude is None and len(ground_z_m):
+        altitude = float(np.median(ground_z_m)) + float(origin_z_m)
+        altitude_note = "from the cloud's ground heights (assumed above sea level)"
+    else:
+        altitude_note = "from the line file" if altitude is not None else "unknown"
+    wire_fits = [w for s in model.spans for w in s.wires
+                 if w.fit is not None and getattr(w.fit, "ok", False)]
+    azimuth = 90.0
+    if wire_fits:
+        d = np.mean([w.fit.direction for w in wire_fits], axis=0)
+        azimuth = float(np.degrees(np.arctan2(d[0], d[1])) % 360.0)
+    survey_t = survey_conductor_temperature(
+        config.survey, conductors["phase"], latitude_deg=latitude_deg,
+        elevation_m=float(altitude) if altitude is not None and math.isfinite(altitude) else 0.0,
+        line_azimuth_deg=azimuth)
+    if survey_t["method"] == "default":
+        notes.append(survey_t["note"])
+    specs = resolve_conditions(rules, config.line.max_operating_temperature_c,
+                               survey_t["value_c"])
+    insulator = (opts.insulator_length_m if opts.insulator_length_m is not None
+                 else default_insulator_length_m(voltage))
+    states = project_conditions(model, conductors, specs, survey_t["ci95_c"],
+                                insulator_length_m=insulator, strain_model=opts.strain_model,
+                                creep_shift_c=opts.creep_shift_c, spacing_m=opts.spacing_m)
+    for st in states:
+        notes.extend(f"{st.span_id} {st.wire_id}: {n}" for n in st.notes)
+    all_samples = [c for st in states for c in st.curves.values()]
+    pad = _plan_samples(all_samples)[1] if all_samples else 0.0
+    boxes = np.array([[*np.min(np.concatenate(list(st.curves.values()))[:, :2], axis=0),
+                       *np.max(np.concatenate(list(st.curves.values()))[:, :2], axis=0)]
+                      for st in states]).reshape(-1, 4)
+    return WireStates(voltage_kv=voltage, altitude_m=altitude, altitude_note=altitude_note,
+                      survey_temperature=survey_t, specs=specs, insulator_length_m=insulator,
+                      states=states, notes=notes,
+                      buffer_m=rules.max_required_m(voltage, altitude) + opts.search_margin_m
+                      + 2.0, pad_m=pad, options=opts, state_boxes=boxes)
+
+
+@dataclass
+class BlockFindings:
+    """What :func:`point_findings` found in one block of points (picklable, small).
+
+    Per obstacle kind (``vegetation``, ``building``, ``ground``, ``wire``): ``findings``
+    (:class:`~clearaudit.audit.clearance.Findings`, ``point`` indexing the kind's table),
+    and the table: ``xyz`` (local m), ``key`` (the point's key: cloud index or file key) and
+    ``label`` (the obstacle the point belongs to: vegetation the tree top's cell code, building
+    a block-unique footprint id, wire the other wire's index; -1 grouped later by linkage).
+
+    Attributes
+    ----------
+    members
+        Building footprint id -> the keys of all its points the block saw (``(ids, keys)``
+        pairs), so footprints cut by a block edge are joined where they share points.
+    ground_min
+        ``{(state index, condition): m}`` lowest ground clearance under the block's part of
+        each curve. [m]
+    trees
+        Trees whose top lies in the block: ``code``, ``xy`` [m], ``top_z`` [m], ``height_m``
+        [m], ``cell_xyz`` (crown cells of the trees within fall-in reach) [m], ``cell_tree``
+        (their tree, index into this block's trees).
+    profiles
+        span id -> (station indices, ground z [m]) for the stations in the block.
+    """
+
+    findings: dict[str, Findings] = field(default_factory=dict)
+    xyz: dict[str, np.ndarray] = field(default_factory=dict)
+    key: dict[str, np.ndarray] = field(default_factory=dict)
+    label: dict[str, np.ndarray] = field(default_factory=dict)
+    members: tuple[np.ndarray, np.ndarray] = field(
+        default_factory=lambda: (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)))
+    ground_min: dict[tuple[int, str], float] = field(default_factory=dict)
+    trees: dict[str, np.ndarray] = field(default_factory=dict)
+    profiles: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+
+
+def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: WireStates,
+                   model: Any, rules: Any, *, keys: np.ndarray | None = None,
+                   owned_box: tuple[float, float, float, float] | None = None,
+                   ground_model: Any = None, other_wire: np.ndarray | None = None,
+                   state_indices: np.ndarray | None = None, label_base: int = 0,
+                   progress: Callable[[int, int], None] | None = None) -> BlockFindings:
+    """Clearance tests of one block of points against the wire curves.
+
+    Parameters
+    ----------
+    xyz
+        The block's points (owned and context), (n, 3), local. [m]
+    classes
+        Their ASPRS classes, (n,).
+    hag
+        Their heights above ground, (n,); NaN where unknown. [m]
+    plan
+        From :func:`prepare_wire_states`.
+    model
+        The line model (span ends for the ground profiles).
+    rules
+        :class:`clearaudit.audit.rules.RuleSet`.
+    keys
+        Key of every point (the cloud index by default), (n,).
+    owned_box
+        ``xmin, ymin, xmax, ymax``: only points (curve samples, tree tops, profile stations)
+        inside are the block's own; the rest is context (crowns, building footprints). None:
+        everything is owned. [m]
+    ground_model
+        The ground model (``height_at(xy)``) or None.
+    other_wire
+        Index of the other (crossing) wire of every point, -1 none, (n,).
+    state_indices
+        The wire states near the block (all by default).
+    label_base
+        Added to the building footprint ids (unique across blocks).
+    progress
+        Called as ``progress(done, total)`` over the wire states.
+
+    Returns
+    -------
+    BlockFindings
+
+    Notes
+    -----
+    Vegetation and other wires: 3-D distance to each condition curve, kept where
+    :math:`d - u < r` (:math:`u` the curve's 95 % half-width projected on the point-to-wire
+    direction, :math:`r` the requirement). Buildings: the box envelope of the whole footprint
+    (:func:`~clearaudit.audit.clearance.building_envelope`), horizontal :math:`r_h` and vertical
+    :math:`r_v`. Ground: vertical distance under the wire within ``ground_lateral_m`` in plan,
+    against the requirement of the surface the point's class maps to. Requirements from the rule
+    set (``rules.required``), only where it applies to the wire's role (``rules.applies``).
+
+    References
+    ----------
+    See :mod:`clearaudit.audit.clearance` and the rule set's sources (clearaudit/data).
+    """
+    opts = plan.options
+    xyz = np.asarray(xyz, dtype=float).reshape(-1, 3)
+    classes = np.asarray(classes)
+    hag = np.asarray(hag, dtype=float)
+    n = len(xyz)
+    if len(classes) != n or len(hag) != n:
+        raise ValueError("Give one class and one height above ground per point.")
+    keys = np.arange(n, dtype=np.int64) if keys is None else np.asarray(keys, dtype=np.int64)
+    owned = _in_box(xyz[:, :2], owned_box)
+    voltage, altitude = plan.voltage_kv, plan.altitude_m
+    index = (np.arange(len(plan.states)) if state_indices is None
+             else np.asarray(state_indices, dtype=np.int64))
+    states = plan.states
+    out = BlockFindings()
+    kinds = ("vegetation", "building", "ground", "wire")
+    parts: dict[str, list[Findings]] = {k: [] for k in kinds}
+    samples = [c for i in index for c in states[i].curves.values()]
+    groups: dict[str, _Group] = {}
+    labels: dict[str, np.ndarray] = {}
+    if samples:
+        plan_tree, _ = _plan_samples(samples)
+        pad = plan.pad_m
+        buffer_m = plan.buffer_m
+        ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces \
+            else np.array([2], dtype=np.uint8)
+        is_ground = np.isin(classes, ground_classes)
+        is_veg = np.isin(classes, VEGETATION_CLASSES)
+        context_m = (max(opts.fall_in_buffer_m, buffer_m) if opts.fall_in
+                     else buffer_m + opts.tree_window_m)
+        veg_ctx, veg_ctx_d = _near_plan(xyz, is_veg, plan_tree, context_m + pad)
+        corridor = (veg_ctx_d <= buffer_m + pad) & owned[veg_ctx]
+        groups["vegetation"] = _make_group("vegetation", xyz, veg_ctx[corridor])
+        building_idx, _ = _near_plan(xyz, classes == BUILDING, plan_tree,
+                                     buffer_m + opts.building_context_m + pad)
+        groups["building"] = _make_group("building", xyz, building_idx, two_d=True)
+        ground_idx, _ = _near_plan(xyz, is_ground & owned, plan_tree,
+                                   opts.ground_lateral_m + 1.0 + pad)
+        groups["ground"] = _make_group("ground", xyz, ground_idx, two_d=True)
+        other = (np.full(n, -1, dtype=np.int64) if other_wire is None
+                 else np.asarray(other_wire, dtype=np.int64))
+        wire_idx, _ = _near_plan(xyz, (other >= 0) & owned, plan_tree, buffer_m + pad)
+        groups["wire"] = _make_group("wire", xyz, wire_idx)
+
+        # ---- obstacles: one building (whole footprint), one tree crown, one crossing wire
+        g = groups["building"]
+        # One building = one connected footprint in plan (walls under the eaves, roof planes
+        # and chimneys join however they are spaced vertically), never cut.
+        labels["building"] = group_obstacles(
+            np.column_stack([g.xyz[:, :2], np.zeros(len(g.xyz))]), opts.building_link_m, None,
+            thin_m=opts.building_link_m / 3.0 if len(g.xyz) > 50_000 else None)
+        labels["wire"] = other[groups["wire"].index]
+        heights = hag[veg_ctx]
+        if not np.all(np.isfinite(heights)) and ground_model is not None:
+            missing = ~np.isfinite(heights)
+            heights = heights.copy()
+            heights[missing] = xyz[veg_ctx[missing], 2] - ground_model.height_at(
+                xyz[veg_ctx[missing], :2])
+        tops = find_tree_tops(xyz[veg_ctx], heights, window_m=opts.tree_window_m,
+                              min_height_m=opts.min_tree_height_m)
+        cell_m = tops.grid[0] if tops.grid is not None else 1.0
+        top_code = _cell_code(tops.xy, cell_m)
+        t = tops.tree_of(groups["vegetation"].xyz)
+        labels["vegetation"] = np.where(t >= 0, top_code[np.maximum(t, 0)] if len(top_code)
+                                        else -1, -1)
+        by_label = _members(labels["building"])
+
+        ground_req_by_class = {role: np.array([rules.required(
+            "ground", role, voltage, key=rules.surface_of_class(c)
+            if rules.surface_of_class(c) in rules.ground[role] else "land").value_m
+            for c in range(256)]) for role in {states[i].role for i in index}}
+        surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
+
+        for done, i in enumerate(index):
+            i = int(i)
+            st = states[i]
+            applies = {kind: rules.applies(kind, st.role) for kind in ("vegetation", "wire")}
+            req = {kind: rules.required(kind, st.role, voltage, altitude_m=altitude).value_m
+                   for kind in ("vegetation", "wire")}
+            b_v = rules.required("building", st.role, voltage, key="vertical").value_m
+            b_h = rules.required("building", st.role, voltage, key="horizontal").value_m
+            conds = list(st.curves)
+            ci_of = {c: st.position_ci95(c, st.fractions[c]) for c in conds}
+            margin = opts.search_margin_m + max(float(np.max(ci_of[c])) for c in conds)
+            curves = [st.curves[c] for c in conds]
+            cand = {}
+            for kind in ("vegetation", "wire"):
+                g = groups[kind]
+                cand[kind] = (points_near_curves(g.tree, curves, req[kind] + margin)
+                              if applies[kind] and g.tree is not None
+                              else np.zeros(0, dtype=np.int64))
+            cand["building"] = points_near_curves(groups["building"].tree, curves,
+                                                  b_h + margin, two_d=True)
+            for cond, curve in st.curves.items():
+                frac = st.fractions[cond]
+                ci_along = ci_of[cond]
+                for kind in ("vegetation", "wire"):
+                    idx = cand[kind]
+                    if idx.size:
+                        f = _radial(groups[kind].xyz, idx, i, cond, curve, frac, ci_along,
+                                    req[kind], "any" if kind == "wire" else "value")
+                        if len(f.point):
+                            parts[kind].append(f)
+                if cand["building"].size:
+                    f = _building(groups["building"].xyz, cand["building"], labels["building"],
+                                  by_label, i, cond, curve, frac, ci_along, b_h, b_v)
+                    if len(f.point):
+                        parts["building"].append(f)
+                # ground: vertical clearance under the wire (the block's own part)
+                g = groups["ground"]
+                idx = points_near_curves(g.tree, [curve], opts.ground_lateral_m, two_d=True,
+                                         step_m=1.0)
+                model_min = _ground_model_clearance(ground_model, curve, owned_box)
+                if idx.size:
+                    lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
+                    near = lateral <= opts.ground_lateral_m
+                    idx, wire_z, param = idx[near], wire_z[near], param[near]
+                    dz = wire_z - g.xyz[idx, 2]
+                    point_min = float(np.min(dz)) if dz.size else math.inf
+                    out.ground_min[(i, cond)] = min(point_min, model_min)
+                    cls_here = classes[g.index[idx]]
+                    required = ground_req_by_class[st.role][cls_here]
+                    ci = np.interp(param, np.arange(len(curve)), ci_along)
+                    keep = dz - ci < required
+                    if np.any(keep):
+                        fr = np.interp(param[keep], np.arange(len(curve)), frac)
+                        m = int(keep.sum())
+                        parts["ground"].append(Findings(
+                            idx[keep], np.full(m, i), np.full(m, cond, dtype=object), dz[keep],
+                            required[keep], ci[keep], fr, surface_lookup[cls_here[keep]]))
+                elif math.isfinite(model_min):
+                    out.ground_min[(i, cond)] = model_min
+            if progress is not None:
+                progress(done + 1, len(index))
+
+        # ---- buildings: only footprints with a point of the block's own
+        g = groups["building"]
+        lab = labels["building"]
+        has_own = np.zeros(int(lab.max()) + 1 if len(lab) else 0, dtype=bool)
+        if len(lab):
+            has_own[lab[owned[g.index]]] = True
+            parts["building"] = [p.select(has_own[lab[p.point]]) for p in parts["building"]]
+            hit = np.unique(np.concatenate([lab[p.point] for p in parts["building"]] or
+                                           [np.zeros(0, dtype=np.int64)]))
+            at = np.flatnonzero(np.isin(lab, hit))
+            out.members = (lab[at].astype(np.int64) + int(label_base),
+                           keys[g.index[at]].astype(np.int64))
+            labels["building"] = lab.astype(np.int64) + int(label_base)
+
+        # ---- trees whose top is the block's own
+        mine = np.flatnonzero(_in_box(tops.xy, owned_box)) if len(tops) else np.zeros(0, int)
+        wire_samples = [states[i].curves[c] for i in index for c in ("survey", "mot")
+                        if c in states[i].curves]
+        dist = fall_in_distance(tops.base_xyz[mine], np.concatenate(wire_samples)) \
+            if wire_samples else np.full(len(mine), np.inf)
+        renumber = np.full(len(tops) + 1, -1)
+        renumber[mine] = np.arange(len(mine))
+        risky = np.zeros(len(mine) + 1, dtype=bool)
+        risky[:-1] = dist < tops.height_m[mine]
+        cell_tree = renumber[np.where(tops.cell_tree >= 0, tops.cell_tree, len(tops))] \
+            if len(tops.cell_tree) else np.zeros(0, dtype=int)
+        crown = np.flatnonzero((cell_tree >= 0) & risky[cell_tree])
+        out.trees = {"code": top_code[mine], "xy": tops.xy[mine], "top_z": tops.top_z[mine],
+                     "height_m": tops.height_m[mine], "cell_xyz": tops.cell_xyz[crown],
+                     "cell_tree": cell_tree[crown]}
+
+    # ---- per kind: the finding points' table
+    for kind in kinds:
+        f = Findings.concat([Findings.empty(), *parts[kind]])
+        g = groups.get(kind)
+        if g is None or len(f.point) == 0:
+            out.findings[kind] = Findings.empty()
+            out.xyz[kind] = np.zeros((0, 3))
+            out.key[kind] = np.zeros(0, dtype=np.int64)
+            out.label[kind] = np.zeros(0, dtype=np.int64)
+            continue
+        used = np.unique(f.point)
+        f.point = np.searchsorted(used, f.point)
+        out.findings[kind] = f
+        out.xyz[kind] = g.xyz[used]
+        out.key[kind] = keys[g.index[used]]
+        out.label[kind] = (np.asarray(labels[kind], dtype=np.int64)[used] if kind in labels
+                           else np.full(len(used), -1, dtype=np.int64))
+
+    # ---- ground profile stations in the block
+    for span in getattr(model, "spans", []):
+        a, b = np.asarray(span.a_xy, float), np.asarray(span.b_xy, float)
+        length = float(np.linalg.norm(b - a))
+        if not length > 0:
+            continue
+        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
+        sxy = a + np.outer(stations / length, b - a)
+        inside = np.flatnonzero(_in_box(sxy, owned_box))
+        if inside.size == 0:
+            continue
+        z = np.full(len(inside), np.nan)
+        if ground_model is not None:
+            try:
+                z = np.asarray(ground_model.height_at(sxy[inside]), dtype=float)
+            except Exception:  # noqa: BLE001 - fall back to the points
+                z = np.full(len(inside), np.nan)
+        g = groups.get("ground")
+        if np.any(~np.isfinite(z)) and g is not None and g.tree is not None:
+            d, j = g.tree.query(sxy[inside], distance_upper_bound=3.0)
+            fill = ~np.isfinite(z) & np.isfinite(d)
+            z[fill] = g.xyz[j[fill], 2]
+        out.profiles[span.id] = (inside, z)
+    return out
+
+
+def _join_footprints(blocks: list[BlockFindings]) -> dict[int, int]:
+    """Footprint id -> building number, joining footprints of different blocks that share a
+    point (a building cut by a block edge)."""
+    ids = np.concatenate([b.members[0] for b in blocks]) if blocks else np.zeros(0, np.int64)
+    keys = np.concatenate([b.members[1] for b in blocks]) if blocks else np.zeros(0, np.int64)
+    if len(ids) == 0:
+        return {}
+    uid, node = np.unique(ids, return_inverse=True)
+    node = node.reshape(-1)
+    order = np.lexsort((node, keys))
+    same = np.flatnonzero(keys[order][1:] == keys[order][:-1])
+    a, b = node[order][same], node[order][same + 1]
+    graph = coo_matrix((np.ones(len(a)), (a, b)), shape=(len(uid), len(uid)))
+    _, comp = connected_components(graph, directed=False)
+    # number the buildings by their first footprint id (stable across runs)
+    first = np.full(int(comp.max()) + 1, len(uid))
+    np.minimum.at(first, comp, np.arange(len(uid)))
+    rank = np.argsort(np.argsort(first))
+    return {int(u): int(rank[c]) for u, c in zip(uid, comp, strict=True)}
+
+
+def merge_findings(plan: WireStates, model: Any, conductors: dict[str, Any], rules: Any,
+                   blocks: list[BlockFindings]) -> AuditResult:
+    """Group the blocks' findings into obstacles and finish the audit.
+
+    Parameters
+    ----------
+    plan
+        From :func:`prepare_wire_states`.
+    model
+        The line model.
+    conductors
+        ``{"phase": Conductor, "shield": Conductor}``.
+    rules
+        :class:`clearaudit.audit.rules.RuleSet`.
+    blocks
+        From :func:`point_findings`, one per block (in a fixed order).
+
+    Returns
+    -------
+    AuditResult
+
+    Notes
+    -----
+    One row per obstacle per condition group (the worst entry). Obstacles: a tree crown (by its
+    top's canopy cell, the same in every block), a building footprint (footprints of different
+    blocks sharing a point are one building), a crossing wire; other violating vegetation and
+    ground points by single linkage over all blocks together (:func:`_obstacle_rows`). Then the
+    fall-in risk of every tree, grow-in time and priorities (:mod:`.priority`), span rows,
+    curves and ground profiles.
+    """
+    opts = plan.options
+    states = plan.states
+    notes = list(plan.notes)
+
+    # ---- the tree table, in canopy cell order
+    tree_parts = [b.trees for b in blocks if b.trees and len(b.trees["code"])]
+    tops = None
+    if tree_parts:
+        code = np.concatenate([t["code"] for t in tree_parts])
+        offsets = np.cumsum([0] + [len(t["code"]) for t in tree_parts])
+        order = np.argsort(code, kind="stable")
+        new_of = np.empty(len(order), dtype=np.int64)
+        new_of[order] = np.arange(len(order))
+        cell_tree = np.concatenate([new_of[t["cell_tree"] + o] for t, o in
+                                    zip(tree_parts, offsets, strict=False)]).astype(np.int64)
+        tops = TreeTops(np.concatenate([t["xy"] for t in tree_parts]).reshape(-1, 2)[order],
+                        np.concatenate([t["top_z"] for t in tree_parts])[order],
+                        np.concatenate([t["height_m"] for t in tree_parts])[order],
+                        np.concatenate([t["cell_xyz"] for t in tree_parts]).reshape(-1, 3),
+                        cell_tree)
+        tree_code = code[order]
+    elif any(b.trees for b in blocks):
+        tops = TreeTops(np.zeros((0, 2)), np.zeros(0), np.zeros(0), np.zeros((0, 3)),
+                        np.zeros(0, dtype=np.int64))
+        tree_code = np.zeros(0, dtype=np.int64)
+    building_of = _join_footprints(blocks)
+
+    # ---- 4. obstacles and rows
+    rows: list[dict] = []
+    for kind in ("vegetation", "building", "ground", "wire"):
+        f_parts, xyz_parts, key_parts, label_parts, offset = [], [], [], [], 0
+        for b in blocks:
+            f = b.findings.get(kind)
+            if f is None or len(f.point) == 0:
+                continue
+            f_parts.append(Findings(f.point + offset, f.state, f.condition, f.clearance_m,
+                                    f.required_m, f.ci95_m, f.fraction, f.key,
+                                    f.other_deficit_m))
+            xyz_parts.append(b.xyz[kind])
+            key_parts.append(b.key[kind])
+            label_parts.append(b.label[kind])
+            offset += len(b.xyz[kind])
+        if not f_parts:
+            continue
+        label = np.concatenate(label_parts)
+        if kind == "vegetation":
+            if tops is not None and len(tree_code):
+                at = np.clip(np.searchsorted(tree_code, label), 0, len(tree_code) - 1)
+                label = np.where((label >= 0) & (tree_code[at] == label), at, -1)
+            else:
+                label = np.full(len(label), -1)
+        elif kind == "building":
+            label = np.array([building_of.get(int(v), -1) for v in label], dtype=np.int64) \
+                if len(label) else label
+        group = _Group(kind, np.concatenate(key_parts), np.concatenate(xyz_parts), None)
+        rows.extend(_obstacle_rows(kind, Findings.concat(f_parts), group, states, opts,
+                                   labels=label))
+    ground_min: dict[tuple[int, str], float] = {}
+    for b in blocks:
+        for k, v in b.ground_min.items():
+            ground_min[k] = min(ground_min.get(k, math.inf), v)
+
+    # ---- 5. trees, fall-in, priorities
+    trees_info = {"trees": 0, "fall_in_trees": 0}
+    if tops is not None:
+        trees_info["trees"] = len(tops)
+        if opts.fall_in and states:
+            _fall_in(rows, tops, states, rules, plan.voltage_kv, plan.altitude_m, opts,
+                     trees_info)
+    for row in rows:
+        if row["kind"] == "vegetation":
+            gap = max(0.0, row["clearance_m"] - row["required_m"])
+            row["grow_in_years"] = gap / opts.growth_rate_m_per_year
+        else:
+            row["grow_in_years"] = None
+    # Clearance violations (found or possible) and hazard trees (tall enough to fall into the
+    # line but clear of every requirement) are ranked separately: a hazard tree is a work item
+    # for the vegetation crews, not a clearance violation.
+    hazard_trees = rank_findings([r for r in rows if r["finding"] == "fall_in"])
+    rows = rank_findings([r for r in rows if r["finding"] != "fall_in"])
+    for n, row in enumerate(rows, start=1):
+        row["id"] = n
+    for n, row in enumerate(hazard_trees, start=1):
+        row["id"] = n
+
+    # ---- 6. span rows, curves, profiles
+    survey_t = plan.survey_temperature
+    span_rows = _span_rows(model, states, survey_t, ground_min, conductors)
+    curves = {(st.span_id, st.wire_id): {c: _downsample(v) for c, v in st.curves.items()}
+              for st in states}
+    profiles = {}
+    for span in model.spans:
+        length = float(np.linalg.norm(np.asarray(span.b_xy, float) - np.asarray(span.a_xy,
+                                                                                  float)))
+        if not length > 0:
+            continue
+        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
+        z = np.full(len(stations), np.nan)
+        for b in blocks:
+            got = b.profiles.get(span.id)
+            if got is not None:
+                z[got[0]] = got[1]
+        profiles[span.id] = np.column_stack([stations, z])
+
+    summary = _summary(rows + hazard_trees, states, span_rows, survey_t, notes, trees_info,
+                       rules, plan.voltage_kv, plan.altitude_m, plan.altitude_note,
+                       plan.insulator_length_m)
+    return AuditResult(
+        survey_temperature={k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
+        conditions={name: spec.as_dict() for name, spec in plan.specs.items()},
+        span_rows=span_rows, violations=rows, curves=curves, ground_profiles=profiles,
+        summary=summary, rules=rules.describe(), hazard_trees=hazard_trees)
+
+
 # ------------------------------------------------------------------------------ main
 def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
                conductors: dict[str, Any], rules: Any, *,
                progress: Callable[[int, int], None] | None = None,
                options: AuditOptions | None = None) -> AuditResult:
-    """Audit the clearances of a fitted line.
+    """Audit the clearances of a fitted line (the whole cloud as one block).
+
+    ``audit_line`` = :func:`prepare_wire_states` + :func:`point_findings` on every point +
+    :func:`merge_findings`; the tiled run (:mod:`clearaudit.tiling`) calls the same three with
+    one block per tile.
 
     Parameters
     ----------
@@ -273,13 +911,6 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
     InputError
         When the line voltage is unknown.
     """
-    opts = options or AuditOptions()
-    voltage = getattr(config.line, "voltage_kv", None)
-    if voltage is None or not voltage > 0:
-        raise InputError(getattr(config, "source", None) or "--voltage-kv",
-                         "the line voltage is needed for the clearance audit "
-                         "(give [line] voltage_kv or --voltage-kv)")
-    voltage = float(voltage)
     classes = (np.asarray(classification.classification) if classification is not None
                else np.asarray(cloud.classification))
     hag = (np.asarray(classification.height_above_ground_m, dtype=float)
@@ -289,206 +920,20 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
                                             np.full(cloud.n_points, np.nan)), dtype=float))
     ground_model = getattr(classification, "ground", None) if classification is not None else None
     xyz = cloud.xyz
-    notes: list[str] = []
-
-    # ---- altitude (vegetation rules)
     ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces else \
         np.array([2], dtype=np.uint8)
     is_ground = np.isin(classes, ground_classes)
-    altitude = getattr(config.line, "altitude_m", None)
-    if altitude is None and np.any(is_ground):
-        altitude = float(np.median(xyz[is_ground, 2])) + float(cloud.origin[2]) * float(
-            cloud.vertical_unit_m)
-        altitude_note = "from the cloud's ground heights (assumed above sea level)"
-    else:
-        altitude_note = "from the line file" if altitude is not None else "unknown"
+    plan = prepare_wire_states(
+        model, config, conductors, rules, latitude_deg=_latitude(cloud),
+        ground_z_m=xyz[is_ground, 2],
+        origin_z_m=float(cloud.origin[2]) * float(cloud.vertical_unit_m), options=options)
+    other = np.full(cloud.n_points, -1, dtype=np.int64)
+    for k, ow in enumerate(getattr(model, "other_wires", []) or []):
+        other[np.asarray(ow.point_indices, dtype=np.int64)] = k
+    block = point_findings(xyz, classes, hag, plan, model, rules, ground_model=ground_model,
+                           other_wire=other, progress=progress)
+    return merge_findings(plan, model, conductors, rules, [block])
 
-    # ---- 1. survey temperature
-    latitude = _latitude(cloud)
-    wire_fits = [w for s in model.spans for w in s.wires
-                 if w.fit is not None and getattr(w.fit, "ok", False)]
-    azimuth = 90.0
-    if wire_fits:
-        d = np.mean([w.fit.direction for w in wire_fits], axis=0)
-        azimuth = float(np.degrees(np.arctan2(d[0], d[1])) % 360.0)
-    survey_t = survey_conductor_temperature(
-        config.survey, conductors["phase"], latitude_deg=latitude,
-        elevation_m=float(altitude) if altitude is not None and math.isfinite(altitude) else 0.0,
-        line_azimuth_deg=azimuth)
-    if survey_t["method"] == "default":
-        notes.append(survey_t["note"])
-
-    # ---- 2. conditions
-    specs = resolve_conditions(rules, config.line.max_operating_temperature_c,
-                               survey_t["value_c"])
-    insulator = (opts.insulator_length_m if opts.insulator_length_m is not None
-                 else default_insulator_length_m(voltage))
-    states = project_conditions(model, conductors, specs, survey_t["ci95_c"],
-                                insulator_length_m=insulator, strain_model=opts.strain_model,
-                                creep_shift_c=opts.creep_shift_c, spacing_m=opts.spacing_m)
-    for st in states:
-        notes.extend(f"{st.span_id} {st.wire_id}: {n}" for n in st.notes)
-
-    # ---- 3. corridor and obstacle groups
-    all_samples = [c for st in states for c in st.curves.values()]
-    max_req = rules.max_required_m(voltage, altitude)
-    buffer_m = max_req + opts.search_margin_m + 2.0
-    findings: dict[str, Findings] = {k: Findings.empty() for k in
-                                     ("vegetation", "building", "ground", "wire")}
-    ground_min: dict[tuple[int, str], float] = {}
-    groups: dict[str, _Group] = {}
-    labels: dict[str, np.ndarray] = {}
-    tops = None
-    trees_info = {"trees": 0, "fall_in_trees": 0}
-    if all_samples:
-        plan_tree, pad = _plan_samples(all_samples)
-        is_veg = np.isin(classes, VEGETATION_CLASSES)
-        context_m = (max(opts.fall_in_buffer_m, buffer_m) if opts.fall_in
-                     else buffer_m + opts.tree_window_m)
-        veg_ctx = _near_plan(xyz, is_veg, plan_tree, context_m + pad)
-        veg_ctx_d = veg_ctx[1]
-        veg_ctx = veg_ctx[0]
-        corridor = veg_ctx_d <= buffer_m + pad
-        groups["vegetation"] = _make_group("vegetation", xyz, veg_ctx[corridor])
-        building_idx, building_d = _near_plan(xyz, classes == BUILDING, plan_tree,
-                                              buffer_m + opts.building_context_m + pad)
-        groups["building"] = _make_group("building", xyz, building_idx, two_d=True)
-        ground_idx, _ = _near_plan(xyz, is_ground, plan_tree, opts.ground_lateral_m + 1.0 + pad)
-        groups["ground"] = _make_group("ground", xyz, ground_idx, two_d=True)
-        other = np.full(cloud.n_points, -1, dtype=np.int64)
-        for k, ow in enumerate(getattr(model, "other_wires", []) or []):
-            other[np.asarray(ow.point_indices, dtype=np.int64)] = k
-        wire_idx, _ = _near_plan(xyz, other >= 0, plan_tree, buffer_m + pad)
-        groups["wire"] = _make_group("wire", xyz, wire_idx)
-
-        # ---- obstacles: one building, one tree crown, one crossing wire
-        g = groups["building"]
-        # One building = one connected footprint in plan (walls under the eaves, roof planes
-        # and chimneys join however they are spaced vertically), never cut.
-        labels["building"] = group_obstacles(
-            np.column_stack([g.xyz[:, :2], np.zeros(len(g.xyz))]), opts.building_link_m, None,
-            thin_m=opts.building_link_m / 3.0 if len(g.xyz) > 50_000 else None)
-        labels["wire"] = other[groups["wire"].index]
-        heights = hag[veg_ctx]
-        if not np.all(np.isfinite(heights)) and ground_model is not None:
-            missing = ~np.isfinite(heights)
-            heights = heights.copy()
-            heights[missing] = xyz[veg_ctx[missing], 2] - ground_model.height_at(
-                xyz[veg_ctx[missing], :2])
-        tops = find_tree_tops(xyz[veg_ctx], heights, window_m=opts.tree_window_m,
-                              min_height_m=opts.min_tree_height_m)
-        labels["vegetation"] = tops.tree_of(groups["vegetation"].xyz)
-        by_label = _members(labels["building"])
-
-        ground_req_by_class = {role: np.array([rules.required(
-            "ground", role, voltage, key=rules.surface_of_class(c)
-            if rules.surface_of_class(c) in rules.ground[role] else "land").value_m
-            for c in range(256)]) for role in {st.role for st in states}}
-        surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
-
-        for i, st in enumerate(states):
-            applies = {kind: rules.applies(kind, st.role) for kind in ("vegetation", "wire")}
-            req = {kind: rules.required(kind, st.role, voltage, altitude_m=altitude).value_m
-                   for kind in ("vegetation", "wire")}
-            b_v = rules.required("building", st.role, voltage, key="vertical").value_m
-            b_h = rules.required("building", st.role, voltage, key="horizontal").value_m
-            conds = list(st.curves)
-            ci_of = {c: st.position_ci95(c, st.fractions[c]) for c in conds}
-            margin = opts.search_margin_m + max(float(np.max(ci_of[c])) for c in conds)
-            curves = [st.curves[c] for c in conds]
-            cand = {}
-            for kind in ("vegetation", "wire"):
-                g = groups[kind]
-                cand[kind] = (points_near_curves(g.tree, curves, req[kind] + margin)
-                              if applies[kind] and g.tree is not None
-                              else np.zeros(0, dtype=np.int64))
-            cand["building"] = points_near_curves(groups["building"].tree, curves,
-                                                  b_h + margin, two_d=True)
-            parts: dict[str, list[Findings]] = {k: [] for k in findings}
-            for cond, curve in st.curves.items():
-                frac = st.fractions[cond]
-                ci_along = ci_of[cond]
-                for kind in ("vegetation", "wire"):
-                    idx = cand[kind]
-                    if idx.size:
-                        f = _radial(groups[kind].xyz, idx, i, cond, curve, frac, ci_along,
-                                    req[kind], "any" if kind == "wire" else "value")
-                        if len(f.point):
-                            parts[kind].append(f)
-                if cand["building"].size:
-                    f = _building(groups["building"].xyz, cand["building"], labels["building"],
-                                  by_label, i, cond, curve, frac, ci_along, b_h, b_v)
-                    if len(f.point):
-                        parts["building"].append(f)
-                # ground: vertical clearance under the wire
-                g = groups["ground"]
-                idx = points_near_curves(g.tree, [curve], opts.ground_lateral_m, two_d=True,
-                                         step_m=1.0)
-                model_min = _ground_model_clearance(ground_model, curve)
-                if idx.size:
-                    lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
-                    near = lateral <= opts.ground_lateral_m
-                    idx, wire_z, param = idx[near], wire_z[near], param[near]
-                    dz = wire_z - g.xyz[idx, 2]
-                    point_min = float(np.min(dz)) if dz.size else math.inf
-                    ground_min[(i, cond)] = min(point_min, model_min)
-                    cls_here = classes[g.index[idx]]
-                    required = ground_req_by_class[st.role][cls_here]
-                    ci = np.interp(param, np.arange(len(curve)), ci_along)
-                    keep = dz - ci < required
-                    if np.any(keep):
-                        fr = np.interp(param[keep], np.arange(len(curve)), frac)
-                        m = int(keep.sum())
-                        parts["ground"].append(Findings(
-                            idx[keep], np.full(m, i), np.full(m, cond, dtype=object), dz[keep],
-                            required[keep], ci[keep], fr, surface_lookup[cls_here[keep]]))
-                elif math.isfinite(model_min):
-                    ground_min[(i, cond)] = model_min
-            for kind in findings:
-                findings[kind] = Findings.concat([findings[kind], *parts[kind]])
-            if progress is not None:
-                progress(i + 1, len(states))
-
-    # ---- 4. obstacles and rows
-    rows: list[dict] = []
-    for kind, f in findings.items():
-        rows.extend(_obstacle_rows(kind, f, groups.get(kind), states, opts,
-                                   labels=labels.get(kind)))
-
-    # ---- 5. trees, fall-in, priorities
-    if tops is not None:
-        trees_info["trees"] = len(tops)
-        if opts.fall_in and states:
-            _fall_in(rows, tops, states, rules, voltage, altitude, opts, trees_info)
-    for row in rows:
-        if row["kind"] == "vegetation":
-            gap = max(0.0, row["clearance_m"] - row["required_m"])
-            row["grow_in_years"] = gap / opts.growth_rate_m_per_year
-        else:
-            row["grow_in_years"] = None
-    # Clearance violations (found or possible) and hazard trees (tall enough to fall into the
-    # line but clear of every requirement) are ranked separately: a hazard tree is a work item
-    # for the vegetation crews, not a clearance violation.
-    hazard_trees = rank_findings([r for r in rows if r["finding"] == "fall_in"])
-    rows = rank_findings([r for r in rows if r["finding"] != "fall_in"])
-    for n, row in enumerate(rows, start=1):
-        row["id"] = n
-    for n, row in enumerate(hazard_trees, start=1):
-        row["id"] = n
-
-    # ---- 6. span rows, curves, profiles
-    span_rows = _span_rows(model, states, survey_t, ground_min, conductors)
-    curves = {(st.span_id, st.wire_id): {c: _downsample(v) for c, v in st.curves.items()}
-              for st in states}
-    profiles = _ground_profiles(model, ground_model, groups.get("ground"))
-
-    summary = _summary(rows + hazard_trees, states, span_rows, survey_t, notes, trees_info,
-                       rules, voltage, altitude, altitude_note, insulator)
-    return AuditResult(
-        survey_temperature={k: survey_t[k] for k in ("value_c", "ci95_c", "method", "note")},
-        conditions={name: spec.as_dict() for name, spec in specs.items()},
-        span_rows=span_rows, violations=rows, curves=curves, ground_profiles=profiles,
-        summary=summary, rules=rules.describe(), hazard_trees=hazard_trees)
 
 
 def _findings(idx, state, cond, d, required, ci, frac, key) -> Findings:
@@ -497,8 +942,11 @@ def _findings(idx, state, cond, d, required, ci, frac, key) -> Findings:
                     np.full(n, float(required)), ci, frac, np.full(n, key, dtype=object))
 
 
-def _ground_model_clearance(ground_model, curve: np.ndarray) -> float:
+def _ground_model_clearance(ground_model, curve: np.ndarray, box=None) -> float:
     if ground_model is None:
+        return math.inf
+    curve = curve[_in_box(curve[:, :2], box)]
+    if len(curve) == 0:
         return math.inf
     try:
         z = np.asarray(ground_model.height_at(curve[:, :2]), dtype=float)
