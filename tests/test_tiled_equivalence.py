@@ -125,20 +125,11 @@ def test_tiled_finds_every_in_memory_violation(runs):
     assert missing == []
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "measured: 3 extra vegetation rows in the tiled run (S04-S05 C1-B, 0.02 m survey/ice, "
-    "0.24 m MOT) from 5 points 9 m from tower S04 that the per-tile classifier labels high "
-    "vegetation and the whole-survey classifier labels structure (then unclassified); "
-    "clearaudit.classify is not view-independent across tiles"))
 def test_tiled_violations_equal_in_memory(runs):
     a, b = _rows(runs["memory"] / "violations.csv"), _rows(runs["tiles"] / "violations.csv")
     assert _match(a, b) == ([], [])
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "measured: sag_survey_m differs by up to 2.5 % (S01-S02 C1-A), tensions by 0.3 %: the "
-    "line model is fitted from the per-tile classes, which put attachment points up to 2 m "
-    "apart at some structures; median sag error to the sample's truth is the same (0.013 m)"))
 def test_tiled_spans_within_half_percent(runs):
     assert _span_deviation(runs["memory"], runs["tiles"]) <= SPAN_TOL
 

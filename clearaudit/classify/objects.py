@@ -227,6 +227,32 @@ def _chain_segments(xyz: np.ndarray, direction: np.ndarray, seed_idx: np.ndarray
         labels[live[finished]] = -1
 
 
+def anchored_frame(xy: np.ndarray, cell: float, margin_cells: int = 2) -> GridFrame:
+    """An axis-aligned grid whose cell edges lie on multiples of ``cell`` in local coordinates.
+
+    Cell boundaries then do not depend on which points are present (the whole survey or a
+    tile with its overlap), so per-cell decisions are the same in both.
+
+    Parameters
+    ----------
+    xy
+        Points the grid must cover. [m], shape (n, 2)
+    cell
+        Cell edge. [m]
+    margin_cells
+        Empty cells added on every side.
+    """
+    if cell <= 0:
+        raise ValueError("grid cell size must be positive")
+    xy = np.asarray(xy, dtype=np.float64)
+    if len(xy) == 0:
+        return GridFrame(np.zeros(2), np.eye(2), np.zeros(2), float(cell), (1, 1))
+    lo = np.floor(xy.min(axis=0) / cell) - margin_cells
+    hi = np.floor(xy.max(axis=0) / cell) + margin_cells + 1
+    return GridFrame(np.zeros(2), np.eye(2), lo * cell, float(cell),
+                     tuple(int(v) for v in hi - lo))
+
+
 def frame_for_points(xy: np.ndarray, cell: float) -> GridFrame:
     """An axis-aligned bucket grid over ``xy`` (for gathering points near a curve)."""
     return GridFrame(np.zeros(2), np.eye(2), xy.min(axis=0) - cell, cell,
@@ -441,7 +467,7 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
     high = np.flatnonzero(free & (hag >= opts.building_min_hag_m))
     if len(high) == 0:
         return building
-    grid = frame.with_cell(opts.building_cell_m)
+    grid = anchored_frame(xyz[high, :2], opts.building_cell_m)
     flat = grid.flat_index(xyz[high, :2])
     roof_like = ((feats.planarity[high] >= opts.building_min_planarity)
                  & (np.abs(feats.normal[high, 2]) >= 0.5))
@@ -491,7 +517,9 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     feats
         Their eigen features.
     frame
-        Orientation of the column grids (cell from ``column_cell_m``).
+        The ground grid of the cloud; not used for the object grids, which are anchored to
+        the local coordinates (:func:`anchored_frame`) so that the result for a point does
+        not depend on the extent of the cloud (whole survey or a tile with its overlap).
     opts
         Options.
 
@@ -500,7 +528,9 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     classes, info
         uint8 ASPRS class per point; counts of segments found (for the run record).
     """
-    col_frame = frame.with_cell(opts.column_cell_m)
+    # grids anchored to the local coordinates (not to the cloud's extent or principal
+    # direction): a tile with its overlap sees the same cells as the whole survey
+    col_frame = anchored_frame(xyz[:, :2], opts.column_cell_m)
     cols = column_grid(xyz[:, :2], hag, col_frame)
     filled_cell = (cols.fill >= opts.column_min_fill) & (np.nan_to_num(cols.top) - np.nan_to_num(cols.bottom) >= 4.0)
     filled_point = filled_cell.ravel()[col_frame.flat_index(xyz[:, :2])]
