@@ -18,10 +18,18 @@ _OFFSET = 1 << (_BITS - 1)
 
 def voxel_keys(xyz: np.ndarray, voxel: float) -> np.ndarray:
     """Packed int64 key of each point's voxel (21 bits per axis, ±1 M voxels)."""
-    ijk = np.floor(np.asarray(xyz) / voxel).astype(np.int64) + _OFFSET
-    if ijk.min() < 0 or ijk.max() >= (1 << _BITS):
-        raise ValueError("cloud too large for the voxel size (more than a million voxels across)")
-    return (ijk[:, 0] << (2 * _BITS)) | (ijk[:, 1] << _BITS) | ijk[:, 2]
+    xyz = np.asarray(xyz, dtype=np.float64).reshape(-1, 3)
+    keys = np.zeros(len(xyz), dtype=np.int64)
+    for axis, shift in ((0, 2 * _BITS), (1, _BITS), (2, 0)):  # one axis at a time: no (n, 3) temporaries
+        column = np.floor(xyz[:, axis] / voxel)
+        if column.min() + _OFFSET < 0 or column.max() + _OFFSET >= (1 << _BITS):
+            raise ValueError("cloud too large for the voxel size (more than a million voxels across)")
+        index = column.astype(np.int64)
+        del column
+        index += _OFFSET
+        index <<= shift
+        keys |= index
+    return keys
 
 
 def neighbour_offsets() -> np.ndarray:

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import minimum_spanning_tree, shortest_path
+from scipy.sparse.csgraph import connected_components, minimum_spanning_tree, shortest_path
 from scipy.spatial import cKDTree
 
 SUSPENSION = "suspension"
@@ -137,31 +137,47 @@ def detect_columns(
     A wire crossing a cell occupies one or two vertical bins; a lattice tower or a pole
     occupies many. Counting occupied (cell, bin) pairs separates the two without eigen
     features. Common practice (no source).
+
+    Only occupied cells are stored (sorted integer keys), so memory follows the number of
+    points, not the bounding box of a long or bent line; column cells are grown by
+    ``ceil(merge_distance_m / cell_m)`` cells (Manhattan distance, as repeated 4-neighbour
+    dilation) and joined by 8-connected components of a sparse neighbour graph.
     """
     xyz = np.asarray(xyz, dtype=float).reshape(-1, 3)
     if cell_m <= 0 or z_bin_m <= 0 or merge_distance_m < 0:
         raise ValueError("cell size, bin size and merge distance must be positive")
     if len(xyz) < min_points:
         return []
+    # Sparse grid: only occupied cells are stored, so memory follows the number of points,
+    # not the bounding box of the line (a long or bent line spans a huge box).
     lo = xyz[:, :2].min(axis=0)
     ij = np.floor((xyz[:, :2] - lo) / cell_m).astype(np.int64)
     nx, ny = ij.max(axis=0) + 1
     flat = ij[:, 0] * ny + ij[:, 1]
+    del ij
+    cells, point_cell = np.unique(flat, return_inverse=True)
+    del flat
     zb = np.floor(xyz[:, 2] / z_bin_m).astype(np.int64)
     zb -= zb.min()
-    keys = np.unique(flat * (zb.max() + 1) + zb)
-    cell_of_key = keys // (zb.max() + 1)
-    levels = np.bincount(cell_of_key, minlength=nx * ny)
-    column = (levels >= min_levels).reshape(nx, ny)
-    if not column.any():
+    occupied_bins = np.unique(point_cell * (zb.max() + 1) + zb) // (zb.max() + 1)
+    del zb
+    levels = np.bincount(occupied_bins, minlength=len(cells))
+    column = cells[levels >= min_levels]
+    if len(column) == 0:
         return []
     r = max(int(np.ceil(merge_distance_m / cell_m)), 0)
-    grown = ndimage.binary_dilation(column, iterations=r) if r > 0 else column
-    labels, n_lab = ndimage.label(grown, structure=np.ones((3, 3)))
-    # keep only the original column cells (plus their immediate neighbours) as members
-    member = ndimage.binary_dilation(column, iterations=1) & grown
-    lab_flat = np.where(member, labels, 0).ravel()
-    point_lab = lab_flat[flat]
+    grown = _dilate_cells(column, nx, ny, r)
+    member = _dilate_cells(column, nx, ny, min(r, 1))  # column cells + 4-neighbours
+    comp = _label_cells(grown, nx, ny)
+    n_lab = int(comp.max()) + 1
+    # label of each occupied cell (0 = not a member), then of each point
+    cell_lab = np.zeros(len(cells), dtype=np.int64)
+    pos = np.searchsorted(cells, member)
+    hit = pos < len(cells)
+    hit[hit] = cells[pos[hit]] == member[hit]
+    cell_lab[pos[hit]] = comp[np.searchsorted(grown, member[hit])] + 1
+    point_lab = cell_lab[point_cell]
+    del point_cell
     out: list[DetectedColumn] = []
     order = np.argsort(point_lab, kind="stable")
     bounds = np.searchsorted(point_lab[order], np.arange(n_lab + 2))
@@ -182,6 +198,59 @@ def detect_columns(
         out.append(DetectedColumn(xy=centre, z_top=z_top, z_bottom=z_bottom,
                                   radius_m=radius, point_indices=idx))
     return out
+
+
+def _dilate_cells(cells: np.ndarray, nx: int, ny: int, radius: int) -> np.ndarray:
+    """Sorted flat keys (``i * ny + j``) of the cells within Manhattan distance ``radius``
+    of ``cells``, clipped to the ``nx`` × ``ny`` box.
+
+    Same cells as ``ndimage.binary_dilation`` of the dense mask with the default cross
+    structure iterated ``radius`` times (a box is convex in the Manhattan metric, so
+    clipping after dilating equals dilating inside the box).
+    """
+    if radius <= 0:
+        return np.unique(cells)
+    di, dj = np.meshgrid(np.arange(-radius, radius + 1), np.arange(-radius, radius + 1),
+                         indexing="ij")
+    keep = np.abs(di) + np.abs(dj) <= radius
+    di, dj = di[keep], dj[keep]
+    i = cells // ny
+    j = cells % ny
+    gi = (i[:, None] + di[None, :]).ravel()
+    gj = (j[:, None] + dj[None, :]).ravel()
+    inside = (gi >= 0) & (gi < nx) & (gj >= 0) & (gj < ny)
+    return np.unique(gi[inside] * ny + gj[inside])
+
+
+def _label_cells(cells: np.ndarray, nx: int, ny: int) -> np.ndarray:
+    """8-connected components of a sorted set of occupied cells (flat keys ``i * ny + j``).
+
+    Returns the component of each cell, numbered from 0 in the order of each component's
+    first cell in row-major order (the numbering of ``ndimage.label`` on the dense grid).
+    """
+    n = len(cells)
+    i = cells // ny
+    j = cells % ny
+    rows, cols = [np.arange(n)], [np.arange(n)]
+    for di, dj in ((0, 1), (1, -1), (1, 0), (1, 1)):  # half of the 8 neighbours
+        ni, nj = i + di, j + dj
+        ok = (ni < nx) & (nj >= 0) & (nj < ny)
+        key = ni[ok] * ny + nj[ok]
+        pos = np.searchsorted(cells, key)
+        found = pos < n
+        found[found] = cells[pos[found]] == key[found]
+        rows.append(np.flatnonzero(ok)[found])
+        cols.append(pos[found])
+    r = np.concatenate(rows)
+    c = np.concatenate(cols)
+    graph = coo_matrix((np.ones(len(r), dtype=np.int8), (r, c)), shape=(n, n)).tocsr()
+    _, comp = connected_components(graph, directed=False)
+    # renumber by first cell in row-major order (cells are sorted, so by first index)
+    first = np.full(comp.max() + 1, n, dtype=np.int64)
+    np.minimum.at(first, comp, np.arange(n))
+    rank = np.empty_like(first)
+    rank[np.argsort(first)] = np.arange(len(first))
+    return rank[comp]
 
 
 def ground_height_at(ground_xyz: np.ndarray, xy: np.ndarray, radius_m: float = 10.0) -> float | None:
