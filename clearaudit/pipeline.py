@@ -62,6 +62,7 @@ class AuditOptions:
     tile_cell_m: float = 100.0
     tile_overlap_m: float = 40.0
     in_memory_max_points: int = 20_000_000
+    in_memory_max_footprint_m2: float = 25e6  # 25 km² of bounding box (5 km × 5 km)
     work_dir: Path | None = None
 
     def to_dict(self) -> dict[str, Any]:
@@ -223,13 +224,18 @@ def run_audit(options: AuditOptions, console=None):
         record.options["line_config"] = config.to_dict()
         record.options["rule_set"] = rules.describe()
 
-    total_points = sum(_header_point_count(p) for p in paths)
+    total_points, footprint_m2 = _header_extent(paths, options.crs)
     tiled = options.tiled
     if tiled is None:
+        # The in-memory run keeps the whole corridor and grids over its bounding box; a survey
+        # with many points, or one whose bounding box is far larger than a corridor (a long
+        # diagonal or bent line), runs tile by tile instead.
         tiled = bool(options.workers or options.scheduler) or \
-            total_points > options.in_memory_max_points
+            total_points > options.in_memory_max_points or \
+            footprint_m2 > options.in_memory_max_footprint_m2
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
-                                 "header_points": total_points}
+                                 "header_points": total_points,
+                                 "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:
         summary = _run_tiled(options, record, paths, config, structures_rows, conductors, rules,
                              console)
@@ -348,13 +354,28 @@ def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOption
     dump()
 
 
-def _header_point_count(path: Path) -> int:
+def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, float]:
+    """Total point count and the area of the inputs' joint bounding box from the headers.
+
+    Returns
+    -------
+    (points, area) : number of points, plan area of the bounding box. [-], [m²]
+    """
     import laspy
 
-    from .io.las import _las_errors
+    from .io.las import _las_errors, inputs_crs
 
-    with _las_errors(path, "open"), laspy.open(str(path)) as reader:
-        return int(reader.header.point_count)
+    _, unit_m, _ = inputs_crs(paths, crs=crs)
+    total, lo, hi = 0, np.full(2, np.inf), np.full(2, -np.inf)
+    for path in paths:
+        with _las_errors(path, "open"), laspy.open(str(path)) as reader:
+            header = reader.header
+            total += int(header.point_count)
+            if header.point_count:
+                lo = np.minimum(lo, np.asarray(header.mins[:2], dtype=float))
+                hi = np.maximum(hi, np.asarray(header.maxs[:2], dtype=float))
+    area = float(np.prod(np.maximum(hi - lo, 0.0))) * unit_m**2 if total else 0.0
+    return total, area
 
 
 def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,

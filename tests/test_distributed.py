@@ -143,3 +143,23 @@ def test_bad_scheduler_address_is_one_line_input_error(corridor, tmp_path):
 def test_negative_workers_rejected(corridor, tmp_path):
     with pytest.raises(InputError):
         _run(corridor, tmp_path / "neg", workers=-1)
+
+
+def test_header_extent_chooses_tiled_for_sprawling_surveys(tmp_path):
+    # Two points 6 km apart on a diagonal: few points, but a 36 km² bounding box, which the
+    # in-memory run would grid whole; the pipeline sends such surveys to the tiled run.
+    import laspy
+
+    from clearaudit.pipeline import AuditOptions, _header_extent
+
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.scales = np.array([0.01, 0.01, 0.01])
+    las = laspy.LasData(header)
+    las.x = np.array([500000.0, 506000.0])
+    las.y = np.array([4000000.0, 4006000.0])
+    las.z = np.array([100.0, 120.0])
+    path = tmp_path / "sprawl.las"
+    las.write(path)
+    points, area = _header_extent([path])
+    assert points == 2 and area == pytest.approx(36e6)
+    assert area > AuditOptions(clouds=[path], out=tmp_path / "o").in_memory_max_footprint_m2
