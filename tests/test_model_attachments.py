@@ -8,6 +8,7 @@ import pytest
 from scipy import stats
 
 from clearaudit.model.attachments import (
+    deadend_axis_shift,
     pool_stations,
     regular_start,
     sag_ci95_with_stations,
@@ -83,3 +84,91 @@ def test_sag_sensitivity_to_the_attachment_stations():
     expected = math.sqrt(fit.sag_ci95_m**2 + 2 * (1.959964 * g * sd) ** 2)
     assert total == pytest.approx(expected, rel=0.02)
     assert sag_ci95_with_stations(fit, 0.0, 0.0) == pytest.approx(fit.sag_ci95_m)
+
+
+def _reference_solution(e, f, sd, near, near_sd, prior_sd, length=None, length_sd=None):
+    """The same estimator as a stacked weighted least-squares problem solved by
+    scipy.linalg.lstsq (general-purpose reference library): rows sqrt(w) x = sqrt(w) y for the
+    far ends (x = (e, 1)), near ends (x = (e, 0)) and the prior rows delta = 0 (and l = l0)."""
+    from scipy import linalg
+
+    rows, rhs = [], []
+    for ei, fi, si in zip(e, f, sd, strict=True):
+        rows.append(np.r_[ei, 1.0] / si)
+        rhs.append(fi / si)
+    for ei, gi, si in zip(e, near, near_sd, strict=True):
+        if np.isfinite(gi):
+            rows.append(np.r_[ei, 0.0] / si)
+            rhs.append(gi / si)
+    rows += [np.array([1.0, 0.0, 0.0]) / prior_sd, np.array([0.0, 1.0, 0.0]) / prior_sd]
+    rhs += [0.0, 0.0]
+    if length is not None:
+        rows.append(np.array([0.0, 0.0, 1.0]) / length_sd)
+        rhs.append(length / length_sd)
+    theta, *_ = linalg.lstsq(np.array(rows), np.array(rhs))
+    return theta
+
+
+def test_deadend_axis_shift_straight_line_cancels_the_string_length():
+    # straight line, strings on both sides: the far ends are f_a = d + l, f_b = -d + l,
+    # so d = (f_a - f_b)/2 and l = (f_a + f_b)/2 (algebra); with a weak prior it is exact
+    e = np.array([[1.0, 0.0], [-1.0, 0.0]])
+    shift, shift_sd, length, length_sd = deadend_axis_shift(e, [3.20, 2.96], [0.03, 0.03],
+                                                            prior_sd_m=1e4)
+    assert shift == pytest.approx([0.12, -0.12], abs=1e-6)
+    assert length == pytest.approx(3.08, abs=1e-6)
+    # the sd of (f_a - f_b)/2 is sqrt(2) 0.03 / 2 (propagation of independent errors)
+    assert shift_sd == pytest.approx([0.03 / math.sqrt(2.0)] * 2, rel=1e-4)
+    assert length_sd == pytest.approx(0.03 / math.sqrt(2.0), rel=1e-4)
+
+
+def test_deadend_axis_shift_matches_a_reference_least_squares_solution():
+    # a 20 degree angle structure with near ends seen on one side, and a line end with a
+    # string length known from elsewhere; reference: scipy.linalg.lstsq on the stacked rows
+    a = math.radians(20.0)
+    e = np.array([[1.0, 0.0], [-math.cos(a), math.sin(a)]])
+    f, sd = [3.15, 2.95], [0.03, 0.04]
+    near, near_sd = [0.06, np.nan], [0.04, np.nan]
+    shift, _, length, _ = deadend_axis_shift(e, f, sd, near_ends_m=near, near_sd_m=near_sd,
+                                             prior_sd_m=0.1)
+    theta = _reference_solution(e, f, sd, near, near_sd, 0.1)
+    assert shift == pytest.approx(e @ theta[:2], abs=1e-9)
+    assert length == pytest.approx(theta[2], abs=1e-9)
+    e1 = np.array([[0.6, 0.8]])
+    shift, _, length, _ = deadend_axis_shift(e1, [3.2], [0.03], prior_sd_m=0.1,
+                                             string_length_m=3.05, string_length_sd_m=0.02)
+    theta = _reference_solution(e1, [3.2], [0.03], [np.nan], [np.nan], 0.1, 3.05, 0.02)
+    assert shift == pytest.approx(e1 @ theta[:2], abs=1e-9)
+    assert length == pytest.approx(theta[2], abs=1e-9)
+
+
+def test_deadend_axis_shift_sd_matches_monte_carlo_at_an_angle():
+    # Monte Carlo with numpy's normal generator as the reference: true offset drawn from the
+    # prior, string length fixed, far ends with their stated errors; the reported sd of the
+    # shift along each side must match the scatter of the estimate (within 10 %), and the
+    # estimate must be unbiased.
+    rng = np.random.default_rng(11)
+    a = math.radians(20.0)
+    e = np.array([[math.cos(a / 2), -math.sin(a / 2)], [-math.cos(a / 2), -math.sin(a / 2)]])
+    sd = np.array([0.03, 0.03])
+    errs, sds = [], []
+    for _ in range(4000):
+        delta = rng.normal(0.0, 0.1, 2)
+        f = e @ delta + 3.1 + rng.normal(0.0, sd)
+        shift, shift_sd, _, _ = deadend_axis_shift(e, f, sd, prior_sd_m=0.1)
+        errs.append(shift - e @ delta)
+        sds.append(shift_sd)
+    errs, sds = np.array(errs), np.array(sds)
+    assert np.abs(errs.mean(axis=0)).max() < 0.003
+    assert errs.std(axis=0) == pytest.approx(sds.mean(axis=0), rel=0.10)
+
+
+def test_deadend_axis_shift_rejects_bad_arguments():
+    with pytest.raises(ValueError):
+        deadend_axis_shift([[1.0, 0.0]], [3.0, 3.1], [0.03])
+    with pytest.raises(ValueError):
+        deadend_axis_shift([[1.0, 0.0]], [3.0], [0.0])
+    with pytest.raises(ValueError):
+        deadend_axis_shift([[2.0, 0.0]], [3.0], [0.03])
+    with pytest.raises(ValueError):
+        deadend_axis_shift([[1.0, 0.0]], [3.0], [0.03], string_length_m=3.0)

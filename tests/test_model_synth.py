@@ -130,3 +130,23 @@ def test_deadend_attachment_target():
             errors += [r["d_a"]] if r["deadend_a"] else []
             errors += [r["d_b"]] if r["deadend_b"] else []
     assert max(errors) < 0.15, f"largest dead-end attachment error {max(errors):.3f} m"
+
+
+def test_shield_wires_at_deadends_on_the_strain_string_axis():
+    # Shield wires have no strain string: their dead-end attachment is the structure axis
+    # found from the phases' strings (strings on both sides at the interior dead-end, their
+    # near ends at the line ends). Truth: the generator's attachment points (exact geometry);
+    # target 0.15 m as for every attachment. A 20 degree bend puts an angle in the line.
+    corridor = synth.generate_corridor(seed=5, terrain="flat", n_spans=2, circuit="double",
+                                       n_shield=2, bend_deg=20.0, **SMALL)
+    model = build_line_model(corridor.cloud, unit_weight_n_per_m={"phase": 15.97, "shield": 4.0})
+    errors = []
+    for r in compare(corridor, model):
+        if r["role"] != "shield":
+            continue
+        for k, end in enumerate("ab"):
+            if r[f"deadend_{end}"]:
+                assert r["wire"].attachment_methods[k] == "strain-string axis"
+                errors.append(r[f"d_{end}"])
+    assert len(errors) == 8
+    assert max(errors) < 0.15, f"largest shield dead-end attachment error {max(errors):.3f} m"

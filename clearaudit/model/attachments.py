@@ -10,6 +10,8 @@ and its confidence interval covers only the scatter of the wire's points. This m
   (:func:`uniform_end`, :func:`regular_start`);
 - pools the dead-end estimates of all phases on one side of a structure, whose strain strings
   are alike and hang from the crossarm line (:func:`pool_stations`);
+- moves a dead-end structure's axis along the line onto its strain strings, for the wires
+  without a string (shield wires) (:func:`deadend_axis_shift`);
 - propagates the station uncertainty of both attachments to the sag
   (:func:`sag_ci95_with_stations`).
 
@@ -21,6 +23,9 @@ References
    method).
 .. [3] Irvine, H. M. (1981). *Cable Structures*. MIT Press, ch. 1 (catenary; a part of a
    catenary is the same catenary).
+.. [4] Kay, S. M. (1993). *Fundamentals of Statistical Signal Processing: Estimation Theory*.
+   Prentice Hall, ch. 10-11 (linear Bayesian / weighted least-squares estimator with a Gaussian
+   prior).
 """
 from __future__ import annotations
 
@@ -31,7 +36,7 @@ from numpy.typing import ArrayLike
 
 from ..physics import catenary
 
-__all__ = ["pool_stations", "regular_start", "sag_ci95_with_stations", "uniform_end"]
+__all__ = ["deadend_axis_shift", "pool_stations", "regular_start", "sag_ci95_with_stations", "uniform_end"]
 
 _Z95 = 1.959963984540054  # two-sided 95 % quantile of the standard normal distribution
 
@@ -207,6 +212,105 @@ def pool_stations(stations_m: ArrayLike, laterals_m: ArrayLike, sd_m: ArrayLike,
     out_sd[use] = sd_c
     pooled[use] = True
     return out_s, out_sd, pooled
+
+
+def deadend_axis_shift(directions: ArrayLike, far_ends_m: ArrayLike, sd_m: ArrayLike, *,
+                       near_ends_m: ArrayLike | None = None, near_sd_m: ArrayLike | None = None,
+                       prior_sd_m: float = 0.10, string_length_m: float | None = None,
+                       string_length_sd_m: float | None = None
+                       ) -> tuple[np.ndarray, np.ndarray, float, float]:
+    r"""Shift of a dead-end structure's axis along the line from its strain strings.
+
+    Parameters
+    ----------
+    directions
+        Horizontal unit vectors from the structure into each span that has strain strings at
+        it (one row per side), shape (n, 2). [-]
+    far_ends_m
+        Per side, the pooled far end of the strain strings, measured along that side's direction
+        from the crossarm line through the *detected* structure position. [m]
+    sd_m
+        Standard deviations of ``far_ends_m`` (positive). [m]
+    near_ends_m, near_sd_m
+        Per side, the pooled near end of the strings (at the crossarm tips), measured the same
+        way, and its standard deviation; NaN where it is not seen (strings continue on the
+        other side of the structure). [m]
+    prior_sd_m
+        Standard deviation of the detected position in each horizontal axis (the prior of the
+        shift). [m]
+    string_length_m, string_length_sd_m
+        Length of the strain strings and its standard deviation when known from elsewhere
+        (e.g. the other dead-ends of the line); ``None`` estimates it here, which needs strings
+        on two sides of the structure to tell the shift from the length. [m]
+
+    Returns
+    -------
+    (shift_m, shift_sd_m, length_m, length_sd_m)
+        Per side the axis shift along that side's direction and its standard deviation, and
+        the estimated string length with its standard deviation. [m]
+
+    Notes
+    -----
+    The strings hang from the crossarm tips and run along the span, so the far end on side
+    :math:`i` is :math:`f_i = \delta\cdot e_i + l + \varepsilon_i` with :math:`\delta` the
+    horizontal offset of the true structure axis from the detected one, :math:`e_i` the side's
+    direction and :math:`l` the string length (common practice (no source): the strain
+    assemblies of one structure are alike); where the near end is seen,
+    :math:`g_i = \delta\cdot e_i + \eta_i`. With the prior :math:`\delta \sim N(0, p^2 I)`
+    (the detected position) and, if given, :math:`l \sim N(l_0, \sigma_l^2)`, the estimate of
+    :math:`\theta = (\delta_x, \delta_y, l)` is the weighted least-squares / linear Bayesian
+    solution :math:`\hat\theta = A^{-1} b`, :math:`A = \sum_i x_i x_i^T/\sigma_i^2 +
+    P^{-1}`, :math:`x_i = (e_{ix}, e_{iy}, 1)` (far ends) or :math:`(e_{ix}, e_{iy}, 0)`
+    (near ends), with covariance :math:`A^{-1}` ([4]_). On a
+    straight line with strings on both sides :math:`\hat\delta\cdot e = (f_a - f_b)/2`
+    (before the prior): the length cancels. Across a line angle only the component of
+    :math:`\delta` square to the crossarm is measured; the component along the crossarm keeps
+    its prior.
+
+    References
+    ----------
+    .. [4] Kay, S. M. (1993). *Fundamentals of Statistical Signal Processing: Estimation
+       Theory*, ch. 10-11.
+    """
+    e = np.asarray(directions, dtype=float).reshape(-1, 2)
+    f = np.asarray(far_ends_m, dtype=float).reshape(-1)
+    sd = np.asarray(sd_m, dtype=float).reshape(-1)
+    if not (e.shape[0] == f.size == sd.size) or f.size == 0:
+        raise ValueError("directions, far ends and standard deviations must have one "
+                         "non-zero length.")
+    if np.any(~(sd > 0)) or not prior_sd_m > 0:
+        raise ValueError("Standard deviations must be positive.")
+    if not np.allclose(np.hypot(e[:, 0], e[:, 1]), 1.0, atol=1e-6):
+        raise ValueError("directions must be unit vectors.")
+    x = np.column_stack([e, np.ones(f.size)])
+    w = sd**-2.0
+    if near_ends_m is not None:
+        g = np.asarray(near_ends_m, dtype=float).reshape(-1)
+        g_sd = np.asarray(near_sd_m, dtype=float).reshape(-1) if near_sd_m is not None else None
+        if g_sd is None or not (g.size == g_sd.size == f.size):
+            raise ValueError("near ends need one standard deviation each, one per side.")
+        seen = np.isfinite(g)
+        if np.any(~(g_sd[seen] > 0)):
+            raise ValueError("Standard deviations must be positive.")
+        x = np.vstack([x, np.column_stack([e[seen], np.zeros(int(seen.sum()))])])
+        f = np.concatenate([f, g[seen]])
+        w = np.concatenate([w, g_sd[seen] ** -2.0])
+    a = (x * w[:, None]).T @ x
+    b = x.T @ (w * f)
+    a[0, 0] += prior_sd_m**-2.0
+    a[1, 1] += prior_sd_m**-2.0
+    if string_length_m is not None:
+        if string_length_sd_m is None or not string_length_sd_m > 0:
+            raise ValueError("A given string length needs a positive standard deviation.")
+        a[2, 2] += string_length_sd_m**-2.0
+        b[2] += float(string_length_m) * string_length_sd_m**-2.0
+    if abs(np.linalg.det(a)) < 1e-12 * max(float(np.max(np.abs(a))), 1.0) ** 3:
+        raise ValueError("The string length cannot be told from the shift: give it.")
+    cov = np.linalg.inv(a)
+    theta = cov @ b
+    shift = e @ theta[:2]
+    shift_sd = np.sqrt(np.einsum("ij,jk,ik->i", e, cov[:2, :2], e))
+    return shift, shift_sd, float(theta[2]), float(math.sqrt(cov[2, 2]))
 
 
 def _median_offset(r: np.ndarray, sd: np.ndarray) -> tuple[float, float]:

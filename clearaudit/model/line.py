@@ -25,6 +25,7 @@ from __future__ import annotations
 import dataclasses
 import importlib
 import logging
+import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -40,7 +41,14 @@ from ..cloud import (
     WIRE_GUARD,
     Cloud,
 )
-from .attachments import pool_stations, regular_start, sag_ci95_with_stations, uniform_end
+from .attachments import (
+    _median_offset,
+    deadend_axis_shift,
+    pool_stations,
+    regular_start,
+    sag_ci95_with_stations,
+    uniform_end,
+)
 from .structures import (
     DEADEND,
     STRUCTURE_KINDS,
@@ -212,8 +220,10 @@ class WireFit:
         How each attachment (A, B) was placed: ``"plumb string"`` (median of the suspension
         insulator points), ``"strain string"`` / ``"strain strings"`` (far end of the dead-end
         strain string, alone / pooled over the strings of that structure side), ``"wire end"``
-        (where the wire's points begin), ``"crossarm line"`` (through the structure position)
-        or ``"span end"`` (virtual end of a partial span).
+        (where the wire's points begin), ``"crossarm line"`` (through the structure position),
+        ``"strain-string axis"`` (a wire without a string at a dead-end: the crossarm line
+        through the structure axis found from the phases' strain strings) or ``"span end"``
+        (virtual end of a partial span).
     attachment_along_ci95_m
         95 % half-widths of the along-span positions of attachments A and B; they are included
         in ``fit.sag_ci95_m``. [m]
@@ -799,10 +809,15 @@ def build_line_model(
     _assign_ids(spans, opts)
     fitmod = _fit_module()
     arm_normals = _arm_normals(spans)
+    all_stations = {id(span): _attachment_stations(span, [w for w in span.wires
+                                                          if w.role != "other"],
+                                                   xyz, insulator_xyz, struct_by_id,
+                                                   arm_normals)
+                    for span in spans}
+    _deadend_axes(spans, all_stations, struct_by_id, arm_normals, insulator_xyz)
     for span in spans:
         line_wires = []
-        stations = _attachment_stations(span, [w for w in span.wires if w.role != "other"],
-                                        xyz, insulator_xyz, struct_by_id, arm_normals)
+        stations = all_stations[id(span)]
         for w in span.wires:
             if w.role == "other":
                 ang = (w.cluster.extra.get("angle_deg") if w.cluster is not None else None)
@@ -1436,6 +1451,131 @@ def _attachment_stations(span: Span, wires: list[WireFit], xyz, insulator_xyz,
             if ok:
                 r.station_m, r.sd_m, r.method = float(s_new), float(sd_new), "strain strings"
     return {id(w): (out[i][0], out[i][1]) for i, w in enumerate(wires)}
+
+
+def _arm_slope(span: Span, sid: str, arm_normals) -> float:
+    """d(station)/d(lateral) of the crossarm line of structure ``sid`` in the span frame."""
+    u, v, _ = span_frame(span.a_xy, span.b_xy)
+    n = (arm_normals or {}).get(sid)
+    return float(n @ u) / float(n @ v) if n is not None and abs(float(n @ v)) > 0.2 else 0.0
+
+
+def _deadend_axes(spans: list[Span], all_stations: dict, struct_by_id, arm_normals,
+                  insulator_xyz) -> None:
+    """Place the attachments without a strain string (shield wires) at a dead-end on the
+    structure axis found from the phases' strain strings.
+
+    Per side of a dead-end structure, the pooled far end of the strings (measured from the
+    crossarm line through the detected position) is the axis shift plus the string length;
+    :func:`~clearaudit.model.attachments.deadend_axis_shift` separates the two with strings
+    on two sides, and uses the line's string length (inverse-variance mean over the
+    two-sided dead-ends) at a structure with strings on one side only (a line end). The
+    detected position is the prior (:data:`_CROSSARM_STATION_SD_M`). Stations are changed in
+    place; the method becomes ``"strain-string axis"``.
+    """
+    sides: dict[str, list] = {}
+    for span in spans:
+        stations = all_stations[id(span)]
+        u, _, L = span_frame(span.a_xy, span.b_xy)
+        for k, (end, sid) in enumerate((("a", span.from_structure), ("b", span.to_structure))):
+            st = struct_by_id.get(sid) if sid is not None else None
+            if st is None or st.kind != DEADEND:
+                continue
+            sign, base = (1.0, 0.0) if end == "a" else (-1.0, L)
+            slope = _arm_slope(span, sid, arm_normals)
+            rows = [pair[k] for pair in stations.values()]
+            strung = [r for r in rows if r.method == "strain strings"] or \
+                [r for r in rows if r.method == "strain string"]
+            bare = [r for r in rows if r.method == "crossarm line"]
+            if not strung:
+                continue
+            near, near_sd = _near_ends(span, end, [w for w in span.wires
+                                                   if id(w) in stations
+                                                   and stations[id(w)][k].method.startswith(
+                                                       "strain string")],
+                                       insulator_xyz, slope)
+            far = np.array([sign * (r.station_m - base - slope * r.lateral_m) for r in strung])
+            sd = np.array([max(r.sd_m, 1e-3) for r in strung])
+            # pooled rows share one value; a lone string keeps its own
+            far_m = float(np.median(far))
+            sd_far = float(np.min(sd)) if strung[0].method == "strain strings" else float(sd[0])
+            sides.setdefault(sid, []).append((sign * u, far_m, sd_far, sign, bare, near,
+                                              near_sd))
+    if not sides:
+        return
+    def known(items):  # strings on two sides, or their near ends seen
+        return len(items) >= 2 or any(np.isfinite(i[5]) for i in items)
+
+    def solve(items, **given):
+        return deadend_axis_shift([i[0] for i in items], [i[1] for i in items],
+                                  [i[2] for i in items], near_ends_m=[i[5] for i in items],
+                                  near_sd_m=[i[6] for i in items],
+                                  prior_sd_m=_CROSSARM_STATION_SD_M, **given)
+
+    lengths = []
+    for items in sides.values():
+        if known(items):
+            lengths.append(solve(items)[2:])
+    if lengths:
+        wl = np.array([x[1] for x in lengths]) ** -2.0
+        line_length = float(np.sum(wl * [x[0] for x in lengths]) / wl.sum())
+        line_length_sd = float(wl.sum() ** -0.5)
+    for items in sides.values():
+        if not known(items) and not lengths:
+            continue
+        given = {} if known(items) else dict(string_length_m=line_length,
+                                              string_length_sd_m=line_length_sd)
+        shift, shift_sd, _, _ = solve(items, **given)
+        for (_, _, _, sign, bare, _, _), d, d_sd in zip(items, shift, shift_sd, strict=True):
+            if abs(d) > 2.0:  # not a believable detection error: keep the structure position
+                continue
+            for r in bare:
+                r.station_m += sign * float(d)
+                r.sd_m = float(d_sd)
+                r.method = "strain-string axis"
+
+
+def _near_ends(span: Span, end: str, wires: list[WireFit], insulator_xyz,
+               slope: float) -> tuple[float, float]:
+    """Pooled near end (at the crossarm tips) of the strain strings of ``wires`` at one end,
+    measured into the span from the crossarm line through the structure position, and its
+    standard deviation; ``(nan, nan)`` when not seen.
+
+    Per string, the lowest insulator points near the wire's extrapolated curve give the near
+    end (:func:`~clearaudit.model.attachments.uniform_end` mirrored); the strings' median
+    (standard error as in :func:`~clearaudit.model.attachments.pool_stations`). A string that
+    continues past the structure (strings on the other side) has no near end within 1 m of the
+    crossarm line and is left out.
+    """
+    if insulator_xyz is None or not len(insulator_xyz) or not wires:
+        return math.nan, math.nan
+    u, v, L = span_frame(span.a_xy, span.b_xy)
+    sign, base = (1.0, 0.0) if end == "a" else (-1.0, L)
+    rel = insulator_xyz[:, :2] - span.a_xy[None, :]
+    st = rel @ u
+    lat = rel @ v
+    inward = sign * (st - base - slope * lat)
+    near = (inward > -2.0) & (inward < 10.0)
+    if not near.any():
+        return math.nan, math.nan
+    stn, latn, inn, zn = st[near], lat[near], inward[near], insulator_xyz[near, 2]
+    values, sds = [], []
+    for w in wires:
+        c = w.cluster
+        if c is None or "coef_t" not in c.extra:
+            continue
+        ok = ((np.abs(latn - np.polyval(c.extra["coef_t"], stn)) < 1.0)
+              & (np.abs(zn - np.polyval(c.extra["coef_z"], stn)) < 2.5))
+        if ok.sum() < 3:
+            continue
+        low, sd = uniform_end(-inn[ok], top=20)
+        if abs(low) < 1.0:
+            values.append(-low)
+            sds.append(max(sd, 1e-3))
+    if len(values) < 2:
+        return math.nan, math.nan
+    r, sd_r = _median_offset(np.array(values), np.array(sds))
+    return r, sd_r
 
 
 def _supports(span: Span, stations: tuple[_Station, _Station]):
