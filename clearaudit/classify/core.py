@@ -6,8 +6,10 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy import ndimage
 
 from ..cloud import (
+    BUILDING,
     GROUND,
     HIGH_NOISE,
     LOW_NOISE,
@@ -20,10 +22,16 @@ from ..cloud import (
 )
 from ..errors import InputError
 from .features import eigen_features
-from .grid import GridFrame, cell_min
+from .grid import GridFrame, cell_max, cell_min
 from .ground import GroundModel, build_ground_model, refine_ground, smrf
 from .noise import isolated_points, pit_cells
-from .objects import classify_objects, vegetation_class
+from .objects import (
+    GroundRoofs,
+    anchored_frame,
+    classify_objects,
+    find_ground_roofs,
+    vegetation_class,
+)
 from .options import ClassifyOptions
 
 Progress = Callable[[str, float], None]
@@ -68,6 +76,32 @@ class ClassificationResult:
     timings_s: dict[str, float]
     options: dict
     info: dict = field(default_factory=dict)
+
+
+def _walls_under_roofs(xyz: np.ndarray, hag: np.ndarray, classes: np.ndarray,
+                       opts: ClassifyOptions) -> None:
+    """Vegetation-labelled points under a building's roof become building 6 (in place).
+
+    The building footprint is every roof-grid cell (anchored, ``building_cell_m``) holding a
+    class-6 point, dilated by one cell; a point of class 1/3/4/5 in it that is at least
+    ``object_min_hag_m`` above ground and not above the highest building point of the
+    surrounding 3 x 3 cells (+ 0.3 m) is a wall, eave or wall base.
+    """
+    b = np.flatnonzero(classes == BUILDING)
+    grid = anchored_frame(xyz[b, :2], opts.building_cell_m, margin_cells=2)
+    lo = grid.corner
+    hi = lo + np.array(grid.shape) * grid.cell
+    xy = xyz[:, :2]
+    cand = np.flatnonzero(np.isin(classes, (UNCLASSIFIED, 3, 4, 5)) & (hag >= opts.object_min_hag_m)
+                          & (xy[:, 0] >= lo[0]) & (xy[:, 0] < hi[0])
+                          & (xy[:, 1] >= lo[1]) & (xy[:, 1] < hi[1]))
+    if len(cand) == 0:
+        return
+    top = cell_max(grid.flat_index(xyz[b, :2]), xyz[b, 2], grid.size).reshape(grid.shape)
+    top = ndimage.maximum_filter(np.nan_to_num(top, nan=-np.inf), size=3).ravel()
+    cell = grid.flat_index(xyz[cand, :2])
+    wall = xyz[cand, 2] <= top[cell] + 0.3
+    classes[cand[wall]] = BUILDING
 
 
 def _source_name(cloud: Cloud) -> str | None:
@@ -175,6 +209,26 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                 location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
             info["ground_refine_threshold_m"] = threshold
         model_points = is_ground
+    # roofs the ground filter kept as ground (low roofs on steep terrain): out of the ground
+    # set before the ground model is built, so the model passes under them and HAG is right
+    roofs: GroundRoofs | None = None
+    if not (opts.trust_classes and present["ground"]) and is_ground.any():
+        ground_idx = np.flatnonzero(is_ground)
+        roofs = find_ground_roofs(xyz[ground_idx], cell_m=opts.building_cell_m,
+                                  min_height_m=opts.building_min_hag_m,
+                                  min_area_m2=opts.building_min_area_m2)
+        roof_idx = ground_idx[roofs.is_roof]
+        info["ground_roof_patches"] = roofs.patches
+        info["ground_roof_points"] = int(len(roof_idx))
+        if len(roof_idx):
+            model_roof_mask = np.zeros(cloud.n_points, bool)
+            model_roof_mask[roof_idx] = True
+            is_ground = is_ground.copy()
+            is_ground[roof_idx] = False
+            model_points = is_ground
+        else:
+            roofs = None
+        del ground_idx
     if not model_points.any():
         raise InputError(_source_name(cloud), "no ground points were found; cannot build a ground model")
     t = step("ground", 0.35, t)
@@ -224,6 +278,14 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
             has_tower[cells.flat_index(xyz[tower, :2])] = True
             low_idx = np.flatnonzero(low)
             classes[low_idx[has_tower[cells.flat_index(xyz[low_idx, :2])]]] = TRANSMISSION_TOWER
+    if roofs is not None:
+        # roofs taken out of the ground set are building unless wire, structure or noise
+        roof_pts = np.flatnonzero(~is_ground & model_roof_mask)
+        keep = ~np.isin(classes[roof_pts], (LOW_NOISE, HIGH_NOISE, TRANSMISSION_TOWER,
+                                            WIRE_CONNECTOR, 13, 14))
+        classes[roof_pts[keep]] = BUILDING
+    if (classes == BUILDING).any():
+        _walls_under_roofs(xyz, hag, classes, opts)
     t = step("objects", 0.95, t)
 
     # 5. trusted file classes: keep them, fill in only the missing groups

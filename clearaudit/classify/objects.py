@@ -15,7 +15,8 @@ Only points higher than ``object_min_hag_m`` above the ground model come here. T
    points (and all points 3D-connected to them near the column) are class 15; wire points
    inside the structure's footprint become 15 too (crossarms, insulators).
 4. **buildings** — connected cells of planar, level-ish points (roofs) of sufficient area;
-   all points above them higher than ``building_min_hag_m`` are class 6.
+   all points above them higher than ``building_min_hag_m`` are class 6. Roofs the ground
+   filter kept as ground are found before the ground model by :func:`find_ground_roofs`.
 5. **vegetation** — everything else by height bands (3/4/5).
 
 References
@@ -495,6 +496,254 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
     footprint = ndimage.binary_dilation(footprint, structure=np.ones((3, 3)))
     building[high[footprint.ravel()[flat]]] = True
     return building
+
+
+@dataclass
+class GroundRoofs:
+    """Roofs found among the points the ground filter kept (:func:`find_ground_roofs`).
+
+    Attributes
+    ----------
+    is_roof
+        Per input point: the point is on a detected roof (not ground).
+    grid
+        The anchored roof grid (:func:`anchored_frame`).
+    footprint
+        Per cell of ``grid``: the cell belongs to a detected roof footprint (dilated by one
+        cell for the eaves), flat, bool.
+    ring_z
+        Per cell of ``grid``: height of the ground surface interpolated from the roof's
+        surrounding ring (NaN outside footprints). [m]
+    top_z
+        Per cell of ``grid``: highest roof point in the cell (NaN outside footprints). [m]
+    patches
+        Number of roof patches accepted.
+    """
+
+    is_roof: np.ndarray
+    grid: GridFrame
+    footprint: np.ndarray
+    ring_z: np.ndarray
+    top_z: np.ndarray
+    patches: int
+
+
+
+def _cell_planes(xyz: np.ndarray, grid: GridFrame, flat: np.ndarray, min_points: int = 4):
+    """Least-squares plane z = a + b·dx + c·dy per cell (dx, dy from the cell centre).
+
+    Returns the height at the cell centre, the gradient (b, c), the RMS residual [m] and the
+    point count per cell; cells with fewer than ``min_points`` points get NaN.
+    """
+    n = grid.size
+    uv = grid.to_uv(xyz[:, :2]) - grid.corner
+    i, j = np.divmod(flat, grid.shape[1])
+    dx = uv[:, 0] - (i + 0.5) * grid.cell
+    dy = uv[:, 1] - (j + 0.5) * grid.cell
+    z = xyz[:, 2]
+    cnt = np.bincount(flat, minlength=n).astype(np.float64)
+    z0 = cell_min(flat, z, n)  # reference height per cell keeps the moments well conditioned
+    zr = z - z0[flat]
+
+    def s(w: np.ndarray | None) -> np.ndarray:
+        return np.bincount(flat, w, minlength=n)
+
+    sx, sy, sz = s(dx), s(dy), s(zr)
+    sxx, syy, sxy = s(dx * dx), s(dy * dy), s(dx * dy)
+    sxz, syz = s(dx * zr), s(dy * zr)
+    ok = cnt >= min_points
+    a_mat = np.stack([np.stack([cnt, sx, sy], -1), np.stack([sx, sxx, sxy], -1),
+                      np.stack([sy, sxy, syy], -1)], -2)[ok]
+    rhs = np.stack([sz, sxz, syz], -1)[ok]
+    coef = np.full((n, 3), np.nan)
+    good = np.abs(np.linalg.det(a_mat)) > 1e-9
+    sol = np.full((len(a_mat), 3), np.nan)
+    sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
+    coef[ok] = sol
+    res = zr - (coef[flat, 0] + coef[flat, 1] * dx + coef[flat, 2] * dy)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rms = np.sqrt(np.bincount(flat, np.nan_to_num(res, nan=1e3) ** 2, minlength=n) / cnt)
+    rms[~ok] = np.nan
+    return coef[:, 0] + z0, coef[:, 1], coef[:, 2], rms, cnt
+
+
+def _low_plane(u: np.ndarray, v: np.ndarray, z: np.ndarray, passes: int = 4,
+               keep_m: float = 0.5) -> np.ndarray | None:
+    """Plane through the lower cells of a ring: refit after dropping cells above it."""
+    use = np.ones(len(z), bool)
+    coef = None
+    for _ in range(passes):
+        if use.sum() < 6:
+            return coef
+        a = np.c_[np.ones(use.sum()), u[use], v[use]]
+        coef = np.linalg.lstsq(a, z[use], rcond=None)[0]
+        use = z - (coef[0] + coef[1] * u + coef[2] * v) <= keep_m
+    return coef
+
+
+def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: float = 2.0,
+                      min_step_m: float = 1.5, min_area_m2: float = 20.0,
+                      max_area_m2: float = 5000.0, max_cell_rms_m: float = 0.15,
+                      link_m: float = 0.5, ring_cells: int = 4, min_step_share: float = 0.5,
+                      min_roof_hag_m: float = 1.0,
+                      max_cell_gradient: float = 1.2,
+                      max_gradient_change: float = 0.35,
+                      min_ring_share: float = 0.5) -> GroundRoofs:
+    """Building roofs among the points a ground filter labelled ground.
+
+    On steep terrain a morphological ground filter with a slope threshold fitted to the
+    terrain keeps low roofs as ground. Roofs are found here as planar patches that stand on
+    step edges above the ground surface around them.
+
+    Parameters
+    ----------
+    xyz
+        The ground points. [m], shape (n, 3)
+    cell_m
+        Cell edge of the roof grid (anchored to multiples of it). [m]
+    min_height_m
+        Least median height of a patch above the ground surface of its ring. [m]
+    min_step_m
+        Least height jump at a patch boundary cell (above the ring surface). [m]
+    min_area_m2, max_area_m2
+        Area bounds of a roof patch. [m2]
+    max_cell_rms_m
+        Largest RMS residual of a cell's points about the cell's plane. [m]
+    link_m
+        Two neighbouring planar cells are one surface when their heights differ from the
+        difference their planes predict by at most this. [m]
+    ring_cells
+        Width of the ring of cells around a patch used for the ground surface (one cell next
+        to the patch is skipped: eaves and wall bases).
+    min_step_share
+        Least share of a patch's boundary cells that stand ``min_step_m`` above the ring.
+    min_roof_hag_m
+        Points of an accepted footprint at least this high above the ring surface are roof
+        points. [m]
+    max_cell_gradient
+        Steepest cell plane (rise/run) taken as a surface; steeper cells (walls, cliffs)
+        separate patches.
+    max_gradient_change
+        Largest difference of the plane gradients (rise/run) of two linked cells: a roof
+        meeting the slope behind it at the same height still breaks there (a crest of the
+        terrain breaks too and is then rejected by the step test).
+    min_ring_share
+        Least share of the ring cells holding ground points (a patch at the edge of the
+        data, or ringed by gaps, is not judged).
+
+    Returns
+    -------
+    GroundRoofs
+
+    Notes
+    -----
+    Per cell a least-squares plane :math:`z = a + b\\,\\delta x + c\\,\\delta y` is fitted;
+    cells with RMS residual :math:`\\le` ``max_cell_rms_m`` are planar. Neighbouring planar
+    cells i, j (centre offset **d**) are linked when
+    :math:`|a_j - a_i - \\tfrac12(\\mathbf g_i + \\mathbf g_j)\\cdot\\mathbf d| \\le`
+    ``link_m`` and their gradients differ by at most ``max_gradient_change``; a wall or a
+    change of pitch between a roof and the ground breaks the link, smooth terrain does not. A connected patch is a roof when its area
+    lies within the bounds, its median height above a plane fitted to the lower cells of the
+    surrounding ring is :math:`\\ge` ``min_height_m`` and at least ``min_step_share`` of its
+    boundary cells stand ``min_step_m`` above that plane (step edges all around, unlike the
+    upper edge of a cut or a crest).
+
+    References
+    ----------
+    Pingel, T. J., Clarke, K. C., McBride, W. A. (2013). An improved simple morphological
+    filter for the terrain classification of airborne LIDAR data. ISPRS J. Photogramm.
+    Remote Sens. 77, 21-30 (the slope-threshold trade-off that leaves low roofs as ground).
+    """
+    if cell_m <= 0 or min_area_m2 <= 0 or max_area_m2 < min_area_m2 or ring_cells < 2:
+        raise ValueError("find_ground_roofs needs a positive cell, 0 < min_area <= max_area "
+                         "and a ring of at least 2 cells")
+    xyz = np.asarray(xyz, dtype=np.float64)
+    grid = anchored_frame(xyz[:, :2], cell_m, margin_cells=ring_cells + 2)
+    nan = np.full(grid.size, np.nan)
+    empty = GroundRoofs(np.zeros(len(xyz), bool), grid, np.zeros(grid.size, bool), nan,
+                        nan.copy(), 0)
+    if len(xyz) < 4:
+        return empty
+    flat = grid.flat_index(xyz[:, :2])
+    zc, gu, gv, rms, cnt = _cell_planes(xyz, grid, flat)
+    # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
+    # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
+    planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & (np.hypot(gu, gv) <= max_cell_gradient)
+    shape = grid.shape
+    idx = np.arange(grid.size).reshape(shape)
+    rows, cols = [], []
+    for a, b, axis_grad in ((idx[:-1, :], idx[1:, :], gu), (idx[:, :-1], idx[:, 1:], gv)):
+        a, b = a.ravel(), b.ravel()
+        both = planar[a] & planar[b]
+        a, b = a[both], b[both]
+        pred = 0.5 * (axis_grad[a] + axis_grad[b]) * grid.cell
+        link = ((np.abs(zc[b] - zc[a] - pred) <= link_m)
+                & (np.hypot(gu[b] - gu[a], gv[b] - gv[a]) <= max_gradient_change))
+        rows.append(a[link])
+        cols.append(b[link])
+    r, c = np.concatenate(rows), np.concatenate(cols)
+    graph = sparse.coo_matrix((np.ones(len(r), bool), (r, c)), shape=(grid.size, grid.size))
+    _, label = connected_components(graph, directed=False)
+    label = np.where(planar, label, -1)
+    m = int(label.max()) + 1 if planar.any() else 0
+    area = np.bincount(label[planar], minlength=m) * grid.cell**2
+    candidates = np.flatnonzero((area >= min_area_m2) & (area <= max_area_m2))
+    if len(candidates) == 0:
+        return empty
+    low = cell_min(flat, xyz[:, 2], grid.size)  # ring: lowest point per cell
+    top = cell_max(flat, xyz[:, 2], grid.size)
+    lab2 = label.reshape(shape)
+    ci, cj = np.divmod(np.arange(grid.size), shape[1])
+    footprint = np.zeros(grid.size, bool)
+    ring_z = np.full(grid.size, np.nan)
+    near = np.ones((3, 3), bool)
+    accepted = 0
+    objects = ndimage.find_objects(np.where(np.isin(lab2, candidates), lab2 + 1, 0))
+    for k in candidates:  # one iteration per candidate patch (few), not per point
+        sl = objects[k]
+        if sl is None:
+            continue
+        pad = ring_cells + 1
+        s0 = slice(max(sl[0].start - pad, 0), min(sl[0].stop + pad, shape[0]))
+        s1 = slice(max(sl[1].start - pad, 0), min(sl[1].stop + pad, shape[1]))
+        patch = lab2[s0, s1] == k
+        inner = ndimage.binary_dilation(patch, near)
+        outer = ndimage.binary_dilation(patch, near, iterations=ring_cells)
+        ring = outer & ~inner
+        sub = idx[s0, s1]
+        ring_cells_idx = sub[ring]
+        n_ring = len(ring_cells_idx)
+        ring_cells_idx = ring_cells_idx[np.isfinite(low[ring_cells_idx])]
+        # a patch at the edge of the data has no ring there: no evidence of step edges
+        if len(ring_cells_idx) < max(6, min_ring_share * n_ring):
+            continue
+        coef = _low_plane(ci[ring_cells_idx] + 0.5, cj[ring_cells_idx] + 0.5,
+                          low[ring_cells_idx])
+        if coef is None:
+            continue
+        cells = sub[patch]
+        base = coef[0] + coef[1] * (ci[cells] + 0.5) + coef[2] * (cj[cells] + 0.5)
+        height = zc[cells] - base
+        if np.median(height) < min_height_m:
+            continue
+        edge = patch & ~ndimage.binary_erosion(patch, near)
+        edge_cells = sub[edge]
+        edge_h = zc[edge_cells] - (coef[0] + coef[1] * (ci[edge_cells] + 0.5)
+                                   + coef[2] * (cj[edge_cells] + 0.5))
+        if np.mean(edge_h >= min_step_m) < min_step_share:
+            continue
+        accepted += 1
+        take = sub[inner]
+        footprint[take] = True
+        ring_z[take] = coef[0] + coef[1] * (ci[take] + 0.5) + coef[2] * (cj[take] + 0.5)
+    if not accepted:
+        return empty
+    # ring surface sampled at each point (the plane, evaluated at the point's own position)
+    pts = np.flatnonzero(footprint[flat])
+    is_roof = np.zeros(len(xyz), bool)
+    is_roof[pts] = xyz[pts, 2] - ring_z[flat[pts]] >= min_roof_hag_m
+    top_z = np.where(footprint, top, np.nan)
+    return GroundRoofs(is_roof, grid, footprint, ring_z, top_z, accepted)
 
 
 def vegetation_class(hag: np.ndarray, opts: ClassifyOptions) -> np.ndarray:
