@@ -104,6 +104,7 @@ h3 { font-size: 1.1rem; margin: 1.4rem 0 .4rem; }
 .caution p { margin: .2rem 0; }
 .caution .note { font-weight: 400; }
 .table-wrap { overflow-x: auto; max-width: 100%; }
+table.findings td:nth-child(7) { min-width: 22rem; }
 table { border-collapse: collapse; margin: .4rem 0 1rem; font-size: .86rem; }
 th, td { border: 1px solid var(--rule); padding: .25rem .5rem; text-align: left;
          vertical-align: top; }

@@ -199,3 +199,16 @@ def test_report_without_cloud_or_run_record(out_dir, tmp_path):
     assert len(re.findall(r"<img data-span=", text)) == 3
     assert "run.json is missing" in text
     assert "classified.laz" in text
+
+
+def test_reason_text_follows_the_unit_system():
+    # Reasons are written in SI by the audit; an imperial report shows them in feet
+    # (1 ft = 0.3048 m exactly, NIST Handbook 44, Appendix C).
+    from clearaudit.report.format import DisplayUnits
+    from clearaudit.report.html import _reason_in_units
+
+    text = "vegetation 0.33 m inside the 1.22 m requirement at survey; grows in 2.5 years"
+    assert _reason_in_units(text, DisplayUnits("metric")) == text
+    out = _reason_in_units(text, DisplayUnits("imperial"))
+    assert f"{0.33 / 0.3048:.2f} ft" in out and f"{1.22 / 0.3048:.2f} ft" in out
+    assert " m " not in out and "2.5 years" in out

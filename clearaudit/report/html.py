@@ -11,6 +11,7 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import math
+import re
 from collections import Counter
 from collections.abc import Iterable
 from html import escape
@@ -312,6 +313,16 @@ def _spans_section(folder: OutputFolder, units: DisplayUnits) -> str:
     return "".join(parts)
 
 
+_METRES_IN_TEXT = re.compile(r"(-?\d+(?:\.\d+)?) m\b")
+
+
+def _reason_in_units(text: str, units: DisplayUnits) -> str:
+    """The audit writes reasons in SI; show their lengths in the report's unit system."""
+    if not text or units.system == "metric":
+        return text
+    return _METRES_IN_TEXT.sub(lambda m: units.fmt_length(float(m.group(1))), text)
+
+
 def _violation_rows(folder: OutputFolder, rows: list[dict], units: DisplayUnits):
     cu = crs_unit_name(folder.horizontal_unit_m)
     cz = crs_unit_name(folder.vertical_unit_m)
@@ -322,7 +333,7 @@ def _violation_rows(folder: OutputFolder, rows: list[dict], units: DisplayUnits)
         out.append([
             fmt_number(r.get("priority")), r.get("id", ""), r.get("kind", ""), r.get("span_id", ""),
             r.get("wire_id", ""), CONDITION_LABELS.get(r.get("condition"), r.get("condition", "")),
-            r.get("reason", "") or MISSING,
+            _reason_in_units(r.get("reason", ""), units) or MISSING,
             units.fmt_length(r.get("clearance_m"), 2, r.get("clearance_ci95_m")),
             units.fmt_length(r.get("required_m")), units.fmt_length(r.get("deficit_m")),
             r.get("certainty", "") or MISSING,
@@ -353,7 +364,7 @@ def _vegetation_section(folder: OutputFolder, units: DisplayUnits) -> str:
                  'vegetation point closest to the wire, in the survey\'s coordinate reference '
                  'system and in WGS 84.</p>')
     parts.append(_table(VIOLATION_HEADERS, _violation_rows(folder, rows, units),
-                        numeric={0, 7, 8, 9, 11}))
+                        numeric={0, 7, 8, 9, 11}, css="findings"))
     parts.append(_hazard_trees_part(folder, units))
     parts.append("</section>")
     return "".join(parts)
@@ -368,7 +379,7 @@ def _hazard_trees_part(folder: OutputFolder, units: DisplayUnits) -> str:
             'closer to the wire than the tree is tall), ranked among themselves '
             '(hazard_trees.csv).</p>'
             + _table(VIOLATION_HEADERS, _violation_rows(folder, rows, units),
-                     numeric={0, 7, 8, 9, 11}))
+                     numeric={0, 7, 8, 9, 11}, css="findings"))
 
 
 def _other_violations_section(folder: OutputFolder, units: DisplayUnits) -> str:
@@ -377,7 +388,7 @@ def _other_violations_section(folder: OutputFolder, units: DisplayUnits) -> str:
         return ""
     return ('<section id="other-violations"><h2>Other clearance violations</h2>'
             + _table(VIOLATION_HEADERS, _violation_rows(folder, rows, units),
-                     numeric={0, 7, 8, 9, 11})
+                     numeric={0, 7, 8, 9, 11}, css="findings")
             + "</section>")
 
 
