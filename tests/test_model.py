@@ -413,3 +413,18 @@ def test_detect_columns_memory_follows_points_not_extent():
     for col, c in zip(found, centres, strict=True):
         assert np.hypot(*(col.xy - c)) < 0.3
     assert peak < 50e6
+
+
+def test_ground_heights_at_batch_matches_single():
+    # The batch form must give exactly what the one-structure form gives (it only pre-selects
+    # candidate points).
+    from clearaudit.model.structures import ground_height_at, ground_heights_at
+
+    rng = np.random.default_rng(3)
+    ground = np.column_stack([rng.uniform(0, 500, 20000), rng.uniform(0, 80, 20000),
+                              rng.normal(100.0, 2.0, 20000)])
+    places = np.column_stack([rng.uniform(-20, 520, 25), rng.uniform(-20, 100, 25)])
+    radii = rng.uniform(3.0, 15.0, 25)
+    batch = ground_heights_at(ground, places, radii)
+    single = [ground_height_at(ground, p, r) for p, r in zip(places, radii, strict=True)]
+    assert batch == single

@@ -306,6 +306,18 @@ class _Shift:
             out += self.r[axis]
         return out
 
+    def local_into(self, ints: np.ndarray, axis: int, out: np.ndarray) -> np.ndarray:
+        """:meth:`local` written into ``out``, with the same values bit for bit.
+
+        ``X - k`` is an integer below 2**53 in magnitude, so it is exact in float64 and the
+        subtraction can be done there, without an int64 temporary.
+        """
+        np.subtract(ints, np.float64(self.k[axis]), out=out, dtype=np.float64)
+        out *= self.scale[axis]
+        if self.r[axis] != 0.0:
+            out += self.r[axis]
+        return out
+
 
 # =============================================================================== reading
 def read_cloud(
@@ -383,9 +395,16 @@ def read_cloud(
 
     total = sum(m.point_count for m in metas)
     done = 0
-    parts: dict[str, list[np.ndarray]] = {
-        "xyz": [], "cls": [], "sid": [], "sidx": [], **{f: [] for f in wanted}
-    }
+    # outputs are allocated once for every point in the headers and filled chunk by chunk
+    # (no per-chunk lists and final concatenation); points dropped by ``keep`` are trimmed
+    # off the end at the end
+    dtypes = {name: _field_dtype(metas, name) for name in wanted}
+    xyz_out = np.empty((total, 3), dtype=np.float64)
+    cls_out = np.empty(total, dtype=np.uint8)
+    sid_out = np.empty(total, dtype=np.int32)
+    sidx_out = np.empty(total, dtype=np.int64)
+    fields_out = {name: np.empty(total, dtype=dtypes[name]) for name in wanted}
+    n_points = 0
     sources: list[SourceInfo] = []
     for file_id, meta in enumerate(metas):
         header = meta.header
@@ -394,27 +413,42 @@ def read_cloud(
         with _open_reader(meta.path) as reader:
             for chunk in _chunks(reader, meta.path, chunk_size):
                 m = len(chunk)
-                X, Y = np.asarray(chunk.X), np.asarray(chunk.Y)
-                local_x = shift.local(X, 0)
-                local_y = shift.local(Y, 1)
-                index = np.arange(n_file, n_file + m, dtype=np.int64)
+                if n_points + m > total:
+                    raise InputError(
+                        meta.path,
+                        f"is truncated or corrupt (header says {meta.point_count} points, "
+                        f"more could be read)",
+                    )
+                lx = shift.local_into(np.asarray(chunk.X), 0, np.empty(m))
+                ly = shift.local_into(np.asarray(chunk.Y), 1, np.empty(m))
+                mask = None
+                k = m
                 if keep is not None:
-                    xy_crs = np.column_stack((local_x + origin_arr[0], local_y + origin_arr[1]))
+                    xy_crs = np.empty((m, 2), dtype=np.float64)
+                    np.add(lx, origin_arr[0], out=xy_crs[:, 0])
+                    np.add(ly, origin_arr[1], out=xy_crs[:, 1])
                     mask = _call_keep(keep, xy_crs)
-                    sel = np.flatnonzero(mask)
+                    del xy_crs
+                    k = int(np.count_nonzero(mask))
+                    if k == m:
+                        mask = None
+                stop = n_points + k
+
+                lz = shift.local_into(np.asarray(chunk.Z), 2, np.empty(m))
+                for axis, values in enumerate((lx, ly, lz)):
+                    if unit[axis] != 1.0:
+                        values *= unit[axis]
+                    _put(values, xyz_out[n_points:stop, axis], mask)
+                del lx, ly, lz
+                _put(chunk.classification, cls_out[n_points:stop], mask)
+                sid_out[n_points:stop] = file_id
+                if mask is None:
+                    sidx_out[n_points:stop] = np.arange(n_file, n_file + m, dtype=np.int64)
                 else:
-                    sel = slice(None)
-                local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
-                xyz = np.empty((len(local_z), 3), dtype=np.float64)
-                xyz[:, 0] = local_x[sel] * unit[0]
-                xyz[:, 1] = local_y[sel] * unit[1]
-                xyz[:, 2] = local_z * unit[2]
-                parts["xyz"].append(xyz)
-                parts["cls"].append(np.asarray(chunk.classification, dtype=np.uint8)[sel])
-                parts["sid"].append(np.full(len(xyz), file_id, dtype=np.int32))
-                parts["sidx"].append(index[sel])
+                    np.add(np.flatnonzero(mask), n_file, out=sidx_out[n_points:stop])
                 for name in wanted:
-                    parts[name].append(np.array(chunk[name])[sel])
+                    _put(chunk[name], fields_out[name][n_points:stop], mask)
+                n_points = stop
                 n_file += m
                 done += m
                 if progress is not None:
@@ -433,12 +467,13 @@ def read_cloud(
                 offsets=tuple(float(o) for o in header.offsets),
                 crs_wkt=None if meta.crs is None else meta.crs.to_wkt(),
                 crs_origin="override" if override is not None else meta.crs_origin,
+                # own pass over the file: LAZ decoding reads through laspy; hashing 57 MB
+                # takes about 0.05 s, so it is not worth threading through the decoder
                 sha256=file_sha256(meta.path),
             )
         )
 
     label = str(files[0]) if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more files)"
-    n_points = sum(len(a) for a in parts["xyz"])
     if total == 0:
         raise InputError(label, "contains no points")
     if n_points == 0:
@@ -446,18 +481,41 @@ def read_cloud(
             label, f"contains no points inside the area kept (0 of {total} points kept)"
         )
 
-    def cat(key: str, dtype: Any = None) -> np.ndarray:
-        arrays = parts[key]
-        return np.concatenate(arrays) if arrays else np.empty(0, dtype=dtype)
+    def trim(a: np.ndarray) -> np.ndarray:
+        if len(a) != n_points:  # shrink in place (no copy of the kept points)
+            a.resize((n_points, *a.shape[1:]), refcheck=False)
+        return a
 
     return Cloud(
-        xyz=np.concatenate(parts["xyz"]), origin=origin_arr, crs=the_crs,
+        xyz=trim(xyz_out), origin=origin_arr, crs=the_crs,
         horizontal_unit_m=h_unit, vertical_unit_m=v_unit,
-        classification=cat("cls", np.uint8),
-        fields={name: cat(name) for name in wanted},
-        source_id=cat("sid", np.int32), source_index=cat("sidx", np.int64),
+        classification=trim(cls_out),
+        fields={name: trim(fields_out[name]) for name in wanted},
+        source_id=trim(sid_out), source_index=trim(sidx_out),
         sources=sources,
     )
+
+
+def _put(values: Any, dest: np.ndarray, mask: np.ndarray | None) -> None:
+    """Write ``values`` (all of them, or those where ``mask`` is true) into ``dest``."""
+    values = np.asarray(values, dtype=dest.dtype)
+    if mask is None:
+        dest[...] = values
+    else:
+        np.compress(mask, values, out=dest)
+
+
+def _field_dtype(metas: Sequence[_FileMeta], name: str) -> np.dtype:
+    """The dtype the concatenation of the files' ``name`` arrays would have."""
+    kinds = []
+    for m in metas:
+        dims = m.header.point_format.dtype()
+        if name in dims.names:
+            kinds.append(np.dtype(dims[name]))
+        else:  # sub-byte fields (return_number, ...) and others laspy unpacks itself
+            kinds.append(np.asarray(laspy.ScaleAwarePointRecord.zeros(
+                1, header=m.header)[name]).dtype)
+    return np.result_type(*kinds)
 
 
 @dataclass(frozen=True)
@@ -685,41 +743,119 @@ def corridor_mask(
     all_lo, all_hi = lo.min(axis=0), hi.max(axis=0)
     b2 = buffer * buffer
 
-    # sweep axis: the longer side of the polyline's box; each segment only looks at the points
-    # in its own slab along that axis (found by binary search), so the cost is about
-    # n log n + n * (segments overlapping a slab), not n * segments
+    # sweep axis: the longer side of the polyline's box; the points are bucketed along it
+    # (a linear-time counting sort on the bucket number) and each segment only looks at the
+    # buckets its own slab covers, so the cost is about n + n * (segments overlapping a
+    # slab), not n * segments
     axis = int(np.argmax(all_hi - all_lo))
+    n_buckets = 4096
+    width = float(all_hi[axis] - all_lo[axis])
+    per_unit = n_buckets / width if width > 0 else 0.0
+    # floor((v - lo) * per_unit) never decreases with v, so the buckets of a slab's ends
+    # bound the buckets of every point inside it
+    seg_b0 = np.clip(np.floor((lo[:, axis] - all_lo[axis]) * per_unit), 0, n_buckets - 1)
+    seg_b1 = np.clip(np.floor((hi[:, axis] - all_lo[axis]) * per_unit), 0, n_buckets - 1)
+    seg_b0, seg_b1 = seg_b0.astype(np.int64), seg_b1.astype(np.int64)
+
+    # coarse raster over the box: a cell whose centre is at distance d_c from the polyline
+    # holds only points at distance <= d_c + half its diagonal (distance to a set changes no
+    # faster than position), so cells with d_c + h <= buffer - tol are wholly kept and cells
+    # with d_c - h > buffer + tol wholly dropped; only the points of the cells in between get
+    # the exact per-segment test. ``tol`` is far above the round-off of the exact test.
+    tol = 1e-6 * (float(np.max(np.abs(line))) + buffer) + 1e-9
+    extent = all_hi - all_lo
+    cell = max(buffer / 4.0, float(np.sqrt(extent[0] * extent[1] / 1e6)), 1e-9)
+    n_cells = np.maximum(np.ceil(extent / cell).astype(np.int64), 1)
+    cx = all_lo[0] + (np.arange(n_cells[0]) + 0.5) * cell
+    cy = all_lo[1] + (np.arange(n_cells[1]) + 0.5) * cell
+    gx, gy = np.meshgrid(cx, cy, indexing="ij")
+    d_cell = np.full(gx.shape, np.inf)
+    for a, b in zip(starts, ends, strict=True):
+        ab = b - a
+        denom = float(ab @ ab)
+        t = 0.0 if denom == 0.0 else np.clip(((gx - a[0]) * ab[0] + (gy - a[1]) * ab[1]) / denom,
+                                             0.0, 1.0)
+        np.minimum(d_cell, np.hypot(gx - (a[0] + t * ab[0]), gy - (a[1] + t * ab[1])),
+                   out=d_cell)
+    half = cell * np.sqrt(0.5) + tol
+    # 0: all dropped, 1: all kept, 2: test each point
+    cell_state = np.full(gx.shape, 2, dtype=np.uint8)
+    cell_state[d_cell + half <= buffer - tol] = 1
+    cell_state[d_cell - half > buffer + tol] = 0
+    cell_state = cell_state.ravel()
+    del gx, gy, d_cell
 
     def keep(xy_crs: np.ndarray) -> np.ndarray:
         xy = np.asarray(xy_crs, dtype=np.float64)
-        mask = np.zeros(len(xy), dtype=bool)
-        inside = np.flatnonzero(np.all((xy >= all_lo) & (xy <= all_hi), axis=1))
+        x, y = xy[:, 0], xy[:, 1]
+        box = (x >= all_lo[0]) & (x <= all_hi[0])
+        box &= y >= all_lo[1]
+        box &= y <= all_hi[1]
+        inside = np.flatnonzero(box)
+        mask = box
         if len(inside) == 0:
             return mask
-        order = np.argsort(xy[inside, axis], kind="stable")
-        inside = inside[order]
-        pts = xy[inside]
-        sweep = pts[:, axis]
+        ix = np.take(x, inside)
+        ix -= all_lo[0]
+        ix /= cell
+        jx = np.minimum(ix.astype(np.int64), n_cells[0] - 1)  # >= 0 inside the box
+        iy = np.take(y, inside)
+        iy -= all_lo[1]
+        iy /= cell
+        jx *= n_cells[1]
+        jx += np.minimum(iy.astype(np.int64), n_cells[1] - 1)
+        del ix, iy
+        state = np.take(cell_state, jx)
+        del jx
+        mask[inside] = state == 1
+        inside = inside[state == 2]
+        del state
+        if len(inside) == 0:
+            return mask
+        s = np.take(x if axis == 0 else y, inside)
+        s -= all_lo[axis]
+        s *= per_unit
+        # s >= 0 inside the box, so truncation is the floor used for the segments above
+        ib = s.astype(np.int32)
+        del s
+        np.minimum(ib, n_buckets - 1, out=ib)
+        bucket = ib.astype(np.int16)
+        del ib
+        order = np.argsort(bucket, kind="stable")  # radix sort for 16-bit keys
+        bounds = np.concatenate(([0], np.cumsum(np.bincount(bucket, minlength=n_buckets))))
+        del bucket
+        inside = np.take(inside, order)
+        pts = np.take(xy, inside, axis=0)  # np.take: much faster than xy[inside] on rows
         best = np.zeros(len(pts), dtype=bool)
-        for a, b, l0, h0 in zip(starts, ends, lo, hi, strict=True):
-            i0 = np.searchsorted(sweep, l0[axis], side="left")
-            i1 = np.searchsorted(sweep, h0[axis], side="right")
+        for a, b, l0, h0, b0, b1 in zip(starts, ends, lo, hi, seg_b0, seg_b1, strict=True):
+            i0, i1 = int(bounds[b0]), int(bounds[b1 + 1])
             if i1 <= i0:
                 continue
             slab = pts[i0:i1]
-            cand = np.flatnonzero(~best[i0:i1] & np.all((slab >= l0) & (slab <= h0), axis=1))
-            if len(cand) == 0:
+            px, py = slab[:, 0], slab[:, 1]
+            in_box = ~best[i0:i1]
+            in_box &= px >= l0[0]
+            in_box &= px <= h0[0]
+            in_box &= py >= l0[1]
+            in_box &= py <= h0[1]
+            if not in_box.any():
                 continue
-            p = slab[cand]
+            # the distance is worked out for the whole slab (contiguous, no gather) and only
+            # counted where the point is in the segment's box
             ab = b - a
             denom = float(ab @ ab)
             if denom > 0.0:
-                t = np.clip(((p - a) @ ab) / denom, 0.0, 1.0)
-                nearest = a + t[:, None] * ab
+                t = np.clip(((slab - a) @ ab) / denom, 0.0, 1.0)
+                dx = px - (a[0] + t * ab[0])
+                dy = py - (a[1] + t * ab[1])
             else:
-                nearest = a
-            d2 = np.sum((p - nearest) ** 2, axis=1)
-            best[i0 + cand[d2 <= b2]] = True
+                dx = px - a[0]
+                dy = py - a[1]
+            dx *= dx
+            dy *= dy
+            dx += dy
+            in_box &= dx <= b2
+            best[i0:i1] |= in_box
         mask[inside] = best
         return mask
 

@@ -56,7 +56,7 @@ from .structures import (
     DetectedColumn,
     Structure,
     detect_columns,
-    ground_height_at,
+    ground_heights_at,
     insulators_horizontal,
     line_angles_deg,
     order_along_line,
@@ -699,7 +699,7 @@ def build_line_model(
     cls = cloud.classification
     wire_mask = np.isin(cls, (WIRE_GUARD, WIRE_CONDUCTOR))
     wire_idx = np.flatnonzero(wire_mask)
-    ground_xyz = xyz[cls == GROUND]
+    is_ground = cls == GROUND
     insulator_xyz = xyz[cls == WIRE_CONNECTOR]
     has_shield_class = bool(np.any(cls == WIRE_GUARD))
     warnings: list[str] = []
@@ -779,8 +779,12 @@ def build_line_model(
                                          footprint_radius_m=c.radius_m,
                                          n_points=len(c.point_indices),
                                          point_indices=c.point_indices))
-    for st in structs:
-        st.z_ground = ground_height_at(ground_xyz, st.xy, max(10.0, st.footprint_radius_m))
+    if structs:
+        z_grounds = ground_heights_at(
+            xyz, np.array([st.xy for st in structs], dtype=np.float64),
+            [max(10.0, st.footprint_radius_m) for st in structs], which=is_ground)
+        for st, z_ground in zip(structs, z_grounds, strict=True):
+            st.z_ground = z_ground
 
     # ---- 3. spans, partial spans, angles, kinds, sections
     spans = _make_spans(structs, xyz, wire_idx, opts)

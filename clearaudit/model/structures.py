@@ -6,6 +6,7 @@ points; the only Python loops run over structures or grid components.
 """
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -257,11 +258,81 @@ def ground_height_at(ground_xyz: np.ndarray, xy: np.ndarray, radius_m: float = 1
     """Median height of ground points within ``radius_m`` of ``xy``. [m] (None when none)."""
     if ground_xyz is None or len(ground_xyz) == 0:
         return None
-    d = np.hypot(*(ground_xyz[:, :2] - np.asarray(xy)[None, :]).T)
+    xy = np.asarray(xy)
+    # cheap pre-selection on x alone: hypot(dx, dy) >= |dx| for the same rounded dx, so no
+    # point within the radius is left out
+    cand = np.flatnonzero(np.abs(ground_xyz[:, 0] - xy[0]) <= radius_m)
+    if len(cand) == 0:
+        return None
+    sub = np.take(ground_xyz, cand, axis=0)
+    d = np.hypot(*(sub[:, :2] - xy[None, :]).T)
     near = d <= radius_m
     if not near.any():
         return None
-    return float(np.median(ground_xyz[near, 2]))
+    return float(np.median(sub[near, 2]))
+
+
+def ground_heights_at(
+    xyz: np.ndarray, xy: np.ndarray, radius_m: Sequence[float] | np.ndarray,
+    which: np.ndarray | None = None,
+) -> list[float | None]:
+    """:func:`ground_height_at` for several places at once, with one pass over the points.
+
+    Parameters
+    ----------
+    xyz
+        Points, shape (n, 3). [m]
+    xy
+        Places, shape (m, 2). [m]
+    radius_m
+        Search radius of each place, shape (m,). [m]
+    which
+        Optional boolean mask, shape (n,), of the ground points among ``xyz`` (default: all).
+
+    Returns
+    -------
+    list of float or None
+        Median ground height near each place (None where there is none), the same values
+        :func:`ground_height_at` gives. [m]
+
+    Notes
+    -----
+    Only points whose coordinate along the places' longer extent (x or y) falls in a cell
+    of a coarse 1-D grid overlapping a window ``[c_i - r_i - e, c_i + r_i + e]`` (``e`` a
+    round-off allowance) are passed on; every point within ``r_i`` of place ``i`` lies in
+    its window because ``hypot(dx, dy) >= max(|dx|, |dy|)``.
+    """
+    xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
+    radii = np.broadcast_to(np.asarray(radius_m, dtype=np.float64), (len(xy),))
+    if len(xy) == 0:
+        return []
+    axis = int(np.argmax(np.ptp(xy, axis=0)))
+    c = xy[:, axis]
+    allowance = 1e-9 * (np.abs(c) + radii) + 1e-9
+    start, end = c - radii - allowance, c + radii + allowance
+    lo = float(start.min())
+    width = max(float(radii.min()) / 2.0, float(end.max() - lo) / 1e6, 1e-6)
+    n_cells = int((end.max() - lo) / width) + 2
+    cell_lo = np.floor((start - lo) / width).astype(np.int64)
+    cell_hi = np.floor((end - lo) / width).astype(np.int64)
+    marked = np.zeros(n_cells + 1, dtype=np.int32)
+    np.add.at(marked, np.clip(cell_lo, 0, n_cells), 1)
+    np.add.at(marked, np.clip(cell_hi + 1, 0, n_cells), -1)
+    table = np.cumsum(marked[:-1]) > 0
+    t = xyz[:, axis] - lo
+    t /= width  # the same rounded steps as for the cells above, so the mapping is monotone
+    np.clip(t, -1.0, n_cells, out=t)
+    cell = np.floor(t).astype(np.int64)
+    del t
+    keep = (cell >= 0) & (cell < n_cells)
+    np.minimum(cell, n_cells - 1, out=cell)
+    np.maximum(cell, 0, out=cell)
+    keep &= np.take(table, cell)
+    del cell
+    if which is not None:
+        keep &= which
+    near = np.take(xyz, np.flatnonzero(keep), axis=0)
+    return [ground_height_at(near, p, r) for p, r in zip(xy, radii, strict=True)]
 
 
 def snap_to_given(
