@@ -35,7 +35,7 @@ VIOLATION_COLUMNS = [
 VIOLATION_EXTRA_COLUMNS = [
     "clearance_ci95_m", "certainty", "finding", "direction", "condition_detail", "reason",
     "grow_in_years", "fall_in", "tree_height_m", "fall_in_distance_m", "station_m",
-    "obstacle_id", "obstacle_points", "surface",
+    "obstacle_id", "surface",
 ]
 MODEL_SCHEMA = "clearaudit.model/1.0"
 
@@ -180,7 +180,7 @@ def _wire_layers(cloud: Cloud, model_doc: dict) -> Layer:
 _REAL_COLUMNS = {"clearance_m", "required_m", "deficit_m", "longitude", "latitude",
                  "clearance_ci95_m", "grow_in_years", "station_m", "tree_height_m",
                  "fall_in_distance_m"}
-_INTEGER_COLUMNS = {"id", "priority", "obstacle_points"}
+_INTEGER_COLUMNS = {"id", "priority"}
 
 
 def _write_point_rows(out: Path, name: str, cloud: Cloud, rows: list[dict], columns: list[str],

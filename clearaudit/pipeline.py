@@ -84,7 +84,7 @@ class RunRecord:
     extra: dict[str, Any] = field(default_factory=dict)
 
     @contextmanager
-    def stage(self, name: str, progress=None, engine=None):
+    def stage(self, name: str, engine=None):
         t0 = time.perf_counter()
         entry: dict[str, Any] = {"name": name}
         try:

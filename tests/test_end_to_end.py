@@ -82,7 +82,6 @@ def test_sample_results_against_truth(sample_audit):
         assert abs(h / true_h[(r["span_id"], r["wire_id"])] - 1) < 0.02, r
     with open(sample_audit / "violations.csv", newline="") as f:
         violations = list(csv.DictReader(f))
-    origin = np.array(truth["origin_crs"][:2])
 
     def found(tree, condition):
         p = np.array(tree["closest_tree_point_crs"][:2])
@@ -106,4 +105,3 @@ def test_sample_results_against_truth(sample_audit):
         if v["kind"] == "vegetation":
             xy = np.array([float(v["x"]), float(v["y"])])
             assert min(np.hypot(*(xy - p)) for p in planted) < 3.0, v
-    assert origin.shape == (2,)

@@ -137,17 +137,24 @@ def polyline_offsets(points: np.ndarray, polyline: np.ndarray
     to the point :math:`p`.
     """
     pts = np.asarray(points, dtype=float).reshape(-1, 3)
-    poly = _segments(polyline)
     if len(pts) == 0:
         return np.zeros(0), np.zeros(0), np.zeros(0)
-    lateral, closest, param = _nearest_segment(pts[:, :2], poly[:, :2], None)
-    i0 = np.clip(np.floor(param).astype(int), 0, len(poly) - 2)
-    t = param - i0
-    wire_z = poly[i0, 2] + t * (poly[i0 + 1, 2] - poly[i0, 2])
+    poly, lateral, closest, param, i0, wire_z = _plan_projection(pts, polyline, None)
     d = poly[i0 + 1, :2] - poly[i0, :2]
     rel = pts[:, :2] - closest
     cross = d[:, 0] * rel[:, 1] - d[:, 1] * rel[:, 0]
     return np.where(cross < 0, -lateral, lateral), wire_z, param
+
+
+def _plan_projection(pts: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree | None):
+    """Nearest plan position on the polyline: (vertices, lateral, closest xy, parameter,
+    segment index, polyline height there)."""
+    poly = _segments(polyline)
+    lateral, closest, param = _nearest_segment(pts[:, :2], poly[:, :2], tree_xy)
+    i0 = np.clip(np.floor(param).astype(int), 0, len(poly) - 2)
+    t = param - i0
+    wire_z = poly[i0, 2] + t * (poly[i0 + 1, 2] - poly[i0, 2])
+    return poly, lateral, closest, param, i0, wire_z
 
 
 def polyline_overhead(points: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree | None = None
@@ -170,13 +177,9 @@ def polyline_overhead(points: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree
     parameter : (n,) vertex index plus fraction (0 .. k-1). [-]
     """
     pts = np.asarray(points, dtype=float).reshape(-1, 3)
-    poly = _segments(polyline)
     if len(pts) == 0:
         return np.zeros(0), np.zeros(0), np.zeros(0)
-    lateral, _, param = _nearest_segment(pts[:, :2], poly[:, :2], tree_xy)
-    i0 = np.clip(np.floor(param).astype(int), 0, len(poly) - 2)
-    t = param - i0
-    wire_z = poly[i0, 2] + t * (poly[i0 + 1, 2] - poly[i0, 2])
+    _, lateral, _, param, _, wire_z = _plan_projection(pts, polyline, tree_xy)
     return lateral, wire_z, param
 
 
