@@ -509,13 +509,13 @@ class GroundRoofs:
     grid
         The anchored roof grid (:func:`anchored_frame`).
     footprint
-        Per cell of ``grid``: the cell belongs to a detected roof footprint (dilated by one
-        cell for the eaves), flat, bool.
+        Flat indices into ``grid`` of the cells of detected roof footprints (dilated by one
+        cell for the eaves), sorted.
     ring_z
-        Per cell of ``grid``: height of the ground surface interpolated from the roof's
-        surrounding ring (NaN outside footprints). [m]
+        Per footprint cell: height of the ground surface interpolated from the roof's
+        surrounding ring. [m]
     top_z
-        Per cell of ``grid``: highest roof point in the cell (NaN outside footprints). [m]
+        Per footprint cell: highest roof point in the cell (NaN where the cell is empty). [m]
     patches
         Number of roof patches accepted.
     """
@@ -529,41 +529,45 @@ class GroundRoofs:
 
 
 
-def _cell_planes(xyz: np.ndarray, grid: GridFrame, flat: np.ndarray, min_points: int = 4):
-    """Least-squares plane z = a + b·dx + c·dy per cell (dx, dy from the cell centre).
+def _cell_planes(xyz: np.ndarray, uv: np.ndarray, grid: GridFrame, cells: np.ndarray,
+                 k: np.ndarray, min_points: int = 4):
+    """Least-squares plane z = a + b·dx + c·dy per occupied cell (dx, dy from the cell centre).
 
-    Returns the height at the cell centre, the gradient (b, c), the RMS residual [m] and the
-    point count per cell; cells with fewer than ``min_points`` points get NaN.
+    ``uv`` are the points' grid coordinates relative to the grid corner [m], ``cells`` the
+    occupied flat cell indices (sorted) and ``k`` each point's position in ``cells``. Returns, per occupied cell, the height at the cell centre, the gradient (b, c),
+    the RMS residual [m] and the point count; cells with fewer than ``min_points`` points get
+    NaN. Work and memory scale with the points and occupied cells, not the grid's extent.
     """
-    n = grid.size
-    uv = grid.to_uv(xyz[:, :2]) - grid.corner
-    i, j = np.divmod(flat, grid.shape[1])
-    dx = uv[:, 0] - (i + 0.5) * grid.cell
-    dy = uv[:, 1] - (j + 0.5) * grid.cell
+    m = len(cells)
+    ci, cj = np.divmod(cells, grid.shape[1])
+    dx = uv[:, 0] - ((ci + 0.5) * grid.cell)[k]
+    dy = uv[:, 1] - ((cj + 0.5) * grid.cell)[k]
     z = xyz[:, 2]
-    cnt = np.bincount(flat, minlength=n).astype(np.float64)
-    z0 = cell_min(flat, z, n)  # reference height per cell keeps the moments well conditioned
-    zr = z - z0[flat]
+    cnt = np.bincount(k, minlength=m).astype(np.float64)
+    z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
+    zr = z - z0[k]
 
     def s(w: np.ndarray | None) -> np.ndarray:
-        return np.bincount(flat, w, minlength=n)
+        return np.bincount(k, w, minlength=m)
 
     sx, sy, sz = s(dx), s(dy), s(zr)
     sxx, syy, sxy = s(dx * dx), s(dy * dy), s(dx * dy)
     sxz, syz = s(dx * zr), s(dy * zr)
-    ok = cnt >= min_points
-    a_mat = np.stack([np.stack([cnt, sx, sy], -1), np.stack([sx, sxx, sxy], -1),
-                      np.stack([sy, sxy, syy], -1)], -2)[ok]
-    rhs = np.stack([sz, sxz, syz], -1)[ok]
-    coef = np.full((n, 3), np.nan)
+    ok = np.flatnonzero(cnt >= min_points)
+    a_mat = np.empty((len(ok), 3, 3))
+    for r, row in enumerate(((cnt, sx, sy), (sx, sxx, sxy), (sy, sxy, syy))):
+        for c, col in enumerate(row):
+            a_mat[:, r, c] = col[ok]
+    rhs = np.stack([sz[ok], sxz[ok], syz[ok]], -1)
+    coef = np.full((m, 3), np.nan)
     good = np.abs(np.linalg.det(a_mat)) > 1e-9
-    sol = np.full((len(a_mat), 3), np.nan)
+    sol = np.full((len(ok), 3), np.nan)
     sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
-    res = zr - (coef[flat, 0] + coef[flat, 1] * dx + coef[flat, 2] * dy)
+    res = zr - (coef[k, 0] + coef[k, 1] * dx + coef[k, 2] * dy)
     with np.errstate(invalid="ignore", divide="ignore"):
-        rms = np.sqrt(np.bincount(flat, np.nan_to_num(res, nan=1e3) ** 2, minlength=n) / cnt)
-    rms[~ok] = np.nan
+        rms = np.sqrt(np.bincount(k, np.nan_to_num(res, nan=1e3) ** 2, minlength=m) / cnt)
+    rms[cnt < min_points] = np.nan
     return coef[:, 0] + z0, coef[:, 1], coef[:, 2], rms, cnt
 
 
@@ -659,91 +663,123 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
     grid = anchored_frame(xyz[:, :2], cell_m, margin_cells=ring_cells + 2)
-    nan = np.full(grid.size, np.nan)
-    empty = GroundRoofs(np.zeros(len(xyz), bool), grid, np.zeros(grid.size, bool), nan,
-                        nan.copy(), 0)
+    none = np.zeros(0, np.int64)
+    empty = GroundRoofs(np.zeros(len(xyz), bool), grid, none, np.zeros(0), np.zeros(0), 0)
     if len(xyz) < 4:
         return empty
-    flat = grid.flat_index(xyz[:, :2])
-    zc, gu, gv, rms, cnt = _cell_planes(xyz, grid, flat)
+    shape = grid.shape
+    uv = grid.to_uv(xyz[:, :2])
+    uv -= grid.corner
+    f = uv / grid.cell  # the same cell indices as grid.flat_index, from one projection
+    flat = (np.clip(np.floor(f[:, 0]).astype(np.int64), 0, shape[0] - 1) * shape[1]
+            + np.clip(np.floor(f[:, 1]).astype(np.int64), 0, shape[1] - 1))
+    del f
+    # occupied cells only: the grid spans the survey's bounding box, which for a long or bent
+    # corridor is many times the area holding points
+    cells = np.flatnonzero(np.bincount(flat, minlength=grid.size))
+    m = len(cells)
+    cid = np.full(grid.size, -1, np.int32)
+    cid[cells] = np.arange(m, dtype=np.int32)
+    k = cid[flat]
+    del flat
+    zc, gu, gv, rms, _ = _cell_planes(xyz, uv, grid, cells, k)
+    del uv
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
     planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & (np.hypot(gu, gv) <= max_cell_gradient)
-    shape = grid.shape
-    idx = np.arange(grid.size).reshape(shape)
+    ci, cj = np.divmod(cells, shape[1])
     rows, cols = [], []
-    for a, b, axis_grad in ((idx[:-1, :], idx[1:, :], gu), (idx[:, :-1], idx[:, 1:], gv)):
-        a, b = a.ravel(), b.ravel()
-        both = planar[a] & planar[b]
+    pc = np.flatnonzero(planar)
+    for step, axis_grad, inside in ((shape[1], gu, ci[pc] < shape[0] - 1),
+                                    (1, gv, cj[pc] < shape[1] - 1)):
+        a = pc[inside]
+        b = cid[cells[a] + step]
+        both = b >= 0
         a, b = a[both], b[both]
+        keep = planar[b]
+        a, b = a[keep], b[keep]
         pred = 0.5 * (axis_grad[a] + axis_grad[b]) * grid.cell
         link = ((np.abs(zc[b] - zc[a] - pred) <= link_m)
                 & (np.hypot(gu[b] - gu[a], gv[b] - gv[a]) <= max_gradient_change))
         rows.append(a[link])
         cols.append(b[link])
     r, c = np.concatenate(rows), np.concatenate(cols)
-    graph = sparse.coo_matrix((np.ones(len(r), bool), (r, c)), shape=(grid.size, grid.size))
+    graph = sparse.coo_matrix((np.ones(len(r), bool), (r, c)), shape=(m, m))
     _, label = connected_components(graph, directed=False)
     label = np.where(planar, label, -1)
-    m = int(label.max()) + 1 if planar.any() else 0
-    area = np.bincount(label[planar], minlength=m) * grid.cell**2
+    n_lab = int(label.max()) + 1 if planar.any() else 0
+    area = np.bincount(label[planar], minlength=n_lab) * grid.cell**2
     candidates = np.flatnonzero((area >= min_area_m2) & (area <= max_area_m2))
     if len(candidates) == 0:
         return empty
-    low = cell_min(flat, xyz[:, 2], grid.size)  # ring: lowest point per cell
-    top = cell_max(flat, xyz[:, 2], grid.size)
-    lab2 = label.reshape(shape)
-    ci, cj = np.divmod(np.arange(grid.size), shape[1])
-    footprint = np.zeros(grid.size, bool)
-    ring_z = np.full(grid.size, np.nan)
+    low = cell_min(k, xyz[:, 2], m)  # ring: lowest point per cell
+    # per-cell lookups with a sentinel for empty cells (index -1 → the appended last entry)
+    label_x = np.append(label, -1)
+    low_x = np.append(low, np.nan)
+    zc_x = np.append(zc, np.nan)
+    cand_cells = np.flatnonzero(np.isin(label, candidates))
+    lab_c = label[cand_cells]
+    lo_i = np.full(n_lab, shape[0])
+    hi_i = np.full(n_lab, -1)
+    lo_j = np.full(n_lab, shape[1])
+    hi_j = np.full(n_lab, -1)
+    np.minimum.at(lo_i, lab_c, ci[cand_cells])
+    np.maximum.at(hi_i, lab_c, ci[cand_cells])
+    np.minimum.at(lo_j, lab_c, cj[cand_cells])
+    np.maximum.at(hi_j, lab_c, cj[cand_cells])
+    cid2 = cid.reshape(shape)
     near = np.ones((3, 3), bool)
+    take_parts, ring_parts = [], []
     accepted = 0
-    objects = ndimage.find_objects(np.where(np.isin(lab2, candidates), lab2 + 1, 0))
-    for k in candidates:  # one iteration per candidate patch (few), not per point
-        sl = objects[k]
-        if sl is None:
-            continue
+    for lab in candidates:  # one iteration per candidate patch (few), not per point
         pad = ring_cells + 1
-        s0 = slice(max(sl[0].start - pad, 0), min(sl[0].stop + pad, shape[0]))
-        s1 = slice(max(sl[1].start - pad, 0), min(sl[1].stop + pad, shape[1]))
-        patch = lab2[s0, s1] == k
+        i0, i1 = max(lo_i[lab] - pad, 0), min(hi_i[lab] + 1 + pad, shape[0])
+        j0, j1 = max(lo_j[lab] - pad, 0), min(hi_j[lab] + 1 + pad, shape[1])
+        win = cid2[i0:i1, j0:j1]
+        wi, wj = np.mgrid[i0:i1, j0:j1]
+        patch = label_x[win] == lab
         inner = ndimage.binary_dilation(patch, near)
         outer = ndimage.binary_dilation(patch, near, iterations=ring_cells)
         ring = outer & ~inner
-        sub = idx[s0, s1]
-        ring_cells_idx = sub[ring]
-        n_ring = len(ring_cells_idx)
-        ring_cells_idx = ring_cells_idx[np.isfinite(low[ring_cells_idx])]
+        n_ring = int(ring.sum())
+        ring_low = low_x[win[ring]]
+        finite = np.isfinite(ring_low)
         # a patch at the edge of the data has no ring there: no evidence of step edges
-        if len(ring_cells_idx) < max(6, min_ring_share * n_ring):
+        if finite.sum() < max(6, min_ring_share * n_ring):
             continue
-        coef = _low_plane(ci[ring_cells_idx] + 0.5, cj[ring_cells_idx] + 0.5,
-                          low[ring_cells_idx])
+        coef = _low_plane(wi[ring][finite] + 0.5, wj[ring][finite] + 0.5, ring_low[finite])
         if coef is None:
             continue
-        cells = sub[patch]
-        base = coef[0] + coef[1] * (ci[cells] + 0.5) + coef[2] * (cj[cells] + 0.5)
-        height = zc[cells] - base
+        base = coef[0] + coef[1] * (wi[patch] + 0.5) + coef[2] * (wj[patch] + 0.5)
+        height = zc_x[win[patch]] - base
         if np.median(height) < min_height_m:
             continue
         edge = patch & ~ndimage.binary_erosion(patch, near)
-        edge_cells = sub[edge]
-        edge_h = zc[edge_cells] - (coef[0] + coef[1] * (ci[edge_cells] + 0.5)
-                                   + coef[2] * (cj[edge_cells] + 0.5))
+        edge_h = zc_x[win[edge]] - (coef[0] + coef[1] * (wi[edge] + 0.5)
+                                    + coef[2] * (wj[edge] + 0.5))
         if np.mean(edge_h >= min_step_m) < min_step_share:
             continue
         accepted += 1
-        take = sub[inner]
-        footprint[take] = True
-        ring_z[take] = coef[0] + coef[1] * (ci[take] + 0.5) + coef[2] * (cj[take] + 0.5)
+        take_parts.append(wi[inner] * shape[1] + wj[inner])
+        ring_parts.append(coef[0] + coef[1] * (wi[inner] + 0.5) + coef[2] * (wj[inner] + 0.5))
     if not accepted:
         return empty
+    # a cell in two patches' eaves keeps the later patch's ring surface
+    take = np.concatenate(take_parts)[::-1]
+    ring_all = np.concatenate(ring_parts)[::-1]
+    fp_cells, first = np.unique(take, return_index=True)
+    fp_ring = ring_all[first]
     # ring surface sampled at each point (the plane, evaluated at the point's own position)
-    pts = np.flatnonzero(footprint[flat])
+    ring_by_cell = np.full(m + 1, np.nan)
+    fp_occ = cid[fp_cells]
+    ring_by_cell[fp_occ[fp_occ >= 0]] = fp_ring[fp_occ >= 0]
+    zpt = ring_by_cell[k]
+    pts = np.flatnonzero(np.isfinite(zpt))
     is_roof = np.zeros(len(xyz), bool)
-    is_roof[pts] = xyz[pts, 2] - ring_z[flat[pts]] >= min_roof_hag_m
-    top_z = np.where(footprint, top, np.nan)
-    return GroundRoofs(is_roof, grid, footprint, ring_z, top_z, accepted)
+    is_roof[pts] = xyz[pts, 2] - zpt[pts] >= min_roof_hag_m
+    top = cell_max(k, xyz[:, 2], m)
+    fp_top = np.where(fp_occ >= 0, np.append(top, np.nan)[fp_occ], np.nan)
+    return GroundRoofs(is_roof, grid, fp_cells, fp_ring, fp_top, accepted)
 
 
 def vegetation_class(hag: np.ndarray, opts: ClassifyOptions) -> np.ndarray:
