@@ -254,7 +254,7 @@ def run_audit(options: AuditOptions, console=None):
                 _, unit_m, _ = inputs_crs(paths, crs=options.crs)
                 poly = np.array([[r["x"], r["y"]] for r in structures_rows])
                 keep = corridor_mask(poly, options.corridor_buffer_m / unit_m)
-            cloud = read_cloud(paths, crs=options.crs, keep=keep,
+            cloud = read_cloud(paths, crs=options.crs, keep=keep, fields=(),
                                progress=_stage_progress(bar, task))
             for info, entry in zip(cloud.sources, record.inputs, strict=False):
                 entry.update({"sha256": info.sha256, "point_count": info.point_count,

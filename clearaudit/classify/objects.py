@@ -470,30 +470,34 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
         return building
     grid = anchored_frame(xyz[high, :2], opts.building_cell_m)
     flat = grid.flat_index(xyz[high, :2])
+    # statistics on occupied cells only (the grid spans the bounding box of the points)
+    cells, k = np.unique(flat, return_inverse=True)
+    m = len(cells)
     roof_like = ((feats.planarity[high] >= opts.building_min_planarity)
                  & (np.abs(feats.normal[high, 2]) >= 0.5))
-    count = np.bincount(flat, minlength=grid.size)
-    roof_count = np.bincount(flat, weights=roof_like, minlength=grid.size)
+    count = np.bincount(k, minlength=m)
+    roof_count = np.bincount(k, weights=roof_like, minlength=m)
     # vertical spread of a roof cell: noise plus the tilt of the roof plane across the cell
     # (tan of the roof pitch from the normal); foliage spreads much more
     nz = np.abs(feats.normal[high, 2])
     zz = xyz[high, 2]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.bincount(flat, zz, grid.size) / count
-        var = np.bincount(flat, zz * zz, grid.size) / count - mean**2
-        pitch = np.bincount(flat, np.sqrt(np.maximum(1 - nz**2, 0)) / np.maximum(nz, 0.5),
-                            grid.size) / count
-    allowed = opts.building_max_roof_spread_m + 0.5 * grid.cell * np.nan_to_num(pitch)
-    spread = np.sqrt(np.maximum(np.nan_to_num(var), 0))
-    roof = (count >= 2) & (roof_count >= 0.6 * count) & (spread <= allowed)
+    mean = np.bincount(k, zz, m) / count
+    var = np.bincount(k, zz * zz, m) / count - mean**2
+    pitch = np.bincount(k, np.sqrt(np.maximum(1 - nz**2, 0)) / np.maximum(nz, 0.5), m) / count
+    allowed = opts.building_max_roof_spread_m + 0.5 * grid.cell * pitch
+    spread = np.sqrt(np.maximum(var, 0))
+    roof = np.zeros(grid.size, bool)
+    roof[cells[(count >= 2) & (roof_count >= 0.6 * count) & (spread <= allowed)]] = True
     roof = ndimage.binary_closing(roof.reshape(grid.shape), structure=np.ones((3, 3)))
-    labels, m = ndimage.label(roof, structure=np.ones((3, 3)))
-    if m == 0:
+    labels, n_lab = ndimage.label(roof, structure=np.ones((3, 3)))
+    del roof
+    if n_lab == 0:
         return building
-    index = np.arange(1, m + 1)
-    area = ndimage.sum_labels(np.ones(grid.shape), labels, index) * grid.cell**2
-    footprint = np.isin(labels, index[area >= opts.building_min_area_m2])
-    footprint = ndimage.binary_dilation(footprint, structure=np.ones((3, 3)))
+    area = np.bincount(labels.ravel(), minlength=n_lab + 1) * grid.cell**2
+    big = area >= opts.building_min_area_m2
+    big[0] = False
+    footprint = ndimage.binary_dilation(big[labels], structure=np.ones((3, 3)))
+    del labels
     building[high[footprint.ravel()[flat]]] = True
     return building
 
@@ -529,19 +533,16 @@ class GroundRoofs:
 
 
 
-def _cell_planes(xyz: np.ndarray, uv: np.ndarray, grid: GridFrame, cells: np.ndarray,
-                 k: np.ndarray, min_points: int = 4):
+def _cell_planes(xyz: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
+                 cells: np.ndarray, k: np.ndarray, min_points: int = 4):
     """Least-squares plane z = a + b·dx + c·dy per occupied cell (dx, dy from the cell centre).
 
-    ``uv`` are the points' grid coordinates relative to the grid corner [m], ``cells`` the
+    ``dx``, ``dy`` are the points' offsets from their cell centres [m], ``cells`` the
     occupied flat cell indices (sorted) and ``k`` each point's position in ``cells``. Returns, per occupied cell, the height at the cell centre, the gradient (b, c),
     the RMS residual [m] and the point count; cells with fewer than ``min_points`` points get
     NaN. Work and memory scale with the points and occupied cells, not the grid's extent.
     """
     m = len(cells)
-    ci, cj = np.divmod(cells, grid.shape[1])
-    dx = uv[:, 0] - ((ci + 0.5) * grid.cell)[k]
-    dy = uv[:, 1] - ((cj + 0.5) * grid.cell)[k]
     z = xyz[:, 2]
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
@@ -682,12 +683,15 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
     cid[cells] = np.arange(m, dtype=np.int32)
     k = cid[flat]
     del flat
-    zc, gu, gv, rms, _ = _cell_planes(xyz, uv, grid, cells, k)
+    ci, cj = np.divmod(cells, shape[1])
+    dx = uv[:, 0] - ((ci + 0.5) * grid.cell)[k]
+    dy = uv[:, 1] - ((cj + 0.5) * grid.cell)[k]
     del uv
+    zc, gu, gv, rms, _ = _cell_planes(xyz, dx, dy, grid, cells, k)
+    del dx, dy
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
     planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & (np.hypot(gu, gv) <= max_cell_gradient)
-    ci, cj = np.divmod(cells, shape[1])
     rows, cols = [], []
     pc = np.flatnonzero(planar)
     for step, axis_grad, inside in ((shape[1], gu, ci[pc] < shape[0] - 1),
