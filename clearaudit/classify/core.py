@@ -214,7 +214,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     roofs: GroundRoofs | None = None
     if not (opts.trust_classes and present["ground"]) and is_ground.any():
         ground_idx = np.flatnonzero(is_ground)
-        roofs = find_ground_roofs(xyz[ground_idx], cell_m=opts.building_cell_m,
+        roofs = find_ground_roofs(xyz, ground_idx, cell_m=opts.building_cell_m,
                                   min_height_m=opts.building_min_hag_m,
                                   min_area_m2=opts.building_min_area_m2)
         roof_idx = ground_idx[roofs.is_roof]

@@ -533,7 +533,7 @@ class GroundRoofs:
 
 
 
-def _cell_planes(xyz: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
+def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
                  cells: np.ndarray, k: np.ndarray, min_points: int = 4):
     """Least-squares plane z = a + b·dx + c·dy per occupied cell (dx, dy from the cell centre).
 
@@ -543,7 +543,6 @@ def _cell_planes(xyz: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFram
     NaN. Work and memory scale with the points and occupied cells, not the grid's extent.
     """
     m = len(cells)
-    z = xyz[:, 2]
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
     zr = z - z0[k]
@@ -565,7 +564,16 @@ def _cell_planes(xyz: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFram
     sol = np.full((len(ok), 3), np.nan)
     sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
-    res = zr - (coef[k, 0] + coef[k, 1] * dx + coef[k, 2] * dy)
+    # residuals built in place (one point-sized temporary at a time)
+    res = coef[k, 1]
+    res *= dx
+    res += coef[k, 0]
+    tmp = coef[k, 2]
+    tmp *= dy
+    res += tmp
+    del tmp
+    np.subtract(zr, res, out=res)
+    del zr
     with np.errstate(invalid="ignore", divide="ignore"):
         rms = np.sqrt(np.bincount(k, np.nan_to_num(res, nan=1e3) ** 2, minlength=m) / cnt)
     rms[cnt < min_points] = np.nan
@@ -586,7 +594,8 @@ def _low_plane(u: np.ndarray, v: np.ndarray, z: np.ndarray, passes: int = 4,
     return coef
 
 
-def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: float = 2.0,
+def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
+                      cell_m: float = 1.0, min_height_m: float = 2.0,
                       min_step_m: float = 1.5, min_area_m2: float = 20.0,
                       max_area_m2: float = 5000.0, max_cell_rms_m: float = 0.15,
                       link_m: float = 0.5, ring_cells: int = 4, min_step_share: float = 0.5,
@@ -603,7 +612,10 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
     Parameters
     ----------
     xyz
-        The ground points. [m], shape (n, 3)
+        The ground points, or all points with ``which``. [m], shape (n, 3)
+    which
+        Indices of the ground points in ``xyz`` (saves a copy of them); ``is_roof`` is then
+        per index.
     cell_m
         Cell edge of the roof grid (anchored to multiples of it). [m]
     min_height_m
@@ -663,13 +675,18 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
         raise ValueError("find_ground_roofs needs a positive cell, 0 < min_area <= max_area "
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
-    grid = anchored_frame(xyz[:, :2], cell_m, margin_cells=ring_cells + 2)
+    sel = slice(None) if which is None else np.asarray(which)
+    xy = xyz[sel, :2]
+    z = xyz[sel, 2]
+    n = len(z)
+    grid = anchored_frame(xy, cell_m, margin_cells=ring_cells + 2)
     none = np.zeros(0, np.int64)
-    empty = GroundRoofs(np.zeros(len(xyz), bool), grid, none, np.zeros(0), np.zeros(0), 0)
-    if len(xyz) < 4:
+    empty = GroundRoofs(np.zeros(n, bool), grid, none, np.zeros(0), np.zeros(0), 0)
+    if n < 4:
         return empty
     shape = grid.shape
-    uv = grid.to_uv(xyz[:, :2])
+    uv = grid.to_uv(xy)
+    del xy
     uv -= grid.corner
     f = uv / grid.cell  # the same cell indices as grid.flat_index, from one projection
     flat = (np.clip(np.floor(f[:, 0]).astype(np.int64), 0, shape[0] - 1) * shape[1]
@@ -687,7 +704,7 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
     dx = uv[:, 0] - ((ci + 0.5) * grid.cell)[k]
     dy = uv[:, 1] - ((cj + 0.5) * grid.cell)[k]
     del uv
-    zc, gu, gv, rms, _ = _cell_planes(xyz, dx, dy, grid, cells, k)
+    zc, gu, gv, rms, _ = _cell_planes(z, dx, dy, grid, cells, k)
     del dx, dy
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
@@ -716,7 +733,7 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
     candidates = np.flatnonzero((area >= min_area_m2) & (area <= max_area_m2))
     if len(candidates) == 0:
         return empty
-    low = cell_min(k, xyz[:, 2], m)  # ring: lowest point per cell
+    low = cell_min(k, z, m)  # ring: lowest point per cell
     # per-cell lookups with a sentinel for empty cells (index -1 → the appended last entry)
     label_x = np.append(label, -1)
     low_x = np.append(low, np.nan)
@@ -779,9 +796,9 @@ def find_ground_roofs(xyz: np.ndarray, *, cell_m: float = 1.0, min_height_m: flo
     ring_by_cell[fp_occ[fp_occ >= 0]] = fp_ring[fp_occ >= 0]
     zpt = ring_by_cell[k]
     pts = np.flatnonzero(np.isfinite(zpt))
-    is_roof = np.zeros(len(xyz), bool)
-    is_roof[pts] = xyz[pts, 2] - zpt[pts] >= min_roof_hag_m
-    top = cell_max(k, xyz[:, 2], m)
+    is_roof = np.zeros(n, bool)
+    is_roof[pts] = z[pts] - zpt[pts] >= min_roof_hag_m
+    top = cell_max(k, z, m)
     fp_top = np.where(fp_occ >= 0, np.append(top, np.nan)[fp_occ], np.nan)
     return GroundRoofs(is_roof, grid, fp_cells, fp_ring, fp_top, accepted)
 
