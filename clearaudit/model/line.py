@@ -858,7 +858,7 @@ def build_line_model(
     line_ids = _ordered_ids({w.wire_id for s in spans for w in s.wires})
     labels_list = line_ids + [o.id for o in others]
     lab_index = {name: i for i, name in enumerate(labels_list)}
-    point_labels = np.full(len(xyz), -1, dtype=np.int64)
+    point_labels = np.full(len(xyz), -1, dtype=np.int32)  # few labels; 4 bytes per point
     for span in spans:
         for w in span.wires:
             point_labels[w.point_indices] = lab_index[w.wire_id]
