@@ -1119,7 +1119,7 @@ def _prepare_extra_dims(extra_dims: ExtraDims | None, n: int,
         if values.dtype == bool:
             values = values.astype(np.uint8)
         elif np.issubdtype(values.dtype, np.floating):
-            values = values.astype(np.float32)
+            values = values.astype(np.float32, copy=False)
         elif not np.issubdtype(values.dtype, np.integer):
             raise ValueError(f"extra dimension {name!r} must be numeric or boolean")
         out[name] = (values, str(description)[:31])
@@ -1200,7 +1200,10 @@ def write_classified(
     formats are converted to the lowest format that holds every input's dimensions
     (``scan_angle_rank`` [deg] becomes ``scan_angle`` in units of 0.006° for formats 6–10).
     Coordinates keep the inputs' precision: the output scale is the finest input scale, and
-    an input whose scale equals it is shifted by whole integers.
+    an input whose scale equals it is shifted by whole integers. An input whose point records
+    are a byte prefix of the output's (the usual case: one point format, the new extra
+    dimensions appended) is copied record by record as raw bytes before the class codes and
+    extra dimensions are set; the result is the same as copying dimension by dimension.
 
     References
     ----------
@@ -1234,16 +1237,34 @@ def write_classified(
     header = _classified_header(metas, cloud.crs, max_code,
                                 {k: (v.dtype, d) for k, (v, d) in new_extras.items()})
 
-    order = np.argsort(source_id, kind="stable")
-    bounds = np.searchsorted(source_id[order], np.arange(len(metas) + 1))
+    # Points of a cloud read whole come file after file: no sort, every file's rows a slice.
+    in_file_order = n < 2 or bool(np.all(source_id[1:] >= source_id[:-1]))
+    order = None if in_file_order else np.argsort(source_id, kind="stable")
+    bounds = np.searchsorted(source_id if order is None else source_id[order],
+                             np.arange(len(metas) + 1))
 
     def produce(writer: Any) -> None:
         for file_id, meta in enumerate(metas):
-            rows = order[bounds[file_id]:bounds[file_id + 1]]
+            lo, hi = int(bounds[file_id]), int(bounds[file_id + 1])
+            rows = slice(lo, hi) if order is None else order[lo:hi]
             count = meta.point_count
             idx = source_index[rows]
             if len(idx) and (idx.min() < 0 or idx.max() >= count):
                 raise ValueError(f"cloud.source_index is out of range for {meta.path.name}")
+            if (order is None and len(idx) == count
+                    and np.array_equal(idx, np.arange(count, dtype=idx.dtype))):
+                # Every point of the file, in file order: the cloud's arrays as they are.
+                file_codes = codes[rows]
+                file_extras = {k: v[rows] for k, (v, _) in new_extras.items()}
+
+                def whole(start: int, stop: int, file_codes=file_codes,
+                          file_extras=file_extras):
+                    sl = slice(start, stop)
+                    return (np.ones(stop - start, dtype=bool), file_codes[sl],
+                            {k: a[sl] for k, a in file_extras.items()})
+
+                _stream_file(writer, meta, whole, chunk_size)
+                continue
             has_new = np.zeros(count, dtype=bool)
             has_new[idx] = True
             if int(has_new.sum()) != len(idx):
@@ -1385,6 +1406,186 @@ def write_classified_stream(
 
 def _stream_file(writer: Any, meta: _FileMeta, values: Callable[[int, int], tuple],
                  chunk_size: int) -> None:
+    """Stream one input file into ``writer`` with new class codes and extra dimensions.
+
+    When the input's point records are a byte prefix of the output's (same point format,
+    same extra dimensions first — the usual case), each chunk is copied as raw bytes;
+    otherwise the dimensions are copied by name (format conversion).
+    """
+    with _open_reader(meta.path) as reader:
+        if _is_record_prefix(meta.header.point_format, writer.header.point_format):
+            start = _stream_raw(writer, meta, reader, values, chunk_size)
+        else:
+            start = _stream_by_name(writer, meta, reader, values, chunk_size)
+    if start != meta.point_count:
+        raise InputError(meta.path, f"is truncated or corrupt (header says {meta.point_count} "
+                                    f"points, {start} could be read)")
+
+
+def _is_record_prefix(in_format: Any, out_format: Any) -> bool:
+    """True when every input dimension sits at the same byte offset, with the same type (and
+    the same extra-bytes scale and offset), in the output record: then copying the input
+    record bytes equals copying the dimensions by name."""
+    in_dtype, out_dtype = in_format.dtype(), out_format.dtype()
+    if (in_format.id < 6) != (out_format.id < 6) or in_dtype.itemsize > out_dtype.itemsize:
+        return False
+    out_dims = {d.name: d for d in out_format.dimensions}
+    for dim in in_format.dimensions:
+        other = out_dims.get(dim.name)
+        if other is None or any(not np.array_equal(np.asarray(a, dtype=object),
+                                                   np.asarray(b, dtype=object))
+                                for a, b in zip(dim, other, strict=True)):
+            return False
+    for name, field in in_dtype.fields.items():
+        if out_dtype.fields.get(name) != field:
+            return False
+    return True
+
+
+def _stream_raw(writer: Any, meta: _FileMeta, reader: Any, values: Callable[[int, int], tuple],
+                chunk_size: int) -> int:
+    """Chunks of one file whose records are a byte prefix of the output records."""
+    out_header = writer.header
+    out_format = out_header.point_format
+    in_size = meta.header.point_format.dtype().itemsize
+    out_size = out_format.dtype().itemsize
+    rescale = _axes_to_rescale(meta.header, out_header)
+    legacy = out_format.id < 6
+    # One zeroed buffer per file: every chunk overwrites the input bytes and the new extra
+    # dimensions; the extra dimensions of other inputs stay zero, as when copied by name.
+    buffer = np.zeros(min(chunk_size, max(meta.point_count, 1)), dtype=out_format.dtype())
+    buffer_bytes = buffer.view(np.uint8).reshape(len(buffer), out_size)
+    start = 0
+    for chunk_bytes in _record_bytes(reader, meta.path, chunk_size):
+        m = len(chunk_bytes)
+        if m > len(buffer):  # pragma: no cover - chunks hold at most chunk_size points
+            buffer = np.zeros(m, dtype=out_format.dtype())
+            buffer_bytes = buffer.view(np.uint8).reshape(m, out_size)
+        records = buffer[:m]
+        buffer_bytes[:m, :in_size] = chunk_bytes
+        for name, s_in, o_in, s_out, o_out in rescale:
+            records[name] = _rescale_ints(records[name], s_in, o_in, s_out, o_out)
+        has_new, new_codes, extras = values(start, start + m)
+        _set_classification(records, has_new, new_codes, legacy)
+        for k, arr in extras.items():
+            records[k] = arr
+        _write_records(writer, laspy.PackedPointRecord(records, out_format))
+        start += m
+    return start
+
+
+def _record_bytes(reader: laspy.LasReader, path: Path, chunk_size: int):
+    """Yield the point records of an open file chunk by chunk as (m, record size) uint8
+    arrays; LAZ chunks are decoded into one reused buffer (no fresh allocation per chunk).
+
+    The yielded array is overwritten by the next chunk. Decoding errors become
+    InputError(path).
+    """
+    from laspy._compression.lazrsbackend import LazrsPointReader
+
+    size = reader.header.point_format.dtype().itemsize
+    with _las_errors(path):
+        source = reader.point_source  # created on first use: may fail on a damaged file
+    if not isinstance(source, LazrsPointReader) or source.vlr.item_size() != size:
+        for chunk in _chunks(reader, path, chunk_size):
+            yield np.asarray(chunk.array).view(np.uint8).reshape(len(chunk), size)
+        return
+    left = int(reader.header.point_count) - int(reader.points_read)
+    scratch = np.empty(min(chunk_size, max(left, 0)) * size, dtype=np.uint8)
+    while left > 0:
+        m = min(chunk_size, left)
+        view = scratch[:m * size]
+        with _las_errors(path):
+            source.decompressor.decompress_many(view)
+        reader.points_read += m
+        left -= m
+        yield view.reshape(m, size)
+
+
+def _write_records(writer: Any, points: Any) -> None:
+    """``writer.write_points(points)`` for records already in the writer's scale/offset
+    system, with the header statistics computed without sorting.
+
+    ``LasHeader.grow`` (laspy 2.7) counts points per return number with ``np.unique`` (a sort
+    of every chunk); a ``bincount`` gives the same counts. Bounds, GPS-time range, point
+    count and extra-bytes statistics are updated with the same expressions as laspy's.
+    """
+    header = writer.header
+    point_writer = getattr(writer, "point_writer", None)
+    if (type(writer) is not laspy.LasWriter or point_writer is None or writer.done
+            or points.point_format != header.point_format
+            or header.max_point_count() - header.point_count < len(points)):
+        writer.write_points(points)  # laspy's own checks and messages
+        return
+    if len(points) == 0:
+        return
+    records = points.array
+    for axis in "xyz":
+        ints = records[axis.upper()]
+        scale, offset = getattr(header, f"{axis}_scale"), getattr(header, f"{axis}_offset")
+        setattr(header, f"{axis}_max",
+                max(getattr(header, f"{axis}_max"), (ints.max() * scale) + offset))
+        setattr(header, f"{axis}_min",
+                min(getattr(header, f"{axis}_min"), (ints.min() * scale) + offset))
+    if "gps_time" in records.dtype.names:
+        gps_time = records["gps_time"]
+        header.max_gps_time = max(header.max_gps_time, gps_time.max())
+        header.min_gps_time = min(header.min_gps_time, gps_time.min())
+    composed, sub_field = points.sub_fields_dict["return_number"]
+    mask = int(sub_field.mask)
+    lsb = (mask & -mask).bit_length() - 1
+    return_number = (records[composed] & np.uint8(mask)) >> np.uint8(lsb)
+    by_return = header.number_of_points_by_return
+    counts = np.bincount(return_number, minlength=len(by_return) + 1)
+    by_return += counts[1:len(by_return) + 1].astype(by_return.dtype)
+    header.point_count += len(points)
+    extra_bytes = header.vlrs.get("ExtraBytesVlr")
+    if extra_bytes:
+        extra_bytes[0].grow(points)
+    point_writer.write_points(points)
+
+
+def _axes_to_rescale(in_header: Any, out_header: Any) -> list[tuple]:
+    """(name, in scale, in offset, out scale, out offset) of the axes whose integer
+    records change between the input and output scale/offset systems."""
+    in_scales = np.asarray(in_header.scales, dtype=np.float64)
+    in_offsets = np.asarray(in_header.offsets, dtype=np.float64)
+    out_scales = np.asarray(out_header.scales, dtype=np.float64)
+    out_offsets = np.asarray(out_header.offsets, dtype=np.float64)
+    return [(name, in_scales[axis], in_offsets[axis], out_scales[axis], out_offsets[axis])
+            for axis, name in enumerate("XYZ")
+            if not (in_scales[axis] == out_scales[axis] and in_offsets[axis] == out_offsets[axis])]
+
+
+def _set_classification(records: np.ndarray, has_new: np.ndarray, new_codes: np.ndarray,
+                        legacy: bool) -> None:
+    """New class codes where ``has_new``; formats 0-5 keep the flag bits of their byte.
+
+    LAS 1.4 R15 Table 8: in formats 0-5 the class is the low 5 bits of the classification
+    byte, the synthetic, key-point and withheld flags its high 3 bits.
+    """
+    has_new = np.asarray(has_new, dtype=bool)
+    new_codes = np.asarray(new_codes, dtype=np.uint8)
+    every = bool(has_new.all())
+    if not legacy:
+        if every:
+            records["classification"] = new_codes
+        else:
+            records["classification"][has_new] = new_codes[has_new]
+        return
+    codes = new_codes if every else new_codes[has_new]
+    if codes.size and int(codes.max()) > 31:
+        raise OverflowError(f"value {int(codes.max())} is greater than allowed (max: 31)")
+    raw = records["raw_classification"]
+    if every:
+        raw[:] = (raw & np.uint8(0xE0)) | codes
+    else:
+        raw[has_new] = (raw[has_new] & np.uint8(0xE0)) | codes
+
+
+def _stream_by_name(writer: Any, meta: _FileMeta, reader: Any,
+                    values: Callable[[int, int], tuple], chunk_size: int) -> int:
+    """Chunks of one file converted to another point format, dimension by dimension."""
     out_header = writer.header
     out_scales = np.asarray(out_header.scales, dtype=np.float64)
     out_offsets = np.asarray(out_header.offsets, dtype=np.float64)
@@ -1393,31 +1594,28 @@ def _stream_file(writer: Any, meta: _FileMeta, values: Callable[[int, int], tupl
     legacy_in = meta.header.point_format.id < 6
     legacy_out = out_header.point_format.id < 6
     start = 0
-    with _open_reader(meta.path) as reader:
-        for chunk in _chunks(reader, meta.path, chunk_size):
-            m = len(chunk)
-            out = laspy.ScaleAwarePointRecord.zeros(m, header=out_header)
-            out.copy_fields_from(chunk)
-            for axis, name in enumerate("XYZ"):
-                out[name] = _rescale_ints(np.asarray(chunk[name]), in_scales[axis],
-                                          in_offsets[axis], out_scales[axis],
-                                          out_offsets[axis])
-            if legacy_in and not legacy_out:
-                # LAS 1.4 R15 Table 16: scan angle in 0.006 degree steps.
-                out.scan_angle = np.rint(
-                    np.asarray(chunk.scan_angle_rank, dtype=np.float64) / 0.006
-                ).astype(np.int16)
-            has_new, new_codes, extras = values(start, start + m)
-            cls = np.array(chunk.classification, dtype=np.uint8)
-            cls[has_new] = new_codes[has_new]
-            out.classification = cls
-            for k, arr in extras.items():
-                out[k] = arr
-            writer.write_points(out)
-            start += m
-    if start != meta.point_count:
-        raise InputError(meta.path, f"is truncated or corrupt (header says {meta.point_count} "
-                                    f"points, {start} could be read)")
+    for chunk in _chunks(reader, meta.path, chunk_size):
+        m = len(chunk)
+        out = laspy.ScaleAwarePointRecord.zeros(m, header=out_header)
+        out.copy_fields_from(chunk)
+        for axis, name in enumerate("XYZ"):
+            out[name] = _rescale_ints(np.asarray(chunk[name]), in_scales[axis],
+                                      in_offsets[axis], out_scales[axis],
+                                      out_offsets[axis])
+        if legacy_in and not legacy_out:
+            # LAS 1.4 R15 Table 16: scan angle in 0.006 degree steps.
+            out.scan_angle = np.rint(
+                np.asarray(chunk.scan_angle_rank, dtype=np.float64) / 0.006
+            ).astype(np.int16)
+        has_new, new_codes, extras = values(start, start + m)
+        cls = np.array(chunk.classification, dtype=np.uint8)
+        cls[has_new] = new_codes[has_new]
+        out.classification = cls
+        for k, arr in extras.items():
+            out[k] = arr
+        writer.write_points(out)
+        start += m
+    return start
 
 
 def _rescale_ints(ints: np.ndarray, s_in: float, o_in: float, s_out: float,
