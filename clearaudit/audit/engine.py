@@ -11,12 +11,17 @@ Order of work:
 1. conductor temperature at survey time (:mod:`.temperature`);
 2. conditions: every fitted wire's curve at survey, MOT, wind (both sides) and ice
    (:mod:`.conditions`);
-3. the corridor: classified points within reach of any curve (a plan grid, then one k-d tree
-   of the thinned curves), one k-d tree per obstacle group (vegetation, buildings, ground
-   surfaces, other wires), built once; obstacles: buildings as connected footprints, trees as
-   crowns (:func:`.priority.find_tree_tops`), crossing wires by wire;
-4. clearances per wire and condition (:mod:`.clearance`; candidates per wire from the thinned
-   curves, exact distances per condition), one finding per obstacle per condition group;
+3. the corridor: classified points within reach of any curve — a 2 m plan grid with, per
+   cell, bounds of the distance to the thinned curves (:class:`_PlanGrid`), so whole cells are
+   kept or dropped and only points in straddling cells meet the k-d tree of the thinned
+   curves; every obstacle group's points sorted by cell (:class:`_CellIndex`), built once;
+   obstacles: buildings as connected footprints, trees as crowns
+   (:func:`.priority.find_tree_tops`), crossing wires by wire;
+4. clearances per wire and condition (:mod:`.clearance`): candidates per wire from the cells
+   near its curves, cut per condition by station-binned bounds of the curve
+   (:class:`_CurveWindow`; ground: only points that can violate or hold the lowest
+   clearance, :func:`_ground_candidates`), exact distances on what is left; one finding per
+   obstacle per condition group;
 5. fall-in risk of every tree, grow-in time and priorities (:mod:`.priority`);
 6. span rows, curves for the model file and ground profiles.
 """
@@ -28,6 +33,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy.ndimage import maximum_filter, maximum_filter1d, minimum_filter1d
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
@@ -220,30 +226,19 @@ def _downsample(curve: np.ndarray, n: int = CURVE_VERTICES) -> np.ndarray:
     return curve[idx]
 
 
-def _within(points_xy: np.ndarray, samples_tree: cKDTree, buffer_m: float) -> np.ndarray:
-    if len(points_xy) == 0:
-        return np.zeros(0, dtype=bool)
-    d, _ = samples_tree.query(points_xy, distance_upper_bound=buffer_m)
-    return np.isfinite(d)
-
-
 @dataclass
 class _Group:
     kind: str
     index: np.ndarray        # cloud indices
     xyz: np.ndarray
     tree: cKDTree | None
+    two_d: bool = False
 
-
-def _group(cloud_xyz, mask, kind, samples_tree, buffer_m, two_d=False) -> _Group:
-    idx = np.flatnonzero(mask)
-    if idx.size:
-        idx = idx[_within(cloud_xyz[idx, :2], samples_tree, buffer_m)]
-    xyz = cloud_xyz[idx]
-    tree = None
-    if len(xyz):
-        tree = cKDTree(xyz[:, :2] if two_d else xyz)
-    return _Group(kind, idx, xyz, tree)
+    def search_tree(self) -> cKDTree | None:
+        """The k-d tree of the points (xy when ``two_d``), built on first use; None if empty."""
+        if self.tree is None and len(self.xyz):
+            self.tree = cKDTree(self.xyz[:, :2] if self.two_d else self.xyz)
+        return self.tree
 
 
 # ------------------------------------------------------------------------------ the halves
@@ -515,29 +510,53 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
     samples = [c for i in index for c in states[i].curves.values()]
     groups: dict[str, _Group] = {}
     labels: dict[str, np.ndarray] = {}
+    exact_ground = None
     if samples:
         plan_tree, _ = _plan_samples(samples)
         pad = plan.pad_m
         buffer_m = plan.buffer_m
         ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces \
             else np.array([2], dtype=np.uint8)
-        is_ground = np.isin(classes, ground_classes)
-        is_veg = np.isin(classes, VEGETATION_CLASSES)
+        is_ground = _class_mask(classes, ground_classes)
+        is_veg = _class_mask(classes, VEGETATION_CLASSES)
         context_m = (max(opts.fall_in_buffer_m, buffer_m) if opts.fall_in
                      else buffer_m + opts.tree_window_m)
-        veg_ctx, veg_ctx_d = _near_plan(xyz, is_veg, plan_tree, context_m + pad)
-        corridor = (veg_ctx_d <= buffer_m + pad) & owned[veg_ctx]
+        reach = {"vegetation": context_m + pad,
+                 "building": buffer_m + opts.building_context_m + pad,
+                 "ground": opts.ground_lateral_m + 1.0 + pad, "wire": buffer_m + pad}
+        grid = _PlanGrid(xyz[:, :2], plan_tree, max(reach.values()))
+
+        def mine(mask: np.ndarray) -> np.ndarray:
+            return mask if owned_box is None else mask & owned
+
+        # Vegetation: the context (crowns, fall-in) exactly; the corridor group by whole cells
+        # (a superset: the findings are measured point by point), exactly when a curve's 95 %
+        # half-width could reach past the corridor (buffer_m holds 2 m + the search margin).
+        ci_of_state = {int(i): {c: states[int(i)].position_ci95(c, states[int(i)].fractions[c])
+                                for c in states[int(i)].curves} for i in index}
+        ci_top = max((float(np.max(ci)) for by_cond in ci_of_state.values()
+                      for ci in by_cond.values()), default=0.0)
+        veg_ctx, corridor = grid.near(xyz[:, :2], is_veg, reach["vegetation"],
+                                      inner_m=buffer_m + pad,
+                                      inner_exact=ci_top >= opts.search_margin_m + 2.0)
+        corridor &= owned[veg_ctx]
         groups["vegetation"] = _make_group("vegetation", xyz, veg_ctx[corridor])
-        building_idx, _ = _near_plan(xyz, classes == BUILDING, plan_tree,
-                                     buffer_m + opts.building_context_m + pad)
-        groups["building"] = _make_group("building", xyz, building_idx, two_d=True)
-        ground_idx, _ = _near_plan(xyz, is_ground & owned, plan_tree,
-                                   opts.ground_lateral_m + 1.0 + pad)
+        building_idx, _ = grid.near(xyz[:, :2], classes == BUILDING, reach["building"])
+        groups["building"] = _make_group("building", xyz, building_idx, two_d=True, tree=True)
+        # Ground: whole cells (a superset: the findings are measured point by point); the
+        # exact set only if the profiles need it (:func:`_exact_ground`).
+        ground_idx, _ = grid.near(xyz[:, :2], mine(is_ground), reach["ground"], exact=False)
         groups["ground"] = _make_group("ground", xyz, ground_idx, two_d=True)
-        other = (np.full(n, -1, dtype=np.int64) if other_wire is None
-                 else np.asarray(other_wire, dtype=np.int64))
-        wire_idx, _ = _near_plan(xyz, (other >= 0) & owned, plan_tree, buffer_m + pad)
+        exact_ground = (grid, reach["ground"])
+        if other_wire is None:
+            other = np.zeros(0, dtype=np.int64)
+            wire_idx = np.zeros(0, dtype=np.int64)
+        else:
+            other = np.asarray(other_wire, dtype=np.int64)
+            wire_idx, _ = grid.near(xyz[:, :2], mine(other >= 0), reach["wire"])
         groups["wire"] = _make_group("wire", xyz, wire_idx)
+        cells = {kind: _CellIndex(grid, groups[kind].index)
+                 for kind in ("vegetation", "wire", "ground")}
 
         # ---- obstacles: one building (whole footprint), one tree crown, one crossing wire
         g = groups["building"]
@@ -567,6 +586,8 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
             if rules.surface_of_class(c) in rules.ground[role] else "land").value_m
             for c in range(256)]) for role in {states[i].role for i in index}}
         surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
+        lateral_m = opts.ground_lateral_m
+        ground_cls = classes[groups["ground"].index]
 
         for done, i in enumerate(index):
             i = int(i)
@@ -577,22 +598,39 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
             b_v = rules.required("building", st.role, voltage, key="vertical").value_m
             b_h = rules.required("building", st.role, voltage, key="horizontal").value_m
             conds = list(st.curves)
-            ci_of = {c: st.position_ci95(c, st.fractions[c]) for c in conds}
-            margin = opts.search_margin_m + max(float(np.max(ci_of[c])) for c in conds)
+            ci_of = ci_of_state[i]
+            ci_max = {c: float(np.max(ci_of[c])) for c in conds}
+            margin = opts.search_margin_m + max(ci_max.values())
             curves = [st.curves[c] for c in conds]
-            cand = {}
+            origin, axis = _state_axis(curves)
+            # Candidates of the state (whole plan cells near its curves), then per condition
+            # only the points that can be within reach of that curve (:class:`_CurveWindow`);
+            # the exact distances are those of :mod:`.clearance`, on fewer points.
+            near = {}
             for kind in ("vegetation", "wire"):
                 g = groups[kind]
-                cand[kind] = (points_near_curves(g.tree, curves, req[kind] + margin)
-                              if applies[kind] and g.tree is not None
-                              else np.zeros(0, dtype=np.int64))
-            cand["building"] = points_near_curves(groups["building"].tree, curves,
-                                                  b_h + margin, two_d=True)
+                if applies[kind] and len(g.index):
+                    sub = cells[kind].near_curves(curves, req[kind] + margin)
+                    near[kind] = _state_points(
+                        g.xyz, sub, curves, origin, axis,
+                        req[kind] + max(ci_max.values()), three_d=True)
+            g = groups["ground"]
+            if len(g.index):
+                sub = cells["ground"].near_curves(curves, lateral_m)
+                near["ground"] = _state_points(g.xyz, sub, curves, origin, axis, lateral_m)
+                near["ground"] += (ground_req_by_class[st.role][ground_cls[near["ground"][0]]],)
+            cand = {"building": points_near_curves(groups["building"].tree, curves,
+                                                   b_h + margin, two_d=True)}
             for cond, curve in st.curves.items():
                 frac = st.fractions[cond]
                 ci_along = ci_of[cond]
                 for kind in ("vegetation", "wire"):
-                    idx = cand[kind]
+                    if kind not in near:
+                        continue
+                    sub, u, v, z = near[kind]
+                    window = _CurveWindow(curve, origin, axis, req[kind] + ci_max[cond])
+                    b, ok = window.bins(u)
+                    idx = np.sort(sub[window.maybe_near(b, ok, v, z)])
                     if idx.size:
                         f = _radial(groups[kind].xyz, idx, i, cond, curve, frac, ci_along,
                                     req[kind], "any" if kind == "wire" else "value")
@@ -604,18 +642,18 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
                     if len(f.point):
                         parts["building"].append(f)
                 # ground: vertical clearance under the wire (the block's own part)
-                g = groups["ground"]
-                idx = points_near_curves(g.tree, [curve], opts.ground_lateral_m, two_d=True,
-                                         step_m=1.0)
                 model_min = _ground_model_clearance(ground_model, curve, owned_box)
+                idx = np.zeros(0, dtype=np.int64)
+                if "ground" in near:
+                    idx, (lateral, wire_z, param) = _ground_candidates(
+                        g.xyz, near["ground"], curve, origin, axis, lateral_m, ci_max[cond])
                 if idx.size:
-                    lateral, wire_z, param = polyline_overhead(g.xyz[idx], curve)
-                    near = lateral <= opts.ground_lateral_m
-                    idx, wire_z, param = idx[near], wire_z[near], param[near]
+                    keep_near = lateral <= lateral_m
+                    idx, wire_z, param = idx[keep_near], wire_z[keep_near], param[keep_near]
                     dz = wire_z - g.xyz[idx, 2]
                     point_min = float(np.min(dz)) if dz.size else math.inf
                     out.ground_min[(i, cond)] = min(point_min, model_min)
-                    cls_here = classes[g.index[idx]]
+                    cls_here = ground_cls[idx]
                     required = ground_req_by_class[st.role][cls_here]
                     ci = np.interp(param, np.arange(len(curve)), ci_along)
                     keep = dz - ci < required
@@ -697,7 +735,10 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
             except Exception:  # noqa: BLE001 - fall back to the points
                 z = np.full(len(inside), np.nan)
         g = groups.get("ground")
-        if np.any(~np.isfinite(z)) and g is not None and g.tree is not None:
+        if np.any(~np.isfinite(z)) and g is not None and exact_ground is not None:
+            groups["ground"] = g = _exact_ground(g, *exact_ground)
+            exact_ground = None
+        if np.any(~np.isfinite(z)) and g is not None and g.search_tree() is not None:
             d, j = g.tree.query(sxy[inside], distance_upper_bound=3.0)
             fill = ~np.isfinite(z) & np.isfinite(d)
             z[fill] = g.xyz[j[fill], 2]
@@ -922,13 +963,15 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
     xyz = cloud.xyz
     ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces else \
         np.array([2], dtype=np.uint8)
-    is_ground = np.isin(classes, ground_classes)
+    is_ground = _class_mask(classes, ground_classes)
     plan = prepare_wire_states(
         model, config, conductors, rules, latitude_deg=_latitude(cloud),
         ground_z_m=xyz[is_ground, 2],
         origin_z_m=float(cloud.origin[2]) * float(cloud.vertical_unit_m), options=options)
-    other = np.full(cloud.n_points, -1, dtype=np.int64)
+    other = None                                     # None: no crossing wire points
     for k, ow in enumerate(getattr(model, "other_wires", []) or []):
+        if other is None:
+            other = np.full(cloud.n_points, -1, dtype=np.int64)
         other[np.asarray(ow.point_indices, dtype=np.int64)] = k
     block = point_findings(xyz, classes, hag, plan, model, rules, ground_model=ground_model,
                            other_wire=other, progress=progress)
@@ -966,46 +1009,342 @@ def _plan_samples(curves: list[np.ndarray], step_m: float = 4.0) -> tuple[cKDTre
             continue
         every = max(1, int(step_m / max(float(np.max(np.linalg.norm(np.diff(c[:, :2], axis=0),
                                                                      axis=1))), 1e-6)))
-        idx = np.unique(np.append(np.arange(0, len(c), every), len(c) - 1))
+        idx = np.arange(0, len(c), every)
+        if idx[-1] != len(c) - 1:
+            idx = np.append(idx, len(c) - 1)
         gaps = np.linalg.norm(np.diff(c[idx, :2], axis=0), axis=1)
         pad = max(pad, 0.5 * float(gaps.max()) if gaps.size else 0.0)
         thinned.append(c[idx, :2])
     return cKDTree(np.concatenate(thinned)), pad
 
 
-def _near_plan(xyz: np.ndarray, mask: np.ndarray, plan_tree: cKDTree, bound_m: float
-               ) -> tuple[np.ndarray, np.ndarray]:
-    """Indices of the masked points within ``bound_m`` in plan of a thinned sample, distances.
+# ------------------------------------------------------------------------------ fast search
+#: Slack added to every geometric bound below so rounding can never drop a point. [m]
+_EPS_M = 1e-6
+#: Station bin of :class:`_CurveWindow`. [m]
+_BIN_M = 0.5
 
-    A grid of ``bound_m`` cells first keeps the points in the cells around the samples (a
-    point within ``bound_m`` of a sample is in the sample's cell or one of its 8 neighbours);
-    only those are queried in the k-d tree.
+
+def _class_mask(classes: np.ndarray, codes) -> np.ndarray:
+    """``np.isin(classes, codes)`` for uint8 class codes, by a 256-entry lookup table."""
+    classes = np.asarray(classes)
+    if classes.dtype != np.uint8:
+        return np.isin(classes, np.asarray(codes))
+    table = np.zeros(256, dtype=bool)
+    table[np.asarray(codes, dtype=np.int64)] = True
+    return table[classes]
+
+
+class _PlanGrid:
+    r"""Plan grid over the block: every point's cell, and per occupied cell bounds of the plan
+    distance to the nearest thinned curve sample.
+
+    A point ``p`` in a cell with centre ``c`` and half-diagonal ``h`` has
+    :math:`d(c) - h \le d(p) \le d(c) + h` (triangle inequality), so whole cells are kept or
+    dropped for a search distance and only points in cells that straddle it are measured
+    exactly (with the same k-d tree query as a point-by-point search, so the kept set is the
+    same).
     """
-    idx = np.flatnonzero(mask)
-    if idx.size == 0:
-        return idx, np.zeros(0)
-    cell = float(bound_m)
-    samples = np.floor(plan_tree.data / cell).astype(np.int64)
-    shifts = np.array([(dx, dy) for dx in (-1, 0, 1) for dy in (-1, 0, 1)])
-    near = np.unique((samples[:, None, :] + shifts[None]).reshape(-1, 2), axis=0)
-    lo = near.min(axis=0)
-    stride = int(near[:, 1].max() - lo[1]) + 1
-    near_key = np.unique((near[:, 0] - lo[0]) * stride + (near[:, 1] - lo[1]))
-    ij = np.floor(xyz[idx, :2] / cell).astype(np.int64) - lo
-    inside = (ij[:, 1] >= 0) & (ij[:, 1] < stride) & (ij[:, 0] >= 0)
-    key = np.where(inside, ij[:, 0] * stride + ij[:, 1], -1)
-    idx = idx[np.isin(key, near_key)]
-    if idx.size == 0:
-        return idx, np.zeros(0)
-    d, _ = plan_tree.query(xyz[idx, :2], distance_upper_bound=bound_m)
-    keep = np.isfinite(d)
-    return idx[keep], d[keep]
+
+    def __init__(self, xy: np.ndarray, plan_tree: cKDTree, reach_m: float,
+                 cell_m: float = 2.0, max_cells: int = 16_000_000):
+        self.tree = plan_tree
+        samples = plan_tree.data
+        # The samples' box widened by the reach and two cells; points outside are clamped
+        # into the outermost cells, which are farther than the reach from every sample.
+        margin = reach_m + 2.0 * cell_m
+        lo = samples.min(axis=0) - margin
+        extent = samples.max(axis=0) + margin - lo
+        cell_m = max(float(cell_m), math.sqrt(float(extent[0] * extent[1]) / max_cells))
+        margin = reach_m + 2.0 * cell_m
+        lo = samples.min(axis=0) - margin
+        extent = samples.max(axis=0) + margin - lo
+        self.cell_m, self.lo = cell_m, lo
+        self.nx = int(extent[0] // cell_m) + 1
+        self.ny = int(extent[1] // cell_m) + 1
+        ncell = self.nx * self.ny
+        dtype = np.int32 if ncell < 2 ** 31 - 1 else np.int64
+        t = np.subtract(xy[:, 0], lo[0])
+        t *= 1.0 / cell_m
+        np.clip(t, 0.0, self.nx - 1, out=t)            # >= 0: truncation is the floor
+        key = t.astype(dtype)
+        key *= self.ny
+        np.subtract(xy[:, 1], lo[1], out=t)
+        t *= 1.0 / cell_m
+        np.clip(t, 0.0, self.ny - 1, out=t)
+        key += t.astype(dtype)
+        self.key = key
+        occupied = np.zeros(ncell, dtype=bool)
+        occupied[key] = True
+        cells = np.flatnonzero(occupied)
+        half = 0.5 * math.sqrt(2.0) * cell_m
+        centre = np.column_stack([lo[0] + (cells // self.ny + 0.5) * cell_m,
+                                  lo[1] + (cells % self.ny + 0.5) * cell_m])
+        d, _ = plan_tree.query(centre, distance_upper_bound=reach_m + half + 1.0)
+        border = ((cells // self.ny) == 0) | ((cells // self.ny) == self.nx - 1) | \
+            ((cells % self.ny) == 0) | ((cells % self.ny) == self.ny - 1)
+        d[border] = np.inf                              # clamped points: beyond the reach
+        self.cells = cells
+        self.d_lo = d - half - _EPS_M
+        self.d_hi = d + half + _EPS_M
+        self.ncell = ncell
+
+    def _code(self, bound_m: float) -> np.ndarray:
+        """Per cell: 0 beyond ``bound_m``, 1 surely within, 2 straddling it."""
+        code = np.zeros(self.ncell, dtype=np.uint8)
+        code[self.cells] = np.where(self.d_hi < bound_m, 1,
+                                    np.where(self.d_lo <= bound_m, 2, 0))
+        return code
+
+    def near(self, xy: np.ndarray, mask: np.ndarray | None, bound_m: float,
+             inner_m: float | None = None, exact: bool = True, inner_exact: bool = False
+             ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Indices of the masked points within ``bound_m`` in plan of a thinned sample (as a
+        k-d tree query with ``distance_upper_bound=bound_m``); with ``inner_m``, also whether
+        each may be within ``inner_m`` (its cell reaches within ``inner_m``: a superset;
+        ``inner_exact``: whether it is, ``<=``). ``exact=False``: a superset of the points too (whole cells that reach within
+        ``bound_m``), no ``inner_m``."""
+        code = self._code(bound_m)
+        if mask is not None and np.count_nonzero(mask) < len(mask) // 4:
+            idx = np.flatnonzero(mask)               # few points: look up their cells only
+            state = code[self.key[idx]]
+            inside = np.flatnonzero(state)
+            idx, state = idx[inside], state[inside]
+        else:
+            state = code[self.key]
+            if mask is not None:
+                state *= mask
+            idx = np.flatnonzero(state)
+            state = state[idx]
+        if not exact:
+            return idx, None
+        check = np.flatnonzero(state == 2)
+        d_check, _ = self.tree.query(xy[idx[check]], distance_upper_bound=bound_m)
+        keep = np.ones(len(idx), dtype=bool)
+        keep[check] = np.isfinite(d_check)
+        inner = None
+        if inner_m is not None and not inner_exact:        # whole cells: a superset
+            inner = (self._code(inner_m) != 0)[self.key[idx[keep]]]
+        elif inner_m is not None:
+            inner = (self._code(inner_m) == 1)[self.key[idx]]
+            inner[check] = d_check <= inner_m              # measured: the exact comparison
+            other = np.flatnonzero((self._code(inner_m) == 2)[self.key[idx]] & (state == 1))
+            if other.size:                                 # straddling inner_m only
+                d_other, _ = self.tree.query(xy[idx[other]], distance_upper_bound=bound_m)
+                inner[other] = d_other <= inner_m
+            inner = inner[keep]
+        return idx[keep], inner
 
 
-def _make_group(kind: str, xyz: np.ndarray, idx: np.ndarray, two_d: bool = False) -> _Group:
+class _CellIndex:
+    """The points of one obstacle group sorted by their :class:`_PlanGrid` cell, to gather the
+    points near a wire's curves by cell ranges."""
+
+    def __init__(self, grid: _PlanGrid, cloud_index: np.ndarray):
+        key = grid.key[cloud_index]
+        self.order = np.argsort(key)
+        # start[c]: first position of cell c in the sorted order (start[c + 1]: its end)
+        self.start = np.zeros(grid.ncell + 1, dtype=np.int64)
+        np.cumsum(np.bincount(key, minlength=grid.ncell), out=self.start[1:])
+        self.grid = grid
+
+    def near_curves(self, curves: list[np.ndarray], reach_m: float) -> np.ndarray:
+        """Group-local indices (cell order) of every point within ``reach_m`` in plan of a
+        curve vertex (a superset: whole cells, Chebyshev ring ``floor(reach / cell) + 1``)."""
+        if len(self.order) == 0:
+            return np.zeros(0, dtype=np.int64)
+        g = self.grid
+        xy = np.concatenate([c[:, :2] for c in curves])
+        # The same arithmetic as the points' cells (rounding is monotone).
+        ix = np.floor((xy[:, 0] - g.lo[0]) * (1.0 / g.cell_m)).astype(np.int64)
+        iy = np.floor((xy[:, 1] - g.lo[1]) * (1.0 / g.cell_m)).astype(np.int64)
+        ring = int((reach_m + _EPS_M) // g.cell_m) + 1
+        x0, y0 = ix.min() - ring, iy.min() - ring
+        shape = (int(ix.max() - x0) + ring + 1, int(iy.max() - y0) + ring + 1)
+        raster = np.zeros(shape, dtype=bool)
+        raster[ix - x0, iy - y0] = True
+        raster = maximum_filter(raster, size=2 * ring + 1, mode="constant", cval=False)
+        rx, ry = np.nonzero(raster)
+        gx, gy = rx + x0, ry + y0
+        ok = (gx >= 0) & (gx < g.nx) & (gy >= 0) & (gy < g.ny)
+        cells = gx[ok] * g.ny + gy[ok]                  # increasing (row-major raster)
+        if cells.size == 0:
+            return np.zeros(0, dtype=np.int64)
+        brk = np.flatnonzero(np.diff(cells) != 1) + 1
+        first = cells[np.concatenate([[0], brk])]
+        last = cells[np.concatenate([brk - 1, [len(cells) - 1]])]
+        start = self.start[first]
+        stop = self.start[last + 1]
+        length = stop - start
+        total = int(length.sum())
+        if total == 0:
+            return np.zeros(0, dtype=np.int64)
+        run = np.repeat(np.arange(len(start)), length)
+        pos = np.arange(total) - np.repeat(np.cumsum(length) - length, length) + start[run]
+        return self.order[pos]
+
+
+class _CurveWindow:
+    """Bounds of a curve near a station: for each bin of the station along a fixed plan axis,
+    the range of the curve's across-axis offset and height over every vertex within reach.
+
+    A point :math:`p` within :math:`R` of the polyline (3-D or plan) is within :math:`R` of a
+    point :math:`c` on a segment whose two vertices are within :math:`R + s` of :math:`p`
+    (:math:`s` the longest segment); along and across any fixed plan axis, and in height,
+    :math:`|p - c|` bounds each coordinate difference. So :math:`p` is out of reach when its
+    offset or height lies more than :math:`R` outside the range of those vertices (the curve
+    between two vertices lies within their range).
+    """
+
+    def __init__(self, curve: np.ndarray | list[np.ndarray], origin: np.ndarray,
+                 axis: np.ndarray, reach_m: float, bin_m: float = _BIN_M):
+        bin_m = float(bin_m)
+        curves = curve if isinstance(curve, list) else [curve]
+        seg = max((float(np.max(np.linalg.norm(np.diff(c, axis=0), axis=1)))
+                   for c in curves if len(c) > 1), default=0.0)
+        curve = np.concatenate(curves)        # several curves: the union of their windows
+        u, v = _frame(curve[:, :2], origin, axis)
+        ring = int(math.ceil((reach_m + seg + _EPS_M) / bin_m)) + 1
+        b = np.floor(u / bin_m).astype(np.int64)
+        self.b0 = int(b.min()) - ring - 1
+        self.nb = int(b.max()) - self.b0 + ring + 2
+        b = b - self.b0
+        self.bin_m = bin_m
+        self.reach_m = reach_m
+        size = 2 * ring + 1
+        self.v_min, self.v_max = self._window(b, v, size)
+        self.z_min, self.z_max = self._window(b, curve[:, 2], size)
+
+    def _window(self, b, values, size):
+        lo = np.full(self.nb, np.inf)
+        hi = np.full(self.nb, -np.inf)
+        np.minimum.at(lo, b, values)
+        np.maximum.at(hi, b, values)
+        return (minimum_filter1d(lo, size, mode="constant", cval=np.inf),
+                maximum_filter1d(hi, size, mode="constant", cval=-np.inf))
+
+    def bins(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Bin of each station (clipped) and whether it is inside the curve's bins; ``u`` as
+        stations [m] (float) or as whole bins ``floor(u / bin_m)`` (int64)."""
+        b = (u if u.dtype.kind == "i" else np.floor(u / self.bin_m).astype(np.int64)) - self.b0
+        ok = (b >= 0) & (b < self.nb)
+        return np.where(ok, b, 0), ok
+
+    def maybe_near(self, b, ok, v, z=None) -> np.ndarray:
+        """Points possibly within the reach (plan when ``z`` is None, else 3-D)."""
+        r = self.reach_m + _EPS_M
+        near = ok & (v >= self.v_min[b] - r) & (v <= self.v_max[b] + r)
+        if z is not None:
+            near &= (z >= self.z_min[b] - r) & (z <= self.z_max[b] + r)
+        return near
+
+
+def _state_points(points: np.ndarray, sub: np.ndarray, curves: list[np.ndarray],
+                  origin: np.ndarray, axis: np.ndarray, reach_m: float, three_d: bool = False
+                  ) -> tuple[np.ndarray, ...]:
+    """The candidates ``sub`` of one wire state that can be within ``reach_m`` of any of its
+    curves (plan, or 3-D with ``three_d``), with their station bins, offsets and heights."""
+    p = points[sub]
+    u, v = _frame(p[:, :2], origin, axis)
+    ub = np.floor(u / _BIN_M).astype(np.int64)
+    window = _CurveWindow(curves, origin, axis, reach_m)
+    b, ok = window.bins(ub)
+    keep = np.flatnonzero(window.maybe_near(b, ok, v, p[:, 2] if three_d else None))
+    return sub[keep], ub[keep], v[keep], p[keep, 2]
+
+
+def _frame(xy: np.ndarray, origin: np.ndarray, axis: np.ndarray
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Station along and offset across a plan axis (unit vector) from ``origin``. [m]"""
+    dx = xy[:, 0] - origin[0]
+    dy = xy[:, 1] - origin[1]
+    return dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]
+
+
+def _state_axis(curves: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Origin and unit plan axis of a wire state (its first curve's chord)."""
+    c = curves[0]
+    origin = c[0, :2].copy()
+    d = c[-1, :2] - c[0, :2]
+    n = float(np.hypot(d[0], d[1]))
+    return origin, (d / n if n > 0 else np.array([1.0, 0.0]))
+
+
+def _ground_candidates(points: np.ndarray, near: tuple, curve: np.ndarray, origin: np.ndarray,
+                       axis: np.ndarray, lateral_m: float, ci_max_m: float
+                       ) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """The ground points that decide the ground findings of one curve, measured.
+
+    Every point that can be within ``lateral_m`` of the curve's plan and violate (a lower
+    bound of its clearance minus the largest half-width is below its requirement), and every
+    point whose clearance can be the lowest (lower bound not above the lowest measured one).
+    Clearances and findings over these points equal those over all points.
+
+    Returns
+    -------
+    index : sorted group-local indices.
+    lateral, wire_z, parameter : :func:`~clearaudit.audit.clearance.polyline_overhead` of
+        those points.
+    """
+    sub, u, v, z, required = near
+    empty = np.zeros(0, dtype=np.int64)
+    none = (empty, (np.zeros(0), np.zeros(0), np.zeros(0)))
+    if len(sub) == 0:
+        return none
+    window = _CurveWindow(curve, origin, axis, lateral_m)
+    b, ok = window.bins(u)
+    at = np.flatnonzero(window.maybe_near(b, ok, v))
+    if at.size == 0:
+        return none
+    low = window.z_min[b[at]] - z[at] - _EPS_M          # wire height above the point, at least
+    pick = low - ci_max_m - _EPS_M < required[at]
+    # The lowest clearance: measure the points with the lowest bounds too, until one is under
+    # the wire; no point whose bound is above the lowest clearance measured can be lower.
+    take = min(256, len(low))
+    measured = np.zeros(len(at), dtype=bool)
+    idx, result = empty, none[1]
+    while True:
+        want = pick.copy()
+        want[np.argpartition(low, take - 1)[:take]] = True
+        if measured.any():
+            want |= measured
+        if not np.array_equal(want, measured):
+            measured = want
+            idx = np.sort(sub[at[measured]])
+            result = polyline_overhead(points[idx], curve)
+        lateral, wire_z, _ = result
+        under = lateral <= lateral_m
+        if np.any(under):
+            lowest = float(np.min(wire_z[under] - points[idx[under], 2]))
+            more = ~measured & (low <= lowest)
+            if not np.any(more):
+                return idx, result
+            pick |= more
+        elif take >= len(low):
+            return idx, result
+        else:
+            take = min(4 * take, len(low))
+
+
+def _exact_ground(group: _Group, grid: _PlanGrid, bound_m: float) -> _Group:
+    """The ground group cut to the points within ``bound_m`` in plan of a thinned sample (the
+    same k-d tree query as :meth:`_PlanGrid.near`)."""
+    if len(group.index) == 0:
+        return group
+    d, _ = grid.tree.query(group.xyz[:, :2], distance_upper_bound=bound_m)
+    keep = np.flatnonzero(np.isfinite(d))
+    return _Group(group.kind, group.index[keep], group.xyz[keep], None, group.two_d)
+
+
+def _make_group(kind: str, xyz: np.ndarray, idx: np.ndarray, two_d: bool = False,
+                tree: bool = False) -> _Group:
+    """The group's points; its k-d tree (xy when ``two_d``) now with ``tree``, else on demand
+    (:meth:`_Group.search_tree`)."""
     pts = xyz[idx]
-    tree = cKDTree(pts[:, :2] if two_d else pts) if len(pts) else None
-    return _Group(kind, idx, pts, tree)
+    group = _Group(kind, idx, pts, None, two_d)
+    if tree:
+        group.search_tree()
+    return group
 
 
 def _members(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

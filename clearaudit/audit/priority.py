@@ -160,7 +160,8 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     if not (cell_m > 0 and window_m > 0):
         raise ValueError("The cell size and the window must be positive.")
     ok = np.isfinite(hag)
-    pts, hag = pts[ok], hag[ok]
+    if not ok.all():
+        pts, hag = pts[ok], hag[ok]
     if len(pts) == 0:
         return TreeTops(np.zeros((0, 2)), np.zeros(0), np.zeros(0), np.zeros((0, 3)),
                         np.zeros(0, dtype=int))
@@ -168,13 +169,19 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     ix0, iy0 = int(ixy[:, 0].min()), int(ixy[:, 1].min())
     stride = int(ixy[:, 1].max()) - iy0 + 2
     key = (ixy[:, 0] - ix0) * stride + (ixy[:, 1] - iy0)
-    # Highest point per cell: sort by (key, z), the last of each key wins.
-    order = np.lexsort((pts[:, 2], key))
+    # Highest point per cell (of equal heights the last in input order): sort by key (stable,
+    # so input order within a cell), the highest of each run.
+    order = np.argsort(key, kind="stable")
     skey = key[order]
-    last = np.ones(len(order), dtype=bool)
-    last[:-1] = skey[1:] != skey[:-1]
-    top_idx = order[last]
-    cell_key = skey[last]
+    first = np.ones(len(order), dtype=bool)
+    first[1:] = skey[1:] != skey[:-1]
+    starts = np.flatnonzero(first)
+    z_sorted = pts[order, 2]
+    run = np.cumsum(first) - 1
+    highest = z_sorted == np.maximum.reduceat(z_sorted, starts)[run]
+    at = np.maximum.reduceat(np.where(highest, np.arange(len(order)), -1), starts)
+    top_idx = order[at]
+    cell_key = skey[starts]
     cell_xyz = pts[top_idx]
     cell_h = hag[top_idx]
     n_cells = len(cell_key)
@@ -183,10 +190,22 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     # ---- steepest ascent on the 8-neighbourhood
     parent = np.arange(n_cells)
     best_z = cell_xyz[:, 2].copy()
+    # Cell of a key: a dense table when the grid is not much larger than the points, else a
+    # binary search (the same cells either way).
+    span = int(cell_key[-1]) + stride + 2
+    table = None
+    if span <= max(8 * len(pts), 1 << 22):
+        table = np.full(span + stride + 2, -1, dtype=np.int32 if n_cells < 2 ** 31 else np.int64)
+        table[cell_key] = np.arange(n_cells)
     for dx, dy in _NEIGHBOURS:
         nk = cell_key + dx * stride + dy
-        at = np.clip(np.searchsorted(cell_key, nk), 0, n_cells - 1)
-        exists = cell_key[at] == nk
+        if table is not None:
+            found = table[np.maximum(nk, 0)]
+            exists = (found >= 0) & (nk >= 0)
+            at = np.where(exists, found, 0)
+        else:
+            at = np.clip(np.searchsorted(cell_key, nk), 0, n_cells - 1)
+            exists = cell_key[at] == nk
         higher = exists & (cell_xyz[at, 2] > best_z)
         parent = np.where(higher, at, parent)
         best_z = np.where(higher, cell_xyz[at, 2], best_z)
@@ -198,7 +217,9 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     roots = np.flatnonzero(parent == np.arange(n_cells))
 
     # ---- tops: highest within window_m / 2 and tall enough
-    tree = cKDTree(cell_xyz[:, :2])
+    # Only the highest cell within the window is used, so the tree's shape does not matter:
+    # the faster unbalanced build.
+    tree = cKDTree(cell_xyz[:, :2], balanced_tree=False, compact_nodes=False)
     k = min(n_cells, int(np.ceil(np.pi * (window_m / 2 / cell_m + 1) ** 2)) + 1)
     cand = roots[cell_h[roots] >= min_height_m]    # a top is always a 3x3 local maximum
     tops = np.zeros(0, dtype=int)
