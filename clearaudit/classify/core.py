@@ -181,7 +181,8 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         pit_points = np.flatnonzero(pits.ravel()[flat])
         in_pit = z[pit_points] < lowest.ravel()[flat[pit_points]] - opts.noise_low_depth_m
         use[pit_points[in_pit]] = False
-    del flat
+        del pit_points, in_pit
+    del flat, zmin, pits, lowest
     t = step("noise_candidates", 0.1, t)
 
     # 2. ground
@@ -199,6 +200,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         is_ground = result.is_ground
         info["ground_source"] = "SMRF"
         info["smrf_slope"] = result.slope_threshold
+        del result
         if opts.ground_refine:
             is_ground, threshold = refine_ground(
                 xyz, is_ground, frame.with_cell(opts.ground_cell_m),
@@ -209,6 +211,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                 location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
             info["ground_refine_threshold_m"] = threshold
         model_points = is_ground
+    del use
     # roofs the ground filter kept as ground (low roofs on steep terrain): out of the ground
     # set before the ground model is built, so the model passes under them and HAG is right
     roofs: GroundRoofs | None = None

@@ -401,8 +401,10 @@ def read_cloud(
     dtypes = {name: _field_dtype(metas, name) for name in wanted}
     xyz_out = np.empty((total, 3), dtype=np.float64)
     cls_out = np.empty(total, dtype=np.uint8)
-    sid_out = np.empty(total, dtype=np.int32)
-    sidx_out = np.empty(total, dtype=np.int64)
+    # bookkeeping in the narrowest types that hold it (bytes per point count at scale)
+    sid_out = np.empty(total, dtype=np.uint16 if len(metas) <= 2**16 else np.int32)
+    sidx_out = np.empty(total, dtype=np.uint32 if max((m.point_count for m in metas),
+                                                      default=0) < 2**32 else np.int64)
     fields_out = {name: np.empty(total, dtype=dtypes[name]) for name in wanted}
     n_points = 0
     sources: list[SourceInfo] = []
@@ -445,7 +447,8 @@ def read_cloud(
                 if mask is None:
                     sidx_out[n_points:stop] = np.arange(n_file, n_file + m, dtype=np.int64)
                 else:
-                    np.add(np.flatnonzero(mask), n_file, out=sidx_out[n_points:stop])
+                    np.add(np.flatnonzero(mask), n_file, out=sidx_out[n_points:stop],
+                           casting="unsafe")
                 for name in wanted:
                     _put(chunk[name], fields_out[name][n_points:stop], mask)
                 n_points = stop
@@ -1224,8 +1227,8 @@ def write_classified(
     if n and (not np.issubdtype(codes.dtype, np.integer) or codes.min() < 0 or codes.max() > 255):
         raise ValueError("classification codes must be integers from 0 to 255")
     codes = codes.astype(np.uint8)
-    source_id = np.asarray(cloud.source_id, dtype=np.int64)
-    source_index = np.asarray(cloud.source_index, dtype=np.int64)
+    source_id = np.asarray(cloud.source_id)  # kept in its own (narrow) integer type
+    source_index = np.asarray(cloud.source_index)
     if n and (source_id.min() < 0 or source_id.max() >= len(cloud.sources)):
         raise ValueError("cloud.source_id refers to files not in cloud.sources")
 
