@@ -773,14 +773,24 @@ def corridor_mask(
     cy = all_lo[1] + (np.arange(n_cells[1]) + 0.5) * cell
     gx, gy = np.meshgrid(cx, cy, indexing="ij")
     d_cell = np.full(gx.shape, np.inf)
-    for a, b in zip(starts, ends, strict=True):
+    half = cell * np.sqrt(0.5) + tol
+    # a cell centre outside every segment's box grown by the buffer and ``half`` is farther
+    # than buffer + half from the polyline (dropped whatever its exact distance), so each
+    # segment only measures the cells of its own grown box: the cost follows the corridor's
+    # area, not (cells of the whole box) x (segments)
+    pad = half + tol
+    for a, b, l0, h0 in zip(starts, ends, lo, hi, strict=True):
+        i0, j0 = np.maximum(np.floor((l0 - pad - all_lo) / cell).astype(np.int64), 0)
+        i1, j1 = np.minimum(np.ceil((h0 + pad - all_lo) / cell).astype(np.int64) + 1, n_cells)
+        if i1 <= i0 or j1 <= j0:
+            continue
+        sx, sy = gx[i0:i1, j0:j1], gy[i0:i1, j0:j1]
         ab = b - a
         denom = float(ab @ ab)
-        t = 0.0 if denom == 0.0 else np.clip(((gx - a[0]) * ab[0] + (gy - a[1]) * ab[1]) / denom,
+        t = 0.0 if denom == 0.0 else np.clip(((sx - a[0]) * ab[0] + (sy - a[1]) * ab[1]) / denom,
                                              0.0, 1.0)
-        np.minimum(d_cell, np.hypot(gx - (a[0] + t * ab[0]), gy - (a[1] + t * ab[1])),
-                   out=d_cell)
-    half = cell * np.sqrt(0.5) + tol
+        sub = d_cell[i0:i1, j0:j1]
+        np.minimum(sub, np.hypot(sx - (a[0] + t * ab[0]), sy - (a[1] + t * ab[1])), out=sub)
     # 0: all dropped, 1: all kept, 2: test each point
     cell_state = np.full(gx.shape, 2, dtype=np.uint8)
     cell_state[d_cell + half <= buffer - tol] = 1
