@@ -667,26 +667,30 @@ class TileResults:
     """Per-point results of all tiles, looked up by (file, point range) for the writer.
 
     Each tile's owned keys are sorted within every cell but not across its cells, so the
-    keys, classes and heights are re-sorted once per tile (memory-mapped on disk).
+    keys, classes and heights are re-sorted once per tile. Lookups memory-map a tile's files
+    only while they read from it, and only tiles whose key range meets the asked range are
+    opened: pages read stay counted in the resident memory only while mapped, so the writer's
+    memory does not grow with the survey.
     """
 
     def __init__(self, work: str | Path, tiles: list[TileSpec]):
         self.work = Path(work)
-        self.parts = []
+        self.parts: list[tuple[tuple[Path, Path, Path], int, int]] = []
         for t in tiles:
             # the classes refined with the line model when that stage ran
             cls_name = "rcls.npy" if _tile_file(self.work, t.id, "rcls.npy").exists() \
                 else "cls.npy"
-            key = np.load(_tile_file(self.work, t.id, "key.npy"))
+            paths = tuple(_tile_file(self.work, t.id, w) for w in ("key.npy", cls_name, "hag.npy"))
+            key = np.load(paths[0])
             if len(key) and np.any(np.diff(key) < 0):
                 order = np.argsort(key, kind="stable")
-                np.save(_tile_file(self.work, t.id, "key.npy"), key[order])
-                for what in (cls_name, "hag.npy"):
-                    arr = np.load(_tile_file(self.work, t.id, what))
-                    np.save(_tile_file(self.work, t.id, what), arr[order])
+                key = key[order]
+                np.save(paths[0], key)
+                for path in paths[1:]:
+                    np.save(path, np.load(path)[order])
+            if len(key):
+                self.parts.append((paths, int(key[0]), int(key[-1])))
             del key
-            self.parts.append(tuple(np.load(_tile_file(self.work, t.id, w), mmap_mode="r")
-                                    for w in ("key.npy", cls_name, "hag.npy")))
 
     def values(self, file_id: int, start: int, stop: int):
         """``(has_new, codes, {"height_above_ground": hag})`` for points start:stop."""
@@ -696,13 +700,17 @@ class TileResults:
         hag = np.full(n, np.nan, dtype=np.float32)
         lo = (np.int64(file_id) << KEY_SHIFT) | np.int64(start)
         hi = (np.int64(file_id) << KEY_SHIFT) | np.int64(stop)
-        for key, cls, h in self.parts:
-            a, b = np.searchsorted(key, [lo, hi])
+        for paths, kmin, kmax in self.parts:
+            if kmax < lo or kmin >= hi:
+                continue
+            key = np.load(paths[0], mmap_mode="r")
+            a, b = (int(v) for v in np.searchsorted(key, [lo, hi]))
             if b > a:
-                at = np.asarray(key[a:b]) - lo
+                at = np.array(key[a:b]) - lo
                 has_new[at] = True
-                codes[at] = cls[a:b]
-                hag[at] = h[a:b]
+                codes[at] = np.load(paths[1], mmap_mode="r")[a:b]
+                hag[at] = np.load(paths[2], mmap_mode="r")[a:b]
+            del key  # unmapped here: its pages leave the resident set
         return has_new, codes, {"height_above_ground": hag}
 
 
