@@ -2,16 +2,25 @@
 
 Run on demand (minutes to an hour; generated corridors are cached under --cache)::
 
-    .venv/bin/python benchmarks/bench_scale.py --points 10e6 30e6 --km 2 5 10 --dask
+    .venv/bin/python benchmarks/bench_scale.py --points 10e6 30e6 --km 2 10 50 --dask
+    .venv/bin/python benchmarks/bench_scale.py --stream-points 100e6   # tiles, streamed
     .venv/bin/python benchmarks/bench_scale.py --tiny          # seconds; used by the test
+
+``--points`` cases are generated in memory as one LAZ (:func:`clearaudit.synth.generate_corridor`).
+``--stream-points`` and ``--km`` cases are generated span batch by span batch as a folder of
+LAZ tiles (:func:`clearaudit.synth.write_long_corridor`, memory independent of the line length;
+one generator for every line length, so the time-per-km table compares like with like); the
+audit reads the folder.
 
 For every case it prints: the time laspy+lazrs need merely to decompress the LAZ, the
 end-to-end audit time and their ratio (target <= 4), classification alone vs decompression
 (target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
 flat for tiled runs), the time per km of line, and with --dask the speed-up of a local
 2-worker Dask cluster over the in-process tiled run with a check that the outputs are
-identical. Every audit runs in its own child process so its peak memory is its own.
-Generation time is not measured.
+identical. Every audit runs in its own child process so its peak memory is its own. On a
+shared machine the wall times vary with the load; the CPU times (audit process and its
+workers; decompression in the parent) are printed beside them.
+Generation is not part of any measurement; its time and peak memory are printed.
 """
 from __future__ import annotations
 
@@ -43,18 +52,61 @@ def generate(cache: Path, name: str, n_spans: int, density: float) -> dict[str, 
     return write_corridor(corridor, cache, name)
 
 
-def decompress_seconds(path: Path) -> tuple[float, int]:
-    """Wall time for laspy + lazrs to decode every point (chunked, nothing kept). [s]"""
+def generate_tiles(cache: Path, name: str, n_spans: int, density: float,
+                   tile_points: int = 2_000_000) -> dict[str, Path]:
+    """A cached tiled corridor from the bounded-memory generator, made in a child process.
+
+    Prints the generation time and the generator's peak memory (not part of any measurement).
+    """
+    paths = {"cloud": cache / f"{name}.tiles", "line": cache / f"{name}.line.toml"}
+    done = cache / f"{name}.done"
+    if done.exists() and paths["line"].exists():
+        return paths
+    cmd = [sys.executable, __file__, "_generate", str(cache), name, str(n_spans), str(density),
+           str(tile_points)]
+    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    if proc.returncode != 0:
+        raise RuntimeError(f"generation failed: {proc.stderr[-2000:]}")
+    info = json.loads(proc.stdout.strip().splitlines()[-1])
+    print(f"generated {name}: {info['points']:,} points, {info['tiles']} tiles, "
+          f"{info['line_km']:.2f} km, {info['seconds']:.0f} s, generator peak RSS "
+          f"{info['peak_rss_mb']:.0f} MB (not measured in the table)", flush=True)
+    done.write_text(json.dumps(info))
+    return paths
+
+
+def _generate_child(argv: list[str]) -> None:
+    cache, name, n_spans, density, tile_points = argv
+    from clearaudit.synth import write_long_corridor
+    from clearaudit.tiling import peak_rss_mb
+
+    t0 = time.perf_counter()
+    lc = write_long_corridor(cache, name, n_spans=int(n_spans), seed=7,
+                             density_per_m2=float(density), tile_points=int(tile_points))
+    print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb(),
+                      "points": lc.n_points, "tiles": len(lc.tiles),
+                      "line_km": lc.line_length_m / 1000.0}))
+
+
+def cloud_files(path: Path) -> list[Path]:
+    """The LAZ file itself, or the tiles of a folder in name order."""
+    return sorted(path.glob("*.laz")) if path.is_dir() else [path]
+
+
+def decompress_seconds(path: Path) -> tuple[float, int, float]:
+    """Wall and CPU time for laspy + lazrs to decode every point of a file or folder. [s]"""
     import laspy
     import numpy as np
 
     t0 = time.perf_counter()
+    c0 = time.process_time()
     n = 0
-    with laspy.open(str(path)) as reader:
-        for chunk in reader.chunk_iterator(2_000_000):
-            np.asarray(chunk.X)  # touch the coordinates
-            n += len(chunk)
-    return time.perf_counter() - t0, n
+    for f in cloud_files(path):
+        with laspy.open(str(f)) as reader:
+            for chunk in reader.chunk_iterator(2_000_000):
+                np.asarray(chunk.X)  # touch the coordinates
+                n += len(chunk)
+    return time.perf_counter() - t0, n, time.process_time() - c0
 
 
 def run_child(cloud: Path, line: Path, out: Path, extra: list[str]) -> dict:
@@ -68,6 +120,7 @@ def run_child(cloud: Path, line: Path, out: Path, extra: list[str]) -> dict:
     child = json.loads(proc.stdout.strip().splitlines()[-1])
     run = json.loads((out / "run.json").read_text())
     return {"wall_s": wall, "audit_s": child["seconds"], "peak_rss_mb": child["peak_rss_mb"],
+            "cpu_s": child.get("cpu_s", float("nan")),
             "stages": {s["name"]: s for s in run["stages"]}, "run": run}
 
 
@@ -85,7 +138,13 @@ def _child(argv: list[str]) -> None:
     from clearaudit.tiling import peak_rss_mb
 
     peak = peak_rss_mb()  # VmHWM: this child's own peak, not its parent's
-    print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak}))
+    # CPU time of the audit (this process and any worker processes it waited for): on a
+    # shared machine it tracks the work done better than the wall time does.
+    import resource
+
+    cpu = sum(getattr(resource.getrusage(who), f) for who in
+              (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN) for f in ("ru_utime", "ru_stime"))
+    print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak, "cpu_s": cpu}))
 
 
 def same_outputs(a: Path, b: Path) -> bool:
@@ -115,11 +174,16 @@ def machine() -> str:
 
 
 def case(cache: Path, work: Path, label: str, n_spans: int, density: float, modes: list[str],
-         tile_points: int | None) -> dict:
-    paths = generate(cache, label, n_spans, density)
-    dec_s, n = decompress_seconds(paths["cloud"])
+         tile_points: int | None, tiles: int | None = None) -> dict:
+    """Generate (cached) and audit one case; ``tiles``: generator tile size, or one LAZ."""
+    if tiles:
+        paths = generate_tiles(cache, f"{label}-tiles", n_spans, density, tiles)
+    else:
+        paths = generate(cache, label, n_spans, density)
+    dec_s, n, dec_cpu = decompress_seconds(paths["cloud"])
     result = {"case": label, "points": n, "spans": n_spans, "density": density,
-              "line_km": None, "decompress_s": dec_s}
+              "line_km": None, "decompress_s": dec_s, "decompress_cpu_s": dec_cpu,
+              "files": len(cloud_files(paths["cloud"]))}
     for mode in modes:
         extra = ["tiled=0"] if mode == "memory" else ["tiled=1"]
         if tile_points and mode != "memory":
@@ -127,6 +191,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
         if mode == "dask":
             extra.append("workers=2")
         r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
+        print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, CPU "
+              f"{r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB", flush=True)
         spans = list(csv.DictReader(open(work / f"{label}-{mode}" / "spans.csv")))
         km = sum(float(s["span_length_m"] or 0) for s in spans
                  if s["wire_id"] == spans[0]["wire_id"]) / 1000.0 if spans else 0.0
@@ -137,6 +203,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
                         "ratio_classify": r["stages"]["classify"]["seconds"] / dec_s,
                         "bytes_per_point": r["peak_rss_mb"] * 2**20 / n,
                         "s_per_km": r["audit_s"] / km if km else None,
+                        "cpu_s": r["cpu_s"], "cpu_s_per_km": r["cpu_s"] / km if km else None,
+                        "ratio_audit_cpu": r["cpu_s"] / dec_cpu,
                         "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb")}
     if "tiled" in modes and "dask" in modes:
         result["dask_speedup"] = result["tiled"]["audit_s"] / result["dask"]["audit_s"]
@@ -146,19 +214,23 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
 
 def print_results(results: list[dict]) -> None:
     print(f"machine: {machine()}")
-    print("| case | points | line km | mode | decompress s | audit s | audit/decompress "
+    print("| case | points | files | line km | mode | decompress s | audit s | audit/decompress "
           "(target <= 4) | classify/decompress (target <= 1.5) | peak RSS MB | "
-          "B/point (target <= 150 in memory) | s per km |")
-    print("|---|---|---|---|---|---|---|---|---|---|---|")
+          "B/point (target <= 150 in memory) | s per km | audit CPU s | CPU s per km | "
+          "audit CPU / decompress CPU |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in results:
         for mode in ("memory", "tiled", "dask"):
             m = r.get(mode)
             if not m:
                 continue
-            print(f"| {r['case']} | {r['points']:,} | {r['line_km']:.2f} | {mode} | "
+            print(f"| {r['case']} | {r['points']:,} | {r.get('files', 1)} | {r['line_km']:.2f} | "
+                  f"{mode} | "
                   f"{r['decompress_s']:.2f} | {m['audit_s']:.1f} | {m['ratio_audit']:.2f} | "
                   f"{m['ratio_classify']:.2f} | {m['peak_rss_mb']:.0f} | "
-                  f"{m['bytes_per_point']:.0f} | {m['s_per_km'] or float('nan'):.1f} |")
+                  f"{m['bytes_per_point']:.0f} | {m['s_per_km'] or float('nan'):.1f} | "
+                  f"{m['cpu_s']:.1f} | {m['cpu_s_per_km'] or float('nan'):.1f} | "
+                  f"{m['ratio_audit_cpu']:.2f} |")
     for r in results:
         if "dask_speedup" in r:
             print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
@@ -177,11 +249,18 @@ def main(argv: list[str] | None = None) -> int:
     if argv and argv[0] == "_child":
         _child(argv[1:])
         return 0
+    if argv and argv[0] == "_generate":
+        _generate_child(argv[1:])
+        return 0
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--points", type=float, nargs="*", default=[],
                    help="corridor sizes [points] (density 12 /m2), in memory and tiled")
     p.add_argument("--km", type=float, nargs="*", default=[],
-                   help="line lengths [km] (density 4 /m2) for the time-per-km table (tiled)")
+                   help="line lengths [km] (density 4 /m2) for the time-per-km table (tiled; "
+                        "generated as tiles by the bounded-memory generator)")
+    p.add_argument("--stream-points", type=float, nargs="*", default=[],
+                   help="corridor sizes [points] (density 12 /m2) generated as tiles by the "
+                        "bounded-memory generator and audited tiled (e.g. 100e6)")
     p.add_argument("--dask", action="store_true", help="also run the first --points case on "
                                                        "a local 2-worker Dask cluster")
     p.add_argument("--tiled-only-above", type=float, default=20e6,
@@ -197,6 +276,8 @@ def main(argv: list[str] | None = None) -> int:
     results = []
     if args.tiny:
         results.append(case(cache, work, "tiny", 2, 1.5, ["memory", "tiled", "dask"], 100_000))
+        results.append(case(cache, work, "tiny-stream", 3, 1.0, ["tiled"], 100_000,
+                            tiles=50_000))
     for pts in args.points:
         density = 12.0
         spans = max(2, round(pts / (POINTS_PER_SPAN_PER_DENSITY * density)))
@@ -204,9 +285,17 @@ def main(argv: list[str] | None = None) -> int:
         if args.dask and pts == args.points[0]:
             modes.append("dask")
         results.append(case(cache, work, f"p{pts / 1e6:g}M", spans, density, modes, None))
+    for pts in args.stream_points:
+        from clearaudit.synth import points_per_span
+
+        density = 12.0
+        spans = max(2, round(pts / points_per_span(density)))
+        results.append(case(cache, work, f"s{pts / 1e6:g}M", spans, density, ["tiled"], None,
+                            tiles=2_000_000))
     for km in args.km:
         spans = max(2, round(km * 1000.0 / MEAN_SPAN_M))
-        results.append(case(cache, work, f"k{km:g}km", spans, 4.0, ["tiled"], None))
+        results.append(case(cache, work, f"k{km:g}km", spans, 4.0, ["tiled"], None,
+                            tiles=2_000_000))
     print_results(results)
     if args.json:
         Path(args.json).write_text(json.dumps(results, indent=1, default=str))

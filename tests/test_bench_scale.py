@@ -22,3 +22,7 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert "classify/decompress = " in out and "peak RSS per point = " in out
     # the Dask run must reproduce the in-process tiled run exactly
     assert "identical outputs: True" in out
+    # the streamed case: generated as tiles (bounded-memory generator), audited tiled
+    assert "generated tiny-stream-tiles: " in out and " 3 tiles, " in out
+    assert "ratio tiny-stream tiled: audit/decompress = " in out
+    assert "| tiny-stream | " in out and " | 3 | " in out
