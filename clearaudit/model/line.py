@@ -1196,8 +1196,16 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
     for sp in spans:
         for w, wid in zip(sp.wires, _positional_ids(sp.wires), strict=True):
             w.wire_id = wid
+    # reference: a span with the line's usual number of wires (the most frequent count) and
+    # the most wire points among those — not simply the span with the most wires, where one
+    # spurious piece would shift every positional id of the line
     counts = [sum(w.role != "other" for w in sp.wires) for sp in spans]
-    ref = int(np.argmax(counts))
+    seen_counts = [c for c in counts if c > 0]
+    freq = {c: seen_counts.count(c) for c in set(seen_counts)}
+    usual = max(freq, key=lambda c: (freq[c], c))
+    ref = max((k for k, c in enumerate(counts) if c == usual),
+              key=lambda k: sum(len(w.point_indices) for w in spans[k].wires
+                                if w.role != "other"))
     done = {ref}
 
     def carry(src: Span, dst: Span, src_end: str, dst_end: str):
@@ -1688,18 +1696,35 @@ def _join(a: str, b: str) -> str:
 
 
 def _add_missing_wires(spans: list[Span]) -> None:
-    """A wire seen in other spans of the line but not in this one is listed as not fitted."""
-    seen: dict[str, str] = {}
+    """A wire of the tension section not seen in one of its spans is listed there as not fitted.
+
+    A wire id counts as a wire of a section when it is found in at least half of the
+    section's spans; an id found in fewer spans (a stray piece, a short length of another
+    line) is kept where it was found, with a note, and is not added to the other spans.
+    """
+    groups: dict[str, list[Span]] = {}
     for sp in spans:
-        for w in sp.wires:
-            if w.wire_id and not w.wire_id.endswith("?"):
-                seen.setdefault(w.wire_id, w.role)
-    for sp in spans:
-        have = {w.wire_id for w in sp.wires}
-        for wid, role in seen.items():
-            if wid not in have:
+        groups.setdefault(sp.section_id, []).append(sp)
+    for group in groups.values():
+        found: dict[str, list[str]] = {}
+        for sp in group:
+            for w in sp.wires:
+                if w.wire_id and not w.wire_id.endswith("?"):
+                    found.setdefault(w.wire_id, []).append(w.role)
+        section_ids = {wid: roles[0] for wid, roles in found.items()
+                       if len(roles) >= 0.5 * len(group)}
+        for sp in group:
+            have = {w.wire_id for w in sp.wires}
+            for w in sp.wires:
+                if w.wire_id in found and w.wire_id not in section_ids:
+                    w.note = _join(w.note, f"found in {len(found[w.wire_id])} of {len(group)} "
+                                           "spans of the tension section; check it is a wire "
+                                           "of this line")
+            for wid, role in section_ids.items():
+                if wid in have:
+                    continue
                 sp.wires.append(WireFit(wire_id=wid, role=role, bundle_count=1,
                                         status=STATUS_NOT_FITTED,
                                         note="no points of this wire found in the span",
                                         point_indices=np.zeros(0, dtype=np.int64)))
-        sp.wires.sort(key=lambda w: (0 if w.wire_id.startswith("C") else 1, w.wire_id))
+            sp.wires.sort(key=lambda w: (0 if w.wire_id.startswith("C") else 1, w.wire_id))
