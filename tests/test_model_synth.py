@@ -150,3 +150,36 @@ def test_shield_wires_at_deadends_on_the_strain_string_axis():
                 errors.append(r[f"d_{end}"])
     assert len(errors) == 8
     assert max(errors) < 0.15, f"largest shield dead-end attachment error {max(errors):.3f} m"
+
+
+def test_stray_wire_piece_does_not_rename_the_line():
+    # A 40 m piece of wire-class points beside one phase in one span (a stray return, a short
+    # length of another wire): the line's phases keep their ids, the piece is noted where it
+    # is, and no "not fitted" row for it appears in the other spans (common practice, no
+    # source: a wire is a wire of the section when it runs through most of its spans).
+    corridor = synth.generate_corridor(seed=4, terrain="flat", n_spans=4, **SMALL)
+    cloud = corridor.cloud
+    truth_ids = sorted({w["phase_id"] for s in corridor.truth["spans"] for w in s["wires"]})
+    t = corridor.truth
+    span = t["spans"][1]
+    wire = next(w for w in span["wires"] if w["role"] == "phase")
+    a, b = np.array(wire["attachment_a_local_m"]), np.array(wire["attachment_b_local_m"])
+    d = (b - a) / np.linalg.norm(b - a)
+    side = np.array([-d[1], d[0], 0.0]) / np.hypot(d[0], d[1])
+    s = np.linspace(0.30, 0.42, 60)[:, None] * np.linalg.norm(b - a)
+    piece = a + s * d + 6.0 * side + np.array([0.0, 0.0, -2.0])
+    xyz = np.vstack([cloud.xyz, piece])
+    cls = np.concatenate([cloud.classification, np.full(len(piece), 14, np.uint8)])
+    stray = type(cloud)(xyz=xyz, origin=cloud.origin, crs=cloud.crs, classification=cls)
+    model = build_line_model(stray, unit_weight_n_per_m={"phase": 15.97, "shield": 4.0})
+    base = build_line_model(cloud, unit_weight_n_per_m={"phase": 15.97, "shield": 4.0})
+    ids = lambda m: sorted({w.wire_id for sp in m.spans for w in sp.wires  # noqa: E731
+                            if w.status == "fitted" and "check it is" not in w.note})
+    assert ids(model) == ids(base)
+    assert set(ids(base)) >= set(i for i in truth_ids if i.startswith("C"))
+    # the piece itself is listed in its own span (with a "?" id or a note), nowhere else
+    not_fitted = [(sp.id, w.wire_id) for sp in model.spans for w in sp.wires
+                  if w.status != "fitted" and not w.wire_id.endswith("?")
+                  and "check it is" not in w.note]
+    assert not_fitted == [(sp.id, w.wire_id) for sp in base.spans for w in sp.wires
+                          if w.status != "fitted"]
