@@ -1228,13 +1228,26 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
                 cost[i, j] = np.hypot(np.hypot(*across), (q - p)[2])
         ri, ci = linear_sum_assignment(cost)
         taken = set()
+        matched_a, matched_b = set(), set()
         for i, j in zip(ri, ci, strict=True):
             if cost[i, j] <= opts.link_tolerance_m:
                 b[j].wire_id = a[i].wire_id
                 taken.add(a[i].wire_id)
+                matched_a.add(i)
+                matched_b.add(j)
+        # a role with exactly one unmatched wire on each side (a single shield wire whose
+        # attachment moves at a dead-end or an angle structure) keeps its id
+        for role in {w.role for w in b}:
+            ua = [i for i, w in enumerate(a) if w.role == role and i not in matched_a]
+            ub = [j for j, w in enumerate(b) if w.role == role and j not in matched_b]
+            if len(ua) == 1 and len(ub) == 1 and a[ua[0]].wire_id not in taken \
+                    and not a[ua[0]].wire_id.endswith("?"):
+                b[ub[0]].wire_id = a[ua[0]].wire_id
+                taken.add(a[ua[0]].wire_id)
+                matched_b.add(ub[0])
         # unmatched wires keep their positional id unless it is taken
         for j, w in enumerate(b):
-            if j in set(ci[cost[ri, ci] <= opts.link_tolerance_m]):
+            if j in matched_b:
                 continue
             if w.wire_id in taken:
                 w.wire_id = w.wire_id + "?"
