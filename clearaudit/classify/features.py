@@ -5,6 +5,7 @@ run in C on all cores; covariance moments are reduced in vectorised chunks and t
 """
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 import numpy as np
@@ -55,7 +56,8 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     k
         Largest number of neighbours (the point itself included).
     workers
-        Threads of the tree query (-1 = all cores).
+        Threads of the tree query (-1 = all cores, or the ``CLEARAUDIT_THREADS`` environment
+        variable when set: a local Dask cluster sets 1 in each worker process).
     sparse_radius
         If given, points with fewer than 3 neighbours within ``radius`` are computed again
         with this larger radius (sparse wires, e.g. earth wires). [m]
@@ -73,6 +75,8 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     """
     if radius <= 0 or k < 2:
         raise ValueError("feature radius must be positive and k at least 2")
+    if workers == -1 and os.environ.get("CLEARAUDIT_THREADS", "").strip().isdigit():
+        workers = max(1, int(os.environ["CLEARAUDIT_THREADS"]))
     xyz = np.asarray(xyz, dtype=np.float64)
     n = len(xyz)
     if n == 0:
