@@ -158,6 +158,13 @@ def test_audit_of_the_tiles_finds_every_span(long_line, tmp_path):
         rows = list(csv.DictReader(fh))
     found = {r["span_id"] for r in rows}
     assert found == {s["id"] for s in truth["spans"]}
+    # every span lists exactly the line's wires under the same ids, across the dead-ends of
+    # the 3-span tension sections (ids are carried from span to span by the model)
+    ids: dict[str, set[str]] = {}
+    for r in rows:
+        ids.setdefault(r["span_id"], set()).add(r["wire_id"])
+    for s in truth["spans"]:
+        assert ids[s["id"]] == {w["wire_id"] for w in s["wires"]}, s["id"]
     tension = {(s["id"], w["wire_id"]): w["horizontal_tension_n"]
                for s in truth["spans"] for w in s["wires"]}
     for r in rows:
