@@ -138,7 +138,8 @@ def build_model_json(cloud: Cloud, model: Any, audit: Any, config: Any, rules: A
         prof = np.asarray(prof, dtype=float)
         if len(prof):
             z = prof[:, 1] / cloud.vertical_unit_m + cloud.origin[2]
-            profiles[span_id] = [[round(s, 3), round(zz, 4)]
+            # stations beyond the survey (a span running off the data) have no ground: null
+            profiles[span_id] = [[round(s, 3), round(zz, 4) if math.isfinite(zz) else None]
                                  for s, zz in zip(prof[:, 0].tolist(), z.tolist(), strict=True)]
     requirements = {}
     if hasattr(rules, "summary_requirements"):

@@ -105,3 +105,40 @@ def test_sample_results_against_truth(sample_audit):
         if v["kind"] == "vegetation":
             xy = np.array([float(v["x"]), float(v["y"])])
             assert min(np.hypot(*(xy - p)) for p in planted) < 3.0, v
+
+
+def test_survey_covering_part_of_the_structure_list(tmp_path):
+    # The flight stopped part-way: the structures file lists the whole line, the cloud ends
+    # in the middle of a span. The spans off the data are reported, the ground profile has
+    # no ground beyond the data (null in model.json), and every output is written
+    # (common practice, no source: a partial survey is a normal delivery).
+    import shutil
+
+    src = laspy.read(SAMPLE / f"{NAME}.laz")
+    rows = list(csv.DictReader(open(SAMPLE / f"{NAME}.structures.csv")))
+    first = np.array([float(rows[0]["x"]), float(rows[0]["y"])])
+    last = np.array([float(rows[-1]["x"]), float(rows[-1]["y"])])
+    axis = (last - first) / np.linalg.norm(last - first)
+    along = (np.column_stack([src.x, src.y]) - first) @ axis
+    keep = along < 0.55 * np.linalg.norm(last - first)
+    part = laspy.LasData(src.header)
+    part.points = src.points[keep]
+    cloud = tmp_path / "part.laz"
+    part.write(cloud)
+    for name in (f"{NAME}.line.toml", f"{NAME}.structures.csv"):
+        shutil.copy(SAMPLE / name, tmp_path / name)
+    out = tmp_path / "out"
+    r = subprocess.run([sys.executable, "-m", "clearaudit.cli", "audit", str(cloud),
+                        "--line", str(tmp_path / f"{NAME}.line.toml"), "--out", str(out)],
+                       capture_output=True, text=True, timeout=900)
+    assert r.returncode == 0, r.stderr[-3000:]
+    model = json.loads((out / "model.json").read_text())
+    assert any(z is None for prof in model["ground_profile"].values() for _, z in prof)
+    assert (out / "report.html").exists() and (out / "classified.laz").exists()
+    spans = list(csv.DictReader(open(out / "spans.csv")))
+    assert any(s["status"] == "fitted" for s in spans)
+    checker = _checker()
+    if checker is not None:
+        c = subprocess.run([sys.executable, str(checker), str(out)], capture_output=True,
+                           text=True, timeout=120)
+        assert c.returncode == 0, c.stdout + c.stderr
