@@ -1226,7 +1226,17 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
                 dxy = (q - p)[:2]
                 across = dxy - d_line * (dxy @ d_line)
                 cost[i, j] = np.hypot(np.hypot(*across), (q - p)[2])
+        # of two candidates about as close (a wire and a stray piece beside it), the one
+        # with more points carries the id: up to 0.5 m added for a sparse candidate
+        n_a = np.array([len(w.point_indices) for w in a], dtype=float)
+        n_b = np.array([len(w.point_indices) for w in b], dtype=float)
+        share_a = n_a / max(float(n_a.max()), 1.0)
+        share_b = n_b / max(float(n_b.max()), 1.0)
+        penalty = 0.5 * ((1.0 - share_a)[:, None] + (1.0 - share_b)[None, :])
+        raw = cost
+        cost = np.where(cost < 1e6, cost + penalty, cost)
         ri, ci = linear_sum_assignment(cost)
+        cost = raw  # the link tolerance applies to the distance itself
         taken = set()
         matched_a, matched_b = set(), set()
         for i, j in zip(ri, ci, strict=True):
