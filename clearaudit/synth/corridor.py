@@ -1078,7 +1078,40 @@ def _underbuild(n_spans, on_span, dirs, ground, curves, rng, noise_m) -> dict:
 
 def _fields(rng, xyz, cls, shadow, region, seed) -> dict[str, np.ndarray]:
     """Intensity, return numbers and GPS time (one flight line along the corridor)."""
-    n = len(xyz)
+    _, chain, off, _ = region.locate(xyz[:, :2])
+    return scan_fields(rng, cls, shadow, chain, off, region.half_width_m, seed)
+
+
+def scan_fields(rng: np.random.Generator, cls: np.ndarray, shadow: np.ndarray,
+                chain: np.ndarray, offset: np.ndarray, half_width_m: float, seed: int,
+                first_scan: float | None = None) -> dict[str, np.ndarray]:
+    """Intensity, return numbers and GPS time of generated points.
+
+    Parameters
+    ----------
+    rng
+        Random generator (draws: intensity, then return counts, then return numbers).
+    cls
+        ASPRS class per point.
+    shadow
+        Points that are the last return under a crown.
+    chain, offset
+        Position along the flight line and across it (left positive). [m]
+    half_width_m
+        Half-width swept by the scanner. [m]
+    seed
+        Scene seed (sets the start time).
+    first_scan
+        Scan line that starts the clock; ``None``: the first scan line of these points (one
+        corridor), 0: the start of the line (tiles of one long line share one clock).
+
+    Notes
+    -----
+    One flight line: 60 m/s, 150 scan lines per second (0.4 m apart), each sweeping the
+    corridor from one side to the other, alternating (zig-zag scanner). Sorting by this time
+    puts points in scan order, as in a real delivery.
+    """
+    n = len(cls)
     mean = np.full(n, 900.0)
     spread = np.full(n, 250.0)
     for codes, m, s in (((C.GROUND,), 1100.0, 250.0), ((C.ROAD,), 450.0, 80.0),
@@ -1096,17 +1129,13 @@ def _fields(rng, xyz, cls, shadow, region, seed) -> dict[str, np.ndarray]:
     ret[veg] = (1 + rng.integers(0, 8, n) % np.maximum(k - 1, 1)).astype(np.uint8)[veg]
     n_ret[shadow] = k[shadow]
     ret[shadow] = k[shadow]
-    wire = np.isin(cls, C.WIRE_CLASSES)
-    n_ret[wire] = 2
-    # One flight line along the corridor: 60 m/s, 150 scan lines per second (0.4 m apart),
-    # each sweeping the corridor from one side to the other, alternating (zig-zag scanner).
-    # Sorting by this time puts points in scan order, as in a real delivery.
-    _, chain, off, _ = region.locate(xyz[:, :2])
-    line = np.floor(chain / 0.4)
-    frac = np.clip((off + region.half_width_m) / (2.0 * region.half_width_m), 0.0, 1.0)
-    frac = np.where(line % 2 == 0, frac, 1.0 - frac)
+    n_ret[np.isin(cls, C.WIRE_CLASSES)] = 2
+    scan = np.floor(chain / 0.4)
+    frac = np.clip((offset + half_width_m) / (2.0 * half_width_m), 0.0, 1.0)
+    frac = np.where(scan % 2 == 0, frac, 1.0 - frac)
     t0 = 4.0e8 + (int(seed) % 10000) * 1000.0
-    gps = t0 + (line - line.min() + 0.98 * frac) / 150.0
+    start = scan.min() if first_scan is None else first_scan
+    gps = t0 + (scan - start + 0.98 * frac) / 150.0
     return {"intensity": intensity, "return_number": ret, "number_of_returns": n_ret,
             "gps_time": gps}
 

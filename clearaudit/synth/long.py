@@ -45,6 +45,7 @@ from .corridor import (
     _Structure,
     _structure_members,
     _tensions,
+    scan_fields,
 )
 from .output import toml_dumps
 from .structures import STRUCTURE_KINDS, insulator_length_m, make_layout, segment_points
@@ -61,12 +62,6 @@ POINTS_PER_SPAN_PER_DENSITY = 42_900.0
 _FIELD_SD = float(np.sqrt(2.5))
 #: Largest total rise or fall of the terrain's tilted plane along the whole line. [m]
 _MAX_PLANE_RISE_M = 60.0
-_INTENSITY = (((C.GROUND,), 1100.0, 250.0), ((C.BUILDING,), 1400.0, 200.0),
-              (C.VEGETATION_CLASSES, 650.0, 250.0), (C.WIRE_CLASSES, 350.0, 100.0),
-              ((C.TRANSMISSION_TOWER,), 1000.0, 250.0), ((C.WIRE_CONNECTOR,), 1200.0, 200.0),
-              (C.NOISE_CLASSES, 300.0, 250.0))
-
-
 def points_per_span(density_per_m2: float) -> float:
     """Expected points per span of :func:`write_long_corridor` (default scene). [-]
 
@@ -443,34 +438,11 @@ def _batch(line: _Line, rng: np.random.Generator, spans: range, density: float,
 def _point_fields(rng: np.random.Generator, xyz: np.ndarray, cls: np.ndarray,
                   shadow: np.ndarray, line: _Line, segments: range, seed: int,
                   ) -> dict[str, np.ndarray]:
-    """Intensity, returns and GPS time (one flight line along the whole line's chainage)."""
-    n = len(xyz)
-    mean = np.full(n, 900.0)
-    spread = np.full(n, 250.0)
-    for codes, m, s in _INTENSITY:
-        sel = np.isin(cls, codes)
-        mean[sel], spread[sel] = m, s
-    intensity = np.clip(rng.normal(mean, spread), 20, 65535).astype(np.uint16)
-    n_ret = np.ones(n, dtype=np.uint8)
-    ret = np.ones(n, dtype=np.uint8)
-    veg = np.isin(cls, C.VEGETATION_CLASSES) & (cls != C.LOW_VEGETATION)
-    k = rng.integers(2, 5, n).astype(np.uint8)
-    n_ret[veg] = k[veg]
-    ret[veg] = (1 + rng.integers(0, 8, n) % np.maximum(k - 1, 1)).astype(np.uint8)[veg]
-    n_ret[shadow] = k[shadow]
-    ret[shadow] = k[shadow]
-    n_ret[np.isin(cls, C.WIRE_CLASSES)] = 2
-    # 60 m/s, 150 zig-zag scan lines per second (0.4 m apart) along the whole line's chainage,
-    # as in the in-memory generator, so GPS time runs on continuously from tile to tile.
-    hw = line.region.half_width_m
+    """Intensity, returns and GPS time (one flight line along the whole line's chainage, so
+    GPS time runs on continuously from tile to tile)."""
     _, chain, off, _ = line.region.locate(xyz[:, :2], segments)
-    scan = np.floor(chain / 0.4)
-    frac = np.clip((off + hw) / (2.0 * hw), 0.0, 1.0)
-    frac = np.where(scan % 2 == 0, frac, 1.0 - frac)
-    t0 = 4.0e8 + (int(seed) % 10000) * 1000.0
-    gps = t0 + (scan + 0.98 * frac) / 150.0
-    return {"intensity": intensity, "return_number": ret, "number_of_returns": n_ret,
-            "gps_time": gps}
+    return scan_fields(rng, cls, shadow, chain, off, line.region.half_width_m, seed,
+                       first_scan=0.0)
 
 
 def write_long_corridor(
