@@ -1642,29 +1642,6 @@ def _span_rows(model, states: list[WireState], survey_t: dict, ground_min: dict,
     return rows
 
 
-def _ground_profiles(model, ground_model, ground_group: _Group | None) -> dict[str, np.ndarray]:
-    profiles = {}
-    for span in model.spans:
-        a, b = np.asarray(span.a_xy, float), np.asarray(span.b_xy, float)
-        length = float(np.linalg.norm(b - a))
-        if not length > 0:
-            continue
-        stations = np.linspace(0.0, length, max(2, int(math.ceil(length)) + 1))
-        xy = a + np.outer(stations / length, b - a)
-        z = np.full(len(stations), np.nan)
-        if ground_model is not None:
-            try:
-                z = np.asarray(ground_model.height_at(xy), dtype=float)
-            except Exception:  # noqa: BLE001 - fall back to the points
-                z = np.full(len(stations), np.nan)
-        if np.any(~np.isfinite(z)) and ground_group is not None and ground_group.tree is not None:
-            d, j = ground_group.tree.query(xy, distance_upper_bound=3.0)
-            fill = ~np.isfinite(z) & np.isfinite(d)
-            z[fill] = ground_group.xyz[j[fill], 2]
-        profiles[span.id] = np.column_stack([stations, z])
-    return profiles
-
-
 def _summary(rows, states, span_rows, survey_t, notes, trees_info, rules, voltage, altitude,
              altitude_note, insulator) -> dict:
     counts: dict[str, dict[str, int]] = {}

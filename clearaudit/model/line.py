@@ -1206,7 +1206,6 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
     ref = max((k for k, c in enumerate(counts) if c == usual),
               key=lambda k: sum(len(w.point_indices) for w in spans[k].wires
                                 if w.role != "other"))
-    done = {ref}
 
     def carry(src: Span, dst: Span, src_end: str, dst_end: str):
         a = [w for w in src.wires if w.role != "other"]
@@ -1227,34 +1226,18 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
                 across = dxy - d_line * (dxy @ d_line)
                 cost[i, j] = np.hypot(np.hypot(*across), (q - p)[2])
         # of two candidates about as close (a wire and a stray piece beside it), the one
-        # with more points carries the id: up to 0.5 m added for a sparse candidate
-        n_a = np.array([len(w.point_indices) for w in a], dtype=float)
-        n_b = np.array([len(w.point_indices) for w in b], dtype=float)
-        share_a = n_a / max(float(n_a.max()), 1.0)
-        share_b = n_b / max(float(n_b.max()), 1.0)
-        penalty = 0.5 * ((1.0 - share_a)[:, None] + (1.0 - share_b)[None, :])
-        raw = cost
-        cost = np.where(cost < 1e6, cost + penalty, cost)
-        ri, ci = linear_sum_assignment(cost)
-        cost = raw  # the link tolerance applies to the distance itself
+        # with more points carries the id: up to 0.5 m added for a candidate sparse among
+        # the wires of its role
+        penalty = 0.5 * ((1.0 - _point_share(a))[:, None] + (1.0 - _point_share(b))[None, :])
+        # the link tolerance below applies to the distance itself, not to the penalised cost
+        ri, ci = linear_sum_assignment(np.where(cost < 1e6, cost + penalty, cost))
         taken = set()
-        matched_a, matched_b = set(), set()
+        matched_b = set()
         for i, j in zip(ri, ci, strict=True):
             if cost[i, j] <= opts.link_tolerance_m:
                 b[j].wire_id = a[i].wire_id
                 taken.add(a[i].wire_id)
-                matched_a.add(i)
                 matched_b.add(j)
-        # a role with exactly one unmatched wire on each side (a single shield wire whose
-        # attachment moves at a dead-end or an angle structure) keeps its id
-        for role in {w.role for w in b}:
-            ua = [i for i, w in enumerate(a) if w.role == role and i not in matched_a]
-            ub = [j for j, w in enumerate(b) if w.role == role and j not in matched_b]
-            if len(ua) == 1 and len(ub) == 1 and a[ua[0]].wire_id not in taken \
-                    and not a[ua[0]].wire_id.endswith("?"):
-                b[ub[0]].wire_id = a[ua[0]].wire_id
-                taken.add(a[ua[0]].wire_id)
-                matched_b.add(ub[0])
         # unmatched wires keep their positional id unless it is taken
         for j, w in enumerate(b):
             if j in matched_b:
@@ -1265,9 +1248,18 @@ def _assign_ids(spans: list[Span], opts: ModelOptions) -> None:
 
     for k in range(ref + 1, len(spans)):
         carry(spans[k - 1], spans[k], "b", "a")
-        done.add(k)
     for k in range(ref - 1, -1, -1):
         carry(spans[k + 1], spans[k], "a", "b")
+
+
+def _point_share(wires: list[WireFit]) -> np.ndarray:
+    """Each wire's points as a share of the most points of a wire of the same role."""
+    n = np.array([len(w.point_indices) for w in wires], dtype=float)
+    roles = np.array([w.role for w in wires])
+    top = np.ones(len(wires))
+    for role in set(roles.tolist()):
+        top[roles == role] = max(float(n[roles == role].max()), 1.0)
+    return n / top
 
 
 def _ordered_ids(ids: set[str]) -> list[str]:
