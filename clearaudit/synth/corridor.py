@@ -122,6 +122,22 @@ class _Structure:
         e = self.along
         return np.array([-e[1], e[0]])
 
+    def tip(self, p) -> np.ndarray:
+        """Arm tip of layout position ``p`` (stretched across the line at angle structures)."""
+        txy = self.xy + self.lateral * p.lateral_m * self.stretch
+        return np.array([txy[0], txy[1], self.ground_z + p.arm_height_m + self.extension_m])
+
+    def attachment(self, p, toward: np.ndarray, suspension_m: float,
+                   deadend_m: float) -> np.ndarray:
+        """Where the wire of position ``p`` leaving toward ``toward`` hangs: the arm tip for a
+        shield wire, the end of a suspension string below it, or of a strain string."""
+        t = self.tip(p)
+        if p.role != "phase":
+            return t
+        if self.deadend:
+            return t + np.array([toward[0], toward[1], 0.0]) * deadend_m
+        return t - np.array([0.0, 0.0, suspension_m])
+
     @property
     def line_angle_deg(self) -> float:
         c = float(np.clip(self.d_in @ self.d_out, -1.0, 1.0))
@@ -473,18 +489,6 @@ def generate_corridor(
     offsets = _bundle_offsets(int(bundle), bundle_spacing_m)
     span_ids = [f"{structures[j].id}-{structures[j + 1].id}" for j in range(n_spans)]
 
-    def tip(s: _Structure, p) -> np.ndarray:
-        txy = s.xy + s.lateral * p.lateral_m * s.stretch
-        return np.array([txy[0], txy[1], s.ground_z + p.arm_height_m + s.extension_m])
-
-    def attachment(s: _Structure, p, span_dir: np.ndarray, toward: np.ndarray) -> np.ndarray:
-        t = tip(s, p)
-        if p.role != "phase":
-            return t
-        if s.deadend:
-            return t + np.array([toward[0], toward[1], 0.0]) * l_de
-        return t - np.array([0.0, 0.0, l_sus])
-
     def build_wires() -> list[WireSpan]:
         out = []
         for j in range(n_spans):
@@ -493,8 +497,8 @@ def generate_corridor(
             n_left = _left(d)
             pair = tensions[section_of_span[j]]
             for p in layout.positions:
-                a0 = attachment(sa, p, d, d)
-                b0 = attachment(sb, p, d, -d)
+                a0 = sa.attachment(p, d, l_sus, l_de)
+                b0 = sb.attachment(p, -d, l_sus, l_de)
                 subs = offsets if p.role == "phase" else [(0.0, 0.0)]
                 w = conductor_weight_n_per_m if p.role == "phase" else shield_weight_n_per_m
                 for k, (dl, dz) in enumerate(subs):
@@ -609,7 +613,7 @@ def generate_corridor(
         st_lab.append(np.full(len(pts), s.index))
         a0, a1 = [], []
         for p in phases:
-            t = tip(s, p)
+            t = s.tip(p)
             if s.deadend:
                 for j, toward in ((s.index, dirs[min(s.index, n_spans - 1)]),
                                   (s.index - 1, -dirs[max(s.index - 1, 0)])):
@@ -755,7 +759,7 @@ def generate_corridor(
 
     # ------------------------------------------------------------------ truth
     truth = _truth(params, seed, crs_obj, unit, unit_m, origin, ground, structures, layout,
-                   l_sus, l_de, tip, sections, tensions, span_ids, lengths, dirs, wires,
+                   l_sus, l_de, sections, tensions, span_ids, lengths, dirs, wires,
                    wire_lab_all, wire_gaps, wire_spacing, planted, other_records, bld, rd, ub,
                    curves, cls, to_crs, conductor_temperature_c)
     line_config = {
@@ -1157,7 +1161,7 @@ def _jsonify(v):
 
 
 def _truth(params, seed, crs_obj, unit, unit_m, origin, ground, structures, layout, l_sus, l_de,
-           tip, sections, tensions, span_ids, lengths, dirs, wires, wire_lab, wire_gaps,
+           sections, tensions, span_ids, lengths, dirs, wires, wire_lab, wire_gaps,
            wire_spacing, planted, others, bld, rd, ub, curves, cls, to_crs,
            conductor_temperature_c) -> dict:
     n_spans = len(lengths)
@@ -1168,7 +1172,7 @@ def _truth(params, seed, crs_obj, unit, unit_m, origin, ground, structures, layo
     for s in structures:
         arms = []
         for p in layout.positions:
-            t = tip(s, p)
+            t = s.tip(p)
             ins = ("none" if p.role != "phase" else "deadend" if s.deadend else "suspension")
             arms.append({"wire_id": p.wire_id, "role": p.role, "circuit": p.circuit,
                          "lateral_m": p.lateral_m, "lateral_stretched_m": p.lateral_m * s.stretch,

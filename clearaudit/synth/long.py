@@ -219,25 +219,13 @@ def _layout_line(rng: np.random.Generator, n_spans: int, terrain: str,
     offsets = _bundle_offsets(int(bundle), bundle_spacing_m)
     span_ids = [f"{structures[j].id}-{structures[j + 1].id}" for j in range(n_spans)]
 
-    def tip(s: _Structure, p) -> np.ndarray:
-        txy = s.xy + s.lateral * p.lateral_m * s.stretch
-        return np.array([txy[0], txy[1], s.ground_z + p.arm_height_m + s.extension_m])
-
-    def attachment(s: _Structure, p, toward: np.ndarray) -> np.ndarray:
-        t = tip(s, p)
-        if p.role != "phase":
-            return t
-        if s.deadend:
-            return t + np.array([toward[0], toward[1], 0.0]) * l_de
-        return t - np.array([0.0, 0.0, l_sus])
-
     def span_wires(j: int) -> list[WireSpan]:
         sa, sb, d = structures[j], structures[j + 1], dirs[j]
         n_left = _left(d)
         pair = tensions[section_of_span[j]]
         out = []
         for p in layout.positions:
-            a0, b0 = attachment(sa, p, d), attachment(sb, p, -d)
+            a0, b0 = sa.attachment(p, d, l_sus, l_de), sb.attachment(p, -d, l_sus, l_de)
             subs = offsets if p.role == "phase" else [(0.0, 0.0)]
             w = conductor_weight_n_per_m if p.role == "phase" else shield_weight_n_per_m
             for k, (dl, dz) in enumerate(subs):
