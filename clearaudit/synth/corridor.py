@@ -762,7 +762,31 @@ def generate_corridor(
                    l_sus, l_de, sections, tensions, span_ids, lengths, dirs, wires,
                    wire_lab_all, wire_gaps, wire_spacing, planted, other_records, bld, rd, ub,
                    curves, cls, to_crs, conductor_temperature_c)
-    line_config = {
+    line_config = line_file_config(
+        line_name=line_name, voltage_kv=voltage_kv,
+        max_operating_temperature_c=max_operating_temperature_c, rule_set=rule_set,
+        owner=owner, conductor_temperature_c=conductor_temperature_c,
+        conductor_name=conductor_name, bundle=bundle, bundle_spacing_m=bundle_spacing_m,
+        conductor_weight_n_per_m=conductor_weight_n_per_m,
+        conductor_diameter_m=conductor_diameter_m, shield_name=shield_name,
+        shield_weight_n_per_m=shield_weight_n_per_m, shield_diameter_m=shield_diameter_m,
+        structures_file=f"{name}.structures.csv")
+    rows = [{"id": s.id, "x": to_crs(s.xy)[0], "y": to_crs(s.xy)[1],
+             "type": "deadend" if s.deadend else "suspension"} for s in structures]
+    return SyntheticCorridor(cloud=cloud, truth_classification=cls, truth=truth,
+                             line_config=line_config, structures=rows, terrain=ground,
+                             wires=wires, truth_labels=labels)
+
+
+# ================================================================================ helpers
+def line_file_config(*, line_name: str, voltage_kv: float, max_operating_temperature_c: float,
+                     rule_set: str, owner: str | None, conductor_temperature_c: float,
+                     conductor_name: str, bundle: int, bundle_spacing_m: float,
+                     conductor_weight_n_per_m: float, conductor_diameter_m: float,
+                     shield_name: str, shield_weight_n_per_m: float, shield_diameter_m: float,
+                     structures_file: str) -> dict[str, Any]:
+    """The line file of a generated line (see docs/line-file.md); units as in the names."""
+    return {
         "line": {"name": line_name, "voltage_kv": float(voltage_kv),
                  "max_operating_temperature_c": float(max_operating_temperature_c),
                  "rule_set": rule_set, **({"owner": owner} if owner else {})},
@@ -776,16 +800,10 @@ def generate_corridor(
             "shield": {"name": shield_name, "weight_n_per_m": float(shield_weight_n_per_m),
                        "diameter_m": float(shield_diameter_m)},
         },
-        "structures": {"file": f"{name}.structures.csv"},
+        "structures": {"file": structures_file},
     }
-    rows = [{"id": s.id, "x": to_crs(s.xy)[0], "y": to_crs(s.xy)[1],
-             "type": "deadend" if s.deadend else "suspension"} for s in structures]
-    return SyntheticCorridor(cloud=cloud, truth_classification=cls, truth=truth,
-                             line_config=line_config, structures=rows, terrain=ground,
-                             wires=wires, truth_labels=labels)
 
 
-# ================================================================================ helpers
 def _structure_members(layout: Layout, s: _Structure, ground: Terrain):
     """Members of structure ``s`` in local coordinates (p0, p1, radius)."""
     e, t, k = s.along, s.lateral, s.stretch

@@ -18,7 +18,6 @@ truth record keeps the structures, tension sections, every wire's true curve and
 """
 from __future__ import annotations
 
-import csv
 import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -45,9 +44,10 @@ from .corridor import (
     _Structure,
     _structure_members,
     _tensions,
+    line_file_config,
     scan_fields,
 )
-from .output import toml_dumps
+from .output import toml_dumps, write_structures_csv
 from .structures import STRUCTURE_KINDS, insulator_length_m, make_layout, segment_points
 from .terrain import TERRAIN_KINDS, Terrain, random_terrain
 from .wires import CurveSet, WireSpan, sample_wire
@@ -629,28 +629,17 @@ def write_long_corridor(
              "type": "deadend" if s.deadend else "suspension"} for s in line.structures]
     paths = {"line": out / f"{name}.line.toml", "structures": out / f"{name}.structures.csv",
              "truth": out / f"{name}.truth.json"}
-    config = {
-        "line": {"name": line_name, "voltage_kv": float(voltage_kv),
-                 "max_operating_temperature_c": float(max_operating_temperature_c),
-                 "rule_set": rule_set},
-        "survey": {"conductor_temperature_c": float(conductor_temperature_c),
-                   "conductor_temperature_uncertainty_c": 2.0},
-        "conductors": {
-            "phase": {"name": conductor_name, "bundle": int(bundle),
-                      "bundle_spacing_m": float(bundle_spacing_m),
-                      "weight_n_per_m": float(conductor_weight_n_per_m),
-                      "diameter_m": float(conductor_diameter_m)},
-            "shield": {"name": shield_name, "weight_n_per_m": float(shield_weight_n_per_m),
-                       "diameter_m": float(shield_diameter_m)},
-        },
-        "structures": {"file": paths["structures"].name},
-    }
+    config = line_file_config(
+        line_name=line_name, voltage_kv=voltage_kv,
+        max_operating_temperature_c=max_operating_temperature_c, rule_set=rule_set, owner=None,
+        conductor_temperature_c=conductor_temperature_c, conductor_name=conductor_name,
+        bundle=bundle, bundle_spacing_m=bundle_spacing_m,
+        conductor_weight_n_per_m=conductor_weight_n_per_m,
+        conductor_diameter_m=conductor_diameter_m, shield_name=shield_name,
+        shield_weight_n_per_m=shield_weight_n_per_m, shield_diameter_m=shield_diameter_m,
+        structures_file=paths["structures"].name)
     paths["line"].write_text(toml_dumps(config), encoding="utf-8")
-    with paths["structures"].open("w", newline="", encoding="utf-8") as fh:
-        writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["id", "x", "y", "type"])
-        for row in rows:
-            writer.writerow([row["id"], f"{row['x']:.3f}", f"{row['y']:.3f}", row["type"]])
+    write_structures_csv(paths["structures"], rows)
     wires = [w for ws in line.wires_by_span for w in ws]
     truth = {
         "format": "clearaudit-synthetic-long-truth", "format_version": 1,

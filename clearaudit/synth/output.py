@@ -124,12 +124,17 @@ def write_corridor(corridor: SyntheticCorridor, out_dir: str | Path, name: str, 
     config = json.loads(json.dumps(corridor.line_config))
     config.setdefault("structures", {})["file"] = paths["structures"].name
     paths["line"].write_text(toml_dumps(config), encoding="utf-8")
-    with paths["structures"].open("w", newline="", encoding="utf-8") as fh:
+    write_structures_csv(paths["structures"], corridor.structures)
+    return paths
+
+
+def write_structures_csv(path: Path, rows: list[dict[str, Any]]) -> None:
+    """The structures file: ``id, x, y, type`` (CRS units, 3 decimals)."""
+    with Path(path).open("w", newline="", encoding="utf-8") as fh:
         writer = csv.writer(fh, lineterminator="\n")
         writer.writerow(["id", "x", "y", "type"])
-        for row in corridor.structures:
+        for row in rows:
             writer.writerow([row["id"], f"{row['x']:.3f}", f"{row['y']:.3f}", row["type"]])
-    return paths
 
 
 def regenerate_samples(out_dir: str | Path) -> dict[str, Path]:
