@@ -227,6 +227,16 @@ def _resolve_crs(crs: str | None, unit: str, anchor: tuple[float, float] | None)
     return crs_obj, unit_m, np.array([round(e / 100.0) * 100.0, round(n / 100.0) * 100.0, 0.0])
 
 
+def check_sampling(noise_m: float, gap_fraction: float, outliers: float) -> None:
+    """Point noise [m], share of wire length in gaps and share of outliers: ValueError if bad."""
+    if not noise_m >= 0:
+        raise ValueError("noise_m must not be negative")
+    if not 0.0 <= gap_fraction < 0.6:
+        raise ValueError("gap_fraction must be from 0 to below 0.6")
+    if not 0.0 <= outliers < 0.05:
+        raise ValueError("outliers must be a fraction from 0 to below 0.05")
+
+
 def _check_args(terrain, n_spans, span_length_m, circuit, bundle, n_shield, structure_kind,
                 vegetation, unit, density_per_m2, noise_m, gap_fraction, outliers, arrangement,
                 weights):
@@ -251,12 +261,7 @@ def _check_args(terrain, n_spans, span_length_m, circuit, bundle, n_shield, stru
         raise ValueError(f"unit must be one of {', '.join(UNITS_M)}, not {unit!r}")
     if not density_per_m2 > 0:
         raise ValueError("density_per_m2 must be positive")
-    if not noise_m >= 0:
-        raise ValueError("noise_m must not be negative")
-    if not 0.0 <= gap_fraction < 0.6:
-        raise ValueError("gap_fraction must be from 0 to below 0.6")
-    if not 0.0 <= outliers < 0.05:
-        raise ValueError("outliers must be a fraction from 0 to below 0.05")
+    check_sampling(noise_m, gap_fraction, outliers)
     if arrangement not in ARRANGEMENTS:
         raise ValueError(f"phase_arrangement must be one of {', '.join(ARRANGEMENTS)}")
     if not all(w > 0 for w in weights):

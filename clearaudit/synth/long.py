@@ -44,6 +44,7 @@ from .corridor import (
     _Structure,
     _structure_members,
     _tensions,
+    check_sampling,
     line_file_config,
     scan_fields,
 )
@@ -155,12 +156,7 @@ def _check(n_spans, density_per_m2, tile_points, terrain, span_length_m, section
         raise ValueError("section_spans must be a whole number of at least 1")
     if vegetation not in VEGETATION_LEVELS:
         raise ValueError(f"vegetation must be one of {', '.join(VEGETATION_LEVELS)}")
-    if not noise_m >= 0:
-        raise ValueError("noise_m must not be negative")
-    if not 0.0 <= gap_fraction < 0.6:
-        raise ValueError("gap_fraction must be from 0 to below 0.6")
-    if not 0.0 <= outliers < 0.05:
-        raise ValueError("outliers must be a fraction from 0 to below 0.05")
+    check_sampling(noise_m, gap_fraction, outliers)
     if structure_kind not in STRUCTURE_KINDS:
         raise ValueError(f"structure_kind must be one of {', '.join(STRUCTURE_KINDS)}")
     if circuit not in ("single", "double"):
