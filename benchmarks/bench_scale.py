@@ -131,7 +131,8 @@ def _child(argv: list[str]) -> None:
     kw: dict = {}
     for item in extra:
         key, value = item.split("=", 1)
-        kw[key] = {"tiled": lambda v: v == "1", "workers": int, "tile_points": int}[key](value)
+        kw[key] = {"tiled": lambda v: v == "1", "workers": int, "tile_points": int,
+                   "threads": int}[key](value)
     t0 = time.perf_counter()
     run_audit(AuditOptions(clouds=[Path(cloud)], out=Path(out), line_file=Path(line),
                            overwrite=True, skip_report=True, **kw))
@@ -151,12 +152,13 @@ def same_outputs(a: Path, b: Path) -> bool:
     import laspy
     import numpy as np
 
-    for name in ("spans.csv", "violations.csv"):
-        with open(a / name) as fa, open(b / name) as fb:
-            if list(csv.reader(fa)) != list(csv.reader(fb)):
-                return False
+    for name in ("spans.csv", "violations.csv", "model.json"):
+        if (a / name).read_bytes() != (b / name).read_bytes():
+            return False
     ca, cb = laspy.read(a / "classified.laz"), laspy.read(b / "classified.laz")
-    return bool(np.array_equal(np.asarray(ca.classification), np.asarray(cb.classification)))
+    return bool(np.array_equal(np.asarray(ca.classification), np.asarray(cb.classification))
+                and np.array_equal(np.asarray(ca.height_above_ground),
+                                   np.asarray(cb.height_above_ground), equal_nan=True))
 
 
 def machine() -> str:
@@ -190,6 +192,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             extra.append(f"tile_points={tile_points}")
         if mode == "dask":
             extra.append("workers=2")
+        if mode == "serial":  # tiled, in-process, one tile after the other on one thread
+            extra.append("threads=1")
         r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
         print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, CPU "
               f"{r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB", flush=True)
@@ -206,9 +210,13 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
                         "cpu_s": r["cpu_s"], "cpu_s_per_km": r["cpu_s"] / km if km else None,
                         "ratio_audit_cpu": r["cpu_s"] / dec_cpu,
                         "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb")}
-    if "tiled" in modes and "dask" in modes:
-        result["dask_speedup"] = result["tiled"]["audit_s"] / result["dask"]["audit_s"]
-        result["dask_identical"] = same_outputs(work / f"{label}-tiled", work / f"{label}-dask")
+    if "serial" in modes and "dask" in modes:
+        result["dask_speedup"] = result["serial"]["audit_s"] / result["dask"]["audit_s"]
+        result["dask_identical"] = same_outputs(work / f"{label}-serial", work / f"{label}-dask")
+    if "serial" in modes and "tiled" in modes:
+        result["threads_speedup"] = result["serial"]["audit_s"] / result["tiled"]["audit_s"]
+        result["threads_identical"] = same_outputs(work / f"{label}-serial",
+                                                   work / f"{label}-tiled")
     return result
 
 
@@ -220,7 +228,7 @@ def print_results(results: list[dict]) -> None:
           "audit CPU / decompress CPU |")
     print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in results:
-        for mode in ("memory", "tiled", "dask"):
+        for mode in ("memory", "serial", "tiled", "dask"):
             m = r.get(mode)
             if not m:
                 continue
@@ -232,11 +240,14 @@ def print_results(results: list[dict]) -> None:
                   f"{m['cpu_s']:.1f} | {m['cpu_s_per_km'] or float('nan'):.1f} | "
                   f"{m['ratio_audit_cpu']:.2f} |")
     for r in results:
+        if "threads_speedup" in r:
+            print(f"in-process threads on {r['case']}: speed-up {r['threads_speedup']:.2f} x "
+                  f"over one thread; identical outputs: {r['threads_identical']}")
         if "dask_speedup" in r:
             print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
-                  f"in-process tiled; identical outputs: {r['dask_identical']}")
+                  f"in-process tiled on one thread; identical outputs: {r['dask_identical']}")
     for r in results:
-        for mode in ("memory", "tiled", "dask"):
+        for mode in ("memory", "serial", "tiled", "dask"):
             if r.get(mode):
                 m = r[mode]
                 print(f"ratio {r['case']} {mode}: audit/decompress = {m['ratio_audit']:.2f}, "
@@ -261,8 +272,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--stream-points", type=float, nargs="*", default=[],
                    help="corridor sizes [points] (density 12 /m2) generated as tiles by the "
                         "bounded-memory generator and audited tiled (e.g. 100e6)")
-    p.add_argument("--dask", action="store_true", help="also run the first --points case on "
-                                                       "a local 2-worker Dask cluster")
+    p.add_argument("--dask", action="store_true",
+                   help="also run the first --points case tiled on one thread and on a local "
+                        "2-worker Dask cluster (speed-ups over the one-thread run)")
     p.add_argument("--tiled-only-above", type=float, default=20e6,
                    help="skip the in-memory run above this many points")
     p.add_argument("--tiny", action="store_true", help="a seconds-long smoke run")
@@ -275,7 +287,8 @@ def main(argv: list[str] | None = None) -> int:
     work.mkdir(exist_ok=True)
     results = []
     if args.tiny:
-        results.append(case(cache, work, "tiny", 2, 1.5, ["memory", "tiled", "dask"], 100_000))
+        results.append(case(cache, work, "tiny", 2, 1.5, ["memory", "serial", "tiled", "dask"],
+                            100_000))
         results.append(case(cache, work, "tiny-stream", 3, 1.0, ["tiled"], 100_000,
                             tiles=50_000))
     for pts in args.points:
@@ -283,7 +296,7 @@ def main(argv: list[str] | None = None) -> int:
         spans = max(2, round(pts / (POINTS_PER_SPAN_PER_DENSITY * density)))
         modes = (["memory"] if pts <= args.tiled_only_above else []) + ["tiled"]
         if args.dask and pts == args.points[0]:
-            modes.append("dask")
+            modes += ["serial", "dask"]
         results.append(case(cache, work, f"p{pts / 1e6:g}M", spans, density, modes, None))
     for pts in args.stream_points:
         from clearaudit.synth import points_per_span

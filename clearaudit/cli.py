@@ -73,7 +73,7 @@ def cmd_audit(args: argparse.Namespace) -> int:
         survey_temperature_c=args.survey_temperature_c,
         max_operating_temperature_c=args.mot_c, structures_file=args.structures,
         overwrite=args.overwrite, workers=args.workers, scheduler=args.scheduler,
-        corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
+        threads=args.threads, corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
         tiled=True if args.tiled else None, work_dir=Path(args.work_dir) if args.work_dir else None,
         **({"tile_points": args.tile_points} if args.tile_points else {}),
         **({"tile_overlap_m": args.tile_overlap_m} if args.tile_overlap_m is not None else {}),
@@ -164,6 +164,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=0,
                    help="run on a local Dask cluster with N workers (0: in-process)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster")
+    p.add_argument("--threads", type=int, default=0, metavar="N",
+                   help="threads of the in-process run (default 0: every core; tiles of a "
+                        "tiled run go to threads, one tile each)")
     p.add_argument("--tiled", action="store_true",
                    help="bounded-memory run in tiles even for a small survey (automatic above "
                         "20 million points or with --workers/--scheduler)")

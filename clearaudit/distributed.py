@@ -1,8 +1,10 @@
 """Where the stage functions run: in this process, on a local Dask cluster, or on a cluster.
 
 One small interface, :class:`Engine`, runs a list of tasks (a function and its arguments) and
-yields their results as they complete. :class:`InProcessEngine` calls them one after the
-other (no Dask needed); :class:`DaskEngine` submits them to a ``distributed.Client``:
+yields their results as they complete. :class:`InProcessEngine` runs them in this process, on
+a pool of threads (one task per thread, as many threads as cores unless ``--threads`` says
+otherwise; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share the cores);
+:class:`DaskEngine` submits them to a ``distributed.Client``:
 ``--workers N`` starts ``distributed.LocalCluster(n_workers=N, threads_per_worker=1)``,
 ``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs and
 small summaries travel through the scheduler; workers read their own tiles from the work
@@ -43,11 +45,52 @@ class Engine:
 
 
 class InProcessEngine(Engine):
-    """Run every task here, one after the other."""
+    """Run every task in this process: one after the other, or on ``threads`` threads.
+
+    Parameters
+    ----------
+    threads
+        Tasks run at once (each on its own thread; the work inside a task then uses one
+        thread, see :mod:`clearaudit.threads`). 1 runs them one after the other in the caller's
+        thread.
+    """
+
+    def __init__(self, threads: int = 1):
+        if int(threads) < 1:
+            raise ValueError(f"the in-process engine needs at least one thread, not {threads}")
+        self.threads = int(threads)
+        self.n_workers = self.threads
 
     def run(self, tasks: Sequence[Task]) -> Iterator[tuple[int, Any]]:
-        for k, (fn, args, kwargs) in enumerate(tasks):
-            yield k, fn(*args, **kwargs)
+        if self.threads == 1 or len(tasks) <= 1:
+            for k, (fn, args, kwargs) in enumerate(tasks):
+                yield k, fn(*args, **kwargs)
+            return
+        from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+
+        pool = ThreadPoolExecutor(self.threads, thread_name_prefix="clearaudit-task")
+        futures = {pool.submit(_one_thread, fn, args, kwargs): k
+                   for k, (fn, args, kwargs) in enumerate(tasks)}
+        try:
+            pending = set(futures)
+            while pending:
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
+                # in submission order among those done together: the same order every run
+                for fut in sorted(done, key=futures.__getitem__):
+                    yield futures[fut], fut.result()
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+    def describe(self) -> dict[str, Any]:
+        return {"engine": self.name, "workers": 1, "threads": self.threads}
+
+
+def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
+    """Run a task with the work inside it limited to its own thread."""
+    from .threads import thread_limit
+
+    with thread_limit(1):
+        return fn(*args, **kwargs)
 
 
 def _worker_peak_rss_mb() -> float:
@@ -137,7 +180,8 @@ def _connect(address: str) -> Any:
 
 
 @contextmanager
-def engine_for(workers: int = 0, scheduler: str | None = None) -> Iterator[Engine]:
+def engine_for(workers: int = 0, scheduler: str | None = None,
+               threads: int = 1) -> Iterator[Engine]:
     """The engine of a run: in-process, a local cluster of ``workers`` or a scheduler.
 
     Parameters
@@ -146,9 +190,11 @@ def engine_for(workers: int = 0, scheduler: str | None = None) -> Iterator[Engin
         Processes of a local cluster (one thread each); 0: in-process.
     scheduler
         Address of an existing Dask scheduler (``tcp://host:8786``).
+    threads
+        Threads of the in-process engine (tasks run at once).
     """
     if not workers and not scheduler:
-        yield InProcessEngine()
+        yield InProcessEngine(threads)
         return
     if scheduler:
         client = _connect(str(scheduler))

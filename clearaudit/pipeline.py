@@ -53,6 +53,8 @@ class AuditOptions:
     overwrite: bool = False
     workers: int = 0
     scheduler: str | None = None
+    #: Threads of the in-process run (0: every core); see clearaudit/threads.py.
+    threads: int = 0
     corridor_buffer_m: float = 60.0
     skip_report: bool = False
     #: Tiled (bounded-memory) run: None = automatic (tiled with Dask or above
@@ -180,6 +182,19 @@ def _stage_progress(bar, task) -> Callable[[Any, float], None]:
 
 def run_audit(options: AuditOptions, console=None):
     """Run the whole audit; returns the output folder path."""
+    from .threads import run_threads
+
+    threads = options.threads
+    if not isinstance(threads, int) or threads < 0:
+        raise InputError("--threads", f"must be 0 (every core) or a positive count, not {threads}")
+    if threads and (options.workers or options.scheduler):
+        raise InputError("--threads", "applies to the in-process run; with --workers or "
+                                      "--scheduler each Dask worker runs one task at a time")
+    with run_threads(threads):
+        return _run_audit(options, console)
+
+
+def _run_audit(options: AuditOptions, console=None):
     from .config import load_line_file, read_structures_csv
     from .io.las import corridor_mask, file_sha256, inputs_crs, read_cloud, resolve_inputs
 
@@ -233,7 +248,10 @@ def run_audit(options: AuditOptions, console=None):
         tiled = bool(options.workers or options.scheduler) or \
             total_points > options.in_memory_max_points or \
             footprint_m2 > options.in_memory_max_footprint_m2
+    from .threads import inner_threads
+
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
+                                 "threads": inner_threads(),
                                  "header_points": total_points,
                                  "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:
@@ -392,6 +410,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     from .distributed import engine_for
     from .io.las import read_setup, write_classified_stream
     from .model import build_line_model
+    from .threads import inner_threads
     from .tiling import (
         Corridor,
         Grid,
@@ -411,7 +430,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     work_parent.mkdir(parents=True, exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix=".clearaudit-work-", dir=work_parent))
     try:
-        with engine_for(options.workers, options.scheduler) as engine, \
+        with engine_for(options.workers, options.scheduler, inner_threads()) as engine, \
                 atomic_output_dir(options.out, options.overwrite) as tmp, \
                 _progress_bar(console) as bar:
             record.extra["execution"].update(engine.describe())

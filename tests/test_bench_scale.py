@@ -17,11 +17,12 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert proc.returncode == 0, proc.stderr[-3000:]
     out = proc.stdout
     assert "machine:" in out
-    for mode in ("memory", "tiled", "dask"):
+    for mode in ("memory", "serial", "tiled", "dask"):
         assert f"ratio tiny {mode}: audit/decompress = " in out
     assert "classify/decompress = " in out and "peak RSS per point = " in out
-    # the Dask run must reproduce the in-process tiled run exactly
-    assert "identical outputs: True" in out
+    # the Dask run and the threaded in-process run must reproduce the one-thread run exactly
+    assert "in-process threads on tiny: speed-up " in out
+    assert out.count("identical outputs: True") == 2
     # the streamed case: generated as tiles (bounded-memory generator), audited tiled
     assert "generated tiny-stream-tiles: " in out and " 3 tiles, " in out
     assert "ratio tiny-stream tiled: audit/decompress = " in out

@@ -75,15 +75,20 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
 
 
 def test_dask_run_identical_to_in_process(corridor, tmp_path):
+    # reference: the in-process run on one thread, tile after tile; the same tiles on two
+    # threads of this process and on a local Dask cluster must give identical outputs
     pytest.importorskip("distributed")
-    a = _run(corridor, tmp_path / "inproc")
+    a = _run(corridor, tmp_path / "inproc", threads=1)
+    t = _run(corridor, tmp_path / "threads", threads=2)
     b = _run(corridor, tmp_path / "dask", workers=2)
-    for name in ("spans.csv", "violations.csv"):
-        assert _rows(a / name) == _rows(b / name), name
-    ca, cb = laspy.read(a / "classified.laz"), laspy.read(b / "classified.laz")
-    np.testing.assert_array_equal(np.asarray(ca.classification), np.asarray(cb.classification))
-    np.testing.assert_array_equal(np.asarray(ca.height_above_ground),
-                                  np.asarray(cb.height_above_ground))
+    for other in (t, b):
+        for name in ("spans.csv", "violations.csv", "model.json"):
+            assert (a / name).read_bytes() == (other / name).read_bytes(), (other, name)
+        ca, cb = laspy.read(a / "classified.laz"), laspy.read(other / "classified.laz")
+        np.testing.assert_array_equal(np.asarray(ca.classification),
+                                      np.asarray(cb.classification))
+        np.testing.assert_array_equal(np.asarray(ca.height_above_ground),
+                                      np.asarray(cb.height_above_ground))
     # every input point is written, in input order (reference: the input file via laspy)
     src = laspy.read(corridor["cloud"])
     np.testing.assert_array_equal(np.asarray(ca.X), np.asarray(src.X))
@@ -143,6 +148,14 @@ def test_bad_scheduler_address_is_one_line_input_error(corridor, tmp_path):
 def test_negative_workers_rejected(corridor, tmp_path):
     with pytest.raises(InputError):
         _run(corridor, tmp_path / "neg", workers=-1)
+
+
+@pytest.mark.parametrize("kw", [{"threads": -1}, {"threads": 2, "workers": 2}])
+def test_bad_thread_options_rejected(corridor, tmp_path, kw):
+    with pytest.raises(InputError) as err:
+        _run(corridor, tmp_path / "bad-threads", **kw)
+    assert "--threads" in str(err.value) and "\n" not in str(err.value)
+    assert not (tmp_path / "bad-threads").exists()
 
 
 def test_header_extent_chooses_tiled_for_sprawling_surveys(tmp_path):

@@ -1,0 +1,82 @@
+"""How many threads one piece of work may use.
+
+numpy, scipy.ndimage and scipy's k-d tree release the GIL in their heavy loops, so threads of
+one process share the cores well. Two levels use them:
+
+* the in-process engine (:class:`clearaudit.distributed.InProcessEngine`) runs the tiles of a
+  tiled run on a thread pool, one tile per thread;
+* work inside one task (k-d tree queries, chunked per-point passes) asks :func:`inner_threads`
+  how many threads it may use: one inside a tile thread (the tiles already fill the cores),
+  otherwise ``--threads`` / ``CLEARAUDIT_THREADS`` / every core, in that order.
+
+Results never depend on the thread count (tests check it).
+"""
+from __future__ import annotations
+
+import os
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
+
+_local = threading.local()
+_run_default: list[int] = []  # stack of process-wide limits set by :func:`run_threads`
+
+
+def available_cores() -> int:
+    """Cores this process may run on (its CPU affinity; ``os.cpu_count()`` elsewhere)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def inner_threads() -> int:
+    """Threads the work of the current task may use for itself (always ≥ 1).
+
+    In order: the limit of the current thread (1 inside a tile thread of the in-process
+    engine), the run's ``--threads``, the ``CLEARAUDIT_THREADS`` environment variable (set to
+    1 for the workers of a local Dask cluster), the cores of the machine.
+    """
+    local = getattr(_local, "limit", None)
+    if local:
+        return int(local)
+    if _run_default and _run_default[-1] > 0:
+        return _run_default[-1]
+    env = os.environ.get("CLEARAUDIT_THREADS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    return available_cores()
+
+
+def resolve_threads(threads: int) -> int:
+    """``threads`` as a count: 0 → the value :func:`inner_threads` gives here."""
+    if threads < 0:
+        raise ValueError(f"threads must be 0 (automatic) or a positive count, not {threads}")
+    return int(threads) if threads else inner_threads()
+
+
+@contextmanager
+def run_threads(threads: int) -> Iterator[int]:
+    """Set the thread count of a whole run (0: automatic); yields the count in force."""
+    n = resolve_threads(threads)
+    _run_default.append(n)
+    try:
+        yield n
+    finally:
+        _run_default.pop()
+
+
+@contextmanager
+def thread_limit(threads: int) -> Iterator[None]:
+    """Limit the work done in the current thread to ``threads`` threads."""
+    if threads < 1:
+        raise ValueError(f"a thread limit must be at least 1, not {threads}")
+    previous = getattr(_local, "limit", None)
+    _local.limit = int(threads)
+    try:
+        yield
+    finally:
+        _local.limit = previous
+
+
+__all__ = ["available_cores", "inner_threads", "resolve_threads", "run_threads", "thread_limit"]

@@ -1,0 +1,65 @@
+"""The in-process engine's thread pool and the thread limits of the work inside a task."""
+from __future__ import annotations
+
+import threading
+
+import pytest
+
+from clearaudit.distributed import InProcessEngine
+from clearaudit.threads import inner_threads, resolve_threads, run_threads, thread_limit
+
+
+def _task(k: int, barrier: threading.Barrier | None = None) -> tuple[int, int, str]:
+    if barrier is not None:
+        barrier.wait(timeout=10)  # only passes when two tasks really run at once
+    return k * k, inner_threads(), threading.current_thread().name
+
+
+def test_threaded_engine_runs_tasks_at_once_and_returns_every_result():
+    barrier = threading.Barrier(2)
+    engine = InProcessEngine(threads=2)
+    tasks = [(_task, (k, barrier if k < 2 else None), {}) for k in range(6)]
+    got = dict(engine.run(tasks))
+    assert sorted(got) == list(range(6))
+    assert all(got[k][0] == k * k for k in range(6))
+    # the work inside a task gets one thread: the tasks already fill the threads
+    assert {v[1] for v in got.values()} == {1}
+    assert all(v[2].startswith("clearaudit-task") for v in got.values())
+    assert engine.describe()["threads"] == 2
+
+
+def test_one_thread_runs_in_the_callers_thread_in_order():
+    engine = InProcessEngine(threads=1)
+    with run_threads(3):
+        got = list(engine.run([(_task, (k,), {}) for k in range(3)]))
+    assert [k for k, _ in got] == [0, 1, 2]
+    assert {v[2] for _, v in got} == {threading.current_thread().name}
+    assert {v[1] for _, v in got} == {3}  # the run's own thread count
+
+
+def _fails(k: int) -> int:
+    if k == 3:
+        raise ValueError("tile 3 is broken")
+    return k
+
+
+def test_a_failing_task_raises_in_the_caller():
+    with pytest.raises(ValueError, match="tile 3 is broken"):
+        list(InProcessEngine(threads=2).run([(_fails, (k,), {}) for k in range(6)]))
+
+
+def test_thread_settings_nest_and_reject_bad_counts(monkeypatch):
+    monkeypatch.setenv("CLEARAUDIT_THREADS", "5")
+    assert inner_threads() == 5
+    with run_threads(0) as n:  # automatic: the environment's value
+        assert n == 5
+    with run_threads(2):
+        assert inner_threads() == 2
+        with thread_limit(1):
+            assert inner_threads() == 1
+        assert inner_threads() == 2
+    assert resolve_threads(4) == 4
+    with pytest.raises(ValueError):
+        resolve_threads(-1)
+    with pytest.raises(ValueError):
+        InProcessEngine(threads=0)
