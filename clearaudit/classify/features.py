@@ -1,17 +1,23 @@
 """Per-point eigen features of local neighbourhoods (covariance eigenvalues and vectors).
 
 Neighbourhoods are hybrid: the ``k`` nearest points within a radius (scipy ``cKDTree`` queries
-run in C on all cores; covariance moments are reduced in vectorised chunks and the eigen pairs come in closed form).
+run in C). The query points are processed in chunks; each chunk gathers its neighbours'
+coordinates once per axis into contiguous (k, m) blocks, reduces the covariance moments from
+them and takes the eigen pairs in closed form. Chunks run on a thread pool (numpy and the tree
+release the GIL) when more than one thread is allowed; every value is computed per point, so
+the result does not depend on the thread count or the chunk size.
 """
 from __future__ import annotations
 
-import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.spatial import cKDTree
 
-_CHUNK = 200_000
+from ..threads import inner_threads
+
+_CHUNK = 65_536  # query points per chunk (a few MB of (k, m) blocks: cache friendly)
 
 
 @dataclass
@@ -43,6 +49,24 @@ class EigenFeatures:
     count: np.ndarray
 
 
+def feature_threads(workers: int = -1) -> int:
+    """Threads the eigen features may use (always ≥ 1).
+
+    Parameters
+    ----------
+    workers
+        A positive count is used as given; -1 means :func:`clearaudit.threads.inner_threads`
+        (one inside a tile thread of the in-process engine; else the run's ``--threads``, the
+        ``CLEARAUDIT_THREADS`` environment variable — a local Dask cluster sets 1 in each
+        worker — or every core this process may run on).
+    """
+    if workers == 0 or workers < -1:
+        raise ValueError("workers must be -1 (automatic) or a positive thread count")
+    if workers > 0:
+        return int(workers)
+    return inner_threads()
+
+
 def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
                    sparse_radius: float | None = None) -> EigenFeatures:
     """Eigen features of the ``k`` nearest neighbours within ``radius`` of every point.
@@ -56,8 +80,8 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     k
         Largest number of neighbours (the point itself included).
     workers
-        Threads of the tree query (-1 = all cores, or the ``CLEARAUDIT_THREADS`` environment
-        variable when set: a local Dask cluster sets 1 in each worker process).
+        Threads (-1 = automatic, see :func:`feature_threads`). With 1 everything runs in the calling thread;
+        the result is the same for every thread count.
     sparse_radius
         If given, points with fewer than 3 neighbours within ``radius`` are computed again
         with this larger radius (sparse wires, e.g. earth wires). [m]
@@ -65,7 +89,10 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     Notes
     -----
     Neighbourhoods of two points are perfectly linear (linearity 1); a lone point gets all
-    features 0 and ``count`` 1.
+    features 0 and ``count`` 1. The covariance of a neighbourhood is taken about its query
+    point :math:`\\mathbf q` (small numbers, no cancellation):
+    :math:`C = \\tfrac1n\\sum_i \\mathbf d_i\\mathbf d_i^T - \\bar{\\mathbf d}\\bar{\\mathbf d}^T`
+    with :math:`\\mathbf d_i = \\mathbf p_i - \\mathbf q`.
 
     References
     ----------
@@ -75,8 +102,7 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     """
     if radius <= 0 or k < 2:
         raise ValueError("feature radius must be positive and k at least 2")
-    if workers == -1 and os.environ.get("CLEARAUDIT_THREADS", "").strip().isdigit():
-        workers = max(1, int(os.environ["CLEARAUDIT_THREADS"]))
+    threads = feature_threads(workers)
     xyz = np.asarray(xyz, dtype=np.float64)
     n = len(xyz)
     if n == 0:
@@ -85,24 +111,32 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     pts = xyz - xyz.mean(axis=0)
     tree = cKDTree(pts)
     k = min(k, n)
-    result = _features(pts, tree, np.arange(n), radius, k, workers)
+    columns = tuple(np.ascontiguousarray(pts[:, c]) for c in range(3))
+    result = _features(pts, columns, tree, np.arange(n), radius, k, threads)
     if sparse_radius is not None and sparse_radius > radius:
         again = np.flatnonzero(result.count < 3)
         if len(again):
-            redo = _features(pts, tree, again, sparse_radius, k, workers)
+            redo = _features(pts, columns, tree, again, sparse_radius, k, threads)
             for name in ("linearity", "planarity", "scattering", "verticality", "direction",
                          "normal", "count"):
                 getattr(result, name)[again] = getattr(redo, name)
     return result
 
 
-def _features(pts: np.ndarray, tree: cKDTree, which: np.ndarray, radius: float, k: int,
-              workers: int) -> EigenFeatures:
-    """Eigen features of the points ``which`` (vectorised in chunks).
+_PAIRS = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
+
+
+def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray],
+              tree: cKDTree, which: np.ndarray, radius: float, k: int,
+              threads: int) -> EigenFeatures:
+    """Eigen features of the points ``which`` (vectorised in chunks, chunks on ``threads``).
 
     Each neighbourhood is taken relative to its query point (small numbers, no cancellation);
-    the six covariance moments are reduced directly and the eigen pairs come from the closed
-    form of :func:`sym3_eigen` (rows it cannot resolve fall back to ``numpy.linalg.eigh``).
+    the neighbours' coordinates are gathered once per axis into contiguous (k, m) blocks
+    (missing neighbours point at the query point itself, so they add exact zeros), the six
+    covariance moments are reduced over the neighbour axis and the eigen pairs come from the
+    closed form of :func:`sym3_eigen` (rows it cannot resolve fall back to
+    ``numpy.linalg.eigh``). Every output row depends on its own point only.
     """
     n_all = len(pts)
     n = len(which)
@@ -113,27 +147,31 @@ def _features(pts: np.ndarray, tree: cKDTree, which: np.ndarray, radius: float, 
     direction = np.zeros((n, 3))
     normal = np.zeros((n, 3))
     count = np.zeros(n, dtype=np.int32)
-    padded = np.vstack([pts, np.zeros((1, 3))])
-    pairs = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
-    for start in range(0, n, _CHUNK):
+
+    def chunk(start: int) -> None:
         stop = min(n, start + _CHUNK)
-        q = pts[which[start:stop]]
-        _, idx = tree.query(q, k=k, distance_upper_bound=radius, workers=workers)
+        rows = which[start:stop]
+        q = pts[rows]
+        _, idx = tree.query(q, k=k, distance_upper_bound=radius, workers=1)
         if k == 1:
             idx = idx[:, None]
-        valid = idx < n_all  # missing neighbours come back as index n_all (the padding row)
+        valid = idx < n_all  # missing neighbours come back as index n_all
         cnt = valid.sum(axis=1)
-        nb = padded[idx]  # (m, k, 3)
-        nb -= q[:, None, :]
-        nb *= valid[..., None]
-        mean = nb.sum(axis=1) / cnt[:, None]
-        cov = np.empty((stop - start, 6))
-        for j, (a, b) in enumerate(pairs):
-            cov[:, j] = np.einsum("mk,mk->m", nb[..., a], nb[..., b]) / cnt - mean[:, a] * mean[:, b]
-        del nb
-        vals, v_small, v_large, bad = sym3_eigen(cov)
+        # (k, m): neighbour j of every query point is one contiguous row
+        near = np.where(valid, idx, rows[:, None]).T.copy()
+        del idx, valid
+        d = []
+        for c in range(3):
+            g = np.take(columns[c], near)
+            g -= q[:, c]
+            d.append(g)
+        del near
+        mean = [g.sum(axis=0) / cnt for g in d]
+        cov = [np.einsum("km,km->m", d[a], d[b]) / cnt - mean[a] * mean[b] for a, b in _PAIRS]
+        del d
+        vals, v_small, v_large, bad = _sym3_eigen(*cov)
         if bad.any():
-            full = cov[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
+            full = np.stack(cov, axis=1)[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
             bvals, bvecs = np.linalg.eigh(full)  # ascending
             vals[bad] = bvals
             v_small[bad] = bvecs[:, :, 0]
@@ -151,6 +189,14 @@ def _features(pts: np.ndarray, tree: cKDTree, which: np.ndarray, radius: float, 
         normal[sl] = v_small
         ver[sl] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
         count[sl] = cnt
+
+    starts = range(0, n, _CHUNK)
+    if threads <= 1 or len(starts) <= 1:
+        for start in starts:
+            chunk(start)
+    else:
+        with ThreadPoolExecutor(max_workers=min(threads, len(starts))) as pool:
+            list(pool.map(chunk, starts))  # list(): re-raises a chunk's exception here
     return EigenFeatures(lin, pla, sca, ver, direction, normal, count)
 
 
@@ -182,32 +228,53 @@ def sym3_eigen(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.
     Smith, O. K. (1961). Eigenvalues of a symmetric 3 × 3 matrix. Communications of the ACM
     4(4), 168.
     """
-    xx, xy, xz, yy, yz, zz = (cov[:, i] for i in range(6))
+    cov = np.asarray(cov, dtype=np.float64)
+    return _sym3_eigen(*(np.ascontiguousarray(cov[:, i]) for i in range(6)))
+
+
+def _sym3_eigen(xx: np.ndarray, xy: np.ndarray, xz: np.ndarray, yy: np.ndarray,
+                yz: np.ndarray, zz: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`sym3_eigen` on the six moments as separate 1D arrays (component-wise)."""
     q = (xx + yy + zz) / 3.0
     axx, ayy, azz = xx - q, yy - q, zz - q
     p = np.sqrt((axx * axx + ayy * ayy + azz * azz + 2.0 * (xy * xy + xz * xz + yz * yz)) / 6.0)
     inv = 1.0 / np.where(p > 0, p, 1.0)
     bxx, byy, bzz, bxy, bxz, byz = axx * inv, ayy * inv, azz * inv, xy * inv, xz * inv, yz * inv
+    del axx, ayy, azz, inv
     det = (bxx * (byy * bzz - byz * byz) - bxy * (bxy * bzz - byz * bxz)
            + bxz * (bxy * byz - byy * bxz))
+    del bxx, byy, bzz, bxy, bxz, byz
     phi = np.arccos(np.clip(det / 2.0, -1.0, 1.0)) / 3.0
     large = q + 2.0 * p * np.cos(phi)
     small = q + 2.0 * p * np.cos(phi + 2.0 * np.pi / 3.0)
     values = np.stack([small, 3.0 * q - large - small, large], axis=1)
-    rows = np.arange(len(cov))
 
     def vector(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        r0 = np.stack([xx - lam, xy, xz], axis=1)
-        r1 = np.stack([xy, yy - lam, yz], axis=1)
-        r2 = np.stack([xz, yz, zz - lam], axis=1)
-        cands = np.stack([np.cross(r0, r1), np.cross(r0, r2), np.cross(r1, r2)], axis=1)
-        norm2 = np.einsum("mcj,mcj->mc", cands, cands)
-        best = norm2.argmax(axis=1)
-        v, nb = cands[rows, best], norm2[rows, best]
-        scale = (np.einsum("mj,mj->m", r0, r0) + np.einsum("mj,mj->m", r1, r1)
-                 + np.einsum("mj,mj->m", r2, r2))
-        ok = nb > 1e-18 * scale * scale + 1e-300
-        return v / np.sqrt(np.where(ok, nb, 1.0))[:, None], ok
+        # rows r0 = (a0, a1, a2), r1 = (b0, b1, b2), r2 = (c0, c1, c2) of A - lam I; squared
+        # norms summed as (x0² + x2²) + x1², the order numpy's einsum uses for three terms, so
+        # the vectors equal those of the former einsum form bit for bit
+        a0, a1, a2 = xx - lam, xy, xz
+        b0, b1, b2 = xy, yy - lam, yz
+        c0, c1, c2 = xz, yz, zz - lam
+        best = None
+        for u, w in (((a0, a1, a2), (b0, b1, b2)), ((a0, a1, a2), (c0, c1, c2)),
+                     ((b0, b1, b2), (c0, c1, c2))):
+            cross = (u[1] * w[2] - u[2] * w[1], u[2] * w[0] - u[0] * w[2],
+                     u[0] * w[1] - u[1] * w[0])
+            norm2 = (cross[0] * cross[0] + cross[2] * cross[2]) + cross[1] * cross[1]
+            if best is None:
+                best, best_norm2 = list(cross), norm2
+            else:  # the first longest candidate wins ties
+                longer = norm2 > best_norm2
+                for j in range(3):
+                    np.copyto(best[j], cross[j], where=longer)
+                np.copyto(best_norm2, norm2, where=longer)
+        scale = (((a0 * a0 + a2 * a2) + a1 * a1) + ((b0 * b0 + b2 * b2) + b1 * b1)
+                 + ((c0 * c0 + c2 * c2) + c1 * c1))
+        ok = best_norm2 > 1e-18 * scale * scale + 1e-300
+        norm = np.sqrt(np.where(ok, best_norm2, 1.0))
+        return np.stack([best[0] / norm, best[1] / norm, best[2] / norm], axis=1), ok
 
     v_small, ok_small = vector(small)
     v_large, ok_large = vector(large)

@@ -100,6 +100,95 @@ def voxel_components(xyz: np.ndarray, voxel: float, group: np.ndarray | None = N
     return labels[inverse].astype(np.int64)
 
 
+def _is_anchored(frame: GridFrame) -> bool:
+    """True for an axis-aligned frame centred on the local origin (:func:`anchored_frame`)."""
+    return (not np.any(frame.centre)) and np.array_equal(frame.axes, np.eye(2))
+
+
+def _flat_index(frame: GridFrame, xy: np.ndarray) -> np.ndarray:
+    """``frame.flat_index(xy)``, without the rotation for an anchored frame (same cells).
+
+    For an anchored frame :meth:`GridFrame.to_uv` is ``u = (x - 0)·1 + (y - 0)·0``, exactly
+    ``x``; the cell index is then taken from the columns directly (no (n, 2) temporaries).
+    """
+    if not _is_anchored(frame):
+        return frame.flat_index(xy)
+    xy = np.asarray(xy, dtype=np.float64)
+    i = (xy[:, 0] - frame.corner[0]) / frame.cell
+    i = np.clip(np.floor(i, out=i).astype(np.int64), 0, frame.shape[0] - 1)
+    j = (xy[:, 1] - frame.corner[1]) / frame.cell
+    j = np.clip(np.floor(j, out=j).astype(np.int64), 0, frame.shape[1] - 1)
+    i *= frame.shape[1]
+    i += j
+    return i
+
+
+def _grow_cells(cells: np.ndarray, shape: tuple[int, int], offsets: np.ndarray) -> np.ndarray:
+    """Flat cells within ``offsets`` (rows of (di, dj)) of the flat ``cells``, inside the grid.
+
+    The binary dilation of a sparse cell set by the footprint ``offsets`` (sorted, unique),
+    in work proportional to the set, not to the grid (outside the grid counts as empty, as
+    ``scipy.ndimage.binary_dilation`` with ``border_value=0``).
+    """
+    cells = np.asarray(cells, dtype=np.int64)
+    if len(cells) == 0:
+        return cells
+    ci, cj = np.divmod(cells, shape[1])
+    parts = []
+    for di, dj in offsets:
+        i, j = ci + di, cj + dj
+        ok = (i >= 0) & (i < shape[0]) & (j >= 0) & (j < shape[1])
+        parts.append(i[ok] * shape[1] + j[ok])
+    return np.unique(np.concatenate(parts))
+
+
+def _square(reach: int) -> np.ndarray:
+    """Offsets (di, dj) of a (2·reach + 1)² square footprint."""
+    d = np.arange(-reach, reach + 1)
+    return np.stack(np.meshgrid(d, d, indexing="ij"), -1).reshape(-1, 2)
+
+
+def _disk(radius: float) -> np.ndarray:
+    """Offsets (di, dj) with di² + dj² ≤ radius² (cells within a Euclidean distance)."""
+    sq = _square(int(np.floor(radius)))
+    return sq[(sq**2).sum(axis=1) <= radius * radius]
+
+
+def _erode_cells(cells: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """Cells of the sorted flat set ``cells`` whose 3 × 3 neighbourhood lies wholly in the set.
+
+    The binary erosion by a 3 × 3 square with outside-the-grid empty (``border_value=0``).
+    """
+    inside = np.zeros(shape[0] * shape[1], bool)
+    inside[cells] = True
+    ci, cj = np.divmod(cells, shape[1])
+    keep = (ci > 0) & (ci < shape[0] - 1) & (cj > 0) & (cj < shape[1] - 1)
+    cand = cells[keep]
+    for di, dj in _square(1):
+        if di or dj:
+            cand = cand[inside[cand + di * shape[1] + dj]]
+    return cand
+
+
+def _cell_components(cells: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """8-connected component label (0 … c-1) of every cell of the sorted flat set ``cells``."""
+    m = len(cells)
+    pos = np.full(shape[0] * shape[1], -1, np.int64)
+    pos[cells] = np.arange(m)
+    ci, cj = np.divmod(cells, shape[1])
+    rows, cols = [np.arange(m)], [np.arange(m)]
+    for di, dj in ((0, 1), (1, -1), (1, 0), (1, 1)):
+        i, j = ci + di, cj + dj
+        ok = np.flatnonzero((i < shape[0]) & (j >= 0) & (j < shape[1]))
+        other = pos[i[ok] * shape[1] + j[ok]]
+        hit = other >= 0
+        rows.append(ok[hit])
+        cols.append(other[hit])
+    r, c = np.concatenate(rows), np.concatenate(cols)
+    graph = sparse.coo_matrix((np.ones(len(r), np.int8), (r, c)), shape=(m, m))
+    return connected_components(graph, directed=False)[1]
+
+
 @dataclass
 class ColumnGrid:
     """Vertical columns of above-ground points on a 2D grid."""
@@ -113,15 +202,22 @@ class ColumnGrid:
 
 def column_grid(xy: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
     """Per-cell top, bottom, point count and vertical fill of points (HAG in metres)."""
-    flat = frame.flat_index(xy)
+    flat = _flat_index(frame, xy)
     size = frame.size
     top = cell_max(flat, hag, size)
     bottom = cell_min(flat, hag, size)
     count = np.bincount(flat, minlength=size)
     slices = np.floor(hag).astype(np.int64)
     slices -= slices.min() if len(slices) else 0
-    pair = np.unique(flat.astype(np.int64) * (int(slices.max(initial=0)) + 1) + slices)
-    occupied = np.bincount(pair // (int(slices.max(initial=0)) + 1), minlength=size)
+    levels = int(slices.max(initial=0)) + 1
+    pair = flat.astype(np.int64) * levels + slices
+    if size * levels <= 1 << 26:
+        # occupied (cell, 1 m slice) pairs marked on a bit grid: no sort of the points
+        mark = np.zeros(size * levels, bool)
+        mark[pair] = True
+        occupied = np.count_nonzero(mark.reshape(size, levels), axis=1)
+    else:
+        occupied = np.bincount(np.unique(pair) // levels, minlength=size)
     with np.errstate(invalid="ignore"):
         span = np.floor(top) - np.floor(bottom) + 1
         fill = np.where(count > 0, occupied / span, 0.0)
@@ -246,10 +342,15 @@ def anchored_frame(xy: np.ndarray, cell: float, margin_cells: int = 2) -> GridFr
     if cell <= 0:
         raise ValueError("grid cell size must be positive")
     xy = np.asarray(xy, dtype=np.float64)
-    if len(xy) == 0:
+    return _anchored_frame(xy[:, 0], xy[:, 1], cell, margin_cells)
+
+
+def _anchored_frame(x: np.ndarray, y: np.ndarray, cell: float, margin_cells: int) -> GridFrame:
+    """:func:`anchored_frame` from the x and y columns (reduced one column at a time)."""
+    if len(x) == 0:
         return GridFrame(np.zeros(2), np.eye(2), np.zeros(2), float(cell), (1, 1))
-    lo = np.floor(xy.min(axis=0) / cell) - margin_cells
-    hi = np.floor(xy.max(axis=0) / cell) + margin_cells + 1
+    lo = np.floor(np.array([x.min(), y.min()]) / cell) - margin_cells
+    hi = np.floor(np.array([x.max(), y.max()]) / cell) + margin_cells + 1
     return GridFrame(np.zeros(2), np.eye(2), lo * cell, float(cell),
                      tuple(int(v) for v in hi - lo))
 
@@ -405,20 +506,26 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         return structure
     index = np.arange(1, m + 1)
     cell_area = frame.cell**2
-    area = ndimage.sum_labels(np.ones_like(cols.top), labels, index) * cell_area
-    height = ndimage.maximum(np.nan_to_num(cols.top), labels, index)
+    # per-label sums and maxima over the labelled cells only (exact: counts and a maximum)
+    label_flat = labels.ravel()
+    tall_cells = np.flatnonzero(label_flat)
+    tall_label = label_flat[tall_cells]
+    area = np.bincount(tall_label, minlength=m + 1)[1:].astype(np.float64) * cell_area
+    height = np.full(m + 1, -np.inf)
+    np.maximum.at(height, tall_label, top.ravel()[tall_cells])
+    height = height[1:]
     accept = ((height >= opts.structure_min_height_m) & (area <= opts.structure_max_footprint_m2)
               & (height / np.sqrt(area) >= opts.structure_min_slenderness))
     if is_wire.any():
-        wire_flat = frame.flat_index(xyz[is_wire, :2])
-        wire_grid = np.zeros(frame.size, bool)
-        wire_grid[wire_flat] = True
+        # a label is near wires when one of its cells lies within the square reach of a wire
+        # cell (the binary dilation of the wire cells, done on the occupied cells only)
+        wire_cells = np.unique(_flat_index(frame, xyz[is_wire, :2]))
         reach = max(1, int(np.ceil(opts.structure_wire_search_m / frame.cell)))
-        near = ndimage.binary_dilation(wire_grid.reshape(frame.shape),
-                                       structure=np.ones((2 * reach + 1, 2 * reach + 1), bool))
-        accept &= ndimage.maximum(near.astype(np.int8), labels, index) > 0
-    flat_other = frame.flat_index(xyz[other, :2])
-    point_label = labels.ravel()[flat_other]
+        near = np.zeros(frame.size, bool)
+        near[_grow_cells(wire_cells, frame.shape, _square(reach))] = True
+        accept &= np.bincount(tall_label[near[tall_cells]], minlength=m + 1)[1:] > 0
+    flat_other = _flat_index(frame, xyz[other, :2])
+    point_label = label_flat[flat_other]
     labelled = point_label > 0
     if labelled.any():
         median_scatter = ndimage.median(scattering[other[labelled]], point_label[labelled], index)
@@ -428,7 +535,7 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         # footprint is higher than its highest point; at a structure the wires attach at or
         # below its top (shield wires at the peak, phases on the crossarms / insulators)
         wire_idx = np.flatnonzero(is_wire)
-        wire_label = labels.ravel()[frame.flat_index(xyz[wire_idx, :2])]
+        wire_label = label_flat[_flat_index(frame, xyz[wire_idx, :2])]
         over = wire_label > 0
         if over.any():
             lowest_wire = np.full(m + 1, np.inf)
@@ -442,14 +549,18 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
             accept &= ~((lowest_wire[1:] > body_top[1:] + opts.structure_wire_over_m) & leafy)
     if not accept.any():
         return structure
-    core = np.isin(labels, index[accept])
+    keep_label = np.zeros(m + 1, bool)
+    keep_label[1:] = accept
+    core = keep_label[label_flat]
     # the base of a lattice tower is wider than its body: grow through 3D-connected points
-    # that stay within a few cells of the tall core
+    # that stay within a few cells of the tall core (cells within a Euclidean distance of
+    # ``spread`` cells of a core cell: the threshold of a distance transform, done on the
+    # core cells only)
     spread = max(1, int(np.ceil(8.0 / frame.cell)))
-    dist = ndimage.distance_transform_edt(~core)
-    region = dist <= spread
-    in_region = region.ravel()[flat_other]
-    in_core = core.ravel()[flat_other]
+    region = np.zeros(frame.size, bool)
+    region[_grow_cells(np.flatnonzero(core), frame.shape, _disk(spread))] = True
+    in_region = region[flat_other]
+    in_core = core[flat_other]
     cand = other[in_region]
     if len(cand):
         comp = voxel_components(xyz[cand], 1.0)
@@ -457,7 +568,7 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         structure[cand[np.isin(comp, touching)]] = True
     # wire points inside the tall core (crossarms, insulators, attachment hardware)
     wire_idx = np.flatnonzero(is_wire)
-    structure[wire_idx[core.ravel()[frame.flat_index(xyz[wire_idx, :2])]]] = True
+    structure[wire_idx[core[_flat_index(frame, xyz[wire_idx, :2])]]] = True
     return structure
 
 
@@ -468,8 +579,10 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
     high = np.flatnonzero(free & (hag >= opts.building_min_hag_m))
     if len(high) == 0:
         return building
-    grid = anchored_frame(xyz[high, :2], opts.building_cell_m)
-    flat = grid.flat_index(xyz[high, :2])
+    xy_high = xyz[high, :2]
+    grid = anchored_frame(xy_high, opts.building_cell_m)
+    flat = _flat_index(grid, xy_high)
+    del xy_high
     # statistics on occupied cells only (the grid spans the bounding box of the points)
     cells, k = np.unique(flat, return_inverse=True)
     m = len(cells)
@@ -486,19 +599,20 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
     pitch = np.bincount(k, np.sqrt(np.maximum(1 - nz**2, 0)) / np.maximum(nz, 0.5), m) / count
     allowed = opts.building_max_roof_spread_m + 0.5 * grid.cell * pitch
     spread = np.sqrt(np.maximum(var, 0))
-    roof = np.zeros(grid.size, bool)
-    roof[cells[(count >= 2) & (roof_count >= 0.6 * count) & (spread <= allowed)]] = True
-    roof = ndimage.binary_closing(roof.reshape(grid.shape), structure=np.ones((3, 3)))
-    labels, n_lab = ndimage.label(roof, structure=np.ones((3, 3)))
-    del roof
-    if n_lab == 0:
+    roof_cells = cells[(count >= 2) & (roof_count >= 0.6 * count) & (spread <= allowed)]
+    # binary closing (3 × 3), 8-connected labelling and the final 3 × 3 dilation, all on the
+    # sparse set of roof cells: the same cells as scipy.ndimage on the whole grid, in work
+    # proportional to the roof cells (the grid spans the bounding box of a bent corridor)
+    shape = grid.shape
+    roof_cells = _erode_cells(_grow_cells(roof_cells, shape, _square(1)), shape)
+    if len(roof_cells) == 0:
         return building
-    area = np.bincount(labels.ravel(), minlength=n_lab + 1) * grid.cell**2
-    big = area >= opts.building_min_area_m2
-    big[0] = False
-    footprint = ndimage.binary_dilation(big[labels], structure=np.ones((3, 3)))
-    del labels
-    building[high[footprint.ravel()[flat]]] = True
+    label = _cell_components(roof_cells, shape)
+    area = np.bincount(label) * grid.cell**2
+    big_cells = roof_cells[area[label] >= opts.building_min_area_m2]
+    footprint = np.zeros(grid.size, bool)
+    footprint[_grow_cells(big_cells, shape, _square(1))] = True
+    building[high[footprint[flat]]] = True
     return building
 
 
@@ -534,7 +648,8 @@ class GroundRoofs:
 
 
 def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
-                 cells: np.ndarray, k: np.ndarray, min_points: int = 4):
+                 cells: np.ndarray, k: np.ndarray, min_points: int = 4,
+                 cnt: np.ndarray | None = None):
     """Least-squares plane z = a + b·dx + c·dy per occupied cell (dx, dy from the cell centre).
 
     ``dx``, ``dy`` are the points' offsets from their cell centres [m], ``cells`` the
@@ -543,7 +658,8 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     NaN. Work and memory scale with the points and occupied cells, not the grid's extent.
     """
     m = len(cells)
-    cnt = np.bincount(k, minlength=m).astype(np.float64)
+    if cnt is None:  # points per cell (float) when the caller has not counted them
+        cnt = np.bincount(k, minlength=m).astype(np.float64)
     z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
     zr = z - z0[k]
 
@@ -551,8 +667,13 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
         return np.bincount(k, w, minlength=m)
 
     sx, sy, sz = s(dx), s(dy), s(zr)
-    sxx, syy, sxy = s(dx * dx), s(dy * dy), s(dx * dy)
-    sxz, syz = s(dx * zr), s(dy * zr)
+    w = np.multiply(dx, dx)  # one point-sized temporary, reused for every product
+    sxx = s(w)
+    syy = s(np.multiply(dy, dy, out=w))
+    sxy = s(np.multiply(dx, dy, out=w))
+    sxz = s(np.multiply(dx, zr, out=w))
+    syz = s(np.multiply(dy, zr, out=w))
+    del w
     ok = np.flatnonzero(cnt >= min_points)
     a_mat = np.empty((len(ok), 3, 3))
     for r, row in enumerate(((cnt, sx, sy), (sx, sxx, sxy), (sy, sxy, syy))):
@@ -564,18 +685,23 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     sol = np.full((len(ok), 3), np.nan)
     sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
-    # residuals built in place (one point-sized temporary at a time)
-    res = coef[k, 1]
+    # residuals built in place (one point-sized temporary at a time), the same operations
+    # in the same order as z - ((b·dx + a) + c·dy); per-cell coefficients gathered from
+    # contiguous columns
+    a0, b0, c0 = (np.ascontiguousarray(coef[:, j]) for j in range(3))
+    res = np.take(b0, k)
     res *= dx
-    res += coef[k, 0]
-    tmp = coef[k, 2]
+    res += np.take(a0, k)
+    tmp = np.take(c0, k)
     tmp *= dy
     res += tmp
     del tmp
     np.subtract(zr, res, out=res)
     del zr
+    np.nan_to_num(res, copy=False, nan=1e3)
+    np.square(res, out=res)
     with np.errstate(invalid="ignore", divide="ignore"):
-        rms = np.sqrt(np.bincount(k, np.nan_to_num(res, nan=1e3) ** 2, minlength=m) / cnt)
+        rms = np.sqrt(np.bincount(k, res, minlength=m) / cnt)
     rms[cnt < min_points] = np.nan
     return coef[:, 0] + z0, coef[:, 1], coef[:, 2], rms, cnt
 
@@ -676,36 +802,43 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
     sel = slice(None) if which is None else np.asarray(which)
-    xy = xyz[sel, :2]
+    x = xyz[sel, 0]
+    y = xyz[sel, 1]
     z = xyz[sel, 2]
     n = len(z)
-    grid = anchored_frame(xy, cell_m, margin_cells=ring_cells + 2)
+    grid = _anchored_frame(x, y, cell_m, ring_cells + 2)
     none = np.zeros(0, np.int64)
     empty = GroundRoofs(np.zeros(n, bool), grid, none, np.zeros(0), np.zeros(0), 0)
     if n < 4:
         return empty
     shape = grid.shape
-    uv = grid.to_uv(xy)
-    del xy
-    uv -= grid.corner
-    f = uv / grid.cell  # the same cell indices as grid.flat_index, from one projection
-    flat = (np.clip(np.floor(f[:, 0]).astype(np.int64), 0, shape[0] - 1) * shape[1]
-            + np.clip(np.floor(f[:, 1]).astype(np.int64), 0, shape[1] - 1))
-    del f
+    # grid coordinates: the anchored grid is axis-aligned through the local origin, so its
+    # (u, v) are x and y less the corner (the same values and cells as grid.flat_index)
+    u = x - grid.corner[0]
+    v = y - grid.corner[1]
+    del x, y
+    fi = u / grid.cell
+    flat = np.clip(np.floor(fi, out=fi).astype(np.int64), 0, shape[0] - 1)
+    fi = np.divide(v, grid.cell, out=fi)
+    flat *= shape[1]
+    flat += np.clip(np.floor(fi, out=fi).astype(np.int64), 0, shape[1] - 1)
+    del fi
     # occupied cells only: the grid spans the survey's bounding box, which for a long or bent
     # corridor is many times the area holding points
-    cells = np.flatnonzero(np.bincount(flat, minlength=grid.size))
+    per_cell = np.bincount(flat, minlength=grid.size)
+    cells = np.flatnonzero(per_cell)
     m = len(cells)
+    cnt = per_cell[cells].astype(np.float64)
+    del per_cell
     cid = np.full(grid.size, -1, np.int32)
     cid[cells] = np.arange(m, dtype=np.int32)
     k = cid[flat]
     del flat
     ci, cj = np.divmod(cells, shape[1])
-    dx = uv[:, 0] - ((ci + 0.5) * grid.cell)[k]
-    dy = uv[:, 1] - ((cj + 0.5) * grid.cell)[k]
-    del uv
-    zc, gu, gv, rms, _ = _cell_planes(z, dx, dy, grid, cells, k)
-    del dx, dy
+    u -= ((ci + 0.5) * grid.cell)[k]  # offsets from the cell centre
+    v -= ((cj + 0.5) * grid.cell)[k]
+    zc, gu, gv, rms, _ = _cell_planes(z, u, v, grid, cells, k, cnt=cnt)
+    del u, v
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
     planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & (np.hypot(gu, gv) <= max_cell_gradient)
@@ -839,18 +972,17 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     col_frame = anchored_frame(xyz[:, :2], opts.column_cell_m)
     cols = column_grid(xyz[:, :2], hag, col_frame)
     filled_cell = (cols.fill >= opts.column_min_fill) & (np.nan_to_num(cols.top) - np.nan_to_num(cols.bottom) >= 4.0)
-    filled_point = filled_cell.ravel()[col_frame.flat_index(xyz[:, :2])]
+    filled_point = filled_cell.ravel()[_flat_index(col_frame, xyz[:, :2])]
     is_wire, segment_id, segments = find_wires(xyz, hag, feats, filled_point, opts)
     structure = find_structures(xyz, hag, is_wire, feats.scattering, col_frame, opts)
     is_wire &= ~structure
     if structure.any() and is_wire.any() and segments:
         # short "wire" segments lying mostly on a structure are its members (bracing, arms)
-        has_structure = np.zeros(col_frame.size, bool)
-        has_structure[col_frame.flat_index(xyz[structure, :2])] = True
-        footprint = ndimage.binary_dilation(has_structure.reshape(col_frame.shape),
-                                            structure=np.ones((3, 3), bool)).ravel()
+        structure_cells = np.unique(_flat_index(col_frame, xyz[structure, :2]))
+        footprint = np.zeros(col_frame.size, bool)
+        footprint[_grow_cells(structure_cells, col_frame.shape, _square(1))] = True
         w = np.flatnonzero(is_wire & (segment_id >= 0))
-        on = footprint[col_frame.flat_index(xyz[w, :2])]
+        on = footprint[_flat_index(col_frame, xyz[w, :2])]
         m = len(segments)
         share = (np.bincount(segment_id[w], weights=on, minlength=m)
                  / np.maximum(np.bincount(segment_id[w], minlength=m), 1))
