@@ -1538,14 +1538,27 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
     best_d = np.full(len(cells), np.inf)
     best_state = np.zeros(len(cells), dtype=int)
     best_frac = np.zeros(len(cells))
+    # An upper bound of each cell's distance to the nearest target curve: its distance to the
+    # nearest vertex of any of them. A curve whose bounding box lies farther than the bound
+    # cannot be the nearest, so each curve is measured only from the cells that could reach it
+    # (the same result as measuring every cell from every curve, in time ~ cells, not
+    # cells × spans, on a long line).
+    bound, _ = cKDTree(np.concatenate([states[k].curves["survey"] for k in targets])
+                       ).query(cell_xyz)
     for k in targets:                                    # a loop over wires
         st = states[k]
-        d, _, param = polyline_distance(cell_xyz, st.curves["survey"])
-        better = d < best_d
-        best_d = np.where(better, d, best_d)
-        best_state = np.where(better, k, best_state)
-        best_frac = np.where(better, np.interp(param, np.arange(len(st.curves["survey"])),
-                                               st.fractions["survey"]), best_frac)
+        curve = st.curves["survey"]
+        gap = np.maximum(np.maximum(curve.min(axis=0) - cell_xyz, cell_xyz - curve.max(axis=0)),
+                         0.0)
+        near = np.flatnonzero(np.sqrt(np.einsum("ij,ij->i", gap, gap)) <= bound + 1e-9)
+        if near.size == 0:
+            continue
+        d, _, param = polyline_distance(cell_xyz[near], curve)
+        better = d < best_d[near]
+        sel = near[better]
+        best_d[sel] = d[better]
+        best_state[sel] = k
+        best_frac[sel] = np.interp(param[better], np.arange(len(curve)), st.fractions["survey"])
     tree_of_cell = tops.cell_tree[cells]
     order = np.lexsort((best_d, tree_of_cell))
     first = np.ones(len(order), dtype=bool)
