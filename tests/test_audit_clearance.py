@@ -197,3 +197,38 @@ def test_clearing_shift_hand_example():
     assert clearing_shift(np.arange(0.0, 10.5, 1.0), 2.0)[0] == pytest.approx(2.0)
     # Nothing within 2 m: negative, the room left.
     assert clearing_shift(np.array([3.0, -5.0]), 2.0)[0] == pytest.approx(-1.0)
+
+
+def test_nearest_curve_equals_every_point_against_every_segment():
+    # Reference: brute force over every segment of every curve (point-to-segment distance by
+    # clipped orthogonal projection, common practice (no source)), independent of the
+    # bounding-box pruning of nearest_curve.
+    from clearaudit.audit.engine import nearest_curve
+
+    rng = np.random.default_rng(5)
+    curves = []
+    for k in range(12):  # twelve sagging wires in a row along x, at three heights
+        x = np.linspace(300.0 * (k // 3), 300.0 * (k // 3 + 1), 61)
+        y = np.full_like(x, 4.0 * (k % 3))
+        z = 20.0 + 0.0004 * (x - x.mean()) ** 2 + 3.0 * (k % 3)
+        curves.append(np.c_[x, y, z])
+    pts = np.c_[rng.uniform(-50, 1250, 4000), rng.uniform(-60, 60, 4000), rng.uniform(0, 40, 4000)]
+    d, which, param = nearest_curve(pts, curves)
+    best = np.full(len(pts), np.inf)
+    for c in curves:
+        p0, p1 = c[:-1], c[1:]
+        seg = p1 - p0
+        t = np.clip(np.einsum("nsk,sk->ns", pts[:, None, :] - p0[None], seg)
+                    / np.einsum("sk,sk->s", seg, seg), 0.0, 1.0)
+        dist = np.linalg.norm(pts[:, None, :] - (p0[None] + t[..., None] * seg[None]), axis=2)
+        best = np.minimum(best, dist.min(axis=1))
+    np.testing.assert_allclose(d, best, rtol=0, atol=1e-9)
+    # the reported curve and parameter give back that distance
+    for j, c in enumerate(curves):
+        mine = which == j
+        i0 = np.minimum(np.floor(param[mine]).astype(int), len(c) - 2)
+        f = param[mine] - i0
+        on = c[i0] + f[:, None] * (c[i0 + 1] - c[i0])
+        np.testing.assert_allclose(np.linalg.norm(pts[mine] - on, axis=1), d[mine], atol=1e-9)
+    empty = nearest_curve(np.zeros((0, 3)), curves)
+    assert all(len(a) == 0 for a in empty)

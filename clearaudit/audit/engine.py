@@ -1535,30 +1535,13 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
         return
     cells = np.flatnonzero(np.isin(tops.cell_tree, only))
     cell_xyz = tops.cell_xyz[cells]
-    best_d = np.full(len(cells), np.inf)
-    best_state = np.zeros(len(cells), dtype=int)
+    best_d, which, param = nearest_curve(cell_xyz, [states[k].curves["survey"] for k in targets])
+    best_state = np.asarray(targets)[which]
     best_frac = np.zeros(len(cells))
-    # An upper bound of each cell's distance to the nearest target curve: its distance to the
-    # nearest vertex of any of them. A curve whose bounding box lies farther than the bound
-    # cannot be the nearest, so each curve is measured only from the cells that could reach it
-    # (the same result as measuring every cell from every curve, in time ~ cells, not
-    # cells × spans, on a long line).
-    bound, _ = cKDTree(np.concatenate([states[k].curves["survey"] for k in targets])
-                       ).query(cell_xyz)
-    for k in targets:                                    # a loop over wires
-        st = states[k]
-        curve = st.curves["survey"]
-        gap = np.maximum(np.maximum(curve.min(axis=0) - cell_xyz, cell_xyz - curve.max(axis=0)),
-                         0.0)
-        near = np.flatnonzero(np.sqrt(np.einsum("ij,ij->i", gap, gap)) <= bound + 1e-9)
-        if near.size == 0:
-            continue
-        d, _, param = polyline_distance(cell_xyz[near], curve)
-        better = d < best_d[near]
-        sel = near[better]
-        best_d[sel] = d[better]
-        best_state[sel] = k
-        best_frac[sel] = np.interp(param[better], np.arange(len(curve)), st.fractions["survey"])
+    for j, k in enumerate(targets):
+        mine = which == j
+        best_frac[mine] = np.interp(param[mine], np.arange(len(states[k].curves["survey"])),
+                                    states[k].fractions["survey"])
     tree_of_cell = tops.cell_tree[cells]
     order = np.lexsort((best_d, tree_of_cell))
     first = np.ones(len(order), dtype=bool)
@@ -1581,6 +1564,52 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
         }
         _tree_fields(row, tops, t, dist, risk, states[int(reach_state[t])])
         rows.append(row)
+
+
+def nearest_curve(points: np.ndarray, curves: list[np.ndarray]
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Nearest of several polylines for every point: distance, curve index, vertex parameter.
+
+    Parameters
+    ----------
+    points
+        Shape (n, 3). [m]
+    curves
+        Polylines, each of shape (k_i, 3) with k_i >= 2. [m]
+
+    Returns
+    -------
+    distance : (n,) [m]
+    curve : (n,) index into ``curves`` (the first of equally near curves)
+    parameter : (n,) vertex index plus fraction on that curve (see
+        :func:`~clearaudit.audit.clearance.polyline_distance`)
+
+    Notes
+    -----
+    The same result as measuring every point from every curve, in time about proportional
+    to the number of points rather than points × curves: the distance to the nearest vertex of
+    any curve bounds each point's distance from above, and a curve whose bounding box lies
+    farther than that bound is not measured from that point.
+    """
+    pts = np.asarray(points, dtype=float).reshape(-1, 3)
+    best_d = np.full(len(pts), np.inf)
+    best_curve = np.zeros(len(pts), dtype=np.int64)
+    best_param = np.zeros(len(pts))
+    if len(pts) == 0 or not curves:
+        return best_d, best_curve, best_param
+    bound, _ = cKDTree(np.concatenate(curves)).query(pts)
+    for j, curve in enumerate(curves):                   # a loop over curves
+        gap = np.maximum(np.maximum(curve.min(axis=0) - pts, pts - curve.max(axis=0)), 0.0)
+        near = np.flatnonzero(np.sqrt(np.einsum("ij,ij->i", gap, gap)) <= bound + 1e-9)
+        if near.size == 0:
+            continue
+        d, _, param = polyline_distance(pts[near], curve)
+        better = d < best_d[near]
+        sel = near[better]
+        best_d[sel] = d[better]
+        best_curve[sel] = j
+        best_param[sel] = param[better]
+    return best_d, best_curve, best_param
 
 
 def _tree_fields(row: dict, tops, t: int, dist: np.ndarray, risk: np.ndarray,

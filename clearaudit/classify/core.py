@@ -174,7 +174,8 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     use = ~isolated
     flat = location.flat
     for _ in range(2):
-        zmin = cell_min(flat[use], z[use], frame.size).reshape(frame.shape)
+        # excluded points count as +inf: cells with only excluded points stay empty (NaN)
+        zmin = cell_min(flat, np.where(use, z, np.inf), frame.size).reshape(frame.shape)
         pits, lowest = pit_cells(zmin, opts.noise_low_depth_m)
         if not pits.any():
             break
@@ -201,6 +202,9 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         info["ground_source"] = "SMRF"
         info["smrf_slope"] = result.slope_threshold
         del result
+        # the weights of every point are not kept through the ground steps (memory); the
+        # refinement samples the ground points only, HAG builds them again
+        location.release_sampler()
         if opts.ground_refine:
             is_ground, threshold = refine_ground(
                 xyz, is_ground, frame.with_cell(opts.ground_cell_m),

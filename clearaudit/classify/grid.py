@@ -5,10 +5,46 @@ that runs diagonally through its bounding box does not produce a grid that is mo
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
+
+from ..threads import inner_threads
+
+# points per chunk of the per-point passes (bilinear weights, sampling): small enough that the
+# temporaries stay in cache-friendly sizes, large enough that the Python overhead is nil
+_CHUNK = 1 << 20
+
+
+def thread_count() -> int:
+    """Threads for the chunked per-point and per-row passes: :func:`clearaudit.threads.inner_threads`.
+
+    One inside a tile thread of the in-process engine, else the run's ``--threads``, the
+    ``CLEARAUDIT_THREADS`` environment variable or every core; 1 runs every chunk inline.
+    numpy and scipy.ndimage release the GIL in these passes.
+    """
+    return inner_threads()
+
+
+def run_chunks(work: Callable[[int, int], None], n: int, chunk: int = _CHUNK,
+               threads: int | None = None) -> None:
+    """Call ``work(start, stop)`` on consecutive ranges covering ``range(n)``.
+
+    The ranges are independent (each writes its own part of the outputs), so they may run on
+    :func:`thread_count` threads; with one thread, or a single range, they run inline.
+    """
+    threads = thread_count() if threads is None else threads
+    bounds = [(start, min(n, start + chunk)) for start in range(0, n, chunk)]
+    if threads <= 1 or len(bounds) <= 1:
+        for start, stop in bounds:
+            work(start, stop)
+        return
+    with ThreadPoolExecutor(max_workers=min(threads, len(bounds))) as pool:
+        for future in [pool.submit(work, start, stop) for start, stop in bounds]:
+            future.result()
 
 
 @dataclass(frozen=True)
@@ -176,45 +212,79 @@ class PointLocation:
 
     ``fu = (u - u0) / cell`` and ``fv = (v - v0) / cell``; float32 keeps better than 1 mm
     within 4 km of the grid corner at a 1 m cell (24-bit mantissa).
+
+    The bilinear weights (:meth:`sampler`) are computed once and kept with the location, so
+    every stage that samples a grid of this frame at these points shares them; a
+    :meth:`subset` inherits the weights of its points when they are already known.
     """
 
     fu: np.ndarray
     fv: np.ndarray
     shape: tuple[int, int]
+    _cache: dict = field(default_factory=dict, init=False, compare=False, repr=False)
 
     def __len__(self) -> int:
         return len(self.fu)
 
     def subset(self, which: np.ndarray) -> PointLocation:
         """The locations of some of the points (index array or boolean mask)."""
-        return PointLocation(self.fu[which], self.fv[which], self.shape)
+        part = PointLocation(self.fu[which], self.fv[which], self.shape)
+        sampler = self._cache.get("sampler")
+        if sampler is not None:
+            part._cache["sampler"] = sampler.subset(which)
+        return part
 
     @property
     def flat(self) -> np.ndarray:
         """Flat cell index of every point, clipped into the grid (int32 or int64)."""
         n_u, n_v = self.shape
         itype = np.int32 if n_u * n_v < 2**31 else np.int64
-        i = np.clip(self.fu, 0, n_u - 1).astype(itype)
-        j = np.clip(self.fv, 0, n_v - 1).astype(itype)
-        i *= n_v
-        i += j
-        return i
+        out = np.empty(len(self.fu), itype)
+
+        def work(lo: int, hi: int) -> None:
+            i = np.clip(self.fu[lo:hi], 0, n_u - 1).astype(itype)
+            j = np.clip(self.fv[lo:hi], 0, n_v - 1).astype(itype)
+            i *= n_v
+            np.add(i, j, out=out[lo:hi])
+
+        run_chunks(work, len(out))
+        return out
 
     def sampler(self) -> BilinearSampler:
-        """Bilinear weights of the points with respect to the cell centres."""
+        """Bilinear weights of the points with respect to the cell centres (computed once)."""
+        sampler = self._cache.get("sampler")
+        if sampler is None:
+            sampler = self._cache["sampler"] = self._make_sampler()
+        return sampler
+
+    def release_sampler(self) -> None:
+        """Forget the cached bilinear weights (13 bytes a point) until they are needed again."""
+        self._cache.pop("sampler", None)
+
+    def _make_sampler(self) -> BilinearSampler:
         n_u, n_v = self.shape
-        outside = (self.fu < 0) | (self.fu > n_u) | (self.fv < 0) | (self.fv > n_v)
+        n = len(self.fu)
         m_u, m_v = max(n_u, 2), max(n_v, 2)  # grids of one cell across are padded to two
-        fu = np.clip(self.fu - np.float32(0.5), 0, n_u - 1)
-        fv = np.clip(self.fv - np.float32(0.5), 0, n_v - 1)
         itype = np.int32 if m_u * m_v < 2**31 else np.int64
-        i0 = np.minimum(fu.astype(itype), m_u - 2)
-        j0 = np.minimum(fv.astype(itype), m_v - 2)
-        fu -= i0
-        fv -= j0
-        i0 *= m_v
-        i0 += j0
-        return BilinearSampler(i0, fu, fv, outside, (n_u, n_v), m_v)
+        outside = np.empty(n, bool)
+        k00 = np.empty(n, itype)
+        wa = np.empty(n, np.float32)
+        wb = np.empty(n, np.float32)
+
+        def work(lo: int, hi: int) -> None:
+            fu_in, fv_in = self.fu[lo:hi], self.fv[lo:hi]
+            outside[lo:hi] = (fu_in < 0) | (fu_in > n_u) | (fv_in < 0) | (fv_in > n_v)
+            fu = np.clip(fu_in - np.float32(0.5), 0, n_u - 1, out=wa[lo:hi])
+            fv = np.clip(fv_in - np.float32(0.5), 0, n_v - 1, out=wb[lo:hi])
+            i0 = np.minimum(fu.astype(itype), m_u - 2)
+            j0 = np.minimum(fv.astype(itype), m_v - 2)
+            fu -= i0
+            fv -= j0
+            i0 *= m_v
+            np.add(i0, j0, out=k00[lo:hi])
+
+        run_chunks(work, n)
+        return BilinearSampler(k00, wa, wb, outside, (n_u, n_v), m_v)
 
 
 @dataclass(frozen=True)
@@ -241,27 +311,39 @@ class BilinearSampler:
             g = np.pad(g, ((0, max(0, 2 - g.shape[0])), (0, max(0, 2 - g.shape[1]))), mode="edge")
         g = g.ravel()
         dtype = g.dtype if g.dtype in (np.float32, np.float64) else np.float64
-        a = self.a.astype(dtype, copy=False)
-        b = self.b.astype(dtype, copy=False)
-        k = self.k00
-        v00 = g[k]
-        lower = g[k + 1]
-        lower -= v00
-        lower *= b
-        lower += v00
-        k = k + self.row
-        v00 = g[k]
-        upper = g[k + 1]
-        upper -= v00
-        upper *= b
-        upper += v00
-        upper -= lower
-        upper *= a
-        upper += lower
-        if self.outside.any():
-            upper = upper.astype(np.result_type(dtype, np.float32), copy=False)
-            upper[self.outside] = np.nan
-        return upper
+        if g.dtype != dtype:
+            g = g.astype(dtype)
+        out = np.empty(len(self.k00), dtype)
+        row = self.row
+
+        def work(lo: int, hi: int) -> None:
+            # lower = v00 + b (v01 - v00), upper = v10 + b (v11 - v10), value = lower + a (upper - lower)
+            a = self.a[lo:hi].astype(dtype, copy=False)
+            b = self.b[lo:hi].astype(dtype, copy=False)
+            k = self.k00[lo:hi]
+            v00 = g[k]
+            k = k + 1
+            lower = g[k]
+            lower -= v00
+            lower *= b
+            lower += v00
+            k += row - 1
+            g.take(k, out=v00)
+            k += 1
+            upper = out[lo:hi]
+            g.take(k, out=upper)
+            upper -= v00
+            upper *= b
+            upper += v00
+            upper -= lower
+            upper *= a
+            upper += lower
+            outside = self.outside[lo:hi]
+            if outside.any():
+                upper[outside] = np.nan
+
+        run_chunks(work, len(out))
+        return out
 
 
 def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
@@ -296,12 +378,13 @@ def cell_mean(flat: np.ndarray, values: np.ndarray, size: int,
     return mean, count
 
 
-def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8) -> np.ndarray:
+def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8, *,
+            plan: InpaintPlan | None = None) -> np.ndarray:
     """Fill NaN cells with a smooth (near-harmonic) interpolant of the known cells.
 
     Cells farther than ``max_cells`` (Chebyshev distance) from any known cell first take the
     value of the nearest known cell (found on blocks of about ``max_cells / 15`` cells, see
-    :func:`_nearest_block_value`); the cells in between are filled coarse-to-fine: the grid is
+    :class:`InpaintPlan`); the cells in between are filled coarse-to-fine: the grid is
     averaged down by 2 × 2 blocks (known cells only) until every block is known, then on the
     way back up each level takes the coarser solution as a start and relaxes the unknown cells
     with ``sweeps`` Jacobi sweeps of the Laplace equation (a cascadic multigrid, in float32;
@@ -315,6 +398,10 @@ def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8) -> np.ndarra
         Distance limit of the smooth fill. [cells]
     sweeps
         Jacobi sweeps per level.
+    plan
+        The work that depends only on where the grid is unknown, from :meth:`InpaintPlan.for_grid`
+        (reuse it for several grids with the same unknown cells). Computed when ``None`` or
+        when it does not match the grid.
 
     Returns
     -------
@@ -334,88 +421,228 @@ def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8) -> np.ndarra
     Photogrammetry and Remote Sensing 77, 21-30.
     """
     out = np.array(grid, dtype=np.float64, copy=True)
+    if out.ndim != 2:
+        raise ValueError("inpaint expects a 2D grid")
     unknown = np.isnan(out)
-    if not unknown.any():
+    if plan is None or not plan.matches(unknown, max_cells):
+        plan = InpaintPlan(unknown, max_cells)
+    if not plan.any_unknown:
         return out
-    if unknown.all():
+    if plan.all_unknown:
         return np.zeros_like(out)
-    # cells more than max_cells from data (Chebyshev distance: two separable 1D max filters,
-    # far cheaper than a distance transform); only when there are any, find their nearest
-    near_data = ndimage.maximum_filter(~unknown, size=2 * max_cells + 1, mode="constant")
-    far = unknown & ~near_data
-    if far.any():
-        out[far] = _nearest_block_value(out, unknown, far, max_cells)
-    known = ~unknown | far
+    plan.fill_far(out)
     # the fill is computed in float32 (half the memory traffic; rounding < 0.1 mm below
     # 1 km of local height), the known cells keep their exact values
-    filled = _cascade(np.where(known, out, 0.0).astype(np.float32), known, sweeps)
-    return np.where(known, out, filled)
+    values = np.where(plan.known, out, 0.0).astype(np.float32)
+    filled = _cascade(values, plan.levels, sweeps)
+    np.copyto(out, filled, where=plan.free)
+    return out
 
 
-def _nearest_block_value(values: np.ndarray, unknown: np.ndarray, which: np.ndarray,
-                         max_cells: int) -> np.ndarray:
-    """Value near the nearest known cell for the cells in ``which`` (all farther than
-    ``max_cells`` from any known cell).
+class InpaintPlan:
+    """What :func:`inpaint` computes from the unknown cells alone, reusable across grids.
 
-    The grid is cut into blocks of ``b × b`` cells (``b ≈ max_cells / 15``, at least 1); a
-    block is known when it holds a known cell and takes the mean of its known cells; each
-    queried cell takes the value of the block nearest to its own block (Euclidean distance
-    transform of the block grid). With ``b = 1`` this is the nearest known cell; with larger
-    blocks the position of the nearest data is found within ``b`` cells of a distance of
-    more than ``max_cells`` — a far cheaper transform, as good for a gap far from data.
+    Parameters
+    ----------
+    unknown
+        True where the grid is unknown (NaN), shape (n_u, n_v).
+    max_cells
+        Distance limit of the smooth fill. [cells]
+
+    Notes
+    -----
+    The far cells (farther than ``max_cells`` from any known cell, Chebyshev distance, by two
+    separable 1D max filters) take the mean of the known cells of the ``b × b`` block
+    (``b = max(1, max_cells // 15)``) nearest to their own block (Euclidean distance transform
+    of the block grid): with ``b = 1`` this is the nearest known cell; with larger blocks the
+    position of the nearest data is found within ``b`` cells of a distance of more than
+    ``max_cells``. The plan holds the far cells and the block each one reads, the block counts,
+    and per level of the cascade the known cells, the block weights and the strips of rows that
+    hold free cells (the Jacobi sweeps only visit those).
     """
-    b = max(1, max_cells // 15)
-    n_u, n_v = values.shape
-    pu, pv = (-n_u) % b, (-n_v) % b
-    w = np.pad((~unknown).astype(np.float64), ((0, pu), (0, pv)))
-    v = np.pad(np.where(unknown, 0.0, values), ((0, pu), (0, pv)))
-    shape = (w.shape[0] // b, b, w.shape[1] // b, b)
-    count = w.reshape(shape).sum(axis=(1, 3))
-    total = v.reshape(shape).sum(axis=(1, 3))
-    block_value = total / np.maximum(count, 1.0)
-    _, (ii, jj) = ndimage.distance_transform_edt(count == 0, return_indices=True)
-    qi, qj = np.nonzero(which)
-    qi //= b
-    qj //= b
-    return block_value[ii[qi, qj], jj[qi, qj]]
+
+    def __init__(self, unknown: np.ndarray, max_cells: int = 60) -> None:
+        unknown = np.asarray(unknown, bool)
+        if unknown.ndim != 2:
+            raise ValueError("the unknown mask of an inpainting plan must be 2D")
+        self.unknown = unknown
+        self.max_cells = int(max_cells)
+        self.any_unknown = bool(unknown.any())
+        self.all_unknown = self.any_unknown and bool(unknown.all())
+        self.far_cells = np.zeros(0, np.intp)
+        if not self.any_unknown or self.all_unknown:
+            self.known = ~unknown
+            self.free = unknown
+            self.levels: list[_Level] = []
+            return
+        near_data = ndimage.maximum_filter(~unknown, size=2 * self.max_cells + 1, mode="constant")
+        far = unknown & ~near_data
+        del near_data
+        self.block = b = max(1, self.max_cells // 15)
+        n_u, n_v = unknown.shape
+        self.padded = (n_u + (-n_u) % b, n_v + (-n_v) % b)
+        if far.any():
+            w = np.zeros(self.padded)
+            w[:n_u, :n_v] = ~unknown
+            self.block_count = _block_sum(w, b)
+            del w
+            _, (ii, jj) = ndimage.distance_transform_edt(self.block_count == 0, return_indices=True)
+            nearest = ii * self.block_count.shape[1] + jj
+            del ii, jj
+            qi, qj = np.nonzero(far)
+            self.far_cells = qi * n_v + qj
+            qi //= b
+            qj //= b
+            self.far_source = nearest[qi, qj]
+            del qi, qj, nearest
+        self.known = ~unknown | far
+        self.free = ~self.known
+        self.levels = _levels(self.known)
+
+    @classmethod
+    def for_grid(cls, grid: np.ndarray, max_cells: int = 60) -> InpaintPlan:
+        """The plan for the NaN cells of ``grid``."""
+        return cls(np.isnan(np.asarray(grid, dtype=np.float64)), max_cells)
+
+    def matches(self, unknown: np.ndarray, max_cells: int) -> bool:
+        """Whether the plan was made for these unknown cells and distance limit."""
+        return (int(max_cells) == self.max_cells and unknown.shape == self.unknown.shape
+                and np.array_equal(unknown, self.unknown))
+
+    def fill_far(self, out: np.ndarray) -> None:
+        """Set the far cells of ``out`` (NaN where unknown) to their nearest block's mean."""
+        if len(self.far_cells) == 0:
+            return
+        n_u, n_v = out.shape
+        v = np.zeros(self.padded)
+        np.copyto(v[:n_u, :n_v], out, where=~self.unknown)
+        total = _block_sum(v, self.block)
+        del v
+        block_value = total / np.maximum(self.block_count, 1.0)
+        out.ravel()[self.far_cells] = block_value.ravel()[self.far_source]
 
 
-def _cascade(values: np.ndarray, known: np.ndarray, sweeps: int) -> np.ndarray:
-    if known.all():
+def _block_sum(values: np.ndarray, b: int) -> np.ndarray:
+    """Sums over ``b × b`` blocks (shape divisible by ``b``), in the order of
+    ``values.reshape(m, b, n, b).sum(axis=(1, 3))``: rows of a block one after the other, each
+    row's ``b`` cells summed first (bit-identical, and faster than the 4D reduction)."""
+    x = values.reshape(values.shape[0] // b, b, values.shape[1] // b, b)
+    total = None
+    for i in range(b):
+        part = x[:, i, :, 0].copy()
+        for j in range(1, b):
+            part += x[:, i, :, j]
+        if total is None:
+            total = part
+        else:
+            total += part
+    return total
+
+
+@dataclass
+class _Level:
+    """One level of the cascade: its known cells, the weights of its 2 × 2 coarsening and
+    the boxes (rows r0:r1, columns c0:c1) that hold all its free cells."""
+
+    known: np.ndarray
+    free: np.ndarray
+    weight: np.ndarray | None  # max(known cells per 2 × 2 block, 1), float32; None at the last level
+    boxes: list[tuple[int, int, int, int]]
+
+
+def _levels(known: np.ndarray) -> list[_Level]:
+    levels: list[_Level] = []
+    while True:
+        n_u, n_v = known.shape
+        if known.all() or (n_u == 1 and n_v == 1):
+            levels.append(_Level(known, ~known, None, []))
+            return levels
+        w = np.zeros((n_u + n_u % 2, n_v + n_v % 2), np.float32)
+        w[:n_u, :n_v] = known
+        wsum = w[0::2, 0::2] + w[1::2, 0::2]
+        wsum += w[0::2, 1::2]
+        wsum += w[1::2, 1::2]
+        free = ~known
+        levels.append(_Level(known, free, np.maximum(wsum, np.float32(1)), _free_boxes(free)))
+        known = wsum > 0
+
+
+def _free_boxes(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
+                ) -> list[tuple[int, int, int, int]]:
+    """Boxes (rows r0:r1, columns c0:c1) that together hold every free cell.
+
+    The rows are cut into strips of about ``strip_cells`` cells; in each strip the columns
+    with a free cell form runs, and runs less than ``min_gap`` columns apart are merged.
+    """
+    n_u, n_v = free.shape
+    height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
+    starts = np.arange(0, n_u, height)
+    columns = np.logical_or.reduceat(free, starts, axis=0)
+    edges = np.diff(np.pad(columns, ((0, 0), (1, 1))).astype(np.int8), axis=1)
+    boxes = []
+    for r0, row in zip(starts, edges, strict=True):
+        begin = np.flatnonzero(row == 1)
+        if len(begin) == 0:
+            continue
+        end = np.flatnonzero(row == -1)
+        keep = np.r_[True, begin[1:] - end[:-1] >= min_gap]
+        r1 = min(n_u, int(r0) + height)
+        for c0, c1 in zip(begin[keep], np.r_[end[np.flatnonzero(keep)[1:] - 1], end[-1]], strict=True):
+            boxes.append((int(r0), r1, int(c0), int(c1)))
+    return boxes
+
+
+def _cascade(values: np.ndarray, levels: list[_Level], sweeps: int, depth: int = 0) -> np.ndarray:
+    """Cascadic multigrid fill of the free cells of ``values`` (float32, zero where free)."""
+    level = levels[depth]
+    if level.weight is None:
         return values
     n_u, n_v = values.shape
-    if n_u == 1 and n_v == 1:
-        return values
-    pu, pv = n_u % 2, n_v % 2
-    w = np.pad(known.astype(values.dtype), ((0, pu), (0, pv)))
-    v = np.pad(np.where(known, values, values.dtype.type(0)), ((0, pu), (0, pv)))
-    # 2 × 2 block sums by strided slices (faster than a reduction over reshaped axes)
-    wsum = w[0::2, 0::2] + w[1::2, 0::2]
-    wsum += w[0::2, 1::2]
-    wsum += w[1::2, 1::2]
+    if n_u % 2 or n_v % 2:
+        v = np.zeros((n_u + n_u % 2, n_v + n_v % 2), values.dtype)
+        v[:n_u, :n_v] = values
+    else:
+        v = values
+    # 2 × 2 block means of the known cells (free cells hold zero)
     vsum = v[0::2, 0::2] + v[1::2, 0::2]
     vsum += v[0::2, 1::2]
     vsum += v[1::2, 1::2]
-    del w, v
-    coarse_known = wsum > 0
-    vsum /= np.maximum(wsum, 1)
-    coarse = _cascade(np.where(coarse_known, vsum, vsum.dtype.type(0)), coarse_known, sweeps)
-    out = np.where(known, values, coarse.repeat(2, axis=0).repeat(2, axis=1)[:n_u, :n_v])
+    del v
+    vsum /= level.weight
+    coarse = _cascade(vsum, levels, sweeps, depth + 1)
+    del vsum
+    # start: the known values, the coarse solution (repeated 2 × 2) in the free cells; the
+    # buffer has a one-cell border that repeats the edge cells (edge padding)
+    buf = np.empty((n_u + 2, n_v + 2), values.dtype)
+    inner = buf[1:-1, 1:-1]
+    hu, hv = (n_u + 1) // 2, (n_v + 1) // 2
+    inner[0::2, 0::2] = coarse[:hu, :hv]
+    inner[1::2, 0::2] = coarse[:n_u // 2, :hv]
+    inner[0::2, 1::2] = coarse[:hu, :n_v // 2]
+    inner[1::2, 1::2] = coarse[:n_u // 2, :n_v // 2]
     del coarse
-    free = ~known
-    # Jacobi sweeps in place: ``out`` is the inside of a buffer whose one-cell border repeats
-    # the edge cells (edge padding), so no array is allocated per sweep
-    buf = np.pad(out, 1, mode="edge")
-    out = buf[1:-1, 1:-1]
-    avg = np.empty_like(out)
-    for _ in range(sweeps):
-        np.add(buf[:-2, 1:-1], buf[2:, 1:-1], out=avg)
-        avg += buf[1:-1, :-2]
-        avg += buf[1:-1, 2:]
-        avg *= avg.dtype.type(0.25)
-        np.copyto(out, avg, where=free)
-        buf[0, 1:-1] = out[0]
-        buf[-1, 1:-1] = out[-1]
-        buf[1:-1, 0] = out[:, 0]
-        buf[1:-1, -1] = out[:, -1]
-    return np.ascontiguousarray(out)
+    np.copyto(inner, values, where=level.known)
+    _edges(buf)
+    if sweeps > 0 and level.boxes:
+        # Jacobi sweeps u = (up + down + left + right) / 4 on the free cells only, reading one
+        # buffer and writing the other (only the boxes that hold free cells are visited)
+        nxt = buf.copy()
+        quarter = values.dtype.type(0.25)
+        for _ in range(sweeps):
+            for r0, r1, c0, c1 in level.boxes:
+                avg = buf[r0:r1, c0 + 1:c1 + 1] + buf[r0 + 2:r1 + 2, c0 + 1:c1 + 1]
+                avg += buf[r0 + 1:r1 + 1, c0:c1]
+                avg += buf[r0 + 1:r1 + 1, c0 + 2:c1 + 2]
+                avg *= quarter
+                np.copyto(nxt[r0 + 1:r1 + 1, c0 + 1:c1 + 1], avg, where=level.free[r0:r1, c0:c1])
+            _edges(nxt)
+            buf, nxt = nxt, buf
+    return buf[1:-1, 1:-1]
+
+
+def _edges(buf: np.ndarray) -> None:
+    """Copy the edge cells of the inside of ``buf`` onto its one-cell border."""
+    buf[0, 1:-1] = buf[1, 1:-1]
+    buf[-1, 1:-1] = buf[-2, 1:-1]
+    buf[1:-1, 0] = buf[1:-1, 1]
+    buf[1:-1, -1] = buf[1:-1, -2]

@@ -18,12 +18,13 @@ filter by the noise step (isolation and single-cell pits).
 """
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
 
-from .grid import GridFrame, PointLocation, cell_mean, cell_min, inpaint
+from .grid import GridFrame, InpaintPlan, PointLocation, cell_mean, cell_min, inpaint, thread_count
 
 
 @dataclass
@@ -112,10 +113,11 @@ def build_ground_model(xyz_ground: np.ndarray, frame: GridFrame,
     du = (mean_u.reshape(frame.shape) - (np.arange(n_u) + 0.5)[:, None]) * frame.cell
     dv = (mean_v.reshape(frame.shape) - (np.arange(n_v) + 0.5)[None, :]) * frame.cell
     raw = mean_z.reshape(frame.shape)
-    grid = inpaint(raw, max_cells)
+    plan = InpaintPlan(np.isnan(raw), max_cells)  # the same empty cells in all three passes
+    grid = inpaint(raw, max_cells, plan=plan)
     for _ in range(2):
         gu, gv = np.gradient(grid, frame.cell)
-        grid = inpaint(raw - gu * du - gv * dv, max_cells)
+        grid = inpaint(raw - gu * du - gv * dv, max_cells, plan=plan)
     filled = (count == 0).reshape(frame.shape)
     return GroundModel(frame, grid, filled)
 
@@ -150,18 +152,53 @@ def morphological_slope_ratio(surface: np.ndarray, max_radius: int, cell: float
     """
     # float32: min and max are exact in any precision, and rounding the surface to float32
     # (< 0.1 mm below 1 km of local height) halves the memory traffic of the filters
-    previous = np.asarray(surface, dtype=np.float32)
-    ratio = np.zeros_like(previous)
-    eroded = np.empty_like(previous)
-    drop = np.empty_like(previous)
-    for radius in range(1, max_radius + 1):
-        size = 2 * radius + 1
-        ndimage.minimum_filter(previous, size=size, output=eroded)
-        opened = ndimage.maximum_filter(eroded, size=size)
-        np.subtract(previous, opened, out=drop)
+    surface = np.asarray(surface, dtype=np.float32)
+    n_u = surface.shape[0]
+    threads = min(thread_count(), max(1, n_u // 256))
+    # row bands, filtered on separate threads: a band with ``radius`` extra rows on each side
+    # gives exactly the rows of a filter of the whole grid (the window reaches ``radius`` rows)
+    bounds = np.linspace(0, n_u, threads + 1).astype(int)
+    bands = list(zip(bounds[:-1], bounds[1:], strict=True))
+    previous = surface
+    buffers = [np.empty_like(surface), np.empty_like(surface)]
+    eroded = np.empty_like(surface)
+    ratio = np.zeros_like(surface)
+
+    def erode(band: tuple[int, int], radius: int, source: np.ndarray) -> None:
+        lo, hi = band
+        a, b = max(0, lo - radius), min(n_u, hi + radius)
+        if a == lo and b == hi:
+            ndimage.minimum_filter(source[lo:hi], size=2 * radius + 1, output=eroded[lo:hi])
+        else:
+            eroded[lo:hi] = ndimage.minimum_filter(source[a:b], size=2 * radius + 1)[lo - a:hi - a]
+
+    def dilate(band: tuple[int, int], radius: int, source: np.ndarray, opened: np.ndarray) -> None:
+        lo, hi = band
+        a, b = max(0, lo - radius), min(n_u, hi + radius)
+        if a == lo and b == hi:
+            ndimage.maximum_filter(eroded[lo:hi], size=2 * radius + 1, output=opened[lo:hi])
+        else:
+            opened[lo:hi] = ndimage.maximum_filter(eroded[a:b], size=2 * radius + 1)[lo - a:hi - a]
+        drop = source[lo:hi] - opened[lo:hi]
         drop *= np.float32(1.0 / (radius * cell))
-        np.maximum(ratio, drop, out=ratio)
-        previous = opened
+        np.maximum(ratio[lo:hi], drop, out=ratio[lo:hi])
+
+    pool = ThreadPoolExecutor(max_workers=threads) if threads > 1 else None
+    try:
+        for radius in range(1, max_radius + 1):
+            opened = buffers[radius % 2]
+            if pool is None:
+                erode(bands[0], radius, previous)
+                dilate(bands[0], radius, previous, opened)
+            else:
+                for future in [pool.submit(erode, band, radius, previous) for band in bands]:
+                    future.result()
+                for future in [pool.submit(dilate, band, radius, previous, opened) for band in bands]:
+                    future.result()
+            previous = opened
+    finally:
+        if pool is not None:
+            pool.shutdown()
     return ratio, previous
 
 
@@ -327,15 +364,23 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     slope = np.zeros(1, np.float32)
     at = loc.sampler()
     del loc
-    resid = z - at(model.astype(np.float32))
+    resid = at(model.astype(np.float32))
+    np.subtract(z, resid, out=resid)
+    plan: InpaintPlan | None = None
     for _ in range(iterations):
         inside = np.abs(resid) <= window + slope_scaler * slope
         mean, _ = cell_mean(flat[inside], z[inside], frame.size)
-        model = inpaint(mean.reshape(frame.shape), max_cells)
+        mean = mean.reshape(frame.shape)
+        unknown = np.isnan(mean)
+        if plan is None or not plan.matches(unknown, max_cells):
+            plan = InpaintPlan(unknown, max_cells)
+        model = inpaint(mean, max_cells, plan=plan)
+        del mean, unknown
         if slope_scaler > 0:
             gu, gv = np.gradient(model, frame.cell)
             slope = at(np.hypot(gu, gv).astype(np.float32))
-        resid = z - at(model.astype(np.float32))
+        resid = at(model.astype(np.float32))
+        np.subtract(z, resid, out=resid)
         r = resid[inside]
         if len(r) > 2_000_000:  # the MAD of a regular one-in-k sample is as good
             r = r[:: len(r) // 1_000_000]

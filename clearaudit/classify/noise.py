@@ -10,33 +10,78 @@ isolated (tested with a 2.8 m spacing). Two birds side by side are not found by 
 from __future__ import annotations
 
 import numpy as np
-from scipy import ndimage
 
-_BITS = 21
-_OFFSET = 1 << (_BITS - 1)
+from .grid import run_chunks
 
 
-def voxel_keys(xyz: np.ndarray, voxel: float) -> np.ndarray:
-    """Packed int64 key of each point's voxel (21 bits per axis, ±1 M voxels)."""
+def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple[int, int, int]]:
+    """Dense voxel number of each point and the voxel counts along x, y, z (with a border).
+
+    The voxel of a point is :math:`(\\lfloor x/e \\rfloor, \\lfloor y/e \\rfloor,
+    \\lfloor z/e \\rfloor)` for the voxel edge :math:`e`, numbered ``(i * n_y + j) * n_z + k``
+    from one voxel below the lowest occupied one on each
+    axis, so that the 26 neighbours of every occupied voxel have numbers too. The numbers are
+    int32 when they fit, else int64.
+
+    Parameters
+    ----------
+    xyz
+        Points. [m], shape (n, 3)
+    voxel
+        Voxel edge. [m]
+    """
+    if voxel <= 0:
+        raise ValueError("the voxel edge must be positive")
     xyz = np.asarray(xyz, dtype=np.float64).reshape(-1, 3)
-    keys = np.zeros(len(xyz), dtype=np.int64)
-    for axis, shift in ((0, 2 * _BITS), (1, _BITS), (2, 0)):  # one axis at a time: no (n, 3) temporaries
-        column = np.floor(xyz[:, axis] / voxel)
-        if column.min() + _OFFSET < 0 or column.max() + _OFFSET >= (1 << _BITS):
-            raise ValueError("cloud too large for the voxel size (more than a million voxels across)")
-        index = column.astype(np.int64)
-        del column
-        index += _OFFSET
-        index <<= shift
-        keys |= index
-    return keys
+    # floor and division by a positive edge are monotonic: the lowest voxel is that of the minimum
+    low, high = _column_range(xyz)
+    lowest = np.floor(low / voxel) - 1.0
+    dims = np.floor(high / voxel) - lowest + 2.0
+    total = float(dims[0]) * float(dims[1]) * float(dims[2])
+    if total >= 2.0**53:
+        raise ValueError("cloud too large for the voxel size (voxel numbers exceed 53 bits)")
+    itype = np.int32 if total < 2**31 else np.int64
+    n_y, n_z = float(dims[1]), float(dims[2])
+    keys = np.empty(len(xyz), itype)
+
+    def work(lo: int, hi: int) -> None:
+        # integers below 2**53: every float operation here is exact
+        acc = None
+        for axis, scale in ((0, n_y), (1, n_z), (2, None)):
+            index = xyz[lo:hi, axis] / voxel
+            np.floor(index, out=index)
+            index -= lowest[axis]
+            if acc is None:
+                acc = index
+            else:
+                acc += index
+            if scale is not None:
+                acc *= scale
+        keys[lo:hi] = acc
+
+    run_chunks(work, len(keys))
+    return keys, (int(dims[0]), int(dims[1]), int(dims[2]))
 
 
-def neighbour_offsets() -> np.ndarray:
-    """Key differences of the 26 neighbouring voxels and the voxel itself."""
-    d = np.array([-1, 0, 1], dtype=np.int64)
-    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
-    return ((di << (2 * _BITS)) + (dj << _BITS) + dk).ravel()
+def _column_range(xyz: np.ndarray, width: int = 4096) -> tuple[np.ndarray, np.ndarray]:
+    """Per-column minimum and maximum of an (n, 3) array.
+
+    Reduced over rows of ``3 * width`` values (a reduction of an (n, 3) array over its long
+    axis runs element by element in numpy, about five times slower).
+    """
+    n = len(xyz)
+    if n == 0:
+        return np.zeros(3), np.zeros(3)
+    m = n // width * width
+    low, high = np.full(3, np.inf), np.full(3, -np.inf)
+    if m:
+        head = xyz[:m].reshape(-1, 3 * width)
+        low = head.min(axis=0).reshape(width, 3).min(axis=0)
+        high = head.max(axis=0).reshape(width, 3).max(axis=0)
+    if m < n:
+        low = np.minimum(low, xyz[m:].min(axis=0))
+        high = np.maximum(high, xyz[m:].max(axis=0))
+    return low, high
 
 
 def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.ndarray:
@@ -50,34 +95,75 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
         Voxel edge. [m]
     min_neighbours
         Least number of other points in the 3 × 3 × 3 block for a point not to be isolated.
+
+    Notes
+    -----
+    The voxel numbers are sorted once (no inverse permutation): the sorted run lengths are the
+    points per voxel, only voxels with fewer than ``min_neighbours + 1`` points have their block
+    counted (binary search of the 26 neighbours among the occupied voxels), and the points of
+    the few isolated voxels are found through a hashed bit table followed by an exact test.
     """
-    if len(xyz) == 0:
-        return np.zeros(0, bool)
-    keys = voxel_keys(xyz, voxel)
-    uniq, inverse, counts = np.unique(keys, return_inverse=True, return_counts=True)
+    n = len(xyz)
+    isolated = np.zeros(n, bool)
+    if n == 0 or min_neighbours <= 0:
+        return isolated
+    keys, (_, n_y, n_z) = compact_voxel_keys(xyz, voxel)
+    ordered = np.sort(keys)
+    first = np.empty(n, bool)
+    first[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
+    start = np.flatnonzero(first)
+    del first
+    occupied = ordered[start]
+    del ordered
+    counts = np.diff(np.append(start, n))
+    del start
     # only voxels that are themselves sparse need their block counted
-    sparse_voxels = np.flatnonzero(counts - 1 < min_neighbours)
-    block = counts.copy()
-    if len(sparse_voxels):
-        k = uniq[sparse_voxels]
-        total = np.zeros(len(k), dtype=np.int64)
-        for off in neighbour_offsets():
-            target = k + off
-            pos = np.clip(np.searchsorted(uniq, target), 0, len(uniq) - 1)
-            found = uniq[pos] == target
-            total += np.where(found, counts[pos], 0)
-        block[sparse_voxels] = total
-    return (block[inverse] - 1) < min_neighbours
+    sparse = np.flatnonzero(counts - 1 < min_neighbours)
+    if len(sparse) == 0:
+        return isolated
+    k = occupied[sparse].astype(np.int64)
+    total = np.zeros(len(k), dtype=np.int64)
+    d = np.array([-1, 0, 1], dtype=np.int64)
+    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
+    for off in ((di * n_y + dj) * n_z + dk).ravel():
+        target = k + off
+        pos = np.clip(np.searchsorted(occupied, target), 0, len(occupied) - 1)
+        found = occupied[pos] == target
+        total += np.where(found, counts[pos], 0)
+    lonely = np.sort(k[total - 1 < min_neighbours])
+    if len(lonely) == 0:
+        return isolated
+    # points of the lonely voxels: a hashed bit table passes a few candidates, tested exactly
+    bits = int(min(24, max(10, np.ceil(np.log2(64 * len(lonely))))))
+    mask = (1 << bits) - 1
+    table = np.zeros(1 << bits, bool)
+    table[lonely & mask] = True
+    candidate = np.empty(n, bool)
+
+    def work(lo: int, hi: int) -> None:
+        np.take(table, keys[lo:hi] & keys.dtype.type(mask), out=candidate[lo:hi])
+
+    run_chunks(work, n)
+    cand = np.flatnonzero(candidate)
+    pos = np.clip(np.searchsorted(lonely, keys[cand]), 0, len(lonely) - 1)
+    isolated[cand[lonely[pos] == keys[cand]]] = True
+    return isolated
 
 
 def pit_cells(zmin: np.ndarray, depth: float) -> tuple[np.ndarray, np.ndarray]:
     """Cells of a minimum surface lower than all 8 neighbours by more than ``depth``.
 
-    Returns the pit mask and the lowest neighbour elevation of every cell. [m]
+    Returns the pit mask and the lowest neighbour elevation of every cell (edge cells repeat
+    across the border, as scipy's ``nearest`` mode). [m]
     """
-    filled = np.where(np.isnan(zmin), np.inf, zmin)
-    footprint = np.ones((3, 3), bool)
-    footprint[1, 1] = False
-    lowest_neighbour = ndimage.minimum_filter(filled, footprint=footprint, mode="nearest")
-    pits = ~np.isnan(zmin) & np.isfinite(lowest_neighbour) & (zmin < lowest_neighbour - depth)
+    empty = np.isnan(zmin)
+    filled = np.where(empty, np.inf, zmin)
+    padded = np.pad(filled, 1, mode="edge")
+    n_u, n_v = filled.shape
+    lowest_neighbour = np.minimum(padded[0:n_u, 0:n_v], padded[0:n_u, 1:n_v + 1])
+    for du, dv in ((0, 2), (1, 0), (1, 2), (2, 0), (2, 1), (2, 2)):
+        np.minimum(lowest_neighbour, padded[du:du + n_u, dv:dv + n_v], out=lowest_neighbour)
+    del padded
+    pits = ~empty & np.isfinite(lowest_neighbour) & (zmin < lowest_neighbour - depth)
     return pits, lowest_neighbour

@@ -661,7 +661,8 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     if cnt is None:  # points per cell (float) when the caller has not counted them
         cnt = np.bincount(k, minlength=m).astype(np.float64)
     z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
-    zr = z - z0[k]
+    zr = np.take(z0, k)
+    np.subtract(z, zr, out=zr)  # z - z0[k], without a second point-sized temporary
 
     def s(w: np.ndarray | None) -> np.ndarray:
         return np.bincount(k, w, minlength=m)
@@ -691,8 +692,9 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     a0, b0, c0 = (np.ascontiguousarray(coef[:, j]) for j in range(3))
     res = np.take(b0, k)
     res *= dx
-    res += np.take(a0, k)
-    tmp = np.take(c0, k)
+    tmp = np.take(a0, k)
+    res += tmp
+    np.take(c0, k, out=tmp, mode="clip")  # (k is in range; "raise" would buffer a copy)
     tmp *= dy
     res += tmp
     del tmp
@@ -802,8 +804,9 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
     sel = slice(None) if which is None else np.asarray(which)
-    x = xyz[sel, 0]
-    y = xyz[sel, 1]
+    # copies (fancy index, or explicit without ``which``): they are shifted in place below
+    x = xyz[sel, 0] if which is not None else xyz[:, 0].copy()
+    y = xyz[sel, 1] if which is not None else xyz[:, 1].copy()
     z = xyz[sel, 2]
     n = len(z)
     grid = _anchored_frame(x, y, cell_m, ring_cells + 2)
@@ -814,26 +817,31 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     shape = grid.shape
     # grid coordinates: the anchored grid is axis-aligned through the local origin, so its
     # (u, v) are x and y less the corner (the same values and cells as grid.flat_index)
-    u = x - grid.corner[0]
-    v = y - grid.corner[1]
+    # in place on the columns' own copies (x and y are not needed again): same values
+    u = np.subtract(x, grid.corner[0], out=x)
+    v = np.subtract(y, grid.corner[1], out=y)
     del x, y
+    itype = np.int32 if grid.size < 2**31 else np.int64
     fi = u / grid.cell
-    flat = np.clip(np.floor(fi, out=fi).astype(np.int64), 0, shape[0] - 1)
+    flat = np.clip(np.floor(fi, out=fi).astype(itype), 0, shape[0] - 1)
     fi = np.divide(v, grid.cell, out=fi)
     flat *= shape[1]
-    flat += np.clip(np.floor(fi, out=fi).astype(np.int64), 0, shape[1] - 1)
+    flat += np.clip(np.floor(fi, out=fi).astype(itype), 0, shape[1] - 1)
     del fi
     # occupied cells only: the grid spans the survey's bounding box, which for a long or bent
     # corridor is many times the area holding points
-    per_cell = np.bincount(flat, minlength=grid.size)
-    cells = np.flatnonzero(per_cell)
+    # (a one-byte occupancy map, then counts per occupied cell: no 8-byte count per cell of
+    # the whole box)
+    occupied = np.zeros(grid.size, bool)
+    occupied[flat] = True
+    cells = np.flatnonzero(occupied)
+    del occupied
     m = len(cells)
-    cnt = per_cell[cells].astype(np.float64)
-    del per_cell
     cid = np.full(grid.size, -1, np.int32)
     cid[cells] = np.arange(m, dtype=np.int32)
     k = cid[flat]
     del flat
+    cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
     u -= ((ci + 0.5) * grid.cell)[k]  # offsets from the cell centre
     v -= ((cj + 0.5) * grid.cell)[k]
