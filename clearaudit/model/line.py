@@ -801,8 +801,9 @@ def build_line_model(
     # ---- 4. wires per span
     prog = _Progress(progress, max(len(spans), 1))
     struct_by_id = {s.id: s for s in structs}
+    wire_grid = _PointGrid(xyz[wire_idx, :2])
     for span in spans:
-        _span_wires(span, xyz, cls, wire_idx, opts, struct_by_id)
+        _span_wires(span, xyz, cls, wire_idx, opts, struct_by_id, wire_grid)
         prog.step()
     if opts.infer_shield_from_geometry and not has_shield_class:
         for span in spans:
@@ -1094,10 +1095,62 @@ def _conductor_ruling_spans(spans: list[Span], sections: list[TensionSection]) -
             "phase", sec.ruling_span_by_role_m.get("shield", sec.structure_ruling_span_m))
 
 
-def _span_wires(span: Span, xyz, cls, wire_idx, opts: ModelOptions, struct_by_id) -> None:
+class _PointGrid:
+    """Points binned on a coarse horizontal grid, to find the points near one span without
+    going over every point of the line.
+
+    The points are sorted by cell once; :meth:`candidates` returns, in ascending order, the
+    positions of the points in the cells that overlap a rectangle (a superset of the points
+    inside it).
+    """
+
+    def __init__(self, xy: np.ndarray, cell_m: float = 50.0):
+        self.cell = float(cell_m)
+        self.n = len(xy)
+        if self.n == 0:
+            return
+        self.lo = xy.min(axis=0)
+        ij = np.floor((xy - self.lo) / self.cell).astype(np.int64)
+        self.n_j = int(ij[:, 1].max()) + 1
+        self.n_i = int(ij[:, 0].max()) + 1
+        key = ij[:, 0] * self.n_j + ij[:, 1]
+        self.order = np.argsort(key, kind="stable")
+        self.sorted_key = key[self.order]
+
+    def candidates(self, corners_xy: np.ndarray, margin_m: float = 1.0) -> np.ndarray:
+        """Ascending positions of the points in the cells overlapping the bounding box of
+        ``corners_xy`` (shape (k, 2)) widened by ``margin_m``. [m]"""
+        if self.n == 0:
+            return np.zeros(0, dtype=np.int64)
+        lo = np.floor((corners_xy.min(axis=0) - margin_m - self.lo) / self.cell).astype(np.int64)
+        hi = np.floor((corners_xy.max(axis=0) + margin_m - self.lo) / self.cell).astype(np.int64)
+        lo = np.maximum(lo, 0)
+        hi = np.minimum(hi, [self.n_i - 1, self.n_j - 1])
+        if np.any(hi < lo):
+            return np.zeros(0, dtype=np.int64)
+        # one run of keys per grid column i: cells (i, lo_j .. hi_j)
+        rows = np.arange(lo[0], hi[0] + 1) * self.n_j
+        first = np.searchsorted(self.sorted_key, rows + lo[1], side="left")
+        last = np.searchsorted(self.sorted_key, rows + hi[1], side="right")
+        if not np.any(last > first):
+            return np.zeros(0, dtype=np.int64)
+        pos = np.concatenate([self.order[f:e] for f, e in zip(first, last, strict=True)])
+        pos.sort()
+        return pos
+
+
+def _span_wires(span: Span, xyz, cls, wire_idx, opts: ModelOptions, struct_by_id,
+                wire_grid: _PointGrid | None = None) -> None:
     """Collect the span's wire points and separate them into clusters (WireFit stubs)."""
     if len(wire_idx) == 0:
         return
+    if wire_grid is not None and np.isfinite(opts.corridor_half_width_m):
+        # only the wire points near the span's corridor rectangle (1 m margin for round-off)
+        u, v, _ = span_frame(span.a_xy, span.b_xy)
+        half = opts.corridor_half_width_m
+        corners = np.array([span.a_xy + v * half, span.a_xy - v * half,
+                            span.b_xy + v * half, span.b_xy - v * half])
+        wire_idx = wire_idx[wire_grid.candidates(corners)]
     s, t = to_span_frame(xyz[wire_idx], span.a_xy, span.b_xy)
     sel = (s >= 0.0) & (s <= span.length_m) & (np.abs(t) <= opts.corridor_half_width_m)
     idx = wire_idx[sel]

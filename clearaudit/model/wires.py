@@ -155,7 +155,7 @@ def robust_polyfit(x: np.ndarray, y: np.ndarray, degree: int, *, iterations: int
     """
     x = np.asarray(x, dtype=float)
     y = np.asarray(y, dtype=float)
-    degree = int(min(degree, max(len(np.unique(np.round(x, 3))) - 1, 0)))
+    degree = int(min(degree, max(_distinct_count(np.round(x, 3), degree + 1) - 1, 0)))
     if len(x) == 0:
         raise ValueError("robust_polyfit needs at least one sample")
     xm = x.mean()
@@ -163,21 +163,77 @@ def robust_polyfit(x: np.ndarray, y: np.ndarray, degree: int, *, iterations: int
     xn = (x - xm) / xs
     w = np.ones_like(x)
     coef_n = np.zeros(degree + 1)
+    A = np.vander(xn, degree + 1)
     for _ in range(iterations):
         sw = np.sqrt(w)
-        A = np.vander(xn, degree + 1)
         coef_n, *_ = np.linalg.lstsq(A * sw[:, None], y * sw, rcond=None)
         r = y - A @ coef_n
-        scale = max(1.4826 * np.median(np.abs(r[w > 0] if np.any(w > 0) else r)), min_scale)
+        scale = max(1.4826 * _median(np.abs(r[w > 0] if np.any(w > 0) else r)), min_scale)
         u = r / (tuning * scale)
         w = np.where(np.abs(u) < 1.0, (1.0 - u**2) ** 2, 0.0)
         if w.sum() < degree + 1:
             w = np.ones_like(x)
             break
     # back to polynomial in x
-    poly = np.poly1d(coef_n)
-    shift = np.poly1d([1.0 / xs, -xm / xs])
-    return np.asarray(poly(shift).coeffs, dtype=float), w
+    return _compose_linear(coef_n, 1.0 / xs, -xm / xs), w
+
+
+def _median(values: np.ndarray) -> float:
+    """Median of a non-empty 1-D array: the value :func:`numpy.median` gives (the middle order
+    statistic, or the mean of the two middle ones; NaN when any value is NaN), without its
+    general-axis overhead."""
+    n = values.size
+    if n % 2:
+        part = np.partition(values, [(n - 1) // 2, -1])
+        middle = part[(n - 1) // 2]
+    else:
+        part = np.partition(values, [n // 2 - 1, n // 2, -1])
+        middle = (part[n // 2 - 1] + part[n // 2]) / 2.0
+    return float("nan") if np.isnan(part[-1]) else float(middle)
+
+
+def _trimmed(c: np.ndarray) -> np.ndarray:
+    """Coefficients without leading zeros (at least one), as :class:`numpy.poly1d` keeps them."""
+    c = np.atleast_1d(c)
+    first = 0
+    while first < len(c) and c[first] == 0:
+        first += 1
+    return c[first:] if first < len(c) else np.array([0], dtype=c.dtype)
+
+
+def _compose_linear(coef: np.ndarray, a: float, b: float) -> np.ndarray:
+    """Coefficients of ``p(a x + b)`` for ``p`` with coefficients ``coef`` (highest first).
+
+    Horner's scheme on coefficient arrays with the operations, in the same order, that
+    ``np.poly1d(coef)(np.poly1d([a, b]))`` performs (``np.polyval`` with a poly1d argument:
+    ``np.convolve`` products, zero-padded sums, leading zeros dropped), without building
+    poly1d objects.
+    """
+    shift = _trimmed(np.array([a, b], dtype=float))
+    y = _trimmed(0 * shift)
+    for k, pv in enumerate(_trimmed(np.asarray(coef, dtype=float))):
+        if k:
+            y = _trimmed(np.convolve(y, shift))
+        term = _trimmed(np.atleast_1d(pv))
+        diff = len(term) - len(y)
+        if diff > 0:
+            y = np.concatenate((np.zeros(diff, y.dtype), y))
+        elif diff < 0:
+            term = np.concatenate((np.zeros(-diff, term.dtype), term))
+        y = _trimmed(y + term)
+    return np.asarray(y, dtype=float)
+
+
+def _distinct_count(values: np.ndarray, at_most: int) -> int:
+    """``min(at_most, number of distinct values)`` without sorting for small ``at_most``."""
+    if at_most > 4 or np.isnan(values).any():
+        return min(at_most, len(np.unique(values)))
+    count = 0
+    rest = values
+    while rest.size and count < at_most:
+        rest = rest[rest != rest[0]]
+        count += 1
+    return count
 
 
 def point_directions(xyz: np.ndarray, voxel_m: float = 2.0, min_points: int = 4) -> np.ndarray:

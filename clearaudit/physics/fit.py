@@ -79,12 +79,13 @@ References
 """
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import optimize, stats
+from scipy import optimize, special
 
 from clearaudit.physics import catenary
 
@@ -100,6 +101,8 @@ _MIN_CONSTANT_PER_SPAN = 0.25  # C < L/4 means sag > half the span: not a power 
 _MAX_TILT_RAD = 1.4
 _BIN_M = 1.0
 _FIRST_PASS_POINTS = 500
+# least_squares takes a map-like ``workers`` for its finite differences (scipy >= 1.16)
+_LSQ_WORKERS = "workers" in inspect.signature(optimize.least_squares).parameters
 
 
 @dataclass(eq=False)
@@ -349,6 +352,30 @@ class _Problem:
         r_v, r_z = self.components(p)
         return np.concatenate([self.lateral_weight * r_v, r_z])
 
+    def residuals_many(self, params):
+        """Residuals of several parameter vectors (rows of ``params``) in one evaluation.
+
+        The parameters enter :func:`_curve` as columns, so every element goes through the
+        same floating-point operations as in :meth:`residuals`: row ``i`` of the result
+        equals ``residuals(params[i])`` bit for bit (checked in tests/test_model_speed.py).
+        """
+        params = np.asarray(params, dtype=float)
+        if not self.fit_tilt:
+            params = np.column_stack([params, np.zeros(len(params))])
+        z_a, z_b, log_c, y_a, y_b, tilt = (params[:, k:k + 1] for k in range(6))
+        lateral, z, dv, dz = _curve(self.s, self.span, z_a, z_b, np.exp(log_c), y_a, y_b,
+                                    tilt, with_slopes=True)
+        r_v = (self.v - lateral) / np.sqrt(1.0 + dv * dv)
+        r_z = (self.z - z) / np.sqrt(1.0 + dz * dz)
+        return np.concatenate([self.lateral_weight * r_v, r_z], axis=1)
+
+    def map_residuals(self, function, parameter_vectors):
+        """Map-like callable for the ``workers`` argument of least_squares: its finite
+        differences evaluate the residuals at one shifted parameter vector per parameter;
+        here all of them at once (:meth:`residuals_many`). ``function`` is scipy's wrapper
+        of :meth:`residuals` and gives the same values."""
+        return list(self.residuals_many(np.array(list(parameter_vectors))))
+
     def balance(self, p):
         """Weight the lateral residuals by sigma_vertical / sigma_lateral (robust scales)."""
         r_v, r_z = self.components(p)
@@ -360,11 +387,9 @@ class _Problem:
         """Central-difference Jacobian of the residuals."""
         steps = 1e-6 * np.maximum(1.0, np.abs(p))
         steps[2] = 1e-7
-        columns = []
-        for k in range(p.size):
-            dp = np.zeros_like(p)
-            dp[k] = steps[k]
-            columns.append((self.residuals(p + dp) - self.residuals(p - dp)) / (2 * steps[k]))
+        shifts = np.diag(steps)
+        values = self.residuals_many(np.concatenate([p + shifts, p - shifts]))
+        columns = [(values[k] - values[p.size + k]) / (2 * steps[k]) for k in range(p.size)]
         return np.column_stack(columns)
 
 
@@ -409,9 +434,12 @@ def _solve(problem: _Problem, p0: np.ndarray, loss: str, f_scale: float):
     # typical parameter scales (m, m, ln m, m, m, rad); the iterative trust-region solver avoids
     # a dense SVD per iteration
     scales = np.array([1.0, 1.0, 0.01, 1.0, 1.0, 0.01])[:p0.size]
+    # the finite-difference Jacobian (scipy's 2-point rule, unchanged) evaluates its shifted
+    # parameter vectors through ``workers`` when scipy offers it: all in one call
+    extra = {"workers": problem.map_residuals} if _LSQ_WORKERS else {}
     return optimize.least_squares(problem.residuals, p0, bounds=(lower, upper), loss=loss,
                                   f_scale=f_scale, x_scale=scales, method="trf", tr_solver="lsmr",
-                                  xtol=1e-9, ftol=1e-9, gtol=1e-9, max_nfev=200)
+                                  xtol=1e-9, ftol=1e-9, gtol=1e-9, max_nfev=200, **extra)
 
 
 def _inliers(problem: _Problem, p: np.ndarray, f_scale: float) -> tuple[np.ndarray, np.ndarray]:
@@ -586,22 +614,28 @@ def _summarise(problem, result, loss, f_scale, supports, n_points, max_rms):
     cov_free = bread @ meat @ bread * m / max(m - k, 1)
     cov = np.zeros((6, 6))
     cov[:k, :k] = cov_free
-    t95 = float(stats.t.ppf(0.975, max(m - k, 1)))
+    # Student's t quantile; scipy.stats.t.ppf evaluates this same function, and importing
+    # scipy.special alone avoids loading scipy.stats (about a second) on the first fit
+    t95 = float(special.stdtrit(max(m - k, 1), 0.975))
 
     z_a, z_b, log_c, y_a, y_b, tilt = full
     constant = float(np.exp(log_c))
 
-    def plane_sag(q):
-        h = q[1] - q[0]
-        return float(catenary.sag(np.hypot(span, h * np.sin(q[5])), h * np.cos(q[5]),
-                                  np.exp(q[2])))
-
-    sag_value = plane_sag(full)
+    # sag in the wire plane at the fit and at the central-difference shifts of the four
+    # parameters it depends on, in one (element-wise) evaluation
+    moved = (0, 1, 2, 5)
+    shifts = np.zeros((len(moved), 6))
+    for row, i in enumerate(moved):
+        shifts[row, i] = 1e-6 if i != 2 else 1e-7
+    q = np.concatenate([full[None, :], full + shifts, full - shifts])
+    h_q = q[:, 1] - q[:, 0]
+    sags = catenary.sag(np.hypot(span, h_q * np.sin(q[:, 5])), h_q * np.cos(q[:, 5]),
+                        np.exp(q[:, 2]))
+    sag_value = float(sags[0])
     grad = np.zeros(6)
-    for i in (0, 1, 2, 5):
-        dq = np.zeros(6)
-        dq[i] = 1e-6 if i != 2 else 1e-7
-        grad[i] = (plane_sag(full + dq) - plane_sag(full - dq)) / (2 * dq[i])
+    for row, i in enumerate(moved):
+        grad[i] = ((float(sags[1 + row]) - float(sags[1 + len(moved) + row]))
+                   / (2 * shifts[row, i]))
     sd = np.sqrt(np.maximum(np.diag(cov), 0.0))
     sag_ci = t95 * float(np.sqrt(max(grad @ cov @ grad, 0.0)))
 
