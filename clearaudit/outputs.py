@@ -307,12 +307,14 @@ def _write_point_rows(out: Path, name: str, cloud: Cloud, rows: list[dict], colu
 
 def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, config: Any,
                   conductors: dict, rules: Any, record: Any, *, tolerance_rows=None,
-                  progress=None, classified_writer=None) -> dict:
+                  progress=None, classified_writer=None, records=None) -> dict:
     """Write every output file into ``out``; returns the summary for the terminal.
 
     ``classified_writer(path)``, when given, writes ``classified.laz`` instead of
     :func:`~clearaudit.io.las.write_classified` (the tiled run streams it from its tiles; then
-    ``cloud`` may hold no points and ``cls`` only needs ``counts``).
+    ``cloud`` may hold no points and ``cls`` only needs ``counts``). ``records``: the raw point
+    records kept while reading (:class:`~clearaudit.io.las.RecordScratch`), passed on to
+    :func:`~clearaudit.io.las.write_classified`.
     """
     out = Path(out)
     span_rows = span_rows_crs(cloud, audit.span_rows)
@@ -348,7 +350,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
     else:
         write_classified(cloud, out / "classified.laz", cls.classification,
                          {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
-                                                  "height above ground [m]")})
+                                                  "height above ground [m]")},
+                         records=records)
     return {"line": config.line.name, "spans": len(model.spans),
             "wires": len(span_rows),
             "fitted": sum(r.get("status") == "fitted" for r in span_rows),

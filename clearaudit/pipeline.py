@@ -5,6 +5,9 @@ Stages (each timed, with the process's peak memory recorded after it):
 ``validate``  read the line file, structures, rule set and conductors; check the inputs exist —
               everything that can fail on bad input fails here, before heavy work;
 ``read``      read the clouds (chunked, culled to the corridor around the structures if known);
+              the raw point records of compressed inputs go to a scratch folder as they are
+              decoded (when the disk has room; ``run.json`` ``classified_copy``), so the
+              classified copy does not decode them again;
 ``classify``  ground, height above ground, noise, wires, structures, vegetation, buildings;
 ``model``     structures, spans, tension sections, wire separation and catenary fits;
 ``audit``     survey temperature, conditions (survey, MOT, wind, ice), clearances, priorities;
@@ -196,7 +199,7 @@ def run_audit(options: AuditOptions, console=None):
 
 def _run_audit(options: AuditOptions, console=None):
     from .config import load_line_file, read_structures_csv
-    from .io.las import corridor_mask, file_sha256, inputs_crs, read_cloud, resolve_inputs
+    from .io.las import file_sha256, resolve_inputs
 
     record = RunRecord(command=sys.argv[:], options=options.to_dict(),
                        started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
@@ -263,6 +266,24 @@ def _run_audit(options: AuditOptions, console=None):
             print_summary(console, summary, options.out, options.units)
         return options.out
 
+    # the raw point records of compressed inputs are kept in a scratch folder beside the
+    # output (never inside it) while they are read, for classified.laz; removed whatever happens
+    scratch_parent = Path(options.work_dir) if options.work_dir else Path(options.out).parent
+    scratch_parent.mkdir(parents=True, exist_ok=True)
+    scratch = Path(tempfile.mkdtemp(prefix=".clearaudit-records-", dir=scratch_parent))
+    try:
+        return _run_in_memory(options, record, paths, config, structures_rows, conductors,
+                              rules, total_points, scratch, console)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
+                   structures_rows: list[dict] | None, conductors: dict, rules: Any,
+                   total_points: int, scratch: Path, console=None):
+    """The in-memory run: read every (corridor) point, classify, model, audit, write."""
+    from .io.las import corridor_mask, inputs_crs, plan_record_scratch, read_cloud
+
     with atomic_output_dir(options.out, options.overwrite) as tmp, _progress_bar(console) as bar:
         # ---- read
         with record.stage("read"):
@@ -272,8 +293,11 @@ def _run_audit(options: AuditOptions, console=None):
                 _, unit_m, _ = inputs_crs(paths, crs=options.crs)
                 poly = np.array([[r["x"], r["y"]] for r in structures_rows])
                 keep = corridor_mask(poly, options.corridor_buffer_m / unit_m)
+            records, record.extra["classified_copy"] = plan_record_scratch(
+                paths, scratch / "records",
+                reserve_bytes=_reserve_bytes(paths, total_points, tiled=False))
             cloud = read_cloud(paths, crs=options.crs, keep=keep, fields=(),
-                               progress=_stage_progress(bar, task))
+                               progress=_stage_progress(bar, task), records=records)
             for info, entry in zip(cloud.sources, record.inputs, strict=False):
                 entry.update({"sha256": info.sha256, "point_count": info.point_count,
                               "point_format": info.point_format, "las_version": info.version,
@@ -342,13 +366,26 @@ def _run_audit(options: AuditOptions, console=None):
 
             summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
                                     record, tolerance_rows=tolerance_rows,
-                                    progress=_stage_progress(bar, task))
+                                    progress=_stage_progress(bar, task), records=records)
         _finish_record_and_report(tmp, record, options)
     if console is not None:
         from .outputs import print_summary
 
         print_summary(console, summary, options.out, options.units)
     return options.out
+
+
+def _reserve_bytes(paths: list[Path], total_points: int, tiled: bool) -> int:
+    """Disk the run writes besides the record scratch, roughly: classified.laz (about the
+    inputs' size plus the height above ground, 4 B/point) and, tiled, the cell buckets and the
+    tiles' per-point files. [bytes]"""
+    per_point = 4
+    if tiled:
+        from .tiling import RECORD
+
+        # buckets, then key (8), cls (1), hag (4), rcls (1), wire (8), other (8) per tile point
+        per_point += RECORD.itemsize + 30
+    return sum(p.stat().st_size for p in paths) + per_point * int(total_points)
 
 
 def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOptions) -> None:
@@ -408,7 +445,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     from .classify import ClassifyOptions
     from .cloud import Cloud
     from .distributed import engine_for
-    from .io.las import read_setup, write_classified_stream
+    from .io.las import plan_record_scratch, read_setup, write_classified_stream
     from .model import build_line_model
     from .threads import inner_threads
     from .tiling import (
@@ -447,12 +484,18 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # the plan never depends on the engine: a Dask run equals the in-process run
                 tile_points = options.tile_points
                 parts = plan_parts(setup, min(part_points, 10_000_000))
+                # each part also keeps its raw point records (compressed inputs) in the work
+                # folder, for classified.laz
+                records, record.extra["classified_copy"] = plan_record_scratch(
+                    paths, work / "records",
+                    reserve_bytes=_reserve_bytes(paths, setup.total_points, tiled=True))
+                keep_records = {} if records is None else {"records": records}
                 task = bar.add_task("read", total=setup.total_points, rate="")
                 progress = _stage_progress(bar, task)
                 cells: dict[tuple[int, int], int] = {}
                 decoded = kept = 0
-                for _, res in engine.run([(split_part, (str(work), setup, p, grid, corridor), {})
-                                          for p in parts]):
+                for _, res in engine.run([(split_part, (str(work), setup, p, grid, corridor),
+                                           keep_records) for p in parts]):
                     for c, n in res["cells"].items():
                         cells[c] = cells.get(c, 0) + n
                     decoded += res["decoded"]
@@ -617,7 +660,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         setup.sources, path, values, crs=setup.crs,
                         max_code=max(counts) if counts else 0,
                         extra_dims={"height_above_ground": (np.float32,
-                                                            "height above ground [m]")})
+                                                            "height above ground [m]")},
+                        records=records)
 
                 cls_summary = _ClassCounts(counts)
                 summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,

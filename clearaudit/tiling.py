@@ -37,6 +37,7 @@ import os
 import pickle
 import resource
 import time
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -52,7 +53,7 @@ from .cloud import (
     Cloud,
 )
 from .errors import InputError
-from .io.las import ReadSetup, corridor_mask, read_range
+from .io.las import ReadSetup, RecordScratch, corridor_mask, read_range
 
 #: One bucket record: local metres, the file's class code, ``file_id << KEY_SHIFT | index``.
 RECORD = np.dtype([("xyz", "<f8", (3,)), ("cls", "u1"), ("key", "<i8")])
@@ -134,7 +135,8 @@ def _cell_dir(work: Path, i: int, j: int) -> Path:
 
 def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
                corridor: Corridor | None = None, *, flush_points: int = 1_000_000,
-               chunk_size: int = 1_000_000) -> dict[str, Any]:
+               chunk_size: int = 1_000_000,
+               records: RecordScratch | None = None) -> dict[str, Any]:
     """Decode one point range and append every kept point to its cell's bucket file.
 
     Parameters
@@ -153,6 +155,10 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
         Points buffered before they are appended to the bucket files (bounds memory). [points]
     chunk_size
         Points decoded per step. [points]
+    records
+        Optional :class:`~clearaudit.io.las.RecordScratch` (in the work folder): the raw
+        point records of every decoded point of the range, culled or not, go to the range's
+        own scratch file, for the classified copy.
 
     Returns
     -------
@@ -177,31 +183,33 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
                     a.tofile(fh)
         buffers.clear()
 
-    for xyz, cls, index, n in read_range(setup, part.file_id, part.start, part.stop, keep=keep,
-                                         chunk_size=chunk_size):
-        decoded += n
-        if len(xyz) == 0:
-            continue
-        rec = np.empty(len(xyz), dtype=RECORD)
-        rec["xyz"] = xyz
-        rec["cls"] = cls
-        rec["key"] = (np.int64(part.file_id) << KEY_SHIFT) | index
-        ci, cj = grid.cells(xyz)
-        # stable sort keeps the input order inside every cell
-        cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
-        order = np.argsort(cell_key, kind="stable")
-        ck = cell_key[order]
-        cuts = np.flatnonzero(np.diff(ck)) + 1
-        for seg in np.split(np.arange(len(order)), cuts):
-            first = order[seg[0]]
-            key = (int(ci[first]), int(cj[first]))
-            buffers.setdefault(key, []).append(rec[order[seg]])
-            counts[key] = counts.get(key, 0) + len(seg)
-        kept += len(xyz)
-        buffered += len(xyz)
-        if buffered >= flush_points:
-            flush()
-            buffered = 0
+    with (records.writer(part.file_id, part.start) if records is not None
+          else nullcontext()) as sink:
+        for xyz, cls, index, n in read_range(setup, part.file_id, part.start, part.stop,
+                                             keep=keep, chunk_size=chunk_size, records_to=sink):
+            decoded += n
+            if len(xyz) == 0:
+                continue
+            rec = np.empty(len(xyz), dtype=RECORD)
+            rec["xyz"] = xyz
+            rec["cls"] = cls
+            rec["key"] = (np.int64(part.file_id) << KEY_SHIFT) | index
+            ci, cj = grid.cells(xyz)
+            # stable sort keeps the input order inside every cell
+            cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
+            order = np.argsort(cell_key, kind="stable")
+            ck = cell_key[order]
+            cuts = np.flatnonzero(np.diff(ck)) + 1
+            for seg in np.split(np.arange(len(order)), cuts):
+                first = order[seg[0]]
+                key = (int(ci[first]), int(cj[first]))
+                buffers.setdefault(key, []).append(rec[order[seg]])
+                counts[key] = counts.get(key, 0) + len(seg)
+            kept += len(xyz)
+            buffered += len(xyz)
+            if buffered >= flush_points:
+                flush()
+                buffered = 0
     flush()
     return {"cells": counts, "decoded": decoded, "kept": kept,
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}

@@ -15,6 +15,9 @@ Verbs
   file's points as local-metre chunks (LAZ chunk tables let a range start mid-file).
 - :func:`write_classified_stream` — like :func:`write_classified`, with the new codes asked
   for chunk by chunk (memory bounded by the chunk, not the survey).
+- :func:`plan_record_scratch`, :class:`RecordScratch` — keep the raw point records of
+  compressed inputs in uncompressed scratch files while they are decoded, so the classified
+  copy is written without decoding them a second time.
 
 Precision
 ---------
@@ -32,12 +35,13 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
+import shutil
 import tempfile
-from collections.abc import Callable, Iterable, Sequence
-from contextlib import contextmanager
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import laspy
 import numpy as np
@@ -319,6 +323,166 @@ class _Shift:
         return out
 
 
+# =============================================================================== record scratch
+#: Free disk space left over after the scratch and what the run itself writes: at least this
+#: much, and at least a tenth of the scratch. [bytes]
+SCRATCH_MARGIN_BYTES = 1 << 30
+_SCRATCH_SUFFIX = ".rec"
+
+
+@dataclass(frozen=True)
+class RecordScratch:
+    """Uncompressed copies of the inputs' point records, written while they are decoded.
+
+    A compressed input is decoded once when it is read; its raw point records (the bytes
+    of each point as the file stores them, before any culling) are appended to scratch files,
+    and the classified copy reads them back instead of decoding the input again. A file is
+    kept as one or more point ranges, each in its own scratch file (the tiled run decodes
+    ranges in parallel tasks, possibly on other machines sharing the folder).
+
+    Attributes
+    ----------
+    folder
+        Folder of the scratch files (the run's work folder or a temporary folder).
+    file_ids
+        Inputs (index in read order) whose records are kept; the others (uncompressed LAS,
+        as cheap to read as a scratch file) are read from the input file itself.
+    """
+
+    folder: Path
+    file_ids: frozenset[int]
+
+    def path(self, file_id: int, start: int = 0) -> Path:
+        """Scratch file of the point range of file ``file_id`` that begins at ``start``."""
+        return Path(self.folder) / f"f{int(file_id):06d}_{int(start):013d}{_SCRATCH_SUFFIX}"
+
+    @contextmanager
+    def writer(self, file_id: int, start: int = 0) -> Iterator[BinaryIO | None]:
+        """Open the scratch file of one point range for writing (None: file not kept).
+
+        The records go to a ``.part`` file renamed on success, so a scratch file that
+        exists is complete; on any error the partial file is removed.
+        """
+        if int(file_id) not in self.file_ids:
+            yield None
+            return
+        final = self.path(file_id, start)
+        partial = final.with_name(final.name + ".part")
+        try:
+            with open(partial, "wb") as fh:
+                yield fh
+            os.replace(partial, final)
+        except BaseException:
+            partial.unlink(missing_ok=True)
+            raise
+
+    def ranges(self, file_id: int, record_size: int, point_count: int
+               ) -> list[tuple[Path, int]] | None:
+        """The scratch files of one input in point order, with their point counts.
+
+        Returns None when the file is not kept or its scratch files do not hold exactly
+        ``point_count`` records of ``record_size`` bytes, one range after the other from
+        point 0 (then the input is decoded instead).
+        """
+        if int(file_id) not in self.file_ids:
+            return None
+        prefix = f"f{int(file_id):06d}_"
+        found = []
+        for entry in Path(self.folder).glob(f"{prefix}*{_SCRATCH_SUFFIX}"):
+            try:
+                start = int(entry.name[len(prefix):-len(_SCRATCH_SUFFIX)])
+            except ValueError:
+                continue
+            found.append((start, entry))
+        found.sort()
+        out, at = [], 0
+        for start, entry in found:
+            size = entry.stat().st_size
+            if start != at or size % record_size:
+                return None
+            out.append((entry, size // record_size))
+            at += size // record_size
+        return out if at == int(point_count) else None
+
+
+def plan_record_scratch(paths: str | Path | Iterable[str | Path], folder: str | Path, *,
+                        reserve_bytes: int = 0) -> tuple[RecordScratch | None, dict[str, Any]]:
+    """Decide whether the raw point records of the inputs are kept in scratch files.
+
+    Parameters
+    ----------
+    paths
+        The inputs (see :func:`resolve_inputs`), in read order.
+    folder
+        Folder for the scratch files; created when the scratch is used. Its free space (or
+        that of its nearest existing parent) is checked with ``shutil.disk_usage``.
+    reserve_bytes
+        Disk space the run writes besides the scratch (work files, outputs). [bytes]
+
+    Returns
+    -------
+    (RecordScratch or None, dict)
+        The scratch (None: every input is decoded again for the classified copy) and what
+        was decided, for the run record: ``records_from`` (``"scratch"`` or ``"inputs"``),
+        ``reason``, ``scratch_files`` (input indices kept), ``scratch_bytes``,
+        ``disk_free_bytes``, ``disk_needed_bytes``.
+
+    Notes
+    -----
+    Only compressed (LAZ) inputs are kept: an uncompressed LAS input is read as cheaply as a
+    scratch file would be. The scratch holds ``point_count x record_length`` bytes per kept
+    input (the uncompressed LAS size less its header); it is used when
+
+    .. math:: free \\ge scratch + reserve + \\max(1\\,GiB,\\ 0.1\\, scratch)
+    """
+    files = resolve_inputs(paths)
+    folder = Path(folder)
+    kept: list[int] = []
+    scratch_bytes = 0
+    for file_id, path in enumerate(files):
+        with _open_reader(path) as reader:
+            header = reader.header
+            if header.are_points_compressed and header.point_count > 0:
+                kept.append(file_id)
+                scratch_bytes += int(header.point_count) * header.point_format.dtype().itemsize
+    info: dict[str, Any] = {"records_from": "inputs", "reason": "", "scratch_files": kept,
+                            "scratch_bytes": scratch_bytes, "disk_free_bytes": None,
+                            "disk_needed_bytes": None}
+    if not kept:
+        info["reason"] = "no compressed input: the inputs are read again directly"
+        info["scratch_files"] = []
+        return None, info
+    probe = folder.absolute()
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent  # the folder is created only when used
+    free = int(shutil.disk_usage(probe).free)
+    needed = scratch_bytes + max(int(reserve_bytes), 0) + max(SCRATCH_MARGIN_BYTES,
+                                                              scratch_bytes // 10)
+    info.update(disk_free_bytes=free, disk_needed_bytes=needed)
+    if free < needed:
+        info["reason"] = (f"not enough free disk for the scratch ({free / 1e9:.2f} GB free, "
+                          f"{needed / 1e9:.2f} GB wanted): the inputs are decoded again")
+        info["scratch_files"] = []
+        logger.info("%s: %s", probe, info["reason"])
+        return None, info
+    folder.mkdir(parents=True, exist_ok=True)
+    info["records_from"] = "scratch"
+    info["reason"] = ("raw point records of the compressed inputs kept while they were "
+                      "decoded; the classified copy reads them instead of decoding again")
+    return RecordScratch(folder=folder, file_ids=frozenset(kept)), info
+
+
+def _record_sink(records: RecordScratch | None, file_id: int, start: int = 0):
+    """``records.writer(file_id, start)``, or a context that yields None."""
+    return nullcontext(None) if records is None else records.writer(file_id, start)
+
+
+def _keep_records(sink: BinaryIO | None, chunk: Any) -> None:
+    """Append a decoded chunk's raw point records to a scratch file (no copy)."""
+    if sink is not None:
+        sink.write(np.ascontiguousarray(chunk.array).view(np.uint8))
+
+
 # =============================================================================== reading
 def read_cloud(
     paths: str | Path | Iterable[str | Path],
@@ -329,6 +493,7 @@ def read_cloud(
     keep: Callable[[np.ndarray], np.ndarray] | None = None,
     progress: Callable[[int, int], Any] | None = None,
     origin: Sequence[float] | None = None,
+    records: RecordScratch | None = None,
 ) -> Cloud:
     """Read LAS/LAZ files into one :class:`~clearaudit.cloud.Cloud` in local metres.
 
@@ -353,6 +518,10 @@ def read_cloud(
     origin
         Local origin (x, y, z) in CRS units; default is the minimum header x, y rounded
         down to 100 units and z = 0, snapped to the first file's coordinate grid. [CRS unit]
+    records
+        Optional :class:`RecordScratch` (from :func:`plan_record_scratch`): the raw point
+        records of every point of its files, ``keep`` or not, are appended to scratch files
+        chunk by chunk as they are decoded, for :func:`write_classified`.
 
     Returns
     -------
@@ -412,7 +581,7 @@ def read_cloud(
         header = meta.header
         shift = _Shift.between(header.scales, header.offsets, origin_arr)
         n_file = 0
-        with _open_reader(meta.path) as reader:
+        with _open_reader(meta.path) as reader, _record_sink(records, file_id) as sink:
             for chunk in _chunks(reader, meta.path, chunk_size):
                 m = len(chunk)
                 if n_points + m > total:
@@ -421,6 +590,7 @@ def read_cloud(
                         f"is truncated or corrupt (header says {meta.point_count} points, "
                         f"more could be read)",
                     )
+                _keep_records(sink, chunk)
                 lx = shift.local_into(np.asarray(chunk.X), 0, np.empty(m))
                 ly = shift.local_into(np.asarray(chunk.Y), 1, np.empty(m))
                 mask = None
@@ -617,7 +787,7 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
 
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
                keep: Callable[[np.ndarray], np.ndarray] | None = None,
-               chunk_size: int = DEFAULT_CHUNK_SIZE):
+               chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: BinaryIO | None = None):
     """Stream points ``start:stop`` of one input file as local-metre chunks.
 
     Parameters
@@ -633,6 +803,9 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
         Optional ``keep(xy_crs) -> bool mask``, as in :func:`read_cloud`.
     chunk_size
         Points decoded per step. [points]
+    records_to
+        Optional binary file (``RecordScratch.writer``) to which the raw point records of
+        every decoded point, ``keep`` or not, are appended chunk by chunk.
 
     Yields
     ------
@@ -668,6 +841,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             if m == 0:
                 raise InputError(path, f"is truncated or corrupt (header says {count} points, "
                                        f"{position} could be read)")
+            _keep_records(records_to, chunk)
             local_x = shift.local(np.asarray(chunk.X), 0)
             local_y = shift.local(np.asarray(chunk.Y), 1)
             index = np.arange(position, position + m, dtype=np.int64)
@@ -1173,6 +1347,7 @@ def write_classified(
     extra_dims: ExtraDims | None = None,
     *,
     chunk_size: int = DEFAULT_CHUNK_SIZE,
+    records: RecordScratch | None = None,
 ) -> Path:
     """Write every point of the original input files with new class codes and extra dims.
 
@@ -1193,6 +1368,9 @@ def write_classified(
         integer dimensions).
     chunk_size
         Points streamed per step. [points]
+    records
+        The :class:`RecordScratch` the cloud was read with: the point records of its files
+        are read from the scratch files instead of being decoded again (same output bytes).
 
     Returns
     -------
@@ -1276,7 +1454,7 @@ def write_classified(
                     return (np.ones(stop - start, dtype=bool), file_codes[sl],
                             {k: a[sl] for k, a in file_extras.items()})
 
-                _stream_file(writer, meta, whole, chunk_size)
+                _stream_file(writer, meta, whole, chunk_size, _kept(records, file_id, meta))
                 continue
             has_new = np.zeros(count, dtype=bool)
             has_new[idx] = True
@@ -1296,7 +1474,7 @@ def write_classified(
                 sl = slice(start, stop)
                 return has_new[sl], new_codes[sl], {k: a[sl] for k, a in full_extras.items()}
 
-            _stream_file(writer, meta, values, chunk_size)
+            _stream_file(writer, meta, values, chunk_size, _kept(records, file_id, meta))
 
     _write_atomically(path, header, compress, produce)
     return path
@@ -1355,6 +1533,7 @@ def write_classified_stream(
     max_code: int = 255,
     extra_dims: dict[str, tuple[Any, str]] | None = None,
     chunk_size: int = DEFAULT_CHUNK_SIZE,
+    records: RecordScratch | None = None,
 ) -> Path:
     """Write every point of the input files with new codes asked for chunk by chunk.
 
@@ -1378,6 +1557,9 @@ def write_classified_stream(
         ``{name: (numpy dtype, description)}`` of the new extra dimensions.
     chunk_size
         Points streamed per step. [points]
+    records
+        The :class:`RecordScratch` the inputs were split with (:func:`read_range`
+        ``records_to``): point records are read from its files instead of being decoded.
 
     Returns
     -------
@@ -1411,28 +1593,95 @@ def write_classified_stream(
                 return (np.asarray(has_new, dtype=bool), np.asarray(codes, dtype=np.uint8),
                         {k: np.asarray(more[k], dtype=extras[k][0]) for k in extras})
 
-            _stream_file(writer, meta, chunk_values, chunk_size)
+            _stream_file(writer, meta, chunk_values, chunk_size, _kept(records, file_id, meta))
 
     _write_atomically(path, header, compress, produce)
     return path
 
 
+def _kept(records: RecordScratch | None, file_id: int,
+          meta: _FileMeta) -> list[tuple[Path, int]] | None:
+    """The scratch files holding the records of input ``file_id`` (None: decode the input)."""
+    if records is None or file_id not in records.file_ids:
+        return None
+    ranges = records.ranges(file_id, meta.header.point_format.dtype().itemsize,
+                            meta.point_count)
+    if ranges is None:
+        logger.warning("%s: its scratch records are incomplete; decoding the input again",
+                       meta.path)
+    return ranges
+
+
 def _stream_file(writer: Any, meta: _FileMeta, values: Callable[[int, int], tuple],
-                 chunk_size: int) -> None:
+                 chunk_size: int, kept: list[tuple[Path, int]] | None = None) -> None:
     """Stream one input file into ``writer`` with new class codes and extra dimensions.
 
     When the input's point records are a byte prefix of the output's (same point format,
     same extra dimensions first — the usual case), each chunk is copied as raw bytes;
-    otherwise the dimensions are copied by name (format conversion).
+    otherwise the dimensions are copied by name (format conversion). The records come from
+    the scratch files ``kept`` (path, points) when given, else from decoding the input.
     """
-    with _open_reader(meta.path) as reader:
-        if _is_record_prefix(meta.header.point_format, writer.header.point_format):
-            start = _stream_raw(writer, meta, reader, values, chunk_size)
+    prefix = _is_record_prefix(meta.header.point_format, writer.header.point_format)
+    if kept is not None:
+        raw = _scratch_record_bytes(kept, meta, chunk_size)
+        if prefix:
+            start = _stream_raw(writer, meta, raw, values, chunk_size)
         else:
-            start = _stream_by_name(writer, meta, reader, values, chunk_size)
+            start = _stream_by_name(writer, meta, (_as_points(b, meta.header) for b in raw),
+                                    values)
+    else:
+        with _open_reader(meta.path) as reader:
+            if prefix:
+                start = _stream_raw(writer, meta, _record_bytes(reader, meta.path, chunk_size),
+                                    values, chunk_size)
+            else:
+                start = _stream_by_name(writer, meta, _chunks(reader, meta.path, chunk_size),
+                                        values)
     if start != meta.point_count:
         raise InputError(meta.path, f"is truncated or corrupt (header says {meta.point_count} "
                                     f"points, {start} could be read)")
+
+
+def _scratch_record_bytes(kept: list[tuple[Path, int]], meta: _FileMeta,
+                          chunk_size: int) -> Iterator[np.ndarray]:
+    """Yield the records kept in scratch files as (m, record size) uint8 arrays, in chunks of
+    ``chunk_size`` points whatever the files' ranges (the chunks the decoder would give),
+    read into one reused buffer (overwritten by the next chunk)."""
+    size = meta.header.point_format.dtype().itemsize
+    total = sum(n for _, n in kept)
+    buffer = np.empty(min(chunk_size, max(total, 0)) * size, dtype=np.uint8)
+    files = iter(kept)
+    fh = None
+    done = 0
+    try:
+        while done < total:
+            m = min(chunk_size, total - done)
+            view = memoryview(buffer)[:m * size]
+            filled = 0
+            while filled < len(view):
+                if fh is None:
+                    scratch_path, _ = next(files)
+                    fh = open(scratch_path, "rb", buffering=0)  # noqa: SIM115 - closed below
+                got = fh.readinto(view[filled:])
+                if not got:
+                    fh.close()
+                    fh = None
+                    continue
+                filled += got
+            done += m
+            yield buffer[:m * size].reshape(m, size)
+    except StopIteration:  # pragma: no cover - sizes are checked by RecordScratch.ranges
+        raise InputError(meta.path, "its scratch records ended early") from None
+    finally:
+        if fh is not None:
+            fh.close()
+
+
+def _as_points(chunk_bytes: np.ndarray, header: Any) -> laspy.ScaleAwarePointRecord:
+    """Raw records of a file as the laspy point record its reader would give."""
+    array = chunk_bytes.reshape(-1).view(header.point_format.dtype())
+    return laspy.ScaleAwarePointRecord(array, header.point_format, header.scales,
+                                       header.offsets)
 
 
 def _is_record_prefix(in_format: Any, out_format: Any) -> bool:
@@ -1455,9 +1704,10 @@ def _is_record_prefix(in_format: Any, out_format: Any) -> bool:
     return True
 
 
-def _stream_raw(writer: Any, meta: _FileMeta, reader: Any, values: Callable[[int, int], tuple],
-                chunk_size: int) -> int:
-    """Chunks of one file whose records are a byte prefix of the output records."""
+def _stream_raw(writer: Any, meta: _FileMeta, raw: Iterable[np.ndarray],
+                values: Callable[[int, int], tuple], chunk_size: int) -> int:
+    """Chunks of one file whose records are a byte prefix of the output records; ``raw``
+    yields the input records of each chunk as (m, record size) uint8 arrays."""
     out_header = writer.header
     out_format = out_header.point_format
     in_size = meta.header.point_format.dtype().itemsize
@@ -1469,7 +1719,7 @@ def _stream_raw(writer: Any, meta: _FileMeta, reader: Any, values: Callable[[int
     buffer = np.zeros(min(chunk_size, max(meta.point_count, 1)), dtype=out_format.dtype())
     buffer_bytes = buffer.view(np.uint8).reshape(len(buffer), out_size)
     start = 0
-    for chunk_bytes in _record_bytes(reader, meta.path, chunk_size):
+    for chunk_bytes in raw:
         m = len(chunk_bytes)
         if m > len(buffer):  # pragma: no cover - chunks hold at most chunk_size points
             buffer = np.zeros(m, dtype=out_format.dtype())
@@ -1596,9 +1846,10 @@ def _set_classification(records: np.ndarray, has_new: np.ndarray, new_codes: np.
         raw[has_new] = (raw[has_new] & np.uint8(0xE0)) | codes
 
 
-def _stream_by_name(writer: Any, meta: _FileMeta, reader: Any,
-                    values: Callable[[int, int], tuple], chunk_size: int) -> int:
-    """Chunks of one file converted to another point format, dimension by dimension."""
+def _stream_by_name(writer: Any, meta: _FileMeta, chunks: Iterable[Any],
+                    values: Callable[[int, int], tuple]) -> int:
+    """Chunks of one file (laspy point records) converted to another point format, dimension
+    by dimension."""
     out_header = writer.header
     out_scales = np.asarray(out_header.scales, dtype=np.float64)
     out_offsets = np.asarray(out_header.offsets, dtype=np.float64)
@@ -1607,7 +1858,7 @@ def _stream_by_name(writer: Any, meta: _FileMeta, reader: Any,
     legacy_in = meta.header.point_format.id < 6
     legacy_out = out_header.point_format.id < 6
     start = 0
-    for chunk in _chunks(reader, meta.path, chunk_size):
+    for chunk in chunks:
         m = len(chunk)
         out = laspy.ScaleAwarePointRecord.zeros(m, header=out_header)
         out.copy_fields_from(chunk)
