@@ -686,19 +686,22 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     sol = np.full((len(ok), 3), np.nan)
     sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
-    # residuals built in place (one point-sized temporary at a time), the same operations
-    # in the same order as z - ((b·dx + a) + c·dy); per-cell coefficients gathered from
+    # residuals in chunks of points (small temporaries), the same operations in the same order
+    # as z - ((b·dx + a) + c·dy) for every point; per-cell coefficients gathered from
     # contiguous columns
     a0, b0, c0 = (np.ascontiguousarray(coef[:, j]) for j in range(3))
-    res = np.take(b0, k)
-    res *= dx
-    tmp = np.take(a0, k)
-    res += tmp
-    np.take(c0, k, out=tmp, mode="clip")  # (k is in range; "raise" would buffer a copy)
-    tmp *= dy
-    res += tmp
-    del tmp
-    np.subtract(zr, res, out=res)
+    res = np.empty(len(zr))
+    step = 1 << 20
+    for lo in range(0, len(zr), step):                    # a loop over chunks of points
+        hi = min(lo + step, len(zr))
+        kk = k[lo:hi]
+        part = np.take(b0, kk)
+        part *= dx[lo:hi]
+        part += np.take(a0, kk)
+        tmp = np.take(c0, kk)
+        tmp *= dy[lo:hi]
+        part += tmp
+        np.subtract(zr[lo:hi], part, out=res[lo:hi])
     del zr
     np.nan_to_num(res, copy=False, nan=1e3)
     np.square(res, out=res)
