@@ -169,6 +169,7 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     ix0, iy0 = int(ixy[:, 0].min()), int(ixy[:, 1].min())
     stride = int(ixy[:, 1].max()) - iy0 + 2
     key = (ixy[:, 0] - ix0) * stride + (ixy[:, 1] - iy0)
+    del ixy
     # Highest point per cell (of equal heights the last in input order): sort by key (stable,
     # so input order within a cell), the highest of each run.
     order = np.argsort(key, kind="stable")
@@ -184,6 +185,8 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     cell_key = skey[starts]
     cell_xyz = pts[top_idx]
     cell_h = hag[top_idx]
+    # from here on everything is per cell: the per-point work arrays go
+    del key, order, skey, first, starts, z_sorted, run, highest, at, top_idx
     n_cells = len(cell_key)
     grid = (float(cell_m), ix0, iy0, stride)
 
