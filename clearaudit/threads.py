@@ -15,7 +15,8 @@ from __future__ import annotations
 
 import os
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 
 _local = threading.local()
@@ -79,4 +80,26 @@ def thread_limit(threads: int) -> Iterator[None]:
         _local.limit = previous
 
 
-__all__ = ["available_cores", "inner_threads", "resolve_threads", "run_threads", "thread_limit"]
+def run_chunks(work: Callable[[int, int], None], n: int, chunk: int,
+               threads: int | None = None) -> None:
+    """Call ``work(start, stop)`` on consecutive ranges of ``chunk`` covering ``range(n)``.
+
+    The ranges must be independent (each writes its own part of the outputs); they run on
+    ``threads`` threads (default :func:`inner_threads`), inline with one thread or one range.
+    A range's exception is raised here.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be at least 1, not {chunk}")
+    threads = inner_threads() if threads is None else int(threads)
+    bounds = [(start, min(n, start + chunk)) for start in range(0, n, chunk)]
+    if threads <= 1 or len(bounds) <= 1:
+        for start, stop in bounds:
+            work(start, stop)
+        return
+    with ThreadPoolExecutor(max_workers=min(threads, len(bounds))) as pool:
+        for future in [pool.submit(work, start, stop) for start, stop in bounds]:
+            future.result()
+
+
+__all__ = ["available_cores", "inner_threads", "resolve_threads", "run_chunks", "run_threads",
+           "thread_limit"]

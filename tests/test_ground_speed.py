@@ -19,11 +19,10 @@ from clearaudit.classify.grid import (
     PointLocation,
     _block_sum,
     inpaint,
-    run_chunks,
-    thread_count,
 )
 from clearaudit.classify.ground import morphological_slope_ratio
 from clearaudit.classify.noise import compact_voxel_keys, isolated_points, pit_cells
+from clearaudit.threads import inner_threads, run_chunks
 
 
 def _isolated_brute_force(xyz, voxel, min_neighbours):
@@ -155,7 +154,7 @@ def test_run_chunks_covers_every_index_once(monkeypatch):
     # reference: direct count of the visited indices
     for threads in ("1", "2"):
         monkeypatch.setenv("CLEARAUDIT_THREADS", threads)
-        assert thread_count() == int(threads)
+        assert inner_threads() == int(threads)
         hits = np.zeros(10_001, np.int64)
 
         def work(lo, hi, hits=hits):

@@ -63,3 +63,17 @@ def test_thread_settings_nest_and_reject_bad_counts(monkeypatch):
         resolve_threads(-1)
     with pytest.raises(ValueError):
         InProcessEngine(threads=0)
+
+
+def test_run_chunks_raises_a_failing_range_and_rejects_a_bad_chunk():
+    from clearaudit.threads import run_chunks
+
+    def work(lo: int, hi: int) -> None:
+        if lo <= 500 < hi:
+            raise ValueError("range with 500 is broken")
+
+    for threads in (1, 2):
+        with pytest.raises(ValueError, match="500"):
+            run_chunks(work, 1000, 100, threads)
+    with pytest.raises(ValueError):
+        run_chunks(work, 10, 0)

@@ -9,13 +9,12 @@ the result does not depend on the thread count or the chunk size.
 """
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..threads import inner_threads
+from ..threads import inner_threads, run_chunks
 
 _CHUNK = 65_536  # query points per chunk (a few MB of (k, m) blocks: cache friendly)
 
@@ -148,8 +147,7 @@ def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray
     normal = np.zeros((n, 3))
     count = np.zeros(n, dtype=np.int32)
 
-    def chunk(start: int) -> None:
-        stop = min(n, start + _CHUNK)
+    def chunk(start: int, stop: int) -> None:
         rows = which[start:stop]
         q = pts[rows]
         _, idx = tree.query(q, k=k, distance_upper_bound=radius, workers=1)
@@ -190,13 +188,7 @@ def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray
         ver[sl] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
         count[sl] = cnt
 
-    starts = range(0, n, _CHUNK)
-    if threads <= 1 or len(starts) <= 1:
-        for start in starts:
-            chunk(start)
-    else:
-        with ThreadPoolExecutor(max_workers=min(threads, len(starts))) as pool:
-            list(pool.map(chunk, starts))  # list(): re-raises a chunk's exception here
+    run_chunks(chunk, n, _CHUNK, threads)
     return EigenFeatures(lin, pla, sca, ver, direction, normal, count)
 
 

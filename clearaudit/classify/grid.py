@@ -5,46 +5,16 @@ that runs diagonally through its bounding box does not produce a grid that is mo
 """
 from __future__ import annotations
 
-from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
 
-from ..threads import inner_threads
+from ..threads import run_chunks
 
 # points per chunk of the per-point passes (bilinear weights, sampling): small enough that the
 # temporaries stay in cache-friendly sizes, large enough that the Python overhead is nil
 _CHUNK = 1 << 20
-
-
-def thread_count() -> int:
-    """Threads for the chunked per-point and per-row passes: :func:`clearaudit.threads.inner_threads`.
-
-    One inside a tile thread of the in-process engine, else the run's ``--threads``, the
-    ``CLEARAUDIT_THREADS`` environment variable or every core; 1 runs every chunk inline.
-    numpy and scipy.ndimage release the GIL in these passes.
-    """
-    return inner_threads()
-
-
-def run_chunks(work: Callable[[int, int], None], n: int, chunk: int = _CHUNK,
-               threads: int | None = None) -> None:
-    """Call ``work(start, stop)`` on consecutive ranges covering ``range(n)``.
-
-    The ranges are independent (each writes its own part of the outputs), so they may run on
-    :func:`thread_count` threads; with one thread, or a single range, they run inline.
-    """
-    threads = thread_count() if threads is None else threads
-    bounds = [(start, min(n, start + chunk)) for start in range(0, n, chunk)]
-    if threads <= 1 or len(bounds) <= 1:
-        for start, stop in bounds:
-            work(start, stop)
-        return
-    with ThreadPoolExecutor(max_workers=min(threads, len(bounds))) as pool:
-        for future in [pool.submit(work, start, stop) for start, stop in bounds]:
-            future.result()
 
 
 @dataclass(frozen=True)
@@ -247,7 +217,7 @@ class PointLocation:
             i *= n_v
             np.add(i, j, out=out[lo:hi])
 
-        run_chunks(work, len(out))
+        run_chunks(work, len(out), _CHUNK)
         return out
 
     def sampler(self) -> BilinearSampler:
@@ -283,7 +253,7 @@ class PointLocation:
             i0 *= m_v
             np.add(i0, j0, out=k00[lo:hi])
 
-        run_chunks(work, n)
+        run_chunks(work, n, _CHUNK)
         return BilinearSampler(k00, wa, wb, outside, (n_u, n_v), m_v)
 
 
@@ -342,7 +312,7 @@ class BilinearSampler:
             if outside.any():
                 upper[outside] = np.nan
 
-        run_chunks(work, len(out))
+        run_chunks(work, len(out), _CHUNK)
         return out
 
 

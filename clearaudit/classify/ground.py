@@ -18,13 +18,14 @@ filter by the noise step (isolation and single-cell pits).
 """
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 from scipy import ndimage
 
-from .grid import GridFrame, InpaintPlan, PointLocation, cell_mean, cell_min, inpaint, thread_count
+from ..threads import inner_threads, run_chunks
+from .grid import GridFrame, InpaintPlan, PointLocation, cell_mean, cell_min, inpaint
 
 
 @dataclass
@@ -154,51 +155,39 @@ def morphological_slope_ratio(surface: np.ndarray, max_radius: int, cell: float
     # (< 0.1 mm below 1 km of local height) halves the memory traffic of the filters
     surface = np.asarray(surface, dtype=np.float32)
     n_u = surface.shape[0]
-    threads = min(thread_count(), max(1, n_u // 256))
+    threads = min(inner_threads(), max(1, n_u // 256))
     # row bands, filtered on separate threads: a band with ``radius`` extra rows on each side
     # gives exactly the rows of a filter of the whole grid (the window reaches ``radius`` rows)
-    bounds = np.linspace(0, n_u, threads + 1).astype(int)
-    bands = list(zip(bounds[:-1], bounds[1:], strict=True))
+    band_rows = -(-n_u // threads)
     previous = surface
     buffers = [np.empty_like(surface), np.empty_like(surface)]
     eroded = np.empty_like(surface)
     ratio = np.zeros_like(surface)
 
-    def erode(band: tuple[int, int], radius: int, source: np.ndarray) -> None:
-        lo, hi = band
+    def band_filter(filt, source: np.ndarray, out: np.ndarray, lo: int, hi: int,
+                    radius: int) -> None:
+        """Rows lo:hi of ``filt`` (a square min or max filter) of the whole ``source``."""
         a, b = max(0, lo - radius), min(n_u, hi + radius)
         if a == lo and b == hi:
-            ndimage.minimum_filter(source[lo:hi], size=2 * radius + 1, output=eroded[lo:hi])
+            filt(source[lo:hi], size=2 * radius + 1, output=out[lo:hi])
         else:
-            eroded[lo:hi] = ndimage.minimum_filter(source[a:b], size=2 * radius + 1)[lo - a:hi - a]
+            out[lo:hi] = filt(source[a:b], size=2 * radius + 1)[lo - a:hi - a]
 
-    def dilate(band: tuple[int, int], radius: int, source: np.ndarray, opened: np.ndarray) -> None:
-        lo, hi = band
-        a, b = max(0, lo - radius), min(n_u, hi + radius)
-        if a == lo and b == hi:
-            ndimage.maximum_filter(eroded[lo:hi], size=2 * radius + 1, output=opened[lo:hi])
-        else:
-            opened[lo:hi] = ndimage.maximum_filter(eroded[a:b], size=2 * radius + 1)[lo - a:hi - a]
+    def erode(radius: int, source: np.ndarray, lo: int, hi: int) -> None:
+        band_filter(ndimage.minimum_filter, source, eroded, lo, hi, radius)
+
+    def dilate(radius: int, source: np.ndarray, opened: np.ndarray, lo: int, hi: int) -> None:
+        band_filter(ndimage.maximum_filter, eroded, opened, lo, hi, radius)
         drop = source[lo:hi] - opened[lo:hi]
         drop *= np.float32(1.0 / (radius * cell))
         np.maximum(ratio[lo:hi], drop, out=ratio[lo:hi])
 
-    pool = ThreadPoolExecutor(max_workers=threads) if threads > 1 else None
-    try:
-        for radius in range(1, max_radius + 1):
-            opened = buffers[radius % 2]
-            if pool is None:
-                erode(bands[0], radius, previous)
-                dilate(bands[0], radius, previous, opened)
-            else:
-                for future in [pool.submit(erode, band, radius, previous) for band in bands]:
-                    future.result()
-                for future in [pool.submit(dilate, band, radius, previous, opened) for band in bands]:
-                    future.result()
-            previous = opened
-    finally:
-        if pool is not None:
-            pool.shutdown()
+    for radius in range(1, max_radius + 1):
+        opened = buffers[radius % 2]
+        # every band is eroded before any is dilated (a dilation reads neighbouring bands)
+        run_chunks(partial(erode, radius, previous), n_u, band_rows, threads)
+        run_chunks(partial(dilate, radius, previous, opened), n_u, band_rows, threads)
+        previous = opened
     return ratio, previous
 
 

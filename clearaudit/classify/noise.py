@@ -11,7 +11,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .grid import run_chunks
+from ..threads import run_chunks
+
+_CHUNK = 1 << 20  # points per chunk of the per-point passes
 
 
 def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple[int, int, int]]:
@@ -59,7 +61,7 @@ def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple
                 acc *= scale
         keys[lo:hi] = acc
 
-    run_chunks(work, len(keys))
+    run_chunks(work, len(keys), _CHUNK)
     return keys, (int(dims[0]), int(dims[1]), int(dims[2]))
 
 
@@ -144,7 +146,7 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
     def work(lo: int, hi: int) -> None:
         np.take(table, keys[lo:hi] & keys.dtype.type(mask), out=candidate[lo:hi])
 
-    run_chunks(work, n)
+    run_chunks(work, n, _CHUNK)
     cand = np.flatnonzero(candidate)
     pos = np.clip(np.searchsorted(lonely, keys[cand]), 0, len(lonely) - 1)
     isolated[cand[lonely[pos] == keys[cand]]] = True
