@@ -227,8 +227,28 @@ def _resolve_crs(crs: str | None, unit: str, anchor: tuple[float, float] | None)
     return crs_obj, unit_m, np.array([round(e / 100.0) * 100.0, round(n / 100.0) * 100.0, 0.0])
 
 
-def check_sampling(noise_m: float, gap_fraction: float, outliers: float) -> None:
-    """Point noise [m], share of wire length in gaps and share of outliers: ValueError if bad."""
+def check_line_args(terrain: str, circuit: str, bundle: int, n_shield: int,
+                    structure_kind: str, vegetation: str, noise_m: float, gap_fraction: float,
+                    outliers: float) -> None:
+    """The arguments both generators share (terrain, line layout, vegetation, sampling).
+
+    Raises ValueError with a plain sentence for the first bad one: terrain kind, circuit
+    ("single"/"double"), conductors per bundle (1–8), shield wires (0–2), structure kind,
+    vegetation level, point noise [m] (≥ 0), share of wire length in gaps (0 to < 0.6) and
+    share of outliers (0 to < 0.05).
+    """
+    if terrain not in TERRAIN_KINDS:
+        raise ValueError(f"terrain must be one of {', '.join(TERRAIN_KINDS)}, not {terrain!r}")
+    if circuit not in ("single", "double"):
+        raise ValueError(f"circuit must be 'single' or 'double', not {circuit!r}")
+    if not (isinstance(bundle, (int, np.integer)) and 1 <= bundle <= 8):
+        raise ValueError("bundle must be a whole number from 1 to 8")
+    if n_shield not in (0, 1, 2):
+        raise ValueError("n_shield must be 0, 1 or 2")
+    if structure_kind not in STRUCTURE_KINDS:
+        raise ValueError(f"structure_kind must be one of {', '.join(STRUCTURE_KINDS)}")
+    if vegetation not in VEGETATION_LEVELS:
+        raise ValueError(f"vegetation must be one of {', '.join(VEGETATION_LEVELS)}")
     if not noise_m >= 0:
         raise ValueError("noise_m must not be negative")
     if not 0.0 <= gap_fraction < 0.6:
@@ -240,28 +260,17 @@ def check_sampling(noise_m: float, gap_fraction: float, outliers: float) -> None
 def _check_args(terrain, n_spans, span_length_m, circuit, bundle, n_shield, structure_kind,
                 vegetation, unit, density_per_m2, noise_m, gap_fraction, outliers, arrangement,
                 weights):
-    if terrain not in TERRAIN_KINDS:
-        raise ValueError(f"terrain must be one of {', '.join(TERRAIN_KINDS)}, not {terrain!r}")
+    check_line_args(terrain, circuit, bundle, n_shield, structure_kind, vegetation, noise_m,
+                    gap_fraction, outliers)
     if not (isinstance(n_spans, (int, np.integer)) and n_spans >= 1):
         raise ValueError("n_spans must be a whole number of at least 1")
     lo, hi = span_length_m
     if not (20.0 <= lo <= hi):
         raise ValueError("span_length_m must be (shortest, longest) with 20 m <= shortest <= longest")
-    if circuit not in ("single", "double"):
-        raise ValueError(f"circuit must be 'single' or 'double', not {circuit!r}")
-    if not (isinstance(bundle, (int, np.integer)) and 1 <= bundle <= 8):
-        raise ValueError("bundle must be a whole number from 1 to 8")
-    if n_shield not in (0, 1, 2):
-        raise ValueError("n_shield must be 0, 1 or 2")
-    if structure_kind not in STRUCTURE_KINDS:
-        raise ValueError(f"structure_kind must be one of {', '.join(STRUCTURE_KINDS)}")
-    if vegetation not in VEGETATION_LEVELS:
-        raise ValueError(f"vegetation must be one of {', '.join(VEGETATION_LEVELS)}")
     if unit not in UNITS_M:
         raise ValueError(f"unit must be one of {', '.join(UNITS_M)}, not {unit!r}")
     if not density_per_m2 > 0:
         raise ValueError("density_per_m2 must be positive")
-    check_sampling(noise_m, gap_fraction, outliers)
     if arrangement not in ARRANGEMENTS:
         raise ValueError(f"phase_arrangement must be one of {', '.join(ARRANGEMENTS)}")
     if not all(w > 0 for w in weights):

@@ -36,7 +36,6 @@ from .corridor import (
     _VEGETATION,
     EXTENSION_STEP_M,
     ROW_HALF_WIDTH_M,
-    VEGETATION_LEVELS,
     _bundle_offsets,
     _jsonify,
     _left,
@@ -44,13 +43,13 @@ from .corridor import (
     _Structure,
     _structure_members,
     _tensions,
-    check_sampling,
+    check_line_args,
     line_file_config,
     scan_fields,
 )
 from .output import toml_dumps, write_structures_csv
-from .structures import STRUCTURE_KINDS, insulator_length_m, make_layout, segment_points
-from .terrain import TERRAIN_KINDS, Terrain, random_terrain
+from .structures import insulator_length_m, make_layout, segment_points
+from .terrain import Terrain, random_terrain
 from .wires import CurveSet, WireSpan, sample_wire
 
 #: Points per span = FIXED + PER_DENSITY x density for a 100 m corridor with mixed vegetation
@@ -147,24 +146,13 @@ def _check(n_spans, density_per_m2, tile_points, terrain, span_length_m, section
         raise ValueError("density_per_m2 must be positive")
     if not (isinstance(tile_points, (int, np.integer)) and tile_points >= 10_000):
         raise ValueError("tile_points must be a whole number of at least 10,000")
-    if terrain not in TERRAIN_KINDS:
-        raise ValueError(f"terrain must be one of {', '.join(TERRAIN_KINDS)}, not {terrain!r}")
+    check_line_args(terrain, circuit, bundle, n_shield, structure_kind, vegetation, noise_m,
+                    gap_fraction, outliers)
     lo, hi = span_length_m
     if not 60.0 <= lo <= hi:
         raise ValueError("span_length_m must be (shortest, longest) with 60 m <= shortest <= longest")
     if not (isinstance(section_spans, (int, np.integer)) and section_spans >= 1):
         raise ValueError("section_spans must be a whole number of at least 1")
-    if vegetation not in VEGETATION_LEVELS:
-        raise ValueError(f"vegetation must be one of {', '.join(VEGETATION_LEVELS)}")
-    check_sampling(noise_m, gap_fraction, outliers)
-    if structure_kind not in STRUCTURE_KINDS:
-        raise ValueError(f"structure_kind must be one of {', '.join(STRUCTURE_KINDS)}")
-    if circuit not in ("single", "double"):
-        raise ValueError(f"circuit must be 'single' or 'double', not {circuit!r}")
-    if not (isinstance(bundle, (int, np.integer)) and 1 <= bundle <= 8):
-        raise ValueError("bundle must be a whole number from 1 to 8")
-    if n_shield not in (0, 1, 2):
-        raise ValueError("n_shield must be 0, 1 or 2")
     if not 40.0 <= corridor_width_m <= 400.0:
         raise ValueError("corridor_width_m must be from 40 m to 400 m")
 
