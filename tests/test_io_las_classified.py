@@ -13,6 +13,7 @@ import laspy
 import numpy as np
 import pyproj
 import pytest
+from las_fixture import random_las
 
 from clearaudit.cloud import Cloud
 from clearaudit.errors import InputError
@@ -188,22 +189,7 @@ def test_raw_copy_equals_copy_by_name(tmp_path, monkeypatch, fmt):
 
     rng = np.random.default_rng(fmt)
     n = 2000
-    header = laspy.LasHeader(point_format=fmt, version="1.4")
-    header.scales = np.array([0.01, 0.01, 0.01])
-    header.offsets = np.array([500_000.0, 4_400_000.0, 0.0])
-    dtype = header.point_format.dtype()
-    records = rng.integers(0, 256, n * dtype.itemsize, dtype=np.uint8).view(dtype).copy()
-    records["X"] = rng.integers(0, 30_000, n)
-    records["Y"] = rng.integers(0, 30_000, n)
-    records["Z"] = rng.integers(0, 5_000, n)
-    if "gps_time" in dtype.names:
-        records["gps_time"] = rng.uniform(0, 1e6, n)
-    src = tmp_path / f"in{fmt}.laz"
-    las = laspy.LasData(header)
-    las.points = laspy.ScaleAwarePointRecord(records, header.point_format, header.scales,
-                                             header.offsets)
-    las.header.add_crs(pyproj.CRS("EPSG:32617"))
-    las.write(src)
+    src = random_las(tmp_path / f"in{fmt}.laz", fmt, n, rng, version="1.4", crs="EPSG:32617")
     cloud = read_cloud(src)
     codes = rng.integers(1, 20, n).astype(np.uint8)
     extras = {"height_above_ground": (rng.uniform(0, 30, n).astype(np.float32), "height")}

@@ -18,6 +18,7 @@ import laspy
 import numpy as np
 import pyproj
 import pytest
+from las_fixture import random_las
 
 import clearaudit.io.las as las_mod
 from clearaudit.io.las import (
@@ -33,29 +34,10 @@ from clearaudit.pipeline import AuditOptions, run_audit
 from clearaudit.synth import generate_corridor, write_corridor
 from clearaudit.tiling import Grid, plan_parts, split_part
 
-# LAS 1.4 R15 section 2.1: formats 0-3 exist since LAS 1.2, 4-5 since 1.3, 6-10 since 1.4
-VERSION = {**dict.fromkeys(range(4), "1.2"), 4: "1.3", 5: "1.3", **dict.fromkeys(range(6, 11),
-                                                                                "1.4")}
-
 
 def random_file(path: Path, fmt: int, n: int, seed: int, x0: float = 0.0) -> Path:
     """A LAS/LAZ file of point format ``fmt`` with random bytes in every field."""
-    rng = np.random.default_rng(seed)
-    header = laspy.LasHeader(point_format=fmt, version=VERSION[fmt])
-    header.scales = np.array([0.01, 0.01, 0.01])
-    header.offsets = np.array([500_000.0 + x0, 4_400_000.0, 0.0])
-    dtype = header.point_format.dtype()
-    records = rng.integers(0, 256, n * dtype.itemsize, dtype=np.uint8).view(dtype).copy()
-    records["X"] = rng.integers(0, 30_000, n)
-    records["Y"] = rng.integers(0, 30_000, n)
-    records["Z"] = rng.integers(0, 5_000, n)
-    if "gps_time" in dtype.names:
-        records["gps_time"] = rng.uniform(0, 1e6, n)
-    las = laspy.LasData(header)
-    las.points = laspy.ScaleAwarePointRecord(records, header.point_format, header.scales,
-                                             header.offsets)
-    las.write(path)
-    return path
+    return random_las(path, fmt, n, np.random.default_rng(seed), x0=x0)
 
 
 @pytest.fixture
