@@ -95,8 +95,9 @@ class RunRecord:
         try:
             yield entry
         finally:
-            from .tiling import peak_rss_mb
+            from .tiling import peak_rss_mb, release_free_memory
 
+            release_free_memory()
             entry.update({"seconds": round(time.perf_counter() - t0, 3),
                           "peak_rss_mb": round(peak_rss_mb(), 1)})
             if engine is not None and engine.name != "in-process":
@@ -433,6 +434,10 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
     return total, area
 
 
+#: Points per split task of a tiled run (a range of one input file).
+SPLIT_PART_POINTS = 1_000_000
+
+
 def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
                structures_rows: list[dict] | None, conductors: dict, rules: Any,
                console=None) -> dict:
@@ -480,10 +485,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     corridor = Corridor(poly, options.corridor_buffer_m / setup.horizontal_unit_m)
                 grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]),
                             float(options.tile_cell_m))
-                part_points = max(1_000_000, -(-setup.total_points // (4 * engine.n_workers)))
-                # the plan never depends on the engine: a Dask run equals the in-process run
+                # the plan never depends on the engine: a Dask run equals the in-process run.
+                # Parts of a fixed size: a part's task holds its decode buffers and its cells'
+                # append buffers (one million points each), so the split's memory is that of
+                # the parts in flight whatever the survey's size, and small parts balance
+                # the workers.
                 tile_points = options.tile_points
-                parts = plan_parts(setup, min(part_points, 10_000_000))
+                parts = plan_parts(setup, SPLIT_PART_POINTS)
                 # each part also keeps its raw point records (compressed inputs) in the work
                 # folder, for classified.laz
                 records, record.extra["classified_copy"] = plan_record_scratch(
@@ -572,9 +580,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     vertical_unit_m=setup.vertical_unit_m,
                     classification=np.concatenate([r["model_cls"] for r in results]),
                     sources=list(setup.sources))
-                model_tile = np.concatenate([np.full(len(r["model_local"]), k)
-                                             for k, r in enumerate(results)]).astype(np.int64)
-                model_local = np.concatenate([r["model_local"] for r in results]).astype(np.int64)
+                # the tiles' model points follow one another in tile order
+                model_start = np.cumsum([0] + [len(r["model_local"]) for r in results])
+                model_local = [r["model_local"] for r in results]
+                ground_sample = np.concatenate([r["ground_z_sample"] for r in results])
+                for r in results:  # the points now live in model_cloud only
+                    for name in ("model_xyz", "model_cls", "model_local", "ground_z_sample"):
+                        r.pop(name, None)
                 structures_local = None
                 if structures_rows:
                     structures_local = [{**r, "xy": xy} for r, xy in zip(structures_rows, given_xy,
@@ -594,12 +606,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 for k, ow in enumerate(getattr(model, "other_wires", []) or []):
                     other_of[np.asarray(ow.point_indices, dtype=np.int64)] = k
                 for k, t in enumerate(tiles):
-                    mine = model_tile == k
+                    mine = slice(model_start[k], model_start[k + 1])
                     wire = np.full(results[k]["n_owned"], -1, dtype=np.int64)
                     other = np.full(results[k]["n_owned"], -1, dtype=np.int64)
-                    wire[model_local[mine]] = wire_labels[mine]
-                    other[model_local[mine]] = other_of[mine]
+                    wire[model_local[k]] = wire_labels[mine]
+                    other[model_local[k]] = other_of[mine]
                     write_model_labels(work, t, wire, other)
+                del model_local, wire_labels, other_of
                 tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
                 changes: dict[str, int] = {}
                 counts = {}
@@ -617,7 +630,6 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
             with record.stage("audit", engine=engine):
                 task = bar.add_task("audit", total=kept, rate="")
                 progress = _stage_progress(bar, task)
-                ground_sample = np.concatenate([r["ground_z_sample"] for r in results])
                 plan = prepare_wire_states(
                     model, config, conductors, rules,
                     latitude_deg=survey_latitude(model_cloud), ground_z_m=ground_sample,

@@ -176,3 +176,24 @@ def test_header_extent_chooses_tiled_for_sprawling_surveys(tmp_path):
     points, area = _header_extent([path])
     assert points == 2 and area == pytest.approx(36e6)
     assert area > AuditOptions(clouds=[path], out=tmp_path / "o").in_memory_max_footprint_m2
+
+
+def test_tasks_release_freed_heap_pages(monkeypatch):
+    # After each task the engine hands the heap's free pages back (glibc malloc_trim); the
+    # result and errors of the task are unchanged, and a system without malloc_trim is fine.
+    from clearaudit import tiling
+    from clearaudit.distributed import InProcessEngine
+
+    calls = []
+    monkeypatch.setattr(tiling, "_malloc_trim", lambda: calls.append)
+    out = dict(InProcessEngine(2).run([(np.add, (k, 1), {}) for k in range(4)]))
+    assert out == {0: 1, 1: 2, 2: 3, 3: 4} and calls == [0, 0, 0, 0]
+
+    def boom():
+        raise RuntimeError("task failed")
+
+    with pytest.raises(RuntimeError, match="task failed"):
+        list(InProcessEngine(1).run([(boom, (), {})]))
+    assert len(calls) == 5  # released after the failed task too
+    monkeypatch.setattr(tiling, "_malloc_trim", lambda: None)
+    tiling.release_free_memory()  # no malloc_trim: nothing to do
