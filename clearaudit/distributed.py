@@ -40,6 +40,9 @@ class Engine:
         """Peak resident memory of each worker process so far. [MB]"""
         return {}
 
+    def finish(self) -> None:
+        """The run will send no more tasks (an engine may then release its workers)."""
+
     def describe(self) -> dict[str, Any]:
         return {"engine": self.name, "workers": self.n_workers}
 
@@ -118,12 +121,17 @@ class DaskEngine(Engine):
 
     name = "dask"
 
-    def __init__(self, client: Any):
+    def __init__(self, client: Any, on_done: Callable[[], None] | None = None):
         self.client = client
         self.n_workers = len(client.scheduler_info().get("workers", {})) or 1
+        self._on_done = on_done
+        self._final_memory: dict[str, float] | None = None
 
     def run(self, tasks: Sequence[Task]) -> Iterator[tuple[int, Any]]:
         from distributed import as_completed
+
+        if self._final_memory is not None:
+            raise RuntimeError("the Dask engine was finished; no more tasks can run")
 
         futures = {}
         for k, (fn, args, kwargs) in enumerate(tasks):
@@ -136,7 +144,18 @@ class DaskEngine(Engine):
             for fut in futures:
                 fut.release()
 
+    def finish(self) -> None:
+        """No more tasks: keep the workers' memory figures and let the cluster go (a local
+        cluster then shuts down while the driver writes the outputs)."""
+        if self._final_memory is None:
+            self._final_memory = self.worker_peak_memory_mb()
+        if self._on_done is not None:
+            self._on_done()
+            self._on_done = None
+
     def worker_peak_memory_mb(self) -> dict[str, float]:
+        if self._final_memory is not None:
+            return dict(self._final_memory)
         try:
             return {str(k): round(float(v), 1)
                     for k, v in self.client.run(_worker_peak_rss_mb).items()}
@@ -193,30 +212,13 @@ def _connect(address: str) -> Any:
                                         f"({detail})") from None
 
 
-@contextmanager
-def engine_for(workers: int = 0, scheduler: str | None = None,
-               threads: int = 1) -> Iterator[Engine]:
-    """The engine of a run: in-process, a local cluster of ``workers`` or a scheduler.
+#: Modules every worker of a local cluster imports while it starts (the task functions and
+#: what they use), so that the first tasks do not pay for the imports.
+WORKER_PRELOAD = ("clearaudit.tiling", "clearaudit.classify", "clearaudit.audit.engine",
+                  "clearaudit.model")
 
-    Parameters
-    ----------
-    workers
-        Processes of a local cluster (one thread each); 0: in-process.
-    scheduler
-        Address of an existing Dask scheduler (``tcp://host:8786``).
-    threads
-        Threads of the in-process engine (tasks run at once).
-    """
-    if not workers and not scheduler:
-        yield InProcessEngine(threads)
-        return
-    if scheduler:
-        client = _connect(str(scheduler))
-        try:
-            yield DaskEngine(client)
-        finally:
-            client.close()
-        return
+
+def _start_local_cluster(workers: int) -> tuple[Any, Any]:
     import dask
     from distributed import Client, LocalCluster
 
@@ -230,13 +232,121 @@ def engine_for(workers: int = 0, scheduler: str | None = None,
     env["CLEARAUDIT_THREADS"] = 1
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
         cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
-    client = Client(cluster, set_as_default=False)
+                               dashboard_address=None, silence_logs=logging.ERROR,
+                               preload=list(WORKER_PRELOAD))
     try:
-        yield DaskEngine(client)
-    finally:
-        client.close()
+        client = Client(cluster, set_as_default=False)
+    except BaseException:
         cluster.close()
+        raise
+    return cluster, client
 
 
-__all__ = ["DaskEngine", "Engine", "InProcessEngine", "check_engine", "engine_for"]
+class LocalClusterStart:
+    """A local Dask cluster started on a background thread.
+
+    The cluster (worker processes, their imports) starts while the driver validates the inputs
+    and reads their headers; :meth:`client` waits for it. :meth:`close_soon` shuts it down on
+    a background thread once the last task has run (the driver writes the outputs meanwhile);
+    :meth:`close` waits for the shutdown. Use it as a context manager, so that the cluster is
+    closed whatever happens.
+
+    Parameters
+    ----------
+    workers
+        Worker processes (one thread each).
+    """
+
+    def __init__(self, workers: int):
+        import threading
+
+        if int(workers) < 1:
+            raise ValueError(f"a local cluster needs at least one worker, not {workers}")
+        self.workers = int(workers)
+        self._result: tuple[Any, Any] | None = None
+        self._error: BaseException | None = None
+        self._closer: Any = None
+        self._thread = threading.Thread(target=self._start, name="clearaudit-cluster-start",
+                                        daemon=True)
+        self._thread.start()
+
+    def _start(self) -> None:
+        try:
+            self._result = _start_local_cluster(self.workers)
+        except BaseException as exc:  # noqa: BLE001 - handed to the caller of client()
+            self._error = exc
+
+    def client(self) -> Any:
+        """The cluster's client (waits for the start; re-raises a failed start)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        assert self._result is not None
+        return self._result[1]
+
+    def close_soon(self) -> None:
+        """Shut the cluster down on a background thread (no more tasks will be sent)."""
+        import threading
+
+        if self._closer is None:
+            self._closer = threading.Thread(target=self._shutdown, name="clearaudit-cluster-stop",
+                                            daemon=True)
+            self._closer.start()
+
+    def _shutdown(self) -> None:
+        self._thread.join()
+        if self._result is not None:
+            cluster, client = self._result
+            try:
+                client.close()
+            finally:
+                cluster.close()
+
+    def close(self) -> None:
+        """Shut the cluster down and wait until it is down."""
+        self.close_soon()
+        self._closer.join()
+
+    def __enter__(self) -> LocalClusterStart:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+
+@contextmanager
+def engine_for(workers: int = 0, scheduler: str | None = None,
+               threads: int = 1, started: LocalClusterStart | None = None) -> Iterator[Engine]:
+    """The engine of a run: in-process, a local cluster of ``workers`` or a scheduler.
+
+    Parameters
+    ----------
+    workers
+        Processes of a local cluster (one thread each); 0: in-process.
+    scheduler
+        Address of an existing Dask scheduler (``tcp://host:8786``).
+    threads
+        Threads of the in-process engine (tasks run at once).
+    started
+        A local cluster already starting (:class:`LocalClusterStart`) for ``workers``; its
+        owner closes it.
+    """
+    if not workers and not scheduler:
+        yield InProcessEngine(threads)
+        return
+    if scheduler:
+        client = _connect(str(scheduler))
+        try:
+            yield DaskEngine(client)
+        finally:
+            client.close()
+        return
+    if started is not None:
+        yield DaskEngine(started.client(), on_done=started.close_soon)
+        return
+    with LocalClusterStart(int(workers)) as cluster:
+        yield DaskEngine(cluster.client(), on_done=cluster.close_soon)
+
+
+__all__ = ["DaskEngine", "Engine", "InProcessEngine", "LocalClusterStart", "check_engine",
+           "engine_for"]

@@ -199,15 +199,28 @@ def run_audit(options: AuditOptions, console=None):
 
 
 def _run_audit(options: AuditOptions, console=None):
-    from .config import load_line_file, read_structures_csv
-    from .io.las import file_sha256, resolve_inputs
-
     record = RunRecord(command=sys.argv[:], options=options.to_dict(),
                        started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
     if options.workers or options.scheduler:
         from .distributed import check_engine
 
         check_engine(options)
+    cluster = None
+    if options.workers:
+        # a local cluster starts (workers spawn and import) while the inputs are validated
+        from .distributed import LocalClusterStart
+
+        cluster = LocalClusterStart(options.workers)
+    try:
+        return _validate_and_run(options, record, cluster, console)
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
+def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, console=None):
+    from .config import load_line_file, read_structures_csv
+    from .io.las import file_sha256, resolve_inputs
 
     # ---- validate: all input checks before heavy work
     with record.stage("validate"):
@@ -260,7 +273,7 @@ def _run_audit(options: AuditOptions, console=None):
                                  "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:
         summary = _run_tiled(options, record, paths, config, structures_rows, conductors, rules,
-                             console)
+                             console, cluster)
         if console is not None:
             from .outputs import print_summary
 
@@ -440,11 +453,12 @@ SPLIT_PART_POINTS = 1_000_000
 
 def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
                structures_rows: list[dict] | None, conductors: dict, rules: Any,
-               console=None) -> dict:
+               console=None, cluster: Any = None) -> dict:
     """The bounded-memory run: split once, classify and audit per tile, merge, stream out.
 
     See docs/scaling.md. Each stage's tasks run on the engine (in-process or Dask); only
-    paths, tile specs and small summaries go to and from the tasks.
+    paths, tile specs and small summaries go to and from the tasks. ``cluster``: a local
+    Dask cluster already starting (:class:`clearaudit.distributed.LocalClusterStart`).
     """
     from .audit.engine import merge_findings, prepare_wire_states, survey_latitude
     from .classify import ClassifyOptions
@@ -472,7 +486,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     work_parent.mkdir(parents=True, exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix=".clearaudit-work-", dir=work_parent))
     try:
-        with engine_for(options.workers, options.scheduler, inner_threads()) as engine, \
+        with engine_for(options.workers, options.scheduler, inner_threads(),
+                        started=cluster) as engine, \
                 atomic_output_dir(options.out, options.overwrite) as tmp, \
                 _progress_bar(console) as bar:
             record.extra["execution"].update(engine.describe())
@@ -644,6 +659,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     blocks[k] = res["block"]
                     done += res["n_owned"]
                     progress(done, kept)
+                # the last tasks have run: a local cluster shuts down while the driver
+                # merges and writes
+                engine.finish()
                 audit = merge_findings(plan, model, conductors, rules, blocks)
 
             tolerance_rows = None

@@ -197,3 +197,30 @@ def test_tasks_release_freed_heap_pages(monkeypatch):
     assert len(calls) == 5  # released after the failed task too
     monkeypatch.setattr(tiling, "_malloc_trim", lambda: None)
     tiling.release_free_memory()  # no malloc_trim: nothing to do
+
+
+def test_local_cluster_started_in_background(monkeypatch):
+    # The local cluster starts on a thread while the driver validates; the engine takes it,
+    # finish() lets it shut down while the driver writes (the workers' memory figures are
+    # kept), and a failed start is raised where the client is needed.
+    from clearaudit import distributed as dist
+
+    with dist.LocalClusterStart(1) as started, \
+            dist.engine_for(1, None, 1, started=started) as engine:
+        assert dict(engine.run([(np.add, (2, 3), {})])) == {0: 5}
+        engine.finish()
+        memory = engine.worker_peak_memory_mb()
+        assert len(memory) == 1 and all(v > 0 for v in memory.values())
+        with pytest.raises(RuntimeError, match="finished"):
+            list(engine.run([(np.add, (1, 1), {})]))
+        assert engine.worker_peak_memory_mb() == memory
+    started.close()  # closing twice is harmless
+
+    def no_start(workers):
+        raise OSError("no ports left")
+
+    monkeypatch.setattr(dist, "_start_local_cluster", no_start)
+    with dist.LocalClusterStart(2) as failed, pytest.raises(OSError, match="no ports"):
+        failed.client()
+    with pytest.raises(ValueError):
+        dist.LocalClusterStart(0)
