@@ -80,6 +80,32 @@ def test_group_obstacles_equals_single_linkage():
     assert np.array_equal(same, same_ref)
 
 
+@pytest.mark.parametrize("chunk", [1, 7, 64, 100_000])
+def test_link_components_equals_single_linkage_in_chunks(chunk):
+    # Reference: scipy.cluster.hierarchy single linkage cut at the link distance (partition),
+    # and scipy's connected_components over every pair (numbering). Points on a 1 cm lattice
+    # with some pairs exactly one link distance apart: ties are links in both.
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    from clearaudit.audit.clearance import link_components
+
+    rng = np.random.default_rng(11)
+    grid = np.mgrid[0:12, 0:5].reshape(2, -1).T * 1.5          # spacing == link distance
+    blobs = np.round(rng.uniform(0, 40, (400, 3)) * 100) / 100
+    for pts in (np.column_stack([grid, np.zeros(len(grid))]), blobs, blobs[:, :2]):
+        labels = link_components(pts, 1.5, chunk_points=chunk)
+        ref = fcluster(linkage(pts, method="single"), t=1.5, criterion="distance")
+        assert np.array_equal(labels[:, None] == labels[None, :], ref[:, None] == ref[None, :])
+        pairs = cKDTree(pts).query_pairs(1.5, output_type="ndarray")
+        graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])),
+                           shape=(len(pts), len(pts)))
+        assert np.array_equal(labels, connected_components(graph, directed=False)[1])
+    assert len(np.unique(link_components(np.column_stack([grid, np.zeros(len(grid))]), 1.5,
+                                         chunk_points=chunk))) == 1
+    assert link_components(np.zeros((0, 3)), 1.0).shape == (0,)
+
+
 def test_long_groups_are_cut_into_tiles():
     x = np.arange(0.0, 60.0, 0.5)
     pts = np.column_stack([x, np.zeros_like(x), np.zeros_like(x)])

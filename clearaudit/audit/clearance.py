@@ -35,6 +35,7 @@ __all__ = [
     "building_envelope",
     "clearing_shift",
     "group_obstacles",
+    "link_components",
     "points_near_curves",
     "polyline_distance",
     "polyline_offsets",
@@ -273,9 +274,7 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | 
         rep_labels = group_obstacles(pts[first], link_m + 2.0 * math.sqrt(3.0) * thin_m, None)
         labels = rep_labels[rep_of.reshape(-1)]
     else:
-        pairs = cKDTree(pts).query_pairs(link_m, output_type="ndarray")
-        graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
-        _, labels = connected_components(graph, directed=False)
+        labels = link_components(pts, link_m)
     if max_extent_m is None:
         return labels
     lo = np.full((labels.max() + 1, 2), np.inf)
@@ -290,6 +289,89 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | 
         _, labels = np.unique(key, axis=0, return_inverse=True)
         labels = labels.reshape(-1)
     return labels
+
+
+def link_components(xyz: np.ndarray, link_m: float, chunk_points: int = 4096) -> np.ndarray:
+    r"""Connected components of the points under "at most ``link_m`` apart" (single linkage).
+
+    Parameters
+    ----------
+    xyz
+        Points, shape (n, d), d = 2 or 3. [m]
+    link_m
+        Two points at most this far apart are linked. [m]
+    chunk_points
+        Points whose links are listed at once (bounds the memory of the pair lists).
+
+    Returns
+    -------
+    labels : (n,) int
+        Component of every point, numbered in the order of each component's first point
+        (the numbering :func:`scipy.sparse.csgraph.connected_components` gives over the whole
+        pair graph; tests compare both).
+
+    Notes
+    -----
+    Listing all pairs at once (``cKDTree.query_pairs``) costs 16 bytes per pair: on dense
+    ground, with over a hundred neighbours per point within 3 m, 110 000 points took 440 MB.
+    Here (1) points sharing a cube of edge :math:`\ell/\sqrt d` are joined without a test
+    (any two of them are closer than :math:`\ell`); (2) the points are taken in chunks
+    along their longer horizontal axis; each chunk's pairs with all points
+    (``cKDTree.sparse_distance_matrix``, the same ``<=`` test as ``query_pairs``) are mapped
+    to the sets found so far, and only the distinct links between different sets are joined
+    (union-find; every set is named by its smallest point index).
+    """
+    pts = np.asarray(xyz, dtype=float)
+    n = len(pts)
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    if int(chunk_points) < 1:
+        raise ValueError("chunk_points must be a positive number of points")
+    d = pts.shape[1]
+    # (1) cubes whose diagonal is shorter than the link distance
+    side = link_m / math.sqrt(d) * (1.0 - 1e-9)
+    cube = np.floor((pts - pts.min(axis=0)) / side).astype(np.int64)
+    key = cube[:, 0]
+    for k in range(1, d):
+        key = key * (int(cube[:, k].max()) + 1) + cube[:, k]
+    _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    parent = first[inverse.reshape(-1)]  # smallest index of the point's cube
+    del cube, key, first, inverse
+
+    def roots(x: np.ndarray) -> np.ndarray:
+        r = parent[x]
+        while True:
+            up = parent[r]
+            if np.array_equal(up, r):
+                return r
+            r = up
+
+    # (2) links between sets, chunk by chunk
+    tree = cKDTree(pts)
+    axis = int(np.argmax(np.ptp(pts[:, :2], axis=0))) if d >= 2 else 0
+    order = np.argsort(pts[:, axis], kind="stable")  # chunks are compact slabs
+    for lo in range(0, n, int(chunk_points)):                 # a loop over chunks of points
+        chunk = order[lo:lo + int(chunk_points)]
+        pairs = cKDTree(pts[chunk]).sparse_distance_matrix(tree, link_m, output_type="ndarray")
+        i, j = chunk[pairs["i"]], pairs["j"]
+        del pairs
+        a, b = roots(i), roots(j)
+        parent[i], parent[j] = a, b  # path compression of the nodes visited
+        cross = a != b
+        if not cross.any():
+            continue
+        edge = np.unique(np.minimum(a[cross], b[cross]) * n + np.maximum(a[cross], b[cross]))
+        ends, node = np.unique(np.concatenate([edge // n, edge % n]), return_inverse=True)
+        node = node.reshape(-1)
+        graph = coo_matrix((np.ones(len(edge), dtype=np.int8), (node[:len(edge)],
+                                                                  node[len(edge):])),
+                           shape=(len(ends), len(ends)))
+        _, cc = connected_components(graph, directed=False)
+        _, smallest = np.unique(cc, return_index=True)  # ``ends`` ascends
+        parent[ends] = ends[smallest][cc]
+    # components numbered in the order of their smallest (first) point
+    _, labels = np.unique(roots(np.arange(n)), return_inverse=True)
+    return labels.reshape(-1).astype(np.int64)
 
 
 def clearing_shift(offsets: np.ndarray, half_width_m: float) -> tuple[float, int]:
