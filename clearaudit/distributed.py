@@ -43,6 +43,24 @@ class Engine:
     def finish(self) -> None:
         """The run will send no more tasks (an engine may then release its workers)."""
 
+    def map_batches(self, fn: Callable[[list], list], items: Sequence[Any],
+                    batches_per_worker: int = 4) -> list[Any]:
+        """``fn`` over ``items`` in batches (one task each); results in item order.
+
+        ``fn(batch)`` returns one result per item of its batch. Items are dealt round-robin
+        into ``batches_per_worker`` batches per worker (even loads when item costs vary
+        along the list).
+        """
+        items = list(items)
+        n = max(1, min(len(items), batches_per_worker * self.n_workers))
+        batches = [items[k::n] for k in range(n)]
+        out: list[Any] = [None] * len(items)
+        for k, part in self.run([(fn, (b,), {}) for b in batches if b]):
+            if len(part) != len(batches[k]):
+                raise RuntimeError("a batch task returned a different number of results")
+            out[k::n] = part
+        return out
+
     def describe(self) -> dict[str, Any]:
         return {"engine": self.name, "workers": self.n_workers}
 

@@ -27,6 +27,7 @@ import time
 from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -466,6 +467,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     from .distributed import engine_for
     from .io.las import plan_record_scratch, read_setup, write_classified_stream
     from .model import build_line_model
+    from .model.line import fit_jobs
     from .threads import inner_threads
     from .tiling import (
         Corridor,
@@ -610,7 +612,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     model_cloud, structures=structures_local,
                     unit_weight_n_per_m={"phase": conductors["phase"].unit_weight_n_per_m,
                                          "shield": conductors["shield"].unit_weight_n_per_m},
-                    bundle=config.phase.bundle, progress=_stage_progress(bar, task))
+                    bundle=config.phase.bundle, progress=_stage_progress(bar, task),
+                    # the catenary fits go to the Dask workers; in this process they stay on
+                    # one thread (the least-squares loop holds the GIL: threads were slower)
+                    map_fits=(None if engine.name == "in-process" else
+                              partial(engine.map_batches, fit_jobs)))
                 record.extra["model_points"] = model_cloud.n_points
 
                 # Classes the line model can settle (as in the in-memory run): one task per

@@ -428,3 +428,45 @@ def test_ground_heights_at_batch_matches_single():
     batch = ground_heights_at(ground, places, radii)
     single = [ground_height_at(ground, p, r) for p, r in zip(places, radii, strict=True)]
     assert batch == single
+
+
+def test_fits_run_anywhere_with_the_same_model():
+    # The catenary fits (wires and resolved sub-conductors) are independent jobs: run in
+    # reverse order, in batches on a 2-worker engine-like mapper, the model is the same.
+    from clearaudit.distributed import InProcessEngine
+    from clearaudit.model.line import _fit_json, fit_jobs
+
+    cloud, _ = make_corridor(seed=3, n_towers=3, bundle=2, partial=False, density=4.0)
+    kw = dict(unit_weight_n_per_m={"phase": W_PHASE, "shield": W_SHIELD}, bundle=2)
+    seen = []
+
+    def reversed_map(jobs):
+        seen.append(len(jobs))
+        return fit_jobs(jobs[::-1])[::-1]
+
+    def rows(model):
+        return [(s.id, w.wire_id, w.status, _fit_json(w.fit),
+                 [_fit_json(sc.fit) for sc in w.sub_conductors])
+                for s in model.spans for w in s.wires]
+
+    plain = rows(build_line_model(cloud, **kw))
+    assert rows(build_line_model(cloud, **kw, map_fits=reversed_map)) == plain
+    # 2 spans x 3 phases x (1 wire + 2 sub-conductors) + the shield wires
+    assert seen and seen[0] >= 18
+    engine = InProcessEngine(2)
+    assert rows(build_line_model(cloud, **kw, map_fits=lambda jobs: engine.map_batches(
+        fit_jobs, jobs))) == plain
+    with pytest.raises(ValueError, match="number of fits"):
+        build_line_model(cloud, **kw, map_fits=lambda jobs: jobs[:-1])
+
+
+def test_engine_map_batches_keeps_item_order():
+    from clearaudit.distributed import InProcessEngine
+
+    for threads in (1, 2):
+        engine = InProcessEngine(threads)
+        assert engine.map_batches(lambda b: [x * x for x in b], range(11)) == \
+            [x * x for x in range(11)]
+        assert engine.map_batches(lambda b: b, []) == []
+        with pytest.raises(RuntimeError, match="number of results"):
+            engine.map_batches(lambda b: b[:-1], range(5))

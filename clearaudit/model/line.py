@@ -648,6 +648,7 @@ def build_line_model(
     bundle: int | dict[str, int] | None = None,
     options: ModelOptions | None = None,
     progress: Callable[[int, int], None] | None = None,
+    map_fits: Callable[[list[FitJob]], list[Any]] | None = None,
 ) -> LineModel:
     """Build the line model from a classified cloud.
 
@@ -670,6 +671,11 @@ def build_line_model(
         :class:`ModelOptions`.
     progress
         Called as ``progress(done, total)`` with the number of spans processed.
+    map_fits
+        Runs a list of :class:`FitJob` and returns their fits in the same order (e.g. on a
+        thread pool or Dask workers, see :func:`run_fit_jobs`); ``None``: one after the
+        other here. The catenary fits of all wires and sub-conductors are independent and
+        are most of the model's time; the result does not depend on where they run.
 
     Returns
     -------
@@ -820,6 +826,23 @@ def build_line_model(
                                                    arm_normals)
                     for span in spans}
     _deadend_axes(spans, all_stations, struct_by_id, arm_normals, insulator_xyz)
+    # every wire's and sub-conductor's fit at once (independent of one another)
+    jobs, where = [], []
+    for span in spans:
+        stations = all_stations[id(span)]
+        for w in span.wires:
+            if w.role != "other":
+                for key, job in _wire_fit_jobs(span, w, xyz, opts, _supports(span,
+                                                                               stations[id(w)])):
+                    jobs.append(job)
+                    where.append((id(w), key))
+    fitted_all = (map_fits or run_fit_jobs)(jobs)
+    if len(fitted_all) != len(jobs):
+        raise ValueError("map_fits returned a different number of fits than jobs")
+    fitted: dict[int, dict] = {}
+    for (wid, key), fit in zip(where, fitted_all, strict=True):
+        fitted.setdefault(wid, {})[key] = fit
+    del jobs, where, fitted_all
     for span in spans:
         line_wires = []
         stations = all_stations[id(span)]
@@ -834,7 +857,7 @@ def build_line_model(
                 continue
             a_sup, b_sup = _supports(span, stations[id(w)])
             _fit_wire(span, w, xyz, opts, weights, bundle_hint, fitmod, a_sup, b_sup,
-                      stations[id(w)])
+                      stations[id(w)], fitted.get(id(w), {}))
             if w.role == "other":  # rejected by the fit: attachments not at our structures
                 others.append(OtherWire(id="", span_id=span.id, reason=w.note,
                                         angle_to_span_deg=0.0, point_indices=w.point_indices,
@@ -1680,9 +1703,77 @@ def _with_station_uncertainty(fit, stations):
     return dataclasses.replace(fit, sag_ci95_m=ci)
 
 
+@dataclass(frozen=True)
+class FitJob:
+    """One catenary fit: points and horizontal supports (local metres), fit settings."""
+
+    points: np.ndarray
+    support_a_xy: np.ndarray
+    support_b_xy: np.ndarray
+    settings: dict
+
+
+def fit_jobs(jobs: Sequence[FitJob]) -> list[Any]:
+    """Run fit jobs one after the other (a task of :func:`run_fit_jobs` or of an engine)."""
+    fitmod = _fit_module()
+    return [fitmod.fit_catenary(j.points, j.support_a_xy, j.support_b_xy, **j.settings)
+            for j in jobs]
+
+
+def run_fit_jobs(jobs: Sequence[FitJob], threads: int = 1) -> list[Any]:
+    """Run fit jobs here, on ``threads`` threads (in batches; results in job order)."""
+    if threads <= 1 or len(jobs) < 2:
+        return fit_jobs(jobs)
+    from concurrent.futures import ThreadPoolExecutor
+
+    batches = [jobs[k::threads] for k in range(threads)]
+    with ThreadPoolExecutor(threads, thread_name_prefix="clearaudit-fit") as pool:
+        parts = list(pool.map(fit_jobs, batches))
+    out: list[Any] = [None] * len(jobs)
+    for k, part in enumerate(parts):
+        out[k::threads] = part
+    return out
+
+
+def _representative_points(w: WireFit, xyz, a_xy, b_xy) -> np.ndarray:
+    """The wire's points with the sub-conductor offsets removed (one line per phase)."""
+    c = w.cluster
+    pts = xyz[w.point_indices].copy()
+    _, v, _ = span_frame(a_xy, b_xy)
+    if c is not None and c.n_sub > 1:
+        lab = c.sub_label
+        off = c.sub_offsets  # (n_sub, 2) lateral, vertical
+        ok = lab >= 0
+        pts[ok, :2] -= off[lab[ok], 0][:, None] * v[None, :]
+        pts[ok, 2] -= off[lab[ok], 1]
+    return pts
+
+
+def _wire_fit_jobs(span: Span, w: WireFit, xyz, opts: ModelOptions, supports):
+    """The fits :func:`_fit_wire` will need for one wire, as ``(key, FitJob)`` pairs: the
+    wire (``"wire"``) and, for a resolved bundle, each sub-conductor (``("sub", j)``)."""
+    if len(w.point_indices) < opts.min_fit_points:
+        return []
+    a_xy, b_xy = supports
+    kw = _fit_kwargs(opts)
+    out = [("wire", FitJob(_representative_points(w, xyz, a_xy, b_xy), a_xy, b_xy, kw))]
+    c = w.cluster
+    if c is not None and c.n_sub > 1:
+        for j in range(c.n_sub):
+            sidx = w.point_indices[c.sub_label == j]
+            if len(sidx) >= opts.min_fit_points:
+                out.append((("sub", j), FitJob(xyz[sidx], a_xy, b_xy, kw)))
+    return out
+
+
 def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_hint,
-              fitmod, a_xy=None, b_xy=None, stations=None) -> None:
-    """Fit one wire (and its sub-conductors) and set its status."""
+              fitmod, a_xy=None, b_xy=None, stations=None, fitted: dict | None = None) -> None:
+    """Fit one wire (and its sub-conductors) and set its status.
+
+    ``fitted`` holds fits already made of the jobs of :func:`_wire_fit_jobs` (keys
+    ``"wire"`` and ``("sub", j)``); missing ones are made here.
+    """
+    fitted = fitted or {}
     c = w.cluster
     if stations is not None:
         w.attachment_methods = (stations[0].method, stations[1].method)
@@ -1699,17 +1790,11 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
         w.note = f"too few points ({len(pts_idx)} < {opts.min_fit_points})"
         w.bundle_count = max(w.bundle_count, bundle_hint.get(w.role, 1))
         return
-    # representative points: sub-conductor offsets removed
-    pts = xyz[pts_idx].copy()
-    u, v, _ = span_frame(a_xy, b_xy)
     n_sub = c.n_sub if c is not None else 1
-    if c is not None and n_sub > 1:
-        lab = c.sub_label
-        off = c.sub_offsets  # (n_sub, 2) lateral, vertical
-        ok = lab >= 0
-        pts[ok, :2] -= off[lab[ok], 0][:, None] * v[None, :]
-        pts[ok, 2] -= off[lab[ok], 1]
-    fit = _with_station_uncertainty(fitmod.fit_catenary(pts, a_xy, b_xy, **kw), stations)
+    fit = fitted.get("wire")
+    if fit is None:  # representative points: sub-conductor offsets removed
+        fit = fitmod.fit_catenary(_representative_points(w, xyz, a_xy, b_xy), a_xy, b_xy, **kw)
+    fit = _with_station_uncertainty(fit, stations)
     w.fit = fit
     hint = bundle_hint.get(w.role, 1)
     if n_sub > 1:
@@ -1752,8 +1837,10 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
                                   vertical_offset_m=float(c.sub_offsets[j, 1]),
                                   point_indices=sidx)
             if len(sidx) >= opts.min_fit_points:
-                sub.fit = _with_station_uncertainty(
-                    fitmod.fit_catenary(xyz[sidx], a_xy, b_xy, **kw), stations)
+                sub_fit = fitted.get(("sub", j))
+                if sub_fit is None:
+                    sub_fit = fitmod.fit_catenary(xyz[sidx], a_xy, b_xy, **kw)
+                sub.fit = _with_station_uncertainty(sub_fit, stations)
                 sub.horizontal_tension_n, sub.horizontal_tension_ci95_n = _tension(sub.fit,
                                                                                    unit_w)
             w.sub_conductors.append(sub)
