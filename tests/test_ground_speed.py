@@ -162,3 +162,83 @@ def test_run_chunks_covers_every_index_once(monkeypatch):
 
         run_chunks(work, len(hits), chunk=997)
         assert (hits == 1).all()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (3, 7), (8, 5), (61, 23), (200, 90)])
+@pytest.mark.parametrize("radius", [1, 2, 4, 9, 30])
+def test_square_filter_matches_scipy(shape, radius):
+    # reference: scipy.ndimage.minimum_filter / maximum_filter (default "reflect" edges),
+    # row bands filtered separately must give the rows of the whole-grid filter
+    from clearaudit.classify.grid import _square_filter
+
+    rng = np.random.default_rng(radius * 100 + shape[0])
+    source = np.round(rng.normal(size=shape) * 4).astype(np.float32)  # rounded: many ties
+    for op, ref in ((np.minimum, ndimage.minimum_filter), (np.maximum, ndimage.maximum_filter)):
+        expected = ref(source, size=2 * radius + 1)
+        out = np.full_like(source, np.nan)
+        cut = shape[0] // 3
+        for lo, hi in ((0, cut), (cut, shape[0])):
+            if hi > lo:
+                _square_filter(op, source, out, lo, hi, radius)
+        np.testing.assert_array_equal(out, expected)
+
+
+def test_square_filter_on_a_boolean_mask_is_a_dilation():
+    # reference: scipy.ndimage.maximum_filter with constant (empty) edges, as the inpainting
+    # plan used it: for a maximum of booleans mirrored edges add nothing
+    from clearaudit.classify.grid import _square_filter
+
+    rng = np.random.default_rng(8)
+    known = rng.random((150, 70)) < 0.01
+    out = np.empty_like(known)
+    _square_filter(np.maximum, known, out, 0, 150, 20)
+    np.testing.assert_array_equal(out, ndimage.maximum_filter(known, size=41, mode="constant"))
+
+
+def test_inpaint_far_cells_copy_the_nearest_block_mean():
+    # reference: direct evaluation of the rule in the InpaintPlan notes (far cells take the
+    # mean of the known cells of the b x b block nearest to their own block,
+    # scipy.ndimage.distance_transform_edt on the block grid)
+    rng = np.random.default_rng(12)
+    grid = np.full((240, 100), np.nan)
+    grid[10:30, 5:40] = rng.normal(size=(20, 35)) + 50.0
+    grid[200:230, 60:95] = rng.normal(size=(30, 35)) + 80.0
+    max_cells = 45
+    b = max_cells // 15
+    plan = InpaintPlan.for_grid(grid, max_cells)
+    out = grid.copy()
+    plan.fill_far(out)
+    known = ~np.isnan(grid)
+    assert plan.far is not None and plan.far.any()
+    n_u, n_v = grid.shape
+    pu, pv = n_u + (-n_u) % b, n_v + (-n_v) % b
+    total = np.zeros((pu, pv))
+    total[:n_u, :n_v] = np.where(known, grid, 0.0)
+    count = np.zeros((pu, pv))
+    count[:n_u, :n_v] = known
+    block_total = total.reshape(pu // b, b, pv // b, b).sum(axis=(1, 3))
+    block_count = count.reshape(pu // b, b, pv // b, b).sum(axis=(1, 3))
+    _, (ii, jj) = ndimage.distance_transform_edt(block_count == 0, return_indices=True)
+    qi, qj = np.nonzero(plan.far)
+    src_i, src_j = ii[qi // b, qj // b], jj[qi // b, qj // b]
+    expected = block_total[src_i, src_j] / block_count[src_i, src_j]
+    np.testing.assert_allclose(out[qi, qj], expected, rtol=1e-12)
+    # cells that are not far keep their value (NaN where unknown)
+    np.testing.assert_array_equal(out[~plan.far], grid[~plan.far])
+
+
+@pytest.mark.parametrize("shape, max_radius", [((3, 4), 6), ((9, 2), 5), ((40, 12), 18)])
+def test_slope_ratio_on_grids_smaller_than_the_window(shape, max_radius):
+    # reference: scipy.ndimage.grey_opening applied progressively (Pingel et al. 2013 Eq. 1,
+    # square windows), on grids narrower than the largest window
+    rng = np.random.default_rng(shape[0])
+    surface = np.round(rng.normal(size=shape) * 3).astype(np.float32)
+    ratio, opened = morphological_slope_ratio(surface, max_radius, 0.5)
+    previous = surface
+    expected = np.zeros_like(surface)
+    for radius in range(1, max_radius + 1):
+        current = ndimage.grey_opening(previous, size=(2 * radius + 1, 2 * radius + 1))
+        expected = np.maximum(expected, (previous - current) * np.float32(1.0 / (radius * 0.5)))
+        previous = current
+    np.testing.assert_array_equal(opened, previous)
+    np.testing.assert_array_equal(ratio, expected)

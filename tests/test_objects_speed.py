@@ -156,3 +156,24 @@ def test_features_match_eigh_of_the_neighbourhood_covariance():
         assert f.scattering[point] == pytest.approx(l3 / l1, abs=1e-7)
         if (l1 - l2) / l1 > 1e-3:
             assert abs(f.direction[point] @ vecs[:, 2]) == pytest.approx(1.0, abs=1e-6)
+
+
+def test_column_grid_top_bottom_count_match_direct_reductions():
+    # reference: numpy ufunc.at reductions and bincount over the whole grid (plain form)
+    rng = np.random.default_rng(6)
+    xy = np.concatenate([rng.uniform(0, 30, (3000, 2)), rng.uniform(200, 230, (500, 2))])
+    hag = rng.uniform(0.5, 40, len(xy))
+    frame = anchored_frame(xy, 2.0)
+    cols = column_grid(xy, hag, frame)
+    flat = frame.flat_index(xy)
+    top = np.full(frame.size, -np.inf)
+    np.maximum.at(top, flat, hag)
+    bottom = np.full(frame.size, np.inf)
+    np.minimum.at(bottom, flat, hag)
+    count = np.bincount(flat, minlength=frame.size)
+    empty = count == 0
+    np.testing.assert_array_equal(cols.count.ravel(), count)
+    np.testing.assert_array_equal(cols.top.ravel()[~empty], top[~empty])
+    np.testing.assert_array_equal(cols.bottom.ravel()[~empty], bottom[~empty])
+    assert np.isnan(cols.top.ravel()[empty]).all() and np.isnan(cols.bottom.ravel()[empty]).all()
+    assert (cols.fill.ravel()[empty] == 0).all()

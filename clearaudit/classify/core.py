@@ -91,10 +91,13 @@ def _walls_under_roofs(xyz: np.ndarray, hag: np.ndarray, classes: np.ndarray,
     grid = anchored_frame(xyz[b, :2], opts.building_cell_m, margin_cells=2)
     lo = grid.corner
     hi = lo + np.array(grid.shape) * grid.cell
-    xy = xyz[:, :2]
-    cand = np.flatnonzero(np.isin(classes, (UNCLASSIFIED, 3, 4, 5)) & (hag >= opts.object_min_hag_m)
-                          & (xy[:, 0] >= lo[0]) & (xy[:, 0] < hi[0])
-                          & (xy[:, 1] >= lo[1]) & (xy[:, 1] < hi[1]))
+    wall_class = np.zeros(256, bool)  # class lookup table (one gather, not four comparisons)
+    wall_class[[UNCLASSIFIED, 3, 4, 5]] = True
+    cand = np.flatnonzero(wall_class[classes] & (hag >= opts.object_min_hag_m))
+    # then inside the roof grid (the test on the candidates only: the same points)
+    xy = xyz[cand, :2]
+    cand = cand[(xy[:, 0] >= lo[0]) & (xy[:, 0] < hi[0]) & (xy[:, 1] >= lo[1]) & (xy[:, 1] < hi[1])]
+    del xy
     if len(cand) == 0:
         return
     top = cell_max(grid.flat_index(xyz[b, :2]), xyz[b, 2], grid.size).reshape(grid.shape)
@@ -102,6 +105,19 @@ def _walls_under_roofs(xyz: np.ndarray, hag: np.ndarray, classes: np.ndarray,
     cell = grid.flat_index(xyz[cand, :2])
     wall = xyz[cand, 2] <= top[cell] + 0.3
     classes[cand[wall]] = BUILDING
+
+
+def _code_counts(codes: np.ndarray) -> np.ndarray:
+    """Number of points per uint8 class code (length 256).
+
+    Counted in chunks: ``np.bincount`` widens its input to intp, which for a whole cloud is a
+    temporary eight times the size of the codes (integer counts: exact in any order).
+    """
+    counts = np.zeros(256, np.int64)
+    step = 1 << 16
+    for start in range(0, len(codes), step):  # a loop over chunks of points
+        counts += np.bincount(codes[start:start + step], minlength=256)
+    return counts
 
 
 def _source_name(cloud: Cloud) -> str | None:
@@ -164,7 +180,9 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
 
     t = time.perf_counter()
     vendor = np.asarray(cloud.classification, dtype=np.uint8)
-    present = {name: bool(np.isin(vendor, codes).any()) for name, codes in CLASS_GROUPS.items()}
+    # points per class code of the file, one pass (not one membership test per group)
+    in_file = _code_counts(vendor) > 0
+    present = {name: bool(in_file[list(codes)].any()) for name, codes in CLASS_GROUPS.items()}
     # cell coordinates of every point, computed once (float32) and shared by all 1 m grids
     frame, location = GridFrame.fit_locate(xyz[:, :2], opts.smrf_cell_m, margin=opts.smrf_cell_m)
     z = np.ascontiguousarray(xyz[:, 2])
@@ -173,6 +191,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     isolated = isolated_points(xyz, opts.noise_voxel_m, opts.noise_min_neighbours)
     use = ~isolated
     flat = location.flat
+    zmin: np.ndarray | None = None  # minimum surface of the ``use`` points, when up to date
     for _ in range(2):
         # excluded points count as +inf: cells with only excluded points stay empty (NaN)
         zmin = cell_min(flat, np.where(use, z, np.inf), frame.size).reshape(frame.shape)
@@ -182,8 +201,9 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         pit_points = np.flatnonzero(pits.ravel()[flat])
         in_pit = z[pit_points] < lowest.ravel()[flat[pit_points]] - opts.noise_low_depth_m
         use[pit_points[in_pit]] = False
+        zmin = None
         del pit_points, in_pit
-    del flat, zmin, pits, lowest
+    del flat, pits, lowest
     t = step("noise_candidates", 0.1, t)
 
     # 2. ground
@@ -197,7 +217,8 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                       elevation_threshold_m=opts.smrf_elevation_threshold_m,
                       elevation_scaler=opts.smrf_elevation_scaler,
                       slope_min=opts.smrf_slope_min, slope_max=opts.smrf_slope_max,
-                      use=use, max_cells=opts.inpaint_max_cells, location=location)
+                      use=use, max_cells=opts.inpaint_max_cells, location=location,
+                      minimum_surface=zmin)
         is_ground = result.is_ground
         info["ground_source"] = "SMRF"
         info["smrf_slope"] = result.slope_threshold
@@ -215,7 +236,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                 location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
             info["ground_refine_threshold_m"] = threshold
         model_points = is_ground
-    del use
+    del use, zmin
     # roofs the ground filter kept as ground (low roofs on steep terrain): out of the ground
     # set before the ground model is built, so the model passes under them and HAG is right
     roofs: GroundRoofs | None = None
@@ -252,7 +273,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     hag = ground_location.sampler()(ground.elevation_m.astype(np.float32))
     del ground_location
     np.subtract(z, hag, out=hag, casting="same_kind")
-    hag = np.nan_to_num(hag, nan=0.0)
+    hag = np.nan_to_num(hag, copy=False, nan=0.0)
     t = step("height_above_ground", 0.45, t)
 
     # 3. noise labels
@@ -308,7 +329,9 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         classes = final
     step("merge", 1.0, t)
 
-    codes, counts = np.unique(classes, return_counts=True)
+    per_code = _code_counts(classes)  # uint8 codes: a count, not a sort
+    codes = np.flatnonzero(per_code)
+    counts = per_code[codes]
     return ClassificationResult(
         classification=classes,
         height_above_ground_m=hag.astype(np.float32, copy=False),

@@ -12,9 +12,10 @@ from scipy import ndimage
 
 from ..threads import run_chunks
 
-# points per chunk of the per-point passes (bilinear weights, sampling): small enough that the
-# temporaries stay in cache-friendly sizes, large enough that the Python overhead is nil
-_CHUNK = 1 << 20
+# points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
+# run about twice as fast when a chunk's temporaries stay in the processor's cache, and the
+# Python overhead of a chunk is nil at this size
+_CHUNK = 1 << 16
 
 
 @dataclass(frozen=True)
@@ -98,13 +99,19 @@ class GridFrame:
         probe = cls.fit(xy[:: max(1, len(xy) // 200_000)], cell)
         # cell coordinates relative to the centre, then shifted to the fitted corner
         loc = GridFrame(probe.centre, probe.axes, np.zeros(2), float(cell), (1, 1)).locate(xy)
-        lo = np.array([loc.fu.min(), loc.fv.min()], np.float64) * cell - margin
-        hi = np.array([loc.fu.max(), loc.fv.max()], np.float64) * cell + margin
+        fu, fv = loc.fu, loc.fv
+        lo = np.array([fu.min(), fv.min()], np.float64) * cell - margin
+        hi = np.array([fu.max(), fv.max()], np.float64) * cell + margin
         shape = tuple(int(s) for s in np.maximum(np.ceil((hi - lo) / cell + 1e-6), 1))
         frame = cls(probe.centre, probe.axes, lo, float(cell), shape)
-        np.subtract(loc.fu, np.float32(lo[0] / cell), out=loc.fu)
-        np.subtract(loc.fv, np.float32(lo[1] / cell), out=loc.fv)
-        return frame, PointLocation(loc.fu, loc.fv, shape)
+        shift_u, shift_v = np.float32(lo[0] / cell), np.float32(lo[1] / cell)
+
+        def work(start: int, stop: int) -> None:
+            np.subtract(fu[start:stop], shift_u, out=fu[start:stop])
+            np.subtract(fv[start:stop], shift_v, out=fv[start:stop])
+
+        run_chunks(work, len(fu), _CHUNK)
+        return frame, PointLocation(fu, fv, shape)
 
     def with_cell(self, cell: float) -> GridFrame:
         """Same orientation and extent, another cell size."""
@@ -161,19 +168,30 @@ class GridFrame:
         """
         xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
         a = self.axes
-        dx = xy[:, 0] - self.centre[0]
-        dy = xy[:, 1] - self.centre[1]
-        # in place, same operations and order as fu = dx·a00/c + dy·a01/c - u0/c
-        fu = dx * (a[0, 0] / self.cell)
-        term = np.multiply(dy, a[0, 1] / self.cell)
-        fu += term
-        fu -= self.corner[0] / self.cell
-        fv = np.multiply(dx, a[1, 0] / self.cell, out=dx)
-        np.multiply(dy, a[1, 1] / self.cell, out=term)
-        fv += term
-        fv -= self.corner[1] / self.cell
-        del dy, term
-        return PointLocation(fu.astype(np.float32), fv.astype(np.float32), self.shape)
+        cu, cv = a[0, 0] / self.cell, a[0, 1] / self.cell
+        du, dv = a[1, 0] / self.cell, a[1, 1] / self.cell
+        su, sv = self.corner[0] / self.cell, self.corner[1] / self.cell
+        fu = np.empty(len(xy), np.float32)
+        fv = np.empty(len(xy), np.float32)
+
+        def work(lo: int, hi: int) -> None:
+            # same operations and order as fu = dx·a00/c + dy·a01/c - u0/c in float64,
+            # rounded to float32 once
+            dx = xy[lo:hi, 0] - self.centre[0]
+            dy = xy[lo:hi, 1] - self.centre[1]
+            acc = dx * cu
+            term = np.multiply(dy, cv)
+            acc += term
+            acc -= su
+            fu[lo:hi] = acc
+            np.multiply(dx, du, out=acc)
+            np.multiply(dy, dv, out=term)
+            acc += term
+            acc -= sv
+            fv[lo:hi] = acc
+
+        run_chunks(work, len(xy), _CHUNK)
+        return PointLocation(fu, fv, self.shape)
 
 
 @dataclass(frozen=True)
@@ -316,6 +334,73 @@ class BilinearSampler:
         return out
 
 
+def _reflect(index: np.ndarray, n: int) -> np.ndarray:
+    """Indices outside ``0 … n-1`` mirrored about the edges (``d c b a | a b c d | d c b a``,
+    scipy.ndimage's ``reflect`` mode), for indices at most ``n`` outside."""
+    index = np.where(index < 0, -index - 1, index)
+    return np.where(index >= n, 2 * n - 1 - index, index)
+
+
+def _window_extreme(op: np.ufunc, padded: np.ndarray, width: int, axis: int,
+                    out: np.ndarray | None = None) -> np.ndarray:
+    """``op`` (minimum or maximum) over every run of ``width`` consecutive entries along
+    ``axis`` (0 or 1) of ``padded`` (the output is ``width - 1`` shorter along that axis).
+
+    Doubling: after step ``s`` each entry holds ``op`` over ``s`` consecutive entries, so
+    ``op`` over ``width`` is that of two overlapping runs of the largest power of two
+    ``s <= width`` (a minimum or maximum is exact in any grouping: identical values to a
+    sliding filter).
+    """
+    def cut(a: np.ndarray, start: int, stop: int) -> np.ndarray:
+        return a[start:stop] if axis == 0 else a[:, start:stop]
+
+    current, s = padded, 1
+    while 2 * s <= width:
+        length = current.shape[axis]
+        current = op(cut(current, 0, length - s), cut(current, s, length))
+        s *= 2
+    length = padded.shape[axis] - width + 1
+    return op(cut(current, 0, length), cut(current, width - s, width - s + length), out=out)
+
+
+def _square_filter(op: np.ufunc, source: np.ndarray, out: np.ndarray, lo: int, hi: int,
+                   radius: int) -> None:
+    """Rows ``lo:hi`` of the ``(2 radius + 1)``-square minimum or maximum filter of the whole
+    ``source`` (``op`` = ``np.minimum`` or ``np.maximum``), written into ``out[lo:hi]``.
+
+    The same values as ``scipy.ndimage.minimum_filter`` / ``maximum_filter`` with
+    ``size = 2 radius + 1`` and the default ``reflect`` edges: the square window is separable
+    (a 1D pass along the rows, then along the columns), each pass is :func:`_window_extreme`
+    on mirrored edges. A window wider than the grid is left to scipy.
+    """
+    n_u, n_v = source.shape
+    if radius > n_u or radius > n_v:
+        filt = ndimage.minimum_filter if op is np.minimum else ndimage.maximum_filter
+        a, b = max(0, lo - radius), min(n_u, hi + radius)
+        out[lo:hi] = filt(source[a:b], size=2 * radius + 1)[lo - a:hi - a]
+        return
+    width = 2 * radius + 1
+    # the pass along the rows writes into the middle of the column-padded buffer; the
+    # mirrored columns are copied after it. Rows whose window reaches past the grid's edge
+    # (at most ``radius`` at either end) read a small block with mirrored rows; the others
+    # read the source in place.
+    padded = np.empty((hi - lo, n_v + 2 * radius), source.dtype)
+    middle = (max(lo, radius), min(hi, n_u - radius))
+    if middle[0] < middle[1]:
+        parts = [(lo, middle[0]), (middle[1], hi)]
+        _window_extreme(op, source[middle[0] - radius:middle[1] + radius], width, 0,
+                        out=padded[middle[0] - lo:middle[1] - lo, radius:radius + n_v])
+    else:
+        parts = [(lo, hi)]
+    for a, b in parts:
+        if a < b:
+            rows = source[_reflect(np.arange(a - radius, b + radius), n_u)]
+            _window_extreme(op, rows, width, 0, out=padded[a - lo:b - lo, radius:radius + n_v])
+    padded[:, :radius] = padded[:, 2 * radius - 1:radius - 1:-1]
+    padded[:, radius + n_v:] = padded[:, radius + n_v - 1:n_v - 1:-1]
+    _window_extreme(op, padded, width, 1, out=out[lo:hi])
+
+
 def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
     """Minimum of ``values`` per flat cell index; NaN where a cell is empty."""
     out = np.full(size, np.inf)
@@ -426,7 +511,8 @@ class InpaintPlan:
     (``b = max(1, max_cells // 15)``) nearest to their own block (Euclidean distance transform
     of the block grid): with ``b = 1`` this is the nearest known cell; with larger blocks the
     position of the nearest data is found within ``b`` cells of a distance of more than
-    ``max_cells``. The plan holds the far cells and the block each one reads, the block counts,
+    ``max_cells``. The plan holds the far cells, the nearest non-empty block of every block, the
+    block counts,
     and per level of the cascade the known cells, the block weights and the strips of rows that
     hold free cells (the Jacobi sweeps only visit those).
     """
@@ -439,13 +525,16 @@ class InpaintPlan:
         self.max_cells = int(max_cells)
         self.any_unknown = bool(unknown.any())
         self.all_unknown = self.any_unknown and bool(unknown.all())
-        self.far_cells = np.zeros(0, np.intp)
+        self.far: np.ndarray | None = None
         if not self.any_unknown or self.all_unknown:
             self.known = ~unknown
             self.free = unknown
             self.levels: list[_Level] = []
             return
-        near_data = ndimage.maximum_filter(~unknown, size=2 * self.max_cells + 1, mode="constant")
+        # cells within max_cells of a known cell (a square maximum filter of the known mask;
+        # for a maximum of booleans the mirrored edges add nothing: outside counts as empty)
+        near_data = np.empty_like(unknown)
+        _square_filter(np.maximum, ~unknown, near_data, 0, unknown.shape[0], self.max_cells)
         far = unknown & ~near_data
         del near_data
         self.block = b = max(1, self.max_cells // 15)
@@ -457,14 +546,9 @@ class InpaintPlan:
             self.block_count = _block_sum(w, b)
             del w
             _, (ii, jj) = ndimage.distance_transform_edt(self.block_count == 0, return_indices=True)
-            nearest = ii * self.block_count.shape[1] + jj
+            self.nearest = ii * self.block_count.shape[1] + jj
             del ii, jj
-            qi, qj = np.nonzero(far)
-            self.far_cells = qi * n_v + qj
-            qi //= b
-            qj //= b
-            self.far_source = nearest[qi, qj]
-            del qi, qj, nearest
+            self.far = far
         self.known = ~unknown | far
         self.free = ~self.known
         self.levels = _levels(self.known)
@@ -481,15 +565,20 @@ class InpaintPlan:
 
     def fill_far(self, out: np.ndarray) -> None:
         """Set the far cells of ``out`` (NaN where unknown) to their nearest block's mean."""
-        if len(self.far_cells) == 0:
+        if self.far is None:
             return
         n_u, n_v = out.shape
+        b = self.block
         v = np.zeros(self.padded)
         np.copyto(v[:n_u, :n_v], out, where=~self.unknown)
-        total = _block_sum(v, self.block)
+        total = _block_sum(v, b)
         del v
         block_value = total / np.maximum(self.block_count, 1.0)
-        out.ravel()[self.far_cells] = block_value.ravel()[self.far_source]
+        # per block the mean of its nearest non-empty block, spread over the block's cells
+        source = block_value.ravel()[self.nearest]
+        if b > 1:
+            source = np.repeat(np.repeat(source, b, axis=0), b, axis=1)
+        np.copyto(out, source[:n_u, :n_v], where=self.far)
 
 
 def _block_sum(values: np.ndarray, b: int) -> np.ndarray:

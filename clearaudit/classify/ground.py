@@ -22,10 +22,17 @@ from dataclasses import dataclass
 from functools import partial
 
 import numpy as np
-from scipy import ndimage
 
 from ..threads import inner_threads, run_chunks
-from .grid import GridFrame, InpaintPlan, PointLocation, cell_mean, cell_min, inpaint
+from .grid import (
+    GridFrame,
+    InpaintPlan,
+    PointLocation,
+    _square_filter,
+    cell_mean,
+    cell_min,
+    inpaint,
+)
 
 
 @dataclass
@@ -106,7 +113,7 @@ def build_ground_model(xyz_ground: np.ndarray, frame: GridFrame,
     if len(xyz_ground) == 0:
         raise ValueError("the ground model needs at least one ground point")
     loc = frame.locate(xyz_ground[:, :2]) if location is None else location
-    flat = loc.flat
+    flat = loc.flat.astype(np.intp, copy=False)  # np.bincount counts intp indices (no cast per call)
     mean_z, count = cell_mean(flat, xyz_ground[:, 2], frame.size)
     mean_u, _ = cell_mean(flat, loc.fu, frame.size, count)
     mean_v, _ = cell_mean(flat, loc.fv, frame.size, count)
@@ -150,43 +157,54 @@ def morphological_slope_ratio(surface: np.ndarray, max_radius: int, cell: float
     square window of half width :math:`r` cells (Pingel et al., 2013, Eq. 1 with a square
     structuring element). Because the openings do not depend on the slope threshold, the
     per-cell ratio lets the threshold be chosen afterwards.
+
+    Two identities of flat morphology make this cheap and leave every value unchanged
+    (minimum and maximum only select values): the square :math:`B_r` of half width
+    :math:`r` is open with respect to :math:`B_{r-1}`, so the openings form a granulometry,
+    :math:`\\gamma_r\\gamma_{r-1} = \\gamma_r` and :math:`S_r = \\gamma_r(S_0)`; and
+    :math:`B_r = B_{r-1} \\oplus B_1`, so the erosion :math:`E_r = \\varepsilon_r(S_0)` is
+    :math:`\\varepsilon_1(E_{r-1})`, one 3 × 3 minimum per step. Then
+    :math:`S_r = \\delta_r(E_r)`. The mirrored grid edges (scipy's ``reflect``) commute with
+    these symmetric windows, so the identities hold on the finite grid too (Serra, 1982).
+
+    References
+    ----------
+    Pingel, T. J., Clarke, K. C., McBride, W. A. (2013). An improved simple morphological
+    filter for the terrain classification of airborne LIDAR data. ISPRS J. Photogramm.
+    Remote Sens. 77, 21-30.
+    Serra, J. (1982). Image Analysis and Mathematical Morphology. Academic Press (openings,
+    granulometries, decomposition of structuring elements).
     """
     # float32: min and max are exact in any precision, and rounding the surface to float32
     # (< 0.1 mm below 1 km of local height) halves the memory traffic of the filters
     surface = np.asarray(surface, dtype=np.float32)
     n_u = surface.shape[0]
     threads = min(inner_threads(), max(1, n_u // 256))
-    # row bands, filtered on separate threads: a band with ``radius`` extra rows on each side
-    # gives exactly the rows of a filter of the whole grid (the window reaches ``radius`` rows)
+    # row bands, filtered on separate threads: each band reads ``radius`` extra rows on each
+    # side, which gives exactly the rows of a filter of the whole grid
     band_rows = -(-n_u // threads)
     previous = surface
     buffers = [np.empty_like(surface), np.empty_like(surface)]
-    eroded = np.empty_like(surface)
+    erosions = [np.empty_like(surface), np.empty_like(surface)]
+    eroded = surface  # E_0
     ratio = np.zeros_like(surface)
 
-    def band_filter(filt, source: np.ndarray, out: np.ndarray, lo: int, hi: int,
-                    radius: int) -> None:
-        """Rows lo:hi of ``filt`` (a square min or max filter) of the whole ``source``."""
-        a, b = max(0, lo - radius), min(n_u, hi + radius)
-        if a == lo and b == hi:
-            filt(source[lo:hi], size=2 * radius + 1, output=out[lo:hi])
-        else:
-            out[lo:hi] = filt(source[a:b], size=2 * radius + 1)[lo - a:hi - a]
+    def erode(source: np.ndarray, eroded: np.ndarray, lo: int, hi: int) -> None:
+        _square_filter(np.minimum, source, eroded, lo, hi, 1)  # E_r = ε_1(E_{r-1})
 
-    def erode(radius: int, source: np.ndarray, lo: int, hi: int) -> None:
-        band_filter(ndimage.minimum_filter, source, eroded, lo, hi, radius)
-
-    def dilate(radius: int, source: np.ndarray, opened: np.ndarray, lo: int, hi: int) -> None:
-        band_filter(ndimage.maximum_filter, eroded, opened, lo, hi, radius)
+    def dilate(radius: int, eroded: np.ndarray, source: np.ndarray, opened: np.ndarray,
+               lo: int, hi: int) -> None:
+        _square_filter(np.maximum, eroded, opened, lo, hi, radius)  # S_r = δ_r(E_r)
         drop = source[lo:hi] - opened[lo:hi]
         drop *= np.float32(1.0 / (radius * cell))
         np.maximum(ratio[lo:hi], drop, out=ratio[lo:hi])
 
     for radius in range(1, max_radius + 1):
         opened = buffers[radius % 2]
+        before, eroded = eroded, erosions[radius % 2]
         # every band is eroded before any is dilated (a dilation reads neighbouring bands)
-        run_chunks(partial(erode, radius, previous), n_u, band_rows, threads)
-        run_chunks(partial(dilate, radius, previous, opened), n_u, band_rows, threads)
+        run_chunks(partial(erode, before, eroded), n_u, band_rows, threads)
+        run_chunks(partial(dilate, radius, eroded, previous, opened), n_u, band_rows, threads)
         previous = opened
     return ratio, previous
 
@@ -220,7 +238,8 @@ def smrf(xyz: np.ndarray, frame: GridFrame, *, slope: float | None = None,
          window_m: float = 18.0, elevation_threshold_m: float = 0.5,
          elevation_scaler: float = 1.25, slope_min: float = 0.15, slope_max: float = 0.8,
          use: np.ndarray | None = None, max_cells: int = 60,
-         location: PointLocation | None = None) -> SmrfResult:
+         location: PointLocation | None = None,
+         minimum_surface: np.ndarray | None = None) -> SmrfResult:
     """Simple morphological filter (SMRF) ground classification.
 
     Parameters
@@ -245,6 +264,9 @@ def smrf(xyz: np.ndarray, frame: GridFrame, *, slope: float | None = None,
         Distance limit of the inpainting. [cells]
     location
         Cell coordinates of all points in ``frame`` when already known (saves a pass).
+    minimum_surface
+        The lowest ``use`` point per cell (NaN where a cell has none), shape ``frame.shape``,
+        when already computed (saves a pass). [m]
 
     Returns
     -------
@@ -269,9 +291,13 @@ def smrf(xyz: np.ndarray, frame: GridFrame, *, slope: float | None = None,
     cell = frame.cell
     loc = frame.locate(xyz[:, :2]) if location is None else location
     z = xyz[:, 2]
-    flat = loc.flat
-    zmin = cell_min(flat[use], z[use], frame.size).reshape(frame.shape)
-    del flat
+    if minimum_surface is None:
+        # points outside ``use`` count as +inf: a cell with none of the others stays empty
+        zmin = cell_min(loc.flat, np.where(use, z, np.inf), frame.size).reshape(frame.shape)
+    else:
+        zmin = np.asarray(minimum_surface, dtype=np.float64)
+        if zmin.shape != frame.shape:
+            raise ValueError("the minimum surface must have the shape of the SMRF grid")
     occupied = ~np.isnan(zmin)
     surface = inpaint(zmin, max_cells)
     max_radius = max(1, int(np.ceil(window_m / cell)))
@@ -346,8 +372,9 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
         return ground, max_threshold_m
     loc = frame.locate(xyz[idx, :2]) if location is None else location.subset(idx)
     z = xyz[idx, 2].astype(np.float32)  # float32: rounding < 0.1 mm below 1 km local height
+    z64 = z.astype(np.float64)  # the same values as the float64 weights of the cell sums
     flat = loc.flat
-    model = inpaint(cell_min(flat, z, frame.size).reshape(frame.shape), max_cells)
+    model = inpaint(cell_min(flat, z64, frame.size).reshape(frame.shape), max_cells)
     window = 0.5 * max_threshold_m
     sigma = window
     slope = np.zeros(1, np.float32)
@@ -358,8 +385,10 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     plan: InpaintPlan | None = None
     for _ in range(iterations):
         inside = np.abs(resid) <= window + slope_scaler * slope
-        mean, _ = cell_mean(flat[inside], z[inside], frame.size)
-        mean = mean.reshape(frame.shape)
+        # points outside the window count in one extra cell past the grid (no compaction
+        # of the points; each cell sums its points in the same order)
+        mean, _ = cell_mean(np.where(inside, flat, np.intp(frame.size)), z64, frame.size + 1)
+        mean = mean[:frame.size].reshape(frame.shape)
         unknown = np.isnan(mean)
         if plan is None or not plan.matches(unknown, max_cells):
             plan = InpaintPlan(unknown, max_cells)

@@ -13,7 +13,7 @@ import numpy as np
 
 from ..threads import run_chunks
 
-_CHUNK = 1 << 20  # points per chunk of the per-point passes
+_CHUNK = 1 << 16  # points per chunk of the per-point passes (cache-sized temporaries)
 
 
 def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple[int, int, int]]:

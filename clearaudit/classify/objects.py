@@ -200,27 +200,59 @@ class ColumnGrid:
     count: np.ndarray
 
 
-def column_grid(xy: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
-    """Per-cell top, bottom, point count and vertical fill of points (HAG in metres)."""
-    flat = _flat_index(frame, xy)
-    size = frame.size
-    top = cell_max(flat, hag, size)
-    bottom = cell_min(flat, hag, size)
-    count = np.bincount(flat, minlength=size)
+def _column_stats(flat: np.ndarray, hag: np.ndarray, size: int
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Column statistics on the occupied cells only (the grid spans the bounding box of a
+    corridor, mostly empty).
+
+    Returns ``cells`` (sorted flat indices of the occupied cells), ``k`` (each point's
+    position in ``cells``) and per occupied cell the highest and lowest HAG [m], the share of
+    occupied 1 m slices between them and the point count.
+    """
+    occupied_cell = np.zeros(size, bool)
+    occupied_cell[flat] = True
+    cells = np.flatnonzero(occupied_cell)
+    del occupied_cell
+    m = len(cells)
+    position = np.empty(size, np.int32 if m < 2**31 else np.intp)
+    position[cells] = np.arange(m)
+    k = position[flat].astype(np.intp)
+    del position
+    top = cell_max(k, hag, m)
+    bottom = cell_min(k, hag, m)
+    count = np.bincount(k, minlength=m)
     slices = np.floor(hag).astype(np.int64)
     slices -= slices.min() if len(slices) else 0
     levels = int(slices.max(initial=0)) + 1
-    pair = flat.astype(np.int64) * levels + slices
-    if size * levels <= 1 << 26:
+    pair = k.astype(np.int64) * levels + slices
+    if m * levels <= 1 << 26:
         # occupied (cell, 1 m slice) pairs marked on a bit grid: no sort of the points
-        mark = np.zeros(size * levels, bool)
+        mark = np.zeros(m * levels, bool)
         mark[pair] = True
-        occupied = np.count_nonzero(mark.reshape(size, levels), axis=1)
+        occupied = np.count_nonzero(mark.reshape(m, levels), axis=1)
     else:
-        occupied = np.bincount(np.unique(pair) // levels, minlength=size)
-    with np.errstate(invalid="ignore"):
-        span = np.floor(top) - np.floor(bottom) + 1
-        fill = np.where(count > 0, occupied / span, 0.0)
+        occupied = np.bincount(np.unique(pair) // levels, minlength=m)
+    fill = occupied / (np.floor(top) - np.floor(bottom) + 1)
+    return cells, k, top, bottom, fill, count
+
+
+def column_grid(xy: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
+    """Per-cell top, bottom, point count and vertical fill of points (HAG in metres)."""
+    return _column_grid(_flat_index(frame, xy), hag, frame)
+
+
+def _column_grid(flat: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
+    """:func:`column_grid` from the points' flat cell indices."""
+    size = frame.size
+    cells, _, top_c, bottom_c, fill_c, count_c = _column_stats(flat, hag, size)
+    top = np.full(size, np.nan)
+    top[cells] = top_c
+    bottom = np.full(size, np.nan)
+    bottom[cells] = bottom_c
+    fill = np.zeros(size)
+    fill[cells] = fill_c
+    count = np.zeros(size, np.int64)
+    count[cells] = count_c
     shape = frame.shape
     return ColumnGrid(frame, top.reshape(shape), bottom.reshape(shape), fill.reshape(shape),
                       count.reshape(shape))
@@ -357,8 +389,12 @@ def _anchored_frame(x: np.ndarray, y: np.ndarray, cell: float, margin_cells: int
 
 def frame_for_points(xy: np.ndarray, cell: float) -> GridFrame:
     """An axis-aligned bucket grid over ``xy`` (for gathering points near a curve)."""
-    return GridFrame(np.zeros(2), np.eye(2), xy.min(axis=0) - cell, cell,
-                     tuple(int(v) for v in np.ceil(np.ptp(xy, axis=0) / cell) + 3))
+    # reduced one column at a time (a reduction over the long axis of an (n, 2) array runs
+    # element by element); the same minima and maxima
+    lo = np.array([xy[:, 0].min(), xy[:, 1].min()])
+    hi = np.array([xy[:, 0].max(), xy[:, 1].max()])
+    return GridFrame(np.zeros(2), np.eye(2), lo - cell, cell,
+                     tuple(int(v) for v in np.ceil((hi - lo) / cell) + 3))
 
 
 def find_wires(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, filled_column: np.ndarray,
@@ -408,7 +444,9 @@ def find_wires(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, filled_co
     bucket = frame_for_points(xyz[eligible, :2], 2.0)
     cell_of = bucket.flat_index(xyz[eligible, :2])
     order = np.argsort(cell_of, kind="stable")
-    first = np.searchsorted(cell_of[order], np.arange(bucket.size + 1))
+    # start of every cell's run in the sorted order (a count per cell, accumulated)
+    first = np.zeros(bucket.size + 1, np.int64)
+    np.cumsum(np.bincount(cell_of, minlength=bucket.size), out=first[1:])
     ring = np.array([(a, b) for a in (-1, 0, 1) for b in (-1, 0, 1)])
     for sid, seg in enumerate(segments):
         s0 = seg.s_range[0] - opts.wire_gap_m
@@ -483,12 +521,14 @@ def shield_wires(segments: list[WireSegment], opts: ClassifyOptions,
 
 
 def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
-                    scattering: np.ndarray, frame: GridFrame, opts: ClassifyOptions) -> np.ndarray:
+                    scattering: np.ndarray, frame: GridFrame, opts: ClassifyOptions,
+                    flat: np.ndarray | None = None) -> np.ndarray:
     """Transmission-structure points (towers, poles, their crossarms) among above-ground points.
 
     A structure is a connected group of tall filled columns that is slender, near wires and
     made of members (lattice bars, pole surfaces) rather than foliage: the median scattering
     :math:`\\lambda_3/\\lambda_1` of its points is low (tree crowns scatter in 3D).
+    ``flat`` is the points' flat cell index in ``frame`` when already known.
     Returns a boolean mask over ``xyz``.
     """
     n = len(xyz)
@@ -496,11 +536,19 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
     other = np.flatnonzero(~is_wire)
     if len(other) == 0:
         return structure
-    cols = column_grid(xyz[other, :2], hag[other], frame)
-    top = np.nan_to_num(cols.top)
-    extent = top - np.nan_to_num(cols.bottom)
-    tall = ((top >= opts.structure_min_height_m) & (cols.fill >= opts.column_min_fill)
-            & (extent >= 0.5 * top))
+    flat_other = _flat_index(frame, xyz[other, :2]) if flat is None else flat[other]
+    # tall filled columns, computed on the occupied cells; an empty cell counts with top,
+    # extent and fill 0 (tall only with thresholds of 0)
+    cells, _, top_c, bottom_c, fill_c, _ = _column_stats(flat_other, hag[other], frame.size)
+    tall_c = ((top_c >= opts.structure_min_height_m) & (fill_c >= opts.column_min_fill)
+              & (top_c - bottom_c >= 0.5 * top_c))
+    top = np.zeros(frame.size)
+    top[cells] = top_c
+    tall = np.full(frame.size, opts.structure_min_height_m <= 0 and opts.column_min_fill <= 0)
+    tall[cells] = tall_c
+    tall = tall.reshape(frame.shape)
+    top = top.reshape(frame.shape)
+    del cells, top_c, bottom_c, fill_c, tall_c
     labels, m = ndimage.label(tall, structure=np.ones((3, 3)))
     if m == 0:
         return structure
@@ -519,12 +567,12 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
     if is_wire.any():
         # a label is near wires when one of its cells lies within the square reach of a wire
         # cell (the binary dilation of the wire cells, done on the occupied cells only)
-        wire_cells = np.unique(_flat_index(frame, xyz[is_wire, :2]))
+        wire_cells = np.unique(_flat_index(frame, xyz[is_wire, :2]) if flat is None
+                               else flat[is_wire])
         reach = max(1, int(np.ceil(opts.structure_wire_search_m / frame.cell)))
         near = np.zeros(frame.size, bool)
         near[_grow_cells(wire_cells, frame.shape, _square(reach))] = True
         accept &= np.bincount(tall_label[near[tall_cells]], minlength=m + 1)[1:] > 0
-    flat_other = _flat_index(frame, xyz[other, :2])
     point_label = label_flat[flat_other]
     labelled = point_label > 0
     if labelled.any():
@@ -535,7 +583,8 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         # footprint is higher than its highest point; at a structure the wires attach at or
         # below its top (shield wires at the peak, phases on the crossarms / insulators)
         wire_idx = np.flatnonzero(is_wire)
-        wire_label = label_flat[_flat_index(frame, xyz[wire_idx, :2])]
+        wire_label = label_flat[_flat_index(frame, xyz[wire_idx, :2]) if flat is None
+                                else flat[wire_idx]]
         over = wire_label > 0
         if over.any():
             lowest_wire = np.full(m + 1, np.inf)
@@ -568,7 +617,8 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         structure[cand[np.isin(comp, touching)]] = True
     # wire points inside the tall core (crossarms, insulators, attachment hardware)
     wire_idx = np.flatnonzero(is_wire)
-    structure[wire_idx[core[_flat_index(frame, xyz[wire_idx, :2])]]] = True
+    wire_flat = _flat_index(frame, xyz[wire_idx, :2]) if flat is None else flat[wire_idx]
+    structure[wire_idx[core[wire_flat]]] = True
     return structure
 
 
@@ -683,8 +733,11 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     rhs = np.stack([sz[ok], sxz[ok], syz[ok]], -1)
     coef = np.full((m, 3), np.nan)
     good = np.abs(np.linalg.det(a_mat)) > 1e-9
-    sol = np.full((len(ok), 3), np.nan)
-    sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
+    if good.all():  # the usual case: no copies of the systems
+        sol = np.linalg.solve(a_mat, rhs[..., None])[..., 0]
+    else:
+        sol = np.full((len(ok), 3), np.nan)
+        sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
     # residuals in chunks of points (small temporaries), the same operations in the same order
     # as z - ((b·dx + a) + c·dy) for every point; per-cell coefficients gathered from
@@ -842,7 +895,7 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     m = len(cells)
     cid = np.full(grid.size, -1, np.int32)
     cid[cells] = np.arange(m, dtype=np.int32)
-    k = cid[flat]
+    k = cid[flat].astype(np.intp)  # np.bincount counts intp indices (no cast per call)
     del flat
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
@@ -981,11 +1034,15 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     # grids anchored to the local coordinates (not to the cloud's extent or principal
     # direction): a tile with its overlap sees the same cells as the whole survey
     col_frame = anchored_frame(xyz[:, :2], opts.column_cell_m)
-    cols = column_grid(xyz[:, :2], hag, col_frame)
-    filled_cell = (cols.fill >= opts.column_min_fill) & (np.nan_to_num(cols.top) - np.nan_to_num(cols.bottom) >= 4.0)
-    filled_point = filled_cell.ravel()[_flat_index(col_frame, xyz[:, :2])]
+    col_flat = _flat_index(col_frame, xyz[:, :2])
+    # filled columns on the occupied cells (an empty cell is never filled: its extent is 0)
+    _, col_k, top, bottom, fill, _ = _column_stats(col_flat, hag, col_frame.size)
+    filled_point = ((fill >= opts.column_min_fill) & (top - bottom >= 4.0))[col_k]
+    del col_k, top, bottom, fill
     is_wire, segment_id, segments = find_wires(xyz, hag, feats, filled_point, opts)
-    structure = find_structures(xyz, hag, is_wire, feats.scattering, col_frame, opts)
+    structure = find_structures(xyz, hag, is_wire, feats.scattering, col_frame, opts,
+                                flat=col_flat)
+    del col_flat
     is_wire &= ~structure
     if structure.any() and is_wire.any() and segments:
         # short "wire" segments lying mostly on a structure are its members (bracing, arms)
