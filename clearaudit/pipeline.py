@@ -450,6 +450,9 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
 
 #: Points per split task of a tiled run (a range of one input file).
 SPLIT_PART_POINTS = 1_000_000
+#: Points per chunk of the tiled run's classified copy (its buffers are ≈ 90 bytes a point:
+#: the run's peak when the tiles are small; a multiple of the LAZ chunk, 50 000 points).
+WRITE_CHUNK_POINTS = 1_000_000
 
 
 def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
@@ -697,7 +700,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         max_code=max(counts) if counts else 0,
                         extra_dims={"height_above_ground": (np.float32,
                                                             "height above ground [m]")},
-                        records=records)
+                        records=records, chunk_size=WRITE_CHUNK_POINTS)
 
                 cls_summary = _ClassCounts(counts)
                 summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
