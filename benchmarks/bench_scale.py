@@ -247,6 +247,15 @@ def print_results(results: list[dict]) -> None:
         if "dask_speedup" in r:
             print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
                   f"in-process tiled on one thread; identical outputs: {r['dask_identical']}")
+    # flat memory: the peaks of the tiled runs on the default threads, smallest to largest
+    # survey (a one-tile case has no second tile in flight and is listed apart)
+    tiled = sorted((r for r in results if r.get("tiled")), key=lambda r: r["points"])
+    if len(tiled) > 1:
+        peaks = ", ".join(f"{r['case']} {r['tiled']['peak_rss_mb']:.0f}" for r in tiled)
+        many = [r["tiled"]["peak_rss_mb"] for r in tiled if r["points"] >= 2e6]
+        spread = f"{max(many) / min(many):.2f}" if len(many) > 1 else "n/a"
+        print(f"tiled peak RSS MB by survey size: {peaks}; largest / smallest of the "
+              f"multi-tile cases = {spread} (target: flat)")
     for r in results:
         for mode in ("memory", "serial", "tiled", "dask"):
             if r.get(mode):
