@@ -68,6 +68,64 @@ def test_terrain_forms_are_not_roofs(form):
     assert not roofs.is_roof.any()
 
 
+
+def _slope_with_gable(grade: float, ridge_along_fall_line: bool, rotation_deg: float, rng):
+    """Terrain z = grade·x with a 22 m x 12 m gable-roofed building centred at (35, 35):
+    eaves 4.5 m and ridge 7.5 m above the lowest ground at its corners (the generator's
+    building, ``clearaudit.synth``). The uphill eave stands 4.5 - 12·grade m (ridge across
+    the fall line) or the uphill gable end 7.5 - 22·grade m above the slope: at a 30-45 %
+    grade the uphill side meets the hillside at about its own height or lies below it (a
+    building set into the slope). Only the roof is seen (as from the air)."""
+    xy = _sample(rng, 0.0, 70.0, 0.0, 70.0)
+    ang = np.radians(rotation_deg)
+    along = np.array([np.cos(ang), np.sin(ang)])
+    if not ridge_along_fall_line:
+        along = np.array([-along[1], along[0]])
+    across = np.array([-along[1], along[0]])
+    r = xy - 35.0
+    a, b = r @ along, r @ across
+    inside = (np.abs(a) < 11.0) & (np.abs(b) < 6.0)
+    corners = 35.0 + np.array([s * 11.0 * along + t * 6.0 * across
+                               for s in (-1, 1) for t in (-1, 1)])
+    base = grade * corners[:, 0].min()
+    z = grade * xy[:, 0]
+    z[inside] = base + 4.5 + 3.0 * (1.0 - np.abs(b[inside]) / 6.0)
+    z += rng.normal(0.0, 0.03, len(z))
+    outside_m = np.maximum(np.abs(a) - 11.0, np.abs(b) - 6.0)  # distance beyond the walls
+    return np.c_[xy, z], inside, outside_m
+
+
+@pytest.mark.parametrize("grade", [0.3, 0.45])
+@pytest.mark.parametrize("ridge_along_fall_line", [False, True])
+def test_gable_roof_meeting_the_slope_is_found(grade, ridge_along_fall_line):
+    # geometry by construction (see _slope_with_gable); a roof plane that meets the slope
+    # at its own height, or dips below it, is found with the other half of the gable.
+    # Ground points taken with the roof may only lie where roof and slope meet at equal
+    # height (within one 1 m cell of the wall line).
+    rng = np.random.default_rng(6)
+    xyz, truth, outside_m = _slope_with_gable(grade, ridge_along_fall_line, 20.0, rng)
+    roofs = find_ground_roofs(xyz)
+    assert roofs.is_roof[truth].mean() >= 0.9
+    false = roofs.is_roof & ~truth
+    assert np.all(outside_m[false] <= 1.0)
+    assert false.sum() <= 0.001 * (~truth).sum()
+
+
+@pytest.mark.parametrize("grade", [0.0, 0.3])
+@pytest.mark.parametrize("pitch", [0.5, 0.8])
+def test_earth_mound_is_not_a_roof(grade, pitch):
+    # a hipped earth mound 4 m high (a crest and four planar flanks that meet the ground
+    # at their toes, no walls) on a level or 30 % slope (geometry by construction): its
+    # flanks meet at convex creases like a roof's planes, but nothing stands on step edges
+    rng = np.random.default_rng(5)
+    xy = _sample(rng, 0.0, 70.0, 0.0, 70.0)
+    x, y = xy[:, 0], xy[:, 1]
+    mound = np.maximum(0.0, 4.0 - pitch * np.maximum(np.abs(y - 35.0), np.abs(x - 35.0) - 4.0))
+    z = grade * x + mound + rng.normal(0.0, 0.03, len(x))
+    roofs = find_ground_roofs(np.c_[xy, z])
+    assert roofs.patches == 0
+    assert not roofs.is_roof.any()
+
 def test_bad_arguments():
     with pytest.raises(ValueError):
         find_ground_roofs(np.zeros((10, 3)), cell_m=0.0)
@@ -89,22 +147,38 @@ def _recall_precision(truth, cls):
 
 
 def test_steep_corridor_building_precision_and_regression(steep):
-    # truth: the generator's classes. Measured 2 Dec: recall 67.4 %, precision 100 %
-    # (before the ground-roof step: 21.3 % / 100 %). 60 % is a regression bound below the
-    # measured value, not the target (the target test is below).
+    # truth: the generator's classes. Measured 2 Dec: recall 90.1 %, precision 99.9 %
+    # (before the gable-roof judgement: 67.4 % / 100 %; before the ground-roof step:
+    # 21.3 % / 100 %). 85 % is a regression bound below the measured value.
     _, result, truth = steep
     recall, precision = _recall_precision(truth, result.classification)
     assert precision >= 0.95
-    assert recall >= 0.60
+    assert recall >= 0.85
     # the roof points left the ground set: HAG of the detected roof is a building height
     roof = (truth == 6) & (result.classification == 6)
     assert np.median(result.height_above_ground_m[roof]) >= 2.0
 
 
-@pytest.mark.xfail(strict=True, reason="target not met: steep building recall 67.4 % "
-                   "(a roof half that meets the uphill slope at equal height and pitch is "
-                   "continuous with the terrain)")
 def test_steep_corridor_building_recall_target(steep):
+    # the task's target (no source): at least 70 % of the building points on the steep
+    # corridor (seed 1, measured 90.1 %; benchmarks/bench_buildings.py: steep seeds 1-8
+    # 74.8-90.1 %, mean 82.1 %, before 0-88.4 %, mean 38.7 %)
     _, result, truth = steep
     recall, _ = _recall_precision(truth, result.classification)
     assert recall >= 0.70
+
+
+def test_building_set_into_the_slope():
+    # seed 5: the building's uphill corner is 8.2 m above its lowest corner, above its
+    # eaves (4.2 m): most of the roof lies at or below the hillside around it (truth:
+    # median 1.25 m above the true ground). Measured 2 Dec: recall 75.0 %, precision
+    # 99.9 % (before the gable-roof judgement: 0 % / none found). 70 % is a regression
+    # bound below the measured value.
+    scene = generate_corridor(seed=5, terrain="steep", vegetation="sparse", classified=False)
+    result = classify(scene.cloud)
+    truth = np.asarray(scene.truth_classification)
+    recall, precision = _recall_precision(truth, result.classification)
+    assert precision >= 0.95
+    assert recall >= 0.70
+    # a roof below the ground surface interpolated across it is not low noise
+    assert not np.any((truth == 6) & (result.classification == 7))

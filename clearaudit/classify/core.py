@@ -22,7 +22,7 @@ from ..cloud import (
 )
 from ..errors import InputError
 from .features import eigen_features
-from .grid import GridFrame, cell_max, cell_min
+from .grid import GridFrame, PointLocation, cell_max, cell_min
 from .ground import GroundModel, build_ground_model, refine_ground, smrf
 from .noise import isolated_points, pit_cells
 from .objects import (
@@ -124,6 +124,53 @@ def _source_name(cloud: Cloud) -> str | None:
     return cloud.sources[0].path if cloud.sources else None
 
 
+def ground_filter(xyz: np.ndarray, frame: GridFrame, location: PointLocation, use: np.ndarray,
+                  minimum_surface: np.ndarray | None, opts: ClassifyOptions
+                  ) -> tuple[np.ndarray, float, float | None]:
+    """SMRF and the refinement from above: the ground mask of :func:`classify` step 2.
+
+    Parameters
+    ----------
+    xyz
+        Points. [m], shape (n, 3)
+    frame, location
+        The 1 m grid and the points' cell coordinates in it (the sampler of ``location`` is
+        released after SMRF, for memory).
+    use
+        Points the ground filter may use (isolated points and pits left out).
+    minimum_surface
+        Lowest used point per cell when already known, else None. [m]
+    opts
+        The classification options.
+
+    Returns
+    -------
+    is_ground, smrf_slope, refine_threshold_m
+        The mask, SMRF's slope threshold and the refinement's threshold (None when off). [m]
+    """
+    result = smrf(xyz, frame, slope=opts.smrf_slope, window_m=opts.smrf_window_m,
+                  elevation_threshold_m=opts.smrf_elevation_threshold_m,
+                  elevation_scaler=opts.smrf_elevation_scaler,
+                  slope_min=opts.smrf_slope_min, slope_max=opts.smrf_slope_max,
+                  use=use, max_cells=opts.inpaint_max_cells, location=location,
+                  minimum_surface=minimum_surface)
+    is_ground, slope_threshold = result.is_ground, result.slope_threshold
+    del result
+    # the weights of every point are not kept through the ground steps (memory); the
+    # refinement samples the ground points only, HAG builds them again
+    location.release_sampler()
+    refine_threshold = None
+    if opts.ground_refine:
+        is_ground, refine_threshold = refine_ground(
+            xyz, is_ground, frame.with_cell(opts.ground_cell_m),
+            sigma_factor=opts.ground_refine_sigma_factor,
+            min_threshold_m=opts.ground_refine_min_m,
+            max_threshold_m=opts.smrf_elevation_threshold_m,
+            max_cells=opts.inpaint_max_cells,
+            location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
+    return is_ground, float(slope_threshold), refine_threshold
+
+
 def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
              progress: Progress | None = None) -> ClassificationResult:
     """Classify every point of a cloud into ASPRS classes and compute its height above ground.
@@ -213,28 +260,12 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         info["ground_source"] = "file classes 2 and 9"
         info["smrf_slope"] = None
     else:
-        result = smrf(xyz, frame, slope=opts.smrf_slope, window_m=opts.smrf_window_m,
-                      elevation_threshold_m=opts.smrf_elevation_threshold_m,
-                      elevation_scaler=opts.smrf_elevation_scaler,
-                      slope_min=opts.smrf_slope_min, slope_max=opts.smrf_slope_max,
-                      use=use, max_cells=opts.inpaint_max_cells, location=location,
-                      minimum_surface=zmin)
-        is_ground = result.is_ground
+        is_ground, slope_threshold, refine_threshold = ground_filter(xyz, frame, location,
+                                                                     use, zmin, opts)
         info["ground_source"] = "SMRF"
-        info["smrf_slope"] = result.slope_threshold
-        del result
-        # the weights of every point are not kept through the ground steps (memory); the
-        # refinement samples the ground points only, HAG builds them again
-        location.release_sampler()
-        if opts.ground_refine:
-            is_ground, threshold = refine_ground(
-                xyz, is_ground, frame.with_cell(opts.ground_cell_m),
-                sigma_factor=opts.ground_refine_sigma_factor,
-                min_threshold_m=opts.ground_refine_min_m,
-                max_threshold_m=opts.smrf_elevation_threshold_m,
-                max_cells=opts.inpaint_max_cells,
-                location=location if opts.ground_cell_m == opts.smrf_cell_m else None)
-            info["ground_refine_threshold_m"] = threshold
+        info["smrf_slope"] = slope_threshold
+        if refine_threshold is not None:
+            info["ground_refine_threshold_m"] = refine_threshold
         model_points = is_ground
     del use, zmin
     # roofs the ground filter kept as ground (low roofs on steep terrain): out of the ground
@@ -278,6 +309,10 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
 
     # 3. noise labels
     low_noise = ~is_ground & (hag < -opts.noise_low_depth_m)
+    if roofs is not None:
+        # a roof below the ground surface interpolated across it is a building set into
+        # the slope (its uphill side meets the hillside), not a pit of noise
+        low_noise &= ~model_roof_mask
     high_noise = ~low_noise & ((isolated & (hag > opts.noise_high_min_hag_m))
                                | (hag > opts.noise_max_hag_m))
     classes = np.full(cloud.n_points, UNCLASSIFIED, dtype=np.uint8)

@@ -685,7 +685,7 @@ class GroundRoofs:
     top_z
         Per footprint cell: highest roof point in the cell (NaN where the cell is empty). [m]
     patches
-        Number of roof patches accepted.
+        Number of roofs accepted (the planes of a gable roof judged together count once).
     """
 
     is_roof: np.ndarray
@@ -778,6 +778,214 @@ def _low_plane(u: np.ndarray, v: np.ndarray, z: np.ndarray, passes: int = 4,
     return coef
 
 
+def _label_planes(label: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
+                  n_labels: int) -> np.ndarray:
+    """Least-squares plane through the cells of every label, all labels at once.
+
+    ``x``, ``y`` are cell-centre coordinates in cell units and ``z`` the cells' plane heights
+    [m]. Returns per label the centroid ``(x_m, y_m, z_m)`` and the rises per cell ``(b, c)``
+    of :math:`z = z_m + b(x - x_m) + c(y - y_m)`, shape (n_labels, 5); NaN for labels
+    without cells or with collinear cells.
+    """
+    cnt = np.bincount(label, minlength=n_labels).astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        xm = np.bincount(label, x, n_labels) / cnt
+        ym = np.bincount(label, y, n_labels) / cnt
+        zm = np.bincount(label, z, n_labels) / cnt
+        dx, dy, dz = x - xm[label], y - ym[label], z - zm[label]
+        sxx = np.bincount(label, dx * dx, n_labels)
+        syy = np.bincount(label, dy * dy, n_labels)
+        sxy = np.bincount(label, dx * dy, n_labels)
+        sxz = np.bincount(label, dx * dz, n_labels)
+        syz = np.bincount(label, dy * dz, n_labels)
+        det = sxx * syy - sxy * sxy
+        ok = det > 1e-9 * np.maximum(cnt, 1.0) ** 2
+        b = np.where(ok, (sxz * syy - syz * sxy) / np.where(ok, det, 1.0), np.nan)
+        c = np.where(ok, (syz * sxx - sxz * sxy) / np.where(ok, det, 1.0), np.nan)
+    return np.stack([xm, ym, zm, b, c], axis=-1)
+
+
+def _plane_at(plane: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Height of :func:`_label_planes` rows ``plane`` (broadcast) at cell coordinates. [m]"""
+    return plane[..., 2] + plane[..., 3] * (x - plane[..., 0]) + plane[..., 4] * (y - plane[..., 1])
+
+
+def _gable_groups(cand_cells: np.ndarray, lab_c: np.ndarray, ci: np.ndarray, cj: np.ndarray,
+                  cid: np.ndarray, label_x: np.ndarray, plane: np.ndarray,
+                  shape: tuple[int, int], cell: float, link_m: float,
+                  reach: int = 3, min_contact: int = 3) -> list[np.ndarray]:
+    """Groups of candidate patches joined pairwise by a convex crease (a roof ridge).
+
+    Two patches A and B whose cells come within ``reach`` cells of each other meet at a
+    convex crease when each one's plane, extended over the other's contact cells, passes
+    above that patch: :math:`P_B - P_A > 0` on A's contact cells and :math:`P_A - P_B > 0`
+    on B's, each mean no larger than the rise the pitch difference gives over the gap,
+    :math:`|\\mathbf g_A - \\mathbf g_B|\\,(r + 1)\\,c + ` ``link_m``, so that the crease
+    line lies between them. A step (one patch above the other), a valley (concave) or two
+    patches far apart are not joined. Returns the label arrays of groups of two or more.
+    """
+    n_lab = len(plane)
+    src_parts, dst_parts = [], []
+    for di, dj in _square(reach):  # a loop over the (2·reach + 1)² offsets, not over cells
+        if di == 0 and dj == 0:
+            continue
+        i, j = ci[cand_cells] + di, cj[cand_cells] + dj
+        inside = (i >= 0) & (i < shape[0]) & (j >= 0) & (j < shape[1])
+        other = np.full(len(cand_cells), -1, np.int64)
+        other[inside] = label_x[cid[i[inside] * shape[1] + j[inside]]]
+        ok = (other >= 0) & (other != lab_c)
+        ok[ok] = np.isfinite(plane[other[ok], 3])
+        src_parts.append(np.flatnonzero(ok))
+        dst_parts.append(other[ok])
+    src = np.concatenate(src_parts)
+    dst = np.concatenate(dst_parts)
+    if len(src) == 0:
+        return []
+    # one record per (contact cell, other patch)
+    key = np.unique(src.astype(np.int64) * n_lab + dst)
+    src, dst = key // n_lab, key % n_lab
+    own = lab_c[src]
+    x, y = ci[cand_cells[src]] + 0.5, cj[cand_cells[src]] + 0.5
+    rise = _plane_at(plane[dst], x, y) - _plane_at(plane[own], x, y)
+    pair, inverse = np.unique(own * n_lab + dst, return_inverse=True)
+    count = np.bincount(inverse)
+    mean = np.bincount(inverse, rise) / count
+    a, b = pair // n_lab, pair % n_lab
+    kink = np.hypot(plane[a, 3] - plane[b, 3], plane[a, 4] - plane[b, 4])  # rise per cell
+    good = (count >= min_contact) & (mean > 0) & (mean <= kink * (reach + 1) + link_m)
+    good_keys = pair[good]
+    # both directions convex
+    back = np.isin(b[good] * n_lab + a[good], good_keys)
+    a, b = a[good][back], b[good][back]
+    if len(a) == 0:
+        return []
+    nodes, idx = np.unique(np.r_[a, b], return_inverse=True)
+    na = len(nodes)
+    graph = sparse.coo_matrix((np.ones(len(a), bool), (idx[:len(a)], idx[len(a):])),
+                              shape=(na, na))
+    _, comp = connected_components(graph, directed=False)
+    order = np.argsort(comp, kind="stable")
+    bounds = np.searchsorted(comp[order], np.arange(comp.max() + 2))
+    groups = [nodes[order[bounds[g]:bounds[g + 1]]] for g in range(comp.max() + 1)]
+    return [g for g in groups if len(g) >= 2]
+
+
+@dataclass
+class _RoofLookups:
+    """Per-cell arrays of :func:`find_ground_roofs` shared by the patch judgements."""
+
+    cid2: np.ndarray     # grid → occupied cell index (-1 empty), grid shape
+    label_x: np.ndarray  # patch label per occupied cell (-1 not planar), sentinel last
+    low_x: np.ndarray    # lowest point per occupied cell [m], sentinel NaN
+    zc_x: np.ndarray     # cell plane height at the centre [m], sentinel NaN
+    gu_x: np.ndarray     # cell plane gradient, sentinel NaN
+    gv_x: np.ndarray
+    plane: np.ndarray    # per patch label, :func:`_label_planes`
+    lo_i: np.ndarray     # per patch label: bounding box of its cells
+    hi_i: np.ndarray
+    lo_j: np.ndarray
+    hi_j: np.ndarray
+    shape: tuple[int, int]
+    cell: float
+
+
+@dataclass
+class _RoofTests:
+    """Thresholds of :func:`find_ground_roofs` (see its parameters)."""
+
+    min_height_m: float
+    min_step_m: float
+    min_area_m2: float
+    max_area_m2: float
+    ring_cells: int
+    min_step_share: float
+    min_ring_share: float
+    max_cell_rms_m: float
+    max_gradient_change: float
+
+
+@dataclass
+class _RoofUnit:
+    """An accepted roof: its patch labels, footprint cells (flat) with their ring surface
+    height [m], and the cells on its roof planes (flat)."""
+
+    members: np.ndarray
+    cells: np.ndarray
+    ring_z: np.ndarray
+    surface: np.ndarray
+
+
+def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUnit | None:
+    """Judge one candidate patch, or the halves of a gable roof together (see
+    :func:`find_ground_roofs`, Notes); the accepted roof, or None."""
+    joint = len(members) > 1
+    gap = 2 if joint else 0  # cells closed between the halves (the ridge strip)
+    pad = t.ring_cells + 1 + gap
+    shape = lk.shape
+    i0, i1 = max(lk.lo_i[members].min() - pad, 0), min(lk.hi_i[members].max() + 1 + pad, shape[0])
+    j0, j1 = max(lk.lo_j[members].min() - pad, 0), min(lk.hi_j[members].max() + 1 + pad, shape[1])
+    win = lk.cid2[i0:i1, j0:j1]
+    wi, wj = np.mgrid[i0:i1, j0:j1]
+    lab_w = lk.label_x[win]
+    on_plane = np.isin(lab_w, members)
+    near = np.ones((3, 3), bool)
+    patch = on_plane
+    if joint:
+        patch = ndimage.binary_closing(on_plane, near, iterations=gap) | on_plane
+        if patch.sum() * lk.cell**2 > t.max_area_m2:
+            return None
+    inner = ndimage.binary_dilation(patch, near)
+    outer = ndimage.binary_dilation(patch, near, iterations=t.ring_cells)
+    ring = outer & ~inner
+    n_ring = int(ring.sum())
+    ring_low = lk.low_x[win[ring]]
+    finite = np.isfinite(ring_low)
+    # a patch at the edge of the data has no ring there: no evidence of step edges
+    if finite.sum() < max(6, t.min_ring_share * n_ring):
+        return None
+    coef = _low_plane(wi[ring][finite] + 0.5, wj[ring][finite] + 0.5, ring_low[finite])
+    if coef is None:
+        return None
+
+    def base(mask: np.ndarray) -> np.ndarray:
+        return coef[0] + coef[1] * (wi[mask] + 0.5) + coef[2] * (wj[mask] + 0.5)
+
+    height = lk.zc_x[win[on_plane]] - base(on_plane)
+    edge = patch & ~ndimage.binary_erosion(patch, near)
+    edge_h = lk.zc_x[win[edge]] - base(edge)
+    known = np.isfinite(edge_h)
+    step_share = np.mean(edge_h[known] >= t.min_step_m) if known.any() else 0.0
+    # downhill half of the boundary: where the ring surface lies below its value at the
+    # patch centroid
+    centre = base(patch).mean()
+    down = known & (base(edge) <= centre)
+    down_share = np.mean(edge_h[down] >= t.min_step_m) if down.any() else 0.0
+    if not joint:
+        if np.median(height) < t.min_height_m or step_share < t.min_step_share:
+            return None
+    elif np.percentile(height, 90) < t.min_height_m or down_share < t.min_step_share:
+        return None
+    # grow each roof plane over the coplanar planar cells joined to it
+    surface = on_plane.copy()
+    planar_w = lab_w >= 0
+    cu, cv = wi + 0.5, wj + 0.5
+    for lab in members:  # one iteration per roof plane
+        p = lk.plane[lab]
+        dz = np.abs(lk.zc_x[win] - _plane_at(p, cu, cv))
+        dg = np.hypot(lk.gu_x[win] - p[3] / lk.cell, lk.gv_x[win] - p[4] / lk.cell)
+        coplanar = planar_w & (dz <= 2.0 * t.max_cell_rms_m) & (dg <= 0.5 * t.max_gradient_change)
+        own = lab_w == lab
+        grown, _ = ndimage.label(coplanar | own, near)
+        # components touching the plane's own cells, or within two cells of them (a strip
+        # of mixed cells, e.g. a dormer or chimney, between two parts of one roof plane)
+        reach = ndimage.binary_dilation(own, near, iterations=2)
+        keep = np.unique(grown[reach])
+        surface |= np.isin(grown, keep[keep > 0])
+    inner |= ndimage.binary_dilation(surface, near)
+    flat = wi[inner] * shape[1] + wj[inner]
+    return _RoofUnit(members, flat, base(inner), wi[surface] * shape[1] + wj[surface])
+
+
 def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
                       cell_m: float = 1.0, min_height_m: float = 2.0,
                       min_step_m: float = 1.5, min_area_m2: float = 20.0,
@@ -842,12 +1050,37 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     cells with RMS residual :math:`\\le` ``max_cell_rms_m`` are planar. Neighbouring planar
     cells i, j (centre offset **d**) are linked when
     :math:`|a_j - a_i - \\tfrac12(\\mathbf g_i + \\mathbf g_j)\\cdot\\mathbf d| \\le`
-    ``link_m`` and their gradients differ by at most ``max_gradient_change``; a wall or a
-    change of pitch between a roof and the ground breaks the link, smooth terrain does not. A connected patch is a roof when its area
-    lies within the bounds, its median height above a plane fitted to the lower cells of the
-    surrounding ring is :math:`\\ge` ``min_height_m`` and at least ``min_step_share`` of its
-    boundary cells stand ``min_step_m`` above that plane (step edges all around, unlike the
-    upper edge of a cut or a crest).
+    ``link_m`` and their gradients differ by at most ``max_gradient_change``, both between
+    i and j and between the cells one further out on either side (a 3-cell baseline: a
+    cell holding both a roof edge and the slope it meets has an intermediate gradient and
+    would otherwise bridge the crease). A wall or a change of pitch between a roof and the
+    ground breaks the link, smooth terrain does not.
+
+    A connected patch is a roof when its area lies within the bounds, its median height
+    above a plane fitted to the lower cells of the surrounding ring is :math:`\\ge`
+    ``min_height_m`` and at least ``min_step_share`` of its boundary cells stand
+    ``min_step_m`` above that plane (step edges all around, unlike the upper edge of a cut
+    or a crest).
+
+    On a hillside one half of a gable roof often meets the uphill slope at about its own
+    height, or the building is set into the slope and the roof's uphill part lies below
+    the ground around it; that half alone fails these tests. Candidate patches that meet
+    at a convex crease (each plane, extended over the other's cells next to it, passes
+    above them, by no more than the pitch difference gives over the gap between them:
+    a ridge) are therefore also judged together, the gap between them (the ridge strip,
+    whose points stand above the ground filter's surface) closed by two cells. A group is a
+    roof when its upper decile stands ``min_height_m`` above the ring plane and at least
+    ``min_step_share`` of the *downhill* half of its boundary (cells where the ring plane
+    is below its mean over the roof) stands ``min_step_m`` above it: walls where the
+    ground falls away, whatever the uphill side does. A single plane (a road bench cut
+    into a slope) or a crest without walls below it is not such a group.
+
+    Each accepted roof plane then takes in the planar cells joined to it (directly or
+    across at most two cells) that lie on its plane within 2 ``max_cell_rms_m`` with a
+    gradient within ``max_gradient_change`` / 2 of it: parts of the same plane cut off by
+    mixed cells. Every point of a roof-plane cell is a roof point (a planar cell holds one
+    surface); in the cells around the roof (eaves, wall tops) points at least
+    ``min_roof_hag_m`` above the ring plane are.
 
     References
     ----------
@@ -919,6 +1152,16 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         pred = 0.5 * (axis_grad[a] + axis_grad[b]) * grid.cell
         link = ((np.abs(zc[b] - zc[a] - pred) <= link_m)
                 & (np.hypot(gu[b] - gu[a], gv[b] - gv[a]) <= max_gradient_change))
+        # the same gradient test one cell further out on both sides (a 3-cell baseline): a
+        # cell mixing a roof edge and the slope it meets has an intermediate gradient and
+        # would otherwise bridge the crease in two small steps
+        a_out = cid[np.maximum(cells[a] - step, 0)]
+        b_out = cid[np.minimum(cells[b] + step, grid.size - 1)]
+        wide = (a_out >= 0) & (b_out >= 0)
+        wide[wide] = planar[a_out[wide]] & planar[b_out[wide]]
+        w = np.flatnonzero(wide & link)
+        link[w] = np.hypot(gu[b_out[w]] - gu[a_out[w]],
+                           gv[b_out[w]] - gv[a_out[w]]) <= max_gradient_change
         rows.append(a[link])
         cols.append(b[link])
     r, c = np.concatenate(rows), np.concatenate(cols)
@@ -935,7 +1178,12 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     label_x = np.append(label, -1)
     low_x = np.append(low, np.nan)
     zc_x = np.append(zc, np.nan)
-    cand_cells = np.flatnonzero(np.isin(label, candidates))
+    gu_x = np.append(gu, np.nan)
+    gv_x = np.append(gv, np.nan)
+    is_candidate = np.zeros(n_lab, bool)
+    is_candidate[candidates] = True
+    cand_cells = np.flatnonzero(label >= 0)
+    cand_cells = cand_cells[is_candidate[label[cand_cells]]]
     lab_c = label[cand_cells]
     lo_i = np.full(n_lab, shape[0])
     hi_i = np.full(n_lab, -1)
@@ -945,48 +1193,41 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     np.maximum.at(hi_i, lab_c, ci[cand_cells])
     np.minimum.at(lo_j, lab_c, cj[cand_cells])
     np.maximum.at(hi_j, lab_c, cj[cand_cells])
-    cid2 = cid.reshape(shape)
-    near = np.ones((3, 3), bool)
-    take_parts, ring_parts = [], []
-    accepted = 0
+    plane = _label_planes(lab_c, ci[cand_cells] + 0.5, cj[cand_cells] + 0.5, zc[cand_cells], n_lab)
+    lookups = _RoofLookups(cid.reshape(shape), label_x, low_x, zc_x, gu_x, gv_x, plane, lo_i,
+                           hi_i, lo_j, hi_j, shape, grid.cell)
+    tests = _RoofTests(min_height_m, min_step_m, min_area_m2, max_area_m2, ring_cells,
+                       min_step_share, min_ring_share, max_cell_rms_m, max_gradient_change)
+    units: list[_RoofUnit] = []
+    single = np.zeros(n_lab, bool)
     for lab in candidates:  # one iteration per candidate patch (few), not per point
-        pad = ring_cells + 1
-        i0, i1 = max(lo_i[lab] - pad, 0), min(hi_i[lab] + 1 + pad, shape[0])
-        j0, j1 = max(lo_j[lab] - pad, 0), min(hi_j[lab] + 1 + pad, shape[1])
-        win = cid2[i0:i1, j0:j1]
-        wi, wj = np.mgrid[i0:i1, j0:j1]
-        patch = label_x[win] == lab
-        inner = ndimage.binary_dilation(patch, near)
-        outer = ndimage.binary_dilation(patch, near, iterations=ring_cells)
-        ring = outer & ~inner
-        n_ring = int(ring.sum())
-        ring_low = low_x[win[ring]]
-        finite = np.isfinite(ring_low)
-        # a patch at the edge of the data has no ring there: no evidence of step edges
-        if finite.sum() < max(6, min_ring_share * n_ring):
+        unit = _judge_roof(np.array([lab]), lookups, tests)
+        if unit is not None:
+            units.append(unit)
+            single[lab] = True
+    # the halves of a gable roof, judged together (a half meeting the slope uphill at the
+    # same height has no step edges there, and a roof dug into the slope stands lower above
+    # the ring than a free-standing one)
+    for members in _gable_groups(cand_cells, lab_c, ci, cj, cid, label_x, plane, shape,
+                                 grid.cell, link_m):
+        if single[members].all():
             continue
-        coef = _low_plane(wi[ring][finite] + 0.5, wj[ring][finite] + 0.5, ring_low[finite])
-        if coef is None:
+        unit = _judge_roof(members, lookups, tests)
+        if unit is None:
             continue
-        base = coef[0] + coef[1] * (wi[patch] + 0.5) + coef[2] * (wj[patch] + 0.5)
-        height = zc_x[win[patch]] - base
-        if np.median(height) < min_height_m:
-            continue
-        edge = patch & ~ndimage.binary_erosion(patch, near)
-        edge_h = zc_x[win[edge]] - (coef[0] + coef[1] * (wi[edge] + 0.5)
-                                    + coef[2] * (wj[edge] + 0.5))
-        if np.mean(edge_h >= min_step_m) < min_step_share:
-            continue
-        accepted += 1
-        take_parts.append(wi[inner] * shape[1] + wj[inner])
-        ring_parts.append(coef[0] + coef[1] * (wi[inner] + 0.5) + coef[2] * (wj[inner] + 0.5))
-    if not accepted:
+        units = [u for u in units if not np.isin(u.members, members).any()]
+        units.append(unit)
+        single[members] = True
+    if not units:
         return empty
-    # a cell in two patches' eaves keeps the later patch's ring surface
-    take = np.concatenate(take_parts)[::-1]
-    ring_all = np.concatenate(ring_parts)[::-1]
+    # a cell in two roofs' eaves keeps the later roof's ring surface
+    take = np.concatenate([u.cells for u in units])[::-1]
+    ring_all = np.concatenate([u.ring_z for u in units])[::-1]
     fp_cells, first = np.unique(take, return_index=True)
     fp_ring = ring_all[first]
+    surface = np.zeros(m + 1, bool)  # occupied cells on a roof plane (sentinel last)
+    surface_cells = cid[np.concatenate([u.surface for u in units])]
+    surface[surface_cells[surface_cells >= 0]] = True
     # ring surface sampled at each point (the plane, evaluated at the point's own position)
     ring_by_cell = np.full(m + 1, np.nan)
     fp_occ = cid[fp_cells]
@@ -994,10 +1235,12 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     zpt = ring_by_cell[k]
     pts = np.flatnonzero(np.isfinite(zpt))
     is_roof = np.zeros(n, bool)
-    is_roof[pts] = z[pts] - zpt[pts] >= min_roof_hag_m
+    # every point of a roof-plane cell is roof (a planar cell: one surface); in the eave cells
+    # around it only points standing above the ring surface
+    is_roof[pts] = (z[pts] - zpt[pts] >= min_roof_hag_m) | surface[k[pts]]
     top = cell_max(k, z, m)
     fp_top = np.where(fp_occ >= 0, np.append(top, np.nan)[fp_occ], np.nan)
-    return GroundRoofs(is_roof, grid, fp_cells, fp_ring, fp_top, accepted)
+    return GroundRoofs(is_roof, grid, fp_cells, fp_ring, fp_top, len(units))
 
 
 def vegetation_class(hag: np.ndarray, opts: ClassifyOptions) -> np.ndarray:
