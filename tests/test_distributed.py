@@ -179,22 +179,27 @@ def test_header_extent_chooses_tiled_for_sprawling_surveys(tmp_path):
 
 
 def test_tasks_release_freed_heap_pages(monkeypatch):
-    # After each task the engine hands the heap's free pages back (glibc malloc_trim); the
-    # result and errors of the task are unchanged, and a system without malloc_trim is fine.
+    # A Dask worker hands the heap's free pages back (glibc malloc_trim) after each task, a
+    # run after each stage; the result and errors of the task are unchanged, and a system
+    # without malloc_trim is fine.
     from clearaudit import tiling
-    from clearaudit.distributed import InProcessEngine
+    from clearaudit.distributed import _task
+    from clearaudit.pipeline import RunRecord
 
     calls = []
     monkeypatch.setattr(tiling, "_malloc_trim", lambda: calls.append)
-    out = dict(InProcessEngine(2).run([(np.add, (k, 1), {}) for k in range(4)]))
-    assert out == {0: 1, 1: 2, 2: 3, 3: 4} and calls == [0, 0, 0, 0]
+    assert _task(np.add, (2, 1), {}) == 3 and calls == [0]
 
     def boom():
         raise RuntimeError("task failed")
 
     with pytest.raises(RuntimeError, match="task failed"):
-        list(InProcessEngine(1).run([(boom, (), {})]))
-    assert len(calls) == 5  # released after the failed task too
+        _task(boom, (), {})
+    assert len(calls) == 2  # released after the failed task too
+    record = RunRecord(command=[], started="", options={})
+    with record.stage("read"):
+        pass
+    assert len(calls) == 3 and record.stages[0]["name"] == "read"
     monkeypatch.setattr(tiling, "_malloc_trim", lambda: None)
     tiling.release_free_memory()  # no malloc_trim: nothing to do
 
