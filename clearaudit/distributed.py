@@ -52,10 +52,12 @@ class Engine:
         along the list).
         """
         items = list(items)
-        n = max(1, min(len(items), batches_per_worker * self.n_workers))
+        if not items:
+            return []
+        n = min(len(items), batches_per_worker * self.n_workers)  # no batch is empty
         batches = [items[k::n] for k in range(n)]
         out: list[Any] = [None] * len(items)
-        for k, part in self.run([(fn, (b,), {}) for b in batches if b]):
+        for k, part in self.run([(fn, (b,), {}) for b in batches]):
             if len(part) != len(batches[k]):
                 raise RuntimeError("a batch task returned a different number of results")
             out[k::n] = part

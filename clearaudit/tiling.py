@@ -93,8 +93,9 @@ def release_free_memory() -> None:
 
     numpy arrays below glibc's adaptive mmap threshold (up to 32 MB) live in the malloc arenas,
     one per thread; after a stage frees them the pages stay in the process's resident set
-    and the next stage's peak stacks on top of them. Called between stages and after each
-    tile task: a few milliseconds, and the resident set then follows what is really in use.
+    and the next stage's peak stacks on top of them. Called after every stage and after every
+    task of a Dask worker: a few milliseconds (not after the tasks of in-process tile threads,
+    see :func:`clearaudit.distributed._task`).
     """
     trim = _malloc_trim()
     if trim is not None:

@@ -106,7 +106,7 @@ def test_inpaint_plan_reuse_gives_the_same_grid():
     grid = np.full((300, 90), np.nan)
     grid[40:60, 20:35] = rng.normal(size=(20, 15)) + 100.0
     grid[200:230, 50:80] = rng.normal(size=(30, 30)) + 90.0
-    plan = InpaintPlan.for_grid(grid, 30)
+    plan = InpaintPlan(np.isnan(grid), 30)
     first = inpaint(grid, 30)
     np.testing.assert_array_equal(inpaint(grid, 30, plan=plan), first)
     shifted = grid + 5.0  # same unknown cells, other values
@@ -205,7 +205,7 @@ def test_inpaint_far_cells_copy_the_nearest_block_mean():
     grid[200:230, 60:95] = rng.normal(size=(30, 35)) + 80.0
     max_cells = 45
     b = max_cells // 15
-    plan = InpaintPlan.for_grid(grid, max_cells)
+    plan = InpaintPlan(np.isnan(grid), max_cells)
     out = grid.copy()
     plan.fill_far(out)
     known = ~np.isnan(grid)

@@ -128,10 +128,21 @@ class GridFrame:
         return np.stack([dx * a[0, 0] + dy * a[0, 1], dx * a[1, 0] + dy * a[1, 1]], axis=1)
 
     def index(self, xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(i, j) cell indices of points, clipped into the grid."""
-        f = (self.to_uv(xy) - self.corner) / self.cell
-        i = np.clip(np.floor(f[:, 0]).astype(np.int64), 0, self.shape[0] - 1)
-        j = np.clip(np.floor(f[:, 1]).astype(np.int64), 0, self.shape[1] - 1)
+        """(i, j) cell indices of points, clipped into the grid.
+
+        An axis-aligned frame through the local origin (:func:`objects.anchored_frame`) skips
+        the rotation: there :meth:`to_uv` gives ``u = x·1 + y·0``, exactly ``x``.
+        """
+        xy = np.asarray(xy, dtype=np.float64)
+        if not np.any(self.centre) and np.array_equal(self.axes, np.eye(2)):
+            u, v = xy[:, 0], xy[:, 1]
+        else:
+            uv = self.to_uv(xy)
+            u, v = uv[:, 0], uv[:, 1]
+        fu = (u - self.corner[0]) / self.cell
+        i = np.clip(np.floor(fu, out=fu).astype(np.int64), 0, self.shape[0] - 1)
+        fv = (v - self.corner[1]) / self.cell
+        j = np.clip(np.floor(fv, out=fv).astype(np.int64), 0, self.shape[1] - 1)
         return i, j
 
     def flat_index(self, xy: np.ndarray) -> np.ndarray:
@@ -454,7 +465,7 @@ def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8, *,
     sweeps
         Jacobi sweeps per level.
     plan
-        The work that depends only on where the grid is unknown, from :meth:`InpaintPlan.for_grid`
+        The work that depends only on where the grid is unknown, ``InpaintPlan(np.isnan(grid), max_cells)``
         (reuse it for several grids with the same unknown cells). Computed when ``None`` or
         when it does not match the grid.
 
@@ -552,11 +563,6 @@ class InpaintPlan:
         self.known = ~unknown | far
         self.free = ~self.known
         self.levels = _levels(self.known)
-
-    @classmethod
-    def for_grid(cls, grid: np.ndarray, max_cells: int = 60) -> InpaintPlan:
-        """The plan for the NaN cells of ``grid``."""
-        return cls(np.isnan(np.asarray(grid, dtype=np.float64)), max_cells)
 
     def matches(self, unknown: np.ndarray, max_cells: int) -> bool:
         """Whether the plan was made for these unknown cells and distance limit."""

@@ -100,29 +100,6 @@ def voxel_components(xyz: np.ndarray, voxel: float, group: np.ndarray | None = N
     return labels[inverse].astype(np.int64)
 
 
-def _is_anchored(frame: GridFrame) -> bool:
-    """True for an axis-aligned frame centred on the local origin (:func:`anchored_frame`)."""
-    return (not np.any(frame.centre)) and np.array_equal(frame.axes, np.eye(2))
-
-
-def _flat_index(frame: GridFrame, xy: np.ndarray) -> np.ndarray:
-    """``frame.flat_index(xy)``, without the rotation for an anchored frame (same cells).
-
-    For an anchored frame :meth:`GridFrame.to_uv` is ``u = (x - 0)·1 + (y - 0)·0``, exactly
-    ``x``; the cell index is then taken from the columns directly (no (n, 2) temporaries).
-    """
-    if not _is_anchored(frame):
-        return frame.flat_index(xy)
-    xy = np.asarray(xy, dtype=np.float64)
-    i = (xy[:, 0] - frame.corner[0]) / frame.cell
-    i = np.clip(np.floor(i, out=i).astype(np.int64), 0, frame.shape[0] - 1)
-    j = (xy[:, 1] - frame.corner[1]) / frame.cell
-    j = np.clip(np.floor(j, out=j).astype(np.int64), 0, frame.shape[1] - 1)
-    i *= frame.shape[1]
-    i += j
-    return i
-
-
 def _grow_cells(cells: np.ndarray, shape: tuple[int, int], offsets: np.ndarray) -> np.ndarray:
     """Flat cells within ``offsets`` (rows of (di, dj)) of the flat ``cells``, inside the grid.
 
@@ -238,13 +215,8 @@ def _column_stats(flat: np.ndarray, hag: np.ndarray, size: int
 
 def column_grid(xy: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
     """Per-cell top, bottom, point count and vertical fill of points (HAG in metres)."""
-    return _column_grid(_flat_index(frame, xy), hag, frame)
-
-
-def _column_grid(flat: np.ndarray, hag: np.ndarray, frame: GridFrame) -> ColumnGrid:
-    """:func:`column_grid` from the points' flat cell indices."""
     size = frame.size
-    cells, _, top_c, bottom_c, fill_c, count_c = _column_stats(flat, hag, size)
+    cells, _, top_c, bottom_c, fill_c, count_c = _column_stats(frame.flat_index(xy), hag, size)
     top = np.full(size, np.nan)
     top[cells] = top_c
     bottom = np.full(size, np.nan)
@@ -536,7 +508,9 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
     other = np.flatnonzero(~is_wire)
     if len(other) == 0:
         return structure
-    flat_other = _flat_index(frame, xyz[other, :2]) if flat is None else flat[other]
+    if flat is None:
+        flat = frame.flat_index(xyz[:, :2])
+    flat_other = flat[other]
     # tall filled columns, computed on the occupied cells; an empty cell counts with top,
     # extent and fill 0 (tall only with thresholds of 0)
     cells, _, top_c, bottom_c, fill_c, _ = _column_stats(flat_other, hag[other], frame.size)
@@ -567,8 +541,7 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
     if is_wire.any():
         # a label is near wires when one of its cells lies within the square reach of a wire
         # cell (the binary dilation of the wire cells, done on the occupied cells only)
-        wire_cells = np.unique(_flat_index(frame, xyz[is_wire, :2]) if flat is None
-                               else flat[is_wire])
+        wire_cells = np.unique(flat[is_wire])
         reach = max(1, int(np.ceil(opts.structure_wire_search_m / frame.cell)))
         near = np.zeros(frame.size, bool)
         near[_grow_cells(wire_cells, frame.shape, _square(reach))] = True
@@ -583,8 +556,7 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         # footprint is higher than its highest point; at a structure the wires attach at or
         # below its top (shield wires at the peak, phases on the crossarms / insulators)
         wire_idx = np.flatnonzero(is_wire)
-        wire_label = label_flat[_flat_index(frame, xyz[wire_idx, :2]) if flat is None
-                                else flat[wire_idx]]
+        wire_label = label_flat[flat[wire_idx]]
         over = wire_label > 0
         if over.any():
             lowest_wire = np.full(m + 1, np.inf)
@@ -617,8 +589,7 @@ def find_structures(xyz: np.ndarray, hag: np.ndarray, is_wire: np.ndarray,
         structure[cand[np.isin(comp, touching)]] = True
     # wire points inside the tall core (crossarms, insulators, attachment hardware)
     wire_idx = np.flatnonzero(is_wire)
-    wire_flat = _flat_index(frame, xyz[wire_idx, :2]) if flat is None else flat[wire_idx]
-    structure[wire_idx[core[wire_flat]]] = True
+    structure[wire_idx[core[flat[wire_idx]]]] = True
     return structure
 
 
@@ -631,7 +602,7 @@ def find_buildings(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, free:
         return building
     xy_high = xyz[high, :2]
     grid = anchored_frame(xy_high, opts.building_cell_m)
-    flat = _flat_index(grid, xy_high)
+    flat = grid.flat_index(xy_high)
     del xy_high
     # statistics on occupied cells only (the grid spans the bounding box of the points)
     cells, k = np.unique(flat, return_inverse=True)
@@ -1277,7 +1248,7 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     # grids anchored to the local coordinates (not to the cloud's extent or principal
     # direction): a tile with its overlap sees the same cells as the whole survey
     col_frame = anchored_frame(xyz[:, :2], opts.column_cell_m)
-    col_flat = _flat_index(col_frame, xyz[:, :2])
+    col_flat = col_frame.flat_index(xyz[:, :2])
     # filled columns on the occupied cells (an empty cell is never filled: its extent is 0)
     _, col_k, top, bottom, fill, _ = _column_stats(col_flat, hag, col_frame.size)
     filled_point = ((fill >= opts.column_min_fill) & (top - bottom >= 4.0))[col_k]
@@ -1285,15 +1256,14 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
     is_wire, segment_id, segments = find_wires(xyz, hag, feats, filled_point, opts)
     structure = find_structures(xyz, hag, is_wire, feats.scattering, col_frame, opts,
                                 flat=col_flat)
-    del col_flat
     is_wire &= ~structure
     if structure.any() and is_wire.any() and segments:
         # short "wire" segments lying mostly on a structure are its members (bracing, arms)
-        structure_cells = np.unique(_flat_index(col_frame, xyz[structure, :2]))
+        structure_cells = np.unique(col_flat[structure])
         footprint = np.zeros(col_frame.size, bool)
         footprint[_grow_cells(structure_cells, col_frame.shape, _square(1))] = True
         w = np.flatnonzero(is_wire & (segment_id >= 0))
-        on = footprint[_flat_index(col_frame, xyz[w, :2])]
+        on = footprint[col_flat[w]]
         m = len(segments)
         share = (np.bincount(segment_id[w], weights=on, minlength=m)
                  / np.maximum(np.bincount(segment_id[w], minlength=m), 1))
@@ -1302,6 +1272,7 @@ def classify_objects(xyz: np.ndarray, hag: np.ndarray, feats: EigenFeatures, fra
         moved = w[member[segment_id[w]]]
         structure[moved] = True
         is_wire[moved] = False
+    del col_flat
     free = ~is_wire & ~structure
     building = find_buildings(xyz, hag, feats, free, frame, opts)
     classes = vegetation_class(hag, opts)

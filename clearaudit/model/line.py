@@ -672,9 +672,9 @@ def build_line_model(
     progress
         Called as ``progress(done, total)`` with the number of spans processed.
     map_fits
-        Runs a list of :class:`FitJob` and returns their fits in the same order (e.g. on a
-        thread pool or Dask workers, see :func:`run_fit_jobs`); ``None``: one after the
-        other here. The catenary fits of all wires and sub-conductors are independent and
+        Runs a list of :class:`FitJob` and returns their fits in the same order (e.g. on
+        Dask workers, ``partial(engine.map_batches, fit_jobs)``); ``None``: one after the
+        other here (:func:`fit_jobs`). The catenary fits of all wires and sub-conductors are independent and
         are most of the model's time; the result does not depend on where they run.
 
     Returns
@@ -836,7 +836,7 @@ def build_line_model(
                                                                                stations[id(w)])):
                     jobs.append(job)
                     where.append((id(w), key))
-    fitted_all = (map_fits or run_fit_jobs)(jobs)
+    fitted_all = (map_fits or fit_jobs)(jobs)
     if len(fitted_all) != len(jobs):
         raise ValueError("map_fits returned a different number of fits than jobs")
     fitted: dict[int, dict] = {}
@@ -855,9 +855,8 @@ def build_line_model(
                                         angle_to_span_deg=float(ang or 0.0),
                                         point_indices=w.point_indices))
                 continue
-            a_sup, b_sup = _supports(span, stations[id(w)])
-            _fit_wire(span, w, xyz, opts, weights, bundle_hint, fitmod, a_sup, b_sup,
-                      stations[id(w)], fitted.get(id(w), {}))
+            _fit_wire(span, w, xyz, opts, weights, bundle_hint, fitmod, stations[id(w)],
+                      fitted.get(id(w), {}))
             if w.role == "other":  # rejected by the fit: attachments not at our structures
                 others.append(OtherWire(id="", span_id=span.id, reason=w.note,
                                         angle_to_span_deg=0.0, point_indices=w.point_indices,
@@ -1714,25 +1713,10 @@ class FitJob:
 
 
 def fit_jobs(jobs: Sequence[FitJob]) -> list[Any]:
-    """Run fit jobs one after the other (a task of :func:`run_fit_jobs` or of an engine)."""
+    """Run fit jobs one after the other (here, or as a task of an engine)."""
     fitmod = _fit_module()
     return [fitmod.fit_catenary(j.points, j.support_a_xy, j.support_b_xy, **j.settings)
             for j in jobs]
-
-
-def run_fit_jobs(jobs: Sequence[FitJob], threads: int = 1) -> list[Any]:
-    """Run fit jobs here, on ``threads`` threads (in batches; results in job order)."""
-    if threads <= 1 or len(jobs) < 2:
-        return fit_jobs(jobs)
-    from concurrent.futures import ThreadPoolExecutor
-
-    batches = [jobs[k::threads] for k in range(threads)]
-    with ThreadPoolExecutor(threads, thread_name_prefix="clearaudit-fit") as pool:
-        parts = list(pool.map(fit_jobs, batches))
-    out: list[Any] = [None] * len(jobs)
-    for k, part in enumerate(parts):
-        out[k::threads] = part
-    return out
 
 
 def _representative_points(w: WireFit, xyz, a_xy, b_xy) -> np.ndarray:
@@ -1767,19 +1751,16 @@ def _wire_fit_jobs(span: Span, w: WireFit, xyz, opts: ModelOptions, supports):
 
 
 def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_hint,
-              fitmod, a_xy=None, b_xy=None, stations=None, fitted: dict | None = None) -> None:
-    """Fit one wire (and its sub-conductors) and set its status.
+              fitmod, stations, fitted: dict) -> None:
+    """Set a wire's fit (and its sub-conductors') and its status.
 
-    ``fitted`` holds fits already made of the jobs of :func:`_wire_fit_jobs` (keys
-    ``"wire"`` and ``("sub", j)``); missing ones are made here.
+    ``fitted`` holds the fits of the jobs of :func:`_wire_fit_jobs` (keys ``"wire"`` and
+    ``("sub", j)``); only the free fit of a wire rejected between our structures is made here.
     """
-    fitted = fitted or {}
     c = w.cluster
     if stations is not None:
         w.attachment_methods = (stations[0].method, stations[1].method)
         w.attachment_along_ci95_m = (_Z95 * stations[0].sd_m, _Z95 * stations[1].sd_m)
-    a_xy = span.a_xy if a_xy is None else a_xy
-    b_xy = span.b_xy if b_xy is None else b_xy
     pts_idx = w.point_indices
     unit_w = weights.get(w.role)
     w.unit_weight_n_per_m = unit_w
@@ -1791,10 +1772,7 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
         w.bundle_count = max(w.bundle_count, bundle_hint.get(w.role, 1))
         return
     n_sub = c.n_sub if c is not None else 1
-    fit = fitted.get("wire")
-    if fit is None:  # representative points: sub-conductor offsets removed
-        fit = fitmod.fit_catenary(_representative_points(w, xyz, a_xy, b_xy), a_xy, b_xy, **kw)
-    fit = _with_station_uncertainty(fit, stations)
+    fit = _with_station_uncertainty(fitted["wire"], stations)
     w.fit = fit
     hint = bundle_hint.get(w.role, 1)
     if n_sub > 1:
@@ -1837,10 +1815,7 @@ def _fit_wire(span: Span, w: WireFit, xyz, opts: ModelOptions, weights, bundle_h
                                   vertical_offset_m=float(c.sub_offsets[j, 1]),
                                   point_indices=sidx)
             if len(sidx) >= opts.min_fit_points:
-                sub_fit = fitted.get(("sub", j))
-                if sub_fit is None:
-                    sub_fit = fitmod.fit_catenary(xyz[sidx], a_xy, b_xy, **kw)
-                sub.fit = _with_station_uncertainty(sub_fit, stations)
+                sub.fit = _with_station_uncertainty(fitted[("sub", j)], stations)
                 sub.horizontal_tension_n, sub.horizontal_tension_ci95_n = _tension(sub.fit,
                                                                                    unit_w)
             w.sub_conductors.append(sub)
