@@ -482,6 +482,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         plan_parts,
         plan_tiles,
         refine_tile,
+        release_free_memory,
         split_part,
         write_cell_offsets,
         write_model_labels,
@@ -621,12 +622,17 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     map_fits=(None if engine.name == "in-process" else
                               partial(engine.map_batches, fit_jobs)))
                 record.extra["model_points"] = model_cloud.n_points
+                # what the audit needs of the gathered points; they go before the refine
+                # tasks so the driver does not hold them through the rest of the run
+                latitude = survey_latitude(model_cloud)
+                n_model_points = model_cloud.n_points
+                del model_cloud
 
                 # Classes the line model can settle (as in the in-memory run): one task per
                 # tile with the context's classify-stage classes; the refined classes go to
                 # the audit and to classified.laz.
                 wire_labels = np.asarray(model.wire_point_labels, dtype=np.int64)
-                other_of = np.full(model_cloud.n_points, -1, dtype=np.int64)
+                other_of = np.full(n_model_points, -1, dtype=np.int64)
                 for k, ow in enumerate(getattr(model, "other_wires", []) or []):
                     other_of[np.asarray(ow.point_indices, dtype=np.int64)] = k
                 for k, t in enumerate(tiles):
@@ -647,6 +653,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         changes[pair] = changes.get(pair, 0) + n
                     for c, n in res["counts"].items():
                         counts[c] = counts.get(c, 0) + n
+                release_free_memory()  # the refine tasks' freed pages, before the audit
                 record.extra["classification"]["refine_with_model"] = dict(sorted(changes.items()))
                 record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}
 
@@ -656,7 +663,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 progress = _stage_progress(bar, task)
                 plan = prepare_wire_states(
                     model, config, conductors, rules,
-                    latitude_deg=survey_latitude(model_cloud), ground_z_m=ground_sample,
+                    latitude_deg=latitude, ground_z_m=ground_sample,
                     origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
                 # a building footprint id is unique across tiles: tile number * 2**32 + its id
                 blocks: list[Any] = [None] * len(tiles)
@@ -671,6 +678,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # the last tasks have run: a local cluster shuts down while the driver
                 # merges and writes
                 engine.finish()
+                release_free_memory()  # the audit tasks' freed pages, before the merge
                 audit = merge_findings(plan, model, conductors, rules, blocks)
 
             tolerance_rows = None

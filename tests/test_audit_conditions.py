@@ -192,3 +192,33 @@ def test_wind_and_ice_conditions_and_insulator_swing(section):
     moved = (sw.curves["wind_left"][-1, :2] - st.curves["wind_left"][-1, :2]) @ left
     assert moved > 0.5
     assert np.allclose(sw.curves["wind_left"][0], st.curves["wind_left"][0])  # dead-end A
+
+
+def test_states_keep_recipes_not_samples(section):
+    # The states hold how each curve is sampled, not the samples: evaluating twice gives the
+    # same numbers, the materialized copy holds exactly those, and a state pickles to a
+    # small fraction of its samples' size (what a Dask task ships). Each curve still hangs
+    # at its catenary: the mid-span sag from the samples equals the state's sag (the chord
+    # minus the curve, vertical load). Common practice (no source) for the sag definition;
+    # the sag values themselves are checked against the change-of-state reference above.
+    import pickle
+
+    rules = load_rule_set("na-transmission")
+    specs = resolve_conditions(rules, 100.0, 20.0)
+    states = project_conditions(section.model, {"phase": section.conductor}, specs, 2.0)
+    st = states[0]
+    assert list(st.curves) == list(st.recipes) == list(st.fractions)
+    full = st.materialized()
+    samples_bytes = 0
+    for c in st.recipes:
+        again = st.sample(c)
+        assert np.array_equal(st.curves[c], again[0])
+        assert np.array_equal(full.curves[c], st.curves[c])
+        assert np.array_equal(full.fractions[c], st.fractions[c])
+        samples_bytes += st.curves[c].nbytes + st.fractions[c].nbytes
+    assert len(pickle.dumps(st)) < 0.25 * samples_bytes
+    assert full._samples is not None and st._samples is None
+    curve, frac = st.curves["mot"], st.fractions["mot"]
+    a, b = curve[0], curve[-1]
+    chord = a[2] + frac * (b[2] - a[2])
+    assert float(np.max(chord - curve[:, 2])) == pytest.approx(st.sag_m["mot"], rel=2e-3)

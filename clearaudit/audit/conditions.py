@@ -29,7 +29,8 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -293,10 +294,17 @@ class WireState:
         The survey :class:`~clearaudit.physics.fit.CatenaryFit`.
     unit_weight_n_per_m
         Bare weight of one (sub-)conductor. [N/m]
+    recipes
+        Condition name -> how its curve is sampled: ``("fit", spacing_m)`` (the survey fit)
+        or ``("catenary", a, b, constant_m, load_direction, spacing_m)`` (see
+        :func:`catenary_curve`). The samples themselves are not kept: :attr:`curves` and
+        :attr:`fractions` evaluate the recipe on access (the same numbers every time), so a
+        line's states take kilobytes, not megabytes, and ship cheaply to Dask workers.
+        :meth:`materialized` gives a copy holding the samples, for repeated use.
     curves
-        Condition name -> sampled curve, shape (k, 3). [m, local]
+        Condition name -> sampled curve, shape (k, 3) (read-only mapping). [m, local]
     fractions
-        Condition name -> position of each sample along the span, 0..1. [-]
+        Condition name -> position of each sample along the span, 0..1 (read-only mapping). [-]
     sag_m, sag_ci95_m
         Condition name -> sag in the load plane and its 95 % half-width. [m]
     horizontal_tension_n, horizontal_tension_ci95_n
@@ -312,13 +320,44 @@ class WireState:
     bundle_count: int
     fit: Any
     unit_weight_n_per_m: float
-    curves: dict[str, np.ndarray] = field(default_factory=dict)
-    fractions: dict[str, np.ndarray] = field(default_factory=dict)
+    recipes: dict[str, tuple] = field(default_factory=dict)
     sag_m: dict[str, float] = field(default_factory=dict)
     sag_ci95_m: dict[str, float] = field(default_factory=dict)
     horizontal_tension_n: dict[str, float] = field(default_factory=dict)
     horizontal_tension_ci95_n: dict[str, float] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    _samples: dict[str, tuple[np.ndarray, np.ndarray]] | None = field(
+        default=None, init=False, repr=False, compare=False)
+
+    def sample(self, condition: str) -> tuple[np.ndarray, np.ndarray]:
+        """The curve of ``condition`` and the position of its samples along the span.
+
+        Returns
+        -------
+        curve, fraction : (k, 3) [m, local] and (k,) [-].
+        """
+        if self._samples is not None:
+            return self._samples[condition]
+        recipe = self.recipes[condition]
+        if recipe[0] == "fit":
+            return fit_curve(self.fit, recipe[1])
+        _, a, b, constant, load_direction, spacing = recipe
+        curve, fraction, _, _ = catenary_curve(a, b, constant, load_direction, spacing)
+        return curve, fraction
+
+    @property
+    def curves(self) -> _Samples:
+        return _Samples(self, 0)
+
+    @property
+    def fractions(self) -> _Samples:
+        return _Samples(self, 1)
+
+    def materialized(self) -> WireState:
+        """A shallow copy holding every condition's samples (evaluated once)."""
+        copy = replace(self)
+        copy._samples = {c: self.sample(c) for c in self.recipes}
+        return copy
 
     def position_ci95(self, condition: str, fraction: np.ndarray) -> np.ndarray:
         """95 % half-width of the curve's position at positions along the span.
@@ -343,6 +382,24 @@ class WireState:
         zb = _nan0(getattr(self.fit, "z_b_ci95_m", 0.0))
         return np.sqrt((4.0 * f * (1.0 - f) * sag_ci) ** 2 + ((1.0 - f) * za) ** 2
                        + (f * zb) ** 2)
+
+
+class _Samples(Mapping):
+    """Read-only condition -> samples view of a :class:`WireState` (curves or fractions)."""
+
+    __slots__ = ("_state", "_part")
+
+    def __init__(self, state: WireState, part: int):
+        self._state, self._part = state, part
+
+    def __getitem__(self, condition: str) -> np.ndarray:
+        return self._state.sample(condition)[self._part]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._state.recipes)
+
+    def __len__(self) -> int:
+        return len(self._state.recipes)
 
 
 def _nan0(x) -> float:
@@ -486,8 +543,7 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
     w = mech.weight_n_per_m
     state = WireState(span.id, wire.wire_id, wire.role, section_id,
                       int(getattr(wire, "bundle_count", 1) or 1), fit, w)
-    curve, frac = fit_curve(fit, spacing_m)
-    state.curves["survey"], state.fractions["survey"] = curve, frac
+    state.recipes["survey"] = ("fit", spacing_m)
     state.sag_m["survey"] = float(fit.sag_m)
     state.sag_ci95_m["survey"] = _nan0(fit.sag_ci95_m)
     h_own, h_own_ci = _fit_tension(fit, w)
@@ -537,9 +593,10 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
             if _is_suspension(model, span.to_structure):
                 b_c = b_c + shift
         constants = h_final / w_final
-        curve, frac, span_m, height_m = catenary_curve(a_c, b_c, float(constants[0]), g, spacing_m)
+        recipe = ("catenary", a_c, b_c, float(constants[0]), g, spacing_m)
+        _, _, span_m, height_m = catenary_curve(*recipe[1:])
         sags = catenary.sag(span_m, height_m, constants)
-        state.curves[name], state.fractions[name] = curve, frac
+        state.recipes[name] = recipe
         state.sag_m[name] = float(sags[0])
         state.sag_ci95_m[name] = float(math.hypot(0.5 * (sags[1] - sags[2]),
                                                   0.5 * (sags[3] - sags[4])))

@@ -385,11 +385,15 @@ def prepare_wire_states(model: Any, config: Any, conductors: dict[str, Any], rul
                                 creep_shift_c=opts.creep_shift_c, spacing_m=opts.spacing_m)
     for st in states:
         notes.extend(f"{st.span_id} {st.wire_id}: {n}" for n in st.notes)
-    all_samples = [c for st in states for c in st.curves.values()]
-    pad = _plan_samples(all_samples)[1] if all_samples else 0.0
-    boxes = np.array([[*np.min(np.concatenate(list(st.curves.values()))[:, :2], axis=0),
-                       *np.max(np.concatenate(list(st.curves.values()))[:, :2], axis=0)]
-                      for st in states]).reshape(-1, 4)
+    # the states keep recipes, not samples: evaluate one state at a time for the pad and
+    # the plan boxes (the driver's memory does not grow with the line's curves)
+    pad = 0.0
+    boxes = np.zeros((len(states), 4))
+    for k, st in enumerate(states):
+        plan_xy = [c[:, :2] for c in st.curves.values()]
+        pad = max([pad] + [_thin_curve(c)[1] for c in plan_xy])
+        stacked = np.concatenate(plan_xy)
+        boxes[k] = [*np.min(stacked, axis=0), *np.max(stacked, axis=0)]
     return WireStates(voltage_kv=voltage, altitude_m=altitude, altitude_note=altitude_note,
                       survey_temperature=survey_t, specs=specs, insulator_length_m=insulator,
                       states=states, notes=notes,
@@ -503,7 +507,8 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
     voltage, altitude = plan.voltage_kv, plan.altitude_m
     index = (np.arange(len(plan.states)) if state_indices is None
              else np.asarray(state_indices, dtype=np.int64))
-    states = plan.states
+    # the block's states with their samples evaluated once (the plan keeps recipes only)
+    states = {int(i): plan.states[int(i)].materialized() for i in index}
     out = BlockFindings()
     kinds = ("vegetation", "building", "ground", "wire")
     parts: dict[str, list[Findings]] = {k: [] for k in kinds}
@@ -1000,22 +1005,24 @@ def _ground_model_clearance(ground_model, curve: np.ndarray, box=None) -> float:
     return float(dz.min()) if dz.size else math.inf
 
 
+def _thin_curve(c: np.ndarray, step_m: float = 4.0) -> tuple[np.ndarray, float]:
+    """A curve's plan samples thinned to about ``step_m`` apart, and half the largest gap. [m]"""
+    if len(c) < 2:
+        return c[:, :2], 0.0
+    every = max(1, int(step_m / max(float(np.max(np.linalg.norm(np.diff(c[:, :2], axis=0),
+                                                                 axis=1))), 1e-6)))
+    idx = np.arange(0, len(c), every)
+    if idx[-1] != len(c) - 1:
+        idx = np.append(idx, len(c) - 1)
+    gaps = np.linalg.norm(np.diff(c[idx, :2], axis=0), axis=1)
+    return c[idx, :2], (0.5 * float(gaps.max()) if gaps.size else 0.0)
+
+
 def _plan_samples(curves: list[np.ndarray], step_m: float = 4.0) -> tuple[cKDTree, float]:
     """A plan k-d tree of the curves thinned to ``step_m``, and half the largest gap. [m]"""
-    thinned, pad = [], 0.0
-    for c in curves:
-        if len(c) < 2:
-            thinned.append(c[:, :2])
-            continue
-        every = max(1, int(step_m / max(float(np.max(np.linalg.norm(np.diff(c[:, :2], axis=0),
-                                                                     axis=1))), 1e-6)))
-        idx = np.arange(0, len(c), every)
-        if idx[-1] != len(c) - 1:
-            idx = np.append(idx, len(c) - 1)
-        gaps = np.linalg.norm(np.diff(c[idx, :2], axis=0), axis=1)
-        pad = max(pad, 0.5 * float(gaps.max()) if gaps.size else 0.0)
-        thinned.append(c[idx, :2])
-    return cKDTree(np.concatenate(thinned)), pad
+    thinned = [_thin_curve(c, step_m) for c in curves]
+    return (cKDTree(np.concatenate([t for t, _ in thinned])),
+            max((p for _, p in thinned), default=0.0))
 
 
 # ------------------------------------------------------------------------------ fast search
