@@ -43,6 +43,15 @@ class Engine:
     def finish(self) -> None:
         """The run will send no more tasks (an engine may then release its workers)."""
 
+    def share(self, value: Any) -> Any:
+        """A handle to pass ``value`` to many tasks (in a task's arguments, at any depth).
+
+        In this process the value itself. On Dask the value is sent to every worker once and
+        the tasks carry a reference: the line model and the wire states of a long line are
+        megabytes, and would otherwise be pickled again for every tile's task.
+        """
+        return value
+
     def map_batches(self, fn: Callable[[list], list], items: Sequence[Any],
                     batches_per_worker: int = 4) -> list[Any]:
         """``fn`` over ``items`` in batches (one task each); results in item order.
@@ -148,6 +157,7 @@ class DaskEngine(Engine):
         self.n_workers = len(client.scheduler_info().get("workers", {})) or 1
         self._on_done = on_done
         self._final_memory: dict[str, float] | None = None
+        self._shared: list[Any] = []
 
     def run(self, tasks: Sequence[Task]) -> Iterator[tuple[int, Any]]:
         from distributed import as_completed
@@ -166,9 +176,17 @@ class DaskEngine(Engine):
             for fut in futures:
                 fut.release()
 
+    def share(self, value: Any) -> Any:
+        [future] = self.client.scatter([value], broadcast=True, hash=False)
+        self._shared.append(future)
+        return future
+
     def finish(self) -> None:
         """No more tasks: keep the workers' memory figures and let the cluster go (a local
         cluster then shuts down while the driver writes the outputs)."""
+        for fut in self._shared:
+            fut.release()
+        self._shared.clear()
         if self._final_memory is None:
             self._final_memory = self.worker_peak_memory_mb()
         if self._on_done is not None:

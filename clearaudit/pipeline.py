@@ -477,11 +477,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         Grid,
         TileContext,
         TileResults,
-        audit_tile,
+        audit_shared,
         classify_tile,
         plan_parts,
         plan_tiles,
-        refine_tile,
+        refine_shared,
         release_free_memory,
         split_part,
         write_cell_offsets,
@@ -646,8 +646,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
                 changes: dict[str, int] = {}
                 counts = {}
-                for _, res in engine.run([(refine_tile, (str(work), t, tiles_by_cell, ctx,
-                                                         model.structures, model.spans), {})
+                # sent once per worker, not once per task (a long line's spans are megabytes)
+                shared = engine.share((tiles_by_cell, model.structures, model.spans))
+                for _, res in engine.run([(refine_shared, (str(work), t, shared, ctx), {})
                                           for t in tiles]):
                     for pair, n in res["changes"].items():
                         changes[pair] = changes.get(pair, 0) + n
@@ -669,8 +670,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 blocks: list[Any] = [None] * len(tiles)
                 done = 0
                 span_ends = SimpleNamespace(spans=model.spans)  # what the tiles need of the model
-                for k, res in engine.run([(audit_tile, (str(work), t, tiles_by_cell, plan,
-                                                        span_ends, rules, k << 32), {})
+                shared = engine.share((tiles_by_cell, plan, span_ends, rules))
+                for k, res in engine.run([(audit_shared, (str(work), t, shared, k << 32), {})
                                           for k, t in enumerate(tiles)]):
                     blocks[k] = res["block"]
                     done += res["n_owned"]

@@ -624,6 +624,20 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
 
 
+def refine_shared(work: str, tile: Any, shared: tuple, ctx: Any) -> dict:
+    """:func:`refine_tile` with the arguments every tile shares in one tuple
+    (``tiles_by_cell, structures, spans``; see :meth:`clearaudit.distributed.Engine.share`)."""
+    tiles_by_cell, structures, spans = shared
+    return refine_tile(work, tile, tiles_by_cell, ctx, structures, spans)
+
+
+def audit_shared(work: str, tile: Any, shared: tuple, label_base: int) -> dict:
+    """:func:`audit_tile` with the arguments every tile shares in one tuple
+    (``tiles_by_cell, plan, span_ends, rules``; see :meth:`clearaudit.distributed.Engine.share`)."""
+    tiles_by_cell, plan, span_ends, rules = shared
+    return audit_tile(work, tile, tiles_by_cell, plan, span_ends, rules, label_base)
+
+
 # =============================================================================== task C: audit
 def tile_states(plan: Any, tile: TileSpec) -> np.ndarray:
     """Indices of the wire states whose curves come near a tile (within the search distances
@@ -756,6 +770,6 @@ class TileResults:
 
 
 __all__ = ["Corridor", "Grid", "RECORD", "SplitPart", "TileContext", "TileResults", "TileSpec",
-           "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts", "plan_tiles",
-           "read_cells", "read_context", "refine_tile", "split_part", "tile_states",
-           "write_cell_offsets", "write_model_labels"]
+           "audit_shared", "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts",
+           "plan_tiles", "read_cells", "read_context", "refine_shared", "refine_tile",
+           "split_part", "tile_states", "write_cell_offsets", "write_model_labels"]

@@ -229,3 +229,32 @@ def test_local_cluster_started_in_background(monkeypatch):
         failed.client()
     with pytest.raises(ValueError):
         dist.LocalClusterStart(0)
+
+
+def _shared_identity(shared: tuple, k: int) -> tuple[int, int, float]:
+    import os
+    import sys
+
+    values, = shared
+    # keep every object a task received alive in the worker, so that two copies can never
+    # share an address
+    seen = sys.__dict__.setdefault("_clearaudit_test_shared", [])
+    seen.append(values)
+    return os.getpid(), id(values), float(values[k])
+
+
+def test_shared_values_go_to_each_worker_once():
+    # Engine.share: in this process the value itself; on Dask one copy per worker, which
+    # every task reads (the same object in a worker), instead of a copy pickled per task.
+    from clearaudit.distributed import InProcessEngine, engine_for
+
+    values = np.arange(200_000, dtype=np.float64)
+    assert InProcessEngine(2).share(values) is values
+    with engine_for(workers=2) as engine:
+        shared = engine.share((values,))
+        out = [r for _, r in engine.run([(_shared_identity, (shared, k), {})
+                                         for k in range(12)])]
+        engine.finish()
+    assert sorted(v for *_, v in out) == [float(k) for k in range(12)]
+    copies = {(pid, ident) for pid, ident, _ in out}
+    assert len(copies) == len({pid for pid, _, _ in out}) <= 2
