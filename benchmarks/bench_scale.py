@@ -238,6 +238,10 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
     if "serial" in modes and "dask" in modes:
         result["dask_speedup"] = result["serial"]["audit_s"] / result["dask"]["audit_s"]
         result["dask_identical"] = same_outputs(work / f"{label}-serial", work / f"{label}-dask")
+    if "tiled" in modes and "dask" in modes:
+        result["dask_vs_threads"] = result["tiled"]["audit_s"] / result["dask"]["audit_s"]
+        result["dask_threads_identical"] = same_outputs(work / f"{label}-tiled",
+                                                        work / f"{label}-dask")
     if "serial" in modes and "tiled" in modes:
         result["threads_speedup"] = result["serial"]["audit_s"] / result["tiled"]["audit_s"]
         result["threads_identical"] = same_outputs(work / f"{label}-serial",
@@ -276,6 +280,10 @@ def print_results(results: list[dict]) -> None:
         if "dask_speedup" in r:
             print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
                   f"in-process tiled on one thread; identical outputs: {r['dask_identical']}")
+        if "dask_vs_threads" in r:
+            print(f"dask 2 workers on {r['case']}: {r['dask_vs_threads']:.2f} x the speed of "
+                  f"in-process tiles on 2 threads, driver peak {r['dask']['peak_rss_mb']:.0f} "
+                  f"MB; identical outputs: {r['dask_threads_identical']}")
     # flat memory: the peaks of the tiled runs on the default threads, smallest to largest
     # survey (a one-tile case has no second tile in flight and is listed apart)
     tiled = sorted((r for r in results if r.get("tiled")), key=lambda r: r["points"])
@@ -313,7 +321,8 @@ def main(argv: list[str] | None = None) -> int:
                         "bounded-memory generator and audited tiled (e.g. 100e6)")
     p.add_argument("--dask", action="store_true",
                    help="also run the first --points case tiled on one thread and on a local "
-                        "2-worker Dask cluster (speed-ups over the one-thread run)")
+                        "2-worker Dask cluster (speed-ups over the one-thread run), and the "
+                        "longest --km line on the cluster (against 2 in-process threads)")
     p.add_argument("--tiled-only-above", type=float, default=20e6,
                    help="skip the in-memory run above this many points")
     p.add_argument("--tiny", action="store_true", help="a seconds-long smoke run")
@@ -346,7 +355,10 @@ def main(argv: list[str] | None = None) -> int:
                             tiles=2_000_000))
     for km in args.km:
         spans = max(2, round(km * 1000.0 / MEAN_SPAN_M))
-        results.append(case(cache, work, f"k{km:g}km", spans, 4.0, ["tiled"], None,
+        # with --dask the longest line also runs on the local cluster (the shared model and
+        # wire states of a long line, the workers' own reads)
+        modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km) else [])
+        results.append(case(cache, work, f"k{km:g}km", spans, 4.0, modes, None,
                             tiles=2_000_000))
     print_results(results)
     if args.json:

@@ -22,7 +22,8 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert "classify/decompress = " in out and "peak RSS per point = " in out
     # the Dask run and the threaded in-process run must reproduce the one-thread run exactly
     assert "in-process threads on tiny: speed-up " in out
-    assert out.count("identical outputs: True") == 2
+    assert out.count("identical outputs: True") == 3
+    assert "dask 2 workers on tiny: " in out and "the speed of in-process tiles" in out
     # the streamed case: generated as tiles (bounded-memory generator), audited tiled
     assert "generated tiny-stream-tiles: " in out and " 3 tiles, " in out
     assert "ratio tiny-stream tiled: audit/decompress = " in out
