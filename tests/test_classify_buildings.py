@@ -182,3 +182,43 @@ def test_building_set_into_the_slope():
     assert recall >= 0.70
     # a roof below the ground surface interpolated across it is not low noise
     assert not np.any((truth == 6) & (result.classification == 7))
+
+
+def test_low_plane_matches_the_plain_refit_loop():
+    # _low_plane stops once the kept cells no longer change (the next fits would be the
+    # same fit); reference: the loop with numpy.linalg.lstsq run all four passes.
+    from clearaudit.classify.objects import _low_plane
+
+    rng = np.random.default_rng(5)
+    for _ in range(40):
+        n = int(rng.integers(6, 120))
+        u, v = rng.uniform(0, 30, n), rng.uniform(0, 30, n)
+        z = 100 + 0.2 * u - 0.1 * v + rng.normal(0, 0.1, n)
+        bumps = rng.random(n) < 0.25
+        z[bumps] += rng.uniform(0.6, 8.0, int(bumps.sum()))
+        use = np.ones(n, bool)
+        ref = None
+        for _ in range(4):
+            if use.sum() < 6:
+                break
+            ref = np.linalg.lstsq(np.c_[np.ones(use.sum()), u[use], v[use]], z[use], rcond=None)[0]
+            use = z - (ref[0] + ref[1] * u + ref[2] * v) <= 0.5
+        got = _low_plane(u, v, z)
+        assert (got is None) == (ref is None)
+        if ref is not None:
+            assert np.array_equal(got, ref)
+
+
+def test_square_ring_by_one_maximum_filter_equals_repeated_dilation():
+    # The roof ring: four dilations by the 3 x 3 square equal one 9 x 9 maximum filter with
+    # a False border, on any mask in a rectangular window (reference: scipy.ndimage).
+    from scipy import ndimage
+
+    rng = np.random.default_rng(9)
+    near = np.ones((3, 3), bool)
+    for _ in range(30):
+        shape = tuple(int(k) for k in rng.integers(3, 40, 2))
+        mask = rng.random(shape) < rng.uniform(0.01, 0.3)
+        ref = ndimage.binary_dilation(mask, near, iterations=4)
+        got = ndimage.maximum_filter(mask, size=9, mode="constant", cval=False)
+        assert np.array_equal(ref, got)

@@ -740,12 +740,18 @@ def _low_plane(u: np.ndarray, v: np.ndarray, z: np.ndarray, passes: int = 4,
     """Plane through the lower cells of a ring: refit after dropping cells above it."""
     use = np.ones(len(z), bool)
     coef = None
+    design = np.empty((len(z), 3))  # the rows [1, u, v], built once (same values each pass)
+    design[:, 0] = 1.0
+    design[:, 1] = u
+    design[:, 2] = v
     for _ in range(passes):
         if use.sum() < 6:
             return coef
-        a = np.c_[np.ones(use.sum()), u[use], v[use]]
-        coef = np.linalg.lstsq(a, z[use], rcond=None)[0]
-        use = z - (coef[0] + coef[1] * u + coef[2] * v) <= keep_m
+        coef = np.linalg.lstsq(design[use], z[use], rcond=None)[0]
+        kept = z - (coef[0] + coef[1] * u + coef[2] * v) <= keep_m
+        if np.array_equal(kept, use):  # the next passes would fit the same cells again
+            return coef
+        use = kept
     return coef
 
 
@@ -896,9 +902,8 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
     i0, i1 = max(lk.lo_i[members].min() - pad, 0), min(lk.hi_i[members].max() + 1 + pad, shape[0])
     j0, j1 = max(lk.lo_j[members].min() - pad, 0), min(lk.hi_j[members].max() + 1 + pad, shape[1])
     win = lk.cid2[i0:i1, j0:j1]
-    wi, wj = np.mgrid[i0:i1, j0:j1]
     lab_w = lk.label_x[win]
-    on_plane = np.isin(lab_w, members)
+    on_plane = np.isin(lab_w, members) if joint else lab_w == members[0]
     near = np.ones((3, 3), bool)
     patch = on_plane
     if joint:
@@ -906,39 +911,53 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
         if patch.sum() * lk.cell**2 > t.max_area_m2:
             return None
     inner = ndimage.binary_dilation(patch, near)
-    outer = ndimage.binary_dilation(patch, near, iterations=t.ring_cells)
+    # ring_cells dilations by the 3 x 3 square are one dilation by the square of side
+    # 2 ring_cells + 1 (a separable maximum filter; the window is a rectangle, so no path
+    # between two of its cells needs to leave it: the same cells)
+    outer = ndimage.maximum_filter(patch, size=2 * t.ring_cells + 1, mode="constant", cval=False)
     ring = outer & ~inner
-    n_ring = int(ring.sum())
-    ring_low = lk.low_x[win[ring]]
+    ring_at = np.nonzero(ring)
+    n_ring = len(ring_at[0])
+    ring_low = lk.low_x[win[ring_at]]
     finite = np.isfinite(ring_low)
     # a patch at the edge of the data has no ring there: no evidence of step edges
     if finite.sum() < max(6, t.min_ring_share * n_ring):
         return None
-    coef = _low_plane(wi[ring][finite] + 0.5, wj[ring][finite] + 0.5, ring_low[finite])
+    # window cells' grid coordinates (i0 + row, j0 + column), taken where a mask is set
+    coef = _low_plane((ring_at[0][finite] + i0) + 0.5, (ring_at[1][finite] + j0) + 0.5,
+                      ring_low[finite])
     if coef is None:
         return None
 
     def base(mask: np.ndarray) -> np.ndarray:
-        return coef[0] + coef[1] * (wi[mask] + 0.5) + coef[2] * (wj[mask] + 0.5)
+        at_i, at_j = np.nonzero(mask)
+        return coef[0] + coef[1] * ((at_i + i0) + 0.5) + coef[2] * ((at_j + j0) + 0.5)
 
     height = lk.zc_x[win[on_plane]] - base(on_plane)
+    # the height test first: most candidates (ground between two creases) fail it, and
+    # then the boundary need not be looked at
+    if np.median(height) < t.min_height_m if not joint else \
+            np.percentile(height, 90) < t.min_height_m:
+        return None
     edge = patch & ~ndimage.binary_erosion(patch, near)
     edge_h = lk.zc_x[win[edge]] - base(edge)
     known = np.isfinite(edge_h)
-    step_share = np.mean(edge_h[known] >= t.min_step_m) if known.any() else 0.0
-    # downhill half of the boundary: where the ring surface lies below its value at the
-    # patch centroid
-    centre = base(patch).mean()
-    down = known & (base(edge) <= centre)
-    down_share = np.mean(edge_h[down] >= t.min_step_m) if down.any() else 0.0
     if not joint:
-        if np.median(height) < t.min_height_m or step_share < t.min_step_share:
+        step_share = np.mean(edge_h[known] >= t.min_step_m) if known.any() else 0.0
+        if step_share < t.min_step_share:
             return None
-    elif np.percentile(height, 90) < t.min_height_m or down_share < t.min_step_share:
-        return None
+    else:
+        # downhill half of the boundary: where the ring surface lies below its value at the
+        # patch centroid
+        centre = base(patch).mean()
+        down = known & (base(edge) <= centre)
+        down_share = np.mean(edge_h[down] >= t.min_step_m) if down.any() else 0.0
+        if down_share < t.min_step_share:
+            return None
     # grow each roof plane over the coplanar planar cells joined to it
     surface = on_plane.copy()
     planar_w = lab_w >= 0
+    wi, wj = np.mgrid[i0:i1, j0:j1]
     cu, cv = wi + 0.5, wj + 0.5
     for lab in members:  # one iteration per roof plane
         p = lk.plane[lab]
