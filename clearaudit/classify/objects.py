@@ -150,15 +150,18 @@ def _erode_cells(cells: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
 def _cell_components(cells: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     """8-connected component label (0 … c-1) of every cell of the sorted flat set ``cells``."""
     m = len(cells)
-    pos = np.full(shape[0] * shape[1], -1, np.int64)
-    pos[cells] = np.arange(m)
+    if m == 0:
+        return np.zeros(0, np.int32)
     ci, cj = np.divmod(cells, shape[1])
     rows, cols = [np.arange(m)], [np.arange(m)]
     for di, dj in ((0, 1), (1, -1), (1, 0), (1, 1)):
         i, j = ci + di, cj + dj
         ok = np.flatnonzero((i < shape[0]) & (j >= 0) & (j < shape[1]))
-        other = pos[i[ok] * shape[1] + j[ok]]
-        hit = other >= 0
+        # the neighbour's position in the sorted set by binary search (no lookup array over
+        # the whole grid, which spans the bounding box of a bent corridor)
+        target = i[ok] * shape[1] + j[ok]
+        other = np.minimum(np.searchsorted(cells, target), m - 1)
+        hit = cells[other] == target
         rows.append(ok[hit])
         cols.append(other[hit])
     r, c = np.concatenate(rows), np.concatenate(cols)
