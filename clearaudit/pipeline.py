@@ -643,6 +643,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     other[model_local[k]] = other_of[mine]
                     write_model_labels(work, t, wire, other)
                 del model_local, wire_labels, other_of
+                release_free_memory()  # the model build's freed pages, before the refine tasks
                 tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
                 changes: dict[str, int] = {}
                 counts = {}
