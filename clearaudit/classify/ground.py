@@ -373,8 +373,25 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     loc = frame.locate(xyz[idx, :2]) if location is None else location.subset(idx)
     z = xyz[idx, 2].astype(np.float32)  # float32: rounding < 0.1 mm below 1 km local height
     z64 = z.astype(np.float64)  # the same values as the float64 weights of the cell sums
-    flat = loc.flat
-    model = inpaint(cell_min(flat, z64, frame.size).reshape(frame.shape), max_cells)
+    # the cells holding ground points and each point's position among them: the cell sums
+    # below run over these cells only, not over the grid of the bounding box (for a long or
+    # bent corridor several times as many cells, mostly empty); then scattered into the grid
+    occupied = np.zeros(frame.size, bool)
+    occupied[loc.flat] = True
+    cells = np.flatnonzero(occupied)
+    del occupied
+    m = len(cells)
+    position = np.empty(frame.size, np.int32 if m < 2**31 - 1 else np.intp)
+    position[cells] = np.arange(m, dtype=position.dtype)
+    k = position[loc.flat].astype(np.intp)  # np.bincount counts intp indices
+    del position
+
+    def on_grid(per_cell: np.ndarray) -> np.ndarray:
+        grid = np.full(frame.size, np.nan)
+        grid[cells] = per_cell
+        return grid.reshape(frame.shape)
+
+    model = inpaint(on_grid(cell_min(k, z64, m)), max_cells)
     window = 0.5 * max_threshold_m
     sigma = window
     slope = np.zeros(1, np.float32)
@@ -385,10 +402,10 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     plan: InpaintPlan | None = None
     for _ in range(iterations):
         inside = np.abs(resid) <= window + slope_scaler * slope
-        # points outside the window count in one extra cell past the grid (no compaction
-        # of the points; each cell sums its points in the same order)
-        mean, _ = cell_mean(np.where(inside, flat, np.intp(frame.size)), z64, frame.size + 1)
-        mean = mean[:frame.size].reshape(frame.shape)
+        # points outside the window count in one extra cell past the occupied ones (no
+        # compaction of the points; each cell sums its points in the same order)
+        mean, _ = cell_mean(np.where(inside, k, np.intp(m)), z64, m + 1)
+        mean = on_grid(mean[:m])
         unknown = np.isnan(mean)
         if plan is None or not plan.matches(unknown, max_cells):
             plan = InpaintPlan(unknown, max_cells)
