@@ -282,7 +282,7 @@ def print_results(results: list[dict]) -> None:
                   f"in-process tiled on one thread; identical outputs: {r['dask_identical']}")
         if "dask_vs_threads" in r:
             print(f"dask 2 workers on {r['case']}: {r['dask_vs_threads']:.2f} x the speed of "
-                  f"in-process tiles on 2 threads, driver peak {r['dask']['peak_rss_mb']:.0f} "
+                  f"in-process tiles (one thread per core), driver peak {r['dask']['peak_rss_mb']:.0f} "
                   f"MB; identical outputs: {r['dask_threads_identical']}")
     # flat memory: the peaks of the tiled runs on the default threads, smallest to largest
     # survey (a one-tile case has no second tile in flight and is listed apart)
@@ -353,11 +353,12 @@ def main(argv: list[str] | None = None) -> int:
         spans = max(2, round(pts / points_per_span(density)))
         results.append(case(cache, work, f"s{pts / 1e6:g}M", spans, density, ["tiled"], None,
                             tiles=2_000_000))
-    for km in args.km:
+    for k, km in enumerate(args.km):
         spans = max(2, round(km * 1000.0 / MEAN_SPAN_M))
         # with --dask the longest line also runs on the local cluster (the shared model and
         # wire states of a long line, the workers' own reads)
-        modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km) else [])
+        modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km)
+                             and km not in args.km[:k] else [])
         results.append(case(cache, work, f"k{km:g}km", spans, 4.0, modes, None,
                             tiles=2_000_000))
     print_results(results)

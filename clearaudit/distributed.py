@@ -6,9 +6,11 @@ a pool of threads (one task per thread, as many threads as cores unless ``--thre
 otherwise; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share the cores);
 :class:`DaskEngine` submits them to a ``distributed.Client``:
 ``--workers N`` starts ``distributed.LocalCluster(n_workers=N, threads_per_worker=1)``,
-``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs and
-small summaries travel through the scheduler; workers read their own tiles from the work
-folder (which must be on storage every worker can reach).
+``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs,
+small summaries and the values every task of a stage shares (:meth:`Engine.share`: the line
+model's structures and spans, the wire-state recipes; sent to each worker once) travel
+through the scheduler; workers read their own tiles from the work folder (which must be on
+storage every worker can reach).
 """
 from __future__ import annotations
 
@@ -44,13 +46,17 @@ class Engine:
         """The run will send no more tasks (an engine may then release its workers)."""
 
     def share(self, value: Any) -> Any:
-        """A handle to pass ``value`` to many tasks (in a task's arguments, at any depth).
+        """A handle to pass ``value`` to many tasks, as a task argument (possibly inside
+        lists, tuples or dicts of the arguments; not inside other objects).
 
         In this process the value itself. On Dask the value is sent to every worker once and
         the tasks carry a reference: the line model and the wire states of a long line are
         megabytes, and would otherwise be pickled again for every tile's task.
         """
         return value
+
+    def release(self, handle: Any) -> None:
+        """The tasks that needed a :meth:`share` handle have run: let the workers drop it."""
 
     def map_batches(self, fn: Callable[[list], list], items: Sequence[Any],
                     batches_per_worker: int = 4) -> list[Any]:
@@ -177,9 +183,18 @@ class DaskEngine(Engine):
                 fut.release()
 
     def share(self, value: Any) -> Any:
+        if self._final_memory is not None:
+            raise RuntimeError("the Dask engine was finished; nothing more can be shared")
         [future] = self.client.scatter([value], broadcast=True, hash=False)
         self._shared.append(future)
         return future
+
+    def release(self, handle: Any) -> None:
+        for k, fut in enumerate(self._shared):
+            if fut is handle:
+                del self._shared[k]
+                fut.release()
+                return
 
     def finish(self) -> None:
         """No more tasks: keep the workers' memory figures and let the cluster go (a local

@@ -655,6 +655,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         changes[pair] = changes.get(pair, 0) + n
                     for c, n in res["counts"].items():
                         counts[c] = counts.get(c, 0) + n
+                engine.release(shared)
                 release_free_memory()  # the refine tasks' freed pages, before the audit
                 record.extra["classification"]["refine_with_model"] = dict(sorted(changes.items()))
                 record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}

@@ -218,6 +218,10 @@ def test_states_keep_recipes_not_samples(section):
         samples_bytes += st.curves[c].nbytes + st.fractions[c].nbytes
     assert len(pickle.dumps(st)) < 0.25 * samples_bytes
     assert full._samples is not None and st._samples is None
+    assert not st.curves["mot"].flags.writeable and not full.fractions["mot"].flags.writeable
+    probe = project_conditions(section.model, {"phase": section.conductor}, specs, 2.0)[0]
+    probe.sample = None  # membership must not evaluate a curve
+    assert "mot" in probe.curves and "nothing" not in probe.fractions
     curve, frac = st.curves["mot"], st.fractions["mot"]
     a, b = curve[0], curve[-1]
     chord = a[2] + frac * (b[2] - a[2])

@@ -190,23 +190,42 @@ def test_low_plane_matches_the_plain_refit_loop():
     from clearaudit.classify.objects import _low_plane
 
     rng = np.random.default_rng(5)
-    for _ in range(40):
-        n = int(rng.integers(6, 120))
+    cases = []
+    for trial in range(80):
+        # half of the rings small and heavily contaminated: the refit can run out of cells
+        # (fewer than 6 kept) or still be changing after the fourth pass
+        n = int(rng.integers(6, 11)) if trial % 2 else int(rng.integers(6, 120))
+        share = 0.6 if trial % 2 else 0.25
         u, v = rng.uniform(0, 30, n), rng.uniform(0, 30, n)
         z = 100 + 0.2 * u - 0.1 * v + rng.normal(0, 0.1, n)
-        bumps = rng.random(n) < 0.25
+        bumps = rng.random(n) < share
         z[bumps] += rng.uniform(0.6, 8.0, int(bumps.sum()))
+        cases.append((u, v, z))
+    # a trough: each refit drops the highest cells left at both ends, so the kept cells
+    # change at every pass (no early exit; all four passes run)
+    u = np.repeat(np.arange(40.0), 2)
+    v = np.tile([0.0, 1.0], 40)
+    cases.append((u, v, 100.0 + 0.1 * (u - 20.0) ** 2))
+    paths = {"too few": 0, "no repeat": 0}
+    for u, v, z in cases:
+        n = len(z)
         use = np.ones(n, bool)
         ref = None
+        changed = 0
         for _ in range(4):
             if use.sum() < 6:
+                paths["too few"] += 1
                 break
             ref = np.linalg.lstsq(np.c_[np.ones(use.sum()), u[use], v[use]], z[use], rcond=None)[0]
-            use = z - (ref[0] + ref[1] * u + ref[2] * v) <= 0.5
+            kept = z - (ref[0] + ref[1] * u + ref[2] * v) <= 0.5
+            changed += not np.array_equal(kept, use)
+            use = kept
+        paths["no repeat"] += changed == 4
         got = _low_plane(u, v, z)
         assert (got is None) == (ref is None)
         if ref is not None:
             assert np.array_equal(got, ref)
+    assert paths["too few"] > 0 and paths["no repeat"] > 0  # both rare paths were run
 
 
 def test_square_ring_by_one_maximum_filter_equals_repeated_dilation():

@@ -7,6 +7,7 @@ functions, which must give identical outputs.
 from __future__ import annotations
 
 import csv
+import time
 from pathlib import Path
 
 import laspy
@@ -254,7 +255,18 @@ def test_shared_values_go_to_each_worker_once():
         shared = engine.share((values,))
         out = [r for _, r in engine.run([(_shared_identity, (shared, k), {})
                                          for k in range(12)])]
+        # released: the workers drop it (the scheduler forgets the key)
+        key = shared.key
+        engine.release(shared)
+        del shared
+        for _ in range(100):
+            if not any(key in keys for keys in engine.client.has_what().values()):
+                break
+            time.sleep(0.05)
+        assert not any(key in keys for keys in engine.client.has_what().values())
         engine.finish()
+        with pytest.raises(RuntimeError):
+            engine.share(values)
     assert sorted(v for *_, v in out) == [float(k) for k in range(12)]
     copies = {(pid, ident) for pid, ident, _ in out}
     assert len(copies) == len({pid for pid, _, _ in out}) <= 2

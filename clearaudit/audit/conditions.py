@@ -340,9 +340,13 @@ class WireState:
             return self._samples[condition]
         recipe = self.recipes[condition]
         if recipe[0] == "fit":
-            return fit_curve(self.fit, recipe[1])
-        _, a, b, constant, load_direction, spacing = recipe
-        curve, fraction, _, _ = catenary_curve(a, b, constant, load_direction, spacing)
+            curve, fraction = fit_curve(self.fit, recipe[1])
+        else:
+            _, a, b, constant, load_direction, spacing = recipe
+            curve, fraction, _, _ = catenary_curve(a, b, constant, load_direction, spacing)
+        # read-only: an edit would stick on a materialized copy and vanish on a lazy state
+        curve.flags.writeable = False
+        fraction.flags.writeable = False
         return curve, fraction
 
     @property
@@ -354,7 +358,11 @@ class WireState:
         return _Samples(self, 1)
 
     def materialized(self) -> WireState:
-        """A shallow copy holding every condition's samples (evaluated once)."""
+        """A shallow copy holding every condition's samples (evaluated once).
+
+        The copy shares ``fit`` and ``recipes`` with this state; both are fixed once the
+        conditions are projected (the samples depend on nothing else).
+        """
         copy = replace(self)
         copy._samples = {c: self.sample(c) for c in self.recipes}
         return copy
@@ -400,6 +408,9 @@ class _Samples(Mapping):
 
     def __len__(self) -> int:
         return len(self._state.recipes)
+
+    def __contains__(self, condition: object) -> bool:  # without evaluating the curve
+        return condition in self._state.recipes
 
 
 def _nan0(x) -> float:

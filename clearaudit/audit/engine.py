@@ -1517,8 +1517,9 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
     for k, st in enumerate(states):
         for c in ("survey", "mot"):
             if c in st.curves:
-                curves.append(st.curves[c])
-                owner.append(np.full(len(st.curves[c]), k))
+                curve = st.curves[c]  # evaluated once (the states keep recipes)
+                curves.append(curve)
+                owner.append(np.full(len(curve), k))
     wires = np.concatenate(curves)
     owner = np.concatenate(owner)
     dist, nearest = cKDTree(wires).query(tops.base_xyz)
@@ -1542,13 +1543,13 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
         return
     cells = np.flatnonzero(np.isin(tops.cell_tree, only))
     cell_xyz = tops.cell_xyz[cells]
-    best_d, which, param = nearest_curve(cell_xyz, [states[k].curves["survey"] for k in targets])
+    survey = [states[k].sample("survey") for k in targets]  # (curve, fractions), once each
+    best_d, which, param = nearest_curve(cell_xyz, [curve for curve, _ in survey])
     best_state = np.asarray(targets)[which]
     best_frac = np.zeros(len(cells))
-    for j, k in enumerate(targets):
+    for j, (curve, fractions) in enumerate(survey):
         mine = which == j
-        best_frac[mine] = np.interp(param[mine], np.arange(len(states[k].curves["survey"])),
-                                    states[k].fractions["survey"])
+        best_frac[mine] = np.interp(param[mine], np.arange(len(curve)), fractions)
     tree_of_cell = tops.cell_tree[cells]
     order = np.lexsort((best_d, tree_of_cell))
     first = np.ones(len(order), dtype=bool)

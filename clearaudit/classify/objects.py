@@ -939,8 +939,8 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
     height = lk.zc_x[win[on_plane]] - base(on_plane)
     # the height test first: most candidates (ground between two creases) fail it, and
     # then the boundary need not be looked at
-    if np.median(height) < t.min_height_m if not joint else \
-            np.percentile(height, 90) < t.min_height_m:
+    typical = np.percentile(height, 90) if joint else np.median(height)
+    if typical < t.min_height_m:
         return None
     edge = patch & ~ndimage.binary_erosion(patch, near)
     edge_h = lk.zc_x[win[edge]] - base(edge)
