@@ -806,15 +806,19 @@ def _gable_groups(cand_cells: np.ndarray, lab_c: np.ndarray, ci: np.ndarray, cj:
     """
     n_lab = len(plane)
     src_parts, dst_parts = [], []
+    # per occupied cell its patch label where that patch has a plane, else -1 (one lookup
+    # per neighbour instead of a label and then its plane); the cells' rows and columns once
+    with_plane = np.append(np.isfinite(plane[:, 3]), False)  # label -1 → the last entry
+    label_p = np.where(with_plane[label_x], label_x, -1)
+    cci, ccj = ci[cand_cells], cj[cand_cells]
     for di, dj in _square(reach):  # a loop over the (2·reach + 1)² offsets, not over cells
         if di == 0 and dj == 0:
             continue
-        i, j = ci[cand_cells] + di, cj[cand_cells] + dj
+        i, j = cci + di, ccj + dj
         inside = (i >= 0) & (i < shape[0]) & (j >= 0) & (j < shape[1])
         other = np.full(len(cand_cells), -1, np.int64)
-        other[inside] = label_x[cid[i[inside] * shape[1] + j[inside]]]
+        other[inside] = label_p[cid[i[inside] * shape[1] + j[inside]]]
         ok = (other >= 0) & (other != lab_c)
-        ok[ok] = np.isfinite(plane[other[ok], 3])
         src_parts.append(np.flatnonzero(ok))
         dst_parts.append(other[ok])
     src = np.concatenate(src_parts)
