@@ -238,18 +238,26 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     isolated = isolated_points(xyz, opts.noise_voxel_m, opts.noise_min_neighbours)
     use = ~isolated
     flat = location.flat
-    zmin: np.ndarray | None = None  # minimum surface of the ``use`` points, when up to date
+    # minimum surface of the ``use`` points; excluded points count as +inf: cells with only
+    # excluded points stay empty (NaN)
+    zmin = cell_min(flat, np.where(use, z, np.inf), frame.size).reshape(frame.shape)
     for _ in range(2):
-        # excluded points count as +inf: cells with only excluded points stay empty (NaN)
-        zmin = cell_min(flat, np.where(use, z, np.inf), frame.size).reshape(frame.shape)
         pits, lowest = pit_cells(zmin, opts.noise_low_depth_m)
         if not pits.any():
             break
         pit_points = np.flatnonzero(pits.ravel()[flat])
         in_pit = z[pit_points] < lowest.ravel()[flat[pit_points]] - opts.noise_low_depth_m
         use[pit_points[in_pit]] = False
-        zmin = None
-        del pit_points, in_pit
+        # only the pit cells' minima can change (no other point changed): they are taken
+        # again from their own points, the same values as a pass over every point
+        pit_cells_flat = np.flatnonzero(pits.ravel())
+        surface = zmin.reshape(-1)
+        surface[pit_cells_flat] = np.inf
+        still = pit_points[use[pit_points]]
+        np.minimum.at(surface, flat[still], z[still])
+        gone = pit_cells_flat[np.isinf(surface[pit_cells_flat])]
+        surface[gone] = np.nan
+        del pit_points, in_pit, still, pit_cells_flat, gone
     del flat, pits, lowest
     t = step("noise_candidates", 0.1, t)
 
