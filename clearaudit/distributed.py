@@ -7,8 +7,9 @@ otherwise; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share
 :class:`DaskEngine` submits them to a ``distributed.Client``:
 ``--workers N`` starts ``distributed.LocalCluster(n_workers=N, threads_per_worker=1)``,
 ``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs,
-small summaries and the values every task of a stage shares (:meth:`Engine.share`: the line
-model's structures and spans, the wire-state recipes; sent to each worker once) travel
+small summaries and the values every tile task shares (:meth:`Engine.share`: the tile
+owners, the line model's structures and spans, the wire-state recipes; sent to each worker
+once) travel
 through the scheduler; workers read their own tiles from the work folder (which must be on
 storage every worker can reach).
 """

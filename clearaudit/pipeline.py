@@ -477,11 +477,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         Grid,
         TileContext,
         TileResults,
-        audit_shared,
+        audit_tile,
         classify_tile,
         plan_parts,
         plan_tiles,
-        refine_shared,
+        refine_tile,
         release_free_memory,
         split_part,
         write_cell_offsets,
@@ -644,18 +644,19 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     write_model_labels(work, t, wire, other)
                 del model_local, wire_labels, other_of
                 release_free_memory()  # the model build's freed pages, before the refine tasks
-                tiles_by_cell = {c: t.id for t in tiles for c in t.cells}
+                # what every refine and audit task needs: sent once per worker for both
+                # stages, not pickled into every task (a long line's spans are megabytes)
+                by_cell = engine.share({c: t.id for t in tiles for c in t.cells})
+                line = engine.share(SimpleNamespace(structures=model.structures,
+                                                    spans=model.spans))
                 changes: dict[str, int] = {}
                 counts = {}
-                # sent once per worker, not once per task (a long line's spans are megabytes)
-                shared = engine.share((tiles_by_cell, model.structures, model.spans))
-                for _, res in engine.run([(refine_shared, (str(work), t, shared, ctx), {})
+                for _, res in engine.run([(refine_tile, (str(work), t, by_cell, ctx, line), {})
                                           for t in tiles]):
                     for pair, n in res["changes"].items():
                         changes[pair] = changes.get(pair, 0) + n
                     for c, n in res["counts"].items():
                         counts[c] = counts.get(c, 0) + n
-                engine.release(shared)
                 release_free_memory()  # the refine tasks' freed pages, before the audit
                 record.extra["classification"]["refine_with_model"] = dict(sorted(changes.items()))
                 record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}
@@ -671,13 +672,15 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # a building footprint id is unique across tiles: tile number * 2**32 + its id
                 blocks: list[Any] = [None] * len(tiles)
                 done = 0
-                span_ends = SimpleNamespace(spans=model.spans)  # what the tiles need of the model
-                shared = engine.share((tiles_by_cell, plan, span_ends, rules))
-                for k, res in engine.run([(audit_shared, (str(work), t, shared, k << 32), {})
+                states = engine.share(plan)
+                for k, res in engine.run([(audit_tile, (str(work), t, by_cell, states, line,
+                                                        rules, k << 32), {})
                                           for k, t in enumerate(tiles)]):
                     blocks[k] = res["block"]
                     done += res["n_owned"]
                     progress(done, kept)
+                for handle in (by_cell, line, states):
+                    engine.release(handle)
                 # the last tasks have run: a local cluster shuts down while the driver
                 # merges and writes
                 engine.finish()

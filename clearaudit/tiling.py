@@ -574,7 +574,7 @@ class _ViewModel:
 
 
 def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
-                ctx: TileContext, structures: list, spans: list) -> dict[str, Any]:
+                ctx: TileContext, line: Any) -> dict[str, Any]:
     """Correct a tile's classes with the line model (:func:`clearaudit.classify.refine_with_model`).
 
     The tile's owned points and their context (the classes of the classify stage, so the result
@@ -591,8 +591,9 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
         Owner tile id of every occupied cell.
     ctx
         Origin, CRS and units.
-    structures, spans
-        ``LineModel.structures`` and ``LineModel.spans``.
+    line
+        What the tiles need of the line model: ``structures`` and ``spans``
+        (``LineModel.structures`` and ``LineModel.spans``).
 
     Returns
     -------
@@ -609,7 +610,7 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
     before = result.classification[:n_own].copy()
     if len(rec):
         refine_with_model(_cloud(ctx, rec["xyz"], result.classification), result,
-                          _ViewModel(structures, spans, arrays["wire"]))
+                          _ViewModel(line.structures, line.spans, arrays["wire"]))
     cls = result.classification[:n_own]
     np.save(_tile_file(work, tile.id, "rcls.npy"), cls)
     changed = np.flatnonzero(cls != before)
@@ -622,20 +623,6 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
     return {"tile": tile.id, "n_owned": n_own, "changes": changes,
             "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
-
-
-def refine_shared(work: str, tile: Any, shared: tuple, ctx: Any) -> dict:
-    """:func:`refine_tile` with the arguments every tile shares in one tuple
-    (``tiles_by_cell, structures, spans``; see :meth:`clearaudit.distributed.Engine.share`)."""
-    tiles_by_cell, structures, spans = shared
-    return refine_tile(work, tile, tiles_by_cell, ctx, structures, spans)
-
-
-def audit_shared(work: str, tile: Any, shared: tuple, label_base: int) -> dict:
-    """:func:`audit_tile` with the arguments every tile shares in one tuple
-    (``tiles_by_cell, plan, span_ends, rules``; see :meth:`clearaudit.distributed.Engine.share`)."""
-    tiles_by_cell, plan, span_ends, rules = shared
-    return audit_tile(work, tile, tiles_by_cell, plan, span_ends, rules, label_base)
 
 
 # =============================================================================== task C: audit
@@ -770,6 +757,6 @@ class TileResults:
 
 
 __all__ = ["Corridor", "Grid", "RECORD", "SplitPart", "TileContext", "TileResults", "TileSpec",
-           "audit_shared", "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts",
-           "plan_tiles", "read_cells", "read_context", "refine_shared", "refine_tile",
-           "split_part", "tile_states", "write_cell_offsets", "write_model_labels"]
+           "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts", "plan_tiles",
+           "read_cells", "read_context", "refine_tile", "split_part", "tile_states",
+           "write_cell_offsets", "write_model_labels"]

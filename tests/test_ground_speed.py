@@ -242,3 +242,20 @@ def test_slope_ratio_on_grids_smaller_than_the_window(shape, max_radius):
         previous = current
     np.testing.assert_array_equal(opened, previous)
     np.testing.assert_array_equal(ratio, expected)
+
+
+def test_occupied_cells_match_numpy_unique():
+    # The occupancy-map compaction gives the cells and inverse of numpy.unique, and the
+    # lookup array maps every occupied cell to its position (-1 elsewhere).
+    from clearaudit.classify.grid import occupied_cells
+
+    rng = np.random.default_rng(12)
+    for size in (1, 50, 10_000):
+        flat = rng.integers(0, size, int(rng.integers(1, 5000)))
+        cells, k, lookup = occupied_cells(flat, size, lookup=True)
+        ref_cells, ref_k = np.unique(flat, return_inverse=True)
+        assert np.array_equal(cells, ref_cells) and np.array_equal(k, ref_k)
+        assert k.dtype == np.intp
+        assert np.array_equal(lookup[cells], np.arange(len(cells)))
+        assert np.all(lookup[np.setdiff1d(np.arange(size), cells)] == -1)
+        assert occupied_cells(flat, size)[2] is None

@@ -412,6 +412,40 @@ def _square_filter(op: np.ufunc, source: np.ndarray, out: np.ndarray, lo: int, h
     _window_extreme(op, padded, width, 1, out=out[lo:hi])
 
 
+def occupied_cells(flat: np.ndarray, size: int, *, lookup: bool = False
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """The cells holding points, for per-cell work on those cells only.
+
+    A grid over a corridor's bounding box is mostly empty; a one-byte occupancy map finds
+    the occupied cells without sorting the points.
+
+    Parameters
+    ----------
+    flat
+        Flat cell index of every point.
+    size
+        Cells in the grid.
+    lookup
+        Also return the grid-sized array of positions (-1 where a cell is empty).
+
+    Returns
+    -------
+    cells, k, position
+        Sorted flat indices of the occupied cells; each point's position in ``cells``
+        (intp, what ``np.bincount`` counts without a cast); the lookup array or None.
+    """
+    occupied = np.zeros(size, bool)
+    occupied[flat] = True
+    cells = np.flatnonzero(occupied)
+    del occupied
+    m = len(cells)
+    dtype = np.int32 if m < 2**31 - 1 else np.intp
+    position = np.full(size, -1, dtype) if lookup else np.empty(size, dtype)
+    position[cells] = np.arange(m, dtype=dtype)
+    k = position[flat].astype(np.intp)
+    return cells, k, (position if lookup else None)
+
+
 def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
     """Minimum of ``values`` per flat cell index; NaN where a cell is empty."""
     out = np.full(size, np.inf)

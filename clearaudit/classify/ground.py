@@ -32,6 +32,7 @@ from .grid import (
     cell_mean,
     cell_min,
     inpaint,
+    occupied_cells,
 )
 
 
@@ -376,16 +377,8 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     # the cells holding ground points and each point's position among them: the cell sums
     # below run over these cells only, not over the grid of the bounding box (for a long or
     # bent corridor several times as many cells, mostly empty); then scattered into the grid
-    flat = loc.flat
-    occupied = np.zeros(frame.size, bool)
-    occupied[flat] = True
-    cells = np.flatnonzero(occupied)
-    del occupied
+    cells, k, _ = occupied_cells(loc.flat, frame.size)
     m = len(cells)
-    position = np.empty(frame.size, np.int32 if m < 2**31 - 1 else np.intp)
-    position[cells] = np.arange(m, dtype=position.dtype)
-    k = position[flat]  # each point's occupied cell (4 bytes a point below 2**31 cells)
-    del position, flat
 
     def on_grid(per_cell: np.ndarray) -> np.ndarray:
         grid = np.full(frame.size, np.nan)

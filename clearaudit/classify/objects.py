@@ -45,7 +45,7 @@ from ..cloud import (
     WIRE_GUARD,
 )
 from .features import EigenFeatures
-from .grid import GridFrame, cell_max, cell_min
+from .grid import GridFrame, cell_max, cell_min, occupied_cells
 from .options import ClassifyOptions
 
 
@@ -189,15 +189,8 @@ def _column_stats(flat: np.ndarray, hag: np.ndarray, size: int
     position in ``cells``) and per occupied cell the highest and lowest HAG [m], the share of
     occupied 1 m slices between them and the point count.
     """
-    occupied_cell = np.zeros(size, bool)
-    occupied_cell[flat] = True
-    cells = np.flatnonzero(occupied_cell)
-    del occupied_cell
+    cells, k, _ = occupied_cells(flat, size)
     m = len(cells)
-    position = np.empty(size, np.int32 if m < 2**31 else np.intp)
-    position[cells] = np.arange(m)
-    k = position[flat].astype(np.intp)
-    del position
     top = cell_max(k, hag, m)
     bottom = cell_min(k, hag, m)
     count = np.bincount(k, minlength=m)
@@ -947,7 +940,8 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
     if typical < t.min_height_m:
         return None
     edge = patch & ~ndimage.binary_erosion(patch, near)
-    edge_h = lk.zc_x[win[edge]] - base(edge)
+    edge_base = base(edge)
+    edge_h = lk.zc_x[win[edge]] - edge_base
     known = np.isfinite(edge_h)
     if not joint:
         step_share = np.mean(edge_h[known] >= t.min_step_m) if known.any() else 0.0
@@ -957,7 +951,7 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
         # downhill half of the boundary: where the ring surface lies below its value at the
         # patch centroid
         centre = base(patch).mean()
-        down = known & (base(edge) <= centre)
+        down = known & (edge_base <= centre)
         down_share = np.mean(edge_h[down] >= t.min_step_m) if down.any() else 0.0
         if down_share < t.min_step_share:
             return None
@@ -1115,17 +1109,9 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     flat += np.clip(np.floor(fi, out=fi).astype(itype), 0, shape[1] - 1)
     del fi
     # occupied cells only: the grid spans the survey's bounding box, which for a long or bent
-    # corridor is many times the area holding points
-    # (a one-byte occupancy map, then counts per occupied cell: no 8-byte count per cell of
-    # the whole box)
-    occupied = np.zeros(grid.size, bool)
-    occupied[flat] = True
-    cells = np.flatnonzero(occupied)
-    del occupied
+    # corridor is many times the area holding points (``cid``: grid → occupied cell, -1 empty)
+    cells, k, cid = occupied_cells(flat, grid.size, lookup=True)
     m = len(cells)
-    cid = np.full(grid.size, -1, np.int32)
-    cid[cells] = np.arange(m, dtype=np.int32)
-    k = cid[flat].astype(np.intp)  # np.bincount counts intp indices (no cast per call)
     del flat
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
