@@ -353,12 +353,11 @@ def main(argv: list[str] | None = None) -> int:
         spans = max(2, round(pts / points_per_span(density)))
         results.append(case(cache, work, f"s{pts / 1e6:g}M", spans, density, ["tiled"], None,
                             tiles=2_000_000))
-    for k, km in enumerate(args.km):
+    for km in dict.fromkeys(args.km):  # each length once, in the order given
         spans = max(2, round(km * 1000.0 / MEAN_SPAN_M))
         # with --dask the longest line also runs on the local cluster (the shared model and
         # wire states of a long line, the workers' own reads)
-        modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km)
-                             and km not in args.km[:k] else [])
+        modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km) else [])
         results.append(case(cache, work, f"k{km:g}km", spans, 4.0, modes, None,
                             tiles=2_000_000))
     print_results(results)
