@@ -229,15 +229,19 @@ def test_low_plane_matches_the_plain_refit_loop():
 
 
 def test_square_ring_by_one_maximum_filter_equals_repeated_dilation():
-    # The roof ring: four dilations by the 3 x 3 square equal one 9 x 9 maximum filter with
-    # a False border, on any mask in a rectangular window (reference: scipy.ndimage).
+    # The roof ring (_ring): four dilations by the 3 x 3 square, less one, equal the ring
+    # from one 9 x 9 maximum filter with a False border, on any mask in a rectangular window
+    # (reference: scipy.ndimage.binary_dilation).
     from scipy import ndimage
+
+    from clearaudit.classify.objects import _ring
 
     rng = np.random.default_rng(9)
     near = np.ones((3, 3), bool)
     for _ in range(30):
         shape = tuple(int(k) for k in rng.integers(3, 40, 2))
         mask = rng.random(shape) < rng.uniform(0.01, 0.3)
-        ref = ndimage.binary_dilation(mask, near, iterations=4)
-        got = ndimage.maximum_filter(mask, size=9, mode="constant", cval=False)
-        assert np.array_equal(ref, got)
+        ref_inner = ndimage.binary_dilation(mask, near)
+        ref = ndimage.binary_dilation(mask, near, iterations=4) & ~ref_inner
+        inner, got = _ring(mask, 4)
+        assert np.array_equal(ref, got) and np.array_equal(inner, ref_inner)

@@ -892,6 +892,19 @@ class _RoofUnit:
     surface: np.ndarray
 
 
+def _ring(patch: np.ndarray, ring_cells: int) -> tuple[np.ndarray, np.ndarray]:
+    """The cells next to a patch (3 x 3 dilation) and its ring: the cells within
+    ``ring_cells`` (Chebyshev) of it, less those next to it; outside the window is empty.
+
+    ``ring_cells`` dilations by the 3 x 3 square are one dilation by the square of side
+    2 ``ring_cells`` + 1 (a separable maximum filter; the window is a rectangle, so no path
+    between two of its cells needs to leave it: the same cells).
+    """
+    inner = ndimage.binary_dilation(patch, np.ones((3, 3), bool))
+    outer = ndimage.maximum_filter(patch, size=2 * ring_cells + 1, mode="constant", cval=False)
+    return inner, outer & ~inner
+
+
 def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUnit | None:
     """Judge one candidate patch, or the halves of a gable roof together (see
     :func:`find_ground_roofs`, Notes); the accepted roof, or None."""
@@ -910,12 +923,7 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
         patch = ndimage.binary_closing(on_plane, near, iterations=gap) | on_plane
         if patch.sum() * lk.cell**2 > t.max_area_m2:
             return None
-    inner = ndimage.binary_dilation(patch, near)
-    # ring_cells dilations by the 3 x 3 square are one dilation by the square of side
-    # 2 ring_cells + 1 (a separable maximum filter; the window is a rectangle, so no path
-    # between two of its cells needs to leave it: the same cells)
-    outer = ndimage.maximum_filter(patch, size=2 * t.ring_cells + 1, mode="constant", cval=False)
-    ring = outer & ~inner
+    inner, ring = _ring(patch, t.ring_cells)
     ring_at = np.nonzero(ring)
     n_ring = len(ring_at[0])
     ring_low = lk.low_x[win[ring_at]]
