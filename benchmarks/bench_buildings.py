@@ -61,7 +61,8 @@ def score_case(seed: int, terrain: str) -> dict[str, float]:
 
 
 def time_ground_roofs(path: str, repeat: int) -> None:
-    """Time find_ground_roofs on the ground set of a large file (as classify builds it)."""
+    """Time find_ground_roofs on the ground set of a large file (isolated points left out of
+    the ground filter as in classify; its pit step is skipped)."""
     from clearaudit.classify.core import ground_filter
     from clearaudit.classify.grid import GridFrame, cell_min
     from clearaudit.classify.noise import isolated_points
