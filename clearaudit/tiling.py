@@ -231,13 +231,14 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
             # stable sort keeps the input order inside every cell
             cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
             order = np.argsort(cell_key, kind="stable")
-            ck = cell_key[order]
-            cuts = np.flatnonzero(np.diff(ck)) + 1
-            for seg in np.split(np.arange(len(order)), cuts):
-                first = order[seg[0]]
-                key = (int(ci[first]), int(cj[first]))
-                buffers.setdefault(key, []).append(rec[order[seg]])
-                counts[key] = counts.get(key, 0) + len(seg)
+            rec = rec[order]  # cell after cell; each cell's records are slices of it
+            starts = np.flatnonzero(np.diff(cell_key[order], prepend=-1))
+            stops = np.append(starts[1:], len(order))
+            first = order[starts]
+            for i, j, a, b in zip(ci[first].tolist(), cj[first].tolist(), starts.tolist(),
+                                  stops.tolist(), strict=True):
+                buffers.setdefault((i, j), []).append(rec[a:b])
+                counts[(i, j)] = counts.get((i, j), 0) + (b - a)
             kept += len(xyz)
             buffered += len(xyz)
             if buffered >= flush_points:
@@ -401,6 +402,62 @@ def _cloud(ctx: TileContext, xyz: np.ndarray, cls: np.ndarray) -> Cloud:
                  vertical_unit_m=ctx.vertical_unit_m, classification=cls)
 
 
+def class_mask(codes: np.ndarray, wanted: tuple[int, ...]) -> np.ndarray:
+    """``numpy.isin(codes, wanted)`` by one table lookup for 8-bit class codes."""
+    if codes.dtype != np.uint8:
+        return np.isin(codes, wanted)
+    table = np.zeros(256, dtype=bool)
+    table[list(wanted)] = True
+    return table[codes]
+
+
+def class_counts(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``numpy.unique(codes, return_counts=True)`` by one count per code for 8-bit codes."""
+    if codes.dtype != np.uint8:
+        return np.unique(codes, return_counts=True)
+    counts = np.bincount(codes, minlength=256)
+    present = np.flatnonzero(counts)
+    return present.astype(np.uint8), counts[present]
+
+
+def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
+    """Positions of the points of ``xy`` closer than ``radius`` to one of ``centres``.
+
+    The same points as a k-d tree query with ``distance_upper_bound=radius`` over all of
+    ``xy``, but the tree is queried only with the points in square cells of ``radius / 2``
+    that lie within two cells (Chebyshev) of a centre's cell: every point within ``radius``
+    of a centre is in such a cell, and most points of a tile are not (structures are a few
+    per kilometre).
+    """
+    from scipy.ndimage import binary_dilation
+    from scipy.spatial import cKDTree
+
+    xy = np.asarray(xy, dtype=np.float64)
+    centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
+    if len(xy) == 0 or len(centres) == 0:
+        return np.zeros(0, dtype=np.intp)
+    size = radius / 2.0
+    lo = xy.min(axis=0)
+    hi = xy.max(axis=0)
+    shape = np.floor((hi - lo) / size).astype(np.int64) + 1
+    centres_in = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
+    if len(centres_in) == 0:
+        return np.zeros(0, dtype=np.intp)
+    candidates = np.arange(len(xy))
+    if int(shape[0]) * int(shape[1]) <= 20_000_000:
+        # a centre outside the points' box sits in the border cell nearest to it: a superset
+        c = np.clip(np.floor((centres_in - lo) / size).astype(np.int64), 0, shape - 1)
+        occupied = np.zeros((int(shape[0]), int(shape[1])), dtype=bool)
+        occupied[c[:, 0], c[:, 1]] = True
+        # |floor(u) - floor(v)| <= ceil(|u - v|) <= 2 cells when |u - v| <= radius
+        occupied = binary_dilation(occupied, structure=np.ones((5, 5), dtype=bool))
+        cell = np.floor((xy - lo) / size).astype(np.int64)
+        candidates = np.flatnonzero(occupied[cell[:, 0], cell[:, 1]])
+        del cell
+    d, _ = cKDTree(centres).query(xy[candidates], distance_upper_bound=radius)
+    return candidates[np.isfinite(d)]
+
+
 # =============================================================================== task A: classify
 def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_options: Any,
                   given_structures_xy: np.ndarray | None = None) -> dict[str, Any]:
@@ -466,26 +523,23 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
         pickle.dump(ground_model, fh, protocol=pickle.HIGHEST_PROTOCOL)
 
     # the line model's points: wires, structures, insulators, ground near structures
-    model_mask = np.isin(cls, MODEL_CLASSES)
+    model_mask = class_mask(cls, MODEL_CLASSES)
     ground_own = np.flatnonzero(cls == GROUND)
-    anchors = [xyz[np.isin(full_cls, (TRANSMISSION_TOWER, WIRE_CONNECTOR)), :2]]
+    anchors = [xyz[class_mask(full_cls, (TRANSMISSION_TOWER, WIRE_CONNECTOR)), :2]]
     if given_structures_xy is not None and len(given_structures_xy):
         anchors.append(np.asarray(given_structures_xy, dtype=float).reshape(-1, 2))
     anchor_xy = np.concatenate(anchors)
     if len(anchor_xy) and len(ground_own):
-        from scipy.spatial import cKDTree
-
         anchor_xy = np.unique(np.floor(anchor_xy), axis=0) + 0.5  # 1 m cells: a small tree
-        d, _ = cKDTree(anchor_xy).query(xyz[ground_own, :2],
-                                        distance_upper_bound=STRUCTURE_GROUND_RADIUS_M + 1.0)
-        near = ground_own[np.isfinite(d)]
+        near = ground_own[near_points(xyz[ground_own, :2], anchor_xy,
+                                      STRUCTURE_GROUND_RADIUS_M + 1.0)]
         # one ground point per STRUCTURE_GROUND_CELL_M cell: the median height under a
         # structure needs a sample, not every point
         cell = np.floor(xyz[near, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)
         _, first = np.unique(cell, axis=0, return_index=True)
         model_mask[near[np.sort(first)]] = True
     local = np.flatnonzero(model_mask)
-    codes, counts = np.unique(cls, return_counts=True)
+    codes, counts = class_counts(cls)
     ground_z = xyz[ground_own[::97], 2] if len(ground_own) else np.zeros(0)
     return {"tile": tile.id, "n_owned": n_own, "n_context": len(ctx_rec),
             "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
@@ -619,7 +673,7 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
         pairs, n = np.unique(before[changed].astype(np.int32) * 256 + cls[changed],
                              return_counts=True)
         changes = {f"{p // 256}->{p % 256}": int(c) for p, c in zip(pairs, n, strict=True)}
-    codes, counts = np.unique(cls, return_counts=True)
+    codes, counts = class_counts(cls)
     return {"tile": tile.id, "n_owned": n_own, "changes": changes,
             "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}

@@ -73,6 +73,8 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
     for t in tiles:
         rec = read_cells(tmp_path, t.cells)
         assert t.owns(rec["xyz"][:, :2]).all()
+    for c in cells:  # inside a cell the points keep the input order
+        assert np.all(np.diff(read_cells(tmp_path, (c,))["key"]) > 0)
 
 
 def test_dask_run_identical_to_in_process(corridor, tmp_path):

@@ -1,0 +1,48 @@
+"""Small helpers of the tile tasks against the numpy / scipy calls they stand for.
+
+References: numpy.isin, numpy.unique and scipy.spatial.cKDTree.query with
+distance_upper_bound (general-purpose reference libraries).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial import cKDTree
+
+from clearaudit.tiling import class_counts, class_mask, near_points
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.int32])
+def test_class_mask_and_counts_match_numpy(dtype):
+    rng = np.random.default_rng(3)
+    codes = rng.choice([1, 2, 5, 7, 14, 15, 64], size=10_000).astype(dtype)
+    wanted = (5, 14, 15, 200)
+    np.testing.assert_array_equal(class_mask(codes, wanted), np.isin(codes, wanted))
+    got, ref = class_counts(codes), np.unique(codes, return_counts=True)
+    np.testing.assert_array_equal(got[0], ref[0])
+    np.testing.assert_array_equal(got[1], ref[1])
+    assert got[0].dtype == codes.dtype
+    empty = class_counts(np.zeros(0, dtype))
+    assert len(empty[0]) == len(empty[1]) == 0
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_near_points_is_the_bounded_tree_query(seed):
+    # reference: cKDTree.query over every point with distance_upper_bound
+    rng = np.random.default_rng(seed)
+    xy = rng.uniform([0, 0], [400, 90], size=(50_000, 2))
+    centres = np.concatenate([
+        rng.uniform([0, 0], [400, 90], size=(5, 2)),  # inside the points' box
+        [[-15.0, 40.0], [420.0, 95.0], [200.0, -21.0]],  # just outside, still within reach
+        [[-500.0, 0.0], [1e6, 1e6]],  # far away
+        np.floor(rng.uniform([0, 0], [400, 90], size=(3, 2))) + 0.5])
+    radius = 21.0
+    d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(xy, centres, radius), np.flatnonzero(np.isfinite(d)))
+    # points exactly on the cell edges and the circle
+    on = centres[0] + radius * np.column_stack([np.cos(np.arange(8)), np.sin(np.arange(8))])
+    grid = np.concatenate([xy, on, np.floor(xy[:100] / 10.5) * 10.5])
+    d, _ = cKDTree(centres).query(grid, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(grid, centres, radius), np.flatnonzero(np.isfinite(d)))
+    assert len(near_points(xy, centres[-4:-3], radius)) == 0
+    assert len(near_points(xy[:0], centres, radius)) == 0
