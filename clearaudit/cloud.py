@@ -16,6 +16,8 @@ from typing import Any
 
 import numpy as np
 
+from .arrays import column_bounds
+
 # ASPRS class codes, LAS 1.4 R15 Table 17.
 UNCLASSIFIED_NEVER = 0
 UNCLASSIFIED = 1
@@ -160,7 +162,8 @@ class Cloud:
         """(min, max) corners in CRS units."""
         if self.n_points == 0:
             raise ValueError("empty cloud has no bounds")
-        return self.to_crs(self.xyz.min(axis=0)), self.to_crs(self.xyz.max(axis=0))
+        lo, hi = column_bounds(self.xyz)
+        return self.to_crs(lo), self.to_crs(hi)
 
     @staticmethod
     def concatenate(clouds: list[Cloud]) -> Cloud:

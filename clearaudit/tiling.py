@@ -47,6 +47,7 @@ from typing import Any
 
 import numpy as np
 
+from .arrays import column_bounds
 from .cloud import (
     GROUND,
     TRANSMISSION_TOWER,
@@ -437,8 +438,7 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     if len(xy) == 0 or len(centres) == 0:
         return np.zeros(0, dtype=np.intp)
     size = radius / 2.0
-    lo = xy.min(axis=0)
-    hi = xy.max(axis=0)
+    lo, hi = column_bounds(xy)
     shape = np.floor((hi - lo) / size).astype(np.int64) + 1
     centres_in = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
     if len(centres_in) == 0:

@@ -1,4 +1,4 @@
-"""Small helpers of the tile tasks against the numpy / scipy calls they stand for.
+"""Small helpers of the tile tasks and the stages against the numpy / scipy calls they stand for.
 
 References: numpy.isin, numpy.unique and scipy.spatial.cKDTree.query with
 distance_upper_bound (general-purpose reference libraries).
@@ -46,3 +46,24 @@ def test_near_points_is_the_bounded_tree_query(seed):
     np.testing.assert_array_equal(near_points(grid, centres, radius), np.flatnonzero(np.isfinite(d)))
     assert len(near_points(xy, centres[-4:-3], radius)) == 0
     assert len(near_points(xy[:0], centres, radius)) == 0
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32, np.int64])
+def test_column_bounds_match_numpy(dtype):
+    # reference: numpy's own min / max over the rows
+    from clearaudit.arrays import column_bounds
+
+    rng = np.random.default_rng(5)
+    a = (rng.normal(size=(10_001, 3)) * 1000).astype(dtype)
+    for arr in (a, a[::3, :2], a[:1]):
+        lo, hi = column_bounds(arr)
+        np.testing.assert_array_equal(lo, arr.min(axis=0))
+        np.testing.assert_array_equal(hi, arr.max(axis=0))
+        assert lo.dtype == arr.dtype
+    if dtype is np.float64:
+        a[7, 1] = np.nan
+        lo, hi = column_bounds(a)
+        np.testing.assert_array_equal(lo, a.min(axis=0))
+        np.testing.assert_array_equal(hi, a.max(axis=0))
+    with pytest.raises(ValueError):
+        column_bounds(a[:0])

@@ -30,6 +30,8 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..arrays import column_bounds
+
 __all__ = [
     "Findings",
     "building_envelope",
@@ -269,7 +271,7 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | 
     if n == 0:
         return np.zeros(0, dtype=int)
     if thin_m is not None:
-        vox = np.floor((pts - pts.min(axis=0)) / thin_m).astype(np.int64)
+        vox = np.floor((pts - column_bounds(pts)[0]) / thin_m).astype(np.int64)
         _, first, rep_of = np.unique(vox, axis=0, return_index=True, return_inverse=True)
         rep_labels = group_obstacles(pts[first], link_m + 2.0 * math.sqrt(3.0) * thin_m, None)
         labels = rep_labels[rep_of.reshape(-1)]
@@ -330,7 +332,7 @@ def link_components(xyz: np.ndarray, link_m: float, chunk_points: int = 4096) ->
     d = pts.shape[1]
     # (1) cubes whose diagonal is shorter than the link distance
     side = link_m / math.sqrt(d) * (1.0 - 1e-9)
-    cube = np.floor((pts - pts.min(axis=0)) / side).astype(np.int64)
+    cube = np.floor((pts - column_bounds(pts)[0]) / side).astype(np.int64)
     key = cube[:, 0]
     for k in range(1, d):
         key = key * (int(cube[:, k].max()) + 1) + cube[:, k]

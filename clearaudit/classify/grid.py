@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ..arrays import column_bounds
 from ..threads import run_chunks
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
@@ -77,8 +78,8 @@ class GridFrame:
         dx = xy[:, 0] - centre[0]
         dy = xy[:, 1] - centre[1]
         uv = np.stack([dx * axes[0, 0] + dy * axes[0, 1], dx * axes[1, 0] + dy * axes[1, 1]], axis=1)
-        lo = uv.min(axis=0) - margin
-        hi = uv.max(axis=0) + margin
+        lo, hi = column_bounds(uv)
+        lo, hi = lo - margin, hi + margin
         shape = tuple(int(s) for s in np.maximum(np.ceil((hi - lo) / cell + 1e-9), 1))
         return cls(np.asarray(centre, float), np.asarray(axes, float), lo, float(cell), shape)
 

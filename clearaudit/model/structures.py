@@ -15,6 +15,8 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components, minimum_spanning_tree, shortest_path
 from scipy.spatial import cKDTree
 
+from ..arrays import column_bounds
+
 SUSPENSION = "suspension"
 DEADEND = "deadend"
 STRUCTURE_KINDS = (SUSPENSION, DEADEND)
@@ -151,9 +153,9 @@ def detect_columns(
         return []
     # Sparse grid: only occupied cells are stored, so memory follows the number of points,
     # not the bounding box of the line (a long or bent line spans a huge box).
-    lo = xyz[:, :2].min(axis=0)
+    lo = column_bounds(xyz[:, :2])[0]
     ij = np.floor((xyz[:, :2] - lo) / cell_m).astype(np.int64)
-    nx, ny = ij.max(axis=0) + 1
+    nx, ny = column_bounds(ij)[1] + 1
     flat = ij[:, 0] * ny + ij[:, 1]
     del ij
     cells, point_cell = np.unique(flat, return_inverse=True)
@@ -563,8 +565,8 @@ def insulators_horizontal(
     pts = insulator_xyz[near]
     if len(pts) < min_points:
         return False, 0, 0
-    vox = np.floor((pts - pts.min(axis=0)) / voxel_m).astype(np.int64)
-    shape = vox.max(axis=0) + 1
+    vox = np.floor((pts - column_bounds(pts)[0]) / voxel_m).astype(np.int64)
+    shape = column_bounds(vox)[1] + 1
     grid = np.zeros(shape, dtype=bool)
     grid[tuple(vox.T)] = True
     labels, n_lab = ndimage.label(grid, structure=np.ones((3, 3, 3)))

@@ -31,6 +31,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ..arrays import column_bounds
+
 
 @dataclass
 class SeparationOptions:
@@ -259,7 +261,7 @@ def point_directions(xyz: np.ndarray, voxel_m: float = 2.0, min_points: int = 4)
     n = len(xyz)
     if n == 0:
         return np.zeros((0, 3))
-    ijk = np.floor((xyz - xyz.min(axis=0)) / voxel_m).astype(np.int64)
+    ijk = np.floor((xyz - column_bounds(xyz)[0]) / voxel_m).astype(np.int64)
     _, vox = np.unique(ijk, axis=0, return_inverse=True)
     vox = vox.ravel()
     nv = int(vox.max()) + 1
@@ -280,8 +282,8 @@ def point_directions(xyz: np.ndarray, voxel_m: float = 2.0, min_points: int = 4)
 
 def _grid_components(coords: np.ndarray, cell: float, min_points: int) -> np.ndarray:
     """Connected components (8/26-connected) of occupied grid cells; -1 for small groups."""
-    ij = np.floor((coords - coords.min(axis=0)) / cell).astype(np.int64)
-    shape = tuple(ij.max(axis=0) + 1)
+    ij = np.floor((coords - column_bounds(coords)[0]) / cell).astype(np.int64)
+    shape = tuple(column_bounds(ij)[1] + 1)
     grid = np.zeros(shape, dtype=bool)
     grid[tuple(ij.T)] = True
     labels, _ = ndimage.label(grid, structure=np.ones((3,) * coords.shape[1]))
