@@ -61,6 +61,9 @@ from .io.las import ReadSetup, RecordScratch, corridor_mask, read_range
 
 #: One bucket record: local metres, the file's class code, ``file_id << KEY_SHIFT | index``.
 RECORD = np.dtype([("xyz", "<f8", (3,)), ("cls", "u1"), ("key", "<i8")])
+#: The same bytes as one opaque item: numpy copies a packed structured item field by field,
+#: an opaque one in one piece (concatenating records ~15x faster, gathering them ~4x)
+_RAW = np.dtype((np.void, RECORD.itemsize))
 KEY_SHIFT = 40
 MODEL_CLASSES = (WIRE_GUARD, WIRE_CONDUCTOR, TRANSMISSION_TOWER, WIRE_CONNECTOR)
 #: Ground points within this horizontal distance of structure points go to the line model,
@@ -167,6 +170,18 @@ def _cell_dir(work: Path, i: int, j: int) -> Path:
 SPLIT_CHUNK_POINTS = 250_000
 
 
+def take_records(records: np.ndarray, index: np.ndarray) -> np.ndarray:
+    """``records[index]`` (positions or a mask) for :data:`RECORD` arrays, copied whole."""
+    return records.view(_RAW)[index].view(RECORD)
+
+
+def concat_records(parts: list[np.ndarray]) -> np.ndarray:
+    """``numpy.concatenate(parts)`` for :data:`RECORD` arrays, copied whole."""
+    if not parts:
+        return np.zeros(0, dtype=RECORD)
+    return np.concatenate([p.view(_RAW) for p in parts]).view(RECORD)
+
+
 def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
                corridor: Corridor | None = None, *, flush_points: int = 1_000_000,
                chunk_size: int = SPLIT_CHUNK_POINTS,
@@ -232,7 +247,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
             # stable sort keeps the input order inside every cell
             cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
             order = np.argsort(cell_key, kind="stable")
-            rec = rec[order]  # cell after cell; each cell's records are slices of it
+            rec = take_records(rec, order)  # cell after cell; each cell's records are slices
             starts = np.flatnonzero(np.diff(cell_key[order], prepend=-1))
             stops = np.append(starts[1:], len(order))
             first = order[starts]
@@ -353,7 +368,7 @@ def _cell_files(work: Path, cell: tuple[int, int]) -> list[Path]:
 def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...]) -> np.ndarray:
     """All records of the given cells, cell after cell, each in input order (keys sorted)."""
     arrays = [np.fromfile(f, dtype=RECORD) for c in cells for f in _cell_files(Path(work), c)]
-    return np.concatenate(arrays) if arrays else np.zeros(0, dtype=RECORD)
+    return concat_records(arrays)
 
 
 def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None,
@@ -374,14 +389,13 @@ def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None
                 rec = np.asarray(mm[s:s + block])
                 sel = np.flatnonzero(tile.near(rec["xyz"][:, :2], margin))
                 if len(sel):
-                    parts.append(rec[sel])
+                    parts.append(take_records(rec, sel))
                     picked.append(sel + offset + s)
             offset += len(mm)
             del mm
         if picked:
             where.append((cell, np.concatenate(picked)))
-    records = np.concatenate(parts) if parts else np.zeros(0, dtype=RECORD)
-    return records, where
+    return concat_records(parts), where
 
 
 def _tile_file(work: Path, tile_id: str, what: str) -> Path:
@@ -588,8 +602,8 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
         for name in names:
             arrays[name].append(np.asarray(data[name][at]))
         offset += n
-    records = records[keep]
-    return (np.concatenate([own, records]), len(own),
+    records = take_records(records, keep)
+    return (concat_records([own, records]), len(own),
             {name: np.concatenate(parts) for name, parts in arrays.items()})
 
 

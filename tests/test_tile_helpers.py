@@ -67,3 +67,23 @@ def test_column_bounds_match_numpy(dtype):
         np.testing.assert_array_equal(hi, a.max(axis=0))
     with pytest.raises(ValueError):
         column_bounds(a[:0])
+
+
+def test_record_take_and_concat_match_numpy():
+    # reference: numpy's own fancy indexing and concatenation of the structured records
+    from clearaudit.tiling import RECORD, concat_records, take_records
+
+    rng = np.random.default_rng(9)
+    rec = np.zeros(5000, RECORD)
+    rec["xyz"] = rng.normal(size=(5000, 3))
+    rec["cls"] = rng.integers(0, 20, 5000)
+    rec["key"] = rng.integers(0, 2**40, 5000)
+    order = rng.permutation(5000)
+    mask = rng.random(5000) < 0.3
+    for index in (order, mask, order[:0]):
+        got = take_records(rec, index)
+        assert got.dtype == RECORD
+        assert got.tobytes() == rec[index].tobytes()
+    parts = [rec[:10], rec[10:4000], rec[4000:], take_records(rec, order[:7])]
+    assert concat_records(parts).tobytes() == np.concatenate(parts).tobytes()
+    assert concat_records([]).dtype == RECORD and len(concat_records([])) == 0
