@@ -64,6 +64,12 @@ RECORD = np.dtype([("xyz", "<f8", (3,)), ("cls", "u1"), ("key", "<i8")])
 #: The same bytes as one opaque item: numpy copies a packed structured item field by field,
 #: an opaque one in one piece (concatenating records ~15x faster, gathering them ~4x)
 _RAW = np.dtype((np.void, RECORD.itemsize))
+#: RECORD's layout with opaque fields, for filling records (a packed float64 field is written
+#: element by element, an opaque one in one piece)
+_FILL = np.dtype({"names": ["xyz", "cls", "key"],
+                  "formats": [(np.void, 24), "u1", (np.void, 8)],
+                  "offsets": [RECORD.fields[f][1] for f in ("xyz", "cls", "key")],
+                  "itemsize": RECORD.itemsize})
 KEY_SHIFT = 40
 MODEL_CLASSES = (WIRE_GUARD, WIRE_CONDUCTOR, TRANSMISSION_TOWER, WIRE_CONNECTOR)
 #: Ground points within this horizontal distance of structure points go to the line model,
@@ -170,6 +176,25 @@ def _cell_dir(work: Path, i: int, j: int) -> Path:
 SPLIT_CHUNK_POINTS = 250_000
 
 
+def make_records(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray) -> np.ndarray:
+    """:data:`RECORD` array of points ``xyz`` [m], classes ``cls`` and keys ``key``."""
+    rec = np.empty(len(xyz), dtype=_FILL)
+    rec["xyz"] = np.ascontiguousarray(xyz, dtype="<f8").reshape(-1, 3).view(_FILL["xyz"])[:, 0]
+    rec["cls"] = cls
+    rec["key"] = np.ascontiguousarray(key, dtype="<i8").view(_FILL["key"])
+    return rec.view(RECORD)
+
+
+def record_xyz(records: np.ndarray) -> np.ndarray:
+    """The records' points as one contiguous (n, 3) float64 array. [m]"""
+    return np.ascontiguousarray(records.view(_FILL)["xyz"]).view("<f8").reshape(-1, 3)
+
+
+def record_keys(records: np.ndarray) -> np.ndarray:
+    """The records' keys as one contiguous int64 array."""
+    return np.ascontiguousarray(records.view(_FILL)["key"]).view("<i8")
+
+
 def take_records(records: np.ndarray, index: np.ndarray) -> np.ndarray:
     """``records[index]`` (positions or a mask) for :data:`RECORD` arrays, copied whole."""
     return records.view(_RAW)[index].view(RECORD)
@@ -239,10 +264,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
             decoded += n
             if len(xyz) == 0:
                 continue
-            rec = np.empty(len(xyz), dtype=RECORD)
-            rec["xyz"] = xyz
-            rec["cls"] = cls
-            rec["key"] = (np.int64(part.file_id) << KEY_SHIFT) | index
+            rec = make_records(xyz, cls, (np.int64(part.file_id) << KEY_SHIFT) | index)
             ci, cj = grid.cells(xyz)
             # stable sort keeps the input order inside every cell
             cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
@@ -387,7 +409,7 @@ def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None
             mm = np.memmap(f, dtype=RECORD, mode="r")
             for s in range(0, len(mm), block):
                 rec = np.asarray(mm[s:s + block])
-                sel = np.flatnonzero(tile.near(rec["xyz"][:, :2], margin))
+                sel = np.flatnonzero(tile.near(record_xyz(rec)[:, :2], margin))
                 if len(sel):
                     parts.append(take_records(rec, sel))
                     picked.append(sel + offset + s)
@@ -532,7 +554,7 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     folder.mkdir(parents=True, exist_ok=True)
     np.save(_tile_file(work, tile.id, "cls.npy"), cls)
     np.save(_tile_file(work, tile.id, "hag.npy"), hag.astype(np.float32))
-    np.save(_tile_file(work, tile.id, "key.npy"), own["key"])
+    np.save(_tile_file(work, tile.id, "key.npy"), record_keys(own))
     with open(_tile_file(work, tile.id, "ground.pkl"), "wb") as fh:
         pickle.dump(ground_model, fh, protocol=pickle.HIGHEST_PROTOCOL)
 
@@ -677,7 +699,7 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
     result = _ViewResult(arrays["cls"].astype(np.uint8), arrays["hag"].astype(np.float64))
     before = result.classification[:n_own].copy()
     if len(rec):
-        refine_with_model(_cloud(ctx, rec["xyz"], result.classification), result,
+        refine_with_model(_cloud(ctx, record_xyz(rec), result.classification), result,
                           _ViewModel(line.structures, line.spans, arrays["wire"]))
     cls = result.classification[:n_own]
     np.save(_tile_file(work, tile.id, "rcls.npy"), cls)
@@ -746,8 +768,8 @@ def audit_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, 
     rec, n_own, arrays = _view(work, tile, tiles_by_cell, ("rcls", "hag", "other"))
     with open(_tile_file(work, tile.id, "ground.pkl"), "rb") as fh:
         ground_model = pickle.load(fh)
-    block = point_findings(rec["xyz"], arrays["rcls"], arrays["hag"].astype(np.float64), plan,
-                           model, rules, keys=rec["key"], owned_box=tile.box,
+    block = point_findings(record_xyz(rec), arrays["rcls"], arrays["hag"].astype(np.float64), plan,
+                           model, rules, keys=record_keys(rec), owned_box=tile.box,
                            ground_model=ground_model, other_wire=arrays["other"],
                            state_indices=tile_states(plan, tile), label_base=label_base)
     return {"tile": tile.id, "block": block, "n_owned": n_own,

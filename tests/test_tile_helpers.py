@@ -87,3 +87,21 @@ def test_record_take_and_concat_match_numpy():
     parts = [rec[:10], rec[10:4000], rec[4000:], take_records(rec, order[:7])]
     assert concat_records(parts).tobytes() == np.concatenate(parts).tobytes()
     assert concat_records([]).dtype == RECORD and len(concat_records([])) == 0
+
+
+def test_make_records_and_fields_match_numpy_fields():
+    # reference: numpy's own field assignment and field views of the structured records
+    from clearaudit.tiling import RECORD, make_records, record_keys, record_xyz
+
+    rng = np.random.default_rng(4)
+    xyz = rng.normal(size=(3000, 3)) * 1e3
+    cls = rng.integers(0, 30, 3000).astype(np.uint8)
+    key = rng.integers(0, 2**50, 3000)
+    ref = np.empty(3000, RECORD)
+    ref["xyz"], ref["cls"], ref["key"] = xyz, cls, key
+    for sl in (slice(None), slice(None, None, 3), slice(0, 0)):
+        got = make_records(xyz[sl], cls[sl], key[sl])
+        assert got.dtype == RECORD and got.tobytes() == ref[sl].tobytes()
+        assert record_xyz(got).flags.c_contiguous
+        np.testing.assert_array_equal(record_xyz(got), ref[sl]["xyz"])
+        np.testing.assert_array_equal(record_keys(got), ref[sl]["key"])
