@@ -387,10 +387,26 @@ def _cell_files(work: Path, cell: tuple[int, int]) -> list[Path]:
     return sorted(folder.glob("p*.bin")) if folder.is_dir() else []
 
 
-def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...]) -> np.ndarray:
-    """All records of the given cells, cell after cell, each in input order (keys sorted)."""
-    arrays = [np.fromfile(f, dtype=RECORD) for c in cells for f in _cell_files(Path(work), c)]
-    return concat_records(arrays)
+def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
+               then: np.ndarray | None = None) -> np.ndarray:
+    """All records of the given cells, cell after cell, each in input order (keys sorted).
+
+    The files are read straight into one array; ``then`` (records) is appended after them.
+    """
+    files = [f for c in cells for f in _cell_files(Path(work), c)]
+    sizes = [f.stat().st_size // RECORD.itemsize for f in files]
+    n = sum(sizes)
+    out = np.empty(n + (0 if then is None else len(then)), dtype=RECORD)
+    at = 0
+    for f, m in zip(files, sizes, strict=True):
+        with open(f, "rb") as fh:
+            got = fh.readinto(out[at:at + m].view(np.uint8))
+        if got != m * RECORD.itemsize:
+            raise OSError(f"{f}: expected {m * RECORD.itemsize} bytes, read {got}")
+        at += m
+    if then is not None and len(then):
+        out.view(_RAW)[n:] = then.view(_RAW)
+    return out
 
 
 def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None,
@@ -602,7 +618,6 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
     -------
     records, n_owned, {name: array over owned + context points}
     """
-    own = read_cells(work, tile.cells)
     records, where = read_context(work, tile)
     arrays = {name: [_load(work, tile.id, name)] for name in names}
     offset = 0
@@ -625,7 +640,8 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
             arrays[name].append(np.asarray(data[name][at]))
         offset += n
     records = take_records(records, keep)
-    return (concat_records([own, records]), len(own),
+    both = read_cells(work, tile.cells, then=records)
+    return (both, len(both) - len(records),
             {name: np.concatenate(parts) for name, parts in arrays.items()})
 
 

@@ -75,6 +75,10 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
         assert t.owns(rec["xyz"][:, :2]).all()
     for c in cells:  # inside a cell the points keep the input order
         assert np.all(np.diff(read_cells(tmp_path, (c,))["key"]) > 0)
+    # records appended after the cells' own: the same bytes as numpy's concatenation
+    first, second = read_cells(tmp_path, tiles[0].cells), read_cells(tmp_path, tiles[1].cells)
+    both = read_cells(tmp_path, tiles[0].cells, then=second[::7])
+    assert both.tobytes() == np.concatenate([first, second[::7]]).tobytes()
 
 
 def test_dask_run_identical_to_in_process(corridor, tmp_path):
