@@ -17,3 +17,51 @@ def column_bounds(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     lo = np.array([a[:, c].min() for c in range(a.shape[1])], dtype=a.dtype)
     hi = np.array([a[:, c].max() for c in range(a.shape[1])], dtype=a.dtype)
     return lo, hi
+
+
+def near_candidates(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
+    """Positions of the points of ``xy`` that may lie within ``radius`` of one of ``centres``.
+
+    A superset, in ascending order: the points in square cells of ``radius / 2`` within two
+    cells (Chebyshev) of a centre's cell. Every point within ``radius`` of a centre is in
+    such a cell (``|floor(u) - floor(v)| <= ceil(|u - v|) <= 2`` cells when
+    ``|u - v| <= radius``); most points of a tile are not, when the centres are few.
+    """
+    from scipy.ndimage import binary_dilation
+
+    xy = np.asarray(xy, dtype=np.float64)
+    centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
+    if len(xy) == 0 or len(centres) == 0:
+        return np.zeros(0, dtype=np.intp)
+    size = radius / 2.0
+    lo, hi = column_bounds(xy)
+    centres = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
+    if len(centres) == 0:
+        return np.zeros(0, dtype=np.intp)
+    shape = np.floor((hi - lo) / size).astype(np.int64) + 1
+    if int(shape[0]) * int(shape[1]) > 20_000_000:
+        return np.arange(len(xy))
+    # a centre outside the points' box sits in the border cell nearest to it: a superset
+    c = np.clip(np.floor((centres - lo) / size).astype(np.int64), 0, shape - 1)
+    occupied = np.zeros((int(shape[0]), int(shape[1])), dtype=bool)
+    occupied[c[:, 0], c[:, 1]] = True
+    occupied = binary_dilation(occupied, structure=np.ones((5, 5), dtype=bool))
+    cell = np.floor((xy - lo) / size).astype(np.int64)
+    return np.flatnonzero(occupied[cell[:, 0], cell[:, 1]])
+
+
+def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
+    """Positions of the points of ``xy`` closer than ``radius`` to one of ``centres``.
+
+    The same points as a k-d tree query with ``distance_upper_bound=radius`` over all of
+    ``xy``; the tree is queried only with :func:`near_candidates`.
+    """
+    from scipy.spatial import cKDTree
+
+    centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
+    candidates = near_candidates(xy, centres, radius)
+    if len(candidates) == 0:
+        return candidates
+    d, _ = cKDTree(centres).query(np.asarray(xy, dtype=np.float64)[candidates],
+                                  distance_upper_bound=radius)
+    return candidates[np.isfinite(d)]

@@ -47,7 +47,7 @@ from typing import Any
 
 import numpy as np
 
-from .arrays import column_bounds
+from .arrays import near_points
 from .cloud import (
     GROUND,
     TRANSMISSION_TOWER,
@@ -471,43 +471,6 @@ def class_counts(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     counts = np.bincount(codes, minlength=256)
     present = np.flatnonzero(counts)
     return present.astype(np.uint8), counts[present]
-
-
-def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
-    """Positions of the points of ``xy`` closer than ``radius`` to one of ``centres``.
-
-    The same points as a k-d tree query with ``distance_upper_bound=radius`` over all of
-    ``xy``, but the tree is queried only with the points in square cells of ``radius / 2``
-    that lie within two cells (Chebyshev) of a centre's cell: every point within ``radius``
-    of a centre is in such a cell, and most points of a tile are not (structures are a few
-    per kilometre).
-    """
-    from scipy.ndimage import binary_dilation
-    from scipy.spatial import cKDTree
-
-    xy = np.asarray(xy, dtype=np.float64)
-    centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
-    if len(xy) == 0 or len(centres) == 0:
-        return np.zeros(0, dtype=np.intp)
-    size = radius / 2.0
-    lo, hi = column_bounds(xy)
-    shape = np.floor((hi - lo) / size).astype(np.int64) + 1
-    centres_in = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
-    if len(centres_in) == 0:
-        return np.zeros(0, dtype=np.intp)
-    candidates = np.arange(len(xy))
-    if int(shape[0]) * int(shape[1]) <= 20_000_000:
-        # a centre outside the points' box sits in the border cell nearest to it: a superset
-        c = np.clip(np.floor((centres_in - lo) / size).astype(np.int64), 0, shape - 1)
-        occupied = np.zeros((int(shape[0]), int(shape[1])), dtype=bool)
-        occupied[c[:, 0], c[:, 1]] = True
-        # |floor(u) - floor(v)| <= ceil(|u - v|) <= 2 cells when |u - v| <= radius
-        occupied = binary_dilation(occupied, structure=np.ones((5, 5), dtype=bool))
-        cell = np.floor((xy - lo) / size).astype(np.int64)
-        candidates = np.flatnonzero(occupied[cell[:, 0], cell[:, 1]])
-        del cell
-    d, _ = cKDTree(centres).query(xy[candidates], distance_upper_bound=radius)
-    return candidates[np.isfinite(d)]
 
 
 # =============================================================================== task A: classify

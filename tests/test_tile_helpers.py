@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 from scipy.spatial import cKDTree
 
-from clearaudit.tiling import class_counts, class_mask, near_points
+from clearaudit.arrays import near_points
+from clearaudit.tiling import class_counts, class_mask
 
 
 @pytest.mark.parametrize("dtype", [np.uint8, np.int32])

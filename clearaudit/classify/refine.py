@@ -26,6 +26,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
+from ..arrays import near_candidates
 from ..cloud import (
     HIGH_VEGETATION,
     LOW_VEGETATION,
@@ -196,10 +197,21 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
         radius = np.array([extents[i]["radius_m"] for i in ids])
         top = np.array([np.inf if extents[i]["z_top_m"] is None else extents[i]["z_top_m"]
                         for i in ids])
+        # only points within the largest radius of a structure can be inside its extent:
+        # the nearest structure is looked up for those (their nearest is the same as in a
+        # query of every point), the others are inside none
+        near = np.full(len(interesting), -1)
+        inside = np.zeros(len(interesting), bool)
         # np.take: same values as xyz[interesting], several times faster on rows
         xyz_i = np.take(xyz, interesting, axis=0)
-        dist, near = cKDTree(centres).query(xyz_i[:, :2])
-        inside = (dist <= radius[near]) & (xyz_i[:, 2] <= top[near] + top_margin_m)
+        reach = float(radius.max()) * (1.0 + 1e-9) + 1e-9
+        cand = near_candidates(xyz_i[:, :2], centres, reach)
+        if len(cand):
+            xyz_c = np.take(xyz_i, cand, axis=0)
+            dist, near_c = cKDTree(centres).query(xyz_c[:, :2])
+            near[cand] = near_c
+            inside[cand] = (dist <= radius[near_c]) & (xyz_c[:, 2] <= top[near_c] + top_margin_m)
+            del xyz_c
         del xyz_i
 
     # 1. structure points outside every structure's extent
@@ -219,9 +231,13 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
         cls[stray] = np.where(foliage, veg, UNCLASSIFIED)
 
     # 2. vegetation on a structure, 3. unassigned wire points on a structure
+    # (each structure's points inside its extent, in ascending order: one stable sort)
+    held = np.flatnonzero(inside)
+    held = held[np.argsort(near[held], kind="stable")]
+    cuts = np.searchsorted(near[held], np.arange(len(ids) + 1))
     for k, sid in enumerate(ids):
         ext = extents[sid]
-        mine = interesting[(near == k) & inside] if len(interesting) else interesting
+        mine = interesting[held[cuts[k]:cuts[k + 1]]]
         if len(mine) == 0:
             continue
         r = np.hypot(*(xyz[mine, :2] - ext["xy"]).T)
