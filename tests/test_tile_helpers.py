@@ -106,3 +106,18 @@ def test_make_records_and_fields_match_numpy_fields():
         assert record_xyz(got).flags.c_contiguous
         np.testing.assert_array_equal(record_xyz(got), ref[sl]["xyz"])
         np.testing.assert_array_equal(record_keys(got), ref[sl]["key"])
+
+
+def test_grid_frame_of_a_strided_sample_equals_its_contiguous_copy():
+    # fit_locate fits its frame to a contiguous copy of every k-th point: numpy's reduction
+    # over the rows gives the same mean for the strided view and the copy
+    from clearaudit.classify.grid import GridFrame
+
+    rng = np.random.default_rng(12)
+    for step in (1, 3, 7):
+        xyz = rng.normal(size=(300_000, 3)) * 800 + 5e4
+        view = xyz[:, :2][::step]
+        a, b = GridFrame.fit(view, 1.0), GridFrame.fit(np.ascontiguousarray(view), 1.0)
+        for name in ("centre", "axes", "corner"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+        assert a.shape == b.shape

@@ -97,7 +97,9 @@ class GridFrame:
         margin
             Extra border around the points. [m]
         """
-        probe = cls.fit(xy[:: max(1, len(xy) // 200_000)], cell)
+        # a contiguous copy of the sample: numpy reduces a strided (n, 2) view over its rows
+        # about four times slower (same values)
+        probe = cls.fit(np.ascontiguousarray(xy[:: max(1, len(xy) // 200_000)]), cell)
         # cell coordinates relative to the centre, then shifted to the fitted corner
         loc = GridFrame(probe.centre, probe.axes, np.zeros(2), float(cell), (1, 1)).locate(xy)
         fu, fv = loc.fu, loc.fv
