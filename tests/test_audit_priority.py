@@ -117,3 +117,19 @@ def test_tree_of_points_off_the_grid_is_minus_one():
     pts = _cone(rng, 0.0, 0.0, 15.0, 3.0)
     tops = find_tree_tops(pts, pts[:, 2])
     assert list(tops.tree_of(np.array([[100.0, 100.0, 0.0], [-50.0, 3.0, 1.0]]))) == [-1, -1]
+
+
+def test_highest_point_per_cell_table_and_sort_paths_agree():
+    # reference: a plain loop over the cells (the highest point, the last of equal heights)
+    from clearaudit.audit.priority import _highest_per_cell
+
+    rng = np.random.default_rng(21)
+    key = rng.integers(0, 3000, 20_000)
+    z = np.round(rng.uniform(0, 5, 20_000), 1)  # many equal heights within a cell
+    ref_cells = np.unique(key)
+    ref_top = np.array([np.flatnonzero((key == c) & (z == z[key == c].max()))[-1]
+                        for c in ref_cells])
+    for scale in (1, 10_000_000):  # a dense table, then a key range too wide for one
+        cells, top = _highest_per_cell(key * scale, z)
+        np.testing.assert_array_equal(cells, ref_cells * scale)
+        np.testing.assert_array_equal(top, ref_top)

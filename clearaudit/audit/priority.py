@@ -123,6 +123,37 @@ class TreeTops:
             if len(self.cell_tree) else np.full(len(cell), -1)
 
 
+def _highest_per_cell(key: np.ndarray, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The occupied cells (ascending keys) and the index of each one's highest point.
+
+    Of equal heights the last point in input order. With a key range of at most 8 per point
+    (or 4 M) two ``maximum.at`` passes over a table of the keys; otherwise a stable sort by
+    key (input order within a cell) and the highest of each run. Both give the same cells and
+    points.
+    """
+    n = len(key)
+    span = int(key.max()) + 1
+    if span <= max(8 * n, 1 << 22):
+        best = np.full(span, -np.inf)
+        np.maximum.at(best, key, z)
+        idx = np.flatnonzero(z == best[key])
+        del best
+        last = np.full(span, -1, dtype=np.int64)
+        np.maximum.at(last, key[idx], idx)
+        cell_key = np.flatnonzero(last >= 0)
+        return cell_key, last[cell_key]
+    order = np.argsort(key, kind="stable")
+    skey = key[order]
+    first = np.ones(n, dtype=bool)
+    first[1:] = skey[1:] != skey[:-1]
+    starts = np.flatnonzero(first)
+    z_sorted = z[order]
+    run = np.cumsum(first) - 1
+    highest = z_sorted == np.maximum.reduceat(z_sorted, starts)[run]
+    at = np.maximum.reduceat(np.where(highest, np.arange(n), -1), starts)
+    return skey[starts], order[at]
+
+
 def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m: float = 1.0,
                    window_m: float = 5.0, min_height_m: float = 2.0) -> TreeTops:
     r"""Tree tops as local maxima of the vegetation canopy, and their crowns.
@@ -170,23 +201,11 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
     stride = int(ixy[:, 1].max()) - iy0 + 2
     key = (ixy[:, 0] - ix0) * stride + (ixy[:, 1] - iy0)
     del ixy
-    # Highest point per cell (of equal heights the last in input order): sort by key (stable,
-    # so input order within a cell), the highest of each run.
-    order = np.argsort(key, kind="stable")
-    skey = key[order]
-    first = np.ones(len(order), dtype=bool)
-    first[1:] = skey[1:] != skey[:-1]
-    starts = np.flatnonzero(first)
-    z_sorted = pts[order, 2]
-    run = np.cumsum(first) - 1
-    highest = z_sorted == np.maximum.reduceat(z_sorted, starts)[run]
-    at = np.maximum.reduceat(np.where(highest, np.arange(len(order)), -1), starts)
-    top_idx = order[at]
-    cell_key = skey[starts]
+    cell_key, top_idx = _highest_per_cell(key, pts[:, 2])
+    del key
     cell_xyz = pts[top_idx]
     cell_h = hag[top_idx]
-    # from here on everything is per cell: the per-point work arrays go
-    del key, order, skey, first, starts, z_sorted, run, highest, at, top_idx
+    del top_idx  # from here on everything is per cell
     n_cells = len(cell_key)
     grid = (float(cell_m), ix0, iy0, stride)
 
