@@ -47,7 +47,7 @@ from typing import Any
 
 import numpy as np
 
-from .arrays import near_points
+from .arrays import column_bounds, near_points
 from .cloud import (
     GROUND,
     TRANSMISSION_TOWER,
@@ -551,8 +551,12 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
         # one ground point per STRUCTURE_GROUND_CELL_M cell: the median height under a
         # structure needs a sample, not every point
         cell = np.floor(xyz[near, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)
-        _, first = np.unique(cell, axis=0, return_index=True)
-        model_mask[near[np.sort(first)]] = True
+        if len(cell):
+            # one number per cell (the rows' order): unique over one column, not over rows
+            cell -= column_bounds(cell)[0]
+            flat = cell[:, 0] * (int(cell[:, 1].max()) + 1) + cell[:, 1]
+            _, first = np.unique(flat, return_index=True)
+            model_mask[near[np.sort(first)]] = True
     local = np.flatnonzero(model_mask)
     codes, counts = class_counts(cls)
     ground_z = xyz[ground_own[::97], 2] if len(ground_own) else np.zeros(0)
