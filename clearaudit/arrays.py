@@ -51,17 +51,48 @@ def near_candidates(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.nd
 
 
 def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
-    """Positions of the points of ``xy`` closer than ``radius`` to one of ``centres``.
+    r"""Positions (ascending) of the points of ``xy`` closer than ``radius`` to a centre.
 
     The same points as a k-d tree query with ``distance_upper_bound=radius`` over all of
-    ``xy``; the tree is queried only with :func:`near_candidates`.
+    ``xy``. A raster of cells of about ``radius / 8`` over the points' box is classified
+    by the distance :math:`d_c` of each cell's centre to the nearest centre: a point lies
+    within :math:`h` (half the cell's diagonal) of its cell's centre, so a cell with
+    :math:`d_c + h \le r - \epsilon` holds only points within the radius and a cell with
+    :math:`d_c - h > r + \epsilon` none (the distance to a set changes no faster than the
+    position); only the points of the cells in between are queried.
     """
     from scipy.spatial import cKDTree
 
+    xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
     centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
-    candidates = near_candidates(xy, centres, radius)
-    if len(candidates) == 0:
-        return candidates
-    d, _ = cKDTree(centres).query(np.asarray(xy, dtype=np.float64)[candidates],
-                                  distance_upper_bound=radius)
-    return candidates[np.isfinite(d)]
+    if len(xy) == 0 or len(centres) == 0:
+        return np.zeros(0, dtype=np.intp)
+    lo, hi = column_bounds(xy)
+    reach = np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)
+    if not reach.any():
+        return np.zeros(0, dtype=np.intp)
+    extent = hi - lo
+    size = max(radius / 8.0, float(np.sqrt(extent[0] * extent[1] / 4e6)), 1e-6)
+    shape = np.floor(extent / size).astype(np.int64) + 1
+    tol = 1e-6 * (float(np.max(np.abs(np.concatenate([lo, hi])))) + radius) + 1e-9
+    half = size * np.sqrt(0.5) + tol
+    gu, gv = np.meshgrid(lo[0] + (np.arange(shape[0]) + 0.5) * size,
+                         lo[1] + (np.arange(shape[1]) + 0.5) * size, indexing="ij")
+    d_cell, _ = cKDTree(centres[reach]).query(np.column_stack([gu.ravel(), gv.ravel()]),
+                                              distance_upper_bound=radius + half + tol)
+    del gu, gv
+    state = np.full(len(d_cell), 2, dtype=np.uint8)   # 2: test each point
+    state[d_cell + half <= radius - tol] = 1          # every point within the radius
+    state[d_cell - half > radius + tol] = 0           # none (also beyond the query: inf)
+    del d_cell
+    at = np.minimum(((xy[:, 0] - lo[0]) / size).astype(np.int64), shape[0] - 1)
+    at *= shape[1]
+    at += np.minimum(((xy[:, 1] - lo[1]) / size).astype(np.int64), shape[1] - 1)
+    point_state = state[at]
+    del at
+    keep = point_state == 1
+    test = np.flatnonzero(point_state == 2)
+    if len(test):
+        d, _ = cKDTree(centres).query(xy[test], distance_upper_bound=radius)
+        keep[test[np.isfinite(d)]] = True
+    return np.flatnonzero(keep)

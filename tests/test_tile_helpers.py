@@ -27,8 +27,8 @@ def test_class_mask_and_counts_match_numpy(dtype):
     assert len(empty[0]) == len(empty[1]) == 0
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2])
-def test_near_points_is_the_bounded_tree_query(seed):
+@pytest.mark.parametrize("seed, offset", [(0, 0.0), (1, 0.0), (2, 0.0), (3, 5.2e6)])
+def test_near_points_is_the_bounded_tree_query(seed, offset):
     # reference: cKDTree.query over every point with distance_upper_bound
     rng = np.random.default_rng(seed)
     xy = rng.uniform([0, 0], [400, 90], size=(50_000, 2))
@@ -37,6 +37,7 @@ def test_near_points_is_the_bounded_tree_query(seed):
         [[-15.0, 40.0], [420.0, 95.0], [200.0, -21.0]],  # just outside, still within reach
         [[-500.0, 0.0], [1e6, 1e6]],  # far away
         np.floor(rng.uniform([0, 0], [400, 90], size=(3, 2))) + 0.5])
+    xy, centres = xy + offset, centres + offset  # also at projected-coordinate magnitudes
     radius = 21.0
     d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
     np.testing.assert_array_equal(near_points(xy, centres, radius), np.flatnonzero(np.isfinite(d)))
@@ -45,6 +46,11 @@ def test_near_points_is_the_bounded_tree_query(seed):
     grid = np.concatenate([xy, on, np.floor(xy[:100] / 10.5) * 10.5])
     d, _ = cKDTree(centres).query(grid, distance_upper_bound=radius)
     np.testing.assert_array_equal(near_points(grid, centres, radius), np.flatnonzero(np.isfinite(d)))
+    # the points near one centre only, a ring just inside and just outside the radius
+    ring = centres[1] + np.column_stack([np.cos(np.arange(64.0)), np.sin(np.arange(64.0))]) \
+        * np.repeat([radius - 1e-7, radius + 1e-7], 32)[:, None]
+    d, _ = cKDTree(centres).query(ring, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(ring, centres, radius), np.flatnonzero(np.isfinite(d)))
     assert len(near_points(xy, centres[-4:-3], radius)) == 0
     assert len(near_points(xy[:0], centres, radius)) == 0
 
