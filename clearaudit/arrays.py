@@ -19,27 +19,43 @@ def column_bounds(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return lo, hi
 
 
+def _raster_cells(extent: np.ndarray, size: float, most: int) -> tuple[float, np.ndarray]:
+    """Cell size (``size`` or a power-of-two multiple of it) and shape of a raster over
+    ``extent`` with at most ``most`` cells."""
+    while True:
+        shape = np.floor(extent / size).astype(np.int64) + 1
+        if int(shape[0]) * int(shape[1]) <= most:
+            return size, shape
+        size *= 2.0
+
+
 def near_candidates(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
     """Positions of the points of ``xy`` that may lie within ``radius`` of one of ``centres``.
 
     A superset, in ascending order: the points in square cells of ``radius / 2`` within two
     cells (Chebyshev) of a centre's cell. Every point within ``radius`` of a centre is in
     such a cell (``|floor(u) - floor(v)| <= ceil(|u - v|) <= 2`` cells when
-    ``|u - v| <= radius``); most points of a tile are not, when the centres are few.
+    ``|u - v| <= radius``); most points of a tile are not, when the centres are few. All
+    points when such a raster would hold more than four cells per point (a sparse or thin
+    box), or when the radius or a coordinate is not finite (the caller's exact query then
+    decides, or rejects the input).
     """
     from scipy.ndimage import binary_dilation
 
-    xy = np.asarray(xy, dtype=np.float64)
+    xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
     centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
     if len(xy) == 0 or len(centres) == 0:
         return np.zeros(0, dtype=np.intp)
-    size = radius / 2.0
     lo, hi = column_bounds(xy)
+    if not (np.isfinite(radius) and radius > 0 and np.all(np.isfinite(lo))
+            and np.all(np.isfinite(hi))):
+        return np.arange(len(xy))
     centres = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
     if len(centres) == 0:
         return np.zeros(0, dtype=np.intp)
+    size = radius / 2.0
     shape = np.floor((hi - lo) / size).astype(np.int64) + 1
-    if int(shape[0]) * int(shape[1]) > 20_000_000:
+    if int(shape[0]) * int(shape[1]) > max(4 * len(xy), 1 << 16):
         return np.arange(len(xy))
     # a centre outside the points' box sits in the border cell nearest to it: a superset
     c = np.clip(np.floor((centres - lo) / size).astype(np.int64), 0, shape - 1)
@@ -54,27 +70,40 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     r"""Positions (ascending) of the points of ``xy`` closer than ``radius`` to a centre.
 
     The same points as a k-d tree query with ``distance_upper_bound=radius`` over all of
-    ``xy``. A raster of cells of about ``radius / 8`` over the points' box is classified
-    by the distance :math:`d_c` of each cell's centre to the nearest centre: a point lies
-    within :math:`h` (half the cell's diagonal) of its cell's centre, so a cell with
+    ``xy`` (``radius`` finite and positive). A raster of cells of ``radius / 8`` (coarser
+    when that would exceed four cells per point) over the points' box is classified by the
+    distance :math:`d_c` of each cell's centre to the nearest centre: a point lies within
+    :math:`h` (half the cell's diagonal) of its cell's centre, so a cell with
     :math:`d_c + h \le r - \epsilon` holds only points within the radius and a cell with
     :math:`d_c - h > r + \epsilon` none (the distance to a set changes no faster than the
-    position); only the points of the cells in between are queried.
+    position); only the points of the cells in between are queried. Where the cells would
+    be wider than half the radius (few points in a large box), or a coordinate is not finite,
+    every point is queried.
     """
     from scipy.spatial import cKDTree
 
+    if not (np.isfinite(radius) and radius > 0):
+        raise ValueError(f"near_points needs a finite positive radius, not {radius}")
     xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
     centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
     if len(xy) == 0 or len(centres) == 0:
         return np.zeros(0, dtype=np.intp)
     lo, hi = column_bounds(xy)
+
+    def query(which: np.ndarray | slice) -> np.ndarray:
+        d, _ = cKDTree(centres).query(xy[which], distance_upper_bound=radius)
+        return np.isfinite(d)
+
+    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+        return np.flatnonzero(query(slice(None)))  # cKDTree rejects the input as before
     reach = np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)
     if not reach.any():
         return np.zeros(0, dtype=np.intp)
-    extent = hi - lo
-    size = max(radius / 8.0, float(np.sqrt(extent[0] * extent[1] / 4e6)), 1e-6)
-    shape = np.floor(extent / size).astype(np.int64) + 1
-    tol = 1e-6 * (float(np.max(np.abs(np.concatenate([lo, hi])))) + radius) + 1e-9
+    size, shape = _raster_cells(hi - lo, radius / 8.0, max(4 * len(xy), 1 << 12))
+    if size > radius / 2.0:
+        return np.flatnonzero(query(slice(None)))
+    # far above the round-off of the distances (≈ 1e-16 of the coordinates' magnitude)
+    tol = 1e-12 * (float(np.max(np.abs(np.concatenate([lo, hi])))) + radius) + 1e-12
     half = size * np.sqrt(0.5) + tol
     gu, gv = np.meshgrid(lo[0] + (np.arange(shape[0]) + 0.5) * size,
                          lo[1] + (np.arange(shape[1]) + 0.5) * size, indexing="ij")
@@ -93,6 +122,5 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     keep = point_state == 1
     test = np.flatnonzero(point_state == 2)
     if len(test):
-        d, _ = cKDTree(centres).query(xy[test], distance_upper_bound=radius)
-        keep[test[np.isfinite(d)]] = True
+        keep[test[query(test)]] = True
     return np.flatnonzero(keep)

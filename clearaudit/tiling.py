@@ -187,24 +187,33 @@ def make_records(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray) -> np.ndarra
 
 def record_xyz(records: np.ndarray) -> np.ndarray:
     """The records' points as one contiguous (n, 3) float64 array. [m]"""
+    _records(records)
     return np.ascontiguousarray(records.view(_FILL)["xyz"]).view("<f8").reshape(-1, 3)
 
 
 def record_keys(records: np.ndarray) -> np.ndarray:
     """The records' keys as one contiguous int64 array."""
+    _records(records)
     return np.ascontiguousarray(records.view(_FILL)["key"]).view("<i8")
+
+
+def _records(a: np.ndarray) -> np.ndarray:
+    """``a`` seen as opaque items, after checking that it holds :data:`RECORD` items."""
+    if a.dtype != RECORD:
+        raise TypeError(f"expected tile records ({RECORD}), not {a.dtype}")
+    return a.view(_RAW)
 
 
 def take_records(records: np.ndarray, index: np.ndarray) -> np.ndarray:
     """``records[index]`` (positions or a mask) for :data:`RECORD` arrays, copied whole."""
-    return records.view(_RAW)[index].view(RECORD)
+    return _records(records)[index].view(RECORD)
 
 
 def concat_records(parts: list[np.ndarray]) -> np.ndarray:
     """``numpy.concatenate(parts)`` for :data:`RECORD` arrays, copied whole."""
     if not parts:
         return np.zeros(0, dtype=RECORD)
-    return np.concatenate([p.view(_RAW) for p in parts]).view(RECORD)
+    return np.concatenate([_records(p) for p in parts]).view(RECORD)
 
 
 def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
@@ -405,7 +414,7 @@ def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
             raise OSError(f"{f}: expected {m * RECORD.itemsize} bytes, read {got}")
         at += m
     if then is not None and len(then):
-        out.view(_RAW)[n:] = then.view(_RAW)
+        out.view(_RAW)[n:] = _records(then)
     return out
 
 
@@ -460,7 +469,7 @@ def class_mask(codes: np.ndarray, wanted: tuple[int, ...]) -> np.ndarray:
     if codes.dtype != np.uint8:
         return np.isin(codes, wanted)
     table = np.zeros(256, dtype=bool)
-    table[list(wanted)] = True
+    table[[c for c in wanted if 0 <= c < 256]] = True
     return table[codes]
 
 

@@ -133,3 +133,16 @@ def test_highest_point_per_cell_table_and_sort_paths_agree():
         cells, top = _highest_per_cell(key * scale, z)
         np.testing.assert_array_equal(cells, ref_cells * scale)
         np.testing.assert_array_equal(top, ref_top)
+
+
+def test_tree_tops_ignore_points_without_a_height():
+    # a point with no elevation (NaN) is not a tree top and does not move another cell's top
+    rng = np.random.default_rng(3)
+    xy = rng.uniform(-2, 2, size=(400, 2))
+    pts = np.column_stack([xy, 12.0 - np.hypot(xy[:, 0], xy[:, 1])])
+    with_nan = np.vstack([pts, [[0.2, 0.2, np.nan]], [[30.0, 30.0, np.nan]]])
+    hag = with_nan[:, 2].copy()
+    hag[-2:] = 5.0
+    a, b = find_tree_tops(pts, pts[:, 2]), find_tree_tops(with_nan, hag)
+    np.testing.assert_array_equal(a.xy, b.xy)
+    np.testing.assert_array_equal(a.height_m, b.height_m)

@@ -79,6 +79,7 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
     first, second = read_cells(tmp_path, tiles[0].cells), read_cells(tmp_path, tiles[1].cells)
     both = read_cells(tmp_path, tiles[0].cells, then=second[::7])
     assert both.tobytes() == np.concatenate([first, second[::7]]).tobytes()
+    assert read_cells(tmp_path, tiles[0].cells, then=second[:0]).tobytes() == first.tobytes()
 
 
 def test_dask_run_identical_to_in_process(corridor, tmp_path):

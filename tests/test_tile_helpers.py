@@ -127,3 +127,58 @@ def test_grid_frame_of_a_strided_sample_equals_its_contiguous_copy():
         for name in ("centre", "axes", "corner"):
             np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
         assert a.shape == b.shape
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_near_candidates_hold_every_point_within_the_radius(seed):
+    # reference: cKDTree.query with distance_upper_bound; the candidates are a superset
+    from clearaudit.arrays import near_candidates
+
+    rng = np.random.default_rng(seed)
+    xy = rng.uniform([0, 0], [500, 120], size=(40_000, 2))
+    centres = np.concatenate([rng.uniform([0, 0], [500, 120], size=(6, 2)),
+                              [[-20.0, 60.0], [250.0, 140.0], [-900.0, 0.0]]])
+    radius = 23.0
+    d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
+    cand = near_candidates(xy, centres, radius)
+    assert np.all(np.diff(cand) > 0)
+    assert np.isin(np.flatnonzero(np.isfinite(d)), cand).all()
+    assert len(cand) < len(xy) / 2  # and it does thin the points out
+    # a raster of more than four cells per point, a non-finite radius or coordinate: all
+    few = np.array([[0.0, 0.0], [9000.0, 7000.0]])
+    np.testing.assert_array_equal(near_candidates(few, centres, radius), [0, 1])
+    np.testing.assert_array_equal(near_candidates(xy[:5], centres, np.inf), np.arange(5))
+    bad = xy[:5].copy()
+    bad[2, 0] = np.nan
+    np.testing.assert_array_equal(near_candidates(bad, centres, radius), np.arange(5))
+    assert len(near_candidates(xy, centres[-1:], radius)) == 0  # out of reach
+
+
+def test_near_points_on_thin_and_sparse_boxes_and_bad_input():
+    # reference: cKDTree.query with distance_upper_bound over every point
+    rng = np.random.default_rng(8)
+    centres = rng.uniform([0, 0], [3000, 1], size=(10, 2))
+    for xy in (np.column_stack([rng.uniform(0, 3000, 20_000), np.full(20_000, 0.5)]),  # a line
+               rng.uniform([0, 0], [6000, 6000], size=(300, 2)),  # few points, large box
+               np.array([[0.0, 0.0], [10.0, 0.0]])):
+        for radius in (0.01, 21.0, 300.0):
+            d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
+            np.testing.assert_array_equal(near_points(xy, centres, radius),
+                                          np.flatnonzero(np.isfinite(d)))
+    bad = np.array([[np.nan, 1.0], [1.0, 1.0]])
+    with pytest.raises(ValueError):
+        near_points(bad, centres, 2.0)  # as the plain query: non-finite points rejected
+    for radius in (0.0, -1.0, np.inf, np.nan):
+        with pytest.raises(ValueError):
+            near_points(centres, centres, radius)
+
+
+def test_record_helpers_reject_other_layouts_and_class_mask_ignores_foreign_codes():
+    from clearaudit.tiling import RECORD, class_mask, take_records
+
+    other = np.zeros(4, dtype=np.dtype([("xyz", ">f8", (3,)), ("cls", "u1"), ("key", ">i8")]))
+    assert other.dtype.itemsize == RECORD.itemsize
+    with pytest.raises(TypeError):
+        take_records(other, [0, 1])
+    codes = np.array([255, 1, 0], dtype=np.uint8)
+    np.testing.assert_array_equal(class_mask(codes, (-1, 1, 256)), np.isin(codes, (-1, 1, 256)))

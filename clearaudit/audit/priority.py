@@ -129,7 +129,7 @@ def _highest_per_cell(key: np.ndarray, z: np.ndarray) -> tuple[np.ndarray, np.nd
     Of equal heights the last point in input order. With a key range of at most 8 per point
     (or 4 M) two ``maximum.at`` passes over a table of the keys; otherwise a stable sort by
     key (input order within a cell) and the highest of each run. Both give the same cells and
-    points.
+    points for finite heights (the caller drops the others).
     """
     n = len(key)
     span = int(key.max()) + 1
@@ -190,7 +190,7 @@ def find_tree_tops(xyz: np.ndarray, height_above_ground_m: np.ndarray, *, cell_m
         raise ValueError("Give one height above ground per point.")
     if not (cell_m > 0 and window_m > 0):
         raise ValueError("The cell size and the window must be positive.")
-    ok = np.isfinite(hag)
+    ok = np.isfinite(hag) & np.isfinite(pts[:, 2])
     if not ok.all():
         pts, hag = pts[ok], hag[ok]
     if len(pts) == 0:

@@ -97,9 +97,13 @@ class GridFrame:
         margin
             Extra border around the points. [m]
         """
-        # a contiguous copy of the sample: numpy reduces a strided (n, 2) view over its rows
-        # about four times slower (same values)
-        probe = cls.fit(np.ascontiguousarray(xy[:: max(1, len(xy) // 200_000)]), cell)
+        # a row-major sample is copied: numpy reduces a strided (n, 2) view of a row-major
+        # array over its rows about four times slower than a contiguous copy, with the same
+        # values (a column-major view is summed in another order: left as it is)
+        sample = xy[:: max(1, len(xy) // 200_000)]
+        if sample.ndim == 2 and sample.strides[0] >= sample.strides[1]:
+            sample = np.ascontiguousarray(sample)
+        probe = cls.fit(sample, cell)
         # cell coordinates relative to the centre, then shifted to the fitted corner
         loc = GridFrame(probe.centre, probe.axes, np.zeros(2), float(cell), (1, 1)).locate(xy)
         fu, fv = loc.fu, loc.fv
