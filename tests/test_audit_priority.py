@@ -129,7 +129,7 @@ def test_highest_point_per_cell_table_and_sort_paths_agree():
     ref_cells = np.unique(key)
     ref_top = np.array([np.flatnonzero((key == c) & (z == z[key == c].max()))[-1]
                         for c in ref_cells])
-    for scale in (1, 10_000_000):  # a dense table, then a key range too wide for one
+    for scale in (1, 10_000_000):  # a table, then a key range too wide for one
         cells, top = _highest_per_cell(key * scale, z)
         np.testing.assert_array_equal(cells, ref_cells * scale)
         np.testing.assert_array_equal(top, ref_top)

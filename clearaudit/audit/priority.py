@@ -126,22 +126,24 @@ class TreeTops:
 def _highest_per_cell(key: np.ndarray, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The occupied cells (ascending keys) and the index of each one's highest point.
 
-    Of equal heights the last point in input order. With a key range of at most 8 per point
-    (or 4 M) two ``maximum.at`` passes over a table of the keys; otherwise a stable sort by
-    key (input order within a cell) and the highest of each run. Both give the same cells and
-    points for finite heights (the caller drops the others).
+    Of equal heights the last point in input order. With a key range of at most 2 per point
+    (or 1 M) two ``maximum.at`` passes over a table of the keys (12 bytes per key: no more
+    memory than the sort); otherwise a stable sort by key (input order within a cell) and the
+    highest of each run. Both give the same cells and points for finite heights (the caller
+    drops the others).
     """
     n = len(key)
     span = int(key.max()) + 1
-    if span <= max(8 * n, 1 << 22):
+    if span <= max(2 * n, 1 << 20):
         best = np.full(span, -np.inf)
         np.maximum.at(best, key, z)
         idx = np.flatnonzero(z == best[key])
         del best
-        last = np.full(span, -1, dtype=np.int64)
-        np.maximum.at(last, key[idx], idx)
+        itype = np.int32 if n < 2**31 else np.int64
+        last = np.full(span, -1, dtype=itype)
+        np.maximum.at(last, key[idx], idx.astype(itype))
         cell_key = np.flatnonzero(last >= 0)
-        return cell_key, last[cell_key]
+        return cell_key, last[cell_key].astype(np.intp)
     order = np.argsort(key, kind="stable")
     skey = key[order]
     first = np.ones(n, dtype=bool)
