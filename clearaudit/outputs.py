@@ -61,7 +61,29 @@ def _crs_polyline(cloud: Cloud, xyz_local: Any) -> list:
     points = np.asarray(xyz_local, dtype=float)
     if points.ndim != 2:
         return [_crs_list(cloud, p) for p in points]
-    return [[round(v, 4) for v in row] for row in cloud.to_crs(points).tolist()]
+    return round_like_python(cloud.to_crs(points), 4).tolist()
+
+
+def round_like_python(values: np.ndarray, digits: int) -> np.ndarray:
+    """``round(v, digits)`` of every value, as Python rounds (to the nearest decimal, ties to
+    even, on the value's exact binary expansion), computed as arrays.
+
+    ``numpy.round`` scales, rounds to an integer and divides back: the divided value is the
+    double nearest to that decimal, as Python's is; the two can pick different integers only
+    when the scaled value lies next to a half. Those few values are rounded by Python.
+    """
+    v = np.asarray(values, dtype=np.float64)
+    out = np.round(v, digits)
+    scaled = v * 10.0 ** digits
+    with np.errstate(invalid="ignore"):
+        near_half = np.abs(scaled - np.floor(scaled) - 0.5) < 1e-3
+    near_half &= np.isfinite(v)
+    near_half |= np.abs(scaled) >= 2.0 ** 52  # no fraction left to round: Python decides
+    if near_half.any():
+        at = np.flatnonzero(near_half.ravel())
+        flat = out.reshape(-1)
+        flat[at] = [round(x, digits) for x in v.reshape(-1)[at].tolist()]
+    return out
 
 
 def span_rows_crs(cloud: Cloud, rows: list[dict]) -> list[dict]:

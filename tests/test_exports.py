@@ -72,3 +72,19 @@ def test_geopackage_read_by_gdal(tmp_path):
     con = sqlite3.connect(path)
     assert con.execute("PRAGMA application_id").fetchone()[0] == 0x47504B47
     con.close()
+
+
+@pytest.mark.parametrize("scale", [1.0, 1e3, 5e6, 1e8])
+def test_array_rounding_is_pythons_round(scale):
+    # reference: Python's built-in round (correctly rounded decimal, ties to even)
+    from clearaudit.outputs import round_like_python
+
+    rng = np.random.default_rng(int(scale) % 97)
+    v = rng.normal(size=(20_000, 3)) * scale
+    v[:500, 0] = np.round(rng.normal(size=500) * scale, 4) + 0.00005  # next to a half
+    v[500:1000, 1] = np.arange(500) * 0.00005                          # decimal halves
+    v[1000, :] = [np.nan, np.inf, -0.00001]
+    v[1001, :] = [1e17, -3e15, 2.0 ** 60]                               # no fraction left
+    ref = [[round(x, 4) for x in row] for row in v.tolist()]
+    got = round_like_python(v, 4).tolist()
+    assert json.dumps(got) == json.dumps(ref)
