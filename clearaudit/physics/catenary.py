@@ -53,18 +53,24 @@ _SOLVER_MIN_CONSTANT_PER_SPAN = 1.0 / 50.0
 _SOLVER_MAX_CONSTANT_M = 1e15
 
 
+def _positive(value: ArrayLike, message: str) -> np.ndarray:
+    """``value`` as a float array, every element > 0 (NaN is not), else ``ValueError``."""
+    if type(value) is float or type(value) is np.float64:  # the common scalar: no array test
+        if not value > 0:
+            raise ValueError(message)
+        return np.asarray(value, dtype=float)
+    v = np.asarray(value, dtype=float)
+    if np.any(~(v > 0)):
+        raise ValueError(message)
+    return v
+
+
 def _check_constant(catenary_constant: ArrayLike) -> np.ndarray:
-    c = np.asarray(catenary_constant, dtype=float)
-    if np.any(~(c > 0)):
-        raise ValueError("The catenary constant must be positive.")
-    return c
+    return _positive(catenary_constant, "The catenary constant must be positive.")
 
 
 def _check_span(span_length: ArrayLike) -> np.ndarray:
-    span = np.asarray(span_length, dtype=float)
-    if np.any(~(span > 0)):
-        raise ValueError("The span length must be positive.")
-    return span
+    return _positive(span_length, "The span length must be positive.")
 
 
 def low_point_offset(span_length: ArrayLike, height_difference: ArrayLike,
