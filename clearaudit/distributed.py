@@ -287,8 +287,10 @@ def _start_local_cluster(workers: int) -> tuple[Any, Any]:
            if k != "MALLOC_TRIM_THRESHOLD_"}
     env["CLEARAUDIT_THREADS"] = 1
     with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
+        # the scheduler's HTTP server on any free port: with the fixed default (8787) a
+        # second audit on the same machine printed a "port already in use" warning
         cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR,
+                               dashboard_address=":0", silence_logs=logging.ERROR,
                                preload=list(WORKER_PRELOAD))
     try:
         client = Client(cluster, set_as_default=False)
