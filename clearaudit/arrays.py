@@ -19,6 +19,39 @@ def column_bounds(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return lo, hi
 
 
+def code_counts(codes: np.ndarray) -> np.ndarray:
+    """Number of points per uint8 class code (length 256).
+
+    Counted in chunks: ``np.bincount`` widens its input to intp, which for a whole cloud is a
+    temporary eight times the size of the codes (integer counts: exact in any order).
+    """
+    counts = np.zeros(256, np.int64)
+    step = 1 << 16
+    for start in range(0, len(codes), step):  # a loop over chunks of points
+        counts += np.bincount(codes[start:start + step], minlength=256)
+    return counts
+
+
+def class_counts(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``numpy.unique(codes, return_counts=True)``, by :func:`code_counts` for uint8 codes."""
+    codes = np.asarray(codes)
+    if codes.dtype != np.uint8:
+        return np.unique(codes, return_counts=True)
+    counts = code_counts(codes)
+    present = np.flatnonzero(counts)
+    return present.astype(np.uint8), counts[present]
+
+
+def class_mask(classes: np.ndarray, codes) -> np.ndarray:
+    """``numpy.isin(classes, codes)`` for uint8 class codes, by a 256-entry lookup table."""
+    classes = np.asarray(classes)
+    if classes.dtype != np.uint8:
+        return np.isin(classes, np.asarray(codes))
+    table = np.zeros(256, dtype=bool)
+    table[[c for c in np.asarray(codes, dtype=np.int64).ravel().tolist() if 0 <= c < 256]] = True
+    return table[classes]
+
+
 def _raster_cells(extent: np.ndarray, size: float, most: int) -> tuple[float, np.ndarray]:
     """Cell size (``size`` or a power-of-two multiple of it) and shape of a raster over
     ``extent`` with at most ``most`` cells."""
@@ -27,43 +60,6 @@ def _raster_cells(extent: np.ndarray, size: float, most: int) -> tuple[float, np
         if int(shape[0]) * int(shape[1]) <= most:
             return size, shape
         size *= 2.0
-
-
-def near_candidates(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
-    """Positions of the points of ``xy`` that may lie within ``radius`` of one of ``centres``.
-
-    A superset, in ascending order: the points in square cells of ``radius / 2`` within two
-    cells (Chebyshev) of a centre's cell. Every point within ``radius`` of a centre is in
-    such a cell (``|floor(u) - floor(v)| <= ceil(|u - v|) <= 2`` cells when
-    ``|u - v| <= radius``); most points of a tile are not, when the centres are few. All
-    points when such a raster would hold more than four cells per point (a sparse or thin
-    box), or when the radius or a coordinate is not finite (the caller's exact query then
-    decides, or rejects the input).
-    """
-    from scipy.ndimage import binary_dilation
-
-    xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
-    centres = np.asarray(centres, dtype=np.float64).reshape(-1, 2)
-    if len(xy) == 0 or len(centres) == 0:
-        return np.zeros(0, dtype=np.intp)
-    lo, hi = column_bounds(xy)
-    if not (np.isfinite(radius) and radius > 0 and np.all(np.isfinite(lo))
-            and np.all(np.isfinite(hi))):
-        return np.arange(len(xy))
-    centres = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
-    if len(centres) == 0:
-        return np.zeros(0, dtype=np.intp)
-    size = radius / 2.0
-    shape = np.floor((hi - lo) / size).astype(np.int64) + 1
-    if int(shape[0]) * int(shape[1]) > max(4 * len(xy), 1 << 16):
-        return np.arange(len(xy))
-    # a centre outside the points' box sits in the border cell nearest to it: a superset
-    c = np.clip(np.floor((centres - lo) / size).astype(np.int64), 0, shape - 1)
-    occupied = np.zeros((int(shape[0]), int(shape[1])), dtype=bool)
-    occupied[c[:, 0], c[:, 1]] = True
-    occupied = binary_dilation(occupied, structure=np.ones((5, 5), dtype=bool))
-    cell = np.floor((xy - lo) / size).astype(np.int64)
-    return np.flatnonzero(occupied[cell[:, 0], cell[:, 1]])
 
 
 def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:

@@ -47,7 +47,7 @@ from typing import Any
 
 import numpy as np
 
-from .arrays import column_bounds, near_points
+from .arrays import class_counts, class_mask, column_bounds, near_points
 from .cloud import (
     GROUND,
     TRANSMISSION_TOWER,
@@ -462,24 +462,6 @@ class TileContext:
 def _cloud(ctx: TileContext, xyz: np.ndarray, cls: np.ndarray) -> Cloud:
     return Cloud(xyz=xyz, origin=ctx.origin, crs=ctx.crs, horizontal_unit_m=ctx.horizontal_unit_m,
                  vertical_unit_m=ctx.vertical_unit_m, classification=cls)
-
-
-def class_mask(codes: np.ndarray, wanted: tuple[int, ...]) -> np.ndarray:
-    """``numpy.isin(codes, wanted)`` by one table lookup for 8-bit class codes."""
-    if codes.dtype != np.uint8:
-        return np.isin(codes, wanted)
-    table = np.zeros(256, dtype=bool)
-    table[[c for c in wanted if 0 <= c < 256]] = True
-    return table[codes]
-
-
-def class_counts(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``numpy.unique(codes, return_counts=True)`` by one count per code for 8-bit codes."""
-    if codes.dtype != np.uint8:
-        return np.unique(codes, return_counts=True)
-    counts = np.bincount(codes, minlength=256)
-    present = np.flatnonzero(counts)
-    return present.astype(np.uint8), counts[present]
 
 
 # =============================================================================== task A: classify

@@ -9,8 +9,7 @@ import numpy as np
 import pytest
 from scipy.spatial import cKDTree
 
-from clearaudit.arrays import near_points
-from clearaudit.tiling import class_counts, class_mask
+from clearaudit.arrays import class_counts, class_mask, near_points
 
 
 @pytest.mark.parametrize("dtype", [np.uint8, np.int32])
@@ -130,28 +129,23 @@ def test_grid_frame_of_a_strided_sample_equals_its_contiguous_copy():
 
 
 @pytest.mark.parametrize("seed", [0, 1])
-def test_near_candidates_hold_every_point_within_the_radius(seed):
-    # reference: cKDTree.query with distance_upper_bound; the candidates are a superset
-    from clearaudit.arrays import near_candidates
-
+def test_near_points_with_centres_around_and_beyond_the_box(seed):
+    # reference: cKDTree.query with distance_upper_bound (the structure-extent lookup of the
+    # refinement asks for the points within the largest extent this way)
     rng = np.random.default_rng(seed)
     xy = rng.uniform([0, 0], [500, 120], size=(40_000, 2))
     centres = np.concatenate([rng.uniform([0, 0], [500, 120], size=(6, 2)),
                               [[-20.0, 60.0], [250.0, 140.0], [-900.0, 0.0]]])
     radius = 23.0
     d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
-    cand = near_candidates(xy, centres, radius)
-    assert np.all(np.diff(cand) > 0)
-    assert np.isin(np.flatnonzero(np.isfinite(d)), cand).all()
-    assert len(cand) < len(xy) / 2  # and it does thin the points out
-    # a raster of more than four cells per point, a non-finite radius or coordinate: all
-    few = np.array([[0.0, 0.0], [9000.0, 7000.0]])
-    np.testing.assert_array_equal(near_candidates(few, centres, radius), [0, 1])
-    np.testing.assert_array_equal(near_candidates(xy[:5], centres, np.inf), np.arange(5))
-    bad = xy[:5].copy()
-    bad[2, 0] = np.nan
-    np.testing.assert_array_equal(near_candidates(bad, centres, radius), np.arange(5))
-    assert len(near_candidates(xy, centres[-1:], radius)) == 0  # out of reach
+    got = near_points(xy, centres, radius)
+    assert np.all(np.diff(got) > 0)
+    np.testing.assert_array_equal(got, np.flatnonzero(np.isfinite(d)))
+    assert len(got) < len(xy) / 2
+    few = np.array([[0.0, 0.0], [9000.0, 7000.0]])  # a raster of more than 4 cells a point
+    d, _ = cKDTree(centres).query(few, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(few, centres, radius), np.flatnonzero(np.isfinite(d)))
+    assert len(near_points(xy, centres[-1:], radius)) == 0  # out of reach
 
 
 def test_near_points_on_thin_and_sparse_boxes_and_bad_input():
@@ -174,7 +168,7 @@ def test_near_points_on_thin_and_sparse_boxes_and_bad_input():
 
 
 def test_record_helpers_reject_other_layouts_and_class_mask_ignores_foreign_codes():
-    from clearaudit.tiling import RECORD, class_mask, take_records
+    from clearaudit.tiling import RECORD, take_records
 
     other = np.zeros(4, dtype=np.dtype([("xyz", ">f8", (3,)), ("cls", "u1"), ("key", ">i8")]))
     assert other.dtype.itemsize == RECORD.itemsize

@@ -38,6 +38,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from clearaudit.arrays import class_mask
 from clearaudit.cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -522,8 +523,8 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
         buffer_m = plan.buffer_m
         ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces \
             else np.array([2], dtype=np.uint8)
-        is_ground = _class_mask(classes, ground_classes)
-        is_veg = _class_mask(classes, VEGETATION_CLASSES)
+        is_ground = class_mask(classes, ground_classes)
+        is_veg = class_mask(classes, VEGETATION_CLASSES)
         context_m = (max(opts.fall_in_buffer_m, buffer_m) if opts.fall_in
                      else buffer_m + opts.tree_window_m)
         reach = {"vegetation": context_m + pad,
@@ -968,7 +969,7 @@ def audit_line(cloud: Cloud, classification: Any, model: Any, config: Any,
     xyz = cloud.xyz
     ground_classes = np.array(sorted(rules.surfaces), dtype=np.uint8) if rules.surfaces else \
         np.array([2], dtype=np.uint8)
-    is_ground = _class_mask(classes, ground_classes)
+    is_ground = class_mask(classes, ground_classes)
     plan = prepare_wire_states(
         model, config, conductors, rules, latitude_deg=_latitude(cloud),
         ground_z_m=xyz[is_ground, 2],
@@ -1030,16 +1031,6 @@ def _plan_samples(curves: list[np.ndarray], step_m: float = 4.0) -> tuple[cKDTre
 _EPS_M = 1e-6
 #: Station bin of :class:`_CurveWindow`. [m]
 _BIN_M = 0.5
-
-
-def _class_mask(classes: np.ndarray, codes) -> np.ndarray:
-    """``np.isin(classes, codes)`` for uint8 class codes, by a 256-entry lookup table."""
-    classes = np.asarray(classes)
-    if classes.dtype != np.uint8:
-        return np.isin(classes, np.asarray(codes))
-    table = np.zeros(256, dtype=bool)
-    table[np.asarray(codes, dtype=np.int64)] = True
-    return table[classes]
 
 
 class _PlanGrid:

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ..arrays import class_mask, code_counts
 from ..cloud import (
     BUILDING,
     GROUND,
@@ -91,9 +92,9 @@ def _walls_under_roofs(xyz: np.ndarray, hag: np.ndarray, classes: np.ndarray,
     grid = anchored_frame(xyz[b, :2], opts.building_cell_m, margin_cells=2)
     lo = grid.corner
     hi = lo + np.array(grid.shape) * grid.cell
-    wall_class = np.zeros(256, bool)  # class lookup table (one gather, not four comparisons)
-    wall_class[[UNCLASSIFIED, 3, 4, 5]] = True
-    cand = np.flatnonzero(wall_class[classes] & (hag >= opts.object_min_hag_m))
+    # one table lookup, not four comparisons
+    cand = np.flatnonzero(class_mask(classes, (UNCLASSIFIED, 3, 4, 5))
+                          & (hag >= opts.object_min_hag_m))
     # then inside the roof grid (the test on the candidates only: the same points)
     xy = xyz[cand, :2]
     cand = cand[(xy[:, 0] >= lo[0]) & (xy[:, 0] < hi[0]) & (xy[:, 1] >= lo[1]) & (xy[:, 1] < hi[1])]
@@ -105,19 +106,6 @@ def _walls_under_roofs(xyz: np.ndarray, hag: np.ndarray, classes: np.ndarray,
     cell = grid.flat_index(xyz[cand, :2])
     wall = xyz[cand, 2] <= top[cell] + 0.3
     classes[cand[wall]] = BUILDING
-
-
-def _code_counts(codes: np.ndarray) -> np.ndarray:
-    """Number of points per uint8 class code (length 256).
-
-    Counted in chunks: ``np.bincount`` widens its input to intp, which for a whole cloud is a
-    temporary eight times the size of the codes (integer counts: exact in any order).
-    """
-    counts = np.zeros(256, np.int64)
-    step = 1 << 16
-    for start in range(0, len(codes), step):  # a loop over chunks of points
-        counts += np.bincount(codes[start:start + step], minlength=256)
-    return counts
 
 
 def _source_name(cloud: Cloud) -> str | None:
@@ -228,7 +216,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     t = time.perf_counter()
     vendor = np.asarray(cloud.classification, dtype=np.uint8)
     # points per class code of the file, one pass (not one membership test per group)
-    in_file = _code_counts(vendor) > 0
+    in_file = code_counts(vendor) > 0
     present = {name: bool(in_file[list(codes)].any()) for name, codes in CLASS_GROUPS.items()}
     # cell coordinates of every point, computed once (float32) and shared by all 1 m grids
     frame, location = GridFrame.fit_locate(xyz[:, :2], opts.smrf_cell_m, margin=opts.smrf_cell_m)
@@ -372,7 +360,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         classes = final
     step("merge", 1.0, t)
 
-    per_code = _code_counts(classes)  # uint8 codes: a count, not a sort
+    per_code = code_counts(classes)  # uint8 codes: a count, not a sort
     codes = np.flatnonzero(per_code)
     counts = per_code[codes]
     return ClassificationResult(

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..arrays import column_bounds
 from ..threads import run_chunks
 
 _CHUNK = 1 << 16  # points per chunk of the per-point passes (cache-sized temporaries)
@@ -36,7 +37,7 @@ def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple
         raise ValueError("the voxel edge must be positive")
     xyz = np.asarray(xyz, dtype=np.float64).reshape(-1, 3)
     # floor and division by a positive edge are monotonic: the lowest voxel is that of the minimum
-    low, high = _column_range(xyz)
+    low, high = column_bounds(xyz) if len(xyz) else (np.zeros(3), np.zeros(3))
     lowest = np.floor(low / voxel) - 1.0
     dims = np.floor(high / voxel) - lowest + 2.0
     total = float(dims[0]) * float(dims[1]) * float(dims[2])
@@ -63,27 +64,6 @@ def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple
 
     run_chunks(work, len(keys), _CHUNK)
     return keys, (int(dims[0]), int(dims[1]), int(dims[2]))
-
-
-def _column_range(xyz: np.ndarray, width: int = 4096) -> tuple[np.ndarray, np.ndarray]:
-    """Per-column minimum and maximum of an (n, 3) array.
-
-    Reduced over rows of ``3 * width`` values (a reduction of an (n, 3) array over its long
-    axis runs element by element in numpy, about five times slower).
-    """
-    n = len(xyz)
-    if n == 0:
-        return np.zeros(3), np.zeros(3)
-    m = n // width * width
-    low, high = np.full(3, np.inf), np.full(3, -np.inf)
-    if m:
-        head = xyz[:m].reshape(-1, 3 * width)
-        low = head.min(axis=0).reshape(width, 3).min(axis=0)
-        high = head.max(axis=0).reshape(width, 3).max(axis=0)
-    if m < n:
-        low = np.minimum(low, xyz[m:].min(axis=0))
-        high = np.maximum(high, xyz[m:].max(axis=0))
-    return low, high
 
 
 def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.ndarray:

@@ -26,7 +26,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from ..arrays import near_candidates
+from ..arrays import near_points
 from ..cloud import (
     HIGH_VEGETATION,
     LOW_VEGETATION,
@@ -205,7 +205,7 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
         # np.take: same values as xyz[interesting], several times faster on rows
         xyz_i = np.take(xyz, interesting, axis=0)
         reach = float(radius.max()) * (1.0 + 1e-9) + 1e-9
-        cand = near_candidates(xyz_i[:, :2], centres, reach)
+        cand = near_points(xyz_i[:, :2], centres, reach)
         if len(cand):
             xyz_c = np.take(xyz_i, cand, axis=0)
             dist, near_c = cKDTree(centres).query(xyz_c[:, :2])
