@@ -85,16 +85,18 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     if len(xy) == 0 or len(centres) == 0:
         return np.zeros(0, dtype=np.intp)
     lo, hi = column_bounds(xy)
+    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+        cKDTree(centres).query(xy)  # rejects the non-finite points, as a plain query does
+    # only the centres within the radius of the points' box can be within it of a point
+    centres = centres[np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)]
+    if len(centres) == 0:
+        return np.zeros(0, dtype=np.intp)
+    tree = cKDTree(centres)
 
     def query(which: np.ndarray | slice) -> np.ndarray:
-        d, _ = cKDTree(centres).query(xy[which], distance_upper_bound=radius)
+        d, _ = tree.query(xy[which], distance_upper_bound=radius)
         return np.isfinite(d)
 
-    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
-        return np.flatnonzero(query(slice(None)))  # cKDTree rejects the input as before
-    reach = np.all((centres >= lo - radius) & (centres <= hi + radius), axis=1)
-    if not reach.any():
-        return np.zeros(0, dtype=np.intp)
     size, shape = _raster_cells(hi - lo, radius / 8.0, max(4 * len(xy), 1 << 12))
     if size > radius / 2.0:
         return np.flatnonzero(query(slice(None)))
@@ -103,8 +105,8 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     half = size * np.sqrt(0.5) + tol
     gu, gv = np.meshgrid(lo[0] + (np.arange(shape[0]) + 0.5) * size,
                          lo[1] + (np.arange(shape[1]) + 0.5) * size, indexing="ij")
-    d_cell, _ = cKDTree(centres[reach]).query(np.column_stack([gu.ravel(), gv.ravel()]),
-                                              distance_upper_bound=radius + half + tol)
+    d_cell, _ = tree.query(np.column_stack([gu.ravel(), gv.ravel()]),
+                           distance_upper_bound=radius + half + tol)
     del gu, gv
     state = np.full(len(d_cell), 2, dtype=np.uint8)   # 2: test each point
     state[d_cell + half <= radius - tol] = 1          # every point within the radius
