@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Set up clearaudit in ./.venv on a Debian/Ubuntu machine with Python 3.11+.
-# Installs the system libraries open3d and VTK need (apt-get, when running as root; otherwise it
-# prints the exact command), creates the virtual environment and installs the package with its
+# Installs the system libraries open3d and VTK need and, where missing, a C compiler and the
+# Python headers (apt-get, when running as root; otherwise it prints the exact command), creates the virtual environment and installs the package with its
 # test extras. Safe to run again: it skips what is already done.
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -25,6 +25,13 @@ done
 if ! "$PYTHON" -m venv --help >/dev/null 2>&1 || ! "$PYTHON" -c 'import ensurepip' 2>/dev/null; then
   missing="$missing python3-venv"
 fi
+# A C compiler and the Python headers build the compiled kernel (clearaudit/classify/*.pyx).
+if ! command -v cc >/dev/null 2>&1 && ! command -v gcc >/dev/null 2>&1; then
+  missing="$missing gcc libc6-dev"
+fi
+if ! "$PYTHON" -c 'import os, sysconfig; import sys; sys.exit(0 if os.path.exists(os.path.join(sysconfig.get_paths()["include"], "Python.h")) else 1)' 2>/dev/null; then
+  missing="$missing python3-dev"
+fi
 if [ -n "$missing" ]; then
   if [ "$(id -u)" = "0" ] && command -v apt-get >/dev/null; then
     echo "Installing system packages:$missing"
@@ -41,9 +48,15 @@ if [ ! -x .venv/bin/python ]; then
   "$PYTHON" -m venv .venv
 fi
 stamp=.venv/.clearaudit-installed
-want=$(sha256sum pyproject.toml | cut -d' ' -f1)
+# reinstall (and rebuild the compiled kernel) when the metadata, the build or a kernel changes
+want=$(cat pyproject.toml setup.py clearaudit/*/*.pyx | sha256sum | cut -d' ' -f1)
 if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ]; then
   .venv/bin/python -m pip install -q --upgrade pip >/dev/null
-  .venv/bin/python -m pip install -q -e ".[test]"
+  # the build of the compiled kernel talks a lot: its log is shown only when it fails
+  if ! .venv/bin/python -m pip install -q -e ".[test]" > .venv/install.log 2>&1; then
+    cat .venv/install.log >&2
+    echo "Installing clearaudit failed (log above, also in .venv/install.log)." >&2
+    exit 1
+  fi
   echo "$want" > "$stamp"
 fi

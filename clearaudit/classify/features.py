@@ -1,22 +1,22 @@
 """Per-point eigen features of local neighbourhoods (covariance eigenvalues and vectors).
 
-Neighbourhoods are hybrid: the ``k`` nearest points within a radius (scipy ``cKDTree`` queries
-run in C). The query points are processed in chunks; each chunk gathers its neighbours'
-coordinates once per axis into contiguous (k, m) blocks, reduces the covariance moments from
-them and takes the eigen pairs in closed form. Chunks run on a thread pool (numpy and the tree
-release the GIL) when more than one thread is allowed; every value is computed per point, so
-the result does not depend on the thread count or the chunk size.
+Neighbourhoods are hybrid: the ``k`` nearest points within a radius. Their covariance moments
+come from one compiled pass over a grid of cells (:class:`clearaudit.classify.neighbours.
+NeighbourGrid`: the neighbour sets of scipy's ``cKDTree`` query, the moments reduced in the
+same pass); the eigen pairs come in closed form. Both run in chunks on a thread pool (the
+kernel and numpy release the GIL) when more than one thread is allowed; every value is computed
+per point, so the result does not depend on the thread count or the chunk size.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial import cKDTree
 
 from ..threads import inner_threads, run_chunks
+from .neighbours import NeighbourGrid
 
-_CHUNK = 65_536  # query points per chunk (a few MB of (k, m) blocks: cache friendly)
+_CHUNK = 65_536  # points per chunk of the eigen pass (cache friendly temporaries)
 
 
 @dataclass
@@ -67,7 +67,8 @@ def feature_threads(workers: int = -1) -> int:
 
 
 def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
-                   sparse_radius: float | None = None) -> EigenFeatures:
+                   sparse_radius: float | None = None,
+                   which: np.ndarray | None = None) -> EigenFeatures:
     """Eigen features of the ``k`` nearest neighbours within ``radius`` of every point.
 
     Parameters
@@ -84,6 +85,9 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     sparse_radius
         If given, points with fewer than 3 neighbours within ``radius`` are computed again
         with this larger radius (sparse wires, e.g. earth wires). [m]
+    which
+        If given, the features of these points only (indices into ``xyz``; their
+        neighbours are taken among all points); the result has one row per index.
 
     Notes
     -----
@@ -104,41 +108,41 @@ def eigen_features(xyz: np.ndarray, radius: float, k: int, workers: int = -1,
     threads = feature_threads(workers)
     xyz = np.asarray(xyz, dtype=np.float64)
     n = len(xyz)
-    if n == 0:
-        z1, z3 = np.zeros(0), np.zeros((0, 3))
-        return EigenFeatures(z1, z1, z1, z1, z3, z3, np.zeros(0, np.int32))
+    rows = None if which is None else np.asarray(which, dtype=np.int64)
+    m = n if rows is None else len(rows)
+    if n == 0 or m == 0:
+        z1, z3 = np.zeros(m), np.zeros((m, 3))
+        return EigenFeatures(z1, z1.copy(), z1.copy(), z1.copy(), z3, z3.copy(),
+                             np.zeros(m, np.int32))
     pts = xyz - xyz.mean(axis=0)
-    tree = cKDTree(pts)
+    # cells of the feature radius: one cell each way for it, a few for the sparse radius
+    grid = NeighbourGrid(pts, radius)
+    del pts
     k = min(k, n)
-    columns = tuple(np.ascontiguousarray(pts[:, c]) for c in range(3))
-    result = _features(pts, columns, tree, np.arange(n), radius, k, threads)
+    result = _features(grid, rows, radius, k, threads)
     if sparse_radius is not None and sparse_radius > radius:
         again = np.flatnonzero(result.count < 3)
         if len(again):
-            redo = _features(pts, columns, tree, again, sparse_radius, k, threads)
+            redo = _features(grid, again if rows is None else rows[again], sparse_radius, k,
+                             threads)
             for name in ("linearity", "planarity", "scattering", "verticality", "direction",
                          "normal", "count"):
                 getattr(result, name)[again] = getattr(redo, name)
     return result
 
 
-_PAIRS = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
-
-
-def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray],
-              tree: cKDTree, which: np.ndarray, radius: float, k: int,
+def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: int,
               threads: int) -> EigenFeatures:
-    """Eigen features of the points ``which`` (vectorised in chunks, chunks on ``threads``).
+    """Eigen features of the points ``rows`` (None: all) of ``grid``.
 
-    Each neighbourhood is taken relative to its query point (small numbers, no cancellation);
-    the neighbours' coordinates are gathered once per axis into contiguous (k, m) blocks
-    (missing neighbours point at the query point itself, so they add exact zeros), the six
-    covariance moments are reduced over the neighbour axis and the eigen pairs come from the
-    closed form of :func:`sym3_eigen` (rows it cannot resolve fall back to
+    The points are visited cell by cell (:meth:`NeighbourGrid.walk`) in chunks on
+    ``threads``; per chunk the neighbourhood moments come from :meth:`NeighbourGrid.moments`
+    (about each neighbourhood's mean, reduced relative to its query point) and the eigen pairs
+    from the closed form of :func:`sym3_eigen` (rows it cannot resolve fall back to
     ``numpy.linalg.eigh``). Every output row depends on its own point only.
     """
-    n_all = len(pts)
-    n = len(which)
+    positions, dest = grid.walk(rows)
+    n = len(positions)
     lin = np.zeros(n)
     pla = np.zeros(n)
     sca = np.zeros(n)
@@ -148,28 +152,11 @@ def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray
     count = np.zeros(n, dtype=np.int32)
 
     def chunk(start: int, stop: int) -> None:
-        rows = which[start:stop]
-        q = pts[rows]
-        _, idx = tree.query(q, k=k, distance_upper_bound=radius, workers=1)
-        if k == 1:
-            idx = idx[:, None]
-        valid = idx < n_all  # missing neighbours come back as index n_all
-        cnt = valid.sum(axis=1)
-        # (k, m): neighbour j of every query point is one contiguous row
-        near = np.where(valid, idx, rows[:, None]).T.copy()
-        del idx, valid
-        d = []
-        for c in range(3):
-            g = np.take(columns[c], near)
-            g -= q[:, c]
-            d.append(g)
-        del near
-        mean = [g.sum(axis=0) / cnt for g in d]
-        cov = [np.einsum("km,km->m", d[a], d[b]) / cnt - mean[a] * mean[b] for a, b in _PAIRS]
-        del d
-        vals, v_small, v_large, bad = _sym3_eigen(*cov)
+        cnt, cov = grid.moments(positions[start:stop], radius, k)
+        moments = [cov[:, i] for i in range(6)]
+        vals, v_small, v_large, bad = _sym3_eigen(*moments)
         if bad.any():
-            full = np.stack(cov, axis=1)[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
+            full = np.stack(moments, axis=1)[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
             bvals, bvecs = np.linalg.eigh(full)  # ascending
             vals[bad] = bvals
             v_small[bad] = bvecs[:, :, 0]
@@ -179,7 +166,7 @@ def _features(pts: np.ndarray, columns: tuple[np.ndarray, np.ndarray, np.ndarray
         l3 = np.maximum(vals[:, 0], 0.0)
         ok = l1 > 1e-12
         safe = np.where(ok, l1, 1.0)
-        sl = slice(start, stop)
+        sl = dest[start:stop]  # the rows these results belong to
         lin[sl] = np.where(ok, (l1 - l2) / safe, 0.0)
         pla[sl] = np.where(ok, (l2 - l3) / safe, 0.0)
         sca[sl] = np.where(ok, l3 / safe, 0.0)

@@ -116,8 +116,7 @@ def _scattering(xyz_all: np.ndarray, which: np.ndarray, radius: float = 1.25,
     if len(which) == 0:
         return np.zeros(0)
     tree_pts = xyz_all - xyz_all[which].mean(axis=0)
-    feats = eigen_features(tree_pts, radius, k, sparse_radius=3.0)
-    return feats.scattering[which]
+    return eigen_features(tree_pts, radius, k, sparse_radius=3.0, which=which).scattering
 
 
 def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float = 1.5,
