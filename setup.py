@@ -4,6 +4,7 @@ from setuptools import Extension, setup
 
 # -ffp-contract=off: no fused multiply-add, so every product and sum rounds as numpy's do
 setup(ext_modules=cythonize(
-    [Extension("clearaudit.classify._neighbours", ["clearaudit/classify/_neighbours.pyx"],
-               extra_compile_args=["-O3", "-ffp-contract=off"])],
+    [Extension(f"clearaudit.classify.{name}", [f"clearaudit/classify/{name}.pyx"],
+               extra_compile_args=["-O3", "-ffp-contract=off"])
+     for name in ("_neighbours", "_grid")],
     compiler_directives={"language_level": 3}))

@@ -150,6 +150,34 @@ def test_sampler_matches_scipy_bilinear(monkeypatch, threads):
     assert np.isnan(outside.sampler()(grid)).all()
 
 
+@pytest.mark.parametrize("itype", [np.int32, np.int64])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_compiled_bilinear_equals_the_numpy_formula(itype, dtype):
+    # reference: the same formula in numpy, one rounding per operation in the grid's precision
+    # (the kernel is built without fused multiply-add): equal values, not just close ones
+    from clearaudit.classify._grid import bilinear
+
+    rng = np.random.default_rng(4)
+    rows, cols = 40, 30
+    grid = (rng.normal(size=rows * cols) * 300 + 1200).astype(dtype)
+    n = 20_000
+    k00 = (rng.integers(0, rows - 1, n) * cols + rng.integers(0, cols - 1, n)).astype(itype)
+    a, b = rng.random(n, dtype=np.float32), rng.random(n, dtype=np.float32)
+    outside = rng.random(n) < 0.05
+    out = np.empty(n, dtype)
+    bilinear(grid, k00, a, b, outside.view(np.uint8), cols, out)
+    aa, bb = a.astype(dtype), b.astype(dtype)
+    v00, v01, v10, v11 = (grid[k00 + d] for d in (0, 1, cols, cols + 1))
+    lower = (v01 - v00) * bb + v00
+    upper = (v11 - v10) * bb + v10
+    expected = (upper - lower) * aa + lower
+    expected[outside] = np.nan
+    assert np.array_equal(out, expected, equal_nan=True)
+    with pytest.raises(IndexError):
+        bilinear(grid, np.array([rows * cols - 1], itype), a[:1], b[:1],
+                 np.zeros(1, np.uint8), cols, out[:1])
+
+
 def test_run_chunks_covers_every_index_once(monkeypatch):
     # reference: direct count of the visited indices
     for threads in ("1", "2"):

@@ -12,6 +12,7 @@ from scipy import ndimage
 
 from ..arrays import column_bounds
 from ..threads import run_chunks
+from ._grid import bilinear as _bilinear
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
 # run about twice as fast when a chunk's temporaries stay in the processor's cache, and the
@@ -322,31 +323,14 @@ class BilinearSampler:
         out = np.empty(len(self.k00), dtype)
         row = self.row
 
+        g = np.ascontiguousarray(g)
+        k00, wa, wb = (np.ascontiguousarray(v) for v in (self.k00, self.a, self.b))
+        outside = np.ascontiguousarray(self.outside).view(np.uint8)
+
         def work(lo: int, hi: int) -> None:
-            # lower = v00 + b (v01 - v00), upper = v10 + b (v11 - v10), value = lower + a (upper - lower)
-            a = self.a[lo:hi].astype(dtype, copy=False)
-            b = self.b[lo:hi].astype(dtype, copy=False)
-            k = self.k00[lo:hi]
-            v00 = g[k]
-            k = k + 1
-            lower = g[k]
-            lower -= v00
-            lower *= b
-            lower += v00
-            k += row - 1
-            g.take(k, out=v00)
-            k += 1
-            upper = out[lo:hi]
-            g.take(k, out=upper)
-            upper -= v00
-            upper *= b
-            upper += v00
-            upper -= lower
-            upper *= a
-            upper += lower
-            outside = self.outside[lo:hi]
-            if outside.any():
-                upper[outside] = np.nan
+            # lower = (v01 - v00) b + v00, upper = (v11 - v10) b + v10,
+            # value = (upper - lower) a + lower: one compiled pass, in the grid's precision
+            _bilinear(g, k00[lo:hi], wa[lo:hi], wb[lo:hi], outside[lo:hi], row, out[lo:hi])
 
         run_chunks(work, len(out), _CHUNK)
         return out
