@@ -178,6 +178,50 @@ def test_compiled_bilinear_equals_the_numpy_formula(itype, dtype):
                  np.zeros(1, np.uint8), cols, out[:1])
 
 
+def test_compiled_median_equals_numpy_median():
+    # reference: numpy.median (float32 in, the two middle values added and halved in float32)
+    from clearaudit.classify._grid import median_f32
+
+    rng = np.random.default_rng(8)
+    cases = [rng.normal(size=n).astype(np.float32) * scale
+             for n in (1, 2, 3, 4, 11, 1000, 1001, 65_537) for scale in (1.0, 1e-4, 3e4)]
+    cases += [np.round(rng.normal(size=5000), 1).astype(np.float32),  # many ties
+              np.array([-0.0, 0.0, -0.0, 0.0], np.float32),
+              np.array([np.inf, -np.inf, 1.0, 2.0], np.float32),
+              rng.integers(-5, 5, 10_001).astype(np.float32)]
+    for v in cases:
+        med = np.median(v)
+        got = median_f32(v)
+        assert isinstance(got, float) and np.float32(got) == med
+        # the median absolute deviation about that median, as refine_ground takes it
+        assert np.float32(median_f32(v, med, True)) == np.median(np.abs(v - med))
+    assert np.isnan(median_f32(np.array([1.0, np.nan, 2.0], np.float32)))
+    assert np.isnan(median_f32(np.zeros(0, np.float32)))
+
+
+def test_compiled_window_sums_equal_bincount():
+    # reference: numpy.bincount over the points within the window (same order: same sums)
+    from clearaudit.classify._grid import window_sums
+
+    rng = np.random.default_rng(6)
+    n, m = 50_000, 700
+    resid = rng.normal(scale=0.3, size=n).astype(np.float32)
+    resid[:10] = np.nan
+    cell = rng.integers(0, m, n).astype(np.int64)
+    values = rng.normal(loc=120.0, size=n)
+    for limit in (np.array([0.25], np.float32), rng.uniform(0.1, 0.4, n).astype(np.float32)):
+        inside = np.empty(n, np.uint8)
+        total, count = np.zeros(m), np.zeros(m, np.int64)
+        window_sums(resid, limit, cell, values, inside, total, count)
+        expected = np.abs(resid) <= limit
+        assert np.array_equal(inside.view(bool), expected)
+        assert np.array_equal(total, np.bincount(cell[expected], values[expected], minlength=m))
+        assert np.array_equal(count, np.bincount(cell[expected], minlength=m))
+    with pytest.raises(IndexError):
+        window_sums(resid[:1], limit[:1], np.array([m], np.int64), values[:1], inside[:1],
+                    total, count)
+
+
 def test_run_chunks_covers_every_index_once(monkeypatch):
     # reference: direct count of the visited indices
     for threads in ("1", "2"):

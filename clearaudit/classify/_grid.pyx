@@ -4,8 +4,9 @@
 Built with ``-ffp-contract=off``: every product and sum is rounded on its own in the grid's
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
-from libc.math cimport NAN
-from libc.stdint cimport int32_t, int64_t
+from libc.math cimport NAN, fabsf
+from libc.stdint cimport int32_t, int64_t, uint32_t
+from libc.stdlib cimport free, malloc
 
 ctypedef fused real:
     float
@@ -53,3 +54,128 @@ def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
             upper = upper - lower
             upper = upper * a
             out[i] = upper + lower
+
+
+cdef inline uint32_t _order_key(float v) noexcept nogil:
+    """A key whose unsigned order is the order of the float32 values (-0 before +0)."""
+    cdef uint32_t bits = (<uint32_t *> &v)[0]
+    if bits & 0x80000000u:
+        return ~bits
+    return bits | 0x80000000u
+
+
+cdef inline float _from_key(uint32_t key) noexcept nogil:
+    cdef uint32_t bits
+    if key & 0x80000000u:
+        bits = key & 0x7FFFFFFFu
+    else:
+        bits = ~key
+    return (<float *> &bits)[0]
+
+
+cdef uint32_t _select(const float[::1] v, float center, bint centred, Py_ssize_t rank,
+                      int64_t *high, int64_t *low) noexcept nogil:
+    """Key of the value of 0-based ``rank`` in sorted order (``high``: the histogram of the
+    keys' upper 16 bits, filled; ``low``: 65536 counts of scratch)."""
+    cdef Py_ssize_t n = v.shape[0], i
+    cdef int64_t seen = 0
+    cdef uint32_t bucket = 0, key
+    cdef float x
+    while seen + high[bucket] <= rank:
+        seen += high[bucket]
+        bucket += 1
+    for i in range(65536):
+        low[i] = 0
+    for i in range(n):
+        x = v[i]
+        if centred:
+            x = fabsf(x - center)
+        key = _order_key(x)
+        if (key >> 16) == bucket:
+            low[key & 0xFFFFu] += 1
+    i = 0
+    while seen + low[i] <= rank:
+        seen += low[i]
+        i += 1
+    return (bucket << 16) | <uint32_t> i
+
+
+def median_f32(const float[::1] v, float center=0.0, bint centred=False):
+    """``numpy.median`` of float32 values (of ``|v - center|`` when ``centred``), exactly:
+    the middle value, or for an even count the two middle values added and halved in
+    float32 (numpy's mean of the two); NaN when any value is NaN or there are none.
+
+    Two counting passes over 16-bit halves of an order-preserving key (a radix select)
+    instead of a partition of a copy.
+    """
+    cdef Py_ssize_t n = v.shape[0], i
+    if n == 0:
+        return float("nan")
+    cdef int64_t *high = <int64_t *> malloc(65536 * sizeof(int64_t))
+    cdef int64_t *low = <int64_t *> malloc(65536 * sizeof(int64_t))
+    if not high or not low:
+        free(high)
+        free(low)
+        raise MemoryError()
+    cdef bint nan = False
+    cdef float x, a, b, result
+    with nogil:
+        for i in range(65536):
+            high[i] = 0
+        for i in range(n):
+            x = v[i]
+            if centred:
+                x = fabsf(x - center)
+            if x != x:
+                nan = True
+                break
+            high[_order_key(x) >> 16] += 1
+        if not nan:
+            a = _from_key(_select(v, center, centred, (n - 1) // 2, high, low))
+            if n % 2:
+                result = a
+            else:
+                b = _from_key(_select(v, center, centred, n // 2, high, low))
+                result = a + b
+                result = result / 2
+    free(high)
+    free(low)
+    if nan:
+        return float("nan")
+    return result
+
+
+def window_sums(const float[::1] resid, const float[::1] limit, const int64_t[::1] cell,
+                const double[::1] values, unsigned char[::1] inside, double[::1] total,
+                int64_t[::1] count):
+    """Points within a window of a model, summed per cell.
+
+    ``inside[i] = |resid[i]| <= limit[i]`` (``limit`` of length 1: one limit for all; NaN
+    is outside); for the points inside, ``values[i]`` is added to ``total[cell[i]]`` and 1
+    to ``count[cell[i]]``, in point order (``numpy.bincount``'s order: the same sums).
+    """
+    cdef Py_ssize_t n = resid.shape[0], m = total.shape[0], i
+    if cell.shape[0] != n or values.shape[0] != n or inside.shape[0] != n:
+        raise ValueError("the point arrays must have the same length")
+    if limit.shape[0] != 1 and limit.shape[0] != n:
+        raise ValueError("limit must hold one value or one per point")
+    if count.shape[0] != m:
+        raise ValueError("total and count must have the same length")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    cdef bint one = limit.shape[0] == 1
+    cdef float lim = limit[0] if n else 0.0
+    cdef int64_t c
+    with nogil:
+        for i in range(n):
+            if not one:
+                lim = limit[i]
+            if fabsf(resid[i]) <= lim:
+                inside[i] = 1
+                c = cell[i]
+                total[c] += values[i]
+                count[c] += 1
+            else:
+                inside[i] = 0
+

@@ -24,6 +24,7 @@ from functools import partial
 import numpy as np
 
 from ..threads import inner_threads, run_chunks
+from ._grid import median_f32, window_sums
 from .grid import (
     GridFrame,
     InpaintPlan,
@@ -395,11 +396,17 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
     np.subtract(z, resid, out=resid)
     plan: InpaintPlan | None = None
     for _ in range(iterations):
-        inside = np.abs(resid) <= window + slope_scaler * slope
-        # points outside the window count in one extra cell past the occupied ones (no
-        # compaction of the points; each cell sums its points in the same order)
-        mean, _ = cell_mean(np.where(inside, k, np.intp(m)), z64, m + 1)
-        mean = on_grid(mean[:m])
+        # one compiled pass: the window test and the per-cell sums of the points inside (no
+        # compaction of the points; each cell sums its points in point order)
+        limit = np.ascontiguousarray(window + slope_scaler * slope, dtype=np.float32)
+        inside = np.empty(len(resid), np.uint8)
+        total = np.zeros(m)
+        count = np.zeros(m, np.int64)
+        window_sums(resid, limit, k, z64, inside, total, count)
+        inside = inside.view(bool)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = on_grid(total / count)
+        del total, count
         unknown = np.isnan(mean)
         if plan is None or not plan.matches(unknown, max_cells):
             plan = InpaintPlan(unknown, max_cells)
@@ -413,7 +420,9 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
         r = resid[inside]
         if len(r) > 2_000_000:  # the MAD of a regular one-in-k sample is as good
             r = r[:: len(r) // 1_000_000]
-        sigma = 1.4826 * float(np.median(np.abs(r - np.median(r))))
+        r = np.ascontiguousarray(r, dtype=np.float32)
+        # numpy.median's values, by a radix select instead of partitions of copies
+        sigma = 1.4826 * median_f32(r, np.float32(median_f32(r)), True)
         window = float(np.clip(2.5 * sigma, min_threshold_m, max_threshold_m))
     threshold = float(np.clip(sigma_factor * sigma, min_threshold_m, max_threshold_m))
     keep = resid <= threshold + slope_scaler * slope
