@@ -92,6 +92,7 @@ class RunRecord:
     @contextmanager
     def stage(self, name: str, engine=None):
         t0 = time.perf_counter()
+        c0 = time.process_time()
         entry: dict[str, Any] = {"name": name}
         try:
             yield entry
@@ -99,7 +100,10 @@ class RunRecord:
             from .tiling import peak_rss_mb, release_free_memory
 
             release_free_memory()
+            # CPU time of this process (all its threads; not of Dask worker processes): on a
+            # shared machine it follows the work done more closely than the wall time
             entry.update({"seconds": round(time.perf_counter() - t0, 3),
+                          "cpu_seconds": round(time.process_time() - c0, 3),
                           "peak_rss_mb": round(peak_rss_mb(), 1)})
             if engine is not None and engine.name != "in-process":
                 entry["worker_peak_rss_mb"] = engine.worker_peak_memory_mb()

@@ -4,6 +4,7 @@
 Built with ``-ffp-contract=off``: every product and sum is rounded on its own in the grid's
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
+from libc.float cimport DBL_MAX
 from libc.math cimport NAN, fabsf
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
@@ -179,3 +180,77 @@ def window_sums(const float[::1] resid, const float[::1] limit, const int64_t[::
             else:
                 inside[i] = 0
 
+
+
+def plane_sums(const int64_t[::1] cell, const double[:] dx, const double[:] dy,
+               const double[:] z, const double[::1] z0, double[:, ::1] out):
+    """Per-cell sums for least-squares planes ``z - z0 = a + b dx + c dy``.
+
+    ``out[c]`` receives the sums over the points of cell ``c`` of
+    ``dx, dy, zr, dx², dy², dx·dy, dx·zr, dy·zr`` with ``zr = z - z0[c]``, each added in
+    point order from zero (``numpy.bincount``'s order: the same sums).
+    """
+    cdef Py_ssize_t n = cell.shape[0], m = out.shape[0], i
+    if dx.shape[0] != n or dy.shape[0] != n or z.shape[0] != n:
+        raise ValueError("the point arrays must have the same length")
+    if z0.shape[0] != m or out.shape[1] != 8:
+        raise ValueError("z0 needs one value and out 8 columns per cell")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    cdef int64_t c
+    cdef double x, y, zr
+    with nogil:
+        for i in range(m):
+            for c in range(8):
+                out[i, c] = 0.0
+        for i in range(n):
+            c = cell[i]
+            x = dx[i]
+            y = dy[i]
+            zr = z[i] - z0[c]
+            out[c, 0] += x
+            out[c, 1] += y
+            out[c, 2] += zr
+            out[c, 3] += x * x
+            out[c, 4] += y * y
+            out[c, 5] += x * y
+            out[c, 6] += x * zr
+            out[c, 7] += y * zr
+
+
+def plane_residual_sums(const int64_t[::1] cell, const double[:] dx, const double[:] dy,
+                        const double[:] z, const double[::1] z0, const double[::1] a,
+                        const double[::1] b, const double[::1] c, double[::1] out):
+    """Per-cell sums of squared residuals from the planes of :func:`plane_sums`.
+
+    ``r = (z - z0[k]) - ((b[k] dx + a[k]) + c[k] dy)`` per point (NaN counted as 1e3 and
+    infinities as the largest finite values, ``numpy.nan_to_num``), ``out[k] += r²`` in
+    point order from zero.
+    """
+    cdef Py_ssize_t n = cell.shape[0], m = out.shape[0], i
+    if dx.shape[0] != n or dy.shape[0] != n or z.shape[0] != n:
+        raise ValueError("the point arrays must have the same length")
+    if z0.shape[0] != m or a.shape[0] != m or b.shape[0] != m or c.shape[0] != m:
+        raise ValueError("z0, a, b and c need one value per cell")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    cdef int64_t k
+    cdef double r, fit
+    with nogil:
+        for i in range(m):
+            out[i] = 0.0
+        for i in range(n):
+            k = cell[i]
+            fit = b[k] * dx[i]
+            fit = fit + a[k]
+            fit = fit + c[k] * dy[i]
+            r = (z[i] - z0[k]) - fit
+            if r != r:
+                r = 1e3
+            elif r > DBL_MAX:
+                r = DBL_MAX
+            elif r < -DBL_MAX:
+                r = -DBL_MAX
+            out[k] += r * r

@@ -44,6 +44,7 @@ from ..cloud import (
     WIRE_CONDUCTOR,
     WIRE_GUARD,
 )
+from ._grid import plane_residual_sums, plane_sums
 from .features import EigenFeatures
 from .grid import GridFrame, cell_max, cell_min, occupied_cells
 from .options import ClassifyOptions
@@ -678,20 +679,12 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     if cnt is None:  # points per cell (float) when the caller has not counted them
         cnt = np.bincount(k, minlength=m).astype(np.float64)
     z0 = cell_min(k, z, m)  # reference height per cell keeps the moments well conditioned
-    zr = np.take(z0, k)
-    np.subtract(z, zr, out=zr)  # z - z0[k], without a second point-sized temporary
-
-    def s(w: np.ndarray | None) -> np.ndarray:
-        return np.bincount(k, w, minlength=m)
-
-    sx, sy, sz = s(dx), s(dy), s(zr)
-    w = np.multiply(dx, dx)  # one point-sized temporary, reused for every product
-    sxx = s(w)
-    syy = s(np.multiply(dy, dy, out=w))
-    sxy = s(np.multiply(dx, dy, out=w))
-    sxz = s(np.multiply(dx, zr, out=w))
-    syz = s(np.multiply(dy, zr, out=w))
-    del w
+    k = np.ascontiguousarray(k, dtype=np.int64)
+    # the eight sums of dx, dy, z - z0 and their products per cell, in one compiled pass
+    # (bincount's order: the same sums as eight bincounts of the products)
+    sums = np.empty((m, 8))
+    plane_sums(k, dx, dy, z, z0, sums)
+    sx, sy, sz, sxx, syy, sxy, sxz, syz = (sums[:, j] for j in range(8))
     ok = np.flatnonzero(cnt >= min_points)
     a_mat = np.empty((len(ok), 3, 3))
     for r, row in enumerate(((cnt, sx, sy), (sx, sxx, sxy), (sy, sxy, syy))):
@@ -706,27 +699,12 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
         sol = np.full((len(ok), 3), np.nan)
         sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
     coef[ok] = sol
-    # residuals in chunks of points (small temporaries), the same operations in the same order
-    # as z - ((b·dx + a) + c·dy) for every point; per-cell coefficients gathered from
-    # contiguous columns
+    # squared residuals z - z0 - ((b·dx + a) + c·dy) summed per cell in one compiled pass
     a0, b0, c0 = (np.ascontiguousarray(coef[:, j]) for j in range(3))
-    res = np.empty(len(zr))
-    step = 1 << 20
-    for lo in range(0, len(zr), step):                    # a loop over chunks of points
-        hi = min(lo + step, len(zr))
-        kk = k[lo:hi]
-        part = np.take(b0, kk)
-        part *= dx[lo:hi]
-        part += np.take(a0, kk)
-        tmp = np.take(c0, kk)
-        tmp *= dy[lo:hi]
-        part += tmp
-        np.subtract(zr[lo:hi], part, out=res[lo:hi])
-    del zr
-    np.nan_to_num(res, copy=False, nan=1e3)
-    np.square(res, out=res)
+    sq = np.empty(m)
+    plane_residual_sums(k, dx, dy, z, z0, a0, b0, c0, sq)
     with np.errstate(invalid="ignore", divide="ignore"):
-        rms = np.sqrt(np.bincount(k, res, minlength=m) / cnt)
+        rms = np.sqrt(sq / cnt)
     rms[cnt < min_points] = np.nan
     return coef[:, 0] + z0, coef[:, 1], coef[:, 2], rms, cnt
 
