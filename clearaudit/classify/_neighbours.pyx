@@ -4,7 +4,7 @@
 Built with ``-ffp-contract=off``: every product and sum is rounded on its own, as numpy and
 scipy round them, so the moments are the same numbers as numpy's reductions give.
 """
-from libc.stdint cimport int32_t, int64_t
+from libc.stdint cimport int32_t, int64_t, uint64_t
 from libc.stdlib cimport free, malloc
 
 
@@ -45,7 +45,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
         if rows[t] < 0 or rows[t] >= n:
             raise IndexError("query position out of range")
     cdef Py_ssize_t side = 2 * reach + 1
-    cdef double *best_d = <double *> malloc(k * sizeof(double))
+    cdef uint64_t *best_d = <uint64_t *> malloc(k * sizeof(uint64_t))
     cdef int64_t *best_i = <int64_t *> malloc(k * sizeof(int64_t))
     cdef Py_ssize_t *best_j = <Py_ssize_t *> malloc(k * sizeof(Py_ssize_t))
     cdef Py_ssize_t *starts = <Py_ssize_t *> malloc(side * side * sizeof(Py_ssize_t))
@@ -55,7 +55,14 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
         raise MemoryError()
     cdef int64_t nx = dims[0], ny = dims[1], nz = dims[2]
     cdef int64_t previous = -1, cell, cx, cy, cz, a, b, base, p
-    cdef Py_ssize_t ranges = 0, g, j, s, e, q, u
+    cdef Py_ssize_t ranges = 0, g, j, s, e, q, u, w
+    cdef Py_ssize_t capacity = 4096
+    cdef double *buf = <double *> malloc(capacity * sizeof(double))
+    cdef uint64_t bits
+    cdef bint failed = False
+    if not buf:
+        free(best_d); free(best_i); free(best_j); free(starts); free(stops)
+        raise MemoryError()
     cdef int m
     cdef double qx, qy, qz, dx, dy, dz, d2, ex, ey, ez
     cdef double s0, s1, s2, p00, p01, p02, p11, p12, p22, mx, my, mz
@@ -83,29 +90,47 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             qz = sz[q]
             m = 0
             for g in range(ranges):
-                for j in range(starts[g], stops[g]):
-                    dx = sx[j] - qx
-                    dy = sy[j] - qy
-                    dz = sz[j] - qz
-                    d2 = dx * dx + dy * dy + dz * dz
+                s = starts[g]
+                e = stops[g] - s
+                if e > capacity:
+                    capacity = 2 * e
+                    free(buf)
+                    buf = <double *> malloc(capacity * sizeof(double))
+                    if not buf:
+                        failed = True
+                        break
+                # squared distances of the range first (a loop without branches that the
+                # compiler can vectorise), then the selection
+                for u in range(e):
+                    dx = sx[s + u] - qx
+                    dy = sy[s + u] - qy
+                    dz = sz[s + u] - qz
+                    buf[u] = dx * dx + dy * dy + dz * dz
+                for u in range(e):
+                    d2 = buf[u]
                     if d2 >= r2:
                         continue
+                    # d2 >= 0: its bits order as the values do, and integers compare cheaply
+                    bits = (<uint64_t *> &buf[u])[0]
+                    j = s + u
                     p = index[j]
-                    if m == k and (d2 > best_d[k - 1]
-                                   or (d2 == best_d[k - 1] and p > best_i[k - 1])):
+                    if m == k and (bits > best_d[k - 1]
+                                   or (bits == best_d[k - 1] and p > best_i[k - 1])):
                         continue
-                    s = m if m < k else k - 1
-                    while s > 0 and (best_d[s - 1] > d2
-                                     or (best_d[s - 1] == d2 and best_i[s - 1] > p)):
-                        best_d[s] = best_d[s - 1]
-                        best_i[s] = best_i[s - 1]
-                        best_j[s] = best_j[s - 1]
-                        s -= 1
-                    best_d[s] = d2
-                    best_i[s] = p
-                    best_j[s] = j
+                    w = m if m < k else k - 1
+                    while w > 0 and (best_d[w - 1] > bits
+                                     or (best_d[w - 1] == bits and best_i[w - 1] > p)):
+                        best_d[w] = best_d[w - 1]
+                        best_i[w] = best_i[w - 1]
+                        best_j[w] = best_j[w - 1]
+                        w -= 1
+                    best_d[w] = bits
+                    best_i[w] = p
+                    best_j[w] = j
                     if m < k:
                         m += 1
+            if failed:
+                break
             count[t] = m
             if m == 0:  # only for a query that is not finite (never for grid points)
                 for u in range(6):
@@ -147,8 +172,11 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             out[t, 3] = p11 / m - my * my
             out[t, 4] = p12 / m - my * mz
             out[t, 5] = p22 / m - mz * mz
+    free(buf)
     free(best_d)
     free(best_i)
     free(best_j)
     free(starts)
     free(stops)
+    if failed:
+        raise MemoryError()
