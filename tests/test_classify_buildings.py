@@ -250,8 +250,8 @@ def test_square_ring_by_one_maximum_filter_equals_repeated_dilation():
 def test_cell_planes_fit_exact_planes_and_match_numpy_sums():
     # reference: numpy.linalg.lstsq per cell (LAPACK), and planes built exactly: a cell whose
     # points lie on z = 3 + 0.2 dx - 0.1 dy gets those coefficients and zero residual
-    from clearaudit.classify._grid import plane_residual_sums, plane_sums
     from clearaudit.classify.grid import occupied_cells
+    from clearaudit.classify.kernels import plane_residual_sums, plane_sums
     from clearaudit.classify.objects import _cell_planes
 
     rng = np.random.default_rng(12)

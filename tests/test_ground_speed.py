@@ -155,7 +155,7 @@ def test_sampler_matches_scipy_bilinear(monkeypatch, threads):
 def test_compiled_bilinear_equals_the_numpy_formula(itype, dtype):
     # reference: the same formula in numpy, one rounding per operation in the grid's precision
     # (the kernel is built without fused multiply-add): equal values, not just close ones
-    from clearaudit.classify._grid import bilinear
+    from clearaudit.classify.kernels import bilinear
 
     rng = np.random.default_rng(4)
     rows, cols = 40, 30
@@ -180,7 +180,7 @@ def test_compiled_bilinear_equals_the_numpy_formula(itype, dtype):
 
 def test_compiled_median_equals_numpy_median():
     # reference: numpy.median (float32 in, the two middle values added and halved in float32)
-    from clearaudit.classify._grid import median_f32
+    from clearaudit.classify.kernels import median_f32
 
     rng = np.random.default_rng(8)
     cases = [rng.normal(size=n).astype(np.float32) * scale
@@ -201,7 +201,7 @@ def test_compiled_median_equals_numpy_median():
 
 def test_compiled_window_sums_equal_bincount():
     # reference: numpy.bincount over the points within the window (same order: same sums)
-    from clearaudit.classify._grid import window_sums
+    from clearaudit.classify.kernels import window_sums
 
     rng = np.random.default_rng(6)
     n, m = 50_000, 700

@@ -12,7 +12,7 @@ from scipy import ndimage
 
 from ..arrays import column_bounds
 from ..threads import run_chunks
-from ._grid import bilinear as _bilinear
+from .kernels import bilinear as _bilinear
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
 # run about twice as fast when a chunk's temporaries stay in the processor's cache, and the

@@ -24,7 +24,6 @@ from functools import partial
 import numpy as np
 
 from ..threads import inner_threads, run_chunks
-from ._grid import median_f32, window_sums
 from .grid import (
     GridFrame,
     InpaintPlan,
@@ -35,6 +34,7 @@ from .grid import (
     inpaint,
     occupied_cells,
 )
+from .kernels import median_f32, window_sums
 
 
 @dataclass

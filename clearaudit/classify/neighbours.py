@@ -19,7 +19,7 @@ import math
 
 import numpy as np
 
-from ._neighbours import moments as _moments
+from .kernels import moments as _moments
 
 _MAX_CELLS = 2 ** 62  # cell numbers are int64
 

@@ -44,9 +44,9 @@ from ..cloud import (
     WIRE_CONDUCTOR,
     WIRE_GUARD,
 )
-from ._grid import plane_residual_sums, plane_sums
 from .features import EigenFeatures
 from .grid import GridFrame, cell_max, cell_min, occupied_cells
+from .kernels import plane_residual_sums, plane_sums
 from .options import ClassifyOptions
 
 

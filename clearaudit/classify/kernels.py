@@ -1,0 +1,18 @@
+"""The compiled kernels (Cython: ``_grid.pyx``, ``_neighbours.pyx``), imported in one place.
+
+They are built by the package's install (``bash scripts/setup.sh``, or ``pip install -e .``).
+A source tree whose kernels were not built, or were built for another Python, fails here with
+a message saying how to build them, not deep inside a classification.
+"""
+from __future__ import annotations
+
+try:
+    from ._grid import bilinear, median_f32, plane_residual_sums, plane_sums, window_sums
+    from ._neighbours import moments
+except ImportError as exc:  # pragma: no cover - a source tree without its build
+    raise ImportError(
+        f"clearaudit's compiled kernels are missing or were built for another Python ({exc}); "
+        "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
+
+__all__ = ["bilinear", "median_f32", "moments", "plane_residual_sums", "plane_sums",
+           "window_sums"]
