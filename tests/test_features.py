@@ -66,3 +66,39 @@ def test_features_of_a_line_a_plane_and_a_lone_point():
     n = np.array([-0.2, 0.0, 1.0]) / np.hypot(0.2, 1.0)
     assert np.median(np.abs(f.normal[80:480] @ n)) > 0.99
     assert f.count[-1] == 1 and f.linearity[-1] == 0.0
+
+
+def test_compiled_eigen_passes_equal_the_numpy_closed_form():
+    # reference: features._sym3_eigen (numpy, the closed form checked against LAPACK above) and
+    # the feature formulas, row by row: the compiled passes give the same numbers
+    from clearaudit.classify.features import _sym3_eigen
+    from clearaudit.classify.kernels import sym3_finish, sym3_prepare
+
+    rng = np.random.default_rng(21)
+    upper, _ = _random_covariances(rng, 5000)
+    special = np.array([[0.0] * 6,                          # a lone point
+                        [1.0, 0.0, 0.0, 1.0, 0.0, 1.0],     # a sphere: all equal
+                        [2.0, 1.0, 0.0, 2.0, 0.0, 3.0],     # repeated largest eigenvalue
+                        [1e-20, 0.0, 0.0, 0.0, 0.0, 0.0]])  # a tiny line
+    cov = np.ascontiguousarray(np.vstack([upper, special]))
+    m = len(cov)
+    q, p, c = np.empty(m), np.empty(m), np.empty(m)
+    sym3_prepare(cov, q, p, c)
+    phi = np.arccos(c) / 3.0
+    dest = rng.permutation(m).astype(np.int64)
+    out = [np.full(m, np.nan) for _ in range(4)] + [np.full((m, 3), np.nan) for _ in range(2)]
+    bad = np.empty(m, np.uint8)
+    sym3_finish(cov, q, p, np.cos(phi), np.cos(phi + 2.0 * np.pi / 3.0), dest, *out, bad)
+    lin, pla, sca, ver, direction, normal = (a[dest] for a in out)
+    vals, v_small, v_large, ref_bad = _sym3_eigen(*(cov[:, i].copy() for i in range(6)))
+    assert np.array_equal(bad.view(bool), ref_bad) and ref_bad[-4:-2].all()
+    l1, l2, l3 = vals[:, 2], np.maximum(vals[:, 1], 0.0), np.maximum(vals[:, 0], 0.0)
+    ok = l1 > 1e-12
+    safe = np.where(ok, l1, 1.0)
+    good = ~ref_bad
+    for got, expected in ((lin, np.where(ok, (l1 - l2) / safe, 0.0)),
+                          (pla, np.where(ok, (l2 - l3) / safe, 0.0)),
+                          (sca, np.where(ok, l3 / safe, 0.0)),
+                          (ver, np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)),
+                          (direction, v_large), (normal, v_small)):
+        assert np.array_equal(got[good], expected[good])

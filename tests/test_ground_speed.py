@@ -222,6 +222,31 @@ def test_compiled_window_sums_equal_bincount():
                     total, count)
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_compiled_jacobi_sweep_equals_the_numpy_form(dtype):
+    # reference: the numpy form of the sweep, ((up + down) + left) + right times 0.25 on the
+    # free cells of each box, one rounding per operation: equal values
+    from clearaudit.classify.kernels import jacobi_sweep
+
+    rng = np.random.default_rng(13)
+    n_u, n_v = 37, 29
+    buf = rng.normal(size=(n_u + 2, n_v + 2)).astype(dtype) * 50 + 300
+    free = rng.random((n_u, n_v)) < 0.4
+    boxes = [(0, 20, 0, 29), (15, 37, 3, 17), (30, 37, 20, 29)]  # overlapping, as may happen
+    expected = buf.copy()
+    for r0, r1, c0, c1 in boxes:
+        avg = buf[r0:r1, c0 + 1:c1 + 1] + buf[r0 + 2:r1 + 2, c0 + 1:c1 + 1]
+        avg += buf[r0 + 1:r1 + 1, c0:c1]
+        avg += buf[r0 + 1:r1 + 1, c0 + 2:c1 + 2]
+        avg *= dtype(0.25)
+        np.copyto(expected[r0 + 1:r1 + 1, c0 + 1:c1 + 1], avg, where=free[r0:r1, c0:c1])
+    got = buf.copy()
+    jacobi_sweep(buf, got, free.view(np.uint8), np.array(boxes, dtype=np.int64))
+    assert np.array_equal(got, expected)
+    with pytest.raises(IndexError):
+        jacobi_sweep(buf, got, free.view(np.uint8), np.array([[0, n_u + 1, 0, 1]], np.int64))
+
+
 def test_run_chunks_covers_every_index_once(monkeypatch):
     # reference: direct count of the visited indices
     for threads in ("1", "2"):

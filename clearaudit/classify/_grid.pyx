@@ -5,7 +5,7 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabsf
+from libc.math cimport NAN, fabs, fabsf, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
 
@@ -254,3 +254,190 @@ def plane_residual_sums(const int64_t[::1] cell, const double[:] dx, const doubl
             elif r < -DBL_MAX:
                 r = -DBL_MAX
             out[k] += r * r
+
+
+def jacobi_sweep(const real[:, ::1] buf, real[:, ::1] nxt, const unsigned char[:, ::1] free,
+                 const int64_t[:, ::1] boxes):
+    """One Jacobi sweep of the Laplace equation on the free cells inside ``boxes``.
+
+    ``buf`` and ``nxt`` carry a one-cell border (shape of ``free`` + 2); for every free cell
+    (i, j) of a box (rows r0:r1, columns c0:c1) ``nxt[i+1, j+1]`` becomes
+    ``(((up + down) + left) + right) * 0.25`` of ``buf``, in the grids' precision — the numpy
+    form's operations in its order.
+    """
+    cdef Py_ssize_t n_u = free.shape[0], n_v = free.shape[1], b, i, j
+    if buf.shape[0] != n_u + 2 or buf.shape[1] != n_v + 2 or nxt.shape[0] != n_u + 2 \
+            or nxt.shape[1] != n_v + 2:
+        raise ValueError("buf and nxt must be the free mask's shape plus a one-cell border")
+    if boxes.shape[1] != 4:
+        raise ValueError("boxes must have 4 columns (r0, r1, c0, c1)")
+    for b in range(boxes.shape[0]):
+        if not (0 <= boxes[b, 0] <= boxes[b, 1] <= n_u and 0 <= boxes[b, 2] <= boxes[b, 3] <= n_v):
+            raise IndexError("a box lies outside the grid")
+    cdef real quarter = 0.25
+    cdef real avg
+    cdef Py_ssize_t r0, r1, c0, c1
+    with nogil:
+        for b in range(boxes.shape[0]):
+            r0 = boxes[b, 0]
+            r1 = boxes[b, 1]
+            c0 = boxes[b, 2]
+            c1 = boxes[b, 3]
+            for i in range(r0, r1):
+                for j in range(c0, c1):
+                    if free[i, j]:
+                        avg = buf[i, j + 1] + buf[i + 2, j + 1]
+                        avg = avg + buf[i + 1, j]
+                        avg = avg + buf[i + 1, j + 2]
+                        nxt[i + 1, j + 1] = avg * quarter
+
+
+def sym3_prepare(const double[:, ::1] cov, double[::1] q, double[::1] p, double[::1] c):
+    """First half of the closed-form eigenvalues of symmetric 3 × 3 matrices (Smith 1961).
+
+    ``cov`` rows hold (xx, xy, xz, yy, yz, zz). Per row: ``q = tr A / 3``,
+    ``p = sqrt(|A - q I|_F² / 6)`` and ``c = clip(det((A - q I) / p) / 2, -1, 1)`` (``p`` taken
+    as 1 where it is 0) — :func:`clearaudit.classify.features._sym3_eigen`'s operations in its
+    order. The caller takes ``phi = arccos(c) / 3`` and the cosines with numpy.
+    """
+    cdef Py_ssize_t m = cov.shape[0], i
+    if cov.shape[1] != 6 or q.shape[0] != m or p.shape[0] != m or c.shape[0] != m:
+        raise ValueError("cov must be (m, 6) and q, p, c of length m")
+    cdef double xx, xy, xz, yy, yz, zz, qq, axx, ayy, azz, pp, inv
+    cdef double bxx, byy, bzz, bxy, bxz, byz, det
+    with nogil:
+        for i in range(m):
+            xx = cov[i, 0]
+            xy = cov[i, 1]
+            xz = cov[i, 2]
+            yy = cov[i, 3]
+            yz = cov[i, 4]
+            zz = cov[i, 5]
+            qq = ((xx + yy) + zz) / 3.0
+            axx = xx - qq
+            ayy = yy - qq
+            azz = zz - qq
+            pp = sqrt((((axx * axx + ayy * ayy) + azz * azz)
+                       + 2.0 * ((xy * xy + xz * xz) + yz * yz)) / 6.0)
+            inv = 1.0 / (pp if pp > 0 else 1.0)
+            bxx = axx * inv
+            byy = ayy * inv
+            bzz = azz * inv
+            bxy = xy * inv
+            bxz = xz * inv
+            byz = yz * inv
+            det = ((bxx * (byy * bzz - byz * byz) - bxy * (bxy * bzz - byz * bxz))
+                   + bxz * (bxy * byz - byy * bxz))
+            det = det / 2.0
+            if det < -1.0:
+                det = -1.0
+            elif det > 1.0:
+                det = 1.0
+            q[i] = qq
+            p[i] = pp
+            c[i] = det
+
+
+cdef inline bint _vector(double xx, double xy, double xz, double yy, double yz, double zz,
+                         double lam, double *out) noexcept nogil:
+    """Unit eigenvector of ``lam``: the longest cross product of two rows of ``A - lam I``
+    (the first longest on ties); False where it is not resolved."""
+    cdef double a0 = xx - lam, a1 = xy, a2 = xz
+    cdef double b0 = xy, b1 = yy - lam, b2 = yz
+    cdef double c0 = xz, c1 = yz, c2 = zz - lam
+    cdef double x0, x1, x2, n2, best0, best1, best2, best_n2, scale, norm
+    # rows a × b
+    best0 = a1 * b2 - a2 * b1
+    best1 = a2 * b0 - a0 * b2
+    best2 = a0 * b1 - a1 * b0
+    best_n2 = (best0 * best0 + best2 * best2) + best1 * best1
+    # a × c
+    x0 = a1 * c2 - a2 * c1
+    x1 = a2 * c0 - a0 * c2
+    x2 = a0 * c1 - a1 * c0
+    n2 = (x0 * x0 + x2 * x2) + x1 * x1
+    if n2 > best_n2:
+        best0 = x0
+        best1 = x1
+        best2 = x2
+        best_n2 = n2
+    # b × c
+    x0 = b1 * c2 - b2 * c1
+    x1 = b2 * c0 - b0 * c2
+    x2 = b0 * c1 - b1 * c0
+    n2 = (x0 * x0 + x2 * x2) + x1 * x1
+    if n2 > best_n2:
+        best0 = x0
+        best1 = x1
+        best2 = x2
+        best_n2 = n2
+    scale = ((((a0 * a0 + a2 * a2) + a1 * a1) + ((b0 * b0 + b2 * b2) + b1 * b1))
+             + ((c0 * c0 + c2 * c2) + c1 * c1))
+    cdef bint ok = best_n2 > (1e-18 * scale) * scale + 1e-300
+    norm = sqrt(best_n2 if ok else 1.0)
+    out[0] = best0 / norm
+    out[1] = best1 / norm
+    out[2] = best2 / norm
+    return ok
+
+
+def sym3_finish(const double[:, ::1] cov, const double[::1] q, const double[::1] p,
+                const double[::1] cos_large, const double[::1] cos_small,
+                const int64_t[::1] dest, double[::1] lin, double[::1] pla, double[::1] sca,
+                double[::1] ver, double[:, ::1] direction, double[:, ::1] normal,
+                unsigned char[::1] bad):
+    """Second half: eigenvalues, the extreme eigenvectors and the eigen features.
+
+    Per row ``i`` (written at ``dest[i]`` of the feature arrays): the largest and smallest
+    eigenvalues ``q + 2 p cos``, the middle one ``3 q - large - small``, the unit eigenvectors
+    of the extreme ones (:func:`_vector`), and from them linearity, planarity, scattering and
+    verticality (``features._features``' formulas); ``bad[i]`` where a vector is not resolved
+    (the caller redoes those rows with a general solver).
+    """
+    cdef Py_ssize_t m = cov.shape[0], n = lin.shape[0], i, d
+    if cov.shape[1] != 6 or q.shape[0] != m or p.shape[0] != m or cos_large.shape[0] != m \
+            or cos_small.shape[0] != m or dest.shape[0] != m or bad.shape[0] != m:
+        raise ValueError("the row arrays must have the same length")
+    if pla.shape[0] != n or sca.shape[0] != n or ver.shape[0] != n \
+            or direction.shape[0] != n or normal.shape[0] != n \
+            or direction.shape[1] != 3 or normal.shape[1] != 3:
+        raise ValueError("the feature arrays must have the same length (vectors: 3 columns)")
+    for i in range(m):
+        if dest[i] < 0 or dest[i] >= n:
+            raise IndexError("a destination row is outside the feature arrays")
+    cdef double xx, xy, xz, yy, yz, zz, two_p, large, small, mid, l1, l2, l3, safe
+    cdef double vs[3]
+    cdef double vl[3]
+    cdef bint ok_s, ok_l, ok
+    with nogil:
+        for i in range(m):
+            xx = cov[i, 0]
+            xy = cov[i, 1]
+            xz = cov[i, 2]
+            yy = cov[i, 3]
+            yz = cov[i, 4]
+            zz = cov[i, 5]
+            two_p = 2.0 * p[i]
+            large = q[i] + two_p * cos_large[i]
+            small = q[i] + two_p * cos_small[i]
+            mid = (3.0 * q[i] - large) - small
+            ok_s = _vector(xx, xy, xz, yy, yz, zz, small, vs)
+            ok_l = _vector(xx, xy, xz, yy, yz, zz, large, vl)
+            bad[i] = not (ok_s and ok_l)
+            d = dest[i]
+            l1 = large
+            # numpy.maximum(v, 0): v where v >= 0 or v is NaN
+            l2 = mid if (mid >= 0.0 or mid != mid) else 0.0
+            l3 = small if (small >= 0.0 or small != small) else 0.0
+            ok = l1 > 1e-12
+            safe = l1 if ok else 1.0
+            lin[d] = (l1 - l2) / safe if ok else 0.0
+            pla[d] = (l2 - l3) / safe if ok else 0.0
+            sca[d] = l3 / safe if ok else 0.0
+            ver[d] = 1.0 - fabs(vs[2]) if ok else 0.0
+            direction[d, 0] = vl[0]
+            direction[d, 1] = vl[1]
+            direction[d, 2] = vl[2]
+            normal[d, 0] = vs[0]
+            normal[d, 1] = vs[1]
+            normal[d, 2] = vs[2]

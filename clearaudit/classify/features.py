@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..threads import inner_threads, run_chunks
+from .kernels import sym3_finish, sym3_prepare
 from .neighbours import NeighbourGrid
 
 _CHUNK = 65_536  # points per chunk of the eigen pass (cache friendly temporaries)
@@ -138,8 +139,10 @@ def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: in
     The points are visited cell by cell (:meth:`NeighbourGrid.walk`) in chunks on
     ``threads``; per chunk the neighbourhood moments come from :meth:`NeighbourGrid.moments`
     (about each neighbourhood's mean, reduced relative to its query point) and the eigen pairs
-    from the closed form of :func:`sym3_eigen` (rows it cannot resolve fall back to
-    ``numpy.linalg.eigh``). Every output row depends on its own point only.
+    from the closed form of :func:`sym3_eigen`, computed by two compiled passes around numpy's
+    ``arccos`` and ``cos`` (``kernels.sym3_prepare`` / ``sym3_finish``: the same numbers);
+    rows it cannot resolve fall back to ``numpy.linalg.eigh``. Every output row depends on
+    its own point only.
     """
     positions, dest = grid.walk(rows)
     n = len(positions)
@@ -151,29 +154,39 @@ def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: in
     normal = np.zeros((n, 3))
     count = np.zeros(n, dtype=np.int32)
 
-    def chunk(start: int, stop: int) -> None:
-        cnt, cov = grid.moments(positions[start:stop], radius, k)
-        moments = [cov[:, i] for i in range(6)]
-        vals, v_small, v_large, bad = _sym3_eigen(*moments)
-        if bad.any():
-            full = np.stack(moments, axis=1)[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
-            bvals, bvecs = np.linalg.eigh(full)  # ascending
-            vals[bad] = bvals
-            v_small[bad] = bvecs[:, :, 0]
-            v_large[bad] = bvecs[:, :, 2]
+    def write(rows: np.ndarray, vals: np.ndarray, v_small: np.ndarray,
+              v_large: np.ndarray) -> None:
+        """The features of eigen pairs (ascending values) into the rows ``rows``."""
         l1 = vals[:, 2]
         l2 = np.maximum(vals[:, 1], 0.0)
         l3 = np.maximum(vals[:, 0], 0.0)
         ok = l1 > 1e-12
         safe = np.where(ok, l1, 1.0)
-        sl = dest[start:stop]  # the rows these results belong to
-        lin[sl] = np.where(ok, (l1 - l2) / safe, 0.0)
-        pla[sl] = np.where(ok, (l2 - l3) / safe, 0.0)
-        sca[sl] = np.where(ok, l3 / safe, 0.0)
-        direction[sl] = v_large
-        normal[sl] = v_small
-        ver[sl] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
-        count[sl] = cnt
+        lin[rows] = np.where(ok, (l1 - l2) / safe, 0.0)
+        pla[rows] = np.where(ok, (l2 - l3) / safe, 0.0)
+        sca[rows] = np.where(ok, l3 / safe, 0.0)
+        direction[rows] = v_large
+        normal[rows] = v_small
+        ver[rows] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
+
+    def chunk(start: int, stop: int) -> None:
+        cnt, cov = grid.moments(positions[start:stop], radius, k)
+        at = dest[start:stop]  # the rows these results belong to
+        m = len(cnt)
+        # sym3_eigen's closed form in two compiled passes around numpy's arccos and cosines;
+        # the second writes the features of every row straight into place
+        q, p, c = np.empty(m), np.empty(m), np.empty(m)
+        sym3_prepare(cov, q, p, c)
+        phi = np.arccos(c) / 3.0
+        bad = np.empty(m, np.uint8)
+        sym3_finish(cov, q, p, np.cos(phi), np.cos(phi + 2.0 * np.pi / 3.0), at, lin, pla,
+                    sca, ver, direction, normal, bad)
+        bad = bad.view(bool)
+        if bad.any():  # a repeated extreme eigenvalue or a zero matrix: the general solver
+            full = cov[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
+            bvals, bvecs = np.linalg.eigh(full)  # ascending
+            write(at[bad], bvals, bvecs[:, :, 0], bvecs[:, :, 2])
+        count[at] = cnt
 
     run_chunks(chunk, n, _CHUNK, threads)
     return EigenFeatures(lin, pla, sca, ver, direction, normal, count)

@@ -7,12 +7,21 @@ a message saying how to build them, not deep inside a classification.
 from __future__ import annotations
 
 try:
-    from ._grid import bilinear, median_f32, plane_residual_sums, plane_sums, window_sums
+    from ._grid import (
+        bilinear,
+        jacobi_sweep,
+        median_f32,
+        plane_residual_sums,
+        plane_sums,
+        sym3_finish,
+        sym3_prepare,
+        window_sums,
+    )
     from ._neighbours import moments
 except ImportError as exc:  # pragma: no cover - a source tree without its build
     raise ImportError(
         f"clearaudit's compiled kernels are missing or were built for another Python ({exc}); "
         "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
 
-__all__ = ["bilinear", "median_f32", "moments", "plane_residual_sums", "plane_sums",
-           "window_sums"]
+__all__ = ["bilinear", "jacobi_sweep", "median_f32", "moments", "plane_residual_sums",
+           "plane_sums", "sym3_finish", "sym3_prepare", "window_sums"]
