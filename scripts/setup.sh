@@ -30,7 +30,8 @@ if ! command -v cc >/dev/null 2>&1 && ! command -v gcc >/dev/null 2>&1; then
   missing="$missing gcc libc6-dev"
 fi
 if ! "$PYTHON" -c 'import os, sysconfig; import sys; sys.exit(0 if os.path.exists(os.path.join(sysconfig.get_paths()["include"], "Python.h")) else 1)' 2>/dev/null; then
-  missing="$missing python3-dev"
+  # the headers of this Python's own version (python3-dev is the distribution's default one)
+  missing="$missing python$("$PYTHON" -c 'import sys; print("%d.%d" % sys.version_info[:2])')-dev"
 fi
 if [ -n "$missing" ]; then
   if [ "$(id -u)" = "0" ] && command -v apt-get >/dev/null; then
@@ -50,7 +51,10 @@ fi
 stamp=.venv/.clearaudit-installed
 # reinstall (and rebuild the compiled kernel) when the metadata, the build or a kernel changes
 want=$(cat pyproject.toml setup.py clearaudit/*/*.pyx | sha256sum | cut -d' ' -f1)
-if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ]; then
+# (and when a kernel's build is missing: the built files are not in git)
+kernels=$(ls clearaudit/*/*.pyx | wc -l)
+built=$(ls clearaudit/*/_*.so 2>/dev/null | wc -l)
+if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ] || [ "$built" -lt "$kernels" ]; then
   .venv/bin/python -m pip install -q --upgrade pip >/dev/null
   # the build of the compiled kernel talks a lot: its log is shown only when it fails
   if ! .venv/bin/python -m pip install -q -e ".[test]" > .venv/install.log 2>&1; then

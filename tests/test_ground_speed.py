@@ -176,6 +176,8 @@ def test_compiled_bilinear_equals_the_numpy_formula(itype, dtype):
     with pytest.raises(IndexError):
         bilinear(grid, np.array([rows * cols - 1], itype), a[:1], b[:1],
                  np.zeros(1, np.uint8), cols, out[:1])
+    with pytest.raises(ValueError):  # rows of no cells (or negative) are refused
+        bilinear(grid, k00[:1], a[:1], b[:1], np.zeros(1, np.uint8), -10**12, out[:1])
 
 
 def test_compiled_median_equals_numpy_median():
@@ -196,6 +198,9 @@ def test_compiled_median_equals_numpy_median():
         # the median absolute deviation about that median, as refine_ground takes it
         assert np.float32(median_f32(v, med, True)) == np.median(np.abs(v - med))
     assert np.isnan(median_f32(np.array([1.0, np.nan, 2.0], np.float32)))
+    # numpy's mean sums from +0.0: the median of negative zeros is +0.0, as numpy's
+    for v in (np.array([-0.0], np.float32), np.array([-0.0, -0.0], np.float32)):
+        assert np.signbit(median_f32(v)) == np.signbit(np.median(v))
     assert np.isnan(median_f32(np.zeros(0, np.float32)))
 
 

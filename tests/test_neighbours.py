@@ -161,3 +161,44 @@ def test_small_and_bad_inputs():
         one.moments(np.array([0]), -1.0, 5)
     with pytest.raises(IndexError):
         one.moments(np.array([1]), 1.0, 5)
+    # an extent past the int64 cell numbers is refused, not wrapped round
+    with pytest.raises(ValueError, match="too large"):
+        NeighbourGrid(np.array([[0.0, 0.0, 0.0], [1e19, 0.0, 0.0], [0.5, 0.0, 0.0]]), 1.0)
+    # a radius far beyond the grid scans the grid once (the k-d tree finds every point)
+    pts = np.array([[0.0, 0.0, 0.0], [3.0, 0.0, 0.0], [0.0, 4.0, 1.0]])
+    wide = NeighbourGrid(pts, 1e-3)
+    cnt, _ = wide.moments(wide.walk(None)[0], 100.0, 5)
+    assert np.array_equal(cnt, [3, 3, 3])
+
+
+def test_raw_kernel_rejects_inconsistent_arrays():
+    from clearaudit.classify.kernels import moments
+
+    grid = NeighbourGrid(np.random.default_rng(1).uniform(0, 5, (50, 3)), 1.0)
+    rows = np.arange(3, dtype=np.int64)
+    count, out = np.zeros(3, np.int32), np.zeros((3, 6))
+    args = [grid.key, grid.order, grid.x, grid.y, grid.z, grid.dims, 1, rows, 5, 1.0, count, out]
+    short = list(args)
+    short[2] = grid.x[:1]
+    with pytest.raises(ValueError, match="same length"):
+        moments(*short)
+    flat = list(args)
+    flat[5] = np.array([1, 1, 0], np.int64)
+    with pytest.raises(ValueError, match="positive"):
+        moments(*flat)
+
+
+def test_equal_distances_are_summed_by_point_index():
+    # seven points, six of them at 0.5 m from the first (a 3-4-5 construction): the kernel
+    # orders equal distances by point index (the k-d tree by its own traversal); the moments
+    # then equal numpy's reduction over the neighbours in (distance, index) order exactly
+    pts = np.array([[0, 0, 0], [.3, .4, 0], [.4, -.3, 0], [-.3, 0, .4], [0, -.4, -.3],
+                    [0, .3, -.4], [-.4, .3, 0]])
+    grid = NeighbourGrid(pts, 0.6)
+    cnt, cov = grid.moments(grid.walk(np.array([0]))[0], 0.6, 7)
+    d = [pts[[0, 1, 2, 3, 4, 5, 6], c] - pts[0, c] for c in range(3)]
+    mean = [g.sum() / 7 for g in d]
+    expected = [np.sum(d[a] * d[b]) / 7 - mean[a] * mean[b]
+                for a, b in ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))]
+    assert cnt[0] == 7
+    np.testing.assert_allclose(cov[0], expected, atol=1e-15)

@@ -30,6 +30,8 @@ def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
     cdef Py_ssize_t n = k00.shape[0]
     if wa.shape[0] != n or wb.shape[0] != n or outside.shape[0] != n or out.shape[0] != n:
         raise ValueError("the point arrays must have the same length")
+    if row < 1:
+        raise ValueError("a grid row holds at least one cell")
     cdef Py_ssize_t size = grid.shape[0]
     cdef Py_ssize_t i, k
     cdef real a, b, v00, lower, upper
@@ -104,7 +106,8 @@ cdef uint32_t _select(const float[::1] v, float center, bint centred, Py_ssize_t
 def median_f32(const float[::1] v, float center=0.0, bint centred=False):
     """``numpy.median`` of float32 values (of ``|v - center|`` when ``centred``), exactly:
     the middle value, or for an even count the two middle values added and halved in
-    float32 (numpy's mean of the two); NaN when any value is NaN or there are none.
+    float32 (numpy's mean of the one or two, summed from +0.0: a median of -0.0 is +0.0);
+    NaN when any value is NaN or there are none.
 
     Two counting passes over 16-bit halves of an order-preserving key (a radix select)
     instead of a partition of a copy.
@@ -132,12 +135,13 @@ def median_f32(const float[::1] v, float center=0.0, bint centred=False):
                 break
             high[_order_key(x) >> 16] += 1
         if not nan:
+            # numpy's mean of the middle value(s): a sum from +0.0, then the division
             a = _from_key(_select(v, center, centred, (n - 1) // 2, high, low))
-            if n % 2:
-                result = a
-            else:
+            result = <float> 0.0
+            result = result + a
+            if n % 2 == 0:
                 b = _from_key(_select(v, center, centred, n // 2, high, low))
-                result = a + b
+                result = result + b
                 result = result / 2
     free(high)
     free(low)

@@ -22,34 +22,41 @@ cdef inline Py_ssize_t _lower(const int64_t[::1] a, int64_t v, Py_ssize_t lo,
 
 
 def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] sx,
-            const double[::1] sy, const double[::1] sz, const int64_t[::1] dims, int reach,
+            const double[::1] sy, const double[::1] sz, const int64_t[::1] dims, Py_ssize_t reach,
             const int64_t[::1] rows, int k, double r2, int32_t[::1] count,
             double[:, ::1] out):
     """Neighbourhood moments of the sorted positions ``rows`` (ascending is fastest).
 
     ``out[t]`` receives the covariance upper triangle (xx, xy, xz, yy, yz, zz) of the
     neighbourhood of ``rows[t]`` about its mean, ``count[t]`` the neighbourhood size: the
-    ``k`` points nearest to it (itself included) strictly within ``sqrt(r2)``, a tie at the
-    k-th distance going to the lower ``index``.
+    ``k`` points nearest to it (itself included) strictly within ``sqrt(r2)``, ordered by
+    distance and, among equal distances, by ``index`` (so a tie at the k-th distance goes to
+    the lower ``index``).
     """
     if k < 1 or reach < 1:
         raise ValueError("k and reach must be at least 1")
     if out.shape[0] != rows.shape[0] or count.shape[0] != rows.shape[0] or out.shape[1] != 6:
         raise ValueError("count and out must have one row per query (out: 6 columns)")
-    if dims.shape[0] != 3:
-        raise ValueError("dims must hold 3 cell counts")
+    if dims.shape[0] != 3 or dims[0] < 1 or dims[1] < 1 or dims[2] < 1:
+        raise ValueError("dims must hold 3 positive cell counts")
+    if index.shape[0] != key.shape[0] or sx.shape[0] != key.shape[0] \
+            or sy.shape[0] != key.shape[0] or sz.shape[0] != key.shape[0]:
+        raise ValueError("key, index and the coordinates must have the same length")
     cdef Py_ssize_t n = key.shape[0]
     cdef Py_ssize_t nq = rows.shape[0]
     cdef Py_ssize_t t
     for t in range(nq):
         if rows[t] < 0 or rows[t] >= n:
             raise IndexError("query position out of range")
-    cdef Py_ssize_t side = 2 * reach + 1
+    # the columns scanned around a cell: at most the grid's own columns
+    cdef Py_ssize_t side_x = min(2 * reach + 1, <Py_ssize_t> dims[0])
+    cdef Py_ssize_t side_y = min(2 * reach + 1, <Py_ssize_t> dims[1])
+    cdef Py_ssize_t side = side_x * side_y
     cdef uint64_t *best_d = <uint64_t *> malloc(k * sizeof(uint64_t))
     cdef int64_t *best_i = <int64_t *> malloc(k * sizeof(int64_t))
     cdef Py_ssize_t *best_j = <Py_ssize_t *> malloc(k * sizeof(Py_ssize_t))
-    cdef Py_ssize_t *starts = <Py_ssize_t *> malloc(side * side * sizeof(Py_ssize_t))
-    cdef Py_ssize_t *stops = <Py_ssize_t *> malloc(side * side * sizeof(Py_ssize_t))
+    cdef Py_ssize_t *starts = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
+    cdef Py_ssize_t *stops = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
     if not best_d or not best_i or not best_j or not starts or not stops:
         free(best_d); free(best_i); free(best_j); free(starts); free(stops)
         raise MemoryError()

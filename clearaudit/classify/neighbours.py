@@ -9,9 +9,13 @@ neighbourhood in the same pass — no (k, m) index or coordinate blocks are mate
 
 The neighbour sets are those of scipy's ``cKDTree.query(k=k, distance_upper_bound=radius)``:
 the squared distance is summed over x, y, z in that order and a point counts when it is
-strictly closer than the radius; a tie at the k-th distance goes to the lower point index.
-The sums run over the neighbours in order of distance, as numpy's reductions over the
-neighbour axis of the former (k, m) blocks did, so the moments are the same numbers.
+strictly closer than the radius. The neighbours are ordered by distance and, among equal
+distances, by point index (the k-d tree's order among equal distances is its own): so a tie
+at the k-th distance goes to the lower point index. The sums run over the neighbours in that
+order, as numpy's reductions over the neighbour axis of the former (k, m) blocks did, so the
+moments are the same numbers wherever no two neighbours of a point lie at exactly the same
+distance (where they do, the last bit may differ, or at the k-th place another equally near
+neighbour is taken; on the survey corridors and real crops tested, no output changed).
 """
 from __future__ import annotations
 
@@ -53,9 +57,10 @@ class NeighbourGrid:
             lo, hi = pts.min(axis=0), pts.max(axis=0)
             if not (np.isfinite(lo).all() and np.isfinite(hi).all()):
                 raise ValueError("points must have finite coordinates")
-            dims = np.floor((hi - lo) / self.cell_m).astype(np.int64) + 1
-            if math.prod(int(d) for d in dims) >= _MAX_CELLS:
+            span = np.floor((hi - lo) / self.cell_m) + 1.0  # float: no overflow before the test
+            if not np.isfinite(span).all() or float(np.prod(span)) >= _MAX_CELLS:
                 raise ValueError("the points' extent is too large for the neighbour grid")
+            dims = span.astype(np.int64)
             cells = np.floor((pts - lo) / self.cell_m).astype(np.int64)
             np.minimum(cells, dims - 1, out=cells)
         key = (cells[:, 0] * dims[1] + cells[:, 1]) * dims[2] + cells[:, 2]
@@ -113,9 +118,13 @@ class NeighbourGrid:
         count = np.zeros(m, dtype=np.int32)
         cov = np.zeros((m, 6))
         if m:
-            reach = int(math.ceil(radius / self.cell_m * (1.0 + 1e-12)))
+            # cells scanned each way (no more than the grid has: the kernel clips to it)
+            ratio = radius / self.cell_m * (1.0 + 1e-12)
+            widest = int(self.dims.max())
+            reach = int(math.ceil(ratio)) if ratio < widest else widest
+            r = float(radius)
             _moments(self.key, self.order, self.x, self.y, self.z, self.dims, reach, positions,
-                     int(k), float(radius) ** 2, count, cov)
+                     int(k), r * r, count, cov)
         return count, cov
 
 
