@@ -52,9 +52,11 @@ stamp=.venv/.clearaudit-installed
 # reinstall (and rebuild the compiled kernel) when the metadata, the build or a kernel changes
 want=$(cat pyproject.toml setup.py clearaudit/*/*.pyx | sha256sum | cut -d' ' -f1)
 # (and when a kernel's build is missing: the built files are not in git)
-kernels=$(ls clearaudit/*/*.pyx | wc -l)
-built=$(ls clearaudit/*/_*.so 2>/dev/null | wc -l)
-if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ] || [ "$built" -lt "$kernels" ]; then
+shopt -s nullglob
+kernels=(clearaudit/*/*.pyx)
+built=(clearaudit/*/_*.so)
+shopt -u nullglob
+if [ ! -f "$stamp" ] || [ "$(cat "$stamp")" != "$want" ] || [ "${#built[@]}" -lt "${#kernels[@]}" ]; then
   .venv/bin/python -m pip install -q --upgrade pip >/dev/null
   # the build of the compiled kernel talks a lot: its log is shown only when it fails
   if ! .venv/bin/python -m pip install -q -e ".[test]" > .venv/install.log 2>&1; then
