@@ -361,3 +361,20 @@ def test_occupied_cells_match_numpy_unique():
         assert np.array_equal(lookup[cells], np.arange(len(cells)))
         assert np.all(lookup[np.setdiff1d(np.arange(size), cells)] == -1)
         assert occupied_cells(flat, size)[2] is None
+
+
+def test_compiled_cell_sums_equal_bincount():
+    # reference: numpy.bincount (weights widened to float64, added in point order)
+    from clearaudit.classify.kernels import cell_sums3
+
+    rng = np.random.default_rng(17)
+    n, m = 40_000, 900
+    cell = rng.integers(0, m - 50, n).astype(np.int64)  # some cells stay empty
+    xyz = rng.normal(size=(n, 3)) * [1.0, 1.0, 30.0] + [0.0, 0.0, 250.0]
+    fu, fv = rng.uniform(0, 40, (2, n)).astype(np.float32)
+    sums = np.empty((3, m))
+    count = np.empty(m, np.int64)
+    cell_sums3(cell, xyz[:, 2], fu, fv, sums[0], sums[1], sums[2], count)
+    assert np.array_equal(count, np.bincount(cell, minlength=m))
+    for got, w in zip(sums, (xyz[:, 2], fu, fv), strict=True):
+        assert np.array_equal(got, np.bincount(cell, w, minlength=m))

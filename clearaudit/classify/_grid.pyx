@@ -445,3 +445,34 @@ def sym3_finish(const double[:, ::1] cov, const double[::1] q, const double[::1]
             normal[d, 0] = vs[0]
             normal[d, 1] = vs[1]
             normal[d, 2] = vs[2]
+
+
+def cell_sums3(const int64_t[::1] cell, const double[:] z, const float[:] fu, const float[:] fv,
+               double[::1] sum_z, double[::1] sum_u, double[::1] sum_v, int64_t[::1] count):
+    """Points per cell and the per-cell sums of ``z``, ``fu`` and ``fv`` in one pass.
+
+    Each sum starts at zero and adds the points in point order (``numpy.bincount``'s order,
+    the float32 values widened to float64 as bincount widens them): the same sums as three
+    weighted bincounts and a count.
+    """
+    cdef Py_ssize_t n = cell.shape[0], m = count.shape[0], i
+    if z.shape[0] != n or fu.shape[0] != n or fv.shape[0] != n:
+        raise ValueError("the point arrays must have the same length")
+    if sum_z.shape[0] != m or sum_u.shape[0] != m or sum_v.shape[0] != m:
+        raise ValueError("the per-cell arrays must have the same length")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    cdef int64_t c
+    with nogil:
+        for i in range(m):
+            sum_z[i] = 0.0
+            sum_u[i] = 0.0
+            sum_v[i] = 0.0
+            count[i] = 0
+        for i in range(n):
+            c = cell[i]
+            sum_z[c] += z[i]
+            sum_u[c] += <double> fu[i]
+            sum_v[c] += <double> fv[i]
+            count[c] += 1

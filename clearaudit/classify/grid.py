@@ -456,20 +456,6 @@ def cell_max(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
     return out
 
 
-def cell_mean(flat: np.ndarray, values: np.ndarray, size: int,
-              count: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """(mean, count) of ``values`` per flat cell index; mean is NaN where a cell is empty.
-
-    ``count`` (points per cell, from an earlier call with the same ``flat``) saves a pass.
-    """
-    if count is None:
-        count = np.bincount(flat, minlength=size)
-    total = np.bincount(flat, weights=values, minlength=size)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = total / count
-    return mean, count
-
-
 def inpaint(grid: np.ndarray, max_cells: int = 60, sweeps: int = 8, *,
             plan: InpaintPlan | None = None) -> np.ndarray:
     """Fill NaN cells with a smooth (near-harmonic) interpolant of the known cells.

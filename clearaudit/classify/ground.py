@@ -29,12 +29,11 @@ from .grid import (
     InpaintPlan,
     PointLocation,
     _square_filter,
-    cell_mean,
     cell_min,
     inpaint,
     occupied_cells,
 )
-from .kernels import median_f32, window_sums
+from .kernels import cell_sums3, median_f32, window_sums
 
 
 @dataclass
@@ -115,10 +114,14 @@ def build_ground_model(xyz_ground: np.ndarray, frame: GridFrame,
     if len(xyz_ground) == 0:
         raise ValueError("the ground model needs at least one ground point")
     loc = frame.locate(xyz_ground[:, :2]) if location is None else location
-    flat = loc.flat.astype(np.intp, copy=False)  # np.bincount counts intp indices (no cast per call)
-    mean_z, count = cell_mean(flat, xyz_ground[:, 2], frame.size)
-    mean_u, _ = cell_mean(flat, loc.fu, frame.size, count)
-    mean_v, _ = cell_mean(flat, loc.fv, frame.size, count)
+    flat = np.ascontiguousarray(loc.flat, dtype=np.int64)
+    # the count and the sums of z, u and v per cell in one compiled pass (bincount's order)
+    sums = np.empty((3, frame.size))
+    count = np.empty(frame.size, np.int64)
+    cell_sums3(flat, xyz_ground[:, 2], loc.fu, loc.fv, sums[0], sums[1], sums[2], count)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        np.divide(sums, count, out=sums)  # the means (NaN where a cell is empty)
+    mean_z, mean_u, mean_v = sums
     n_u, n_v = frame.shape
     du = (mean_u.reshape(frame.shape) - (np.arange(n_u) + 0.5)[:, None]) * frame.cell
     dv = (mean_v.reshape(frame.shape) - (np.arange(n_v) + 0.5)[None, :]) * frame.cell
