@@ -378,3 +378,26 @@ def test_compiled_cell_sums_equal_bincount():
     assert np.array_equal(count, np.bincount(cell, minlength=m))
     for got, w in zip(sums, (xyz[:, 2], fu, fv), strict=True):
         assert np.array_equal(got, np.bincount(cell, w, minlength=m))
+
+
+@pytest.mark.parametrize("itype", [np.int32, np.int64])
+def test_cell_min_and_max_equal_ufunc_at(itype):
+    # reference: numpy.minimum.at / maximum.at, including NaN, infinities and signed zeros
+    from clearaudit.classify.grid import cell_max, cell_min
+
+    rng = np.random.default_rng(23)
+    n, m = 30_000, 400
+    cell = rng.integers(0, m - 20, n).astype(itype)
+    values = np.round(rng.normal(size=n), 1)
+    pick = rng.random(n)
+    values[pick < 0.01] = np.nan
+    values[(pick > 0.01) & (pick < 0.1)] = -0.0
+    values[(pick > 0.1) & (pick < 0.11)] = np.inf
+    for ours, ufunc, start in ((cell_min, np.minimum, np.inf), (cell_max, np.maximum, -np.inf)):
+        expected = np.full(m, start)
+        with np.errstate(invalid="ignore"):
+            ufunc.at(expected, cell, values)
+        expected[np.isinf(expected)] = np.nan
+        got = ours(cell, values, m)
+        assert np.array_equal(got, expected, equal_nan=True)
+        assert np.array_equal(np.signbit(got), np.signbit(expected))

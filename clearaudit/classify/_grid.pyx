@@ -476,3 +476,35 @@ def cell_sums3(const int64_t[::1] cell, const double[:] z, const float[:] fu, co
             sum_u[c] += <double> fu[i]
             sum_v[c] += <double> fv[i]
             count[c] += 1
+
+
+def cell_extreme(const index[:] cell, const double[:] values, double[::1] out, bint largest):
+    """``numpy.minimum.at(out, cell, values)`` (or ``maximum.at`` when ``largest``) in one pass.
+
+    numpy's scalar rule, point by point in order: the current value stays when it is smaller
+    (larger) or NaN, else the point's value takes its place — so NaN propagates and, among
+    equal values, the later one is kept, as with numpy.
+    """
+    cdef Py_ssize_t n = cell.shape[0], m = out.shape[0], i
+    if values.shape[0] != n:
+        raise ValueError("cell and values must have the same length")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    cdef Py_ssize_t c
+    cdef double v, cur
+    with nogil:
+        if largest:
+            for i in range(n):
+                c = cell[i]
+                v = values[i]
+                cur = out[c]
+                if not (cur > v or cur != cur):
+                    out[c] = v
+        else:
+            for i in range(n):
+                c = cell[i]
+                v = values[i]
+                cur = out[c]
+                if not (cur < v or cur != cur):
+                    out[c] = v

@@ -13,6 +13,7 @@ from scipy import ndimage
 from ..arrays import column_bounds
 from ..threads import run_chunks
 from .kernels import bilinear as _bilinear
+from .kernels import cell_extreme as _cell_extreme
 from .kernels import jacobi_sweep as _jacobi_sweep
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
@@ -438,11 +439,19 @@ def occupied_cells(flat: np.ndarray, size: int, *, lookup: bool = False
     return cells, k, (position if lookup else None)
 
 
+def _cell_index(flat: np.ndarray) -> np.ndarray:
+    """Cell numbers as int32 or int64 (the kernels' index types), without a copy if they are."""
+    flat = np.asarray(flat)
+    if flat.dtype not in (np.int32, np.int64):
+        flat = flat.astype(np.int64)
+    return flat
+
+
 def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
     """Minimum of ``values`` per flat cell index; NaN where a cell is empty."""
     out = np.full(size, np.inf)
-    # same dtype on both sides keeps ufunc.at on its fast path
-    np.minimum.at(out, flat, np.asarray(values, dtype=np.float64))
+    # numpy.minimum.at's rule in one compiled pass (the same values, NaN and signed zeros too)
+    _cell_extreme(_cell_index(flat), np.asarray(values, dtype=np.float64), out, False)
     out[np.isinf(out)] = np.nan
     return out
 
@@ -450,8 +459,8 @@ def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
 def cell_max(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
     """Maximum of ``values`` per flat cell index; NaN where a cell is empty."""
     out = np.full(size, -np.inf)
-    # same dtype on both sides keeps ufunc.at on its fast path
-    np.maximum.at(out, flat, np.asarray(values, dtype=np.float64))
+    # numpy.maximum.at's rule in one compiled pass (the same values, NaN and signed zeros too)
+    _cell_extreme(_cell_index(flat), np.asarray(values, dtype=np.float64), out, True)
     out[np.isinf(out)] = np.nan
     return out
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 try:
     from ._grid import (
         bilinear,
+        cell_extreme,
         cell_sums3,
         jacobi_sweep,
         median_f32,
@@ -24,5 +25,5 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
         f"clearaudit's compiled kernels are missing or were built for another Python ({exc}); "
         "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
 
-__all__ = ["bilinear", "cell_sums3", "jacobi_sweep", "median_f32", "moments", "plane_residual_sums",
+__all__ = ["bilinear", "cell_extreme", "cell_sums3", "jacobi_sweep", "median_f32", "moments", "plane_residual_sums",
            "plane_sums", "sym3_finish", "sym3_prepare", "window_sums"]

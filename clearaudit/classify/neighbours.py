@@ -23,6 +23,7 @@ import math
 
 import numpy as np
 
+from ..arrays import column_bounds
 from .kernels import moments as _moments
 
 _MAX_CELLS = 2 ** 62  # cell numbers are int64
@@ -54,7 +55,7 @@ class NeighbourGrid:
             dims = np.ones(3, dtype=np.int64)
             cells = np.zeros((0, 3), dtype=np.int64)
         else:
-            lo, hi = pts.min(axis=0), pts.max(axis=0)
+            lo, hi = column_bounds(pts)  # min/max per column (exact in any order)
             if not (np.isfinite(lo).all() and np.isfinite(hi).all()):
                 raise ValueError("points must have finite coordinates")
             span = np.floor((hi - lo) / self.cell_m) + 1.0  # float: no overflow before the test
