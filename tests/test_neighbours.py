@@ -201,4 +201,4 @@ def test_equal_distances_are_summed_by_point_index():
     expected = [np.sum(d[a] * d[b]) / 7 - mean[a] * mean[b]
                 for a, b in ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))]
     assert cnt[0] == 7
-    np.testing.assert_allclose(cov[0], expected, atol=1e-15)
+    assert np.array_equal(cov[0], expected)

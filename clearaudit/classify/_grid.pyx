@@ -5,9 +5,10 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabs, fabsf, sqrt
+from libc.math cimport NAN, fabsf, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
+from libc.string cimport memcpy
 
 ctypedef fused real:
     float
@@ -16,6 +17,16 @@ ctypedef fused real:
 ctypedef fused index:
     int32_t
     int64_t
+
+
+cdef int _check_cells(const index[::1] cell, Py_ssize_t m) except -1:
+    """Raise ``IndexError`` unless every cell number lies in ``0 … m - 1`` (the kernels
+    index without bounds checks)."""
+    cdef Py_ssize_t i
+    for i in range(cell.shape[0]):
+        if cell[i] < 0 or cell[i] >= m:
+            raise IndexError("a point's cell is outside the cells")
+    return 0
 
 
 def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
@@ -61,7 +72,8 @@ def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
 
 cdef inline uint32_t _order_key(float v) noexcept nogil:
     """A key whose unsigned order is the order of the float32 values (-0 before +0)."""
-    cdef uint32_t bits = (<uint32_t *> &v)[0]
+    cdef uint32_t bits
+    memcpy(&bits, &v, 4)  # the float's bits (a copy: no aliasing through a cast pointer)
     if bits & 0x80000000u:
         return ~bits
     return bits | 0x80000000u
@@ -73,7 +85,17 @@ cdef inline float _from_key(uint32_t key) noexcept nogil:
         bits = key & 0x7FFFFFFFu
     else:
         bits = ~key
-    return (<float *> &bits)[0]
+    cdef float value
+    memcpy(&value, &bits, 4)
+    return value
+
+
+cdef inline float _value(const float[::1] v, Py_ssize_t i, float center,
+                         bint centred) noexcept nogil:
+    """The value the median is taken of: ``v[i]``, or ``|v[i] - center|`` when ``centred``."""
+    if centred:
+        return fabsf(v[i] - center)
+    return v[i]
 
 
 cdef uint32_t _select(const float[::1] v, float center, bint centred, Py_ssize_t rank,
@@ -83,17 +105,13 @@ cdef uint32_t _select(const float[::1] v, float center, bint centred, Py_ssize_t
     cdef Py_ssize_t n = v.shape[0], i
     cdef int64_t seen = 0
     cdef uint32_t bucket = 0, key
-    cdef float x
     while seen + high[bucket] <= rank:
         seen += high[bucket]
         bucket += 1
     for i in range(65536):
         low[i] = 0
     for i in range(n):
-        x = v[i]
-        if centred:
-            x = fabsf(x - center)
-        key = _order_key(x)
+        key = _order_key(_value(v, i, center, centred))
         if (key >> 16) == bucket:
             low[key & 0xFFFFu] += 1
     i = 0
@@ -127,9 +145,7 @@ def median_f32(const float[::1] v, float center=0.0, bint centred=False):
         for i in range(65536):
             high[i] = 0
         for i in range(n):
-            x = v[i]
-            if centred:
-                x = fabsf(x - center)
+            x = _value(v, i, center, centred)
             if x != x:
                 nan = True
                 break
@@ -166,9 +182,7 @@ def window_sums(const float[::1] resid, const float[::1] limit, const int64_t[::
         raise ValueError("limit must hold one value or one per point")
     if count.shape[0] != m:
         raise ValueError("total and count must have the same length")
-    for i in range(n):
-        if cell[i] < 0 or cell[i] >= m:
-            raise IndexError("a point's cell is outside the cells")
+    _check_cells(cell, m)
     cdef bint one = limit.shape[0] == 1
     cdef float lim = limit[0] if n else 0.0
     cdef int64_t c
@@ -199,9 +213,7 @@ def plane_sums(const int64_t[::1] cell, const double[:] dx, const double[:] dy,
         raise ValueError("the point arrays must have the same length")
     if z0.shape[0] != m or out.shape[1] != 8:
         raise ValueError("z0 needs one value and out 8 columns per cell")
-    for i in range(n):
-        if cell[i] < 0 or cell[i] >= m:
-            raise IndexError("a point's cell is outside the cells")
+    _check_cells(cell, m)
     cdef int64_t c
     cdef double x, y, zr
     with nogil:
@@ -237,9 +249,7 @@ def plane_residual_sums(const int64_t[::1] cell, const double[:] dx, const doubl
         raise ValueError("the point arrays must have the same length")
     if z0.shape[0] != m or a.shape[0] != m or b.shape[0] != m or c.shape[0] != m:
         raise ValueError("z0, a, b and c need one value per cell")
-    for i in range(n):
-        if cell[i] < 0 or cell[i] >= m:
-            raise IndexError("a point's cell is outside the cells")
+    _check_cells(cell, m)
     cdef int64_t k
     cdef double r, fit
     with nogil:
@@ -301,8 +311,8 @@ def sym3_prepare(const double[:, ::1] cov, double[::1] q, double[::1] p, double[
 
     ``cov`` rows hold (xx, xy, xz, yy, yz, zz). Per row: ``q = tr A / 3``,
     ``p = sqrt(|A - q I|_F² / 6)`` and ``c = clip(det((A - q I) / p) / 2, -1, 1)`` (``p`` taken
-    as 1 where it is 0) — :func:`clearaudit.classify.features._sym3_eigen`'s operations in its
-    order. The caller takes ``phi = arccos(c) / 3`` and the cosines with numpy.
+    as 1 where it is 0). :func:`clearaudit.classify.features.sym3_eigen` takes
+    ``phi = arccos(c) / 3`` and the cosines with numpy, then :func:`sym3_pairs`.
     """
     cdef Py_ssize_t m = cov.shape[0], i
     if cov.shape[1] != 6 or q.shape[0] != m or p.shape[0] != m or c.shape[0] != m:
@@ -342,110 +352,75 @@ def sym3_prepare(const double[:, ::1] cov, double[::1] q, double[::1] p, double[
             c[i] = det
 
 
+cdef inline void _longer_cross(double u0, double u1, double u2, double w0, double w1,
+                               double w2, double *best, bint first) noexcept nogil:
+    """``u × w`` into ``best[0:3]`` (its squared length into ``best[3]``) when it is the
+    ``first`` or longer than the vector already there (the first longest stays on ties)."""
+    cdef double x0 = u1 * w2 - u2 * w1
+    cdef double x1 = u2 * w0 - u0 * w2
+    cdef double x2 = u0 * w1 - u1 * w0
+    cdef double n2 = (x0 * x0 + x2 * x2) + x1 * x1
+    if first or n2 > best[3]:
+        best[0] = x0
+        best[1] = x1
+        best[2] = x2
+        best[3] = n2
+
+
 cdef inline bint _vector(double xx, double xy, double xz, double yy, double yz, double zz,
                          double lam, double *out) noexcept nogil:
     """Unit eigenvector of ``lam``: the longest cross product of two rows of ``A - lam I``
-    (the first longest on ties); False where it is not resolved."""
+    (rows a × b, a × c, b × c in that order; the first longest on ties); False where it is
+    not resolved."""
     cdef double a0 = xx - lam, a1 = xy, a2 = xz
     cdef double b0 = xy, b1 = yy - lam, b2 = yz
     cdef double c0 = xz, c1 = yz, c2 = zz - lam
-    cdef double x0, x1, x2, n2, best0, best1, best2, best_n2, scale, norm
-    # rows a × b
-    best0 = a1 * b2 - a2 * b1
-    best1 = a2 * b0 - a0 * b2
-    best2 = a0 * b1 - a1 * b0
-    best_n2 = (best0 * best0 + best2 * best2) + best1 * best1
-    # a × c
-    x0 = a1 * c2 - a2 * c1
-    x1 = a2 * c0 - a0 * c2
-    x2 = a0 * c1 - a1 * c0
-    n2 = (x0 * x0 + x2 * x2) + x1 * x1
-    if n2 > best_n2:
-        best0 = x0
-        best1 = x1
-        best2 = x2
-        best_n2 = n2
-    # b × c
-    x0 = b1 * c2 - b2 * c1
-    x1 = b2 * c0 - b0 * c2
-    x2 = b0 * c1 - b1 * c0
-    n2 = (x0 * x0 + x2 * x2) + x1 * x1
-    if n2 > best_n2:
-        best0 = x0
-        best1 = x1
-        best2 = x2
-        best_n2 = n2
-    scale = ((((a0 * a0 + a2 * a2) + a1 * a1) + ((b0 * b0 + b2 * b2) + b1 * b1))
-             + ((c0 * c0 + c2 * c2) + c1 * c1))
-    cdef bint ok = best_n2 > (1e-18 * scale) * scale + 1e-300
-    norm = sqrt(best_n2 if ok else 1.0)
-    out[0] = best0 / norm
-    out[1] = best1 / norm
-    out[2] = best2 / norm
+    cdef double best[4]
+    _longer_cross(a0, a1, a2, b0, b1, b2, best, True)
+    _longer_cross(a0, a1, a2, c0, c1, c2, best, False)
+    _longer_cross(b0, b1, b2, c0, c1, c2, best, False)
+    cdef double scale = ((((a0 * a0 + a2 * a2) + a1 * a1) + ((b0 * b0 + b2 * b2) + b1 * b1))
+                         + ((c0 * c0 + c2 * c2) + c1 * c1))
+    cdef bint ok = best[3] > (1e-18 * scale) * scale + 1e-300
+    cdef double norm = sqrt(best[3] if ok else 1.0)
+    out[0] = best[0] / norm
+    out[1] = best[1] / norm
+    out[2] = best[2] / norm
     return ok
 
 
-def sym3_finish(const double[:, ::1] cov, const double[::1] q, const double[::1] p,
-                const double[::1] cos_large, const double[::1] cos_small,
-                const int64_t[::1] dest, double[::1] lin, double[::1] pla, double[::1] sca,
-                double[::1] ver, double[:, ::1] direction, double[:, ::1] normal,
-                unsigned char[::1] bad):
-    """Second half: eigenvalues, the extreme eigenvectors and the eigen features.
+def sym3_pairs(const double[:, ::1] cov, const double[::1] q, const double[::1] p,
+               const double[::1] cos_large, const double[::1] cos_small, double[:, ::1] values,
+               double[:, ::1] v_small, double[:, ::1] v_large, unsigned char[::1] bad):
+    """Second half: the eigenvalues (ascending) and the unit eigenvectors of the extreme ones.
 
-    Per row ``i`` (written at ``dest[i]`` of the feature arrays): the largest and smallest
-    eigenvalues ``q + 2 p cos``, the middle one ``3 q - large - small``, the unit eigenvectors
-    of the extreme ones (:func:`_vector`), and from them linearity, planarity, scattering and
-    verticality (``features._features``' formulas); ``bad[i]`` where a vector is not resolved
-    (the caller redoes those rows with a general solver).
+    Per row: the largest and smallest eigenvalues ``q + 2 p cos``, the middle one
+    ``3 q - large - small``, and the eigenvectors of the extreme ones (:func:`_vector`);
+    ``bad`` where a vector is not resolved (a repeated extreme eigenvalue or a zero matrix:
+    the caller redoes those rows with a general solver).
     """
-    cdef Py_ssize_t m = cov.shape[0], n = lin.shape[0], i, d
+    cdef Py_ssize_t m = cov.shape[0], i
     if cov.shape[1] != 6 or q.shape[0] != m or p.shape[0] != m or cos_large.shape[0] != m \
-            or cos_small.shape[0] != m or dest.shape[0] != m or bad.shape[0] != m:
+            or cos_small.shape[0] != m or bad.shape[0] != m:
         raise ValueError("the row arrays must have the same length")
-    if pla.shape[0] != n or sca.shape[0] != n or ver.shape[0] != n \
-            or direction.shape[0] != n or normal.shape[0] != n \
-            or direction.shape[1] != 3 or normal.shape[1] != 3:
-        raise ValueError("the feature arrays must have the same length (vectors: 3 columns)")
-    for i in range(m):
-        if dest[i] < 0 or dest[i] >= n:
-            raise IndexError("a destination row is outside the feature arrays")
-    cdef double xx, xy, xz, yy, yz, zz, two_p, large, small, mid, l1, l2, l3, safe
-    cdef double vs[3]
-    cdef double vl[3]
-    cdef bint ok_s, ok_l, ok
+    if values.shape[0] != m or v_small.shape[0] != m or v_large.shape[0] != m \
+            or values.shape[1] != 3 or v_small.shape[1] != 3 or v_large.shape[1] != 3:
+        raise ValueError("values and vectors must be (m, 3)")
+    cdef double two_p, large, small
+    cdef bint ok_s, ok_l
     with nogil:
         for i in range(m):
-            xx = cov[i, 0]
-            xy = cov[i, 1]
-            xz = cov[i, 2]
-            yy = cov[i, 3]
-            yz = cov[i, 4]
-            zz = cov[i, 5]
             two_p = 2.0 * p[i]
             large = q[i] + two_p * cos_large[i]
             small = q[i] + two_p * cos_small[i]
-            mid = (3.0 * q[i] - large) - small
-            ok_s = _vector(xx, xy, xz, yy, yz, zz, small, vs)
-            ok_l = _vector(xx, xy, xz, yy, yz, zz, large, vl)
+            values[i, 0] = small
+            values[i, 1] = (3.0 * q[i] - large) - small
+            values[i, 2] = large
+            ok_s = _vector(cov[i, 0], cov[i, 1], cov[i, 2], cov[i, 3], cov[i, 4], cov[i, 5],
+                           small, &v_small[i, 0])
+            ok_l = _vector(cov[i, 0], cov[i, 1], cov[i, 2], cov[i, 3], cov[i, 4], cov[i, 5],
+                           large, &v_large[i, 0])
             bad[i] = not (ok_s and ok_l)
-            d = dest[i]
-            l1 = large
-            # numpy.maximum(v, 0): v where v >= 0 or v is NaN
-            l2 = mid if (mid >= 0.0 or mid != mid) else 0.0
-            l3 = small if (small >= 0.0 or small != small) else 0.0
-            ok = l1 > 1e-12
-            safe = l1 if ok else 1.0
-            lin[d] = (l1 - l2) / safe if ok else 0.0
-            pla[d] = (l2 - l3) / safe if ok else 0.0
-            sca[d] = l3 / safe if ok else 0.0
-            ver[d] = 1.0 - fabs(vs[2]) if ok else 0.0
-            direction[d, 0] = vl[0]
-            direction[d, 1] = vl[1]
-            direction[d, 2] = vl[2]
-            normal[d, 0] = vs[0]
-            normal[d, 1] = vs[1]
-            normal[d, 2] = vs[2]
-
 
 def cell_sums3(const int64_t[::1] cell, const double[:] z, const float[:] fu, const float[:] fv,
                double[::1] sum_z, double[::1] sum_u, double[::1] sum_v, int64_t[::1] count):
@@ -460,9 +435,7 @@ def cell_sums3(const int64_t[::1] cell, const double[:] z, const float[:] fu, co
         raise ValueError("the point arrays must have the same length")
     if sum_z.shape[0] != m or sum_u.shape[0] != m or sum_v.shape[0] != m:
         raise ValueError("the per-cell arrays must have the same length")
-    for i in range(n):
-        if cell[i] < 0 or cell[i] >= m:
-            raise IndexError("a point's cell is outside the cells")
+    _check_cells(cell, m)
     cdef int64_t c
     with nogil:
         for i in range(m):
@@ -478,7 +451,7 @@ def cell_sums3(const int64_t[::1] cell, const double[:] z, const float[:] fu, co
             count[c] += 1
 
 
-def cell_extreme(const index[:] cell, const double[:] values, double[::1] out, bint largest):
+def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out, bint largest):
     """``numpy.minimum.at(out, cell, values)`` (or ``maximum.at`` when ``largest``) in one pass.
 
     numpy's scalar rule, point by point in order: the current value stays when it is smaller
@@ -488,23 +461,14 @@ def cell_extreme(const index[:] cell, const double[:] values, double[::1] out, b
     cdef Py_ssize_t n = cell.shape[0], m = out.shape[0], i
     if values.shape[0] != n:
         raise ValueError("cell and values must have the same length")
-    for i in range(n):
-        if cell[i] < 0 or cell[i] >= m:
-            raise IndexError("a point's cell is outside the cells")
+    _check_cells(cell, m)
     cdef Py_ssize_t c
     cdef double v, cur
     with nogil:
-        if largest:
-            for i in range(n):
-                c = cell[i]
-                v = values[i]
-                cur = out[c]
-                if not (cur > v or cur != cur):
-                    out[c] = v
-        else:
-            for i in range(n):
-                c = cell[i]
-                v = values[i]
-                cur = out[c]
-                if not (cur < v or cur != cur):
-                    out[c] = v
+        for i in range(n):
+            c = cell[i]
+            v = values[i]
+            cur = out[c]
+            if cur != cur or (cur > v if largest else cur < v):
+                continue
+            out[c] = v

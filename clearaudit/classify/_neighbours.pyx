@@ -6,6 +6,7 @@ scipy round them, so the moments are the same numbers as numpy's reductions give
 """
 from libc.stdint cimport int32_t, int64_t, uint64_t
 from libc.stdlib cimport free, malloc
+from libc.string cimport memcpy
 
 
 cdef inline Py_ssize_t _lower(const int64_t[::1] a, int64_t v, Py_ssize_t lo,
@@ -118,7 +119,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                     if d2 >= r2:
                         continue
                     # d2 >= 0: its bits order as the values do, and integers compare cheaply
-                    bits = (<uint64_t *> &buf[u])[0]
+                    memcpy(&bits, &buf[u], 8)
                     j = s + u
                     p = index[j]
                     if m == k and (bits > best_d[k - 1]

@@ -25,6 +25,7 @@ from ..errors import InputError
 from .features import eigen_features
 from .grid import GridFrame, PointLocation, cell_max, cell_min
 from .ground import GroundModel, build_ground_model, refine_ground, smrf
+from .kernels import cell_extreme
 from .noise import isolated_points, pit_cells
 from .objects import (
     GroundRoofs,
@@ -242,7 +243,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         surface = zmin.reshape(-1)
         surface[pit_cells_flat] = np.inf
         still = pit_points[use[pit_points]]
-        np.minimum.at(surface, flat[still], z[still])
+        cell_extreme(flat[still], np.asarray(z[still], dtype=np.float64), surface, False)
         gone = pit_cells_flat[np.isinf(surface[pit_cells_flat])]
         surface[gone] = np.nan
         del pit_points, in_pit, still, pit_cells_flat, gone

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..threads import inner_threads, run_chunks
-from .kernels import sym3_finish, sym3_prepare
+from .kernels import sym3_pairs, sym3_prepare
 from .neighbours import NeighbourGrid
 
 _CHUNK = 65_536  # points per chunk of the eigen pass (cache friendly temporaries)
@@ -139,10 +139,8 @@ def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: in
     The points are visited cell by cell (:meth:`NeighbourGrid.walk`) in chunks on
     ``threads``; per chunk the neighbourhood moments come from :meth:`NeighbourGrid.moments`
     (about each neighbourhood's mean, reduced relative to its query point) and the eigen pairs
-    from the closed form of :func:`sym3_eigen`, computed by two compiled passes around numpy's
-    ``arccos`` and ``cos`` (``kernels.sym3_prepare`` / ``sym3_finish``: the same numbers);
-    rows it cannot resolve fall back to ``numpy.linalg.eigh``. Every output row depends on
-    its own point only.
+    from the closed form of :func:`sym3_eigen` (rows it cannot resolve fall back to
+    ``numpy.linalg.eigh``). Every output row depends on its own point only.
     """
     positions, dest = grid.walk(rows)
     n = len(positions)
@@ -154,38 +152,27 @@ def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: in
     normal = np.zeros((n, 3))
     count = np.zeros(n, dtype=np.int32)
 
-    def write(rows: np.ndarray, vals: np.ndarray, v_small: np.ndarray,
-              v_large: np.ndarray) -> None:
-        """The features of eigen pairs (ascending values) into the rows ``rows``."""
+    def chunk(start: int, stop: int) -> None:
+        cnt, cov = grid.moments(positions[start:stop], radius, k)
+        at = dest[start:stop]  # the rows these results belong to
+        vals, v_small, v_large, bad = sym3_eigen(cov)
+        if bad.any():  # a repeated extreme eigenvalue or a zero matrix: the general solver
+            full = cov[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
+            bvals, bvecs = np.linalg.eigh(full)  # ascending
+            vals[bad] = bvals
+            v_small[bad] = bvecs[:, :, 0]
+            v_large[bad] = bvecs[:, :, 2]
         l1 = vals[:, 2]
         l2 = np.maximum(vals[:, 1], 0.0)
         l3 = np.maximum(vals[:, 0], 0.0)
         ok = l1 > 1e-12
         safe = np.where(ok, l1, 1.0)
-        lin[rows] = np.where(ok, (l1 - l2) / safe, 0.0)
-        pla[rows] = np.where(ok, (l2 - l3) / safe, 0.0)
-        sca[rows] = np.where(ok, l3 / safe, 0.0)
-        direction[rows] = v_large
-        normal[rows] = v_small
-        ver[rows] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
-
-    def chunk(start: int, stop: int) -> None:
-        cnt, cov = grid.moments(positions[start:stop], radius, k)
-        at = dest[start:stop]  # the rows these results belong to
-        m = len(cnt)
-        # sym3_eigen's closed form in two compiled passes around numpy's arccos and cosines;
-        # the second writes the features of every row straight into place
-        q, p, c = np.empty(m), np.empty(m), np.empty(m)
-        sym3_prepare(cov, q, p, c)
-        phi = np.arccos(c) / 3.0
-        bad = np.empty(m, np.uint8)
-        sym3_finish(cov, q, p, np.cos(phi), np.cos(phi + 2.0 * np.pi / 3.0), at, lin, pla,
-                    sca, ver, direction, normal, bad)
-        bad = bad.view(bool)
-        if bad.any():  # a repeated extreme eigenvalue or a zero matrix: the general solver
-            full = cov[bad][:, [0, 1, 2, 1, 3, 4, 2, 4, 5]].reshape(-1, 3, 3)
-            bvals, bvecs = np.linalg.eigh(full)  # ascending
-            write(at[bad], bvals, bvecs[:, :, 0], bvecs[:, :, 2])
+        lin[at] = np.where(ok, (l1 - l2) / safe, 0.0)
+        pla[at] = np.where(ok, (l2 - l3) / safe, 0.0)
+        sca[at] = np.where(ok, l3 / safe, 0.0)
+        direction[at] = v_large
+        normal[at] = v_small
+        ver[at] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
         count[at] = cnt
 
     run_chunks(chunk, n, _CHUNK, threads)
@@ -215,59 +202,22 @@ def sym3_eigen(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.
     and the trace remainder. An eigenvector of :math:`\lambda` is the longest cross product of
     two rows of :math:`A - \lambda I`.
 
+    The arithmetic runs in two compiled passes (``kernels.sym3_prepare``, before the arccos,
+    and ``kernels.sym3_pairs``, after the cosines), each operation in the order of the former
+    numpy form (the same numbers); ``arccos`` and ``cos`` are numpy's own.
+
     References
     ----------
     Smith, O. K. (1961). Eigenvalues of a symmetric 3 × 3 matrix. Communications of the ACM
     4(4), 168.
     """
-    cov = np.asarray(cov, dtype=np.float64)
-    return _sym3_eigen(*(np.ascontiguousarray(cov[:, i]) for i in range(6)))
-
-
-def _sym3_eigen(xx: np.ndarray, xy: np.ndarray, xz: np.ndarray, yy: np.ndarray,
-                yz: np.ndarray, zz: np.ndarray
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`sym3_eigen` on the six moments as separate 1D arrays (component-wise)."""
-    q = (xx + yy + zz) / 3.0
-    axx, ayy, azz = xx - q, yy - q, zz - q
-    p = np.sqrt((axx * axx + ayy * ayy + azz * azz + 2.0 * (xy * xy + xz * xz + yz * yz)) / 6.0)
-    inv = 1.0 / np.where(p > 0, p, 1.0)
-    bxx, byy, bzz, bxy, bxz, byz = axx * inv, ayy * inv, azz * inv, xy * inv, xz * inv, yz * inv
-    del axx, ayy, azz, inv
-    det = (bxx * (byy * bzz - byz * byz) - bxy * (bxy * bzz - byz * bxz)
-           + bxz * (bxy * byz - byy * bxz))
-    del bxx, byy, bzz, bxy, bxz, byz
-    phi = np.arccos(np.clip(det / 2.0, -1.0, 1.0)) / 3.0
-    large = q + 2.0 * p * np.cos(phi)
-    small = q + 2.0 * p * np.cos(phi + 2.0 * np.pi / 3.0)
-    values = np.stack([small, 3.0 * q - large - small, large], axis=1)
-
-    def vector(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        # rows r0 = (a0, a1, a2), r1 = (b0, b1, b2), r2 = (c0, c1, c2) of A - lam I; squared
-        # norms summed as (x0² + x2²) + x1², the order numpy's einsum uses for three terms, so
-        # the vectors equal those of the former einsum form bit for bit
-        a0, a1, a2 = xx - lam, xy, xz
-        b0, b1, b2 = xy, yy - lam, yz
-        c0, c1, c2 = xz, yz, zz - lam
-        best = None
-        for u, w in (((a0, a1, a2), (b0, b1, b2)), ((a0, a1, a2), (c0, c1, c2)),
-                     ((b0, b1, b2), (c0, c1, c2))):
-            cross = (u[1] * w[2] - u[2] * w[1], u[2] * w[0] - u[0] * w[2],
-                     u[0] * w[1] - u[1] * w[0])
-            norm2 = (cross[0] * cross[0] + cross[2] * cross[2]) + cross[1] * cross[1]
-            if best is None:
-                best, best_norm2 = list(cross), norm2
-            else:  # the first longest candidate wins ties
-                longer = norm2 > best_norm2
-                for j in range(3):
-                    np.copyto(best[j], cross[j], where=longer)
-                np.copyto(best_norm2, norm2, where=longer)
-        scale = (((a0 * a0 + a2 * a2) + a1 * a1) + ((b0 * b0 + b2 * b2) + b1 * b1)
-                 + ((c0 * c0 + c2 * c2) + c1 * c1))
-        ok = best_norm2 > 1e-18 * scale * scale + 1e-300
-        norm = np.sqrt(np.where(ok, best_norm2, 1.0))
-        return np.stack([best[0] / norm, best[1] / norm, best[2] / norm], axis=1), ok
-
-    v_small, ok_small = vector(small)
-    v_large, ok_large = vector(large)
-    return values, v_small, v_large, ~(ok_small & ok_large)
+    cov = np.ascontiguousarray(cov, dtype=np.float64).reshape(-1, 6)
+    m = len(cov)
+    q, p, c = np.empty(m), np.empty(m), np.empty(m)
+    sym3_prepare(cov, q, p, c)
+    phi = np.arccos(c) / 3.0
+    values, v_small, v_large = np.empty((m, 3)), np.empty((m, 3)), np.empty((m, 3))
+    bad = np.empty(m, np.uint8)
+    sym3_pairs(cov, q, p, np.cos(phi), np.cos(phi + 2.0 * np.pi / 3.0), values, v_small,
+               v_large, bad)
+    return values, v_small, v_large, bad.view(bool)

@@ -440,11 +440,10 @@ def occupied_cells(flat: np.ndarray, size: int, *, lookup: bool = False
 
 
 def _cell_index(flat: np.ndarray) -> np.ndarray:
-    """Cell numbers as int32 or int64 (the kernels' index types), without a copy if they are."""
+    """Cell numbers as contiguous int32 or int64 (the kernels' index types; no copy if they are)."""
     flat = np.asarray(flat)
-    if flat.dtype not in (np.int32, np.int64):
-        flat = flat.astype(np.int64)
-    return flat
+    return np.ascontiguousarray(flat, dtype=flat.dtype if flat.dtype in (np.int32, np.int64)
+                                else np.int64)
 
 
 def cell_min(flat: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
