@@ -336,7 +336,8 @@ class TileSpec:
 
 def plan_tiles(cell_counts: dict[tuple[int, int], int], grid: Grid, tile_points: int,
                overlap_m: float, max_cells_per_side: int = 32) -> list[TileSpec]:
-    """Group occupied cells into square blocks of ``k x k`` cells (largest ``k`` that fits).
+    """Group occupied cells into square blocks of ``k x k`` cells (largest ``k`` that fits);
+    a scrap block (under a quarter of ``tile_points``) joins a side neighbour when both fit.
 
     Parameters
     ----------
@@ -354,7 +355,8 @@ def plan_tiles(cell_counts: dict[tuple[int, int], int], grid: Grid, tile_points:
     Returns
     -------
     list of TileSpec
-        Ordered by block (i, j).
+        Ordered by block (i, j); a joined pair is one tile named after its larger block, and
+        its box is the two blocks' rectangle.
     """
     if tile_points < 1 or overlap_m < 0:
         raise ValueError("tile_points must be positive and overlap_m non-negative")
@@ -372,22 +374,58 @@ def plan_tiles(cell_counts: dict[tuple[int, int], int], grid: Grid, tile_points:
             break
     blocks, inverse = np.unique(ij // k_best, axis=0, return_inverse=True)
     inverse = inverse.reshape(-1)
+    block_points = np.bincount(inverse, weights=n).astype(np.int64)
+    # a line crossing a block corner leaves scraps: blocks of a few points whose context
+    # (the overlap all around them) is many times what they own. Each scrap joins a block
+    # next to it (sharing a side: the union is a 2k x k rectangle) when both together stay
+    # within ``tile_points``; a block takes at most one scrap, so every tile stays a rectangle
+    partner = _scrap_partners(blocks, block_points, tile_points)
     reach = int(math.ceil(overlap_m / grid.cell_m))
     tiles = []
     for b, (bi, bj) in enumerate(blocks):
-        mine = np.flatnonzero(inverse == b)
+        if partner[b] >= 0 and (block_points[b], b) < (block_points[partner[b]], partner[b]):
+            continue  # the smaller of a joined pair: its cells belong to its partner's tile
+        members = [b] if partner[b] < 0 else [b, int(partner[b])]
+        mine = np.flatnonzero(np.isin(inverse, members))
         cells = tuple(sorted((int(ij[m, 0]), int(ij[m, 1])) for m in mine))
-        i0, j0 = int(bi) * k_best, int(bj) * k_best
+        i0 = int(blocks[members, 0].min()) * k_best
+        j0 = int(blocks[members, 1].min()) * k_best
+        i1 = (int(blocks[members, 0].max()) + 1) * k_best
+        j1 = (int(blocks[members, 1].max()) + 1) * k_best
         box = (grid.x0 + i0 * grid.cell_m, grid.y0 + j0 * grid.cell_m,
-               grid.x0 + (i0 + k_best) * grid.cell_m, grid.y0 + (j0 + k_best) * grid.cell_m)
+               grid.x0 + i1 * grid.cell_m, grid.y0 + j1 * grid.cell_m)
         context = tuple(sorted(
             c for c in occupied
-            if i0 - reach <= c[0] < i0 + k_best + reach and j0 - reach <= c[1] < j0 + k_best + reach
-            and not (i0 <= c[0] < i0 + k_best and j0 <= c[1] < j0 + k_best)))
+            if i0 - reach <= c[0] < i1 + reach and j0 - reach <= c[1] < j1 + reach
+            and not (i0 <= c[0] < i1 and j0 <= c[1] < j1)))
         tiles.append(TileSpec(id=f"t{int(bi)}_{int(bj)}", cells=cells, box=box,
                               overlap_m=float(overlap_m), context_cells=context,
                               n_points=int(n[mine].sum())))
     return tiles
+
+
+def _scrap_partners(blocks: np.ndarray, points: np.ndarray, tile_points: int,
+                    scrap_share: float = 0.25) -> np.ndarray:
+    """For every block the block it is joined with (-1: none).
+
+    A scrap is a block owning less than ``scrap_share`` of ``tile_points``. Scraps are taken
+    from the smallest up (ties in block order); each joins the side neighbour (same row or
+    column, next block) with the fewest points among those not yet joined whose points and
+    its own together are at most ``tile_points``.
+    """
+    partner = np.full(len(blocks), -1, dtype=np.int64)
+    where = {(int(i), int(j)): b for b, (i, j) in enumerate(blocks)}
+    for b in sorted(range(len(blocks)), key=lambda q: (int(points[q]), q)):
+        if partner[b] >= 0 or points[b] >= scrap_share * tile_points:
+            continue
+        i, j = int(blocks[b, 0]), int(blocks[b, 1])
+        options = [q for q in (where.get((i - 1, j)), where.get((i + 1, j)),
+                               where.get((i, j - 1)), where.get((i, j + 1)))
+                   if q is not None and partner[q] < 0 and points[q] + points[b] <= tile_points]
+        if options:
+            q = min(options, key=lambda o: (int(points[o]), o))
+            partner[b], partner[q] = q, b
+    return partner
 
 
 # =============================================================================== tile I/O

@@ -176,3 +176,51 @@ def test_record_helpers_reject_other_layouts_and_class_mask_ignores_foreign_code
         take_records(other, [0, 1])
     codes = np.array([255, 1, 0], dtype=np.uint8)
     np.testing.assert_array_equal(class_mask(codes, (-1, 1, 256)), np.isin(codes, (-1, 1, 256)))
+
+
+def test_plan_tiles_joins_scrap_blocks_into_rectangles():
+    # a line crossing block corners: blocks of k x k cells, some holding only a few points.
+    # Expected by construction (common practice, no source): every occupied cell owned by one
+    # tile, every tile a rectangle of one block or two side-by-side blocks within the point
+    # budget, context = occupied cells within the overlap of the box that the tile does not own
+    from clearaudit.tiling import Grid, _scrap_partners, plan_tiles
+
+    grid = Grid(0.0, 0.0, 100.0)
+    counts = {}
+    for i in range(12):  # a diagonal band of cells: full blocks and corner scraps
+        for j in range(max(0, i - 1), i + 2):
+            counts[(i, j)] = 60_000 if abs(i - j) <= 0 else 9_000
+    tiles = plan_tiles(counts, grid, 400_000, 40.0)
+    owned = [c for t in tiles for c in t.cells]
+    assert sorted(owned) == sorted(counts) and len(set(owned)) == len(owned)
+    reach = 1
+    for t in tiles:
+        assert t.n_points == sum(counts[c] for c in t.cells) <= 400_000
+        x0, y0, x1, y1 = t.box
+        i0, j0, i1, j1 = (round(v / 100.0) for v in t.box)
+        assert all(i0 <= i < i1 and j0 <= j < j1 for i, j in t.cells)  # cells inside the box
+        sides = sorted((i1 - i0, j1 - j0))
+        assert sides[1] in (sides[0], 2 * sides[0])  # a block or two blocks side by side
+        expect = sorted(c for c in counts if i0 - reach <= c[0] < i1 + reach
+                        and j0 - reach <= c[1] < j1 + reach and c not in t.cells)
+        assert list(t.context_cells) == expect
+    for a in tiles:  # boxes never overlap
+        for b in tiles:
+            if a is not b:
+                assert (a.box[2] <= b.box[0] or b.box[2] <= a.box[0] or a.box[3] <= b.box[1]
+                        or b.box[3] <= a.box[1])
+    # fewer tiles than blocks: the scraps were joined
+    k = round((tiles[0].box[2] - tiles[0].box[0]) / 100.0)
+    blocks = {(i // k, j // k) for i, j in counts}
+    assert len(tiles) < len(blocks)
+    # the pairing itself: smallest scrap first, to its smallest fitting side neighbour
+    blocks = np.array([[0, 0], [0, 1], [1, 1], [5, 5]])
+    points = np.array([100, 900, 50, 10])
+    np.testing.assert_array_equal(_scrap_partners(blocks, points, 1000), [-1, 2, 1, -1])
+    # a neighbour already joined is not taken again; nothing fits: no pair
+    np.testing.assert_array_equal(_scrap_partners(blocks, points, 960), [-1, 2, 1, -1])
+    np.testing.assert_array_equal(_scrap_partners(blocks, points, 900), [-1, -1, -1, -1])
+    # among the neighbours that fit, the one with the fewest points
+    blocks = np.array([[0, 0], [0, 1], [1, 0], [5, 5]])
+    points = np.array([100, 900, 300, 10])
+    np.testing.assert_array_equal(_scrap_partners(blocks, points, 1000), [2, -1, 0, -1])
