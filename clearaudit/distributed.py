@@ -3,7 +3,7 @@
 One small interface, :class:`Engine`, runs a list of tasks (a function and its arguments) and
 yields their results as they complete. :class:`InProcessEngine` runs them in this process, on
 a pool of threads (one task per thread, as many threads as cores unless ``--threads`` says
-otherwise; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share the cores);
+otherwise; the last tasks of a stage share the threads left idle; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share the cores);
 :class:`DaskEngine` submits them to a ``distributed.Client``:
 ``--workers N`` starts ``distributed.LocalCluster(n_workers=N, threads_per_worker=1)``,
 ``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs,
@@ -107,8 +107,11 @@ class InProcessEngine(Engine):
             return
         from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
 
+        from .threads import PoolShare
+
+        share = PoolShare(self.threads, len(tasks))
         pool = ThreadPoolExecutor(self.threads, thread_name_prefix="clearaudit-task")
-        futures = {pool.submit(_one_thread, fn, args, kwargs): k
+        futures = {pool.submit(_one_thread, fn, args, kwargs, share): k
                    for k, (fn, args, kwargs) in enumerate(tasks)}
         try:
             pending = set(futures)
@@ -140,12 +143,20 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
         release_free_memory()
 
 
-def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
-    """Run a task with the work inside it limited to its own thread."""
+def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict, share: Any = None) -> Any:
+    """Run a task with the work inside it limited to its own thread, or to its ``share``
+    (:class:`clearaudit.threads.PoolShare`) of the pool's threads."""
     from .threads import thread_limit
 
-    with thread_limit(1):
-        return fn(*args, **kwargs)
+    if share is None:
+        with thread_limit(1):
+            return fn(*args, **kwargs)
+    share.start()
+    try:
+        with thread_limit(share):
+            return fn(*args, **kwargs)
+    finally:
+        share.stop()
 
 
 def _worker_peak_rss_mb() -> float:

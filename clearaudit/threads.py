@@ -6,8 +6,10 @@ one process share the cores well. Two levels use them:
 * the in-process engine (:class:`clearaudit.distributed.InProcessEngine`) runs the tiles of a
   tiled run on a thread pool, one tile per thread;
 * work inside one task (k-d tree queries, chunked per-point passes) asks :func:`inner_threads`
-  how many threads it may use: one inside a tile thread (the tiles already fill the cores),
-  otherwise ``--threads`` / ``CLEARAUDIT_THREADS`` / every core, in that order.
+  how many threads it may use: inside a tile thread the task's share of the pool (one while
+  tiles wait to start, since the tiles already fill the cores; at the end of a stage, when
+  fewer tiles run than the pool has threads, the idle threads' share), otherwise
+  ``--threads`` / ``CLEARAUDIT_THREADS`` / every core, in that order.
 
 Results never depend on the thread count (tests check it).
 """
@@ -34,13 +36,13 @@ def available_cores() -> int:
 def inner_threads() -> int:
     """Threads the work of the current task may use for itself (always ≥ 1).
 
-    In order: the limit of the current thread (1 inside a tile thread of the in-process
-    engine), the run's ``--threads``, the ``CLEARAUDIT_THREADS`` environment variable (set to
+    In order: the limit of the current thread (inside a tile thread of the in-process engine
+    its :class:`PoolShare`: 1 while tasks wait), the run's ``--threads``, the ``CLEARAUDIT_THREADS`` environment variable (set to
     1 for the workers of a local Dask cluster), the cores of the machine.
     """
     local = getattr(_local, "limit", None)
     if local:
-        return int(local)
+        return local() if callable(local) else int(local)
     if _run_default and _run_default[-1] > 0:
         return _run_default[-1]
     env = os.environ.get("CLEARAUDIT_THREADS", "").strip()
@@ -67,13 +69,47 @@ def run_threads(threads: int) -> Iterator[int]:
         _run_default.pop()
 
 
+class PoolShare:
+    """The threads each running task of a pool may use for the work inside it.
+
+    While tasks wait to start, every task gets one thread (the tasks fill the pool). Once
+    none wait, the threads of the pool that have no task left are shared among the running
+    tasks: the last tile of a stage uses every core for its chunked passes instead of
+    leaving them idle. Results never depend on the thread count, so neither on this share.
+    """
+
+    def __init__(self, threads: int, tasks: int):
+        self.threads = max(1, int(threads))
+        self._waiting = int(tasks)
+        self._running = 0
+        self._lock = threading.Lock()
+
+    def start(self) -> None:
+        """A task starts on a pool thread."""
+        with self._lock:
+            self._waiting -= 1
+            self._running += 1
+
+    def stop(self) -> None:
+        """A task has ended."""
+        with self._lock:
+            self._running -= 1
+
+    def __call__(self) -> int:
+        with self._lock:
+            if self._waiting > 0 or self._running <= 0:
+                return 1
+            return max(1, self.threads // self._running)
+
+
 @contextmanager
-def thread_limit(threads: int) -> Iterator[None]:
-    """Limit the work done in the current thread to ``threads`` threads."""
-    if threads < 1:
+def thread_limit(threads: int | PoolShare) -> Iterator[None]:
+    """Limit the work done in the current thread to ``threads`` threads (a count, or a
+    :class:`PoolShare` asked afresh at every call of :func:`inner_threads`)."""
+    if not callable(threads) and threads < 1:
         raise ValueError(f"a thread limit must be at least 1, not {threads}")
     previous = getattr(_local, "limit", None)
-    _local.limit = int(threads)
+    _local.limit = threads if callable(threads) else int(threads)
     try:
         yield
     finally:
@@ -101,5 +137,5 @@ def run_chunks(work: Callable[[int, int], None], n: int, chunk: int,
             future.result()
 
 
-__all__ = ["available_cores", "inner_threads", "resolve_threads", "run_chunks", "run_threads",
+__all__ = ["PoolShare", "available_cores", "inner_threads", "resolve_threads", "run_chunks", "run_threads",
            "thread_limit"]

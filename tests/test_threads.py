@@ -22,8 +22,9 @@ def test_threaded_engine_runs_tasks_at_once_and_returns_every_result():
     got = dict(engine.run(tasks))
     assert sorted(got) == list(range(6))
     assert all(got[k][0] == k * k for k in range(6))
-    # the work inside a task gets one thread: the tasks already fill the threads
-    assert {v[1] for v in got.values()} == {1}
+    # the work inside a task gets one thread while tasks wait: the tasks fill the threads
+    assert got[0][1] == got[1][1] == 1
+    assert {v[1] for v in got.values()} <= {1, 2}
     assert all(v[2].startswith("clearaudit-task") for v in got.values())
     assert engine.describe()["threads"] == 2
 
@@ -77,3 +78,41 @@ def test_run_chunks_raises_a_failing_range_and_rejects_a_bad_chunk():
             run_chunks(work, 1000, 100, threads)
     with pytest.raises(ValueError):
         run_chunks(work, 10, 0)
+
+
+def _last_task(k: int) -> int:
+    """Quick tasks return at once; task 2 waits until it is the only one left running."""
+    import time
+
+    if k < 2:
+        return inner_threads()
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 10.0:
+        if inner_threads() == 2:
+            return 2
+        time.sleep(0.005)
+    return inner_threads()
+
+
+def test_the_last_running_task_shares_the_idle_threads():
+    from clearaudit.threads import PoolShare
+
+    got = dict(InProcessEngine(threads=2).run([(_last_task, (k,), {}) for k in range(3)]))
+    assert got[2] == 2  # alone at the end of the stage: both threads for its inner work
+    # the share itself: one thread per task while any task waits; then threads // running
+    share = PoolShare(4, 5)
+    assert share() == 1
+    for _ in range(4):
+        share.start()
+    assert share() == 1  # one task still waits
+    share.start()
+    assert share() == 1  # five running on four threads
+    share.stop()
+    share.stop()
+    assert share() == 1  # three running: 4 // 3
+    share.stop()
+    assert share() == 2
+    share.stop()
+    assert share() == 4
+    with thread_limit(share):
+        assert inner_threads() == 4
