@@ -503,6 +503,38 @@ def _cloud(ctx: TileContext, xyz: np.ndarray, cls: np.ndarray) -> Cloud:
 
 
 # =============================================================================== task A: classify
+def _cell_counts(work: Path, cells: tuple[tuple[int, int], ...]) -> np.ndarray:
+    """Points of each cell (in ``cells``' order: the order :func:`read_cells` reads them in)."""
+    return np.array([sum(f.stat().st_size // RECORD.itemsize for f in _cell_files(work, c))
+                     for c in cells], dtype=np.int64)
+
+
+def _cells_near(xyz: np.ndarray, counts: np.ndarray, centres: np.ndarray,
+                radius: float) -> np.ndarray:
+    """Mask of the points of ``xyz`` (consecutive runs of ``counts`` points, one per cell)
+    whose run's x-y box comes within ``radius`` of a centre: every point closer than
+    ``radius`` to a centre is in it (a point lies inside its run's box)."""
+    n = len(xyz)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    if n == 0 or counts.sum() != n or len(centres) * len(counts) > 4_000_000:
+        return np.ones(n, dtype=bool)
+    filled = counts > 0
+    lo = np.full((len(counts), 2), np.inf)
+    hi = np.full((len(counts), 2), -np.inf)
+    for c in range(2):
+        lo[filled, c] = np.minimum.reduceat(xyz[:, c], starts[filled])
+        hi[filled, c] = np.maximum.reduceat(xyz[:, c], starts[filled])
+    if not (np.isfinite(lo[filled]).all() and np.isfinite(hi[filled]).all()):
+        return np.ones(n, dtype=bool)
+    # distance of each centre to each box (0 inside), squared, against the radius with a
+    # margin far above round-off
+    gap = np.maximum(np.maximum(lo[None, :, :] - centres[:, None, :],
+                                centres[:, None, :] - hi[None, :, :]), 0.0)
+    reach = radius * (1.0 + 1e-9) + 1e-9
+    near_cell = filled & np.any((gap ** 2).sum(axis=2) <= reach * reach, axis=0)
+    return np.repeat(near_cell, counts)
+
+
 def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_options: Any,
                   given_structures_xy: np.ndarray | None = None) -> dict[str, Any]:
     """Classify one tile (owned points + context) and keep the owned results on disk.
@@ -575,8 +607,12 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     anchor_xy = np.concatenate(anchors)
     if len(anchor_xy) and len(ground_own):
         anchor_xy = np.unique(np.floor(anchor_xy), axis=0) + 0.5  # 1 m cells: a small tree
-        near = ground_own[near_points(xyz[ground_own, :2], anchor_xy,
-                                      STRUCTURE_GROUND_RADIUS_M + 1.0)]
+        radius = STRUCTURE_GROUND_RADIUS_M + 1.0
+        # only the owned cells whose points' box comes within the radius of an anchor can
+        # hold such points: the same points, in the same (ascending) order, from fewer
+        ground_own_near = ground_own[_cells_near(xyz[:n_own], _cell_counts(work, tile.cells),
+                                                 anchor_xy, radius)[ground_own]]
+        near = ground_own_near[near_points(xyz[ground_own_near, :2], anchor_xy, radius)]
         # one ground point per STRUCTURE_GROUND_CELL_M cell: the median height under a
         # structure needs a sample, not every point
         cell = np.floor(xyz[near, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)

@@ -10,9 +10,10 @@ from clearaudit.threads import inner_threads, resolve_threads, run_threads, thre
 
 
 def _task(k: int, barrier: threading.Barrier | None = None) -> tuple[int, int, str]:
+    inner = inner_threads()  # asked before the barrier: the other tasks wait to start
     if barrier is not None:
         barrier.wait(timeout=10)  # only passes when two tasks really run at once
-    return k * k, inner_threads(), threading.current_thread().name
+    return k * k, inner, threading.current_thread().name
 
 
 def test_threaded_engine_runs_tasks_at_once_and_returns_every_result():
