@@ -22,6 +22,29 @@ cdef inline Py_ssize_t _lower(const int64_t[::1] a, int64_t v, Py_ssize_t lo,
     return lo
 
 
+cdef inline Py_ssize_t _seek(const int64_t[::1] a, int64_t v, Py_ssize_t hint,
+                             Py_ssize_t n) noexcept nogil:
+    """First position in ``a[:n]`` (sorted) whose value is not below ``v``, searched from
+    ``hint``: by doubling steps forward when the answer lies at or after it (a few steps
+    when it is near), by bisection before it otherwise. The same position as ``_lower``."""
+    cdef Py_ssize_t lo, hi, step
+    if hint > n:
+        hint = n
+    if hint > 0 and a[hint - 1] >= v:
+        return _lower(a, v, 0, hint)
+    # every position before ``lo`` holds a value below v; the answer is in [lo, hi]
+    lo = hint
+    hi = hint
+    step = 1
+    while hi < n and a[hi] < v:
+        lo = hi + 1
+        hi = hi + step
+        step <<= 1
+    if hi > n:
+        hi = n
+    return _lower(a, v, lo, hi)
+
+
 def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] sx,
             const double[::1] sy, const double[::1] sz, const int64_t[::1] dims, Py_ssize_t reach,
             const int64_t[::1] rows, int k, double r2, int32_t[::1] count,
@@ -54,24 +77,36 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     cdef Py_ssize_t side_y = min(2 * reach + 1, <Py_ssize_t> dims[1])
     cdef Py_ssize_t side = side_x * side_y
     cdef uint64_t *best_d = <uint64_t *> malloc(k * sizeof(uint64_t))
-    cdef int64_t *best_i = <int64_t *> malloc(k * sizeof(int64_t))
     cdef Py_ssize_t *best_j = <Py_ssize_t *> malloc(k * sizeof(Py_ssize_t))
     cdef Py_ssize_t *starts = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
     cdef Py_ssize_t *stops = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
-    if not best_d or not best_i or not best_j or not starts or not stops:
-        free(best_d); free(best_i); free(best_j); free(starts); free(stops)
+    # per column of the block around a cell (its offset from the cell's column), where that
+    # column's range started for the previous cell: queries walk the cells in key order, so
+    # the next start is at or a little after it
+    cdef Py_ssize_t *hints = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
+    cdef Py_ssize_t *rank = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
+    if not best_d or not best_j or not starts or not stops or not hints or not rank:
+        free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
+    for t in range(side):
+        hints[t] = 0
     cdef int64_t nx = dims[0], ny = dims[1], nz = dims[2]
     cdef int64_t previous = -1, cell, cx, cy, cz, a, b, base, p
     cdef Py_ssize_t ranges = 0, g, j, s, e, q, u, w
     cdef Py_ssize_t capacity = 4096
     cdef double *buf = <double *> malloc(capacity * sizeof(double))
-    cdef uint64_t bits
+    cdef uint64_t bits, limit, below_r2
     cdef bint failed = False
     if not buf:
-        free(best_d); free(best_i); free(best_j); free(starts); free(stops)
+        free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
     cdef int m
+    # strictly closer than the radius: bits below those of r2 (r2 > 0, finite)
+    if not (r2 > 0.0) or r2 != r2 or r2 == float("inf"):
+        free(buf); free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
+        raise ValueError("r2 must be positive and finite")
+    memcpy(&below_r2, &r2, 8)
+    below_r2 -= 1
     cdef double qx, qy, qz, dx, dy, dz, d2, ex, ey, ez
     cdef double s0, s1, s2, p00, p01, p02, p11, p12, p22, mx, my, mz
     with nogil:
@@ -87,16 +122,33 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                 for a in range(max(cx - reach, 0), min(cx + reach + 1, nx)):
                     for b in range(max(cy - reach, 0), min(cy + reach + 1, ny)):
                         base = (a * ny + b) * nz
-                        s = _lower(key, base + max(cz - reach, 0), 0, n)
-                        e = _lower(key, base + min(cz + reach, nz - 1) + 1, s, n)
+                        # the block's column slot: offset from the cell's column, wrapped
+                        # into the block's side (slots differ for the columns of one cell)
+                        u = ((a - cx + reach) % side_x) * side_y + (b - cy + reach) % side_y
+                        s = _seek(key, base + max(cz - reach, 0), hints[u], n)
+                        hints[u] = s
+                        e = _seek(key, base + min(cz + reach, nz - 1) + 1, s, n)
                         if e > s:
-                            starts[ranges] = s
-                            stops[ranges] = e
+                            # nearer columns first (the cell's own, then the sides, then
+                            # the corners): the k-th distance tightens early and fewer
+                            # farther points are inserted; the result does not depend on
+                            # the order the ranges are scanned in
+                            w = (a - cx if a >= cx else cx - a) + (b - cy if b >= cy else cy - b)
+                            g = ranges
+                            while g > 0 and rank[g - 1] > w:
+                                starts[g] = starts[g - 1]
+                                stops[g] = stops[g - 1]
+                                rank[g] = rank[g - 1]
+                                g -= 1
+                            starts[g] = s
+                            stops[g] = e
+                            rank[g] = w
                             ranges += 1
             qx = sx[q]
             qy = sy[q]
             qz = sz[q]
             m = 0
+            limit = below_r2
             for g in range(ranges):
                 s = starts[g]
                 e = stops[g] - s
@@ -115,28 +167,28 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                     dz = sz[s + u] - qz
                     buf[u] = dx * dx + dy * dy + dz * dz
                 for u in range(e):
-                    d2 = buf[u]
-                    if d2 >= r2:
-                        continue
-                    # d2 >= 0: its bits order as the values do, and integers compare cheaply
+                    # d2 >= 0: its bits order as the values do, and integers compare
+                    # cheaply; one test drops what is beyond the radius and, once k are
+                    # kept, what is farther than the k-th (equal to it: the index decides)
                     memcpy(&bits, &buf[u], 8)
+                    if bits > limit:
+                        continue
                     j = s + u
-                    p = index[j]
-                    if m == k and (bits > best_d[k - 1]
-                                   or (bits == best_d[k - 1] and p > best_i[k - 1])):
+                    if m == k and bits == best_d[k - 1] and index[j] > index[best_j[k - 1]]:
                         continue
                     w = m if m < k else k - 1
                     while w > 0 and (best_d[w - 1] > bits
-                                     or (best_d[w - 1] == bits and best_i[w - 1] > p)):
+                                     or (best_d[w - 1] == bits
+                                         and index[best_j[w - 1]] > index[j])):
                         best_d[w] = best_d[w - 1]
-                        best_i[w] = best_i[w - 1]
                         best_j[w] = best_j[w - 1]
                         w -= 1
                     best_d[w] = bits
-                    best_i[w] = p
                     best_j[w] = j
                     if m < k:
                         m += 1
+                    if m == k:
+                        limit = best_d[k - 1]
             if failed:
                 break
             count[t] = m
@@ -182,9 +234,10 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             out[t, 5] = p22 / m - mz * mz
     free(buf)
     free(best_d)
-    free(best_i)
     free(best_j)
     free(starts)
     free(stops)
+    free(hints)
+    free(rank)
     if failed:
         raise MemoryError()

@@ -2,9 +2,12 @@
 
 The points are sorted once by the number of the cubic cell they fall in (edge ``cell_m``); the
 cells of one x-y column and a run of z are then one contiguous range of the sorted arrays,
-found by binary search. A compiled kernel (Cython, ``_neighbours.pyx``; it releases the GIL, so
+found by a search from where the same column's range started for the previous cell (the
+queries walk the cells in order). A compiled kernel (Cython, ``_neighbours.pyx``; it releases the GIL, so
 chunks run on threads) scans the ranges around each query point,
-keeps the ``k`` nearest within the radius and reduces the covariance moments of that
+keeps the ``k`` nearest within the radius (the cell's own column first, then its sides, then
+its corners: the k-th distance tightens early, and one integer compare of a distance's bits
+drops what is beyond the radius or farther than the k-th) and reduces the covariance moments of that
 neighbourhood in the same pass — no (k, m) index or coordinate blocks are materialised.
 
 The neighbour sets are those of scipy's ``cKDTree.query(k=k, distance_upper_bound=radius)``:
