@@ -61,6 +61,9 @@ from .io.las import ReadSetup, RecordScratch, corridor_mask, read_range
 
 #: One bucket record: local metres, the file's class code, ``file_id << KEY_SHIFT | index``.
 RECORD = np.dtype([("xyz", "<f8", (3,)), ("cls", "u1"), ("key", "<i8")])
+# the routing kernel (classify/_grid.pyx route_records) writes this packed layout
+if RECORD.itemsize != 33 or [RECORD.fields[f][1] for f in ("xyz", "cls", "key")] != [0, 24, 25]:
+    raise RuntimeError("tile records must be packed as x, y, z, class, key (33 bytes)")
 #: The same bytes as one opaque item: numpy copies a packed structured item field by field,
 #: an opaque one in one piece (concatenating records ~15x faster, gathering them ~4x)
 _RAW = np.dtype((np.void, RECORD.itemsize))
@@ -216,6 +219,53 @@ def concat_records(parts: list[np.ndarray]) -> np.ndarray:
     return np.concatenate([_records(p) for p in parts]).view(RECORD)
 
 
+def route_by_cell(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray, ci: np.ndarray,
+                  cj: np.ndarray) -> tuple[np.ndarray, ...]:
+    """:data:`RECORD` records of the points cell after cell, each cell's in input order.
+
+    Parameters
+    ----------
+    xyz, cls, key
+        Points [m], classes and keys.
+    ci, cj
+        Each point's cell (:meth:`Grid.cells`).
+
+    Returns
+    -------
+    records, cell_i, cell_j, starts, stops
+        The records, and per occupied cell (ascending ``(ci, cj)``) its cell and the slice
+        of its records.
+    """
+    n = len(xyz)
+    if n == 0:
+        none = np.zeros(0, dtype=np.int64)
+        return np.zeros(0, dtype=RECORD), none, none, none, none
+    i0, j0 = int(ci.min()), int(cj.min())
+    width = int(cj.max()) - j0 + 1
+    n_cells = (int(ci.max()) - i0 + 1) * width
+    cell = (ci - i0) * width + (cj - j0)
+    if n_cells > 4 * n + 4096:  # cells spread far apart: a stable sort instead of counting
+        rec = make_records(xyz, cls, key)
+        order = np.argsort(cell, kind="stable")
+        rec = take_records(rec, order)
+        starts = np.flatnonzero(np.diff(cell[order], prepend=-1))
+        stops = np.append(starts[1:], n)
+        occupied = cell[order[starts]]
+    else:
+        from .classify.kernels import route_records
+
+        rec = np.empty(n, dtype=RECORD)
+        first = np.empty(n_cells + 1, dtype=np.int64)
+        route_records(np.ascontiguousarray(cell, dtype=np.int64), n_cells,
+                      np.ascontiguousarray(xyz, dtype="<f8").reshape(-1, 3),
+                      np.ascontiguousarray(cls, dtype=np.uint8),
+                      np.ascontiguousarray(key, dtype="<i8"),
+                      rec.view(np.uint8).reshape(n, RECORD.itemsize), first)
+        occupied = np.flatnonzero(first[1:] != first[:-1])
+        starts, stops = first[occupied], first[occupied + 1]
+    return rec, occupied // width + i0, occupied % width + j0, starts, stops
+
+
 def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
                corridor: Corridor | None = None, *, flush_points: int = 1_000_000,
                chunk_size: int = SPLIT_CHUNK_POINTS,
@@ -273,16 +323,9 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
             decoded += n
             if len(xyz) == 0:
                 continue
-            rec = make_records(xyz, cls, (np.int64(part.file_id) << KEY_SHIFT) | index)
-            ci, cj = grid.cells(xyz)
-            # stable sort keeps the input order inside every cell
-            cell_key = (ci - ci.min()) * (int(cj.max() - cj.min()) + 1) + (cj - cj.min())
-            order = np.argsort(cell_key, kind="stable")
-            rec = take_records(rec, order)  # cell after cell; each cell's records are slices
-            starts = np.flatnonzero(np.diff(cell_key[order], prepend=-1))
-            stops = np.append(starts[1:], len(order))
-            first = order[starts]
-            for i, j, a, b in zip(ci[first].tolist(), cj[first].tolist(), starts.tolist(),
+            rec, cell_i, cell_j, starts, stops = route_by_cell(
+                xyz, cls, (np.int64(part.file_id) << KEY_SHIFT) | index, *grid.cells(xyz))
+            for i, j, a, b in zip(cell_i.tolist(), cell_j.tolist(), starts.tolist(),
                                   stops.tolist(), strict=True):
                 buffers.setdefault((i, j), []).append(rec[a:b])
                 counts[(i, j)] = counts.get((i, j), 0) + (b - a)

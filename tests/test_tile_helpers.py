@@ -247,3 +247,46 @@ def test_cells_near_keeps_every_point_the_bounded_query_finds():
     bad = xyz.copy()
     bad[0, 0] = np.nan
     assert _cells_near(bad, counts, centres, 21.0).all()
+
+
+@pytest.mark.parametrize("spread", [3, 40, 100_000])
+def test_route_by_cell_equals_the_stable_sort(spread):
+    # reference: numpy's stable argsort of the cell numbers and a gather of the records
+    # (the routing before the counting sort); the widest spread takes the sort path itself
+    from clearaudit.tiling import RECORD, make_records, route_by_cell
+
+    rng = np.random.default_rng(spread)
+    n = 20_000
+    xyz = rng.normal(size=(n, 3)) * 100
+    cls = rng.integers(0, 20, n).astype(np.uint8)
+    key = (np.int64(3) << 40) | np.arange(n, dtype=np.int64)
+    ci = rng.integers(-spread, spread, n)
+    cj = rng.integers(-5, spread // 3 + 1, n)
+    rec, cell_i, cell_j, starts, stops = route_by_cell(xyz, cls, key, ci, cj)
+    order = np.lexsort((cj, ci))  # stable: by ci, then cj, ties in input order
+    ref = make_records(xyz, cls, key)[order]
+    assert rec.dtype == RECORD and rec.tobytes() == ref.tobytes()
+    pairs = np.unique(np.c_[ci, cj], axis=0)
+    np.testing.assert_array_equal(np.c_[cell_i, cell_j], pairs)
+    assert starts[0] == 0 and stops[-1] == n and np.array_equal(starts[1:], stops[:-1])
+    for i, j, a, b in zip(cell_i[:50], cell_j[:50], starts[:50], stops[:50], strict=True):
+        assert np.all(rec["key"][a:b] == key[(ci == i) & (cj == j)])
+    empty = route_by_cell(xyz[:0], cls[:0], key[:0], ci[:0], cj[:0])
+    assert len(empty[0]) == 0 and empty[0].dtype == RECORD
+
+
+def test_route_records_rejects_bad_input():
+    from clearaudit.classify.kernels import route_records
+
+    xyz = np.zeros((4, 3))
+    out = np.zeros((4, 33), np.uint8)
+    ok = dict(xyz=xyz, cls=np.zeros(4, np.uint8), key=np.zeros(4, np.int64), out=out,
+              first=np.zeros(3, np.int64))
+    route_records(np.array([0, 1, 1, 0]), 2, **ok)
+    np.testing.assert_array_equal(ok["first"], [0, 2, 4])
+    with pytest.raises(IndexError):
+        route_records(np.array([0, 2, 1, 0]), 2, **ok)
+    with pytest.raises(ValueError):
+        route_records(np.array([0, 1, 1]), 2, **ok)
+    with pytest.raises(ValueError):
+        route_records(np.array([0, 1, 1, 0]), 3, **ok)

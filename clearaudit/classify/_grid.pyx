@@ -472,3 +472,46 @@ def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out,
             if cur != cur or (cur > v if largest else cur < v):
                 continue
             out[c] = v
+
+
+def route_records(const int64_t[::1] cell, Py_ssize_t n_cells, const double[:, ::1] xyz,
+                  const unsigned char[::1] cls, const int64_t[::1] key,
+                  unsigned char[:, ::1] out, int64_t[::1] first):
+    """Tile records (33 bytes: x, y, z float64, class uint8, key int64, packed) of the
+    points, cell after cell, each cell's points in input order: the records numpy's
+    ``records[argsort(cell, kind="stable")]`` gives, by a counting sort in two passes.
+
+    ``cell`` holds each point's cell number in ``[0, n_cells)``; ``first`` (``n_cells + 1``)
+    receives where each cell's records start in ``out`` (the last entry: the point count).
+    """
+    cdef Py_ssize_t n = cell.shape[0], i, c
+    if xyz.shape[0] != n or xyz.shape[1] != 3 or cls.shape[0] != n or key.shape[0] != n:
+        raise ValueError("cell, xyz (n, 3), cls and key must describe the same points")
+    if out.shape[0] != n or out.shape[1] != 33:
+        raise ValueError("out must hold one 33-byte record per point")
+    if n_cells < 1 or first.shape[0] != n_cells + 1:
+        raise ValueError("first must hold n_cells + 1 entries")
+    for i in range(n):
+        if cell[i] < 0 or cell[i] >= n_cells:
+            raise IndexError("cell number out of range")
+    cdef int64_t total = 0, m
+    cdef int64_t *at = <int64_t *> malloc(n_cells * sizeof(int64_t))
+    if not at:
+        raise MemoryError()
+    with nogil:
+        for c in range(n_cells + 1):
+            first[c] = 0
+        for i in range(n):
+            first[cell[i] + 1] += 1
+        for c in range(n_cells):
+            total += first[c + 1]
+            first[c + 1] = total
+            at[c] = first[c]
+        for i in range(n):
+            c = cell[i]
+            m = at[c]
+            at[c] = m + 1
+            memcpy(&out[m, 0], &xyz[i, 0], 24)
+            out[m, 24] = cls[i]
+            memcpy(&out[m, 25], &key[i], 8)
+    free(at)

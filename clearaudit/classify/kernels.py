@@ -15,6 +15,7 @@ try:
         median_f32,
         plane_residual_sums,
         plane_sums,
+        route_records,
         sym3_pairs,
         sym3_prepare,
         window_sums,
@@ -26,4 +27,5 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
         "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
 
 __all__ = ["bilinear", "cell_extreme", "cell_sums3", "jacobi_sweep", "median_f32", "moments",
-           "plane_residual_sums", "plane_sums", "sym3_pairs", "sym3_prepare", "window_sums"]
+           "plane_residual_sums", "plane_sums", "route_records", "sym3_pairs", "sym3_prepare",
+           "window_sums"]

@@ -26,7 +26,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from ..arrays import near_points
+from ..arrays import class_counts, class_mask, near_points
 from ..cloud import (
     HIGH_VEGETATION,
     LOW_VEGETATION,
@@ -187,7 +187,7 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     before = cls.copy()
     extents = structure_extents(model, margin_m)
     ids = list(extents)
-    interesting = np.flatnonzero(np.isin(cls, _STRUCTURE + _VEGETATION + _WIRE) & (hag > 0.3))
+    interesting = np.flatnonzero(class_mask(cls, _STRUCTURE + _VEGETATION + _WIRE) & (hag > 0.3))
     if not ids:
         near = np.full(len(interesting), -1)
         inside = np.zeros(len(interesting), bool)
@@ -295,7 +295,7 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     if len(changed):
         pairs, n = np.unique(before[changed].astype(np.int32) * 256 + cls[changed], return_counts=True)
         counts = {f"{p // 256}->{p % 256}": int(c) for p, c in zip(pairs, n, strict=True)}
-    codes, totals = np.unique(cls, return_counts=True)
+    codes, totals = class_counts(cls)  # numpy.unique's values, by a table of counts
     result.counts = {int(a): int(b) for a, b in zip(codes, totals, strict=True)}
     if isinstance(getattr(result, "info", None), dict):
         result.info["refine_with_model"] = counts
