@@ -95,15 +95,18 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     cdef Py_ssize_t ranges = 0, g, j, s, e, q, u, w
     cdef Py_ssize_t capacity = 4096
     cdef double *buf = <double *> malloc(capacity * sizeof(double))
+    cdef Py_ssize_t *cand = <Py_ssize_t *> malloc(capacity * sizeof(Py_ssize_t))
+    cdef Py_ssize_t nc, c
     cdef uint64_t bits, limit, below_r2
     cdef bint failed = False
-    if not buf:
+    if not buf or not cand:
+        free(buf); free(cand)
         free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
     cdef int m
     # strictly closer than the radius: bits below those of r2 (r2 > 0, finite)
     if not (r2 > 0.0) or r2 != r2 or r2 == float("inf"):
-        free(buf); free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
+        free(buf); free(cand); free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
         raise ValueError("r2 must be positive and finite")
     memcpy(&below_r2, &r2, 8)
     below_r2 -= 1
@@ -155,21 +158,30 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                 if e > capacity:
                     capacity = 2 * e
                     free(buf)
+                    free(cand)
                     buf = <double *> malloc(capacity * sizeof(double))
-                    if not buf:
+                    cand = <Py_ssize_t *> malloc(capacity * sizeof(Py_ssize_t))
+                    if not buf or not cand:
                         failed = True
                         break
                 # squared distances of the range first (a loop without branches that the
-                # compiler can vectorise), then the selection
+                # compiler can vectorise), then the candidates: d2 >= 0, so its bits order as
+                # the values do and integers compare cheaply; one test drops what is beyond
+                # the radius and, once k are kept, what is farther than the k-th (equal to
+                # it: the index decides). The candidates are listed without branches, then
+                # taken in turn (the limit may tighten meanwhile)
                 for u in range(e):
                     dx = sx[s + u] - qx
                     dy = sy[s + u] - qy
                     dz = sz[s + u] - qz
                     buf[u] = dx * dx + dy * dy + dz * dz
+                nc = 0
                 for u in range(e):
-                    # d2 >= 0: its bits order as the values do, and integers compare
-                    # cheaply; one test drops what is beyond the radius and, once k are
-                    # kept, what is farther than the k-th (equal to it: the index decides)
+                    memcpy(&bits, &buf[u], 8)
+                    cand[nc] = u
+                    nc += bits <= limit
+                for c in range(nc):
+                    u = cand[c]
                     memcpy(&bits, &buf[u], 8)
                     if bits > limit:
                         continue
@@ -233,6 +245,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             out[t, 4] = p12 / m - my * mz
             out[t, 5] = p22 / m - mz * mz
     free(buf)
+    free(cand)
     free(best_d)
     free(best_j)
     free(starts)
