@@ -285,3 +285,37 @@ def test_cell_planes_fit_exact_planes_and_match_numpy_sums():
     plane_residual_sums(kk, dx, dy, z, z0, *coef, sq)
     res = np.nan_to_num(zr - ((coef[1][kk] * dx + coef[0][kk]) + coef[2][kk] * dy), nan=1e3)
     assert np.array_equal(sq, np.bincount(kk, res * res, minlength=m_cells))
+
+
+def test_plane_solve_matches_lapack_and_rejects_degenerate_cells():
+    # reference: numpy.linalg.det and numpy.linalg.solve (LAPACK) on each cell's normal
+    # equations, as _cell_planes solved them before the compiled pass; the elimination may
+    # differ from LAPACK in the last bits only
+    from clearaudit.classify.kernels import plane_solve
+
+    rng = np.random.default_rng(4)
+    m, most = 20_000, 30
+    n = rng.integers(1, most, m).astype(np.float64)
+    dx, dy = rng.uniform(-0.5, 0.5, (2, m, most))
+    dz = 0.3 * dx - 0.2 * dy + rng.normal(0.0, 0.05, (m, most))
+    dy[:50] = 0.25 * dx[:50]  # collinear points: a singular system, no plane
+    use = np.arange(most)[None, :] < n[:, None]
+    total = lambda a: (a * use).sum(axis=1)  # noqa: E731
+    sums = np.stack([total(dx), total(dy), total(dz), total(dx * dx), total(dy * dy),
+                     total(dx * dy), total(dx * dz), total(dy * dz)], axis=1)
+    coef = np.empty((m, 3))
+    plane_solve(sums, n, 4.0, coef)
+    ok = np.flatnonzero(n >= 4)
+    sx, sy, sz, sxx, syy, sxy, sxz, syz = sums[ok].T
+    a_mat = np.empty((len(ok), 3, 3))
+    for r, row in enumerate(((n[ok], sx, sy), (sx, sxx, sxy), (sy, sxy, syy))):
+        for c, col in enumerate(row):
+            a_mat[:, r, c] = col
+    good = np.abs(np.linalg.det(a_mat)) > 1e-9
+    ref = np.full((m, 3), np.nan)
+    ref[ok[good]] = np.linalg.solve(a_mat[good], np.stack([sz, sxz, syz], -1)[good][..., None])[..., 0]
+    assert np.array_equal(np.isnan(coef), np.isnan(ref))
+    assert np.isnan(coef[:50][n[:50] >= 4]).all() and np.isnan(coef[n < 4]).all()
+    np.testing.assert_allclose(coef[~np.isnan(ref)], ref[~np.isnan(ref)], rtol=1e-9, atol=1e-11)
+    with pytest.raises(ValueError):
+        plane_solve(sums[:, :7].copy(), n, 4.0, coef)

@@ -5,7 +5,7 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabsf, sqrt
+from libc.math cimport NAN, fabs, fabsf, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
 from libc.string cimport memcpy
@@ -515,3 +515,66 @@ def route_records(const int64_t[::1] cell, Py_ssize_t n_cells, const double[:, :
             out[m, 24] = cls[i]
             memcpy(&out[m, 25], &key[i], 8)
     free(at)
+
+
+def plane_solve(const double[:, ::1] sums, const double[::1] cnt, double min_points,
+                double[:, ::1] coef):
+    """Least-squares plane coefficients (a, b, c) per cell from :func:`plane_sums`' sums.
+
+    The normal equations ``[[n, sx, sy], [sx, sxx, sxy], [sy, sxy, syy]] (a, b, c) =
+    (sz, sxz, syz)`` are solved by Gaussian elimination with partial pivoting (the first
+    largest pivot, as LAPACK's dgetf2 chooses it; the values may differ from LAPACK's in the
+    last bits). A cell with fewer than ``min_points`` points, or whose system's determinant
+    is at most 1e-9 in magnitude, gets NaN.
+    """
+    cdef Py_ssize_t m = sums.shape[0], t, i, r, c, p
+    if sums.shape[1] != 8 or cnt.shape[0] != m or coef.shape[0] != m or coef.shape[1] != 3:
+        raise ValueError("sums (m, 8), cnt (m,) and coef (m, 3) must describe the same cells")
+    cdef double a[3][4]
+    cdef double f, det, tmp
+    with nogil:
+        for t in range(m):
+            if not (cnt[t] >= min_points):
+                coef[t, 0] = NAN
+                coef[t, 1] = NAN
+                coef[t, 2] = NAN
+                continue
+            a[0][0] = cnt[t]
+            a[0][1] = sums[t, 0]
+            a[0][2] = sums[t, 1]
+            a[0][3] = sums[t, 2]
+            a[1][0] = sums[t, 0]
+            a[1][1] = sums[t, 3]
+            a[1][2] = sums[t, 5]
+            a[1][3] = sums[t, 6]
+            a[2][0] = sums[t, 1]
+            a[2][1] = sums[t, 5]
+            a[2][2] = sums[t, 4]
+            a[2][3] = sums[t, 7]
+            det = 1.0
+            for c in range(3):
+                p = c
+                for r in range(c + 1, 3):
+                    if fabs(a[r][c]) > fabs(a[p][c]):
+                        p = r
+                if p != c:
+                    for i in range(4):
+                        tmp = a[c][i]
+                        a[c][i] = a[p][i]
+                        a[p][i] = tmp
+                    det = -det
+                det = det * a[c][c]
+                if a[c][c] == 0.0:
+                    break
+                for r in range(c + 1, 3):
+                    f = a[r][c] / a[c][c]
+                    for i in range(c + 1, 4):
+                        a[r][i] = a[r][i] - f * a[c][i]
+            if not (fabs(det) > 1e-9):
+                coef[t, 0] = NAN
+                coef[t, 1] = NAN
+                coef[t, 2] = NAN
+                continue
+            coef[t, 2] = a[2][3] / a[2][2]
+            coef[t, 1] = (a[1][3] - a[1][2] * coef[t, 2]) / a[1][1]
+            coef[t, 0] = (a[0][3] - a[0][1] * coef[t, 1] - a[0][2] * coef[t, 2]) / a[0][0]

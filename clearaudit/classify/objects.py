@@ -46,7 +46,7 @@ from ..cloud import (
 )
 from .features import EigenFeatures
 from .grid import GridFrame, cell_max, cell_min, occupied_cells
-from .kernels import plane_residual_sums, plane_sums
+from .kernels import plane_residual_sums, plane_solve, plane_sums
 from .options import ClassifyOptions
 
 
@@ -684,21 +684,11 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     # (bincount's order: the same sums as eight bincounts of the products)
     sums = np.empty((m, 8))
     plane_sums(k, dx, dy, z, z0, sums)
-    sx, sy, sz, sxx, syy, sxy, sxz, syz = (sums[:, j] for j in range(8))
-    ok = np.flatnonzero(cnt >= min_points)
-    a_mat = np.empty((len(ok), 3, 3))
-    for r, row in enumerate(((cnt, sx, sy), (sx, sxx, sxy), (sy, sxy, syy))):
-        for c, col in enumerate(row):
-            a_mat[:, r, c] = col[ok]
-    rhs = np.stack([sz[ok], sxz[ok], syz[ok]], -1)
-    coef = np.full((m, 3), np.nan)
-    good = np.abs(np.linalg.det(a_mat)) > 1e-9
-    if good.all():  # the usual case: no copies of the systems
-        sol = np.linalg.solve(a_mat, rhs[..., None])[..., 0]
-    else:
-        sol = np.full((len(ok), 3), np.nan)
-        sol[good] = np.linalg.solve(a_mat[good], rhs[good][..., None])[..., 0]
-    coef[ok] = sol
+    # the 3 x 3 normal equations of every cell solved in one compiled pass (Gaussian
+    # elimination with partial pivoting); NaN for cells below min_points or with a
+    # determinant of at most 1e-9 (collinear points)
+    coef = np.empty((m, 3))
+    plane_solve(sums, np.ascontiguousarray(cnt, dtype=np.float64), float(min_points), coef)
     # squared residuals z - z0 - ((b·dx + a) + c·dy) summed per cell in one compiled pass
     a0, b0, c0 = (np.ascontiguousarray(coef[:, j]) for j in range(3))
     sq = np.empty(m)
