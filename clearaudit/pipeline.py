@@ -199,7 +199,9 @@ def run_audit(options: AuditOptions, console=None):
     if threads and (options.workers or options.scheduler):
         raise InputError("--threads", "applies to the in-process run; with --workers or "
                                       "--scheduler each Dask worker runs one task at a time")
-    with run_threads(threads):
+    from .tiling import small_pages
+
+    with run_threads(threads), small_pages():
         return _run_audit(options, console)
 
 
@@ -271,9 +273,12 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
             total_points > options.in_memory_max_points or \
             footprint_m2 > options.in_memory_max_footprint_m2
     from .threads import inner_threads
+    from .tiling import numpy_huge_page_requests
 
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "threads": inner_threads(),
+                                 # numpy's transparent-huge-page requests (tiling.small_pages)
+                                 "numpy_huge_page_requests": numpy_huge_page_requests(),
                                  "header_points": total_points,
                                  "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:

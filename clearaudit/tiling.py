@@ -40,7 +40,7 @@ import os
 import pickle
 import resource
 import time
-from contextlib import nullcontext
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -113,6 +113,49 @@ def release_free_memory() -> None:
     trim = _malloc_trim()
     if trim is not None:
         trim(0)
+
+
+@contextmanager
+def small_pages():
+    """numpy's large arrays on ordinary pages while the block runs (restored after it).
+
+    numpy asks the kernel for transparent huge pages (``madvise(MADV_HUGEPAGE)``) for every
+    array from 4 MB up. Where huge pages are given on request (``madvise``, Ubuntu's and
+    Debian's default), each fresh 2 MB page is compacted for and zeroed whole, and this
+    pipeline allocates and frees arrays of many megabytes tile after tile: on p10M in
+    memory the kernel's time fell from 4.5-5.5 to 2.6-2.8 CPU s and the run from 13.8-15.1
+    to 12.1-12.5 s without the request (same peak); tiled, 0.5 CPU s and 50 MB of peak less.
+    The same as ``NUMPY_MADVISE_HUGEPAGE=0``; a no-op where numpy lacks the switch.
+    """
+    switch = _hugepage_switch()
+    previous = switch(False) if switch is not None else None
+    try:
+        yield
+    finally:
+        if switch is not None:
+            switch(bool(previous))
+
+
+def numpy_huge_page_requests() -> bool | None:
+    """Whether numpy asks for transparent huge pages now (None: numpy has no switch)."""
+    switch = _hugepage_switch()
+    if switch is None:
+        return None
+    state = switch(True)
+    switch(state)
+    return bool(state)
+
+
+def _hugepage_switch():
+    for name in ("numpy._core.multiarray", "numpy.core.multiarray"):
+        try:
+            module = __import__(name, fromlist=["_set_madvise_hugepage"])
+        except ImportError:
+            continue
+        switch = getattr(module, "_set_madvise_hugepage", None)
+        if switch is not None:
+            return switch
+    return None
 
 
 @functools.cache

@@ -290,3 +290,19 @@ def test_route_records_rejects_bad_input():
         route_records(np.array([0, 1, 1]), 2, **ok)
     with pytest.raises(ValueError):
         route_records(np.array([0, 1, 1, 0]), 3, **ok)
+
+
+def test_small_pages_turns_numpy_huge_page_requests_off_and_restores_them():
+    # numpy's own switch (the NUMPY_MADVISE_HUGEPAGE setting) is the reference
+    from clearaudit.tiling import numpy_huge_page_requests, small_pages
+
+    before = numpy_huge_page_requests()
+    if before is None:
+        pytest.skip("this numpy has no huge-page switch")
+    with small_pages():
+        assert numpy_huge_page_requests() is False
+        assert np.ones(1 << 20).sum() == 1 << 20  # arrays still work
+    assert numpy_huge_page_requests() == before
+    with pytest.raises(RuntimeError), small_pages():
+        raise RuntimeError("restored on errors too")
+    assert numpy_huge_page_requests() == before
