@@ -39,6 +39,7 @@ import math
 import os
 import pickle
 import resource
+import threading
 import time
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
@@ -128,12 +129,26 @@ def small_pages():
     The same as ``NUMPY_MADVISE_HUGEPAGE=0``; a no-op where numpy lacks the switch.
     """
     switch = _hugepage_switch()
-    previous = switch(False) if switch is not None else None
+    if switch is None:
+        yield
+        return
+    # one process-wide numpy setting: the first of overlapping blocks (tasks of one Dask
+    # worker on several threads) turns it off, the last one out restores it
+    with _PAGES_LOCK:
+        if _PAGES_STATE["depth"] == 0:
+            _PAGES_STATE["previous"] = bool(switch(False))
+        _PAGES_STATE["depth"] += 1
     try:
         yield
     finally:
-        if switch is not None:
-            switch(bool(previous))
+        with _PAGES_LOCK:
+            _PAGES_STATE["depth"] -= 1
+            if _PAGES_STATE["depth"] == 0:
+                switch(_PAGES_STATE["previous"])
+
+
+_PAGES_LOCK = threading.Lock()
+_PAGES_STATE = {"depth": 0, "previous": True}
 
 
 def numpy_huge_page_requests() -> bool | None:
@@ -293,7 +308,9 @@ def route_by_cell(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray, ci: np.ndar
         rec = take_records(rec, order)
         starts = np.flatnonzero(np.diff(cell[order], prepend=-1))
         stops = np.append(starts[1:], n)
-        occupied = cell[order[starts]]
+        # each cell read from its first point: the cell number may wrap for absurd extents
+        first = order[starts]
+        return rec, ci[first], cj[first], starts, stops
     else:
         from .classify.kernels import route_records
 

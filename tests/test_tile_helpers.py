@@ -306,3 +306,53 @@ def test_small_pages_turns_numpy_huge_page_requests_off_and_restores_them():
     with pytest.raises(RuntimeError), small_pages():
         raise RuntimeError("restored on errors too")
     assert numpy_huge_page_requests() == before
+
+
+def test_route_by_cell_names_the_cells_of_far_apart_points():
+    # the sort path names each cell from its first point: cell numbers that wrap around
+    # int64 for absurd extents must not rename a cell (reference: the input's own cells)
+    from clearaudit.tiling import route_by_cell
+
+    ci = np.array([0, 2 ** 32, 1], dtype=np.int64)
+    cj = np.array([2 ** 32 - 1, 0, 0], dtype=np.int64)
+    xyz = np.zeros((3, 3))
+    rec, cell_i, cell_j, starts, stops = route_by_cell(
+        xyz, np.zeros(3, np.uint8), np.arange(3, dtype=np.int64), ci, cj)
+    got = {(int(i), int(j)): sorted(rec["key"][a:b].tolist())
+           for i, j, a, b in zip(cell_i, cell_j, starts, stops, strict=True)}
+    assert got == {(0, 2 ** 32 - 1): [0], (2 ** 32, 0): [1], (1, 0): [2]}
+
+
+def test_small_pages_of_overlapping_tasks_restore_once_the_last_ends():
+    # two tasks of one worker on two threads: the setting stays off while either runs and
+    # comes back when the last one ends (reference: numpy's own switch)
+    import threading
+
+    from clearaudit.tiling import numpy_huge_page_requests, small_pages
+
+    before = numpy_huge_page_requests()
+    if before is None:
+        pytest.skip("this numpy has no huge-page switch")
+    a_in, b_in, a_out = threading.Event(), threading.Event(), threading.Event()
+    seen = {}
+
+    def task_a():
+        with small_pages():
+            a_in.set()
+            b_in.wait(10)
+        a_out.set()
+
+    def task_b():
+        a_in.wait(10)
+        with small_pages():
+            b_in.set()
+            a_out.wait(10)
+            seen["while b runs"] = numpy_huge_page_requests()
+
+    threads = [threading.Thread(target=task_a), threading.Thread(target=task_b)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(20)
+    assert seen["while b runs"] is False
+    assert numpy_huge_page_requests() == before

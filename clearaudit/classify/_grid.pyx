@@ -523,9 +523,12 @@ def plane_solve(const double[:, ::1] sums, const double[::1] cnt, double min_poi
 
     The normal equations ``[[n, sx, sy], [sx, sxx, sxy], [sy, sxy, syy]] (a, b, c) =
     (sz, sxz, syz)`` are solved by Gaussian elimination with partial pivoting (the first
-    largest pivot, as LAPACK's dgetf2 chooses it; the values may differ from LAPACK's in the
-    last bits). A cell with fewer than ``min_points`` points, or whose system's determinant
-    is at most 1e-9 in magnitude, gets NaN.
+    largest pivot, as LAPACK's dgetf2 chooses it). The values are not always LAPACK's: on
+    well-spread cells within about 1e-11 relative, on nearly collinear ones up to about
+    1e-10. A cell with fewer than ``min_points`` points, or whose system's determinant (the
+    product of the pivots) is at most 1e-9 in magnitude, gets NaN; numpy computes the
+    determinant another way (from the logarithms of the pivots), so a cell whose
+    determinant lies within rounding of 1e-9 may fall on the other side of it.
     """
     cdef Py_ssize_t m = sums.shape[0], t, i, r, c, p
     if sums.shape[1] != 8 or cnt.shape[0] != m or coef.shape[0] != m or coef.shape[1] != 3:

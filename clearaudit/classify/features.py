@@ -56,7 +56,8 @@ def feature_threads(workers: int = -1) -> int:
     ----------
     workers
         A positive count is used as given; -1 means :func:`clearaudit.threads.inner_threads`
-        (one inside a tile thread of the in-process engine; else the run's ``--threads``, the
+        (inside a tile thread of the in-process engine its share of the pool: one while
+        tiles wait, more at the end of a stage; else the run's ``--threads``, the
         ``CLEARAUDIT_THREADS`` environment variable — a local Dask cluster sets 1 in each
         worker — or every core this process may run on).
     """

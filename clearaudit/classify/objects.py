@@ -685,8 +685,8 @@ def _cell_planes(z: np.ndarray, dx: np.ndarray, dy: np.ndarray, grid: GridFrame,
     sums = np.empty((m, 8))
     plane_sums(k, dx, dy, z, z0, sums)
     # the 3 x 3 normal equations of every cell solved in one compiled pass (Gaussian
-    # elimination with partial pivoting); NaN for cells below min_points or with a
-    # determinant of at most 1e-9 (collinear points)
+    # elimination with partial pivoting; not LAPACK's last bits, see plane_solve); NaN for
+    # cells below min_points or with a determinant of at most 1e-9 (collinear points)
     coef = np.empty((m, 3))
     plane_solve(sums, np.ascontiguousarray(cnt, dtype=np.float64), float(min_points), coef)
     # squared residuals z - z0 - ((b·dx + a) + c·dy) summed per cell in one compiled pass
