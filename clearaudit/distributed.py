@@ -3,7 +3,8 @@
 One small interface, :class:`Engine`, runs a list of tasks (a function and its arguments) and
 yields their results as they complete. :class:`InProcessEngine` runs them in this process, on
 a pool of threads (one task per thread, as many threads as cores unless ``--threads`` says
-otherwise; the last tasks of a stage share the threads left idle; numpy, scipy.ndimage and the k-d tree release the GIL, so tiles share the cores);
+otherwise; the last tasks of a stage share the threads left idle; numpy, scipy.ndimage and
+the k-d tree release the GIL, so tiles share the cores);
 :class:`DaskEngine` submits them to a ``distributed.Client``:
 ``--workers N`` starts ``distributed.LocalCluster(n_workers=N, threads_per_worker=1)``,
 ``--scheduler ADDRESS`` connects to an existing scheduler. Only file paths, tile specs,
@@ -144,14 +145,11 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
         release_free_memory()
 
 
-def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict, share: Any = None) -> Any:
-    """Run a task with the work inside it limited to its own thread, or to its ``share``
+def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict, share: Any) -> Any:
+    """Run a task with the work inside it limited to its ``share``
     (:class:`clearaudit.threads.PoolShare`) of the pool's threads."""
     from .threads import thread_limit
 
-    if share is None:
-        with thread_limit(1):
-            return fn(*args, **kwargs)
     share.start()
     try:
         with thread_limit(share):

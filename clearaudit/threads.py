@@ -37,8 +37,9 @@ def inner_threads() -> int:
     """Threads the work of the current task may use for itself (always ≥ 1).
 
     In order: the limit of the current thread (inside a tile thread of the in-process engine
-    its :class:`PoolShare`: 1 while tasks wait), the run's ``--threads``, the ``CLEARAUDIT_THREADS`` environment variable (set to
-    1 for the workers of a local Dask cluster), the cores of the machine.
+    its :class:`PoolShare`: 1 while tasks wait), the run's ``--threads``, the
+    ``CLEARAUDIT_THREADS`` environment variable (set to 1 for the workers of a local Dask
+    cluster), the cores of the machine.
     """
     local = getattr(_local, "limit", None)
     if local:
@@ -137,5 +138,5 @@ def run_chunks(work: Callable[[int, int], None], n: int, chunk: int,
             future.result()
 
 
-__all__ = ["PoolShare", "available_cores", "inner_threads", "resolve_threads", "run_chunks", "run_threads",
-           "thread_limit"]
+__all__ = ["PoolShare", "available_cores", "inner_threads", "resolve_threads", "run_chunks",
+           "run_threads", "thread_limit"]

@@ -153,23 +153,24 @@ _PAGES_STATE = {"depth": 0, "previous": True}
 
 def numpy_huge_page_requests() -> bool | None:
     """Whether numpy asks for transparent huge pages now (None: numpy has no switch)."""
-    switch = _hugepage_switch()
-    if switch is None:
-        return None
-    state = switch(True)
-    switch(state)
-    return bool(state)
+    read = _numpy_multiarray_attr("_get_madvise_hugepage")
+    return None if read is None or _hugepage_switch() is None else bool(read())
 
 
 def _hugepage_switch():
-    for name in ("numpy._core.multiarray", "numpy.core.multiarray"):
+    return _numpy_multiarray_attr("_set_madvise_hugepage")
+
+
+@functools.cache
+def _numpy_multiarray_attr(name: str):
+    """numpy's private ``multiarray`` function ``name`` (numpy 2 or 1.x), or None."""
+    for module_name in ("numpy._core.multiarray", "numpy.core.multiarray"):
         try:
-            module = __import__(name, fromlist=["_set_madvise_hugepage"])
+            module = __import__(module_name, fromlist=[name])
         except ImportError:
             continue
-        switch = getattr(module, "_set_madvise_hugepage", None)
-        if switch is not None:
-            return switch
+        if hasattr(module, name):
+            return getattr(module, name)
     return None
 
 
@@ -311,19 +312,16 @@ def route_by_cell(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray, ci: np.ndar
         # each cell read from its first point: the cell number may wrap for absurd extents
         first = order[starts]
         return rec, ci[first], cj[first], starts, stops
-    else:
-        from .classify.kernels import route_records
+    from .classify.kernels import route_records
 
-        rec = np.empty(n, dtype=RECORD)
-        first = np.empty(n_cells + 1, dtype=np.int64)
-        route_records(np.ascontiguousarray(cell, dtype=np.int64), n_cells,
-                      np.ascontiguousarray(xyz, dtype="<f8").reshape(-1, 3),
-                      np.ascontiguousarray(cls, dtype=np.uint8),
-                      np.ascontiguousarray(key, dtype="<i8"),
-                      rec.view(np.uint8).reshape(n, RECORD.itemsize), first)
-        occupied = np.flatnonzero(first[1:] != first[:-1])
-        starts, stops = first[occupied], first[occupied + 1]
-    return rec, occupied // width + i0, occupied % width + j0, starts, stops
+    rec = np.empty(n, dtype=RECORD)
+    first = np.empty(n_cells + 1, dtype=np.int64)
+    route_records(np.ascontiguousarray(cell, dtype=np.int64), n_cells,
+                  np.ascontiguousarray(xyz, dtype="<f8").reshape(-1, 3),
+                  np.ascontiguousarray(cls, dtype=np.uint8), np.ascontiguousarray(key, dtype="<i8"),
+                  rec.view(np.uint8).reshape(n, RECORD.itemsize), first)
+    occupied = np.flatnonzero(first[1:] != first[:-1])
+    return rec, occupied // width + i0, occupied % width + j0, first[occupied], first[occupied + 1]
 
 
 def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
@@ -606,38 +604,6 @@ def _cloud(ctx: TileContext, xyz: np.ndarray, cls: np.ndarray) -> Cloud:
 
 
 # =============================================================================== task A: classify
-def _cell_counts(work: Path, cells: tuple[tuple[int, int], ...]) -> np.ndarray:
-    """Points of each cell (in ``cells``' order: the order :func:`read_cells` reads them in)."""
-    return np.array([sum(f.stat().st_size // RECORD.itemsize for f in _cell_files(work, c))
-                     for c in cells], dtype=np.int64)
-
-
-def _cells_near(xyz: np.ndarray, counts: np.ndarray, centres: np.ndarray,
-                radius: float) -> np.ndarray:
-    """Mask of the points of ``xyz`` (consecutive runs of ``counts`` points, one per cell)
-    whose run's x-y box comes within ``radius`` of a centre: every point closer than
-    ``radius`` to a centre is in it (a point lies inside its run's box)."""
-    n = len(xyz)
-    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    if n == 0 or counts.sum() != n or len(centres) * len(counts) > 4_000_000:
-        return np.ones(n, dtype=bool)
-    filled = counts > 0
-    lo = np.full((len(counts), 2), np.inf)
-    hi = np.full((len(counts), 2), -np.inf)
-    for c in range(2):
-        lo[filled, c] = np.minimum.reduceat(xyz[:, c], starts[filled])
-        hi[filled, c] = np.maximum.reduceat(xyz[:, c], starts[filled])
-    if not (np.isfinite(lo[filled]).all() and np.isfinite(hi[filled]).all()):
-        return np.ones(n, dtype=bool)
-    # distance of each centre to each box (0 inside), squared, against the radius with a
-    # margin far above round-off
-    gap = np.maximum(np.maximum(lo[None, :, :] - centres[:, None, :],
-                                centres[:, None, :] - hi[None, :, :]), 0.0)
-    reach = radius * (1.0 + 1e-9) + 1e-9
-    near_cell = filled & np.any((gap ** 2).sum(axis=2) <= reach * reach, axis=0)
-    return np.repeat(near_cell, counts)
-
-
 def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_options: Any,
                   given_structures_xy: np.ndarray | None = None) -> dict[str, Any]:
     """Classify one tile (owned points + context) and keep the owned results on disk.
@@ -710,12 +676,8 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     anchor_xy = np.concatenate(anchors)
     if len(anchor_xy) and len(ground_own):
         anchor_xy = np.unique(np.floor(anchor_xy), axis=0) + 0.5  # 1 m cells: a small tree
-        radius = STRUCTURE_GROUND_RADIUS_M + 1.0
-        # only the owned cells whose points' box comes within the radius of an anchor can
-        # hold such points: the same points, in the same (ascending) order, from fewer
-        ground_own_near = ground_own[_cells_near(xyz[:n_own], _cell_counts(work, tile.cells),
-                                                 anchor_xy, radius)[ground_own]]
-        near = ground_own_near[near_points(xyz[ground_own_near, :2], anchor_xy, radius)]
+        near = ground_own[near_points(xyz[ground_own, :2], anchor_xy,
+                                      STRUCTURE_GROUND_RADIUS_M + 1.0)]
         # one ground point per STRUCTURE_GROUND_CELL_M cell: the median height under a
         # structure needs a sample, not every point
         cell = np.floor(xyz[near, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)

@@ -226,28 +226,6 @@ def test_plan_tiles_joins_scrap_blocks_into_rectangles():
     np.testing.assert_array_equal(_scrap_partners(blocks, points, 1000), [2, -1, 0, -1])
 
 
-def test_cells_near_keeps_every_point_the_bounded_query_finds():
-    # reference: near_points over all points (itself tested against cKDTree above): the runs
-    # kept by _cells_near must hold every point it finds
-    from clearaudit.tiling import _cells_near
-
-    rng = np.random.default_rng(5)
-    counts = rng.integers(0, 3000, size=40)
-    counts[7] = 0
-    xyz = np.concatenate([rng.uniform([100.0 * c, 0, 0], [100.0 * c + 100, 100, 30],
-                                      size=(m, 3)) for c, m in enumerate(counts)])
-    centres = np.array([[1010.0, 50.0], [2575.0, 120.0], [-30.0, -30.0]])
-    mask = _cells_near(xyz, counts, centres, 21.0)
-    full = near_points(xyz[:, :2], centres, 21.0)
-    sub = np.flatnonzero(mask)
-    np.testing.assert_array_equal(sub[near_points(xyz[sub, :2], centres, 21.0)], full)
-    assert 0 < mask.sum() < len(xyz) // 5  # most runs dropped
-    # runs that do not add up, or non-finite points: nothing dropped
-    assert _cells_near(xyz, counts[:-1], centres, 21.0).all()
-    bad = xyz.copy()
-    bad[0, 0] = np.nan
-    assert _cells_near(bad, counts, centres, 21.0).all()
-
 
 @pytest.mark.parametrize("spread", [3, 40, 100_000])
 def test_route_by_cell_equals_the_stable_sort(spread):

@@ -59,6 +59,8 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     """
     if k < 1 or reach < 1:
         raise ValueError("k and reach must be at least 1")
+    if not (0.0 < r2 < float("inf")):
+        raise ValueError("r2 must be positive and finite")
     if out.shape[0] != rows.shape[0] or count.shape[0] != rows.shape[0] or out.shape[1] != 6:
         raise ValueError("count and out must have one row per query (out: 6 columns)")
     if dims.shape[0] != 3 or dims[0] < 1 or dims[1] < 1 or dims[2] < 1:
@@ -104,10 +106,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
         free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
     cdef int m
-    # strictly closer than the radius: bits below those of r2 (r2 > 0, finite)
-    if not (r2 > 0.0) or r2 != r2 or r2 == float("inf"):
-        free(buf); free(cand); free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
-        raise ValueError("r2 must be positive and finite")
+    # strictly closer than the radius: bits below those of r2 (checked positive and finite)
     memcpy(&below_r2, &r2, 8)
     below_r2 -= 1
     cdef double qx, qy, qz, dx, dy, dz, d2, ex, ey, ez
