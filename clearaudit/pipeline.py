@@ -549,6 +549,10 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     raise InputError(label, "contains no points inside the area kept "
                                             f"(0 of {decoded} points kept)")
                 tiles = plan_tiles(cells, grid, tile_points, options.tile_overlap_m)
+                # a tile's work follows the points it reads (owned and context): the tasks of
+                # each stage start largest first, so no large tile starts last
+                tile_costs = [t.n_points + sum(cells.get(c, 0) for c in t.context_cells)
+                              for t in tiles]
                 for t in tiles:
                     write_cell_offsets(work, t)
                 record.extra["points_read"] = kept
@@ -580,7 +584,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 results: list[dict | None] = [None] * len(tiles)
                 done = 0
                 for k, res in engine.run([(classify_tile, (str(work), t, ctx, copts, given_xy), {})
-                                          for t in tiles]):
+                                          for t in tiles], costs=tile_costs):
                     results[k] = res
                     done += res["n_owned"]
                     progress(done, kept)
@@ -661,7 +665,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 changes: dict[str, int] = {}
                 counts = {}
                 for _, res in engine.run([(refine_tile, (str(work), t, by_cell, ctx, line), {})
-                                          for t in tiles]):
+                                          for t in tiles], costs=tile_costs):
                     for pair, n in res["changes"].items():
                         changes[pair] = changes.get(pair, 0) + n
                     for c, n in res["counts"].items():
@@ -684,7 +688,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 states = engine.share(plan)
                 for k, res in engine.run([(audit_tile, (str(work), t, by_cell, states, line,
                                                         rules, k << 32), {})
-                                          for k, t in enumerate(tiles)]):
+                                          for k, t in enumerate(tiles)], costs=tile_costs):
                     blocks[k] = res["block"]
                     done += res["n_owned"]
                     progress(done, kept)

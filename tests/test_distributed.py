@@ -221,6 +221,9 @@ def test_local_cluster_started_in_background(monkeypatch):
     with dist.LocalClusterStart(1) as started, \
             dist.engine_for(1, None, 1, started=started) as engine:
         assert dict(engine.run([(np.add, (2, 3), {})])) == {0: 5}
+        # costs only order the start: every result comes back at its own position
+        assert dict(engine.run([(np.add, (k, 1), {}) for k in range(4)],
+                               costs=[0, 9, 3, 9])) == {k: k + 1 for k in range(4)}
         engine.finish()
         memory = engine.worker_peak_memory_mb()
         assert len(memory) == 1 and all(v > 0 for v in memory.values())

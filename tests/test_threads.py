@@ -39,6 +39,31 @@ def test_one_thread_runs_in_the_callers_thread_in_order():
     assert {v[1] for _, v in got} == {3}  # the run's own thread count
 
 
+def test_costs_start_the_largest_tasks_first_and_keep_positions():
+    # Longest-first (common practice, no source: the LPT rule of list scheduling): a large
+    # tile that starts last leaves the other threads idle at the end of a stage.
+    from clearaudit.distributed import start_order
+
+    assert start_order(4, [1.0, 5.0, 3.0, 5.0]) == [1, 3, 2, 0]  # ties in list order
+    assert start_order(3, None) == [0, 1, 2]
+    with pytest.raises(ValueError, match="2 costs given for 3 tasks"):
+        start_order(3, [1, 2])
+    started = []
+
+    def task(k):
+        started.append(k)
+        return k * 10
+
+    got = list(InProcessEngine(threads=1).run([(task, (k,), {}) for k in range(4)],
+                                              costs=[1, 5, 3, 5]))
+    assert started == [1, 3, 2, 0] and got == [(1, 10), (3, 30), (2, 20), (0, 0)]
+    started.clear()
+    got = dict(InProcessEngine(threads=2).run([(task, (k,), {}) for k in range(5)],
+                                              costs=[0, 1, 2, 3, 4]))
+    assert got == {k: 10 * k for k in range(5)}
+    assert started[:2] in ([4, 3], [3, 4]) and sorted(started) == list(range(5))
+
+
 def _fails(k: int) -> int:
     if k == 3:
         raise ValueError("tile 3 is broken")
