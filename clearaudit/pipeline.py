@@ -650,11 +650,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     other_of[np.asarray(ow.point_indices, dtype=np.int64)] = k
                 for k, t in enumerate(tiles):
                     mine = slice(model_start[k], model_start[k + 1])
-                    wire = np.full(results[k]["n_owned"], -1, dtype=np.int64)
-                    other = np.full(results[k]["n_owned"], -1, dtype=np.int64)
-                    wire[model_local[k]] = wire_labels[mine]
-                    other[model_local[k]] = other_of[mine]
-                    write_model_labels(work, t, wire, other)
+                    write_model_labels(work, t, model_local[k], wire_labels[mine], other_of[mine])
                 del model_local, wire_labels, other_of
                 release_free_memory()  # the model build's freed pages, before the refine tasks
                 # what every refine and audit task needs: sent once per worker for both

@@ -703,6 +703,23 @@ def _load(work: Path, tile_id: str, what: str) -> np.ndarray:
     return np.load(_tile_file(work, tile_id, f"{what}.npy"))
 
 
+#: Per-point labels of the line model, kept sparse on disk (the model labels a few per cent
+#: of a tile's points): their row in the tile's ``labels.npy`` table (see
+#: :func:`write_model_labels`).
+_SPARSE_ROWS = {"wire": 1, "other": 2}
+
+
+def _labels_at(table: np.ndarray, row: int, positions: np.ndarray) -> np.ndarray:
+    """Label ``row`` of a tile's ``labels.npy`` table at owned-point ``positions`` (-1: none)."""
+    out = np.full(len(positions), -1, dtype=np.int64)
+    m = table.shape[1]
+    if m and len(positions):
+        i = np.minimum(np.searchsorted(table[0], positions), m - 1)
+        hit = np.flatnonzero(table[0][i] == positions)
+        out[hit] = table[row][i[hit]]
+    return out
+
+
 def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
           names: tuple[str, ...]) -> tuple[np.ndarray, int, dict[str, np.ndarray]]:
     """The tile's owned records followed by its context records, and per-point arrays.
@@ -716,7 +733,10 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
     records, n_owned, {name: array over owned + context points}
     """
     records, where = read_context(work, tile)
-    arrays = {name: [_load(work, tile.id, name)] for name in names}
+    dense = [name for name in names if name not in _SPARSE_ROWS]
+    sparse = [name for name in names if name in _SPARSE_ROWS]
+    arrays: dict[str, list] = {name: [_load(work, tile.id, name)] for name in dense}
+    arrays.update({name: [None] for name in sparse})  # the owned part once its size is known
     offset = 0
     cache: dict[str, tuple[dict[str, np.ndarray], dict]] = {}
     keep = np.ones(len(records), dtype=bool)
@@ -728,23 +748,34 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
             offset += n
             continue
         if tile_id not in cache:
-            cache[tile_id] = ({name: np.load(_tile_file(work, tile_id, f"{name}.npy"),
-                                             mmap_mode="r") for name in names},
-                              _cell_offsets(work, tile_id))
+            data = {name: np.load(_tile_file(work, tile_id, f"{name}.npy"), mmap_mode="r")
+                    for name in dense}
+            if sparse:
+                data["labels"] = _load(work, tile_id, "labels")
+            cache[tile_id] = (data, _cell_offsets(work, tile_id))
         data, offsets = cache[tile_id]
         at = offsets[cell] + positions
-        for name in names:
+        for name in dense:
             arrays[name].append(np.asarray(data[name][at]))
+        for name in sparse:
+            arrays[name].append(_labels_at(data["labels"], _SPARSE_ROWS[name], at))
         offset += n
     records = take_records(records, keep)
     both = read_cells(work, tile.cells, then=records)
-    return (both, len(both) - len(records),
-            {name: np.concatenate(parts) for name, parts in arrays.items()})
+    n_own = len(both) - len(records)
+    if sparse:
+        table = _load(work, tile.id, "labels")
+        for name in sparse:
+            own = np.full(n_own, -1, dtype=np.int64)
+            own[table[0]] = table[_SPARSE_ROWS[name]]
+            arrays[name][0] = own
+    return (both, n_own, {name: np.concatenate(parts) for name, parts in arrays.items()})
 
 
-def write_model_labels(work: str | Path, tile: TileSpec, wire: np.ndarray,
+def write_model_labels(work: str | Path, tile: TileSpec, at: np.ndarray, wire: np.ndarray,
                        other: np.ndarray) -> None:
-    """Keep the line model's per-point labels of a tile's owned points on disk.
+    """Keep the line model's labels of a tile's owned points on disk (sparse: the points the
+    model was built from, a few per cent of the tile's points).
 
     Parameters
     ----------
@@ -752,13 +783,20 @@ def write_model_labels(work: str | Path, tile: TileSpec, wire: np.ndarray,
         Work folder.
     tile
         The tile.
+    at
+        Positions among the tile's owned points of the points given, ascending.
     wire
-        Wire label of every owned point (``LineModel.wire_point_labels``; -1 none).
+        Their wire labels (``LineModel.wire_point_labels``; -1 none). Every other owned point
+        has none.
     other
-        Index of the other (crossing) wire of every owned point (-1 none).
+        Their indices of the other (crossing) wire (-1 none).
     """
-    np.save(_tile_file(Path(work), tile.id, "wire.npy"), np.asarray(wire, dtype=np.int64))
-    np.save(_tile_file(Path(work), tile.id, "other.npy"), np.asarray(other, dtype=np.int64))
+    at = np.asarray(at, dtype=np.int64)
+    if len(at) > 1 and np.any(np.diff(at) <= 0):
+        raise ValueError("the positions of the labelled points must be strictly ascending")
+    table = np.empty((3, len(at)), dtype=np.int64)
+    table[0], table[1], table[2] = at, wire, other
+    np.save(_tile_file(Path(work), tile.id, "labels.npy"), table)
 
 
 @dataclass
@@ -911,30 +949,35 @@ def write_cell_offsets(work: str | Path, tile: TileSpec) -> None:
 class TileResults:
     """Per-point results of all tiles, looked up by (file, point range) for the writer.
 
-    Each tile's owned keys are sorted within every cell but not across its cells, so the
-    keys, classes and heights are re-sorted once per tile. Lookups memory-map a tile's files
-    only while they read from it, and only tiles whose key range meets the asked range are
-    opened: pages read stay counted in the resident memory only while mapped, so the writer's
-    memory does not grow with the survey.
+    A tile's owned points are its cells' points one cell after the other, each cell's in input
+    order: the keys ascend within each cell (a run) and interleave across cells. A lookup
+    searches each run whose key range meets the asked range, and reads the results of that
+    run's slice, so nothing is re-sorted or rewritten. Lookups memory-map a tile's files only
+    while they read from it: pages read stay counted in the resident memory only while
+    mapped, so the writer's memory does not grow with the survey.
     """
 
     def __init__(self, work: str | Path, tiles: list[TileSpec]):
         self.work = Path(work)
-        self.parts: list[tuple[tuple[Path, Path, Path], int, int]] = []
+        self.parts: list[tuple[tuple[Path, ...], np.ndarray, int, int]] = []
         for t in tiles:
             # the classes refined with the line model when that stage ran
             cls_name = "rcls.npy" if _tile_file(self.work, t.id, "rcls.npy").exists() \
                 else "cls.npy"
             paths = tuple(_tile_file(self.work, t.id, w) for w in ("key.npy", cls_name, "hag.npy"))
-            key = np.load(paths[0])
-            if len(key) and np.any(np.diff(key) < 0):
-                order = np.argsort(key, kind="stable")
-                key = key[order]
-                np.save(paths[0], key)
-                for path in paths[1:]:
-                    np.save(path, np.load(path)[order])
-            if len(key):
-                self.parts.append((paths, int(key[0]), int(key[-1])))
+            key = np.load(paths[0], mmap_mode="r")
+            n = len(key)
+            if n:
+                starts = sorted(set(_cell_offsets(self.work, t.id).values()) | {0})
+                bounds = np.array([s for s in starts if s < n] + [n], dtype=np.int64)
+                # per run: start, stop, first and last key
+                runs = np.column_stack([bounds[:-1], bounds[1:], key[bounds[:-1]],
+                                        key[bounds[1:] - 1]])
+                # the keys may only fall back where a cell's run starts
+                falls = np.flatnonzero(key[1:] <= key[:-1]) + 1
+                if not np.all(np.isin(falls, bounds)):
+                    raise RuntimeError(f"tile {t.id}: its keys do not ascend within a cell")
+                self.parts.append((paths, runs, int(runs[:, 2].min()), int(runs[:, 3].max())))
             del key
 
     def values(self, file_id: int, start: int, stop: int):
@@ -945,17 +988,23 @@ class TileResults:
         hag = np.full(n, np.nan, dtype=np.float32)
         lo = (np.int64(file_id) << KEY_SHIFT) | np.int64(start)
         hi = (np.int64(file_id) << KEY_SHIFT) | np.int64(stop)
-        for paths, kmin, kmax in self.parts:
+        for paths, runs, kmin, kmax in self.parts:
             if kmax < lo or kmin >= hi:
                 continue
+            meet = runs[(runs[:, 3] >= lo) & (runs[:, 2] < hi)]
+            if len(meet) == 0:
+                continue
             key = np.load(paths[0], mmap_mode="r")
-            a, b = (int(v) for v in np.searchsorted(key, [lo, hi]))
-            if b > a:
-                at = np.array(key[a:b]) - lo
-                has_new[at] = True
-                codes[at] = np.load(paths[1], mmap_mode="r")[a:b]
-                hag[at] = np.load(paths[2], mmap_mode="r")[a:b]
-            del key  # unmapped here: its pages leave the resident set
+            cls = np.load(paths[1], mmap_mode="r")
+            height = np.load(paths[2], mmap_mode="r")
+            for r0, r1, _, _ in meet.tolist():
+                a, b = (r0 + int(v) for v in np.searchsorted(key[r0:r1], [lo, hi]))
+                if b > a:
+                    at = np.array(key[a:b]) - lo
+                    has_new[at] = True
+                    codes[at] = cls[a:b]
+                    hag[at] = height[a:b]
+            del key, cls, height  # unmapped here: their pages leave the resident set
         return has_new, codes, {"height_above_ground": hag}
 
 

@@ -334,3 +334,74 @@ def test_small_pages_of_overlapping_tasks_restore_once_the_last_ends():
         t.join(20)
     assert seen["while b runs"] is False
     assert numpy_huge_page_requests() == before
+
+
+def test_sparse_model_labels_equal_the_dense_arrays(tmp_path):
+    # The line model's labels are kept for its own points only; read back, owned and as
+    # another tile's context, they equal the dense arrays (-1 everywhere else). Reference:
+    # plain numpy fancy indexing of the dense array.
+    from clearaudit.tiling import TileSpec, _labels_at, _load, write_model_labels
+
+    (tmp_path / "tiles").mkdir()
+    rng = np.random.default_rng(5)
+    n = 5000
+    at = np.sort(rng.choice(n, size=300, replace=False))
+    wire, other = rng.integers(-1, 40, size=300), rng.integers(-1, 3, size=300)
+    tile = TileSpec("t0_0", ((0, 0),), (0.0, 0.0, 100.0, 100.0), 40.0, (), n)
+    write_model_labels(tmp_path, tile, at, wire, other)
+    table = _load(tmp_path, "t0_0", "labels")
+    for row, values in ((1, wire), (2, other)):
+        dense = np.full(n, -1, dtype=np.int64)
+        dense[at] = values
+        ask = np.concatenate([rng.integers(0, n, size=2000), at[:5], [0, n - 1]])
+        got = _labels_at(table, row, ask)
+        assert got.dtype == np.int64
+        np.testing.assert_array_equal(got, dense[ask])
+    write_model_labels(tmp_path, tile, at[:0], wire[:0], other[:0])  # no model points
+    assert np.all(_labels_at(_load(tmp_path, "t0_0", "labels"), 1, np.arange(10)) == -1)
+    with pytest.raises(ValueError, match="ascending"):
+        write_model_labels(tmp_path, tile, at[::-1], wire, other)
+
+
+def test_tile_results_look_up_interleaved_keys_cell_by_cell(tmp_path):
+    # A tile's owned points are its cells' points one cell after the other, so its keys
+    # ascend within each cell and interleave across cells; the writer's lookups by point
+    # range search each cell's run and equal a plain scatter of the arrays (reference: numpy
+    # fancy indexing).
+    import pickle
+
+    from clearaudit.tiling import KEY_SHIFT, TileResults, TileSpec
+
+    (tmp_path / "tiles").mkdir()
+    rng = np.random.default_rng(8)
+    n_file = 20_000
+    owner = rng.integers(0, 2, size=n_file)           # which tile owns each point of file 1
+    cell_of = rng.integers(0, 3, size=n_file)         # and in which of its 3 cells
+    cls_all = rng.integers(0, 20, size=n_file).astype(np.uint8)
+    hag_all = rng.normal(size=n_file).astype(np.float32)
+    tiles = []
+    for k in range(2):
+        runs = [np.flatnonzero((owner == k) & (cell_of == c)) for c in (2, 0, 1)]
+        owned = np.concatenate(runs)
+        offsets = np.cumsum([0] + [len(r) for r in runs])[:-1]
+        cells = ((k, 2), (k, 0), (k, 1))
+        with open(tmp_path / "tiles" / f"t{k}.cells.pkl", "wb") as fh:
+            pickle.dump({c: int(o) for c, o in zip(cells, offsets, strict=True)}, fh)
+        np.save(tmp_path / "tiles" / f"t{k}.key.npy", (np.int64(1) << KEY_SHIFT) | owned)
+        np.save(tmp_path / "tiles" / f"t{k}.rcls.npy", cls_all[owned])
+        np.save(tmp_path / "tiles" / f"t{k}.hag.npy", hag_all[owned])
+        tiles.append(TileSpec(f"t{k}", cells, (0.0, 0.0, 1.0, 1.0), 0.0, (), len(owned)))
+    lookup = TileResults(tmp_path, tiles)
+    for start, stop in ((0, n_file), (123, 4567), (19_990, 20_000), (5000, 5001)):
+        has, codes, extra = lookup.values(1, start, stop)
+        assert has.all()
+        np.testing.assert_array_equal(codes, cls_all[start:stop])
+        np.testing.assert_array_equal(extra["height_above_ground"], hag_all[start:stop])
+    has, _, extra = lookup.values(0, 0, 100)           # another file: nothing owned
+    assert not has.any() and np.isnan(extra["height_above_ground"]).all()
+    # keys out of order within a cell are refused, not looked up wrongly
+    bad = np.load(tmp_path / "tiles" / "t0.key.npy")
+    bad[[1, 2]] = bad[[2, 1]]
+    np.save(tmp_path / "tiles" / "t0.key.npy", bad)
+    with pytest.raises(RuntimeError, match="do not ascend"):
+        TileResults(tmp_path, tiles)
