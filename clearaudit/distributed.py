@@ -17,6 +17,7 @@ storage every worker can reach).
 from __future__ import annotations
 
 import logging
+import math
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from typing import Any
@@ -127,7 +128,7 @@ class InProcessEngine(Engine):
             pending = set(futures)
             while pending:
                 done, pending = wait(pending, return_when=FIRST_COMPLETED)
-                # in submission order among those done together: the same order every run
+                # in position order among those done together
                 for fut in sorted(done, key=futures.__getitem__):
                     yield futures[fut], fut.result()
         finally:
@@ -144,7 +145,10 @@ def start_order(n: int, costs: Sequence[float] | None) -> list[int]:
         return list(range(n))
     if len(costs) != n:
         raise ValueError(f"{len(costs)} costs given for {n} tasks")
-    return sorted(range(n), key=lambda k: -float(costs[k]))
+    values = [float(c) for c in costs]
+    if not all(math.isfinite(v) for v in values):
+        raise ValueError("task costs must be finite numbers")
+    return sorted(range(n), key=lambda k: -values[k])
 
 
 def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:

@@ -725,7 +725,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                                                             "height above ground [m]")},
                         records=records, chunk_size=WRITE_CHUNK_POINTS)
 
-                cls_summary = _ClassCounts(counts)
+                cls_summary = _ClassCounts(dict(sorted(counts.items())))  # completion order: sorted
                 summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
                                         rules, record, tolerance_rows=tolerance_rows,
                                         classified_writer=classified_writer)

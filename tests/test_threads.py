@@ -48,6 +48,8 @@ def test_costs_start_the_largest_tasks_first_and_keep_positions():
     assert start_order(3, None) == [0, 1, 2]
     with pytest.raises(ValueError, match="2 costs given for 3 tasks"):
         start_order(3, [1, 2])
+    with pytest.raises(ValueError, match="finite"):
+        start_order(3, [1.0, float("nan"), 5.0])
     started = []
 
     def task(k):
