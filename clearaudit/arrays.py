@@ -112,11 +112,12 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     state[d_cell + half <= radius - tol] = 1          # every point within the radius
     state[d_cell - half > radius + tol] = 0           # none (also beyond the query: inf)
     del d_cell
-    at = np.minimum(((xy[:, 0] - lo[0]) / size).astype(np.int64), shape[0] - 1)
-    at *= shape[1]
-    at += np.minimum(((xy[:, 1] - lo[1]) / size).astype(np.int64), shape[1] - 1)
-    point_state = state[at]
-    del at
+    from .classify.kernels import raster_state
+
+    # each point's cell state in one compiled pass: min(int((x - lo) / size), last) per axis
+    point_state = np.empty(len(xy), dtype=np.uint8)
+    raster_state(xy, float(lo[0]), float(lo[1]), float(size), int(shape[0]), int(shape[1]),
+                 state, point_state)
     keep = point_state == 1
     test = np.flatnonzero(point_state == 2)
     if len(test):

@@ -405,3 +405,30 @@ def test_tile_results_look_up_interleaved_keys_cell_by_cell(tmp_path):
     np.save(tmp_path / "tiles" / "t0.key.npy", bad)
     with pytest.raises(RuntimeError, match="do not ascend"):
         TileResults(tmp_path, tiles)
+
+
+def test_raster_state_equals_the_numpy_form():
+    # reference: the numpy expression near_points used before the kernel (same roundings)
+    from clearaudit.classify.kernels import raster_state
+
+    rng = np.random.default_rng(11)
+    xy = rng.uniform([5.2e5, 4.1e6], [5.2e5 + 900.0, 4.1e6 + 250.0], size=(40_000, 2))
+    xy[:50] = np.floor(xy[:50] / 2.5) * 2.5                 # on cell edges
+    lo, size = xy.min(axis=0), 2.5
+    shape = (int((xy[:, 0].max() - lo[0]) // size), int((xy[:, 1].max() - lo[1]) // size))
+    state = rng.integers(0, 3, size=shape[0] * shape[1]).astype(np.uint8)
+    at = np.minimum(((xy[:, 0] - lo[0]) / size).astype(np.int64), shape[0] - 1) * shape[1] \
+        + np.minimum(((xy[:, 1] - lo[1]) / size).astype(np.int64), shape[1] - 1)
+    for view in (xy, np.asfortranarray(xy), np.column_stack([xy, xy[:, :1]])[:, :2]):
+        out = np.empty(len(xy), np.uint8)
+        raster_state(view, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state, out)
+        np.testing.assert_array_equal(out, state[at])
+    out = np.empty(len(xy), np.uint8)
+    with pytest.raises(ValueError, match="below the raster"):
+        raster_state(xy, float(lo[0]) + 1.0, float(lo[1]), size, shape[0], shape[1], state, out)
+    bad = xy.copy()
+    bad[7, 1] = np.nan
+    with pytest.raises(ValueError, match="not finite"):
+        raster_state(bad, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state, out)
+    with pytest.raises(ValueError, match="shapes"):
+        raster_state(xy, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state[:-1], out)

@@ -581,3 +581,32 @@ def plane_solve(const double[:, ::1] sums, const double[::1] cnt, double min_poi
             coef[t, 2] = a[2][3] / a[2][2]
             coef[t, 1] = (a[1][3] - a[1][2] * coef[t, 2]) / a[1][1]
             coef[t, 0] = (a[0][3] - a[0][1] * coef[t, 1] - a[0][2] * coef[t, 2]) / a[0][0]
+
+
+def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_ssize_t n0,
+                 Py_ssize_t n1, const unsigned char[::1] state, unsigned char[::1] out):
+    """``out[i] = state[c]`` for the raster cell ``c`` of point ``i`` (one pass).
+
+    The cell is ``min(int((x - lo0) / size), n0 - 1) * n1 + min(int((y - lo1) / size),
+    n1 - 1)``, the numpy form of :func:`clearaudit.arrays.near_points` (the same two
+    roundings per coordinate). Points below ``lo`` or not finite are refused.
+    """
+    cdef Py_ssize_t n = xy.shape[0], k
+    cdef double t, u
+    cdef int64_t i, j
+    if xy.shape[1] < 2 or out.shape[0] != n or n0 < 1 or n1 < 1 or state.shape[0] != n0 * n1:
+        raise ValueError("raster_state: mismatched array shapes")
+    if not size > 0:
+        raise ValueError("raster_state: the cell size must be positive")
+    for k in range(n):
+        t = (xy[k, 0] - lo0) / size
+        u = (xy[k, 1] - lo1) / size
+        if not (t >= 0 and u >= 0 and t < 9.0e18 and u < 9.0e18):
+            raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
+        i = <int64_t>t
+        j = <int64_t>u
+        if i > n0 - 1:
+            i = n0 - 1
+        if j > n1 - 1:
+            j = n1 - 1
+        out[k] = state[i * n1 + j]
