@@ -11,15 +11,18 @@ the k-d tree release the GIL, so tiles share the cores);
 small summaries and the values every tile task shares (:meth:`Engine.share`: the tile
 owners, the line model's structures and spans, the wire-state recipes; sent to each worker
 once) travel
-through the scheduler; workers read their own tiles from the work folder (which must be on
-storage every worker can reach).
+through the scheduler; workers read the inputs and their own tiles from the work folder (which
+must be on storage every worker can reach: :meth:`Engine.check_access` checks it on every
+worker before any work is sent).
 """
 from __future__ import annotations
 
 import logging
 import math
+import os
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any
 
 from .errors import InputError
@@ -51,6 +54,10 @@ class Engine:
     def worker_peak_memory_mb(self) -> dict[str, float]:
         """Peak resident memory of each worker process so far. [MB]"""
         return {}
+
+    def check_access(self, inputs: Sequence[Path], work: Path) -> None:
+        """Raise :class:`InputError` unless every worker can read ``inputs`` and read and
+        write the folder ``work`` (in this process: what the driver sees)."""
 
     def finish(self) -> None:
         """The run will send no more tasks (an engine may then release its workers)."""
@@ -168,6 +175,40 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
         release_free_memory()
 
 
+def worker_access(inputs: Sequence[str], sizes: Sequence[int], probe: str,
+                  token: str) -> list[tuple[str, str]]:
+    """What a worker cannot use: ``(path or --work-dir, reason)`` pairs, none when all is well.
+
+    Runs on each worker (:meth:`DaskEngine.check_access`). An input must exist here with the
+    driver's size and be readable; the work folder must hold the driver's probe file with
+    its token (the same folder, not one of the same name) and take a file of the worker's own.
+    """
+    problems: list[tuple[str, str]] = []
+    for path, size in zip(inputs, sizes, strict=True):
+        try:
+            here = os.stat(path).st_size
+        except OSError as exc:
+            problems.append((path, exc.strerror or str(exc)))
+            continue
+        if here != size:
+            problems.append((path, f"{here} bytes there, {size} on the driver"))
+        elif not os.access(path, os.R_OK):
+            problems.append((path, "not readable"))
+    folder = os.path.dirname(probe)
+    try:
+        with open(probe, encoding="ascii") as fh:
+            if fh.read() != token:
+                problems.append((f"--work-dir {folder}", "another folder of the same name"))
+                return problems
+        own = f"{probe}.{os.getpid()}"
+        with open(own, "w", encoding="ascii") as fh:
+            fh.write(token)
+        os.remove(own)
+    except OSError as exc:
+        problems.append((f"--work-dir {folder}", exc.strerror or str(exc)))
+    return problems
+
+
 def _one_thread(fn: Callable[..., Any], args: tuple, kwargs: dict, share: Any) -> Any:
     """Run a task with the work inside it limited to its ``share``
     (:class:`clearaudit.threads.PoolShare`) of the pool's threads."""
@@ -220,6 +261,28 @@ class DaskEngine(Engine):
         finally:
             for fut in futures:
                 fut.release()
+
+    def check_access(self, inputs: Sequence[Path], work: Path) -> None:
+        """Raise :class:`InputError` unless every worker connected now can read ``inputs``
+        and read and write ``work``: workers read the inputs and their tiles themselves, so on
+        a cluster both must be on storage every worker shares, under the same absolute paths
+        (a worker that does not would otherwise fail later, or read another file)."""
+        import secrets
+
+        token = secrets.token_hex(8)
+        probe = Path(work) / f".workers-probe-{token}"
+        probe.write_text(token, encoding="ascii")
+        try:
+            found = self.client.run(worker_access, [str(p) for p in inputs],
+                                    [Path(p).stat().st_size for p in inputs], str(probe), token)
+        finally:
+            probe.unlink(missing_ok=True)
+        for address, problems in sorted(found.items()):
+            if problems:
+                what, why = problems[0]
+                raise InputError(what, f"the Dask worker {address} cannot use it ({why}); the "
+                                       "inputs and --work-dir must be on storage every worker "
+                                       "shares, under the same paths")
 
     def share(self, value: Any) -> Any:
         if self._final_memory is not None:

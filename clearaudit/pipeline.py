@@ -506,6 +506,12 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 atomic_output_dir(options.out, options.overwrite) as tmp, \
                 _progress_bar(console) as bar:
             record.extra["execution"].update(engine.describe())
+            if engine.name != "in-process":
+                # workers read the inputs and the tiles themselves: absolute paths, checked
+                # on every worker before any work is sent
+                paths = [p.absolute() for p in paths]
+                work = work.absolute()
+            engine.check_access(paths, work)
             # ---- read: split every input once into cell buckets (parallel over ranges)
             with record.stage("read", engine=engine) as entry:
                 setup = read_setup(paths, crs=options.crs)

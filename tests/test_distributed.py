@@ -280,3 +280,49 @@ def test_shared_values_go_to_each_worker_once():
     assert sorted(v for *_, v in out) == [float(k) for k in range(12)]
     copies = {(pid, ident) for pid, ident, _ in out}
     assert len(copies) == len({pid for pid, _, _ in out}) <= 2
+
+
+def test_worker_access_names_what_a_worker_cannot_use(tmp_path):
+    # Workers read the inputs and the tiles themselves: an input missing, of another size or
+    # a work folder that is not the driver's is named before any work is sent.
+    from clearaudit.distributed import worker_access
+
+    cloud = tmp_path / "a.laz"
+    cloud.write_bytes(b"LASF" + bytes(96))
+    work = tmp_path / "work"
+    work.mkdir()
+    probe = work / ".probe"
+    probe.write_text("t0k3n")
+    assert worker_access([str(cloud)], [100], str(probe), "t0k3n") == []
+    assert list(work.iterdir()) == [probe]                  # its own test file is gone
+    got = worker_access([str(tmp_path / "b.laz"), str(cloud)], [100, 99], str(probe), "t0k3n")
+    assert got[0][0].endswith("b.laz") and "No such file" in got[0][1]
+    assert got[1] == (str(cloud), "100 bytes there, 99 on the driver")
+    assert worker_access([], [], str(probe), "other") == \
+        [(f"--work-dir {work}", "another folder of the same name")]
+    missing = worker_access([], [], str(tmp_path / "gone" / ".probe"), "t0k3n")
+    assert missing[0][0] == f"--work-dir {tmp_path / 'gone'}" and "No such file" in missing[0][1]
+
+
+def test_dask_engine_checks_every_worker_sees_inputs_and_work_folder(tmp_path, monkeypatch):
+    from clearaudit.distributed import InProcessEngine, engine_for
+    from clearaudit.errors import InputError
+
+    cloud = tmp_path / "a.laz"
+    cloud.write_bytes(b"LASF" + bytes(96))
+    InProcessEngine(2).check_access([cloud], tmp_path)  # this process sees what the driver sees
+    with engine_for(workers=1) as engine:
+        engine.check_access([cloud], tmp_path)          # a local cluster shares the files
+        assert not any(p.name.startswith(".workers-probe") for p in tmp_path.iterdir())
+        # a worker elsewhere that lacks the file: one line naming the file and the worker
+        monkeypatch.setattr(engine.client, "run", lambda *a, **k: {
+            "tcp://10.0.0.7:4000": [(str(cloud), "No such file or directory")],
+            "tcp://10.0.0.8:4000": []})
+        with pytest.raises(InputError) as info:
+            engine.check_access([cloud], tmp_path)
+        assert info.value.source == str(cloud)
+        assert "tcp://10.0.0.7:4000 cannot use it (No such file or directory)" in str(info.value)
+        assert "\n" not in str(info.value)
+        assert not any(p.name.startswith(".workers-probe") for p in tmp_path.iterdir())
+        monkeypatch.undo()
+        engine.finish()
