@@ -1,4 +1,4 @@
-"""Command line: ``clearaudit audit | info | sample | report | view | sag | conductors``.
+"""Command line: ``clearaudit audit | network | info | sample | report | view | sag | conductors``.
 
 Every user-input problem ends as one line on stderr naming the file and the problem, exit code 2,
 no traceback, nothing half-written (outputs go to a temporary folder renamed at the end).
@@ -80,6 +80,20 @@ def cmd_audit(args: argparse.Namespace) -> int:
     )
     result = run_audit(options, console=_console())
     return 0 if result is not None else 1
+
+
+def cmd_network(args: argparse.Namespace) -> int:
+    from .network import print_network_summary, run_network
+
+    console = _console()
+    result = run_network(args.manifest, args.out, workers=args.workers, scheduler=args.scheduler,
+                         threads=args.threads, skip_report=args.no_report,
+                         overwrite=args.overwrite, units=args.units, console=console)
+    print_network_summary(console, result)
+    # the lines that failed were named on stderr as they failed; the others are complete
+    if result["bad_input"]:
+        return EXIT_INPUT
+    return 1 if result["failed"] else 0
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -180,6 +194,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
     p.set_defaults(func=cmd_audit)
+
+    p = sub.add_parser("network", help="audit every line of a network manifest and rank the "
+                                       "work across the lines",
+                       description="Audit each line listed in a manifest (TOML, see "
+                                   "docs/network.md) into its own folder, one after the other on "
+                                   "the same engine, then write lines.csv and one work list "
+                                   "ranked across the network. " + CAUTION)
+    p.add_argument("manifest", metavar="NETWORK.toml", help="the manifest of the lines")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created)")
+    p.add_argument("--workers", type=int, default=0,
+                   help="one local Dask cluster with N workers for every line (0: in-process)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster")
+    p.add_argument("--threads", type=int, default=0, metavar="N",
+                   help="threads of the in-process runs (default 0: every core)")
+    p.add_argument("--units", choices=("metric", "imperial"), default="metric",
+                   help="unit system of the reports and terminal summaries")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--no-report", action="store_true", help="skip the HTML reports")
+    p.set_defaults(func=cmd_network)
 
     p = sub.add_parser("info", help="describe LAS/LAZ files (points, bounds, CRS, classes)")
     p.add_argument("clouds", nargs="+", metavar="CLOUD")

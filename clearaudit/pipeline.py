@@ -189,8 +189,10 @@ def _stage_progress(bar, task) -> Callable[[Any, float], None]:
     return update
 
 
-def run_audit(options: AuditOptions, console=None):
-    """Run the whole audit; returns the output folder path."""
+def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True):
+    """Run the whole audit; returns the output folder path.
+
+    ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
     from .threads import run_threads
 
     threads = options.threads
@@ -202,10 +204,10 @@ def run_audit(options: AuditOptions, console=None):
     from .tiling import small_pages
 
     with run_threads(threads), small_pages():
-        return _run_audit(options, console)
+        return _run_audit(options, console, show_summary)
 
 
-def _run_audit(options: AuditOptions, console=None):
+def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):
     record = RunRecord(command=sys.argv[:], options=options.to_dict(),
                        started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
     if options.workers or options.scheduler:
@@ -219,13 +221,14 @@ def _run_audit(options: AuditOptions, console=None):
 
         cluster = LocalClusterStart(options.workers)
     try:
-        return _validate_and_run(options, record, cluster, console)
+        return _validate_and_run(options, record, cluster, console, show_summary)
     finally:
         if cluster is not None:
             cluster.close()
 
 
-def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, console=None):
+def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, console=None,
+                      show_summary: bool = True):
     from .config import load_line_file, read_structures_csv
     from .io.las import file_sha256, resolve_inputs
 
@@ -284,7 +287,7 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     if tiled:
         summary = _run_tiled(options, record, paths, config, structures_rows, conductors, rules,
                              console, cluster)
-        if console is not None:
+        if console is not None and show_summary:
             from .outputs import print_summary
 
             print_summary(console, summary, options.out, options.units)
@@ -297,14 +300,14 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     scratch = Path(tempfile.mkdtemp(prefix=".clearaudit-records-", dir=scratch_parent))
     try:
         return _run_in_memory(options, record, paths, config, structures_rows, conductors,
-                              rules, total_points, scratch, console)
+                              rules, total_points, scratch, console, show_summary)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], config: Any,
                    structures_rows: list[dict] | None, conductors: dict, rules: Any,
-                   total_points: int, scratch: Path, console=None):
+                   total_points: int, scratch: Path, console=None, show_summary: bool = True):
     """The in-memory run: read every (corridor) point, classify, model, audit, write."""
     from .io.las import corridor_mask, inputs_crs, plan_record_scratch, read_cloud
 
@@ -392,7 +395,7 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                                     record, tolerance_rows=tolerance_rows,
                                     progress=_stage_progress(bar, task), records=records)
         _finish_record_and_report(tmp, record, options)
-    if console is not None:
+    if console is not None and show_summary:
         from .outputs import print_summary
 
         print_summary(console, summary, options.out, options.units)

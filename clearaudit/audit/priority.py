@@ -313,6 +313,17 @@ def _tier(row: dict) -> int:
     return {"survey": 0, "mot": 1, "wind": 1, "ice": 2}.get(row["condition"], 2)
 
 
+def finding_key(row: dict) -> tuple:
+    """Urgency order of a finding (smaller first): violations now, then at MOT and in wind,
+    then under ice, then findings within their requirement, then fall-in risks; within a
+    tier the larger deficit (to the millimetre) first, blown-in or fall-in trees after the
+    others, the sooner grow-in first; then span and wire."""
+    grow = row.get("grow_in_years")
+    return (_tier(row), -round(float(row["deficit_m"]), 3), not bool(row.get("fall_in")),
+            np.inf if grow is None else float(grow), str(row.get("span_id")),
+            str(row.get("wire_id")))
+
+
 def rank_findings(rows: list[dict]) -> list[dict]:
     """Give every finding a priority (1 = most urgent) and a reason sentence.
 
@@ -329,13 +340,7 @@ def rank_findings(rows: list[dict]) -> list[dict]:
     rows : list of dict
         The same rows sorted by priority, with ``priority`` and ``reason`` filled.
     """
-    def key(row):
-        grow = row.get("grow_in_years")
-        return (_tier(row), -round(float(row["deficit_m"]), 3), not bool(row.get("fall_in")),
-                np.inf if grow is None else float(grow), str(row.get("span_id")),
-                str(row.get("wire_id")))
-
-    ranked = sorted(rows, key=key)
+    ranked = sorted(rows, key=finding_key)
     for i, row in enumerate(ranked, start=1):
         row["priority"] = i
         row["reason"] = _reason(row)

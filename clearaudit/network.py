@@ -1,0 +1,365 @@
+"""Audit a network of lines in one run: every line of a manifest, one after the other, on the
+same engine (in this process, one local Dask cluster, or an existing cluster), then one
+network-wide work list.
+
+Each line gets its own complete audit folder (the output contract, as ``clearaudit audit``
+writes it); the network folder adds ``lines.csv`` (one row per line: status and counts),
+``work_list.csv`` / ``work_list.geojson`` (every violation and hazard tree of every line,
+ranked across the network) and ``network.json`` (the run record). A line whose input is bad
+is listed as failed with its one-line error and the other lines go on; the exit code is then 2
+(1 when a stage could not finish for another reason).
+
+Manifest (TOML; paths relative to the manifest)::
+
+    [network]
+    name = "Velloran district, 2026 flights"     # optional
+
+    [[line]]
+    name = "tarnwick-velloran-230"               # the line's folder name
+    clouds = ["tiles/tarnwick/"]                 # LAS/LAZ files or folders of tiles
+    line_file = "tarnwick_velloran_230kv.line.toml"
+    structures = "tarnwick_structures.csv"      # optional
+    # optional: voltage_kv, crs, trust_classes, tiled
+"""
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import heapq
+import json
+import re
+import sys
+import time
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from . import CAUTION, __version__
+from .errors import ClearauditError, InputError
+
+#: Keys a ``[[line]]`` table may hold.
+LINE_KEYS = ("name", "clouds", "line_file", "structures", "voltage_kv", "crs", "trust_classes",
+             "tiled")
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+
+
+@dataclass
+class NetworkLine:
+    """One line of the manifest, its paths resolved against the manifest's folder."""
+
+    name: str
+    clouds: list[Path]
+    line_file: Path | None = None
+    structures: Path | None = None
+    voltage_kv: float | None = None
+    crs: str | None = None
+    trust_classes: bool = False
+    tiled: bool | None = None
+
+
+@dataclass
+class Manifest:
+    path: Path
+    name: str
+    lines: list[NetworkLine] = field(default_factory=list)
+
+
+def load_manifest(path: str | Path) -> Manifest:
+    """Read and check a network manifest; every problem is an :class:`InputError` naming the
+    manifest and the line, raised before any line is audited."""
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        raise InputError(path, "does not exist") from exc
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(path, f"cannot be read ({exc})") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(path, f"is not valid TOML ({exc})") from exc
+    base = path.parent
+    unknown = sorted(set(data) - {"network", "line"})
+    if unknown:
+        raise InputError(path, f"unknown table(s) {', '.join(unknown)} (expected [network] and "
+                               "[[line]])")
+    tables = data.get("line")
+    if not isinstance(tables, list) or not tables:
+        raise InputError(path, "lists no [[line]] tables")
+    network = data.get("network", {})
+    name = network.get("name", path.stem) if isinstance(network, dict) else path.stem
+    lines: list[NetworkLine] = []
+    seen: set[str] = set()
+    for k, t in enumerate(tables, start=1):
+        where = f"[[line]] number {k}"
+        if not isinstance(t, dict):
+            raise InputError(path, f"{where} is not a table")
+        bad = sorted(set(t) - set(LINE_KEYS))
+        if bad:
+            raise InputError(path, f"{where}: unknown key(s) {', '.join(bad)} (allowed: "
+                                   f"{', '.join(LINE_KEYS)})")
+        line_name = t.get("name")
+        if not isinstance(line_name, str) or not _NAME.match(line_name):
+            raise InputError(path, f"{where}: name must be 1-100 letters, digits, '.', '_' or "
+                                   f"'-' starting with a letter or digit, not {line_name!r}")
+        where = f"line {line_name!r}"
+        if line_name.lower() in seen:
+            raise InputError(path, f"{where} is listed twice (names must differ, ignoring case)")
+        seen.add(line_name.lower())
+        clouds = t.get("clouds")
+        if isinstance(clouds, str):
+            clouds = [clouds]
+        if not isinstance(clouds, list) or not clouds or \
+                not all(isinstance(c, str) for c in clouds):
+            raise InputError(path, f"{where}: clouds must be a file or folder, or a list of them")
+        cloud_paths = [base / c for c in clouds]
+        for c in cloud_paths:
+            if not c.exists():
+                raise InputError(path, f"{where}: cloud {c} does not exist")
+        entry = NetworkLine(name=line_name, clouds=cloud_paths)
+        for key in ("line_file", "structures"):
+            value = t.get(key)
+            if value is None:
+                continue
+            if not isinstance(value, str) or not (base / value).is_file():
+                raise InputError(path, f"{where}: {key} {base / str(value)} is not a file")
+            setattr(entry, key, base / value)
+        if "voltage_kv" in t:
+            v = t["voltage_kv"]
+            if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
+                raise InputError(path, f"{where}: voltage_kv must be a positive number [kV]")
+            entry.voltage_kv = float(v)
+        if entry.line_file is None and entry.voltage_kv is None:
+            raise InputError(path, f"{where}: give line_file or voltage_kv")
+        for key in ("trust_classes", "tiled"):
+            if key in t:
+                if not isinstance(t[key], bool):
+                    raise InputError(path, f"{where}: {key} must be true or false")
+                setattr(entry, key, t[key])
+        if "crs" in t:
+            if not isinstance(t["crs"], str):
+                raise InputError(path, f"{where}: crs must be text such as \"EPSG:32617\"")
+            entry.crs = t["crs"]
+        lines.append(entry)
+    return Manifest(path=path, name=str(name), lines=lines)
+
+
+# ------------------------------------------------------------------------------- the work list
+def _float(text: str | None) -> float | None:
+    try:
+        return float(text) if text not in (None, "") else None
+    except ValueError:
+        return None
+
+
+def work_key(row: dict[str, str]) -> tuple:
+    """Urgency of a finding across lines: the key of
+    :func:`clearaudit.audit.priority.rank_findings` (violations now, then at MOT and in wind,
+    then under ice, then findings within their requirement, then fall-in risks; the larger
+    deficit first; ...), read from a ``violations.csv`` / ``hazard_trees.csv`` row."""
+    from .audit.priority import finding_key
+
+    deficit = _float(row.get("deficit_m"))
+    return finding_key({
+        "finding": row.get("finding"), "condition": row.get("condition"),
+        "deficit_m": deficit if deficit is not None else float("-inf"),
+        "fall_in": str(row.get("fall_in", "")).lower() == "true",
+        "grow_in_years": _float(row.get("grow_in_years")),
+        "span_id": row.get("span_id"), "wire_id": row.get("wire_id")})
+
+
+def _read_rows(path: Path) -> tuple[list[str], list[dict[str, str]]]:
+    if not path.exists():
+        return [], []
+    with open(path, newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        return list(reader.fieldnames or []), list(reader)
+
+
+def network_work_list(folders: dict[str, Path]) -> tuple[list[str], list[dict[str, str]]]:
+    """Every line's violations and hazard trees in one list, ranked across the network.
+
+    Each line's findings keep their own order (its ``priority``): the lists are merged, and
+    between lines the more urgent finding (:func:`work_key`; then the line name) comes first.
+    Returns the columns (``network_priority``, ``line``, then the lines' own columns) and rows.
+    """
+    columns: list[str] = []
+    per_line = []
+    for name, folder in sorted(folders.items()):
+        parts = []
+        for file in ("violations.csv", "hazard_trees.csv"):
+            cols, got = _read_rows(folder / file)
+            columns += [c for c in cols if c not in columns]
+            got.sort(key=lambda r: int(r.get("priority") or 0))  # the line's own order
+            parts.append([(work_key(r), r) for r in got])
+        # the line's two files merged (each keeps its order), then tagged for the network merge
+        merged = heapq.merge(*parts, key=lambda e: e[0])
+        per_line.append([((key, name), i, name, row) for i, (key, row) in enumerate(merged)])
+    rows = []
+    for k, (_, _, name, row) in enumerate(heapq.merge(*per_line, key=lambda e: (e[0], e[1])),
+                                          start=1):
+        rows.append({"network_priority": str(k), "line": name, **row})
+    return ["network_priority", "line"] + columns, rows
+
+
+def _write_csv(path: Path, columns: list[str], rows: list[dict[str, Any]]) -> None:
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=columns, extrasaction="ignore")
+        w.writeheader()
+        w.writerows(rows)
+
+
+def _work_geojson(path: Path, rows: list[dict[str, str]]) -> None:
+    features = []
+    for r in rows:
+        lon, lat = _float(r.get("longitude")), _float(r.get("latitude"))
+        geometry = None if lon is None or lat is None else {"type": "Point",
+                                                            "coordinates": [lon, lat]}
+        features.append({"type": "Feature", "geometry": geometry, "properties": dict(r)})
+    path.write_text(json.dumps({"type": "FeatureCollection", "features": features}),
+                    encoding="utf-8")
+
+
+def _line_row(line: NetworkLine, status: str, seconds: float, folder: Path | None,
+              error: str = "") -> dict[str, Any]:
+    row: dict[str, Any] = {"line": line.name, "status": status, "seconds": round(seconds, 1),
+                           "folder": "" if folder is None else line.name, "error": error}
+    if folder is None:
+        return row
+    run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+    cfg = run.get("options", {}).get("line_config", {}).get("line", {})
+    _, spans = _read_rows(folder / "spans.csv")
+    _, viol = _read_rows(folder / "violations.csv")
+    _, trees = _read_rows(folder / "hazard_trees.csv")
+    deficits = [d for d in (_float(r.get("deficit_m")) for r in viol) if d is not None]
+    row.update({"line_name": cfg.get("name", ""), "voltage_kv": cfg.get("voltage_kv", ""),
+                "spans": len({r.get("span_id") for r in spans}), "wire_spans": len(spans),
+                "violations": len(viol),
+                "violations_at_survey": sum(r.get("condition") == "survey" for r in viol),
+                "hazard_trees": len(trees),
+                "largest_deficit_m": "" if not deficits else f"{max(deficits):.3f}"})
+    return row
+
+
+LINE_COLUMNS = ["line", "status", "line_name", "voltage_kv", "spans", "wire_spans", "violations",
+                "violations_at_survey", "hazard_trees", "largest_deficit_m", "seconds", "folder",
+                "error"]
+
+
+# ------------------------------------------------------------------------------------- the run
+def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
+                scheduler: str | None = None, threads: int = 0, skip_report: bool = False,
+                overwrite: bool = False, units: str = "metric", console: Any = None) -> dict:
+    """Audit every line of a manifest into ``out/<line name>/`` and write the network files.
+
+    Returns a dict with ``lines`` (the rows of lines.csv), ``failed`` (names; ``bad_input``
+    those whose input was at fault), ``work_list`` and ``out``.
+    Lines run one after the other, each with all of the engine's workers; with ``workers``
+    one local Dask cluster serves every line.
+    """
+    from .pipeline import AuditOptions, atomic_output_dir, package_versions, run_audit
+
+    manifest = load_manifest(manifest_path)
+    out = Path(out)
+    if workers and scheduler:
+        raise InputError("--scheduler", "give either --workers (local cluster) or --scheduler "
+                                        "(an existing one), not both")
+    if workers < 0:
+        raise InputError("--workers", f"must be 0 (in-process) or a positive count, not {workers}")
+    started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
+    cluster = None
+    rows: list[dict[str, Any]] = []
+    failed: list[str] = []
+    bad_input: list[str] = []
+    with atomic_output_dir(out, overwrite) as tmp:
+        try:
+            address = scheduler
+            if workers:
+                from .distributed import LocalClusterStart
+
+                cluster = LocalClusterStart(workers)
+                address = cluster.client().scheduler.address
+            for k, line in enumerate(manifest.lines, start=1):
+                if console is not None:
+                    console.print(f"[bold]line {k} of {len(manifest.lines)}: {line.name}[/]")
+                t0 = time.perf_counter()
+                options = AuditOptions(
+                    clouds=line.clouds, out=tmp / line.name, line_file=line.line_file,
+                    crs=line.crs, voltage_kv=line.voltage_kv, units=units,
+                    trust_classes=line.trust_classes, structures_file=line.structures,
+                    scheduler=address, threads=0 if address else threads,
+                    skip_report=skip_report, tiled=line.tiled)
+                try:
+                    run_audit(options, console=console, show_summary=False)
+                except ClearauditError as exc:  # bad input, or a stage that cannot finish
+                    failed.append(line.name)
+                    if isinstance(exc, InputError):
+                        bad_input.append(line.name)
+                    rows.append(_line_row(line, "failed", time.perf_counter() - t0, None,
+                                          str(exc)))
+                    print(f"clearaudit: error: line {line.name!r}: {exc}", file=sys.stderr)
+                    continue
+                rows.append(_line_row(line, "ok", time.perf_counter() - t0, tmp / line.name))
+                if console is not None:
+                    r = rows[-1]
+                    console.print(f"{line.name}: {r['spans']} spans, {r['violations']} "
+                                  f"violations, {r['hazard_trees']} hazard trees "
+                                  f"({r['seconds']:.1f} s)")
+        finally:
+            if cluster is not None:
+                cluster.close()
+        folders = {r["line"]: tmp / r["line"] for r in rows if r["status"] == "ok"}
+        columns, work = network_work_list(folders)
+        _write_csv(tmp / "lines.csv", LINE_COLUMNS, rows)
+        _write_csv(tmp / "work_list.csv", columns, work)
+        _work_geojson(tmp / "work_list.geojson", work)
+        record = {
+            "tool": "clearaudit", "version": __version__, "command": sys.argv[:],
+            "caution": CAUTION, "started": started,
+            "finished": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+            "manifest": {"path": str(manifest.path), "name": manifest.name,
+                         "sha256": _sha256(manifest.path)},
+            "options": {"workers": workers, "scheduler": scheduler, "threads": threads,
+                        "skip_report": skip_report, "units": units},
+            "packages": package_versions(), "python": sys.version.split()[0],
+            "lines": rows, "failed": failed, "work_list_rows": len(work),
+            "ranking": "each line's findings in their own priority order, merged across lines "
+                       "by the same urgency key (clearaudit.audit.priority.finding_key)"}
+        (tmp / "network.json").write_text(json.dumps(record, indent=1), encoding="utf-8")
+    return {"out": out, "lines": rows, "failed": failed, "bad_input": bad_input,
+            "work_list": work, "name": manifest.name}
+
+
+def _sha256(path: Path) -> str:
+    from .io.las import file_sha256
+
+    return file_sha256(path)
+
+
+def print_network_summary(console: Any, result: dict) -> None:
+    from rich.table import Table
+
+    table = Table(title=f"{result['name']}: {len(result['lines'])} lines", title_justify="left")
+    for col, justify in (("line", "left"), ("status", "left"), ("spans", "right"),
+                         ("violations", "right"), ("now", "right"), ("hazard trees", "right"),
+                         ("largest deficit m", "right")):
+        table.add_column(col, justify=justify, no_wrap=True)
+    for r in result["lines"]:
+        table.add_row(r["line"], r["status"], str(r.get("spans", "")), str(r.get("violations", "")),
+                      str(r.get("violations_at_survey", "")), str(r.get("hazard_trees", "")),
+                      str(r.get("largest_deficit_m", "")))
+    console.print(table)
+    work = result["work_list"]
+    if work:
+        t = Table(title=f"{len(work)} findings across the network, most urgent first (all in "
+                        "work_list.csv)", title_justify="left")
+        for col in ("#", "line", "kind", "case", "span", "wire", "short m", "finding"):
+            t.add_column(col, no_wrap=True)
+        for r in work[:10]:
+            t.add_row(r["network_priority"], r["line"], r.get("kind", ""), r.get("condition", ""),
+                      r.get("span_id", ""), r.get("wire_id", ""),
+                      f"{float(r['deficit_m']):.2f}" if _float(r.get("deficit_m")) is not None
+                      else "", r.get("finding", ""))
+        console.print(t)
+    console.print(f"Results in {result['out']}/ (lines.csv, work_list.csv, work_list.geojson, "
+                  "network.json, one audit folder per line)")
+    console.print(f"[italic]{CAUTION}[/]")

@@ -1,0 +1,181 @@
+"""`clearaudit network`: every line of a manifest audited into its own contract folder (checked
+with ../shared/tools/check_outputs.py), one work list ranked across the lines, bad lines
+reported without stopping the others, bad manifests refused before any work."""
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from clearaudit.cli import main
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLE = ROOT / "sample_clouds"
+NAME = "tarnwick_velloran_230kv"
+
+
+def _copy_sample(folder: Path, stem: str) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    for suffix in (".laz", ".line.toml"):
+        shutil.copy(SAMPLE / f"{NAME}{suffix}", folder / f"{stem}{suffix}")
+    # the line file names its structures file
+    shutil.copy(SAMPLE / f"{NAME}.structures.csv", folder / f"{NAME}.structures.csv")
+
+
+def _rows(path: Path) -> list[dict[str, str]]:
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def _manifest(tmp: Path, extra: str = "") -> Path:
+    _copy_sample(tmp / "north", "north")
+    _copy_sample(tmp / "south", "south")
+    path = tmp / "network.toml"
+    path.write_text(f'''
+[network]
+name = "Velloran district test flights"
+
+[[line]]
+name = "north-230"
+clouds = ["north/north.laz"]
+line_file = "north/north.line.toml"
+
+[[line]]
+name = "south-230"
+clouds = "south"
+line_file = "south/south.line.toml"
+tiled = true
+{extra}''')
+    return path
+
+
+@pytest.fixture(scope="module")
+def network_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("network")
+    manifest = _manifest(tmp)
+    out = tmp / "out"
+    r = subprocess.run([sys.executable, "-m", "clearaudit.cli", "network", str(manifest),
+                        "--out", str(out)], capture_output=True, text=True, timeout=900)
+    assert r.returncode == 0, r.stderr[-3000:]
+    return out, r.stdout
+
+
+def test_each_line_gets_a_contract_folder_and_a_row(network_run):
+    out, stdout = network_run
+    from test_end_to_end import _checker
+
+    checker = _checker()
+    for name in ("north-230", "south-230"):
+        assert (out / name / "spans.csv").exists()
+        if checker is not None:
+            r = subprocess.run([sys.executable, str(checker), str(out / name)],
+                               capture_output=True, text=True, timeout=120)
+            assert "outputs ok" in r.stdout, r.stdout + r.stderr
+    lines = _rows(out / "lines.csv")
+    assert [r["line"] for r in lines] == ["north-230", "south-230"]
+    assert all(r["status"] == "ok" and r["error"] == "" for r in lines)
+    for r in lines:
+        assert int(r["spans"]) == 5 and float(r["voltage_kv"]) == 230.0
+        assert int(r["violations"]) == len(_rows(out / r["line"] / "violations.csv"))
+        assert int(r["hazard_trees"]) == len(_rows(out / r["line"] / "hazard_trees.csv"))
+    record = json.loads((out / "network.json").read_text())
+    assert len(record["manifest"]["sha256"]) == 64 and record["failed"] == []
+    assert record["caution"] and record["packages"]["numpy"]
+    assert "licensed engineer" in stdout
+
+
+def test_work_list_ranks_across_lines_and_keeps_each_lines_order(network_run):
+    out, _ = network_run
+    from clearaudit.network import work_key
+
+    work = _rows(out / "work_list.csv")
+    assert [int(r["network_priority"]) for r in work] == list(range(1, len(work) + 1))
+    for name in ("north-230", "south-230"):
+        mine = [r for r in work if r["line"] == name]
+        for file in ("violations.csv", "hazard_trees.csv"):
+            own = _rows(out / name / file)
+            got = [r for r in mine if (r["finding"] == "fall_in") == (file == "hazard_trees.csv")]
+            # the line's own priority order survives the merge, row for row
+            assert [r["priority"] for r in got] == [r["priority"] for r in own]
+            assert [r["x"] for r in got] == [r["x"] for r in own]
+    # across lines the more urgent comes first (the same key as each line's own ranking)
+    keys = [work_key(r) for r in work]
+    assert keys == sorted(keys)
+    geo = json.loads((out / "work_list.geojson").read_text())
+    assert len(geo["features"]) == len(work)
+    first = geo["features"][0]
+    assert first["geometry"]["type"] == "Point"
+    assert first["properties"]["network_priority"] == "1"
+
+
+def test_a_bad_line_is_reported_and_the_others_go_on(tmp_path, capsys):
+    # a file that starts like LAS but is cut short: found only when the line is read
+    bad = tmp_path / "west"
+    _copy_sample(bad, "west")
+    data = (bad / "west.laz").read_bytes()
+    (bad / "west.laz").write_bytes(data[:len(data) // 3])
+    manifest = _manifest(tmp_path, '''
+[[line]]
+name = "west-230"
+clouds = ["west/west.laz"]
+line_file = "west/west.line.toml"
+''')
+    out = tmp_path / "out"
+    rc = main(["network", str(manifest), "--out", str(out), "--no-report"])
+    assert rc == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("clearaudit: error: line 'west-230': ")
+    assert "west.laz" in err[0]
+    lines = {r["line"]: r for r in _rows(out / "lines.csv")}
+    assert lines["west-230"]["status"] == "failed" and "west.laz" in lines["west-230"]["error"]
+    assert lines["north-230"]["status"] == lines["south-230"]["status"] == "ok"
+    assert not (out / "west-230").exists()
+    assert {r["line"] for r in _rows(out / "work_list.csv")} == {"north-230", "south-230"}
+
+
+@pytest.mark.parametrize("extra, problem", [
+    ('[[line]]\nname = "north-230"\nclouds = "north"\nvoltage_kv = 115\n', "listed twice"),
+    ('[[line]]\nname = "east"\nclouds = "nowhere.laz"\nvoltage_kv = 115\n', "does not exist"),
+    ('[[line]]\nname = "east"\nclouds = "north"\n', "give line_file or voltage_kv"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage = 115\n', "unknown key(s) voltage"),
+    ('[[line]]\nname = "../east"\nclouds = "north"\nvoltage_kv = 115\n', "name must be"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = -5\n', "positive number"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = 115\ntiled = "yes"\n',
+     "true or false"),
+    ('[[line]\n', "is not valid TOML"),
+])
+def test_bad_manifests_are_refused_before_any_work(tmp_path, capsys, extra, problem):
+    manifest = _manifest(tmp_path, extra)
+    out = tmp_path / "out"
+    assert main(["network", str(manifest), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and str(manifest) in err[0] and problem in err[0], err
+    assert not out.exists()
+    assert main(["network", str(tmp_path / "missing.toml"), "--out", str(out)]) == 2
+    assert "does not exist" in capsys.readouterr().err
+
+
+def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, tmp_path):
+    out_threads, _ = network_run
+    manifest = _manifest(tmp_path)
+    out = tmp_path / "out"
+    assert main(["network", str(manifest), "--out", str(out), "--no-report",
+                 "--workers", "1"]) == 0
+    record = json.loads((out / "network.json").read_text())
+    assert record["options"]["workers"] == 1
+    for name in ("north-230", "south-230"):
+        run = json.loads((out / name / "run.json").read_text())
+        assert run["execution"]["engine"] == "dask"
+        assert run["options"]["scheduler"]  # the one cluster's address, shared by the lines
+    south = json.loads((out / "south-230" / "run.json").read_text())
+    north = json.loads((out / "north-230" / "run.json").read_text())
+    assert south["options"]["scheduler"] == north["options"]["scheduler"]
+    # the tiled line equals its in-process run; the work list too, where the tiled
+    # line's findings come from
+    for f in ("violations.csv", "hazard_trees.csv", "spans.csv"):
+        assert (out / "south-230" / f).read_bytes() == (out_threads / "south-230" / f).read_bytes()
