@@ -89,7 +89,7 @@ def cmd_network(args: argparse.Namespace) -> int:
     result = run_network(args.manifest, args.out, workers=args.workers, scheduler=args.scheduler,
                          threads=args.threads, skip_report=args.no_report,
                          overwrite=args.overwrite, units=args.units, console=console)
-    print_network_summary(console, result)
+    print_network_summary(console, result, args.units)
     # the lines that failed were named on stderr as they failed; the others are complete
     if result["bad_input"]:
         return EXIT_INPUT
@@ -256,6 +256,10 @@ def main(argv: list[str] | None = None) -> int:
     # we turn into InputError) stay quiet unless -v.
     logging.basicConfig(level=logging.INFO if args.verbose else logging.ERROR,
                         format="%(levelname)s %(name)s: %(message)s")
+    # libraries that set their own loggers' levels (Dask's scheduler and workers log at INFO)
+    # reach this handler too: it drops what is below the chosen level
+    for handler in logging.getLogger().handlers:
+        handler.setLevel(logging.INFO if args.verbose else logging.ERROR)
     if not args.verbose:
         logging.getLogger("laspy").setLevel(logging.CRITICAL)
         logging.getLogger("clearaudit").setLevel(logging.CRITICAL)

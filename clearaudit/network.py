@@ -27,6 +27,7 @@ import csv
 import datetime as _dt
 import heapq
 import json
+import math
 import re
 import sys
 import time
@@ -37,11 +38,14 @@ from typing import Any
 
 from . import CAUTION, __version__
 from .errors import ClearauditError, InputError
+from .io.las import resolve_inputs
 
 #: Keys a ``[[line]]`` table may hold.
 LINE_KEYS = ("name", "clouds", "line_file", "structures", "voltage_kv", "crs", "trust_classes",
              "tiled")
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+#: The network's own files: no line may be named like one of them.
+NETWORK_FILES = ("lines.csv", "work_list.csv", "work_list.geojson", "network.json")
 
 
 @dataclass
@@ -83,10 +87,19 @@ def load_manifest(path: str | Path) -> Manifest:
         raise InputError(path, f"unknown table(s) {', '.join(unknown)} (expected [network] and "
                                "[[line]])")
     tables = data.get("line")
+    if isinstance(tables, dict):
+        raise InputError(path, "line must be an array of tables: write [[line]], not [line]")
     if not isinstance(tables, list) or not tables:
         raise InputError(path, "lists no [[line]] tables")
     network = data.get("network", {})
-    name = network.get("name", path.stem) if isinstance(network, dict) else path.stem
+    if not isinstance(network, dict):
+        raise InputError(path, "network must be a table: [network] with name = \"...\"")
+    if set(network) - {"name"}:
+        raise InputError(path, f"[network]: unknown key(s) "
+                               f"{', '.join(sorted(set(network) - {'name'}))} (allowed: name)")
+    name = network.get("name", path.stem)
+    if not isinstance(name, str) or not name.strip():
+        raise InputError(path, "[network]: name must be non-empty text")
     lines: list[NetworkLine] = []
     seen: set[str] = set()
     for k, t in enumerate(tables, start=1):
@@ -102,6 +115,9 @@ def load_manifest(path: str | Path) -> Manifest:
             raise InputError(path, f"{where}: name must be 1-100 letters, digits, '.', '_' or "
                                    f"'-' starting with a letter or digit, not {line_name!r}")
         where = f"line {line_name!r}"
+        if line_name.lower() in NETWORK_FILES:
+            raise InputError(path, f"{where}: the name of one of the network's own files "
+                                   f"({', '.join(NETWORK_FILES)}); choose another")
         if line_name.lower() in seen:
             raise InputError(path, f"{where} is listed twice (names must differ, ignoring case)")
         seen.add(line_name.lower())
@@ -115,6 +131,10 @@ def load_manifest(path: str | Path) -> Manifest:
         for c in cloud_paths:
             if not c.exists():
                 raise InputError(path, f"{where}: cloud {c} does not exist")
+        try:  # the files themselves (a folder holds LAS/LAZ files, each starts like one)
+            resolve_inputs(cloud_paths)
+        except InputError as exc:
+            raise InputError(path, f"{where}: {exc}") from None
         entry = NetworkLine(name=line_name, clouds=cloud_paths)
         for key in ("line_file", "structures"):
             value = t.get(key)
@@ -125,8 +145,10 @@ def load_manifest(path: str | Path) -> Manifest:
             setattr(entry, key, base / value)
         if "voltage_kv" in t:
             v = t["voltage_kv"]
-            if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
-                raise InputError(path, f"{where}: voltage_kv must be a positive number [kV]")
+            if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0 or \
+                    not math.isfinite(v):
+                raise InputError(path, f"{where}: voltage_kv must be a positive, finite "
+                                       "number [kV]")
             entry.voltage_kv = float(v)
         if entry.line_file is None and entry.voltage_kv is None:
             raise InputError(path, f"{where}: give line_file or voltage_kv")
@@ -138,6 +160,14 @@ def load_manifest(path: str | Path) -> Manifest:
         if "crs" in t:
             if not isinstance(t["crs"], str):
                 raise InputError(path, f"{where}: crs must be text such as \"EPSG:32617\"")
+            from pyproj import CRS
+            from pyproj.exceptions import CRSError
+
+            try:
+                CRS.from_user_input(t["crs"])
+            except CRSError:
+                raise InputError(path, f"{where}: crs {t['crs']!r} is not a coordinate "
+                                       "reference system pyproj knows") from None
             entry.crs = t["crs"]
         lines.append(entry)
     return Manifest(path=path, name=str(name), lines=lines)
@@ -182,7 +212,9 @@ def network_work_list(folders: dict[str, Path]) -> tuple[list[str], list[dict[st
     between lines the more urgent finding (:func:`work_key`; then the line name) comes first.
     Returns the columns (``network_priority``, ``line``, then the lines' own columns) and rows.
     """
-    columns: list[str] = []
+    from .outputs import VIOLATION_COLUMNS, VIOLATION_EXTRA_COLUMNS
+
+    columns: list[str] = list(VIOLATION_COLUMNS + VIOLATION_EXTRA_COLUMNS)
     per_line = []
     for name, folder in sorted(folders.items()):
         parts = []
@@ -256,15 +288,30 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
     Lines run one after the other, each with all of the engine's workers; with ``workers``
     one local Dask cluster serves every line.
     """
-    from .pipeline import AuditOptions, atomic_output_dir, package_versions, run_audit
+    from types import SimpleNamespace
+
+    from .distributed import check_engine
+    from .pipeline import (
+        AuditOptions,
+        atomic_output_dir,
+        package_versions,
+        refuse_out_over_inputs,
+        run_audit,
+    )
 
     manifest = load_manifest(manifest_path)
     out = Path(out)
-    if workers and scheduler:
-        raise InputError("--scheduler", "give either --workers (local cluster) or --scheduler "
-                                        "(an existing one), not both")
-    if workers < 0:
-        raise InputError("--workers", f"must be 0 (in-process) or a positive count, not {workers}")
+    # the engine's options once, before anything is written (not once per line)
+    if not isinstance(threads, int) or threads < 0:
+        raise InputError("--threads", f"must be 0 (every core) or a positive count, not {threads}")
+    if threads and (workers or scheduler):
+        raise InputError("--threads", "applies to the in-process runs; with --workers or "
+                                      "--scheduler each Dask worker runs one task at a time")
+    if workers or scheduler:
+        check_engine(SimpleNamespace(workers=workers, scheduler=scheduler))
+    refuse_out_over_inputs(out, [manifest.path] + [p for line in manifest.lines for p in
+                                                   (*line.clouds, line.line_file, line.structures)
+                                                   if p is not None])
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     cluster = None
     rows: list[dict[str, Any]] = []
@@ -335,30 +382,37 @@ def _sha256(path: Path) -> str:
     return file_sha256(path)
 
 
-def print_network_summary(console: Any, result: dict) -> None:
+def print_network_summary(console: Any, result: dict, units: str = "metric") -> None:
     from rich.table import Table
+
+    from .units import FOOT_M
+
+    f, u = (1.0, "m") if units == "metric" else (1.0 / FOOT_M, "ft")
+
+    def length(text: Any) -> str:
+        value = _float(str(text)) if text not in (None, "") else None
+        return "" if value is None else f"{value * f:.2f}"
 
     table = Table(title=f"{result['name']}: {len(result['lines'])} lines", title_justify="left")
     for col, justify in (("line", "left"), ("status", "left"), ("spans", "right"),
                          ("violations", "right"), ("now", "right"), ("hazard trees", "right"),
-                         ("largest deficit m", "right")):
+                         (f"largest deficit {u}", "right")):
         table.add_column(col, justify=justify, no_wrap=True)
     for r in result["lines"]:
         table.add_row(r["line"], r["status"], str(r.get("spans", "")), str(r.get("violations", "")),
                       str(r.get("violations_at_survey", "")), str(r.get("hazard_trees", "")),
-                      str(r.get("largest_deficit_m", "")))
+                      length(r.get("largest_deficit_m")))
     console.print(table)
     work = result["work_list"]
     if work:
         t = Table(title=f"{len(work)} findings across the network, most urgent first (all in "
                         "work_list.csv)", title_justify="left")
-        for col in ("#", "line", "kind", "case", "span", "wire", "short m", "finding"):
+        for col in ("#", "line", "kind", "case", "span", "wire", f"short {u}", "finding"):
             t.add_column(col, no_wrap=True)
         for r in work[:10]:
             t.add_row(r["network_priority"], r["line"], r.get("kind", ""), r.get("condition", ""),
-                      r.get("span_id", ""), r.get("wire_id", ""),
-                      f"{float(r['deficit_m']):.2f}" if _float(r.get("deficit_m")) is not None
-                      else "", r.get("finding", ""))
+                      r.get("span_id", ""), r.get("wire_id", ""), length(r.get("deficit_m")),
+                      r.get("finding", ""))
         console.print(t)
     console.print(f"Results in {result['out']}/ (lines.csv, work_list.csv, work_list.geojson, "
                   "network.json, one audit folder per line)")

@@ -24,7 +24,7 @@ import shutil
 import sys
 import tempfile
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import partial
@@ -136,17 +136,41 @@ def package_versions() -> dict[str, str]:
 
 # ------------------------------------------------------------------------------ output folder
 
+#: Files that mark a folder as an earlier output (of ``audit`` or of ``network``).
+OUTPUT_MARKERS = ("run.json", "network.json")
+
+
+def refuse_out_over_inputs(out: Path, inputs: Iterable[str | Path]) -> None:
+    """The output folder is replaced whole (``--overwrite``): refuse one that is, or holds,
+    an input (InputError naming ``--out``)."""
+    target = Path(out).resolve()
+    for p in inputs:
+        q = Path(p).resolve()
+        if q == target or target in q.parents:
+            raise InputError("--out", f"{out} holds the input {p}; write the results to "
+                                      "another folder")
+
+
 @contextmanager
 def atomic_output_dir(out: Path, overwrite: bool):
     """Yield a temporary folder beside ``out``; move it into place only on success."""
-    out = Path(out)
+    out = Path(out).resolve()  # "." or "dir/.." name their folder
     if out.exists() and not out.is_dir():
         raise InputError(out, "output path exists and is not a folder")
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise InputError(out, "output folder already exists and is not empty "
-                              "(use --overwrite to replace it)")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    if out.exists() and any(out.iterdir()):
+        if not overwrite:
+            raise InputError(out, "output folder already exists and is not empty "
+                                  "(use --overwrite to replace it)")
+        # --overwrite replaces the folder whole: only an earlier output of this tool
+        if not any((out / name).is_file() for name in OUTPUT_MARKERS):
+            raise InputError(out, "is not an earlier clearaudit output folder (it holds no "
+                                  f"{' or '.join(OUTPUT_MARKERS)}), and --overwrite replaces "
+                                  "the whole folder: choose a new or empty folder")
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    except OSError as exc:
+        raise InputError(out, f"cannot be created ({exc.strerror or exc})") from None
     try:
         yield tmp
     except BaseException:
@@ -256,6 +280,9 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
 
         rules = load_rule_set(config.line.rule_set, config.clearance,
                               base_dir=config.source.parent if config.source else None)
+        refuse_out_over_inputs(options.out, [*paths, *([config.source] if config.source else []),
+                                             *([config.structures_file]
+                                               if config.structures_file else [])])
         record.inputs = [{"path": str(p), "bytes": p.stat().st_size} for p in paths]
         if config.source:
             record.inputs.append({"path": str(config.source), "sha256": file_sha256(config.source),

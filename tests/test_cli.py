@@ -92,6 +92,12 @@ def test_audit_bad_crs_and_existing_output(tmp_path):
     r = run_cli("audit", str(laz), "--voltage-kv", "150", "--out", str(existing))
     assert r.returncode == 2 and "already exists" in r.stderr
     assert (existing / "keep.txt").read_text() == "mine"
+    # --overwrite replaces a folder whole: only an earlier output (run.json), never a folder
+    # of the user's own files (e.g. --out . in a working folder)
+    r = run_cli("audit", str(laz), "--voltage-kv", "150", "--out", str(existing), "--overwrite")
+    assert r.returncode == 2 and "is not an earlier clearaudit output folder" in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert (existing / "keep.txt").read_text() == "mine"
 
 
 def test_audit_needs_voltage(tmp_path):

@@ -144,12 +144,19 @@ line_file = "west/west.line.toml"
     ('[[line]]\nname = "east"\nclouds = "north"\n', "give line_file or voltage_kv"),
     ('[[line]]\nname = "east"\nclouds = "north"\nvoltage = 115\n', "unknown key(s) voltage"),
     ('[[line]]\nname = "../east"\nclouds = "north"\nvoltage_kv = 115\n', "name must be"),
-    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = -5\n', "positive number"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = -5\n', "positive, finite"),
     ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = 115\ntiled = "yes"\n',
      "true or false"),
     ('[[line]\n', "is not valid TOML"),
+    ('[[line]]\nname = "Lines.csv"\nclouds = "north"\nvoltage_kv = 115\n', "own files"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = inf\n', "positive, finite"),
+    ('[[line]]\nname = "east"\nclouds = "empty"\nvoltage_kv = 115\n', "no .las or .laz"),
+    ('[[line]]\nname = "east"\nclouds = "north"\nvoltage_kv = 115\ncrs = "EPSG:0"\n',
+     "not a coordinate reference system"),
+    ('[network.more]\nx = 1\n', "[network]: unknown key(s) more"),
 ])
 def test_bad_manifests_are_refused_before_any_work(tmp_path, capsys, extra, problem):
+    (tmp_path / "empty").mkdir()
     manifest = _manifest(tmp_path, extra)
     out = tmp_path / "out"
     assert main(["network", str(manifest), "--out", str(out)]) == 2
@@ -179,3 +186,40 @@ def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, 
     # line's findings come from
     for f in ("violations.csv", "hazard_trees.csv", "spans.csv"):
         assert (out / "south-230" / f).read_bytes() == (out_threads / "south-230" / f).read_bytes()
+
+
+def test_engine_options_and_out_are_checked_once_before_any_work(tmp_path, capsys):
+    manifest = _manifest(tmp_path)
+    out = tmp_path / "out"
+    for args, problem in (
+            (["--threads", "-3"], "--threads: must be 0"),
+            (["--workers", "1", "--threads", "2"], "--threads: applies to the in-process"),
+            (["--workers", "1", "--scheduler", "tcp://127.0.0.1:9"], "not both")):
+        assert main(["network", str(manifest), "--out", str(out), *args]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and problem in err[0], err
+        assert not out.exists()
+    # --overwrite replaces the whole folder: never one that holds the inputs
+    assert main(["network", str(manifest), "--out", str(tmp_path), "--overwrite"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--out:" in err[0] and "holds the input" in err[0]
+    assert manifest.exists() and (tmp_path / "north" / "north.laz").exists()
+    # the same guard for a single audit
+    assert main(["audit", str(tmp_path / "north" / "north.laz"), "--line",
+                 str(tmp_path / "north" / "north.line.toml"), "--out", str(tmp_path / "north"),
+                 "--overwrite"]) == 2
+    assert "holds the input" in capsys.readouterr().err
+    assert (tmp_path / "north" / "north.laz").exists()
+    # an output folder that cannot be made (its parent is a file): one line, no traceback
+    (tmp_path / "afile").write_text("x")
+    assert main(["network", str(manifest), "--out", str(tmp_path / "afile" / "out")]) == 2
+    assert "cannot be created" in capsys.readouterr().err
+
+
+def test_work_list_keeps_its_columns_when_no_line_has_findings(tmp_path):
+    from clearaudit.network import network_work_list
+    from clearaudit.outputs import VIOLATION_COLUMNS
+
+    columns, rows = network_work_list({})
+    assert rows == [] and columns[:2] == ["network_priority", "line"]
+    assert columns[2:2 + len(VIOLATION_COLUMNS)] == VIOLATION_COLUMNS

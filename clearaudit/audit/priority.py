@@ -316,8 +316,8 @@ def _tier(row: dict) -> int:
 def finding_key(row: dict) -> tuple:
     """Urgency order of a finding (smaller first): violations now, then at MOT and in wind,
     then under ice, then findings within their requirement, then fall-in risks; within a
-    tier the larger deficit (to the millimetre) first, blown-in or fall-in trees after the
-    others, the sooner grow-in first; then span and wire."""
+    tier the larger deficit (to the millimetre) first, then fall-in risks before the others,
+    the sooner grow-in first; then span and wire."""
     grow = row.get("grow_in_years")
     return (_tier(row), -round(float(row["deficit_m"]), 3), not bool(row.get("fall_in")),
             np.inf if grow is None else float(grow), str(row.get("span_id")),
