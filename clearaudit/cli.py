@@ -88,7 +88,8 @@ def cmd_network(args: argparse.Namespace) -> int:
     console = _console()
     result = run_network(args.manifest, args.out, workers=args.workers, scheduler=args.scheduler,
                          threads=args.threads, skip_report=args.no_report,
-                         overwrite=args.overwrite, units=args.units, console=console)
+                         overwrite=args.overwrite, units=args.units, work_dir=args.work_dir,
+                         console=console)
     print_network_summary(console, result, args.units)
     # the lines that failed were named on stderr as they failed; the others are complete
     if result["bad_input"]:
@@ -210,6 +211,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="threads of the in-process runs (default 0: every core)")
     p.add_argument("--units", choices=("metric", "imperial"), default="metric",
                    help="unit system of the reports and terminal summaries")
+    p.add_argument("--work-dir", metavar="DIR",
+                   help="folder for the lines' temporary tile files (default: inside the output "
+                        "folder while it is written; with --scheduler, storage every worker "
+                        "shares)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--no-report", action="store_true", help="skip the HTML reports")
     p.set_defaults(func=cmd_network)

@@ -280,7 +280,8 @@ LINE_COLUMNS = ["line", "status", "line_name", "voltage_kv", "spans", "wire_span
 # ------------------------------------------------------------------------------------- the run
 def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                 scheduler: str | None = None, threads: int = 0, skip_report: bool = False,
-                overwrite: bool = False, units: str = "metric", console: Any = None) -> dict:
+                overwrite: bool = False, units: str = "metric", work_dir: str | Path | None = None,
+                console: Any = None) -> dict:
     """Audit every line of a manifest into ``out/<line name>/`` and write the network files.
 
     Returns a dict with ``lines`` (the rows of lines.csv), ``failed`` (names; ``bad_input``
@@ -334,7 +335,8 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                     crs=line.crs, voltage_kv=line.voltage_kv, units=units,
                     trust_classes=line.trust_classes, structures_file=line.structures,
                     scheduler=address, threads=0 if address else threads,
-                    skip_report=skip_report, tiled=line.tiled)
+                    skip_report=skip_report, tiled=line.tiled,
+                    work_dir=None if work_dir is None else Path(work_dir))
                 try:
                     run_audit(options, console=console, show_summary=False)
                 except ClearauditError as exc:  # bad input, or a stage that cannot finish
@@ -366,7 +368,8 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
             "manifest": {"path": str(manifest.path), "name": manifest.name,
                          "sha256": _sha256(manifest.path)},
             "options": {"workers": workers, "scheduler": scheduler, "threads": threads,
-                        "skip_report": skip_report, "units": units},
+                        "skip_report": skip_report, "units": units,
+                        "work_dir": None if work_dir is None else str(work_dir)},
             "packages": package_versions(), "python": sys.version.split()[0],
             "lines": rows, "failed": failed, "work_list_rows": len(work),
             "ranking": "each line's findings in their own priority order, merged across lines "

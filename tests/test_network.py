@@ -171,10 +171,12 @@ def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, 
     out_threads, _ = network_run
     manifest = _manifest(tmp_path)
     out = tmp_path / "out"
+    work = tmp_path / "shared-work"
     assert main(["network", str(manifest), "--out", str(out), "--no-report",
-                 "--workers", "1"]) == 0
+                 "--workers", "1", "--work-dir", str(work)]) == 0
     record = json.loads((out / "network.json").read_text())
-    assert record["options"]["workers"] == 1
+    assert record["options"]["workers"] == 1 and record["options"]["work_dir"] == str(work)
+    assert work.is_dir() and list(work.iterdir()) == []  # each line's tile files removed
     for name in ("north-230", "south-230"):
         run = json.loads((out / name / "run.json").read_text())
         assert run["execution"]["engine"] == "dask"
