@@ -350,6 +350,40 @@ def test_corridor_mask_matches_shapely_distance():
         corridor_mask(line, -1.0)
 
 
+def test_read_range_compiled_corridor_pass_equals_the_numpy_form():
+    # reference: the same corridor through the numpy path (a keep callable without the
+    # compiled raster), and shapely's distances for the kept points. Local origin away from
+    # the files' offsets (a shift with a remainder), a corridor that cuts through the points.
+    from clearaudit.io.las import read_range, read_setup
+
+    shapely = pytest.importorskip("shapely")
+    path = Path(__file__).resolve().parents[1] / "sample_clouds" / "tarnwick_velloran_230kv.laz"
+    setup = read_setup([path], origin=(506_300.123, 3_942_000.456, 200.0))
+    lo, hi = setup.header_min, setup.header_max
+    mid = 0.5 * (lo + hi)
+    line = np.array([[lo[0] + 40.0, mid[1] - 100.0], [mid[0], mid[1] + 30.0],
+                     [hi[0] - 30.0, mid[1] - 10.0]]) + setup.origin[:2]
+    keep = corridor_mask(line, 35.0)
+    assert keep.raster is not None
+
+    def plain(xy):  # the same test, by the numpy form
+        return keep(xy)
+
+    for chunk in (1000, 37_000):
+        fast = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=chunk))
+        slow = list(read_range(setup, 0, 5, None, keep=plain, chunk_size=chunk))
+        assert len(fast) == len(slow) > 1
+        for a, b in zip(fast, slow, strict=True):
+            for u, v in zip(a[:3], b[:3], strict=True):
+                np.testing.assert_array_equal(u, v)
+            assert a[3] == b[3]
+    xyz = np.concatenate([c[0] for c in fast])
+    assert 0 < len(xyz) < setup.total_points
+    dist = shapely.distance(shapely.points(xyz[:, :2] + setup.origin[:2]),
+                            shapely.LineString(line))
+    assert np.all(dist <= 35.0 + 1e-9)
+
+
 # ----------------------------------------------------------------------------- bad inputs
 def test_missing_file(tmp_path):
     with pytest.raises(InputError) as err:

@@ -610,3 +610,49 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
         if j > n1 - 1:
             j = n1 - 1
         out[k] = state[i * n1 + j]
+
+
+def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx, double rx,
+                   int64_t ky, double sy, double ry, double ox, double oy, double lo0,
+                   double lo1, double hi0, double hi1, double cell, int64_t n0, int64_t n1,
+                   const unsigned char[::1] cell_state, double[::1] local_x, double[::1] local_y,
+                   unsigned char[::1] state):
+    """Local coordinates of LAS integer records and their corridor raster state, one pass.
+
+    ``local = (X - k) * scale (+ r)`` per axis, as :meth:`clearaudit.io.las._Shift.local`;
+    the CRS position ``local + origin`` is tested against the corridor's box and raster
+    (:func:`clearaudit.io.las.corridor_mask`): ``state`` 0 outside the box or in a dropped
+    cell, 1 in a kept cell, 2 in a cell whose points need the exact test — the same
+    roundings as the numpy form.
+    """
+    cdef Py_ssize_t n = X.shape[0], i
+    cdef double x, y, cx, cy, t, u
+    cdef int64_t a, b
+    if Y.shape[0] != n or local_x.shape[0] != n or local_y.shape[0] != n or \
+            state.shape[0] != n or n0 < 1 or n1 < 1 or cell_state.shape[0] != n0 * n1:
+        raise ValueError("corridor_local: mismatched array shapes")
+    if not cell > 0:
+        raise ValueError("corridor_local: the cell size must be positive")
+    for i in range(n):
+        x = <double>(<int64_t>X[i] - kx) * sx
+        if rx != 0.0:
+            x = x + rx
+        y = <double>(<int64_t>Y[i] - ky) * sy
+        if ry != 0.0:
+            y = y + ry
+        local_x[i] = x
+        local_y[i] = y
+        cx = x + ox
+        cy = y + oy
+        if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
+            state[i] = 0
+            continue
+        t = (cx - lo0) / cell
+        u = (cy - lo1) / cell
+        a = <int64_t>t
+        b = <int64_t>u
+        if a > n0 - 1:
+            a = n0 - 1
+        if b > n1 - 1:
+            b = n1 - 1
+        state[i] = cell_state[a * n1 + b]

@@ -842,14 +842,35 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
                 raise InputError(path, f"is truncated or corrupt (header says {count} points, "
                                        f"{position} could be read)")
             _keep_records(records_to, chunk)
-            local_x = shift.local(np.asarray(chunk.X), 0)
-            local_y = shift.local(np.asarray(chunk.Y), 1)
             index = np.arange(position, position + m, dtype=np.int64)
-            if keep is not None:
-                xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
-                sel = np.flatnonzero(_call_keep(keep, xy_crs))
+            raster = getattr(keep, "raster", None)
+            if raster is not None:
+                # a corridor: local x, y and each point's raster state in one compiled pass;
+                # only the points of straddling cells get the exact test (the same values
+                # and the same kept points as the numpy form below)
+                from ..classify.kernels import corridor_local
+
+                local_x, local_y = np.empty(m), np.empty(m)
+                state = np.empty(m, dtype=np.uint8)
+                corridor_local(np.asarray(chunk.X), np.asarray(chunk.Y),
+                               int(shift.k[0]), float(shift.scale[0]), float(shift.r[0]),
+                               int(shift.k[1]), float(shift.scale[1]), float(shift.r[1]),
+                               float(origin[0]), float(origin[1]), *raster,
+                               local_x, local_y, state)
+                test = np.flatnonzero(state == 2)
+                if len(test):
+                    xy_test = np.column_stack((local_x[test] + origin[0],
+                                               local_y[test] + origin[1]))
+                    state[test[keep.exact(xy_test, np.arange(len(test)))]] = 1
+                sel = np.flatnonzero(state == 1)
             else:
-                sel = slice(None)
+                local_x = shift.local(np.asarray(chunk.X), 0)
+                local_y = shift.local(np.asarray(chunk.Y), 1)
+                if keep is not None:
+                    xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
+                    sel = np.flatnonzero(_call_keep(keep, xy_crs))
+                else:
+                    sel = slice(None)
             local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
             xyz = np.empty((len(local_z), 3), dtype=np.float64)
             xyz[:, 0] = local_x[sel] * unit[0]
@@ -999,6 +1020,13 @@ def corridor_mask(
         del state
         if len(inside) == 0:
             return mask
+        mask[inside] = exact(xy, inside)
+        return mask
+
+    def exact(xy: np.ndarray, inside: np.ndarray) -> np.ndarray:
+        """Whether each point ``xy[inside]`` (inside the box) lies within the buffer: the
+        per-segment distances, for the points of the raster cells that straddle it."""
+        x, y = xy[:, 0], xy[:, 1]
         s = np.take(x if axis == 0 else y, inside)
         s -= all_lo[axis]
         s *= per_unit
@@ -1043,9 +1071,15 @@ def corridor_mask(
             dx += dy
             in_box &= dx <= b2
             best[i0:i1] |= in_box
-        mask[inside] = best
-        return mask
+        out = np.empty(len(best), dtype=bool)
+        out[order] = best  # the points were visited bucket by bucket
+        return out
 
+    # for readers that test the raster in a compiled pass (read_range): the box, the raster
+    # and the exact test of the straddling cells' points
+    keep.raster = (float(all_lo[0]), float(all_lo[1]), float(all_hi[0]), float(all_hi[1]),
+                   float(cell), int(n_cells[0]), int(n_cells[1]), cell_state)
+    keep.exact = exact
     return keep
 
 
