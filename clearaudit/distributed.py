@@ -326,26 +326,36 @@ class DaskEngine(Engine):
 
 
 def check_engine(options: Any) -> None:
-    """Check ``--workers`` / ``--scheduler`` before any heavy work (InputError when bad).
+    """Check ``--threads``, ``--workers`` and ``--scheduler`` before any heavy work (InputError
+    when bad).
 
     Parameters
     ----------
     options
-        :class:`clearaudit.pipeline.AuditOptions` (``workers``, ``scheduler``).
+        Anything with ``threads``, ``workers`` and ``scheduler`` (as
+        :class:`clearaudit.pipeline.AuditOptions`).
 
     Raises
     ------
     InputError
-        Negative worker count, both options at once, Dask not installed, or a scheduler
-        address that cannot be reached.
+        A negative thread or worker count, threads with a Dask engine, both Dask options at
+        once, Dask not installed, or a scheduler address that cannot be reached.
     """
+    threads = getattr(options, "threads", 0)
     workers = int(getattr(options, "workers", 0) or 0)
     scheduler = getattr(options, "scheduler", None)
+    if not isinstance(threads, int) or threads < 0:
+        raise InputError("--threads", f"must be 0 (every core) or a positive count, not {threads}")
+    if threads and (workers or scheduler):
+        raise InputError("--threads", "applies to the in-process run; with --workers or "
+                                      "--scheduler each Dask worker runs one task at a time")
     if workers < 0:
         raise InputError("--workers", f"must be 0 (in-process) or a positive count, not {workers}")
     if workers and scheduler:
         raise InputError("--scheduler", "give either --workers (local cluster) or --scheduler "
                                         "(existing cluster), not both")
+    if not (workers or scheduler):
+        return
     try:
         import distributed  # noqa: F401
     except ImportError:

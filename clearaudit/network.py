@@ -38,7 +38,7 @@ from typing import Any
 
 from . import CAUTION, __version__
 from .errors import ClearauditError, InputError
-from .io.las import resolve_inputs
+from .io.las import file_sha256, resolve_inputs
 
 #: Keys a ``[[line]]`` table may hold.
 LINE_KEYS = ("name", "clouds", "line_file", "structures", "voltage_kv", "crs", "trust_classes",
@@ -205,7 +205,18 @@ def _read_rows(path: Path) -> tuple[list[str], list[dict[str, str]]]:
         return list(reader.fieldnames or []), list(reader)
 
 
-def network_work_list(folders: dict[str, Path]) -> tuple[list[str], list[dict[str, str]]]:
+#: One line's findings as read from its folder: the files' columns, violations, hazard trees.
+Findings = tuple[list[str], list[dict[str, str]], list[dict[str, str]]]
+
+
+def read_findings(folder: Path) -> Findings:
+    """A line folder's violations.csv and hazard_trees.csv (read once for both network files)."""
+    columns, violations = _read_rows(folder / "violations.csv")
+    more, trees = _read_rows(folder / "hazard_trees.csv")
+    return columns + [c for c in more if c not in columns], violations, trees
+
+
+def network_work_list(findings: dict[str, Findings]) -> tuple[list[str], list[dict[str, str]]]:
     """Every line's violations and hazard trees in one list, ranked across the network.
 
     Each line's findings keep their own order (its ``priority``): the lists are merged, and
@@ -216,12 +227,11 @@ def network_work_list(folders: dict[str, Path]) -> tuple[list[str], list[dict[st
 
     columns: list[str] = list(VIOLATION_COLUMNS + VIOLATION_EXTRA_COLUMNS)
     per_line = []
-    for name, folder in sorted(folders.items()):
+    for name, (cols, violations, trees) in sorted(findings.items()):
+        columns += [c for c in cols if c not in columns]
         parts = []
-        for file in ("violations.csv", "hazard_trees.csv"):
-            cols, got = _read_rows(folder / file)
-            columns += [c for c in cols if c not in columns]
-            got.sort(key=lambda r: int(r.get("priority") or 0))  # the line's own order
+        for got in (violations, trees):
+            got = sorted(got, key=lambda r: int(r.get("priority") or 0))  # the line's own order
             parts.append([(work_key(r), r) for r in got])
         # the line's two files merged (each keeps its order), then tagged for the network merge
         merged = heapq.merge(*parts, key=lambda e: e[0])
@@ -252,7 +262,9 @@ def _work_geojson(path: Path, rows: list[dict[str, str]]) -> None:
 
 
 def _line_row(line: NetworkLine, status: str, seconds: float, folder: Path | None,
-              error: str = "") -> dict[str, Any]:
+              error: str = "", findings: Findings = ([], [], [])) -> dict[str, Any]:
+    """A row of lines.csv: ``folder`` and its ``findings`` (:func:`read_findings`) for a
+    line that ran, None and the ``error`` for one that failed."""
     row: dict[str, Any] = {"line": line.name, "status": status, "seconds": round(seconds, 1),
                            "folder": "" if folder is None else line.name, "error": error}
     if folder is None:
@@ -260,8 +272,7 @@ def _line_row(line: NetworkLine, status: str, seconds: float, folder: Path | Non
     run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
     cfg = run.get("options", {}).get("line_config", {}).get("line", {})
     _, spans = _read_rows(folder / "spans.csv")
-    _, viol = _read_rows(folder / "violations.csv")
-    _, trees = _read_rows(folder / "hazard_trees.csv")
+    _, viol, trees = findings
     deficits = [d for d in (_float(r.get("deficit_m")) for r in viol) if d is not None]
     row.update({"line_name": cfg.get("name", ""), "voltage_kv": cfg.get("voltage_kv", ""),
                 "spans": len({r.get("span_id") for r in spans}), "wire_spans": len(spans),
@@ -303,19 +314,14 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
     manifest = load_manifest(manifest_path)
     out = Path(out)
     # the engine's options once, before anything is written (not once per line)
-    if not isinstance(threads, int) or threads < 0:
-        raise InputError("--threads", f"must be 0 (every core) or a positive count, not {threads}")
-    if threads and (workers or scheduler):
-        raise InputError("--threads", "applies to the in-process runs; with --workers or "
-                                      "--scheduler each Dask worker runs one task at a time")
-    if workers or scheduler:
-        check_engine(SimpleNamespace(workers=workers, scheduler=scheduler))
+    check_engine(SimpleNamespace(threads=threads, workers=workers, scheduler=scheduler))
     refuse_out_over_inputs(out, [manifest.path] + [p for line in manifest.lines for p in
                                                    (*line.clouds, line.line_file, line.structures)
                                                    if p is not None])
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     cluster = None
     rows: list[dict[str, Any]] = []
+    findings: dict[str, Findings] = {}
     failed: list[str] = []
     bad_input: list[str] = []
     with atomic_output_dir(out, overwrite) as tmp:
@@ -347,7 +353,9 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                                           str(exc)))
                     print(f"clearaudit: error: line {line.name!r}: {exc}", file=sys.stderr)
                     continue
-                rows.append(_line_row(line, "ok", time.perf_counter() - t0, tmp / line.name))
+                findings[line.name] = read_findings(tmp / line.name)
+                rows.append(_line_row(line, "ok", time.perf_counter() - t0, tmp / line.name,
+                                      findings=findings[line.name]))
                 if console is not None:
                     r = rows[-1]
                     console.print(f"{line.name}: {r['spans']} spans, {r['violations']} "
@@ -356,8 +364,7 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
         finally:
             if cluster is not None:
                 cluster.close()
-        folders = {r["line"]: tmp / r["line"] for r in rows if r["status"] == "ok"}
-        columns, work = network_work_list(folders)
+        columns, work = network_work_list(findings)
         _write_csv(tmp / "lines.csv", LINE_COLUMNS, rows)
         _write_csv(tmp / "work_list.csv", columns, work)
         _work_geojson(tmp / "work_list.geojson", work)
@@ -366,7 +373,7 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
             "caution": CAUTION, "started": started,
             "finished": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "manifest": {"path": str(manifest.path), "name": manifest.name,
-                         "sha256": _sha256(manifest.path)},
+                         "sha256": file_sha256(manifest.path)},
             "options": {"workers": workers, "scheduler": scheduler, "threads": threads,
                         "skip_report": skip_report, "units": units,
                         "work_dir": None if work_dir is None else str(work_dir)},
@@ -377,12 +384,6 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
         (tmp / "network.json").write_text(json.dumps(record, indent=1), encoding="utf-8")
     return {"out": out, "lines": rows, "failed": failed, "bad_input": bad_input,
             "work_list": work, "name": manifest.name}
-
-
-def _sha256(path: Path) -> str:
-    from .io.las import file_sha256
-
-    return file_sha256(path)
 
 
 def print_network_summary(console: Any, result: dict, units: str = "metric") -> None:

@@ -217,27 +217,18 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
     """Run the whole audit; returns the output folder path.
 
     ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
+    from .distributed import check_engine
     from .threads import run_threads
-
-    threads = options.threads
-    if not isinstance(threads, int) or threads < 0:
-        raise InputError("--threads", f"must be 0 (every core) or a positive count, not {threads}")
-    if threads and (options.workers or options.scheduler):
-        raise InputError("--threads", "applies to the in-process run; with --workers or "
-                                      "--scheduler each Dask worker runs one task at a time")
     from .tiling import small_pages
 
-    with run_threads(threads), small_pages():
+    check_engine(options)  # threads, workers, scheduler (it must answer) before any work
+    with run_threads(options.threads), small_pages():
         return _run_audit(options, console, show_summary)
 
 
 def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):
     record = RunRecord(command=sys.argv[:], options=options.to_dict(),
                        started=_dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"))
-    if options.workers or options.scheduler:
-        from .distributed import check_engine
-
-        check_engine(options)
     cluster = None
     if options.workers:
         # a local cluster starts (workers spawn and import) while the inputs are validated

@@ -583,6 +583,17 @@ def plane_solve(const double[:, ::1] sums, const double[::1] cnt, double min_poi
             coef[t, 0] = (a[0][3] - a[0][1] * coef[t, 1] - a[0][2] * coef[t, 2]) / a[0][0]
 
 
+cdef inline int64_t _raster_cell(double t, double u, int64_t n0, int64_t n1) noexcept nogil:
+    """The raster cell of a point at ``t``, ``u`` cells (>= 0) from the corner:
+    ``min(int(t), n0 - 1) * n1 + min(int(u), n1 - 1)``, numpy's truncation and clamp."""
+    cdef int64_t i = <int64_t>t, j = <int64_t>u
+    if i > n0 - 1:
+        i = n0 - 1
+    if j > n1 - 1:
+        j = n1 - 1
+    return i * n1 + j
+
+
 def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_ssize_t n0,
                  Py_ssize_t n1, const unsigned char[::1] state, unsigned char[::1] out):
     """``out[i] = state[c]`` for the raster cell ``c`` of point ``i`` (one pass).
@@ -593,7 +604,6 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
     """
     cdef Py_ssize_t n = xy.shape[0], k
     cdef double t, u
-    cdef int64_t i, j
     if xy.shape[1] < 2 or out.shape[0] != n or n0 < 1 or n1 < 1 or state.shape[0] != n0 * n1:
         raise ValueError("raster_state: mismatched array shapes")
     if not size > 0:
@@ -603,13 +613,7 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
         u = (xy[k, 1] - lo1) / size
         if not (t >= 0 and u >= 0 and t < 9.0e18 and u < 9.0e18):
             raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
-        i = <int64_t>t
-        j = <int64_t>u
-        if i > n0 - 1:
-            i = n0 - 1
-        if j > n1 - 1:
-            j = n1 - 1
-        out[k] = state[i * n1 + j]
+        out[k] = state[_raster_cell(t, u, n0, n1)]
 
 
 def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx, double rx,
@@ -626,8 +630,7 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
     roundings as the numpy form.
     """
     cdef Py_ssize_t n = X.shape[0], i
-    cdef double x, y, cx, cy, t, u
-    cdef int64_t a, b
+    cdef double x, y, cx, cy
     if Y.shape[0] != n or local_x.shape[0] != n or local_y.shape[0] != n or \
             state.shape[0] != n or n0 < 1 or n1 < 1 or cell_state.shape[0] != n0 * n1:
         raise ValueError("corridor_local: mismatched array shapes")
@@ -647,12 +650,5 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
         if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
             state[i] = 0
             continue
-        t = (cx - lo0) / cell
-        u = (cy - lo1) / cell
-        a = <int64_t>t
-        b = <int64_t>u
-        if a > n0 - 1:
-            a = n0 - 1
-        if b > n1 - 1:
-            b = n1 - 1
-        state[i] = cell_state[a * n1 + b]
+        # inside the box: both offsets >= 0 and finite
+        state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
