@@ -166,10 +166,10 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
     with tile threads a trim walks (and locks) the arenas the other tile is using, and the
     tiled run on 2 threads was 10 % slower (alternating runs); the stages still trim.
     """
-    from .tiling import release_free_memory, small_pages
+    from .tiling import release_free_memory, run_memory
 
     try:
-        with small_pages():
+        with run_memory():
             return fn(*args, **kwargs)
     finally:
         release_free_memory()

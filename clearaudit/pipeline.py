@@ -219,10 +219,10 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
     ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
     from .distributed import check_engine
     from .threads import run_threads
-    from .tiling import small_pages
+    from .tiling import run_memory
 
     check_engine(options)  # threads, workers, scheduler (it must answer) before any work
-    with run_threads(options.threads), small_pages():
+    with run_threads(options.threads), run_memory():
         return _run_audit(options, console, show_summary)
 
 
@@ -294,12 +294,14 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
             total_points > options.in_memory_max_points or \
             footprint_m2 > options.in_memory_max_footprint_m2
     from .threads import inner_threads
-    from .tiling import numpy_huge_page_requests
+    from .tiling import heap_kept, numpy_huge_page_requests
 
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "threads": inner_threads(),
                                  # numpy's transparent-huge-page requests (tiling.small_pages)
                                  "numpy_huge_page_requests": numpy_huge_page_requests(),
+                                 # glibc's freed blocks kept for reuse (tiling.kept_heap)
+                                 "heap_kept": heap_kept(),
                                  "header_points": total_points,
                                  "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:

@@ -38,6 +38,7 @@ import functools
 import math
 import os
 import pickle
+import platform
 import resource
 import threading
 import time
@@ -172,6 +173,84 @@ def _numpy_multiarray_attr(name: str):
         if hasattr(module, name):
             return getattr(module, name)
     return None
+
+
+#: glibc ``mallopt`` parameter numbers (malloc.h) and glibc's own starting values for them
+_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
+_GLIBC_START = {_M_TRIM_THRESHOLD: 128 * 1024, _M_MMAP_THRESHOLD: 128 * 1024}
+#: While a run lasts: blocks up to this size come from the heap, not from fresh mappings [B]
+KEPT_HEAP_MMAP_THRESHOLD = 1 << 30
+#: ... and the heap's free top is kept up to this size (the stages' trims still empty it) [B]
+KEPT_HEAP_TRIM_THRESHOLD = (1 << 31) - 1  # mallopt takes an int
+
+
+@contextmanager
+def kept_heap():
+    """glibc keeps the blocks a run frees for its next arrays while the block runs.
+
+    By default glibc serves every block above its mmap threshold (adaptive, at most 32 MB)
+    from a fresh mapping and unmaps it when freed, and gives the heap's free top back at
+    once. A tile frees and allocates arrays of many megabytes again and again, so every page
+    of them was faulted in and zeroed by the kernel anew (≈ 900 000 faults for p10M tiled;
+    on a virtual machine that hands freed pages back to its host each costs far more). With
+    the blocks served from the heap and its top kept, p10M in memory took 9.4 instead of
+    11.3 s (kernel time 1.4 instead of 3.3 CPU s, the same peak); tiled, faults fell to
+    ≈ 400 000 and the peak rose by ≈ 70 MB (the tile threads' arenas keep their free blocks
+    until the stage's trim, :func:`release_free_memory`). On leaving, the free blocks go back
+    to the system and glibc's starting values come back (its adaptive threshold stays off:
+    glibc has no call to restore it). A no-op
+    without glibc, and where the environment sets glibc's malloc options itself
+    (``MALLOC_*`` or ``GLIBC_TUNABLES``): the user's choice wins.
+    """
+    mallopt = _mallopt()
+    if mallopt is None:
+        yield
+        return
+    with _HEAP_LOCK:  # one process-wide setting: the first of overlapping blocks sets it
+        if _HEAP_STATE["depth"] == 0:
+            _HEAP_STATE["kept"] = bool(
+                mallopt(_M_MMAP_THRESHOLD, KEPT_HEAP_MMAP_THRESHOLD)
+                and mallopt(_M_TRIM_THRESHOLD, KEPT_HEAP_TRIM_THRESHOLD))
+        _HEAP_STATE["depth"] += 1
+    try:
+        yield
+    finally:
+        with _HEAP_LOCK:
+            _HEAP_STATE["depth"] -= 1
+            if _HEAP_STATE["depth"] == 0:
+                for param, value in _GLIBC_START.items():
+                    mallopt(param, value)
+                _HEAP_STATE["kept"] = False
+                release_free_memory()  # and the free blocks kept go back
+
+
+_HEAP_LOCK = threading.Lock()
+_HEAP_STATE = {"depth": 0, "kept": False}
+
+
+def heap_kept() -> bool:
+    """Whether :func:`kept_heap` holds glibc's heap policy now."""
+    return bool(_HEAP_STATE["kept"])
+
+
+@contextmanager
+def run_memory():
+    """The memory policy of a run or of a Dask task: :func:`small_pages` and :func:`kept_heap`."""
+    with small_pages(), kept_heap():
+        yield
+
+
+def _mallopt():
+    """glibc's ``mallopt``, or None (not glibc, or the environment sets malloc's options)."""
+    if platform.libc_ver()[0] != "glibc" or "malloc" in os.environ.get("GLIBC_TUNABLES", "") \
+            or any(k.startswith("MALLOC_") for k in os.environ):
+        return None
+    try:
+        fn = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):
+        return None
+    fn.argtypes, fn.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    return fn
 
 
 @functools.cache

@@ -196,18 +196,21 @@ def test_tasks_release_freed_heap_pages(monkeypatch):
 
     calls = []
     monkeypatch.setattr(tiling, "_malloc_trim", lambda: calls.append)
-    assert _task(np.add, (2, 1), {}) == 3 and calls == [0]
+    # (the task's kept heap, tiling.kept_heap, trims on leaving as well)
+    assert _task(np.add, (2, 1), {}) == 3 and calls and set(calls) == {0}
 
     def boom():
         raise RuntimeError("task failed")
 
+    done = len(calls)
     with pytest.raises(RuntimeError, match="task failed"):
         _task(boom, (), {})
-    assert len(calls) == 2  # released after the failed task too
+    assert len(calls) > done  # released after the failed task too
+    done = len(calls)
     record = RunRecord(command=[], started="", options={})
     with record.stage("read"):
         pass
-    assert len(calls) == 3 and record.stages[0]["name"] == "read"
+    assert len(calls) == done + 1 and record.stages[0]["name"] == "read"
     monkeypatch.setattr(tiling, "_malloc_trim", lambda: None)
     tiling.release_free_memory()  # no malloc_trim: nothing to do
 

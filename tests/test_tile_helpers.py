@@ -5,6 +5,8 @@ distance_upper_bound (general-purpose reference libraries).
 """
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 from scipy.spatial import cKDTree
@@ -432,3 +434,66 @@ def test_raster_state_equals_the_numpy_form():
         raster_state(bad, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state, out)
     with pytest.raises(ValueError, match="shapes"):
         raster_state(xy, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state[:-1], out)
+
+
+def _mapped_bytes():
+    """glibc's own count of the bytes it serves from separate mappings (``mallinfo2``'s
+    ``hblkhd``, glibc manual / mallinfo2(3)); None without glibc 2.33+."""
+    import ctypes
+    import platform
+
+    if platform.libc_ver()[0] != "glibc":
+        return None
+    try:
+        fn = ctypes.CDLL("libc.so.6").mallinfo2
+    except (OSError, AttributeError):
+        return None
+
+    class Mallinfo2(ctypes.Structure):
+        _fields_ = [(n, ctypes.c_size_t) for n in (
+            "arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks", "fsmblks",
+            "uordblks", "fordblks", "keepcost")]
+
+    fn.restype = Mallinfo2
+    return lambda: fn().hblkhd
+
+
+def test_kept_heap_serves_large_arrays_from_the_heap_and_restores_glibc(monkeypatch):
+    # reference: glibc's mallinfo2 — a 48 MB array is a separate mapping under glibc's
+    # defaults (its adaptive threshold stops at 32 MB) and a heap block while the heap is kept
+    from clearaudit.tiling import heap_kept, kept_heap
+
+    for key in [k for k in os.environ if k.startswith("MALLOC_") or k == "GLIBC_TUNABLES"]:
+        monkeypatch.delenv(key)
+    mapped = _mapped_bytes()
+    if mapped is None:
+        pytest.skip("needs glibc 2.33+ (mallinfo2)")
+    size = 48 << 20
+
+    def grows_mapped() -> bool:
+        before = mapped()
+        block = np.empty(size, np.uint8)
+        grown = mapped() - before >= size
+        del block
+        return grown
+
+    with kept_heap():
+        assert heap_kept()
+        with kept_heap():  # an overlapping block leaves the setting to the outermost one
+            pass
+        assert heap_kept()
+        assert not grows_mapped()
+        assert np.ones(1 << 20).sum() == 1 << 20
+    assert not heap_kept()
+    assert grows_mapped()  # glibc's starting threshold (128 KiB) is back
+    with pytest.raises(RuntimeError), kept_heap():
+        raise RuntimeError("restored on errors too")
+    assert not heap_kept() and grows_mapped()
+
+
+def test_kept_heap_leaves_malloc_alone_when_the_environment_sets_it(monkeypatch):
+    from clearaudit.tiling import heap_kept, kept_heap
+
+    monkeypatch.setenv("MALLOC_ARENA_MAX", "2")  # the user's choice: not ours to undo
+    with kept_heap():
+        assert not heap_kept()
