@@ -166,10 +166,10 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
     with tile threads a trim walks (and locks) the arenas the other tile is using, and the
     tiled run on 2 threads was 10 % slower (alternating runs); the stages still trim.
     """
-    from .tiling import release_free_memory, run_memory
+    from .tiling import release_free_memory, small_pages
 
     try:
-        with run_memory():
+        with small_pages():
             return fn(*args, **kwargs)
     finally:
         release_free_memory()

@@ -25,7 +25,7 @@ import sys
 import tempfile
 import time
 from collections.abc import Callable, Iterable
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path
@@ -219,10 +219,10 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
     ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
     from .distributed import check_engine
     from .threads import run_threads
-    from .tiling import run_memory
+    from .tiling import small_pages
 
     check_engine(options)  # threads, workers, scheduler (it must answer) before any work
-    with run_threads(options.threads), run_memory():
+    with run_threads(options.threads), small_pages():
         return _run_audit(options, console, show_summary)
 
 
@@ -294,14 +294,15 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
             total_points > options.in_memory_max_points or \
             footprint_m2 > options.in_memory_max_footprint_m2
     from .threads import inner_threads
-    from .tiling import heap_kept, numpy_huge_page_requests
+    from .tiling import numpy_huge_page_requests
 
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "threads": inner_threads(),
                                  # numpy's transparent-huge-page requests (tiling.small_pages)
                                  "numpy_huge_page_requests": numpy_huge_page_requests(),
-                                 # glibc's freed blocks kept for reuse (tiling.kept_heap)
-                                 "heap_kept": heap_kept(),
+                                 # the stages run with glibc's freed blocks kept for
+                                 # reuse (tiling.kept_heap): "all", "read" or "none"
+                                 "heap_kept": "none",
                                  "header_points": total_points,
                                  "header_footprint_km2": round(footprint_m2 / 1e6, 3)}
     if tiled:
@@ -318,9 +319,14 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     scratch_parent = Path(options.work_dir) if options.work_dir else Path(options.out).parent
     scratch_parent.mkdir(parents=True, exist_ok=True)
     scratch = Path(tempfile.mkdtemp(prefix=".clearaudit-records-", dir=scratch_parent))
+    from .tiling import heap_kept, kept_heap
+
     try:
-        return _run_in_memory(options, record, paths, config, structures_rows, conductors,
-                              rules, total_points, scratch, console, show_summary)
+        with kept_heap():
+            if heap_kept():
+                record.extra["execution"]["heap_kept"] = "all"
+            return _run_in_memory(options, record, paths, config, structures_rows, conductors,
+                                  rules, total_points, scratch, console, show_summary)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
@@ -511,6 +517,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         TileResults,
         audit_tile,
         classify_tile,
+        heap_kept,
+        kept_heap,
         plan_parts,
         plan_tiles,
         refine_tile,
@@ -536,7 +544,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 work = work.absolute()
             engine.check_access(paths, work)
             # ---- read: split every input once into cell buckets (parallel over ranges)
-            with record.stage("read", engine=engine) as entry:
+            # (glibc's freed blocks kept for reuse while this process splits: the tile
+            # stages' peaks would grow with the survey, see tiling.kept_heap)
+            in_process = engine.name == "in-process"
+            with record.stage("read", engine=engine) as entry, \
+                    (kept_heap() if in_process else nullcontext()):
+                if in_process and heap_kept():
+                    record.extra["execution"]["heap_kept"] = "read"
                 setup = read_setup(paths, crs=options.crs)
                 corridor = None
                 if structures_rows and options.corridor_buffer_m > 0:

@@ -175,9 +175,13 @@ def _numpy_multiarray_attr(name: str):
     return None
 
 
-#: glibc ``mallopt`` parameter numbers (malloc.h) and glibc's own starting values for them
+#: glibc ``mallopt`` parameter numbers (malloc.h), and the values glibc's adaptive rule
+#: reaches in a process that frees large arrays (mmap threshold at its 32 MB ceiling, trim
+#: threshold twice that): what :func:`kept_heap` leaves behind, since any ``mallopt`` call
+#: turns the rule off for good (leaving glibc's 128 KiB starting values instead mapped and
+#: unmapped every array: the tile stages after a kept read stage took 40 % more CPU time)
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
-_GLIBC_START = {_M_TRIM_THRESHOLD: 128 * 1024, _M_MMAP_THRESHOLD: 128 * 1024}
+_GLIBC_AFTER = {_M_TRIM_THRESHOLD: 64 << 20, _M_MMAP_THRESHOLD: 32 << 20}
 #: While a run lasts: blocks up to this size come from the heap, not from fresh mappings [B]
 KEPT_HEAP_MMAP_THRESHOLD = 1 << 30
 #: ... and the heap's free top is kept up to this size (the stages' trims still empty it) [B]
@@ -190,17 +194,21 @@ def kept_heap():
 
     By default glibc serves every block above its mmap threshold (adaptive, at most 32 MB)
     from a fresh mapping and unmaps it when freed, and gives the heap's free top back at
-    once. A tile frees and allocates arrays of many megabytes again and again, so every page
-    of them was faulted in and zeroed by the kernel anew (≈ 900 000 faults for p10M tiled;
-    on a virtual machine that hands freed pages back to its host each costs far more). With
-    the blocks served from the heap and its top kept, p10M in memory took 9.4 instead of
-    11.3 s (kernel time 1.4 instead of 3.3 CPU s, the same peak); tiled, faults fell to
-    ≈ 400 000 and the peak rose by ≈ 70 MB (the tile threads' arenas keep their free blocks
-    until the stage's trim, :func:`release_free_memory`). On leaving, the free blocks go back
-    to the system and glibc's starting values come back (its adaptive threshold stays off:
-    glibc has no call to restore it). A no-op
-    without glibc, and where the environment sets glibc's malloc options itself
-    (``MALLOC_*`` or ``GLIBC_TUNABLES``): the user's choice wins.
+    once, so every page of the large arrays a run allocates and frees again and again is
+    faulted in and zeroed by the kernel anew (on a virtual machine that hands freed pages
+    back to its host, each fault costs far more). With the blocks served from the heap and
+    its top kept, p10M in memory took 9.4-9.6 instead of 11.4-12.5 s (kernel time 1.3-1.6
+    instead of 3.3-4.1 CPU s; faults 890 000 -> 490 000) with the same peak.
+
+    Used for the whole in-memory run and for the tiled run's read stage, not for the tile
+    stages: there each tile thread's arena kept what its tiles left free until the stage's
+    trim, and the tiled peaks grew with the survey (100 M points: 809 MB against 628-652)
+    for ≈ 5 % of speed; trimming once more than 128 MB lay free took the speed back.
+
+    On leaving, the free blocks go back to the system and glibc's thresholds are set where
+    its adaptive rule would have brought them (see ``_GLIBC_AFTER``). A no-op without
+    glibc, and where the environment sets glibc's malloc options itself (``MALLOC_*`` or
+    ``GLIBC_TUNABLES``): the user's choice wins.
     """
     mallopt = _mallopt()
     if mallopt is None:
@@ -218,7 +226,7 @@ def kept_heap():
         with _HEAP_LOCK:
             _HEAP_STATE["depth"] -= 1
             if _HEAP_STATE["depth"] == 0:
-                for param, value in _GLIBC_START.items():
+                for param, value in _GLIBC_AFTER.items():
                     mallopt(param, value)
                 _HEAP_STATE["kept"] = False
                 release_free_memory()  # and the free blocks kept go back
@@ -231,13 +239,6 @@ _HEAP_STATE = {"depth": 0, "kept": False}
 def heap_kept() -> bool:
     """Whether :func:`kept_heap` holds glibc's heap policy now."""
     return bool(_HEAP_STATE["kept"])
-
-
-@contextmanager
-def run_memory():
-    """The memory policy of a run or of a Dask task: :func:`small_pages` and :func:`kept_heap`."""
-    with small_pages(), kept_heap():
-        yield
 
 
 def _mallopt():

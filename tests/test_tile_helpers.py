@@ -436,59 +436,71 @@ def test_raster_state_equals_the_numpy_form():
         raster_state(xy, float(lo[0]), float(lo[1]), size, shape[0], shape[1], state[:-1], out)
 
 
-def _mapped_bytes():
-    """glibc's own count of the bytes it serves from separate mappings (``mallinfo2``'s
-    ``hblkhd``, glibc manual / mallinfo2(3)); None without glibc 2.33+."""
-    import ctypes
+_KEPT_HEAP_CHECK = """
+import ctypes, platform, sys
+import numpy as np
+from clearaudit.tiling import heap_kept, kept_heap
+
+try:
+    info = ctypes.CDLL("libc.so.6").mallinfo2
+except (OSError, AttributeError):
+    sys.exit(3)
+
+class Mallinfo2(ctypes.Structure):
+    _fields_ = [(n, ctypes.c_size_t) for n in (
+        "arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks", "fsmblks",
+        "uordblks", "fordblks", "keepcost")]
+
+info.restype = Mallinfo2
+size = 48 << 20
+
+def grows_mapped():
+    before = info().hblkhd
+    block = np.empty(size, np.uint8)
+    grown = info().hblkhd - before >= size
+    del block
+    return grown
+
+seen = [grows_mapped()]
+with kept_heap():
+    seen.append(heap_kept())
+    with kept_heap():  # an overlapping block leaves the setting to the outermost one
+        pass
+    seen.append(heap_kept())
+    seen.append(grows_mapped())
+    seen.append(float(np.ones(1 << 20).sum()))
+seen.append(heap_kept())
+seen.append(grows_mapped())
+try:
+    with kept_heap():
+        raise RuntimeError("restored on errors too")
+except RuntimeError:
+    pass
+seen.append(heap_kept())
+print(seen)
+"""
+
+
+def test_kept_heap_serves_large_arrays_from_the_heap_and_restores_glibc():
+    # reference: glibc's mallinfo2 (hblkhd: bytes in separately mapped blocks) in a fresh
+    # process, so the heap's layout is known: a 48 MB array is a separate mapping under
+    # glibc's defaults (its adaptive threshold stops at 32 MB, mallopt(3)) and after the
+    # block, and a heap block while the heap is kept
     import platform
+    import subprocess
+    import sys
 
     if platform.libc_ver()[0] != "glibc":
-        return None
-    try:
-        fn = ctypes.CDLL("libc.so.6").mallinfo2
-    except (OSError, AttributeError):
-        return None
-
-    class Mallinfo2(ctypes.Structure):
-        _fields_ = [(n, ctypes.c_size_t) for n in (
-            "arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks", "fsmblks",
-            "uordblks", "fordblks", "keepcost")]
-
-    fn.restype = Mallinfo2
-    return lambda: fn().hblkhd
-
-
-def test_kept_heap_serves_large_arrays_from_the_heap_and_restores_glibc(monkeypatch):
-    # reference: glibc's mallinfo2 — a 48 MB array is a separate mapping under glibc's
-    # defaults (its adaptive threshold stops at 32 MB) and a heap block while the heap is kept
-    from clearaudit.tiling import heap_kept, kept_heap
-
-    for key in [k for k in os.environ if k.startswith("MALLOC_") or k == "GLIBC_TUNABLES"]:
-        monkeypatch.delenv(key)
-    mapped = _mapped_bytes()
-    if mapped is None:
+        pytest.skip("glibc only")
+    env = {k: v for k, v in os.environ.items()
+           if not k.startswith("MALLOC_") and k != "GLIBC_TUNABLES"}
+    proc = subprocess.run([sys.executable, "-c", _KEPT_HEAP_CHECK], env=env,
+                          capture_output=True, text=True, check=False)
+    if proc.returncode == 3:
         pytest.skip("needs glibc 2.33+ (mallinfo2)")
-    size = 48 << 20
-
-    def grows_mapped() -> bool:
-        before = mapped()
-        block = np.empty(size, np.uint8)
-        grown = mapped() - before >= size
-        del block
-        return grown
-
-    with kept_heap():
-        assert heap_kept()
-        with kept_heap():  # an overlapping block leaves the setting to the outermost one
-            pass
-        assert heap_kept()
-        assert not grows_mapped()
-        assert np.ones(1 << 20).sum() == 1 << 20
-    assert not heap_kept()
-    assert grows_mapped()  # glibc's starting threshold (128 KiB) is back
-    with pytest.raises(RuntimeError), kept_heap():
-        raise RuntimeError("restored on errors too")
-    assert not heap_kept() and grows_mapped()
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == str([True, True, True, False, float(1 << 20), False, True,
+                                       False])
 
 
 def test_kept_heap_leaves_malloc_alone_when_the_environment_sets_it(monkeypatch):

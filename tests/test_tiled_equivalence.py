@@ -110,6 +110,15 @@ def test_tiled_run_is_cut_into_tiles(runs):
 
     info = json.loads((runs["tiles"] / "run.json").read_text())
     assert info["execution"]["mode"] == "tiled" and info["tiles"]["count"] >= 4
+    # glibc's freed blocks kept for the read stage only; the whole in-memory run
+    import os
+    import platform
+
+    memory = json.loads((runs["memory"] / "run.json").read_text())
+    ours = platform.libc_ver()[0] == "glibc" and "malloc" not in os.environ.get(
+        "GLIBC_TUNABLES", "") and not any(k.startswith("MALLOC_") for k in os.environ)
+    kept = ("read", "all") if ours else ("none", "none")
+    assert (info["execution"]["heap_kept"], memory["execution"]["heap_kept"]) == kept
     assert "refine_with_model" in info["classification"]
 
 
