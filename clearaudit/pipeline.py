@@ -218,11 +218,11 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
 
     ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
     from .distributed import check_engine
-    from .threads import run_threads
+    from .threads import blas_one_thread, run_threads
     from .tiling import small_pages
 
     check_engine(options)  # threads, workers, scheduler (it must answer) before any work
-    with run_threads(options.threads), small_pages():
+    with run_threads(options.threads), small_pages(), blas_one_thread():
         return _run_audit(options, console, show_summary)
 
 
@@ -293,13 +293,15 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
         tiled = bool(options.workers or options.scheduler) or \
             total_points > options.in_memory_max_points or \
             footprint_m2 > options.in_memory_max_footprint_m2
-    from .threads import inner_threads
+    from .threads import blas_threads, inner_threads
     from .tiling import numpy_huge_page_requests
 
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "threads": inner_threads(),
                                  # numpy's transparent-huge-page requests (tiling.small_pages)
                                  "numpy_huge_page_requests": numpy_huge_page_requests(),
+                                 # BLAS / LAPACK threads (threads.blas_one_thread)
+                                 "blas_threads": blas_threads(),
                                  # the stages run with glibc's freed blocks kept for
                                  # reuse (tiling.kept_heap): "all", "read" or "none"
                                  "heap_kept": "none",

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import threading
 
+import numpy as np
 import pytest
 
 from clearaudit.distributed import InProcessEngine
@@ -144,3 +145,24 @@ def test_the_last_running_task_shares_the_idle_threads():
     assert share() == 4
     with thread_limit(share):
         assert inner_threads() == 4
+
+
+def test_blas_one_thread_limits_every_loaded_blas_and_restores_it():
+    # reference: threadpoolctl's own report of the BLAS libraries loaded (numpy's and scipy's)
+    threadpoolctl = pytest.importorskip("threadpoolctl")
+    import scipy.linalg  # noqa: F401
+
+    from clearaudit.threads import blas_one_thread, blas_threads
+
+    def counts():
+        return [i["num_threads"] for i in threadpoolctl.threadpool_info()
+                if i["user_api"] == "blas"]
+
+    before = counts()
+    if not before:
+        pytest.skip("no BLAS library found")
+    with blas_one_thread() as limit:
+        assert limit == 1 and set(counts()) == {1} and blas_threads() == 1
+        a = np.arange(9.0).reshape(3, 3) + np.eye(3)
+        np.testing.assert_allclose(np.linalg.solve(a, a @ np.ones(3)), np.ones(3))
+    assert counts() == before
