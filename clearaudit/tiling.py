@@ -197,13 +197,14 @@ def kept_heap():
     once, so every page of the large arrays a run allocates and frees again and again is
     faulted in and zeroed by the kernel anew (on a virtual machine that hands freed pages
     back to its host, each fault costs far more). With the blocks served from the heap and
-    its top kept, p10M in memory took 9.4-9.6 instead of 11.4-12.5 s (kernel time 1.3-1.6
-    instead of 3.3-4.1 CPU s; faults 890 000 -> 490 000) with the same peak.
+    its top kept, p10M in memory took 9.4-9.9 instead of 10.8-12.5 s (kernel time 1.3-1.6
+    instead of 2.6-4.1 CPU s) with the same peak.
 
     Used for the whole in-memory run and for the tiled run's read stage, not for the tile
     stages: there each tile thread's arena kept what its tiles left free until the stage's
     trim, and the tiled peaks grew with the survey (100 M points: 809 MB against 628-652)
-    for ≈ 5 % of speed; trimming once more than 128 MB lay free took the speed back.
+    for at most ≈ 5 % of speed; trimming whenever more than 128 MB lay free kept the peaks
+    but lost the speed.
 
     On leaving, the free blocks go back to the system and glibc's thresholds are set where
     its adaptive rule would have brought them (see ``_GLIBC_AFTER``). A no-op without
