@@ -397,12 +397,23 @@ def _start_local_cluster(workers: int) -> tuple[Any, Any]:
     env = {k: v for k, v in (dask.config.get("distributed.nanny.pre-spawn-environ") or {}).items()
            if k != "MALLOC_TRIM_THRESHOLD_"}
     env["CLEARAUDIT_THREADS"] = 1
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
-        # the scheduler's HTTP server on any free port: with the fixed default (8787) a
-        # second audit on the same machine printed a "port already in use" warning
-        cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True,
-                               dashboard_address=":0", silence_logs=logging.ERROR,
-                               preload=list(WORKER_PRELOAD))
+    # Dask's nanny sets these in this (the driver's) environment before it spawns each
+    # worker; left there, a later run in this process (a library user's) would take one
+    # inner thread and one BLAS thread: the driver's values come back once the workers run
+    saved = {k: os.environ.get(k) for k in env}
+    try:
+        with dask.config.set({"distributed.nanny.pre-spawn-environ": env}):
+            # the scheduler's HTTP server on any free port: with the fixed default (8787) a
+            # second audit on the same machine printed a "port already in use" warning
+            cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,
+                                   processes=True, dashboard_address=":0",
+                                   silence_logs=logging.ERROR, preload=list(WORKER_PRELOAD))
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
     try:
         client = Client(cluster, set_as_default=False)
     except BaseException:

@@ -88,8 +88,27 @@ def blas_one_thread() -> Iterator[int | None]:
     import numpy  # noqa: F401  (both BLAS libraries loaded now: only those are limited)
     import scipy.linalg  # noqa: F401
 
-    with threadpool_limits(limits=1, user_api="blas") as limits:
-        yield 1 if limits.get_original_num_threads().get("blas") else None
+    # one process-wide setting: the first of overlapping blocks (runs on several threads of
+    # a program) limits it, the last one out restores it
+    with _BLAS_LOCK:
+        if _BLAS_STATE["depth"] == 0:
+            limiter = threadpool_limits(limits=1, user_api="blas")
+            _BLAS_STATE["limiter"] = limiter
+            _BLAS_STATE["limit"] = 1 if limiter.get_original_num_threads().get("blas") else None
+        _BLAS_STATE["depth"] += 1
+        limit = _BLAS_STATE["limit"]
+    try:
+        yield limit
+    finally:
+        with _BLAS_LOCK:
+            _BLAS_STATE["depth"] -= 1
+            if _BLAS_STATE["depth"] == 0:
+                _BLAS_STATE["limiter"].restore_original_limits()
+                _BLAS_STATE["limiter"] = _BLAS_STATE["limit"] = None
+
+
+_BLAS_LOCK = threading.Lock()
+_BLAS_STATE: dict = {"depth": 0, "limiter": None, "limit": None}
 
 
 def blas_threads() -> int | None:

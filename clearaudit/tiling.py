@@ -106,8 +106,9 @@ def peak_rss_mb() -> float:
 def release_free_memory() -> None:
     """Give the heap's free pages back to the system (glibc ``malloc_trim``; a no-op elsewhere).
 
-    numpy arrays below glibc's adaptive mmap threshold (up to 32 MB) live in the malloc arenas,
-    one per thread; after a stage frees them the pages stay in the process's resident set
+    numpy arrays below glibc's mmap threshold (adaptive up to 32 MB; 32 MB fixed once a
+    :func:`kept_heap` block has run, 1 GiB inside one) live in the malloc arenas, one per
+    thread; after a stage frees them the pages stay in the process's resident set
     and the next stage's peak stacks on top of them. Called after every stage and after every
     task of a Dask worker: a few milliseconds (not after the tasks of in-process tile threads,
     see :func:`clearaudit.distributed._task`).
@@ -182,7 +183,9 @@ def _numpy_multiarray_attr(name: str):
 #: unmapped every array: the tile stages after a kept read stage took 40 % more CPU time)
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
 _GLIBC_AFTER = {_M_TRIM_THRESHOLD: 64 << 20, _M_MMAP_THRESHOLD: 32 << 20}
-#: While a run lasts: blocks up to this size come from the heap, not from fresh mappings [B]
+#: While a run lasts: blocks up to this size come from the heap, not from fresh mappings
+#: (the main thread's; other threads' arenas grow in heaps of at most 64 MB, and a larger
+#: block of theirs is still mapped afresh) [B]
 KEPT_HEAP_MMAP_THRESHOLD = 1 << 30
 #: ... and the heap's free top is kept up to this size (the stages' trims still empty it) [B]
 KEPT_HEAP_TRIM_THRESHOLD = (1 << 31) - 1  # mallopt takes an int
@@ -207,9 +210,12 @@ def kept_heap():
     but lost the speed.
 
     On leaving, the free blocks go back to the system and glibc's thresholds are set where
-    its adaptive rule would have brought them (see ``_GLIBC_AFTER``). A no-op without
-    glibc, and where the environment sets glibc's malloc options itself (``MALLOC_*`` or
-    ``GLIBC_TUNABLES``): the user's choice wins.
+    its adaptive rule would have brought them (see ``_GLIBC_AFTER``). These are process-wide
+    settings: a program that calls clearaudit as a library and set its own thresholds with
+    ``mallopt`` finds them replaced. ``CLEARAUDIT_KEEP_HEAP=0`` turns this off; so do
+    glibc's own malloc options in the environment (``MALLOC_*`` or ``GLIBC_TUNABLES``): the
+    user's choice wins. A no-op without glibc, and where glibc refuses the threshold (older
+    versions cap it at 32 MB; then nothing is changed, nor set on leaving).
     """
     mallopt = _mallopt()
     if mallopt is None:
@@ -217,24 +223,25 @@ def kept_heap():
         return
     with _HEAP_LOCK:  # one process-wide setting: the first of overlapping blocks sets it
         if _HEAP_STATE["depth"] == 0:
-            _HEAP_STATE["kept"] = bool(
-                mallopt(_M_MMAP_THRESHOLD, KEPT_HEAP_MMAP_THRESHOLD)
-                and mallopt(_M_TRIM_THRESHOLD, KEPT_HEAP_TRIM_THRESHOLD))
+            # a refused threshold leaves glibc as it was (adaptive rule included)
+            _HEAP_STATE["changed"] = bool(mallopt(_M_MMAP_THRESHOLD, KEPT_HEAP_MMAP_THRESHOLD))
+            _HEAP_STATE["kept"] = _HEAP_STATE["changed"] and bool(
+                mallopt(_M_TRIM_THRESHOLD, KEPT_HEAP_TRIM_THRESHOLD))
         _HEAP_STATE["depth"] += 1
     try:
         yield
     finally:
         with _HEAP_LOCK:
             _HEAP_STATE["depth"] -= 1
-            if _HEAP_STATE["depth"] == 0:
+            if _HEAP_STATE["depth"] == 0 and _HEAP_STATE["changed"]:
                 for param, value in _GLIBC_AFTER.items():
                     mallopt(param, value)
-                _HEAP_STATE["kept"] = False
+                _HEAP_STATE["kept"] = _HEAP_STATE["changed"] = False
                 release_free_memory()  # and the free blocks kept go back
 
 
 _HEAP_LOCK = threading.Lock()
-_HEAP_STATE = {"depth": 0, "kept": False}
+_HEAP_STATE = {"depth": 0, "kept": False, "changed": False}
 
 
 def heap_kept() -> bool:
@@ -243,9 +250,11 @@ def heap_kept() -> bool:
 
 
 def _mallopt():
-    """glibc's ``mallopt``, or None (not glibc, or the environment sets malloc's options)."""
+    """glibc's ``mallopt``, or None (not glibc, turned off with ``CLEARAUDIT_KEEP_HEAP=0``, or
+    the environment sets malloc's options)."""
     if platform.libc_ver()[0] != "glibc" or "malloc" in os.environ.get("GLIBC_TUNABLES", "") \
-            or any(k.startswith("MALLOC_") for k in os.environ):
+            or any(k.startswith("MALLOC_") for k in os.environ) \
+            or os.environ.get("CLEARAUDIT_KEEP_HEAP", "").strip() == "0":
         return None
     try:
         fn = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt

@@ -217,11 +217,23 @@ def test_local_cluster_started_in_background(monkeypatch):
     # The local cluster starts on a thread while the driver validates; the engine takes it,
     # finish() lets it shut down while the driver writes (the workers' memory figures are
     # kept), and a failed start is raised where the client is needed.
+    import os
+
     from clearaudit import distributed as dist
 
+    for key in ("CLEARAUDIT_THREADS", "OPENBLAS_NUM_THREADS"):
+        monkeypatch.delenv(key, raising=False)
     with dist.LocalClusterStart(1) as started, \
             dist.engine_for(1, None, 1, started=started) as engine:
         assert dict(engine.run([(np.add, (2, 3), {})])) == {0: 5}
+        # the workers run with one inner thread and one BLAS thread; the driver's own
+        # environment is left as it was (Dask's nanny sets them in it before each spawn)
+        # (os.getenv, a function: os.environ.get would carry the driver's mapping along)
+        assert dict(engine.run([(os.getenv, ("CLEARAUDIT_THREADS",), {}),
+                                (os.getenv, ("OPENBLAS_NUM_THREADS",), {})])) \
+            == {0: "1", 1: "1"}
+        assert "CLEARAUDIT_THREADS" not in os.environ
+        assert "OPENBLAS_NUM_THREADS" not in os.environ
         # costs only order the start: every result comes back at its own position
         assert dict(engine.run([(np.add, (k, 1), {}) for k in range(4)],
                                costs=[0, 9, 3, 9])) == {k: k + 1 for k in range(4)}

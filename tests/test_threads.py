@@ -166,3 +166,28 @@ def test_blas_one_thread_limits_every_loaded_blas_and_restores_it():
         a = np.arange(9.0).reshape(3, 3) + np.eye(3)
         np.testing.assert_allclose(np.linalg.solve(a, a @ np.ones(3)), np.ones(3))
     assert counts() == before
+
+
+def test_blas_one_thread_of_overlapping_runs_restores_once_the_last_ends():
+    # two runs on two threads of one program, leaving in the order they came: BLAS stays on
+    # one thread while either runs and comes back when the last one ends (reference:
+    # threadpoolctl's report)
+    threadpoolctl = pytest.importorskip("threadpoolctl")
+    import scipy.linalg  # noqa: F401
+
+    from clearaudit.threads import blas_one_thread
+
+    def counts():
+        return [i["num_threads"] for i in threadpoolctl.threadpool_info()
+                if i["user_api"] == "blas"]
+
+    before = counts()
+    if not before:
+        pytest.skip("no BLAS library found")
+    a, b = blas_one_thread(), blas_one_thread()
+    a.__enter__()
+    b.__enter__()
+    a.__exit__(None, None, None)
+    assert set(counts()) == {1}
+    b.__exit__(None, None, None)
+    assert counts() == before
