@@ -321,11 +321,11 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     scratch_parent = Path(options.work_dir) if options.work_dir else Path(options.out).parent
     scratch_parent.mkdir(parents=True, exist_ok=True)
     scratch = Path(tempfile.mkdtemp(prefix=".clearaudit-records-", dir=scratch_parent))
-    from .tiling import heap_kept, kept_heap
+    from .tiling import kept_heap
 
     try:
-        with kept_heap():
-            if heap_kept():
+        with kept_heap() as kept:
+            if kept:
                 record.extra["execution"]["heap_kept"] = "all"
             return _run_in_memory(options, record, paths, config, structures_rows, conductors,
                                   rules, total_points, scratch, console, show_summary)
@@ -519,7 +519,6 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         TileResults,
         audit_tile,
         classify_tile,
-        heap_kept,
         kept_heap,
         plan_parts,
         plan_tiles,
@@ -550,8 +549,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
             # stages' peaks would grow with the survey, see tiling.kept_heap)
             in_process = engine.name == "in-process"
             with record.stage("read", engine=engine) as entry, \
-                    (kept_heap() if in_process else nullcontext()):
-                if in_process and heap_kept():
+                    (kept_heap() if in_process else nullcontext(False)) as kept:
+                if kept:
                     record.extra["execution"]["heap_kept"] = "read"
                 setup = read_setup(paths, crs=options.crs)
                 corridor = None

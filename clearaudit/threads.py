@@ -20,6 +20,7 @@ import threading
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
+from typing import Any
 
 _local = threading.local()
 _run_default: list[int] = []  # stack of process-wide limits set by :func:`run_threads`
@@ -70,45 +71,67 @@ def run_threads(threads: int) -> Iterator[int]:
         _run_default.pop()
 
 
+class SharedSetting:
+    """A process-wide setting that several blocks may hold at once (runs or tasks on threads
+    of one process): the first block in applies it, the last one out restores it.
+
+    ``apply()`` applies the setting and returns what ``restore(state)`` needs, or None when
+    it changed nothing (then nothing is restored); :meth:`hold` is the block, yielding that
+    state; :attr:`state` is it while any block holds the setting (None otherwise).
+    """
+
+    def __init__(self, apply: Callable[[], Any], restore: Callable[[Any], None]):
+        self._apply, self._restore = apply, restore
+        self._lock = threading.Lock()
+        self._depth = 0
+        self.state: Any = None
+
+    @contextmanager
+    def hold(self) -> Iterator[Any]:
+        with self._lock:
+            if self._depth == 0:
+                self.state = self._apply()
+            self._depth += 1
+            state = self.state
+        try:
+            yield state
+        finally:
+            with self._lock:
+                self._depth -= 1
+                if self._depth == 0:
+                    state, self.state = self.state, None
+                    if state is not None:
+                        self._restore(state)
+
+
+def _limit_blas() -> Any:
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - a dependency; without it nothing is limited
+        return None
+    import numpy  # noqa: F401  (both BLAS libraries loaded now: only those are limited)
+    import scipy.linalg  # noqa: F401
+
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+_BLAS_ONE_THREAD = SharedSetting(_limit_blas, lambda limiter: limiter.restore_original_limits())
+
+
 @contextmanager
 def blas_one_thread() -> Iterator[int | None]:
-    """BLAS / LAPACK on one thread while the block runs (restored after it); yields the limit
-    set, or None where ``threadpoolctl`` finds no BLAS.
+    """BLAS / LAPACK on one thread while the block runs (restored after it; overlapping
+    blocks share the setting, :class:`SharedSetting`); yields the limit set, or None where
+    ``threadpoolctl`` finds no BLAS.
 
     The run's matrices are small (3 x 3 plane and eigen systems, a few catenary parameters);
     OpenBLAS's own thread pools (numpy's and scipy's) only woke and spun beside the run's
     threads: on p10M tiled 0.2-0.5 CPU s (1.5-3.5 %) less with one thread, the same outputs.
     The same as ``OPENBLAS_NUM_THREADS=1``, which Dask already sets for its workers.
     """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - a dependency; without it nothing is limited
-        yield None
-        return
-    import numpy  # noqa: F401  (both BLAS libraries loaded now: only those are limited)
-    import scipy.linalg  # noqa: F401
-
-    # one process-wide setting: the first of overlapping blocks (runs on several threads of
-    # a program) limits it, the last one out restores it
-    with _BLAS_LOCK:
-        if _BLAS_STATE["depth"] == 0:
-            limiter = threadpool_limits(limits=1, user_api="blas")
-            _BLAS_STATE["limiter"] = limiter
-            _BLAS_STATE["limit"] = 1 if limiter.get_original_num_threads().get("blas") else None
-        _BLAS_STATE["depth"] += 1
-        limit = _BLAS_STATE["limit"]
-    try:
-        yield limit
-    finally:
-        with _BLAS_LOCK:
-            _BLAS_STATE["depth"] -= 1
-            if _BLAS_STATE["depth"] == 0:
-                _BLAS_STATE["limiter"].restore_original_limits()
-                _BLAS_STATE["limiter"] = _BLAS_STATE["limit"] = None
-
-
-_BLAS_LOCK = threading.Lock()
-_BLAS_STATE: dict = {"depth": 0, "limiter": None, "limit": None}
+    with _BLAS_ONE_THREAD.hold() as limiter:
+        yield 1 if limiter is not None and limiter.get_original_num_threads().get("blas") \
+            else None
 
 
 def blas_threads() -> int | None:
@@ -189,6 +212,5 @@ def run_chunks(work: Callable[[int, int], None], n: int, chunk: int,
             future.result()
 
 
-__all__ = ["PoolShare", "available_cores", "inner_threads", "resolve_threads", "run_chunks",
-           "run_threads", "thread_limit", "blas_one_thread",
-           "blas_threads"]
+__all__ = ["PoolShare", "SharedSetting", "available_cores", "blas_one_thread", "blas_threads",
+           "inner_threads", "resolve_threads", "run_chunks", "run_threads", "thread_limit"]

@@ -40,7 +40,6 @@ import os
 import pickle
 import platform
 import resource
-import threading
 import time
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
@@ -60,6 +59,7 @@ from .cloud import (
 )
 from .errors import InputError
 from .io.las import ReadSetup, RecordScratch, corridor_mask, read_range
+from .threads import SharedSetting
 
 #: One bucket record: local metres, the file's class code, ``file_id << KEY_SHIFT | index``.
 RECORD = np.dtype([("xyz", "<f8", (3,)), ("cls", "u1"), ("key", "<i8")])
@@ -118,9 +118,9 @@ def release_free_memory() -> None:
         trim(0)
 
 
-@contextmanager
 def small_pages():
-    """numpy's large arrays on ordinary pages while the block runs (restored after it).
+    """numpy's large arrays on ordinary pages while the block runs (restored after it;
+    overlapping blocks — tasks of one Dask worker on several threads — share the setting).
 
     numpy asks the kernel for transparent huge pages (``madvise(MADV_HUGEPAGE)``) for every
     array from 4 MB up. Where huge pages are given on request (``madvise``, Ubuntu's and
@@ -130,27 +130,16 @@ def small_pages():
     to 12.1-12.5 s without the request (same peak); tiled, 0.5 CPU s and 50 MB of peak less.
     The same as ``NUMPY_MADVISE_HUGEPAGE=0``; a no-op where numpy lacks the switch.
     """
+    return _SMALL_PAGES.hold()
+
+
+def _pages_off() -> tuple[Any, bool] | None:
+    """numpy's huge-page requests off: (the switch, the setting before), None without it."""
     switch = _hugepage_switch()
-    if switch is None:
-        yield
-        return
-    # one process-wide numpy setting: the first of overlapping blocks (tasks of one Dask
-    # worker on several threads) turns it off, the last one out restores it
-    with _PAGES_LOCK:
-        if _PAGES_STATE["depth"] == 0:
-            _PAGES_STATE["previous"] = bool(switch(False))
-        _PAGES_STATE["depth"] += 1
-    try:
-        yield
-    finally:
-        with _PAGES_LOCK:
-            _PAGES_STATE["depth"] -= 1
-            if _PAGES_STATE["depth"] == 0:
-                switch(_PAGES_STATE["previous"])
+    return None if switch is None else (switch, bool(switch(False)))
 
 
-_PAGES_LOCK = threading.Lock()
-_PAGES_STATE = {"depth": 0, "previous": True}
+_SMALL_PAGES = SharedSetting(_pages_off, lambda state: state[0](state[1]))
 
 
 def numpy_huge_page_requests() -> bool | None:
@@ -193,7 +182,8 @@ KEPT_HEAP_TRIM_THRESHOLD = (1 << 31) - 1  # mallopt takes an int
 
 @contextmanager
 def kept_heap():
-    """glibc keeps the blocks a run frees for its next arrays while the block runs.
+    """glibc keeps the blocks a run frees for its next arrays while the block runs (overlapping
+    blocks share the setting); yields whether it does.
 
     By default glibc serves every block above its mmap threshold (adaptive, at most 32 MB)
     from a fresh mapping and unmaps it when freed, and gives the heap's free top back at
@@ -217,36 +207,33 @@ def kept_heap():
     user's choice wins. A no-op without glibc, and where glibc refuses the threshold (older
     versions cap it at 32 MB; then nothing is changed, nor set on leaving).
     """
-    mallopt = _mallopt()
-    if mallopt is None:
-        yield
-        return
-    with _HEAP_LOCK:  # one process-wide setting: the first of overlapping blocks sets it
-        if _HEAP_STATE["depth"] == 0:
-            # a refused threshold leaves glibc as it was (adaptive rule included)
-            _HEAP_STATE["changed"] = bool(mallopt(_M_MMAP_THRESHOLD, KEPT_HEAP_MMAP_THRESHOLD))
-            _HEAP_STATE["kept"] = _HEAP_STATE["changed"] and bool(
-                mallopt(_M_TRIM_THRESHOLD, KEPT_HEAP_TRIM_THRESHOLD))
-        _HEAP_STATE["depth"] += 1
-    try:
-        yield
-    finally:
-        with _HEAP_LOCK:
-            _HEAP_STATE["depth"] -= 1
-            if _HEAP_STATE["depth"] == 0 and _HEAP_STATE["changed"]:
-                for param, value in _GLIBC_AFTER.items():
-                    mallopt(param, value)
-                _HEAP_STATE["kept"] = _HEAP_STATE["changed"] = False
-                release_free_memory()  # and the free blocks kept go back
-
-
-_HEAP_LOCK = threading.Lock()
-_HEAP_STATE = {"depth": 0, "kept": False, "changed": False}
+    with _KEPT_HEAP.hold() as mallopt:
+        yield mallopt is not None
 
 
 def heap_kept() -> bool:
     """Whether :func:`kept_heap` holds glibc's heap policy now."""
-    return bool(_HEAP_STATE["kept"])
+    return _KEPT_HEAP.state is not None
+
+
+def _keep_heap() -> Any:
+    """The thresholds of :func:`kept_heap` set; ``mallopt`` to restore them, or None when
+    nothing was changed (no glibc, the user's choice, or the threshold refused: a refused
+    threshold leaves glibc as it was, its adaptive rule included)."""
+    mallopt = _mallopt()
+    if mallopt is None or not mallopt(_M_MMAP_THRESHOLD, KEPT_HEAP_MMAP_THRESHOLD):
+        return None
+    mallopt(_M_TRIM_THRESHOLD, KEPT_HEAP_TRIM_THRESHOLD)
+    return mallopt
+
+
+def _give_heap_back(mallopt: Any) -> None:
+    for param, value in _GLIBC_AFTER.items():
+        mallopt(param, value)
+    release_free_memory()  # and the free blocks kept go back
+
+
+_KEPT_HEAP = SharedSetting(_keep_heap, _give_heap_back)
 
 
 def _mallopt():
@@ -256,21 +243,23 @@ def _mallopt():
             or any(k.startswith("MALLOC_") for k in os.environ) \
             or os.environ.get("CLEARAUDIT_KEEP_HEAP", "").strip() == "0":
         return None
-    try:
-        fn = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
-    except (OSError, AttributeError):
-        return None
-    fn.argtypes, fn.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    fn = getattr(_libc(), "mallopt", None)
+    if fn is not None:
+        fn.argtypes, fn.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
     return fn
 
 
 @functools.cache
-def _malloc_trim():
+def _libc():
+    """The C library (ctypes), or None."""
     try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        return libc.malloc_trim
-    except (OSError, AttributeError):
+        return ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+    except OSError:
         return None
+
+
+def _malloc_trim():
+    return getattr(_libc(), "malloc_trim", None)
 
 
 # =============================================================================== splitting

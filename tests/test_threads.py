@@ -147,47 +147,75 @@ def test_the_last_running_task_shares_the_idle_threads():
         assert inner_threads() == 4
 
 
-def test_blas_one_thread_limits_every_loaded_blas_and_restores_it():
-    # reference: threadpoolctl's own report of the BLAS libraries loaded (numpy's and scipy's)
+def _blas_counts() -> list[int]:
+    """Thread counts of the BLAS libraries loaded (numpy's and scipy's), as threadpoolctl —
+    the reference of the tests below — reports them; skips the test where there is none."""
     threadpoolctl = pytest.importorskip("threadpoolctl")
     import scipy.linalg  # noqa: F401
 
+    counts = [i["num_threads"] for i in threadpoolctl.threadpool_info()
+              if i["user_api"] == "blas"]
+    if not counts:
+        pytest.skip("no BLAS library found")
+    return counts
+
+
+def test_blas_one_thread_limits_every_loaded_blas_and_restores_it():
     from clearaudit.threads import blas_one_thread, blas_threads
 
-    def counts():
-        return [i["num_threads"] for i in threadpoolctl.threadpool_info()
-                if i["user_api"] == "blas"]
-
-    before = counts()
-    if not before:
-        pytest.skip("no BLAS library found")
+    before = _blas_counts()
     with blas_one_thread() as limit:
-        assert limit == 1 and set(counts()) == {1} and blas_threads() == 1
+        assert limit == 1 and set(_blas_counts()) == {1} and blas_threads() == 1
         a = np.arange(9.0).reshape(3, 3) + np.eye(3)
         np.testing.assert_allclose(np.linalg.solve(a, a @ np.ones(3)), np.ones(3))
-    assert counts() == before
+    assert _blas_counts() == before
 
 
 def test_blas_one_thread_of_overlapping_runs_restores_once_the_last_ends():
     # two runs on two threads of one program, leaving in the order they came: BLAS stays on
-    # one thread while either runs and comes back when the last one ends (reference:
-    # threadpoolctl's report)
-    threadpoolctl = pytest.importorskip("threadpoolctl")
-    import scipy.linalg  # noqa: F401
-
+    # one thread while either runs and comes back when the last one ends
     from clearaudit.threads import blas_one_thread
 
-    def counts():
-        return [i["num_threads"] for i in threadpoolctl.threadpool_info()
-                if i["user_api"] == "blas"]
-
-    before = counts()
-    if not before:
-        pytest.skip("no BLAS library found")
+    before = _blas_counts()
     a, b = blas_one_thread(), blas_one_thread()
     a.__enter__()
     b.__enter__()
     a.__exit__(None, None, None)
-    assert set(counts()) == {1}
+    assert set(_blas_counts()) == {1}
     b.__exit__(None, None, None)
-    assert counts() == before
+    assert _blas_counts() == before
+
+
+def test_shared_setting_applies_once_and_restores_after_the_last_holder():
+    # the mechanism of small_pages, kept_heap and blas_one_thread: a process-wide value
+    # (here a plain dict) applied by the first holder, restored by the last one out, also
+    # after an error; an apply that changes nothing (None) restores nothing
+    from clearaudit.threads import SharedSetting
+
+    value = {"v": "default"}
+    log = []
+
+    def apply():
+        log.append("apply")
+        before, value["v"] = value["v"], "set"
+        return before
+
+    def restore(before):
+        log.append("restore")
+        value["v"] = before
+
+    setting = SharedSetting(apply, restore)
+    outer, inner = setting.hold(), setting.hold()
+    assert outer.__enter__() == "default" and value["v"] == "set"
+    assert inner.__enter__() == "default" and setting.state == "default"
+    outer.__exit__(None, None, None)
+    assert value["v"] == "set"
+    inner.__exit__(None, None, None)
+    assert value["v"] == "default" and setting.state is None and log == ["apply", "restore"]
+    with pytest.raises(RuntimeError), setting.hold():
+        raise RuntimeError("restored on errors too")
+    assert value["v"] == "default" and log == ["apply", "restore"] * 2
+    unchanged = SharedSetting(lambda: None, lambda state: log.append("never"))
+    with unchanged.hold() as state:
+        assert state is None
+    assert log[-1] == "restore"

@@ -462,12 +462,12 @@ def grows_mapped(size=size):
     return grown
 
 seen = [grows_mapped(), grows_mapped(16 << 20)]
-with kept_heap():
-    if not heap_kept():
+with kept_heap() as kept:
+    if not kept:
         sys.exit(4)  # this glibc refuses the threshold
     seen.append(heap_kept())
-    with kept_heap():  # an overlapping block leaves the setting to the outermost one
-        pass
+    with kept_heap() as inner:  # an overlapping block leaves the setting to the outermost one
+        assert inner
     seen.append(heap_kept())
     seen.append(grows_mapped())
     seen.append(float(np.ones(1 << 20).sum()))
@@ -498,7 +498,7 @@ def test_kept_heap_serves_large_arrays_from_the_heap_and_restores_glibc():
     if platform.libc_ver()[0] != "glibc":
         pytest.skip("glibc only")
     env = {k: v for k, v in os.environ.items()
-           if not k.startswith("MALLOC_") and k != "GLIBC_TUNABLES"}
+           if not k.startswith("MALLOC_") and k not in ("GLIBC_TUNABLES", "CLEARAUDIT_KEEP_HEAP")}
     proc = subprocess.run([sys.executable, "-c", _KEPT_HEAP_CHECK], env=env,
                           capture_output=True, text=True, check=False)
     if proc.returncode == 3:
@@ -514,9 +514,9 @@ def test_kept_heap_leaves_malloc_alone_when_the_environment_sets_it(monkeypatch)
     from clearaudit.tiling import heap_kept, kept_heap
 
     monkeypatch.setenv("MALLOC_ARENA_MAX", "2")  # the user's choice: not ours to undo
-    with kept_heap():
-        assert not heap_kept()
+    with kept_heap() as kept:
+        assert not kept and not heap_kept()
     monkeypatch.delenv("MALLOC_ARENA_MAX")
     monkeypatch.setenv("CLEARAUDIT_KEEP_HEAP", "0")  # turned off outright
-    with kept_heap():
-        assert not heap_kept()
+    with kept_heap() as kept:
+        assert not kept and not heap_kept()
