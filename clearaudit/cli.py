@@ -74,7 +74,7 @@ def cmd_audit(args: argparse.Namespace) -> int:
         max_operating_temperature_c=args.mot_c, structures_file=args.structures,
         overwrite=args.overwrite, workers=args.workers, scheduler=args.scheduler,
         threads=args.threads, corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
-        tiled=True if args.tiled else None, work_dir=Path(args.work_dir) if args.work_dir else None,
+        tiled=True if args.tiled else False if args.in_memory else None, work_dir=Path(args.work_dir) if args.work_dir else None,
         **({"tile_points": args.tile_points} if args.tile_points else {}),
         **({"tile_overlap_m": args.tile_overlap_m} if args.tile_overlap_m is not None else {}),
     )
@@ -182,9 +182,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--threads", type=int, default=0, metavar="N",
                    help="threads of the in-process run (default 0: every core; tiles of a "
                         "tiled run go to threads, one tile each)")
-    p.add_argument("--tiled", action="store_true",
-                   help="bounded-memory run in tiles even for a small survey (automatic above "
-                        "20 million points or with --workers/--scheduler)")
+    mode = p.add_mutually_exclusive_group()
+    mode.add_argument("--tiled", action="store_true",
+                      help="bounded-memory run in tiles even for a small survey (automatic "
+                           "above 2.5 million points with two or more threads, above 20 "
+                           "million points, or with --workers/--scheduler)")
+    mode.add_argument("--in-memory", action="store_true",
+                      help="hold the whole survey in memory even where a tiled run is "
+                           "automatic (not with --workers/--scheduler)")
     p.add_argument("--tile-points", type=int, metavar="N",
                    help="largest number of points owned by one tile (default 1500000)")
     p.add_argument("--tile-overlap-m", type=float, metavar="M",

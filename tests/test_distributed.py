@@ -30,9 +30,9 @@ def corridor(tmp_path_factory) -> dict[str, Path]:
 
 
 def _run(paths: dict[str, Path], out: Path, **kw) -> Path:
-    opts = AuditOptions(clouds=[paths["cloud"]], out=out, line_file=paths["line"],
-                        overwrite=True, skip_report=True, tiled=True, tile_points=120_000,
-                        tile_cell_m=100.0, **kw)
+    opts = AuditOptions(**{"clouds": [paths["cloud"]], "out": out, "line_file": paths["line"],
+                           "overwrite": True, "skip_report": True, "tiled": True,
+                           "tile_points": 120_000, "tile_cell_m": 100.0, **kw})
     return run_audit(opts)
 
 
@@ -115,12 +115,19 @@ def test_tiled_run_matches_truth_and_in_memory_classes(corridor, tmp_path):
     import json
 
     truth = json.loads(corridor["truth"].read_text())
-    a = _run(corridor, tmp_path / "tiled")
+    # the automatic choice on two threads: tiled above tiled_min_points (header count)
+    a = _run(corridor, tmp_path / "tiled", tiled=None, tiled_min_points=1000, threads=2)
+    execution = json.loads((a / "run.json").read_text())["execution"]
+    assert execution["mode"] == "tiled" and "the tiles run in parallel" in \
+        execution["mode_reason"]
     rows = {(r["span_id"], r["wire_id"]): r for r in _rows(a / "spans.csv")}
     opts = AuditOptions(clouds=[corridor["cloud"]], out=tmp_path / "mem",
                         line_file=corridor["line"], overwrite=True, skip_report=True,
                         tiled=False)
     b = run_audit(opts)
+    execution = json.loads((b / "run.json").read_text())["execution"]
+    assert (execution["mode"], execution["mode_reason"]) == ("in-memory",
+                                                             "asked for (in memory)")
     mem = {(r["span_id"], r["wire_id"]): r for r in _rows(b / "spans.csv")}
     err_tiled, err_mem = [], []
     for span in truth["spans"]:
@@ -185,6 +192,48 @@ def test_header_extent_chooses_tiled_for_sprawling_surveys(tmp_path):
     points, area = _header_extent([path])
     assert points == 2 and area == pytest.approx(36e6)
     assert area > AuditOptions(clouds=[path], out=tmp_path / "o").in_memory_max_footprint_m2
+
+
+def test_choose_mode_rules(tmp_path):
+    # The policy of docs/scaling.md, "Which run" (common practice, no source: tiles are the
+    # parallel work of a run; a survey too large to hold runs tiled whatever the cores).
+    from clearaudit.pipeline import choose_mode
+
+    base = AuditOptions(clouds=[], out=tmp_path / "o")
+    small, mid, huge = 1_000_000, base.tiled_min_points + 1, base.in_memory_max_points + 1
+    cases = [
+        ({}, small, 1e6, 2, False, "at most"),
+        ({}, base.tiled_min_points, 1e6, 2, False, "at most"),
+        ({}, mid, 1e6, 2, True, "the tiles run in parallel"),
+        ({}, mid, 1e6, 1, False, "on one thread"),
+        ({}, huge, 1e6, 1, True, "held in memory at once"),
+        ({}, small, base.in_memory_max_footprint_m2 * 1.01, 1, True, "km²"),
+        ({"workers": 2}, small, 1e6, 2, True, "Dask"),
+        ({"scheduler": "tcp://x:1"}, small, 1e6, 2, True, "Dask"),
+        ({"tiled": True}, small, 1e6, 1, True, "asked for (--tiled)"),
+        ({"tiled": False}, huge, 1e9, 2, False, "asked for (in memory)"),
+    ]
+    for kw, points, area, threads, tiled, why in cases:
+        opts = AuditOptions(clouds=[], out=tmp_path / "o", **kw)
+        got, reason = choose_mode(opts, points, area, threads)
+        assert got is tiled and why in reason, (kw, points, area, threads, reason)
+
+
+def test_in_memory_flag(corridor, tmp_path, capsys):
+    # --in-memory forces the in-memory run; with a Dask engine or --tiled it is a usage error
+    # (exit 2, nothing written)
+    from clearaudit.cli import main
+
+    common = [str(corridor["cloud"]), "--line", str(corridor["line"]), "--no-report"]
+    assert main(["audit", *common, "--out", str(tmp_path / "a"), "--in-memory",
+                 "--workers", "2"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("clearaudit: error: --in-memory:") and "\n" not in err
+    with pytest.raises(SystemExit) as stop:
+        main(["audit", *common, "--out", str(tmp_path / "b"), "--in-memory", "--tiled"])
+    assert stop.value.code == 2
+    assert "not allowed with argument" in capsys.readouterr().err
+    assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
 
 
 def test_tasks_release_freed_heap_pages(monkeypatch):
