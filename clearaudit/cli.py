@@ -66,6 +66,11 @@ def cmd_sample(args: argparse.Namespace) -> int:
 def cmd_audit(args: argparse.Namespace) -> int:
     from .pipeline import AuditOptions, run_audit
 
+    if args.in_memory and (args.workers or args.scheduler):
+        # (a library caller or a network line may ask for both: the line then runs in memory
+        # in this process and the engine serves the other lines)
+        raise InputError("--in-memory", "runs in this process; a Dask engine (--workers, "
+                                        "--scheduler) runs tiles")
     options = AuditOptions(
         clouds=[Path(p) for p in args.clouds], out=Path(args.out),
         line_file=Path(args.line) if args.line else None, crs=args.crs,

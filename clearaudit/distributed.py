@@ -339,8 +339,7 @@ def check_engine(options: Any) -> None:
     ------
     InputError
         A negative thread or worker count, threads with a Dask engine, both Dask options at
-        once, an in-memory run asked for with a Dask engine, Dask not installed, or a
-        scheduler address that cannot be reached.
+        once, Dask not installed, or a scheduler address that cannot be reached.
     """
     threads = getattr(options, "threads", 0)
     workers = int(getattr(options, "workers", 0) or 0)
@@ -355,9 +354,6 @@ def check_engine(options: Any) -> None:
     if workers and scheduler:
         raise InputError("--scheduler", "give either --workers (local cluster) or --scheduler "
                                         "(existing cluster), not both")
-    if getattr(options, "tiled", None) is False and (workers or scheduler):
-        raise InputError("--in-memory", "runs in this process; a Dask engine (--workers, "
-                                        "--scheduler) runs tiles")
     if not (workers or scheduler):
         return
     try:

@@ -170,6 +170,10 @@ def test_bad_manifests_are_refused_before_any_work(tmp_path, capsys, extra, prob
 def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, tmp_path):
     out_threads, _ = network_run
     manifest = _manifest(tmp_path)
+    # a line with tiled = false runs in memory in this process, the cluster notwithstanding
+    text = manifest.read_text()
+    manifest.write_text(text.replace('line_file = "north/north.line.toml"\n',
+                                     'line_file = "north/north.line.toml"\ntiled = false\n'))
     out = tmp_path / "out"
     work = tmp_path / "shared-work"
     assert main(["network", str(manifest), "--out", str(out), "--no-report",
@@ -179,8 +183,11 @@ def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, 
     assert work.is_dir() and list(work.iterdir()) == []  # each line's tile files removed
     for name in ("north-230", "south-230"):
         run = json.loads((out / name / "run.json").read_text())
-        assert run["execution"]["engine"] == "dask"
         assert run["options"]["scheduler"]  # the one cluster's address, shared by the lines
+    north = json.loads((out / "north-230" / "run.json").read_text())["execution"]
+    assert (north["mode"], north["mode_reason"]) == ("in-memory", "asked for (in memory)")
+    assert json.loads((out / "south-230" / "run.json").read_text())["execution"]["engine"] \
+        == "dask"
     south = json.loads((out / "south-230" / "run.json").read_text())
     north = json.loads((out / "north-230" / "run.json").read_text())
     assert south["options"]["scheduler"] == north["options"]["scheduler"]
