@@ -79,7 +79,8 @@ def cmd_audit(args: argparse.Namespace) -> int:
         max_operating_temperature_c=args.mot_c, structures_file=args.structures,
         overwrite=args.overwrite, workers=args.workers, scheduler=args.scheduler,
         threads=args.threads, corridor_buffer_m=args.corridor_buffer_m, skip_report=args.no_report,
-        tiled=True if args.tiled else False if args.in_memory else None, work_dir=Path(args.work_dir) if args.work_dir else None,
+        tiled=True if args.tiled else False if args.in_memory else None,
+        work_dir=Path(args.work_dir) if args.work_dir else None,
         **({"tile_points": args.tile_points} if args.tile_points else {}),
         **({"tile_overlap_m": args.tile_overlap_m} if args.tile_overlap_m is not None else {}),
     )
