@@ -275,6 +275,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
                                   min_area_m2=opts.building_min_area_m2)
         roof_idx = ground_idx[roofs.is_roof]
         info["ground_roof_patches"] = roofs.patches
+        info["ground_roof_cell_m"] = float(roofs.grid.cell)
         info["ground_roof_points"] = int(len(roof_idx))
         if len(roof_idx):
             model_roof_mask = np.zeros(cloud.n_points, bool)

@@ -953,6 +953,19 @@ def _judge_roof(members: np.ndarray, lk: _RoofLookups, t: _RoofTests) -> _RoofUn
     return _RoofUnit(members, flat, base(inner), wi[surface] * shape[1] + wj[surface])
 
 
+#: The roof grid of sparse ground, as a multiple of the finest cell (see find_ground_roofs).
+_SPARSE_ROOF_CELL = 1.5
+
+
+def _coarser_roof_cell(cell_m: float, points_per_cell: float,
+                       min_cell_points: float) -> float | None:
+    """The roof cell for ground with ``points_per_cell`` per occupied ``cell_m`` cell: None
+    to keep ``cell_m`` (dense enough, or no minimum), else the sparse ground's cell. [m]"""
+    if not min_cell_points > 0 or points_per_cell >= min_cell_points:
+        return None
+    return cell_m * _SPARSE_ROOF_CELL
+
+
 def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
                       cell_m: float = 1.0, min_height_m: float = 2.0,
                       min_step_m: float = 1.5, min_area_m2: float = 20.0,
@@ -961,7 +974,8 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
                       min_roof_hag_m: float = 1.0,
                       max_cell_gradient: float = 1.2,
                       max_gradient_change: float = 0.35,
-                      min_ring_share: float = 0.5) -> GroundRoofs:
+                      min_ring_share: float = 0.5,
+                      min_cell_points: float = 6.0) -> GroundRoofs:
     """Building roofs among the points a ground filter labelled ground.
 
     On steep terrain a morphological ground filter with a slope threshold fitted to the
@@ -1006,6 +1020,10 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     min_ring_share
         Least share of the ring cells holding ground points (a patch at the edge of the
         data, or ringed by gaps, is not judged).
+    min_cell_points
+        Least mean number of points per occupied cell. Sparser ground is searched on cells
+        1.5 times ``cell_m`` wide, with the ring kept about as wide in metres and
+        ``min_step_m`` grown in proportion (0: always ``cell_m``).
 
     Returns
     -------
@@ -1022,6 +1040,30 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     cell holding both a roof edge and the slope it meets has an intermediate gradient and
     would otherwise bridge the crease). A wall or a change of pitch between a roof and the
     ground breaks the link, smooth terrain does not.
+
+    A cell's plane needs at least four points, and a patch is planar cells linked edge to
+    edge. When fewer than about 60 % of the cells hold four points (site percolation on
+    the square grid), a roof falls apart into fragments below the least area and is
+    missed. With 1 m cells that happens below about 5 ground points per m².
+
+    The scene: a flat 10 m × 8 m roof 2.5 m above a level, 15 % or 40 % slope, 24 scenes
+    at each density. With 1 m cells the roof was found in all of them at 5 points per m²,
+    in 96 % at 4.5, in 42 % at 4, and in none at 3 or 2.
+
+    Below ``min_cell_points`` per occupied cell (the density is the points per occupied
+    cell of the ``cell_m`` grid), the search runs on cells 1.5 times as wide. Its step
+    test then asks 1.5 times ``min_step_m``, because a boundary cell's centre lies further
+    up a slope: a slope steep enough to pass as a step edge at 1 m would otherwise pass at
+    a lower gradient. On 18 scenes at each density (the same roof; hipped earth mounds
+    4 m high with flanks of 0.5, 0.8 and 1.0 rise/run, level or on a 30 % slope):
+    - the roof is found in all scenes from 2.5 to 5 points per m², in 67 % at 2 and in 17 %
+      at 1.5;
+    - mounds pass as roofs in 0–3 of 18 scenes, against 2 of 18 with 1 m cells at 6
+      points per m².
+
+    Sparse ground also breaks up into many small patches, and each is judged on its own:
+    a tile of a 10 km line at 4 points per m² had 1385 candidate patches and no roof, and
+    its classification took 0.83 s; with the wider cells it takes 0.60–0.64 s.
 
     A connected patch is a roof when its area lies within the bounds, its median height
     above a plane fitted to the lower cells of the surrounding ring is :math:`\\ge`
@@ -1089,6 +1131,16 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     cells, k, cid = occupied_cells(flat, grid.size, lookup=True)
     m = len(cells)
     del flat
+    coarser = _coarser_roof_cell(cell_m, n / m, min_cell_points)
+    if coarser is not None:
+        return find_ground_roofs(
+            xyz, which, cell_m=coarser, min_height_m=min_height_m,
+            min_step_m=min_step_m * coarser / cell_m,
+            min_area_m2=min_area_m2, max_area_m2=max_area_m2, max_cell_rms_m=max_cell_rms_m,
+            link_m=link_m, ring_cells=max(2, round(ring_cells * cell_m / coarser)),
+            min_step_share=min_step_share, min_roof_hag_m=min_roof_hag_m,
+            max_cell_gradient=max_cell_gradient, max_gradient_change=max_gradient_change,
+            min_ring_share=min_ring_share, min_cell_points=0.0)
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
     u -= ((ci + 0.5) * grid.cell)[k]  # offsets from the cell centre
