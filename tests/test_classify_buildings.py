@@ -145,8 +145,9 @@ def test_earth_mound_is_not_a_roof(grade, pitch, density):
     # at their toes, no walls) on a level or 30 % slope (geometry by construction): its
     # flanks meet at convex creases like a roof's planes, but nothing stands on step edges.
     # (A known limit, in find_ground_roofs' notes: over 18 scenes of mounds with flanks up
-    # to 1.0 rise/run, 0-3 pass as roofs at 2-5 points per m2 on 1.5 m cells, 2 at 6 points
-    # per m2 on 1 m cells; at 4 points per m2 this seed's 0.8 flanks are among them.)
+    # to 1.0 rise/run, 0-3 pass as roofs at 1.5-5.5 points per m2 on 1.5 m cells, 2-3 at
+    # 6-8 points per m2 on 1 m cells; at 4 points per m2 this seed's 0.8 flanks are among
+    # them.)
     rng = np.random.default_rng(5)
     xy = _sample(rng, 0.0, 70.0, 0.0, 70.0, density)
     x, y = xy[:, 0], xy[:, 1]
