@@ -292,10 +292,11 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     from .threads import blas_threads, inner_threads
     from .tiling import numpy_huge_page_requests
 
-    tiled, mode_reason = choose_mode(options, total_points, footprint_m2, inner_threads())
+    threads = inner_threads()
+    tiled, mode_reason = choose_mode(options, total_points, footprint_m2, threads)
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "mode_reason": mode_reason,
-                                 "threads": inner_threads(),
+                                 "threads": threads,
                                  # numpy's transparent-huge-page requests (tiling.small_pages)
                                  "numpy_huge_page_requests": numpy_huge_page_requests(),
                                  # BLAS / LAPACK threads (threads.blas_one_thread)
@@ -485,11 +486,11 @@ def choose_mode(options: AuditOptions, total_points: int, footprint_m2: float,
     if footprint_m2 > options.in_memory_max_footprint_m2:
         return True, (f"a bounding box of {footprint_m2 / 1e6:.1f} km², more than the "
                       f"{options.in_memory_max_footprint_m2 / 1e6:g} km² gridded in memory")
-    if threads >= 2 and total_points > options.tiled_min_points:
-        return True, (f"{total_points} points in the headers, more than "
-                      f"{options.tiled_min_points}, on {threads} threads: the tiles run in "
-                      f"parallel")
-    if threads < 2 and total_points > options.tiled_min_points:
+    if total_points > options.tiled_min_points:
+        if threads >= 2:
+            return True, (f"{total_points} points in the headers, more than "
+                          f"{options.tiled_min_points}, on {threads} threads: the tiles run "
+                          f"in parallel")
         return False, (f"{total_points} points in the headers on one thread: in memory (the "
                        f"faster run without parallel tiles)")
     return False, (f"{total_points} points in the headers, at most {options.tiled_min_points}: "

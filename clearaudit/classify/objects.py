@@ -1098,6 +1098,7 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     filter for the terrain classification of airborne LIDAR data. ISPRS J. Photogramm.
     Remote Sens. 77, 21-30 (the slope-threshold trade-off that leaves low roofs as ground).
     """
+    given = dict(locals())  # the arguments, for the search on a coarser grid below
     if cell_m <= 0 or min_area_m2 <= 0 or max_area_m2 < min_area_m2 or ring_cells < 2:
         raise ValueError("find_ground_roofs needs a positive cell, 0 < min_area <= max_area "
                          "and a ring of at least 2 cells")
@@ -1133,15 +1134,11 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     m = len(cells)
     del flat
     coarser = _coarser_roof_cell(cell_m, n / m, min_cell_points)
-    if coarser is not None:
-        return find_ground_roofs(
-            xyz, which, cell_m=coarser, min_height_m=min_height_m,
-            min_step_m=min_step_m * coarser / cell_m,
-            min_area_m2=min_area_m2, max_area_m2=max_area_m2, max_cell_rms_m=max_cell_rms_m,
-            link_m=link_m, ring_cells=max(2, round(ring_cells * cell_m / coarser)),
-            min_step_share=min_step_share, min_roof_hag_m=min_roof_hag_m,
-            max_cell_gradient=max_cell_gradient, max_gradient_change=max_gradient_change,
-            min_ring_share=min_ring_share, min_cell_points=0.0)
+    if coarser is not None:  # sparse ground: the same search on the coarser grid
+        return find_ground_roofs(**{
+            **given, "cell_m": coarser, "min_step_m": min_step_m * coarser / cell_m,
+            "ring_cells": max(2, round(ring_cells * cell_m / coarser)),
+            "min_cell_points": 0.0})
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
     u -= ((ci + 0.5) * grid.cell)[k]  # offsets from the cell centre
