@@ -6,5 +6,7 @@ from setuptools import Extension, setup
 setup(ext_modules=cythonize(
     [Extension(f"clearaudit.classify.{name}", [f"clearaudit/classify/{name}.pyx"],
                extra_compile_args=["-O3", "-ffp-contract=off"])
-     for name in ("_neighbours", "_grid")],
+     for name in ("_neighbours", "_grid")]
+    + [Extension("clearaudit.io._lazlayers", ["clearaudit/io/_lazlayers.pyx"],
+                 extra_compile_args=["-O3"])],
     compiler_directives={"language_level": 3}))

@@ -373,7 +373,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
         write_classified(cloud, out / "classified.laz", cls.classification,
                          {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
                                                   "height above ground [m]")},
-                         records=records)
+                         records=records,
+                         report=getattr(record, "extra", {}).get("classified_copy"))
     return {"line": config.line.name, "spans": len(model.spans),
             "wires": len(span_rows),
             "fitted": sum(r.get("status") == "fitted" for r in span_rows),

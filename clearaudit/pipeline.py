@@ -599,8 +599,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # the workers.
                 tile_points = options.tile_points
                 parts = plan_parts(setup, SPLIT_PART_POINTS)
-                # each part also keeps its raw point records (compressed inputs) in the work
-                # folder, for classified.laz
+                # each part also keeps what classified.laz needs of its points (compressed
+                # inputs) in the work folder: 3 bytes a point when the compressed layers of
+                # layered inputs are copied, else the raw point records
                 records, record.extra["classified_copy"] = plan_record_scratch(
                     paths, work / "records",
                     reserve_bytes=_reserve_bytes(paths, setup.total_points, tiled=True))
@@ -800,7 +801,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         max_code=max(counts) if counts else 0,
                         extra_dims={"height_above_ground": (np.float32,
                                                             "height above ground [m]")},
-                        records=records, chunk_size=WRITE_CHUNK_POINTS)
+                        records=records, chunk_size=WRITE_CHUNK_POINTS,
+                        report=record.extra.get("classified_copy"))
 
                 cls_summary = _ClassCounts(dict(sorted(counts.items())))  # completion order: sorted
                 summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,

@@ -2,7 +2,8 @@
 
 The raw point records of compressed inputs are kept in uncompressed scratch files while they
 are decoded the first time; the classified copy reads them instead of decoding the inputs a
-second time. The reference for every check is the copy written by decoding the inputs again
+second time (for layered LAZ inputs whose compressed layers the copy keeps, only 3 bytes a
+point: tests/test_lazcopy.py). The reference for every check is the copy written by decoding the inputs again
 (the path that existed before the scratch): the two files must be identical byte for byte.
 laspy 2.7 (an independent reader) supplies the input records that are compared with the output.
 ASPRS LAS Specification 1.4 R15 (2019): point formats 0-10 (Tables 7-16), formats 0-5 in
@@ -154,19 +155,31 @@ def test_split_ranges_copy_identical(tmp_path, no_decoding, fmt):
     assert raw == b"".join(laspy.read(p).points.array.tobytes() for p in (a, b))
 
 
-def test_read_range_keeps_every_decoded_record(tmp_path):
+@pytest.mark.parametrize("layered_output", [False, True])
+def test_read_range_keeps_every_decoded_record(tmp_path, layered_output):
+    # a layered LAZ input (format 7): whole records when the copy re-compresses them, else
+    # (layers copied) the return, flags and class bytes of each point and the range's bounds
     a = random_file(tmp_path / "a.laz", 7, 1000, 9)
     setup = read_setup(a)
-    records, _ = plan_record_scratch([a], tmp_path / "s")
+    records, info = plan_record_scratch([a], tmp_path / "s", layered_output=layered_output)
+    assert records.layers == layered_output
+    assert info["copy"] == ("layers" if layered_output else "records")
     with records.writer(0, 300) as sink:
         n = sum(c[3] for c in read_range(setup, 0, 300, 800, chunk_size=128, records_to=sink,
                                          keep=lambda xy: xy[:, 0] < 0))  # keeps none
     assert n == 500
-    dtype_size = laspy.read(a).points.array.dtype.itemsize
-    assert records.path(0, 300).read_bytes() == laspy.read(a).points.array.tobytes()[
-        300 * dtype_size:800 * dtype_size]
+    src = laspy.read(a).points.array  # laspy decodes every field (reference library)
+    size = src.dtype.itemsize
+    raw = src.view(np.uint8).reshape(len(src), size)[300:800]
+    if layered_output:
+        assert records.path(0, 300).read_bytes() == raw[:, 14:17].tobytes()
+        lo, hi = records.bounds([(records.path(0, 300), 500)])
+        for axis, name in enumerate("XYZ"):
+            assert (lo[axis], hi[axis]) == (src[name][300:800].min(), src[name][300:800].max())
+    else:
+        assert records.path(0, 300).read_bytes() == raw.tobytes()
     # an incomplete scratch (points 0-300 missing) is not used: the input is decoded
-    assert records.ranges(0, dtype_size, 1000) is None
+    assert records.ranges(0, records.record_size(size), 1000) is None
 
 
 def test_plan_falls_back_without_room_or_without_laz(tmp_path, monkeypatch):
@@ -181,8 +194,9 @@ def test_plan_falls_back_without_room_or_without_laz(tmp_path, monkeypatch):
     assert records is None and "not enough free disk" in info["reason"]
     assert not (tmp_path / "s").exists()
     # the margin: 1 GiB at least on top of the scratch and the reserve
+    # (a layered input whose layers the copy keeps: 3 bytes a point)
     monkeypatch.setattr(las_mod.shutil, "disk_usage",
-                        lambda p: usage(10**12, 0, 100 * 30 + 5000 + (1 << 30)))
+                        lambda p: usage(10**12, 0, 100 * 3 + 5000 + (1 << 30)))
     assert plan_record_scratch([a], tmp_path / "s", reserve_bytes=5000)[0] is not None
     assert plan_record_scratch([a], tmp_path / "s", reserve_bytes=5001)[0] is None
 
@@ -233,6 +247,14 @@ def _no_room(monkeypatch):
     monkeypatch.setattr(las_mod.shutil, "disk_usage", lambda p: usage(10**9, 10**9, 1000))
 
 
+def _same_points(a: Path, b: Path) -> None:
+    one, other = laspy.read(a), laspy.read(b)
+    assert one.points.array.tobytes() == other.points.array.tobytes()
+    for name in ("point_count", "mins", "maxs", "number_of_points_by_return", "scales",
+                 "offsets"):
+        np.testing.assert_array_equal(getattr(one.header, name), getattr(other.header, name))
+
+
 def _leftovers(folder: Path) -> list[str]:
     return sorted(p.name for p in folder.iterdir() if p.name.startswith(".clearaudit-"))
 
@@ -243,15 +265,17 @@ def test_run_scratch_equals_decoding_again(corridor, tmp_path, monkeypatch, tile
         # the writer's decoder (inputs and output share point format 6: raw record copy)
         m.setattr(las_mod, "_record_bytes", lambda *a: pytest.fail("decoded a second time"))
         with_scratch = _audit(corridor, tmp_path / "scratch" / "out", tiled=tiled)
-    assert with_scratch["records_from"] == "scratch"
+    assert with_scratch["records_from"] == "scratch" and with_scratch["copy"] == "layers"
     assert with_scratch["scratch_files"] == [0, 1]
     assert _leftovers(tmp_path / "scratch") == []  # scratch removed after success
     with monkeypatch.context() as m:
         _no_room(m)
         fallback = _audit(corridor, tmp_path / "decoded" / "out", tiled=tiled)
     assert fallback["records_from"] == "inputs" and "not enough free disk" in fallback["reason"]
-    a = (tmp_path / "scratch" / "out" / "classified.laz").read_bytes()
-    assert a == (tmp_path / "decoded" / "out" / "classified.laz").read_bytes()
+    # the layers of the two inputs are copied chunk by chunk, so the chunking differs from
+    # the re-compressed copy: the same points and header statistics (laspy decodes both)
+    _same_points(tmp_path / "scratch" / "out" / "classified.laz",
+                 tmp_path / "decoded" / "out" / "classified.laz")
     # every input point in input order (laspy reads the inputs: reference library)
     out = laspy.read(tmp_path / "scratch" / "out" / "classified.laz")
     src = np.concatenate([laspy.read(p).points.array for p in corridor["clouds"]])
@@ -266,8 +290,7 @@ def test_dask_run_with_scratch_equals_in_process(corridor, tmp_path, monkeypatch
         _audit(corridor, tmp_path / "decoded", tiled=True)
     info = _audit(corridor, tmp_path / "dask", tiled=True, workers=2)
     assert info["records_from"] == "scratch"
-    assert (tmp_path / "dask" / "classified.laz").read_bytes() == \
-        (tmp_path / "decoded" / "classified.laz").read_bytes()
+    _same_points(tmp_path / "dask" / "classified.laz", tmp_path / "decoded" / "classified.laz")
     assert _leftovers(tmp_path) == []
 
 
@@ -288,6 +311,7 @@ def test_scratch_removed_after_an_error(corridor, tmp_path, monkeypatch, tiled):
         monkeypatch.setattr(outputs_mod, name, failing_writer)
     with pytest.raises(RuntimeError, match="simulated"):
         _audit(corridor, tmp_path / "out", tiled=tiled)
-    assert len(seen) == 2 and not any(p.exists() for p in seen)
+    # two point ranges, each with its bytes (.rec) and coordinate bounds (.box)
+    assert len(seen) == 4 and not any(p.exists() for p in seen)
     assert _leftovers(tmp_path) == []
     assert not (tmp_path / "out").exists()

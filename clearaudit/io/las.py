@@ -50,6 +50,8 @@ from .. import __version__
 from ..cloud import Cloud, SourceInfo
 from ..errors import InputError
 from .crs import crs_label, crs_to_wkt, crs_unit_names, crs_units_m, parse_crs_option, same_crs
+from .lazcopy import SIDE_BYTES as _LAYER_SIDE_BYTES
+from .lazcopy import SIDE_SIZE as _LAYER_SIDE_SIZE
 
 logger = logging.getLogger(__name__)
 
@@ -154,9 +156,24 @@ def _chunks(reader: laspy.LasReader, path: Path, chunk_size: int):
         yield chunk
 
 
-def _open_reader(path: Path) -> laspy.LasReader:
+#: The LAZ layers :func:`read_range` uses (x, y with the returns and channel, z, class); the
+#: others of a layered file (point formats 6-10) are not decoded.
+_XYZ_CLASS_LAYERS = (laspy.DecompressionSelection.XY_RETURNS_CHANNEL
+                     | laspy.DecompressionSelection.Z
+                     | laspy.DecompressionSelection.CLASSIFICATION)
+
+
+#: Fields decoded with the x/y layer of a layered LAZ file.
+_XY_LAYER_FIELDS = frozenset({"return_number", "number_of_returns", "scanner_channel"})
+
+
+def _open_reader(path: Path, selection: Any = None) -> laspy.LasReader:
+    """Open a LAS/LAZ file; ``selection`` (a ``laspy.DecompressionSelection``) limits the
+    layers decoded from a layered LAZ file (None: all)."""
     with _las_errors(path, "open"):
-        return laspy.open(str(path), mode="r")
+        if selection is None:
+            return laspy.open(str(path), mode="r")
+        return laspy.open(str(path), mode="r", decompression_selection=selection)
 
 
 def file_sha256(path: str | Path, block_size: int = 1 << 20) -> str:
@@ -328,40 +345,59 @@ class _Shift:
 #: much, and at least a tenth of the scratch. [bytes]
 SCRATCH_MARGIN_BYTES = 1 << 30
 _SCRATCH_SUFFIX = ".rec"
+_BOUNDS_SUFFIX = ".box"
 
 
 @dataclass(frozen=True)
 class RecordScratch:
-    """Uncompressed copies of the inputs' point records, written while they are decoded.
+    """What the classified copy needs of the inputs' points, kept while they are decoded.
 
-    A compressed input is decoded once when it is read; its raw point records (the bytes
-    of each point as the file stores them, before any culling) are appended to scratch files,
-    and the classified copy reads them back instead of decoding the input again. A file is
-    kept as one or more point ranges, each in its own scratch file (the tiled run decodes
-    ranges in parallel tasks, possibly on other machines sharing the folder).
+    A compressed input is decoded once when it is read. What the classified copy needs of
+    its points (every point, before any culling) is appended to scratch files, so the copy
+    is written without decoding the input again. A file is kept as one or more point ranges,
+    each in its own scratch file (the tiled run decodes ranges in parallel tasks, possibly
+    on other machines sharing the folder).
+
+    Two kinds:
+
+    * ``layers`` (layered LAZ inputs of point formats 6-8, see :mod:`clearaudit.io.lazcopy`):
+      the copy keeps the inputs' compressed layers and codes only the classification and the
+      new extra bytes, so the scratch holds 3 bytes per point (return byte, flags byte,
+      class) and, per range, the integer bounds of the coordinates (a ``.box`` file); the
+      reader then decodes only the layers it uses (x, y, z and class) where it can;
+    * otherwise the raw point records (the bytes of each point as the file stores them),
+      which the copy re-compresses.
 
     Attributes
     ----------
     folder
         Folder of the scratch files (the run's work folder or a temporary folder).
     file_ids
-        Inputs (index in read order) whose records are kept; the others (uncompressed LAS,
-        as cheap to read as a scratch file) are read from the input file itself.
+        Inputs (index in read order) that are kept; the others (uncompressed LAS, as cheap
+        to read as a scratch file) are read from the input file itself.
+    layers
+        The kind (see above).
     """
 
     folder: Path
     file_ids: frozenset[int]
+    layers: bool = False
 
     def path(self, file_id: int, start: int = 0) -> Path:
         """Scratch file of the point range of file ``file_id`` that begins at ``start``."""
         return Path(self.folder) / f"f{int(file_id):06d}_{int(start):013d}{_SCRATCH_SUFFIX}"
 
+    def record_size(self, file_record_size: int) -> int:
+        """Bytes kept per point of a file whose point records have this size."""
+        return _LAYER_SIDE_SIZE if self.layers else int(file_record_size)
+
     @contextmanager
-    def writer(self, file_id: int, start: int = 0) -> Iterator[BinaryIO | None]:
+    def writer(self, file_id: int, start: int = 0) -> Iterator[_ScratchSink | None]:
         """Open the scratch file of one point range for writing (None: file not kept).
 
-        The records go to a ``.part`` file renamed on success, so a scratch file that
-        exists is complete; on any error the partial file is removed.
+        Yields a sink whose ``keep(chunk)`` appends a decoded chunk. The bytes go to a
+        ``.part`` file renamed on success (after the range's bounds, for ``layers``), so a
+        scratch file that exists is complete; on any error the partial file is removed.
         """
         if int(file_id) not in self.file_ids:
             yield None
@@ -370,7 +406,10 @@ class RecordScratch:
         partial = final.with_name(final.name + ".part")
         try:
             with open(partial, "wb") as fh:
-                yield fh
+                sink = _ScratchSink(fh, self.layers)
+                yield sink
+            if self.layers:
+                sink.bounds().tofile(final.with_suffix(_BOUNDS_SUFFIX))
             os.replace(partial, final)
         except BaseException:
             partial.unlink(missing_ok=True)
@@ -380,9 +419,9 @@ class RecordScratch:
                ) -> list[tuple[Path, int]] | None:
         """The scratch files of one input in point order, with their point counts.
 
-        Returns None when the file is not kept or its scratch files do not hold exactly
-        ``point_count`` records of ``record_size`` bytes, one range after the other from
-        point 0 (then the input is decoded instead).
+        ``record_size`` is the bytes kept per point (:meth:`record_size`). Returns None when
+        the file is not kept or its scratch files do not hold exactly ``point_count`` points,
+        one range after the other from point 0 (then the input is decoded instead).
         """
         if int(file_id) not in self.file_ids:
             return None
@@ -404,10 +443,55 @@ class RecordScratch:
             at += size // record_size
         return out if at == int(point_count) else None
 
+    def bounds(self, ranges: list[tuple[Path, int]]) -> tuple[np.ndarray, np.ndarray] | None:
+        """(3,) minimum and maximum integer coordinates over the ranges (``layers`` only);
+        None when a range's bounds are missing."""
+        lo = np.full(3, np.iinfo(np.int64).max, dtype=np.int64)
+        hi = np.full(3, np.iinfo(np.int64).min, dtype=np.int64)
+        for path, _ in ranges:
+            box = path.with_suffix(_BOUNDS_SUFFIX)
+            if not box.exists():
+                return None
+            values = np.fromfile(box, dtype="<i8")
+            if values.shape != (6,):
+                return None
+            lo = np.minimum(lo, values[:3])
+            hi = np.maximum(hi, values[3:])
+        return lo, hi
+
+
+class _ScratchSink:
+    """Appends decoded chunks to one scratch file (see :class:`RecordScratch`)."""
+
+    def __init__(self, fh: BinaryIO, layers: bool):
+        self.fh = fh
+        self.layers = layers
+        self._lo = np.full(3, np.iinfo(np.int64).max, dtype=np.int64)
+        self._hi = np.full(3, np.iinfo(np.int64).min, dtype=np.int64)
+
+    def keep(self, chunk: Any) -> None:
+        records = np.ascontiguousarray(chunk.array)
+        if not self.layers:
+            self.fh.write(records.view(np.uint8))
+            return
+        m = len(records)
+        if not m:
+            return
+        raw = records.view(np.uint8).reshape(m, records.dtype.itemsize)
+        self.fh.write(np.ascontiguousarray(raw[:, _LAYER_SIDE_BYTES]))
+        for axis, name in enumerate("XYZ"):
+            ints = records[name]
+            self._lo[axis] = min(self._lo[axis], int(ints.min()))
+            self._hi[axis] = max(self._hi[axis], int(ints.max()))
+
+    def bounds(self) -> np.ndarray:
+        return np.concatenate((self._lo, self._hi)).astype("<i8")
+
 
 def plan_record_scratch(paths: str | Path | Iterable[str | Path], folder: str | Path, *,
-                        reserve_bytes: int = 0) -> tuple[RecordScratch | None, dict[str, Any]]:
-    """Decide whether the raw point records of the inputs are kept in scratch files.
+                        reserve_bytes: int = 0, layered_output: bool = True
+                        ) -> tuple[RecordScratch | None, dict[str, Any]]:
+    """Decide what of the inputs' points is kept in scratch files for the classified copy.
 
     Parameters
     ----------
@@ -418,34 +502,48 @@ def plan_record_scratch(paths: str | Path | Iterable[str | Path], folder: str | 
         that of its nearest existing parent) is checked with ``shutil.disk_usage``.
     reserve_bytes
         Disk space the run writes besides the scratch (work files, outputs). [bytes]
+    layered_output
+        The classified copy is compressed (LAZ), so layered inputs can have their layers
+        copied (:mod:`clearaudit.io.lazcopy`).
 
     Returns
     -------
     (RecordScratch or None, dict)
         The scratch (None: every input is decoded again for the classified copy) and what
         was decided, for the run record: ``records_from`` (``"scratch"`` or ``"inputs"``),
-        ``reason``, ``scratch_files`` (input indices kept), ``scratch_bytes``,
-        ``disk_free_bytes``, ``disk_needed_bytes``.
+        ``copy`` (``"layers"``: compressed layers copied, only the classes and new extra
+        bytes coded; ``"records"``: points re-compressed), ``reason``, ``scratch_files``
+        (input indices kept), ``scratch_bytes``, ``disk_free_bytes``, ``disk_needed_bytes``.
 
     Notes
     -----
     Only compressed (LAZ) inputs are kept: an uncompressed LAS input is read as cheaply as a
-    scratch file would be. The scratch holds ``point_count x record_length`` bytes per kept
-    input (the uncompressed LAS size less its header); it is used when
+    scratch file would be. When every input is a layered LAZ file that
+    :func:`clearaudit.io.lazcopy.blocker` accepts, the scratch holds 3 bytes per point;
+    otherwise ``point_count x record_length`` bytes per kept input (the uncompressed LAS size
+    less its header). It is used when
 
     .. math:: free \\ge scratch + reserve + \\max(1\\,GiB,\\ 0.1\\, scratch)
     """
     files = resolve_inputs(paths)
     folder = Path(folder)
     kept: list[int] = []
-    scratch_bytes = 0
+    headers = []
     for file_id, path in enumerate(files):
         with _open_reader(path) as reader:
             header = reader.header
-            if header.are_points_compressed and header.point_count > 0:
-                kept.append(file_id)
-                scratch_bytes += int(header.point_count) * header.point_format.dtype().itemsize
-    info: dict[str, Any] = {"records_from": "inputs", "reason": "", "scratch_files": kept,
+        headers.append(header)
+        if header.are_points_compressed and header.point_count > 0:
+            kept.append(file_id)
+    from .lazcopy import blocker
+
+    why_not = blocker(headers) if layered_output else "the classified copy is not compressed"
+    layers = why_not is None
+    scratch_bytes = sum(int(headers[i].point_count)
+                        * (_LAYER_SIDE_SIZE if layers else headers[i].point_format.dtype().itemsize)
+                        for i in kept)
+    info: dict[str, Any] = {"records_from": "inputs", "copy": "records",
+                            "reason": "", "scratch_files": kept,
                             "scratch_bytes": scratch_bytes, "disk_free_bytes": None,
                             "disk_needed_bytes": None}
     if not kept:
@@ -467,9 +565,16 @@ def plan_record_scratch(paths: str | Path | Iterable[str | Path], folder: str | 
         return None, info
     folder.mkdir(parents=True, exist_ok=True)
     info["records_from"] = "scratch"
-    info["reason"] = ("raw point records of the compressed inputs kept while they were "
-                      "decoded; the classified copy reads them instead of decoding again")
-    return RecordScratch(folder=folder, file_ids=frozenset(kept)), info
+    if layers:
+        info["copy"] = "layers"
+        info["reason"] = ("layered LAZ inputs: the classified copy keeps their compressed "
+                          "layers and codes only the classes and new extra bytes, with the "
+                          "return byte and class of each point kept while they were decoded")
+    else:
+        info["reason"] = ("raw point records of the compressed inputs kept while they were "
+                          f"decoded ({why_not}, so their layers are not copied); the "
+                          "classified copy reads them instead of decoding again")
+    return RecordScratch(folder=folder, file_ids=frozenset(kept), layers=layers), info
 
 
 def _record_sink(records: RecordScratch | None, file_id: int, start: int = 0):
@@ -477,10 +582,10 @@ def _record_sink(records: RecordScratch | None, file_id: int, start: int = 0):
     return nullcontext(None) if records is None else records.writer(file_id, start)
 
 
-def _keep_records(sink: BinaryIO | None, chunk: Any) -> None:
-    """Append a decoded chunk's raw point records to a scratch file (no copy)."""
+def _keep_records(sink: _ScratchSink | None, chunk: Any) -> None:
+    """Append what the scratch keeps of a decoded chunk (see :class:`RecordScratch`)."""
     if sink is not None:
-        sink.write(np.ascontiguousarray(chunk.array).view(np.uint8))
+        sink.keep(chunk)
 
 
 # =============================================================================== reading
@@ -577,11 +682,16 @@ def read_cloud(
     fields_out = {name: np.empty(total, dtype=dtypes[name]) for name in wanted}
     n_points = 0
     sources: list[SourceInfo] = []
+    # a layered LAZ file decodes only the layers used: x, y (with the returns and the
+    # channel), z and class, unless other fields are asked for or whole records are kept
+    selection = (_XYZ_CLASS_LAYERS if set(wanted) <= _XY_LAYER_FIELDS
+                 and (records is None or records.layers) else None)
     for file_id, meta in enumerate(metas):
         header = meta.header
         shift = _Shift.between(header.scales, header.offsets, origin_arr)
         n_file = 0
-        with _open_reader(meta.path) as reader, _record_sink(records, file_id) as sink:
+        with _open_reader(meta.path, selection) as reader, \
+                _record_sink(records, file_id) as sink:
             for chunk in _chunks(reader, meta.path, chunk_size):
                 m = len(chunk)
                 if n_points + m > total:
@@ -804,8 +914,9 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     chunk_size
         Points decoded per step. [points]
     records_to
-        Optional binary file (``RecordScratch.writer``) to which the raw point records of
-        every decoded point, ``keep`` or not, are appended chunk by chunk.
+        Optional sink (``RecordScratch.writer``) that keeps what the classified copy needs
+        of every decoded point, ``keep`` or not, chunk by chunk. Unless it keeps whole
+        records, only the x, y, z and class layers of a layered LAZ file are decoded.
 
     Yields
     ------
@@ -828,7 +939,8 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
         raise ValueError("start must lie between 0 and stop")
     unit = setup.unit_m
     origin = setup.origin
-    with _open_reader(path) as reader:
+    whole = records_to is not None and not records_to.layers
+    with _open_reader(path, None if whole else _XYZ_CLASS_LAYERS) as reader:
         shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
         if start:
             with _las_errors(path):
@@ -1354,6 +1466,16 @@ def _write_atomically(path: Path, header: Any, compress: bool,
     ``produce(writer)`` writes the points with ``writer.write_points``; on any exception the
     temporary file is removed and ``path`` is left untouched.
     """
+    def write(fh: BinaryIO) -> None:
+        with laspy.LasWriter(fh, header=header, do_compress=compress, closefd=False) as w:
+            produce(w)
+
+    _write_file_atomically(path, write)
+
+
+def _write_file_atomically(path: Path, write: Callable[[BinaryIO], None]) -> None:
+    """``write(fh)`` into a temporary file in the folder of ``path``, renamed to ``path`` on
+    success; on any exception the temporary file is removed and ``path`` left untouched."""
     folder = path.parent
     if not folder.is_dir():
         raise InputError(folder, "output folder does not exist")
@@ -1362,8 +1484,7 @@ def _write_atomically(path: Path, header: Any, compress: bool,
     tmp = Path(tmp_name)
     try:
         with os.fdopen(fd, "wb") as fh:
-            with laspy.LasWriter(fh, header=header, do_compress=compress, closefd=False) as w:
-                produce(w)
+            write(fh)
         umask = os.umask(0)
         os.umask(umask)
         os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the file normal permissions
@@ -1371,6 +1492,50 @@ def _write_atomically(path: Path, header: Any, compress: bool,
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def _copy_layers(path: Path, header: Any, metas: Sequence[_FileMeta],
+                 file_values: Sequence[Callable[[int, int], tuple]],
+                 records: RecordScratch | None, report: dict[str, Any] | None) -> bool:
+    """Write the classified copy by copying the inputs' compressed layers
+    (:mod:`clearaudit.io.lazcopy`) when the scratch was kept for it; False when it cannot
+    (then the caller re-compresses the points, decoding the inputs again)."""
+    from . import lazcopy
+
+    if records is None or not records.layers:
+        return False
+    why = (None if _suffix_compression(path) else "the classified copy is not compressed")
+    why = why or lazcopy.blocker([m.header for m in metas])
+    first = metas[0].header
+    if why is None and (header.point_format.id != first.point_format.id
+                        or not _is_record_prefix(first.point_format, header.point_format)
+                        or _axes_to_rescale(first, header)):
+        why = "the output records do not extend the inputs' records"
+    ranges, bounds = [], []
+    for file_id, meta in enumerate(metas):
+        if why is not None:
+            break
+        found = records.ranges(file_id, lazcopy.SIDE_SIZE, meta.point_count)
+        box = records.bounds(found) if found is not None else None
+        if box is None:
+            why = f"the scratch of {meta.path.name} is incomplete"
+            break
+        ranges.append(found)
+        bounds.append(box)
+    if why is None:
+        try:
+            _write_file_atomically(path, lambda fh: lazcopy.write_copy(
+                fh, header, metas, file_values, ranges, bounds))
+            return True
+        except lazcopy.ChannelsChange as exc:
+            why = str(exc)
+    logger.info("%s: compressed layers not copied (%s); decoding the inputs again",
+                path.name, why)
+    if report is not None:
+        report["copy"] = "records"
+        report["records_from"] = "inputs"
+        report["reason"] = f"{why}: the inputs were decoded again and re-compressed"
+    return False
 
 
 # =============================================================================== classified output
@@ -1382,6 +1547,7 @@ def write_classified(
     *,
     chunk_size: int = DEFAULT_CHUNK_SIZE,
     records: RecordScratch | None = None,
+    report: dict[str, Any] | None = None,
 ) -> Path:
     """Write every point of the original input files with new class codes and extra dims.
 
@@ -1404,7 +1570,12 @@ def write_classified(
         Points streamed per step. [points]
     records
         The :class:`RecordScratch` the cloud was read with: the point records of its files
-        are read from the scratch files instead of being decoded again (same output bytes).
+        are read from the scratch files instead of being decoded again (same output bytes),
+        or, for layered LAZ inputs, their compressed layers are copied
+        (:mod:`clearaudit.io.lazcopy`; the same points).
+    report
+        The run record's ``classified_copy`` (from :func:`plan_record_scratch`), updated
+        when the copy falls back to decoding the inputs again.
 
     Returns
     -------
@@ -1468,47 +1639,67 @@ def write_classified(
     bounds = np.searchsorted(source_id if order is None else source_id[order],
                              np.arange(len(metas) + 1))
 
+    def prepare(file_id: int) -> Callable[[int, int], tuple]:
+        """``values(start, stop)`` of one input file (arrays over the file when the cloud
+        holds only part of it)."""
+        meta = metas[file_id]
+        lo, hi = int(bounds[file_id]), int(bounds[file_id + 1])
+        rows = slice(lo, hi) if order is None else order[lo:hi]
+        count = meta.point_count
+        idx = source_index[rows]
+        if len(idx) and (idx.min() < 0 or idx.max() >= count):
+            raise ValueError(f"cloud.source_index is out of range for {meta.path.name}")
+        if (order is None and len(idx) == count
+                and np.array_equal(idx, np.arange(count, dtype=idx.dtype))):
+            # Every point of the file, in file order: the cloud's arrays as they are.
+            file_codes = codes[rows]
+            file_extras = {k: v[rows] for k, (v, _) in new_extras.items()}
+
+            def whole(start: int, stop: int):
+                sl = slice(start, stop)
+                return (np.ones(stop - start, dtype=bool), file_codes[sl],
+                        {k: a[sl] for k, a in file_extras.items()})
+
+            return whole
+        has_new = np.zeros(count, dtype=bool)
+        has_new[idx] = True
+        if int(has_new.sum()) != len(idx):
+            raise ValueError(f"cloud.source_index repeats points of {meta.path.name}")
+        new_codes = np.zeros(count, dtype=np.uint8)
+        new_codes[idx] = codes[rows]
+        full_extras = {}
+        for k, (v, _) in new_extras.items():
+            fill = np.nan if np.issubdtype(v.dtype, np.floating) else 0
+            arr = np.full(count, fill, dtype=v.dtype)
+            arr[idx] = v[rows]
+            full_extras[k] = arr
+
+        def values(start: int, stop: int):
+            sl = slice(start, stop)
+            return has_new[sl], new_codes[sl], {k: a[sl] for k, a in full_extras.items()}
+
+        return values
+
+    prepared: dict[int, Callable[[int, int], tuple]] = {}  # the file being written only
+
+    def file_values(file_id: int) -> Callable[[int, int], tuple]:
+        def values(start: int, stop: int):
+            if file_id not in prepared:
+                prepared.clear()
+                prepared[file_id] = prepare(file_id)
+            return prepared[file_id](start, stop)
+
+        return values
+
+    per_file = [file_values(file_id) for file_id in range(len(metas))]
+    if _copy_layers(path, header, metas, per_file, records, report):
+        return path
+    prepared.clear()
+
     def produce(writer: Any) -> None:
         for file_id, meta in enumerate(metas):
-            lo, hi = int(bounds[file_id]), int(bounds[file_id + 1])
-            rows = slice(lo, hi) if order is None else order[lo:hi]
-            count = meta.point_count
-            idx = source_index[rows]
-            if len(idx) and (idx.min() < 0 or idx.max() >= count):
-                raise ValueError(f"cloud.source_index is out of range for {meta.path.name}")
-            if (order is None and len(idx) == count
-                    and np.array_equal(idx, np.arange(count, dtype=idx.dtype))):
-                # Every point of the file, in file order: the cloud's arrays as they are.
-                file_codes = codes[rows]
-                file_extras = {k: v[rows] for k, (v, _) in new_extras.items()}
-
-                def whole(start: int, stop: int, file_codes=file_codes,
-                          file_extras=file_extras):
-                    sl = slice(start, stop)
-                    return (np.ones(stop - start, dtype=bool), file_codes[sl],
-                            {k: a[sl] for k, a in file_extras.items()})
-
-                _stream_file(writer, meta, whole, chunk_size, _kept(records, file_id, meta))
-                continue
-            has_new = np.zeros(count, dtype=bool)
-            has_new[idx] = True
-            if int(has_new.sum()) != len(idx):
-                raise ValueError(f"cloud.source_index repeats points of {meta.path.name}")
-            new_codes = np.zeros(count, dtype=np.uint8)
-            new_codes[idx] = codes[rows]
-            full_extras = {}
-            for k, (v, _) in new_extras.items():
-                fill = np.nan if np.issubdtype(v.dtype, np.floating) else 0
-                arr = np.full(count, fill, dtype=v.dtype)
-                arr[idx] = v[rows]
-                full_extras[k] = arr
-
-            def values(start: int, stop: int, has_new=has_new, new_codes=new_codes,
-                       full_extras=full_extras):
-                sl = slice(start, stop)
-                return has_new[sl], new_codes[sl], {k: a[sl] for k, a in full_extras.items()}
-
-            _stream_file(writer, meta, values, chunk_size, _kept(records, file_id, meta))
+            _stream_file(writer, meta, per_file[file_id], chunk_size,
+                         _kept(records, file_id, meta))
 
     _write_atomically(path, header, compress, produce)
     return path
@@ -1568,6 +1759,7 @@ def write_classified_stream(
     extra_dims: dict[str, tuple[Any, str]] | None = None,
     chunk_size: int = DEFAULT_CHUNK_SIZE,
     records: RecordScratch | None = None,
+    report: dict[str, Any] | None = None,
 ) -> Path:
     """Write every point of the input files with new codes asked for chunk by chunk.
 
@@ -1593,7 +1785,12 @@ def write_classified_stream(
         Points streamed per step. [points]
     records
         The :class:`RecordScratch` the inputs were split with (:func:`read_range`
-        ``records_to``): point records are read from its files instead of being decoded.
+        ``records_to``): point records are read from its files instead of being decoded,
+        or, for layered LAZ inputs, their compressed layers are copied
+        (:mod:`clearaudit.io.lazcopy`).
+    report
+        The run record's ``classified_copy``, updated when the copy falls back to decoding
+        the inputs again.
 
     Returns
     -------
@@ -1620,14 +1817,22 @@ def write_classified_stream(
     extras = {k: (np.dtype(t), str(d)[:31]) for k, (t, d) in (extra_dims or {}).items()}
     header = _classified_header(metas, crs, int(max_code), extras)
 
+    def file_values(file_id: int) -> Callable[[int, int], tuple]:
+        def chunk_values(start: int, stop: int):
+            has_new, codes, more = values(file_id, start, stop)
+            return (np.asarray(has_new, dtype=bool), np.asarray(codes, dtype=np.uint8),
+                    {k: np.asarray(more[k], dtype=extras[k][0]) for k in extras})
+
+        return chunk_values
+
+    per_file = [file_values(file_id) for file_id in range(len(metas))]
+    if _copy_layers(path, header, metas, per_file, records, report):
+        return path
+
     def produce(writer: Any) -> None:
         for file_id, meta in enumerate(metas):
-            def chunk_values(start: int, stop: int, file_id=file_id):
-                has_new, codes, more = values(file_id, start, stop)
-                return (np.asarray(has_new, dtype=bool), np.asarray(codes, dtype=np.uint8),
-                        {k: np.asarray(more[k], dtype=extras[k][0]) for k in extras})
-
-            _stream_file(writer, meta, chunk_values, chunk_size, _kept(records, file_id, meta))
+            _stream_file(writer, meta, per_file[file_id], chunk_size,
+                         _kept(records, file_id, meta))
 
     _write_atomically(path, header, compress, produce)
     return path
@@ -1636,7 +1841,7 @@ def write_classified_stream(
 def _kept(records: RecordScratch | None, file_id: int,
           meta: _FileMeta) -> list[tuple[Path, int]] | None:
     """The scratch files holding the records of input ``file_id`` (None: decode the input)."""
-    if records is None or file_id not in records.file_ids:
+    if records is None or records.layers or file_id not in records.file_ids:
         return None
     ranges = records.ranges(file_id, meta.header.point_format.dtype().itemsize,
                             meta.point_count)
