@@ -748,70 +748,135 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 record.extra["classification"]["refine_with_model"] = dict(sorted(changes.items()))
                 record.extra["class_counts"] = {str(k): v for k, v in sorted(counts.items())}
 
-            # ---- audit: driver prepares the states; one task per tile; driver merges
-            with record.stage("audit", engine=engine):
-                task = bar.add_task("audit", total=kept, rate="")
-                progress = _stage_progress(bar, task)
-                plan = prepare_wire_states(
-                    model, config, conductors, rules,
-                    latitude_deg=latitude, ground_z_m=ground_sample,
-                    origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
-                # a building footprint id is unique across tiles: tile number * 2**32 + its id
-                blocks: list[Any] = [None] * len(tiles)
-                done = 0
-                states = engine.share(plan)
-                for k, res in engine.run([(audit_tile, (str(work), t, by_cell, states, line,
-                                                        rules, k << 32), {})
-                                          for k, t in enumerate(tiles)], costs=tile_costs):
-                    blocks[k] = res["block"]
-                    done += res["n_owned"]
-                    progress(done, kept)
-                for handle in (by_cell, line, states):
-                    engine.release(handle)
-                # the last tasks have run: a local cluster shuts down while the driver
-                # merges and writes
-                engine.finish()
-                release_free_memory()  # the audit tasks' freed pages, before the merge
-                audit = merge_findings(plan, model, conductors, rules, blocks)
+            # ---- classified.laz: the classes are final once the refine tasks have run. When
+            # the inputs' compressed layers are copied (two layers coded per chunk, the GIL
+            # held little) it is written on a thread of its own while the audit runs, and the
+            # write stage waits for it. Re-compressing every point holds the GIL throughout:
+            # then it is written in the write stage (overlapping it gained nothing).
+            lookup = TileResults(work, tiles)
+            max_code = max(counts) if counts else 0
+            write_task = bar.add_task("write", total=setup.total_points, rate="")
+            write_progress = _stage_progress(bar, write_task)
+            written = [0]
+            background: _Background | None = None
 
-            tolerance_rows = None
-            if config.design:
-                from .audit.tolerance import check_tolerance
+            def values(file_id: int, start: int, stop: int):
+                if background is not None and background.cancelled:
+                    raise _Cancelled
+                written[0] += stop - start
+                write_progress(written[0], setup.total_points)
+                return lookup.values(file_id, start, stop)
 
-                with record.stage("tolerance"):
-                    tolerance_rows = check_tolerance(model, audit, config, conductors)
+            def write_classified(path: Path) -> None:
+                write_classified_stream(
+                    setup.sources, path, values, crs=setup.crs, max_code=max_code,
+                    extra_dims={"height_above_ground": (np.float32, "height above ground [m]")},
+                    records=records, chunk_size=WRITE_CHUNK_POINTS,
+                    report=record.extra.get("classified_copy"))
 
-            # ---- write: classified.laz streamed in input order from the tiles' results
-            with record.stage("write", engine=engine):
-                task = bar.add_task("write", total=setup.total_points, rate="")
-                progress = _stage_progress(bar, task)
-                from .outputs import write_outputs
+            if records is not None and records.layers:
+                background = _Background(partial(write_classified, tmp / "classified.laz"))
+            try:
+                # ---- audit: driver prepares the states; one task per tile; driver merges
+                with record.stage("audit", engine=engine):
+                    task = bar.add_task("audit", total=kept, rate="")
+                    progress = _stage_progress(bar, task)
+                    plan = prepare_wire_states(
+                        model, config, conductors, rules,
+                        latitude_deg=latitude, ground_z_m=ground_sample,
+                        origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
+                    # a building footprint id is unique across tiles: tile number * 2**32 + its id
+                    blocks: list[Any] = [None] * len(tiles)
+                    done = 0
+                    states = engine.share(plan)
+                    for k, res in engine.run([(audit_tile, (str(work), t, by_cell, states, line,
+                                                            rules, k << 32), {})
+                                              for k, t in enumerate(tiles)], costs=tile_costs):
+                        blocks[k] = res["block"]
+                        done += res["n_owned"]
+                        progress(done, kept)
+                    for handle in (by_cell, line, states):
+                        engine.release(handle)
+                    # the last tasks have run: a local cluster shuts down while the driver
+                    # merges and writes
+                    engine.finish()
+                    release_free_memory()  # the audit tasks' freed pages, before the merge
+                    audit = merge_findings(plan, model, conductors, rules, blocks)
 
-                lookup = TileResults(work, tiles)
-                written = [0]
+                tolerance_rows = None
+                if config.design:
+                    from .audit.tolerance import check_tolerance
 
-                def values(file_id: int, start: int, stop: int):
-                    written[0] += stop - start
-                    progress(written[0], setup.total_points)
-                    return lookup.values(file_id, start, stop)
+                    with record.stage("tolerance"):
+                        tolerance_rows = check_tolerance(model, audit, config, conductors)
 
-                def classified_writer(path: Path) -> None:
-                    write_classified_stream(
-                        setup.sources, path, values, crs=setup.crs,
-                        max_code=max(counts) if counts else 0,
-                        extra_dims={"height_above_ground": (np.float32,
-                                                            "height above ground [m]")},
-                        records=records, chunk_size=WRITE_CHUNK_POINTS,
-                        report=record.extra.get("classified_copy"))
+                # ---- write: the other outputs; classified.laz if not written beside the audit
+                with record.stage("write", engine=engine):
+                    from .outputs import write_outputs
 
-                cls_summary = _ClassCounts(dict(sorted(counts.items())))  # completion order: sorted
-                summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
-                                        rules, record, tolerance_rows=tolerance_rows,
-                                        classified_writer=classified_writer)
+                    def classified_writer(path: Path) -> None:
+                        if background is None:
+                            write_classified(path)
+                            return
+                        background.result()  # written beside the audit: wait for it
+                        record.extra["classified_copy"]["written_beside_audit"] = {
+                            "seconds": round(background.seconds, 3),
+                            "thread_cpu_seconds": round(background.cpu_seconds, 3)}
+
+                    cls_summary = _ClassCounts(dict(sorted(counts.items())))  # completion order: sorted
+                    summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
+                                            rules, record, tolerance_rows=tolerance_rows,
+                                            classified_writer=classified_writer)
+            finally:
+                if background is not None:
+                    background.stop()  # on an error: stop it before the work folder goes
             _finish_record_and_report(tmp, record, options)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return summary
+
+
+class _Cancelled(Exception):
+    """Raised inside a background writer asked to stop."""
+
+
+class _Background:
+    """``fn()`` on a thread of its own; :meth:`result` waits and re-raises its error."""
+
+    def __init__(self, fn: Callable[[], Any]):
+        import threading
+
+        self._error: BaseException | None = None
+        self._stop = threading.Event()
+        self.seconds = self.cpu_seconds = 0.0
+        self._thread = threading.Thread(target=self._run, args=(fn,), daemon=True,
+                                        name="clearaudit-classified-copy")
+        self._thread.start()
+
+    def _run(self, fn: Callable[[], Any]) -> None:
+        t0, c0 = time.perf_counter(), time.thread_time()
+        try:
+            fn()
+        except BaseException as exc:  # handed to the waiting thread
+            self._error = exc
+        finally:
+            self.seconds = time.perf_counter() - t0
+            self.cpu_seconds = time.thread_time() - c0
+
+    @property
+    def cancelled(self) -> bool:
+        return self._stop.is_set()
+
+    def result(self) -> None:
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+
+    def stop(self) -> None:
+        """Ask the thread to stop at its next chunk and wait for it (its error, if any, is
+        dropped: the run is failing for another reason)."""
+        self._stop.set()
+        self._thread.join()
 
 
 @dataclass

@@ -315,3 +315,33 @@ def test_scratch_removed_after_an_error(corridor, tmp_path, monkeypatch, tiled):
     assert len(seen) == 4 and not any(p.exists() for p in seen)
     assert _leftovers(tmp_path) == []
     assert not (tmp_path / "out").exists()
+
+
+def test_audit_error_stops_the_classified_copy_beside_it(corridor, tmp_path, monkeypatch):
+    # the tiled run writes classified.laz on its own thread while the audit tasks run (the
+    # inputs' layers are copied); an audit error stops it before the work folder is removed
+    import clearaudit.tiling as tiling_mod
+
+    started = []
+    original = las_mod.write_classified_stream
+
+    def tracking_writer(*args, **kwargs):
+        started.append(kwargs["records"].layers)
+        return original(*args, **kwargs)
+
+    def failing_audit(*args, **kwargs):
+        raise RuntimeError("audit failed (simulated)")
+
+    monkeypatch.setattr(las_mod, "write_classified_stream", tracking_writer)
+    monkeypatch.setattr(tiling_mod, "audit_tile", failing_audit)
+    with pytest.raises(RuntimeError, match="simulated"):
+        _audit(corridor, tmp_path / "out", tiled=True)
+    assert started == [True]
+    assert _leftovers(tmp_path) == []
+    assert not (tmp_path / "out").exists()
+
+
+def test_classified_copy_beside_the_audit_is_recorded(corridor, tmp_path):
+    info = _audit(corridor, tmp_path / "out", tiled=True)
+    beside = info["written_beside_audit"]
+    assert beside["seconds"] > 0 and beside["thread_cpu_seconds"] > 0
