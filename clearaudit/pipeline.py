@@ -736,6 +736,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 by_cell = engine.share({c: t.id for t in tiles for c in t.cells})
                 line = engine.share(SimpleNamespace(structures=model.structures,
                                                     spans=model.spans))
+                # the audit's wire states (survey temperature, conditions, curves) need the
+                # model, not the refined classes: prepared on a thread of its own while the
+                # refine tasks run (it only reads the model)
+                prepared = _Background(partial(
+                    prepare_wire_states, model, config, conductors, rules,
+                    latitude_deg=latitude, ground_z_m=ground_sample,
+                    origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m)))
                 changes: dict[str, int] = {}
                 counts = {}
                 for _, res in engine.run([(refine_tile, (str(work), t, by_cell, ctx, line), {})
@@ -781,10 +788,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 with record.stage("audit", engine=engine):
                     task = bar.add_task("audit", total=kept, rate="")
                     progress = _stage_progress(bar, task)
-                    plan = prepare_wire_states(
-                        model, config, conductors, rules,
-                        latitude_deg=latitude, ground_z_m=ground_sample,
-                        origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
+                    plan = prepared.result()
                     # a building footprint id is unique across tiles: tile number * 2**32 + its id
                     blocks: list[Any] = [None] * len(tiles)
                     done = 0
@@ -847,6 +851,7 @@ class _Background:
         import threading
 
         self._error: BaseException | None = None
+        self._value: Any = None
         self._stop = threading.Event()
         self.seconds = self.cpu_seconds = 0.0
         self._thread = threading.Thread(target=self._run, args=(fn,), daemon=True,
@@ -856,7 +861,7 @@ class _Background:
     def _run(self, fn: Callable[[], Any]) -> None:
         t0, c0 = time.perf_counter(), time.thread_time()
         try:
-            fn()
+            self._value = fn()
         except BaseException as exc:  # handed to the waiting thread
             self._error = exc
         finally:
@@ -867,10 +872,12 @@ class _Background:
     def cancelled(self) -> bool:
         return self._stop.is_set()
 
-    def result(self) -> None:
+    def result(self) -> Any:
+        """Wait for ``fn`` and return its value (or raise its error)."""
         self._thread.join()
         if self._error is not None:
             raise self._error
+        return self._value
 
     def stop(self) -> None:
         """Ask the thread to stop at its next chunk and wait for it (its error, if any, is
