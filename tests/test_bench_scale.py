@@ -29,4 +29,4 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert "ratio tiny-stream tiled: audit/decompress = " in out
     assert "| tiny-stream | " in out and " | 3 | " in out
     assert "tiled peak RSS MB by survey size: tiny" in out and "(target: flat)" in out
-    assert "floor tiny: compressing the points again takes " in out
+    assert "floor tiny: decoding the layers the audit reads (x/y, z, class) takes " in out
