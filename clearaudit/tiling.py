@@ -296,13 +296,15 @@ class Corridor:
 
 
 def plan_parts(setup: ReadSetup, part_points: int) -> list[SplitPart]:
-    """Cut the input files into point ranges of at most ``part_points`` points."""
+    """Cut the input files into point ranges of at most ``part_points`` points (a file of
+    ``setup.whole_files`` is one range: it cannot be sought in)."""
     if part_points < 1:
         raise ValueError("part_points must be a positive number of points")
     parts = []
     for file_id, count in enumerate(setup.point_counts):
-        for start in range(0, count, part_points):
-            parts.append(SplitPart(len(parts), file_id, start, min(count, start + part_points)))
+        step = max(count, 1) if file_id in setup.whole_files else part_points
+        for start in range(0, count, step):
+            parts.append(SplitPart(len(parts), file_id, start, min(count, start + step)))
     return parts
 
 

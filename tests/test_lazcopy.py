@@ -29,6 +29,7 @@ from clearaudit.io.las import (
     read_setup,
     write_classified_stream,
 )
+from clearaudit.tiling import plan_parts
 
 REAL = Path(__file__).resolve().parents[2] / "shared" / "real-clouds"
 HAG = {"height_above_ground": (np.float32, "height above ground [m]")}
@@ -125,7 +126,7 @@ def test_copy_is_the_bytes_lazrs_writes(tmp_path, fmt, own_extra, monkeypatch):
     report = dict(info)
     copy = write_classified_stream(setup.sources, tmp_path / "copy.laz", values,
                                    records=records, report=report, **kw)
-    assert report["copy"] == "layers"
+    assert report["copy"] == "layers" and report["chunks"] == "fixed"
     if not own_extra:
         assert copy.read_bytes() == reference.read_bytes()
         return
@@ -145,7 +146,8 @@ def test_several_inputs_decode_to_the_same_points(tmp_path):
     b = layered_file(tmp_path / "b.laz", 6, 50_000, 12)
     c = layered_file(tmp_path / "c.laz", 6, 7_777, 13)
     reference, copy, info, report = write_both(tmp_path, [a, b, c], make_values(2, False))
-    assert report["copy"] == "layers"
+    assert report["copy"] == "layers" and report["chunks"] == "variable"
+    assert report["chunk_count"] == 4
     ref, out = laspy.read(reference), laspy.read(copy)
     assert out.points.array.tobytes() == ref.points.array.tobytes()
     for name in ("point_count", "mins", "maxs", "number_of_points_by_return"):
@@ -159,6 +161,47 @@ def test_several_inputs_decode_to_the_same_points(tmp_path):
         fh.seek(ref.header.offset_to_point_data)
         table = lazrs.read_chunk_table(fh, lazrs.LazVlr(vlr.record_data))
     assert [n for n, _ in table] == [50_000, 11_234, 50_000, 7_777]
+
+
+def test_classified_copy_read_again(tmp_path):
+    # a classified copy of two inputs (variable-size chunks, height above ground already an
+    # extra dimension of the same name and layout) classified again: its height layers are
+    # coded anew, not copied
+    a = layered_file(tmp_path / "a.laz", 7, 30_000, 21)
+    b = layered_file(tmp_path / "b.laz", 7, 55_000, 22)
+    first = tmp_path / "first"
+    first.mkdir()
+    _, copy, _, report = write_both(first, [a, b], make_values(5, False))
+    assert report["copy"] == "layers"
+    again = tmp_path / "again"
+    again.mkdir()
+    reference, copy2, _, report2 = write_both(again, [copy], make_values(6))
+    assert report2["copy"] == "layers"
+    ref, out = laspy.read(reference), laspy.read(copy2)
+    assert out.points.array.tobytes() == ref.points.array.tobytes()
+    assert not np.array_equal(np.asarray(out.height_above_ground),
+                              np.asarray(laspy.read(copy).height_above_ground), equal_nan=True)
+
+
+def test_variable_chunk_files_are_read_without_seeking(tmp_path):
+    # the copy of two inputs has chunks of varying size; lazrs 0.8 seeks to wrong points past
+    # the first chunk of such a file, so read_range decodes it from its start and the tiled
+    # split reads it in one range
+    a = layered_file(tmp_path / "a.laz", 6, 30_000, 31)
+    b = layered_file(tmp_path / "b.laz", 6, 45_000, 32)
+    _, copy, _, _ = write_both(tmp_path, [a, b], make_values(7, False))
+    setup = read_setup(copy)
+    assert setup.whole_files == {0}
+    assert [(p.start, p.stop) for p in plan_parts(setup, 10_000)] == [(0, 75_000)]
+    assert read_setup([a, b]).whole_files == frozenset()
+    whole = list(read_range(setup, 0, 0, None, chunk_size=9_000))
+    xyz = np.concatenate([c[0] for c in whole])
+    cls = np.concatenate([c[1] for c in whole])
+    part = list(read_range(setup, 0, 31_000, 70_000, chunk_size=9_000))
+    np.testing.assert_array_equal(np.concatenate([c[0] for c in part]), xyz[31_000:70_000])
+    np.testing.assert_array_equal(np.concatenate([c[1] for c in part]), cls[31_000:70_000])
+    np.testing.assert_array_equal(np.concatenate([c[2] for c in part]),
+                                  np.arange(31_000, 70_000))
 
 
 def test_chunks_that_change_channel_are_recompressed(tmp_path):

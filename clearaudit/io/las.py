@@ -821,6 +821,9 @@ class ReadSetup:
         One :class:`~clearaudit.cloud.SourceInfo` per file (``sha256`` filled when asked).
     header_min, header_max
         Bounds of all files from the headers, in local metres. [m]
+    whole_files
+        Files read in one range from their first point: LAZ files with variable-size chunks,
+        in which lazrs 0.8 does not seek to the right point (see :func:`read_range`).
     """
 
     files: tuple[Path, ...]
@@ -832,6 +835,7 @@ class ReadSetup:
     sources: tuple[SourceInfo, ...]
     header_min: np.ndarray
     header_max: np.ndarray
+    whole_files: frozenset[int] = frozenset()
 
     @property
     def total_points(self) -> int:
@@ -892,7 +896,18 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
     return ReadSetup(files=tuple(files), point_counts=tuple(m.point_count for m in metas),
                      crs=the_crs, horizontal_unit_m=h_unit, vertical_unit_m=v_unit,
                      origin=origin_arr, sources=sources, header_min=(lo - origin_arr) * unit,
-                     header_max=(hi - origin_arr) * unit)
+                     header_max=(hi - origin_arr) * unit,
+                     whole_files=frozenset(i for i, m in enumerate(metas)
+                                           if variable_chunks(m.header)))
+
+
+def variable_chunks(header: Any) -> bool:
+    """Whether a LAZ file's chunks vary in size (LAZ 1.4 allows it for point formats 6-10;
+    a file with one fixed chunk size, and an uncompressed file, give False)."""
+    from .lazcopy import VARIABLE_CHUNKS, laszip_items
+
+    laz = laszip_items(header)
+    return laz is not None and laz[1] == VARIABLE_CHUNKS
 
 
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
@@ -942,7 +957,20 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     whole = records_to is not None and not records_to.layers
     with _open_reader(path, None if whole else _XYZ_CLASS_LAYERS) as reader:
         shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
-        if start:
+        if start and variable_chunks(reader.header):
+            # lazrs 0.8 mispositions a seek past the first chunk of a file whose chunks vary
+            # in size (it takes the point's chunk and offset as if the chunks were equal):
+            # such a file is decoded from its start and the points before ``start`` dropped
+            # (the tiled run reads it in one range, ReadSetup.whole_files)
+            skip = start
+            while skip:
+                with _las_errors(path):
+                    got = len(reader.read_points(min(chunk_size, skip)))
+                if got == 0:
+                    raise InputError(path, f"is truncated or corrupt (header says {count} "
+                                           f"points, {start - skip} could be read)")
+                skip -= got
+        elif start:
             with _las_errors(path):
                 reader.seek(start)
         position = start
@@ -1495,7 +1523,7 @@ def _write_file_atomically(path: Path, write: Callable[[BinaryIO], None]) -> Non
 
 
 def _copy_layers(path: Path, header: Any, metas: Sequence[_FileMeta],
-                 file_values: Sequence[Callable[[int, int], tuple]],
+                 file_values: Sequence[Callable[[int, int], tuple]], new_names: set[str],
                  records: RecordScratch | None, report: dict[str, Any] | None) -> bool:
     """Write the classified copy by copying the inputs' compressed layers
     (:mod:`clearaudit.io.lazcopy`) when the scratch was kept for it; False when it cannot
@@ -1522,10 +1550,19 @@ def _copy_layers(path: Path, header: Any, metas: Sequence[_FileMeta],
             break
         ranges.append(found)
         bounds.append(box)
+    layout = None
     if why is None:
+        try:  # an input without a usable chunk table is decoded point by point instead
+            layout = lazcopy.chunk_layout(metas)
+        except InputError as exc:
+            why = str(exc)
+    if why is None:
+        written: dict[str, Any] = {}
         try:
-            _write_file_atomically(path, lambda fh: lazcopy.write_copy(
-                fh, header, metas, file_values, ranges, bounds))
+            _write_file_atomically(path, lambda fh: written.update(lazcopy.write_copy(
+                fh, header, metas, file_values, new_names, ranges, bounds, layout=layout)))
+            if report is not None:
+                report.update(written)
             return True
         except lazcopy.ChannelsChange as exc:
             why = str(exc)
@@ -1692,7 +1729,7 @@ def write_classified(
         return values
 
     per_file = [file_values(file_id) for file_id in range(len(metas))]
-    if _copy_layers(path, header, metas, per_file, records, report):
+    if _copy_layers(path, header, metas, per_file, set(new_extras), records, report):
         return path
     prepared.clear()
 
@@ -1826,7 +1863,7 @@ def write_classified_stream(
         return chunk_values
 
     per_file = [file_values(file_id) for file_id in range(len(metas))]
-    if _copy_layers(path, header, metas, per_file, records, report):
+    if _copy_layers(path, header, metas, per_file, set(extras), records, report):
         return path
 
     def produce(writer: Any) -> None:

@@ -35,6 +35,7 @@ from __future__ import annotations
 import struct
 from collections.abc import Callable, Iterator, Sequence
 from copy import deepcopy
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -57,7 +58,8 @@ _ITEM_LAYERS = {_POINT14: 9, _RGB14: 1, _RGBNIR14: 2}
 _CLASS_LAYER = 2
 #: Layered chunked compression (the LAZ compressor id of point formats 6-10).
 _LAYERED_CHUNKED = 3
-_VARIABLE_CHUNKS = 0xFFFFFFFF
+#: The chunk size a laszip record gives for chunks of varying size.
+VARIABLE_CHUNKS = 0xFFFFFFFF
 
 
 class ChannelsChange(ValueError):
@@ -65,7 +67,7 @@ class ChannelsChange(ValueError):
     re-compression)."""
 
 
-def _laszip_items(header: Any) -> tuple[int, int, list[tuple[int, int, int]]] | None:
+def laszip_items(header: Any) -> tuple[int, int, list[tuple[int, int, int]]] | None:
     """(compressor, chunk size, [(item type, size, version)]) of a LAZ header's laszip
     record, or None for an uncompressed file."""
     if not header.are_points_compressed:
@@ -93,7 +95,7 @@ def blocker(headers: Sequence[Any]) -> str | None:
     for header in headers:
         if int(header.point_count) == 0:
             return "an input holds no points"
-        laz = _laszip_items(header)
+        laz = laszip_items(header)
         if laz is None:
             return "an input is not compressed"
         compressor, _, items = laz
@@ -162,13 +164,26 @@ def _chunk_table(fh: BinaryIO, header: Any, path: Path) -> tuple[list[int], int]
     return [int(nbytes) for _, nbytes in table], fh.tell()
 
 
-def _tail_dtype(in_size: int, out_dtype: np.dtype) -> np.dtype:
-    """The output record's fields after the input's bytes, as a record of their own."""
-    names = [n for n in out_dtype.names if out_dtype.fields[n][1] >= in_size]
-    return np.dtype({"names": names,
-                     "formats": [out_dtype.fields[n][0] for n in names],
-                     "offsets": [out_dtype.fields[n][1] - in_size for n in names],
-                     "itemsize": out_dtype.itemsize - in_size})
+def _region_dtype(start: int, out_dtype: np.dtype, names: set[str]) -> np.dtype:
+    """The named fields of the output record from byte ``start`` on, as a record of their own
+    (the other bytes of the region left as padding)."""
+    chosen = sorted(names, key=lambda n: out_dtype.fields[n][1])
+    return np.dtype({"names": chosen,
+                     "formats": [out_dtype.fields[n][0] for n in chosen],
+                     "offsets": [out_dtype.fields[n][1] - start for n in chosen],
+                     "itemsize": out_dtype.itemsize - start})
+
+
+@dataclass(frozen=True)
+class _ChunkShape:
+    """Record sizes of a copy: input, output, standard part (before the extra bytes), the
+    input's layers per chunk, and the output record bytes coded anew (extra bytes)."""
+
+    in_size: int
+    out_size: int
+    std_size: int
+    n_layers: int
+    coded: list[int]
 
 
 class _Fields(dict):
@@ -193,10 +208,11 @@ def mixed_channels(side: np.ndarray, counts: Sequence[int]) -> bool:
 
 
 def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
-               values: Sequence[Callable[[int, int], tuple]],
+               values: Sequence[Callable[[int, int], tuple]], new_names: set[str],
                side_ranges: Sequence[list[tuple[Path, int]]],
                bounds: Sequence[tuple[np.ndarray, np.ndarray]],
-               block_points: int = 1_000_000) -> None:
+               block_points: int = 1_000_000,
+               layout: tuple[list, list[list[int]]] | None = None) -> dict[str, Any]:
     """Write the classified copy of layered LAZ inputs into the open file ``fh``.
 
     Parameters
@@ -211,6 +227,10 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     values
         Per input, ``values(start, stop) -> (has_new, codes, extras)`` as for the
         streaming writer.
+    new_names
+        The extra dimensions ``values`` gives: their bytes are coded anew, also where an
+        input already has a dimension of that name and layout (a classified copy read
+        again); the inputs' other extra bytes are copied.
     side_ranges
         Per input, its scratch files of kept bytes (:data:`SIDE_SIZE` per point) in point
         order, with their point counts.
@@ -218,6 +238,15 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
         Per input, the (3,) minimum and maximum integer coordinates of its points.
     block_points
         Points asked of ``values`` at a time (whole chunks). [points]
+    layout
+        :func:`chunk_layout` of the inputs, when already read.
+
+    Returns
+    -------
+    dict
+        ``chunks``: ``"fixed"`` (one chunk size, the last chunk may be shorter) or
+        ``"variable"`` (the inputs' chunks do not line up to one size: several inputs);
+        ``chunk_count``.
 
     Raises
     ------
@@ -234,10 +263,18 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     out_dtype = out_format.dtype()
     in_size = metas[0].header.point_format.dtype().itemsize
     out_size = out_dtype.itemsize
-    n_new = out_size - in_size
-    tail_dtype = _tail_dtype(in_size, out_dtype) if n_new else None
-    tail_names = set(tail_dtype.names) if n_new else set()
-    _, in_chunk, items = _laszip_items(metas[0].header)
+    std_size = laspy.PointFormat(out_format.id).dtype().itemsize  # before the extra bytes
+    new_names = {n for n in new_names if n in out_dtype.names}
+    # the extra-byte columns coded anew: those of the new dimensions, and every byte beyond
+    # the input's records
+    coded = sorted({off for n in new_names
+                    for off in range(out_dtype.fields[n][1],
+                                     out_dtype.fields[n][1] + out_dtype.fields[n][0].itemsize)}
+                   | set(range(in_size, out_size)))
+    region_dtype = _region_dtype(std_size, out_dtype, new_names)
+    columns = np.asarray(coded, dtype=np.int64) - std_size
+    n_coded = len(coded)
+    _, _, items = laszip_items(metas[0].header)
     n_layers = _chunk_layer_count(items)
 
     header = deepcopy(header)  # statistics filled below; written at the start and at the end
@@ -246,15 +283,11 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     while header.vlrs.get("LasZipVlr"):
         header.vlrs.pop(header.vlrs.index("LasZipVlr"))
     vlr = lazrs.LazVlr.new_for_compression(out_format.id, out_format.num_extra_bytes)
-    tables = []
-    for meta in metas:
-        with open(meta.path, "rb") as src:
-            tables.append(_chunk_table(src, meta.header, meta.path))
-    counts = _chunk_point_counts(metas, tables, in_chunk)
+    tables, counts = layout if layout is not None else chunk_layout(metas)
     flat = [m for per_file in counts for m in per_file]
     fixed = all(m == flat[0] for m in flat[:-1]) and flat and flat[-1] <= flat[0]
     record = bytearray(vlr.record_data())
-    struct.pack_into("<I", record, 12, flat[0] if fixed else _VARIABLE_CHUNKS)
+    struct.pack_into("<I", record, 12, flat[0] if fixed else VARIABLE_CHUNKS)
     vlr = lazrs.LazVlr(bytes(record))
     header.vlrs.append(laspy.vlrs.known.LasZipVlr(bytes(record)))
     header.write_to(fh, encoding_errors="strict")
@@ -267,8 +300,10 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     extra_bytes = header.vlrs.get("ExtraBytesVlr")
     chunk_table: list[tuple[int, int]] = []
     capacity_points = max(flat) if flat else 1
-    buffer = np.empty((n_new + 1) * layer_capacity(capacity_points), dtype=np.uint8)
-    sizes = np.empty(n_new + 1, dtype=np.int64)
+    buffer = np.empty((n_coded + 1) * layer_capacity(capacity_points), dtype=np.uint8)
+    sizes = np.empty(n_coded + 1, dtype=np.int64)
+    shape = _ChunkShape(in_size=in_size, out_size=out_size, std_size=std_size,
+                        n_layers=n_layers, coded=coded)
     total = 0
     for meta, (chunk_bytes, first_at), file_counts, ranges, (lo, hi), file_values in zip(
             metas, tables, counts, side_ranges, bounds, values, strict=True):
@@ -286,12 +321,12 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
                                              "scanner channel")
                     has_new, codes, extras = file_values(start, start + m)
                     classes = np.where(has_new, codes, kept[:, 2]).astype(np.uint8)
-                    tail_bytes = np.zeros((m, n_new), dtype=np.uint8)
-                    if n_new:
-                        tail = tail_bytes.reshape(-1).view(tail_dtype)
-                        for name, arr in extras.items():
-                            if name in tail_names:
-                                tail[name] = arr
+                    region = np.zeros((m, out_size - std_size), dtype=np.uint8)
+                    if new_names:
+                        fields = region.reshape(-1).view(region_dtype)
+                        for name in new_names:
+                            fields[name] = extras[name]
+                    coded_bytes = np.ascontiguousarray(region[:, columns])
                     returns = np.ascontiguousarray(kept[:, 0])
                     by_return += np.bincount(returns & np.uint8(0x0F), minlength=16)[
                         1:len(by_return) + 1].astype(by_return.dtype)
@@ -304,9 +339,9 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
                         if len(data) != nbytes:
                             raise InputError(meta.path, "is truncated (a LAZ chunk ends early)")
                         sl = slice(at, at + count)
-                        out = _copy_chunk(data, count, in_size, n_layers,
-                                          returns[sl], classes[sl], tail_bytes[sl],
-                                          buffer, sizes, code_chunk_layers, meta.path)
+                        out = _copy_chunk(data, count, shape, returns[sl], classes[sl],
+                                          coded_bytes[sl], buffer, sizes, code_chunk_layers,
+                                          meta.path)
                         fh.write(out)
                         chunk_table.append((count, len(out)))
                         at += count
@@ -321,7 +356,7 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
                 setattr(header, f"{name}_max", max(getattr(header, f"{name}_max"), top))
                 setattr(header, f"{name}_min", min(getattr(header, f"{name}_min"), bottom))
     if extra_bytes:
-        _inputs_extra_statistics(extra_bytes[0], metas, tail_names)
+        _inputs_extra_statistics(extra_bytes[0], metas, new_names)
     table_at = fh.tell()
     lazrs.write_chunk_table(fh, chunk_table, vlr)
     end = fh.tell()
@@ -334,6 +369,7 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     fh.seek(0)
     header.write_to(fh, ensure_same_size=True, encoding_errors="strict")
     fh.seek(end)
+    return {"chunks": "fixed" if fixed else "variable", "chunk_count": len(chunk_table)}
 
 
 def _inputs_extra_statistics(out_vlr: Any, metas: Sequence[Any], new: set[str]) -> None:
@@ -356,14 +392,32 @@ def _inputs_extra_statistics(out_vlr: Any, metas: Sequence[Any], new: set[str]) 
                     high[:] = np.maximum(high, other._raw_max())
 
 
-def _chunk_point_counts(metas: Sequence[Any], tables: Sequence[tuple[list[int], int]],
-                        in_chunk: int) -> list[list[int]]:
+def chunk_layout(metas: Sequence[Any]) -> tuple[list[tuple[list[int], int]], list[list[int]]]:
+    """Per input, its chunks' byte sizes with where the first chunk starts, and its chunks'
+    point counts (from the chunk tables; each chunk's own count is checked when it is
+    copied).
+
+    Raises
+    ------
+    InputError
+        An input's chunk table cannot be read or does not hold its points.
+    """
+    tables = []
+    for meta in metas:
+        with open(meta.path, "rb") as src:
+            tables.append(_chunk_table(src, meta.header, meta.path))
+    return tables, _chunk_point_counts(metas, tables)
+
+
+def _chunk_point_counts(metas: Sequence[Any], tables: Sequence[tuple[list[int], int]]
+                        ) -> list[list[int]]:
     """Points of every chunk of every input (each chunk's own count is read at write time
     and checked against these)."""
     out = []
     for meta, (chunk_bytes, _) in zip(metas, tables, strict=True):
         n = meta.point_count
-        if in_chunk == _VARIABLE_CHUNKS:
+        _, in_chunk, _ = laszip_items(meta.header)
+        if in_chunk == VARIABLE_CHUNKS:
             counts = _variable_counts(meta, len(chunk_bytes))
         else:
             counts = [in_chunk] * (n // in_chunk) + ([n % in_chunk] if n % in_chunk else [])
@@ -397,10 +451,11 @@ def _blocks(counts: Sequence[int], block_points: int) -> Iterator[list[int]]:
         yield block
 
 
-def _copy_chunk(data: bytes, count: int, in_size: int, n_layers: int, returns: np.ndarray,
-                classes: np.ndarray, tail: np.ndarray, buffer: np.ndarray, sizes: np.ndarray,
-                code: Callable, path: Path) -> bytes:
+def _copy_chunk(data: bytes, count: int, shape: _ChunkShape, returns: np.ndarray,
+                classes: np.ndarray, coded_bytes: np.ndarray, buffer: np.ndarray,
+                sizes: np.ndarray, code: Callable, path: Path) -> bytes:
     """One output chunk from one input chunk (see the module notes)."""
+    in_size, n_layers = shape.in_size, shape.n_layers
     head = in_size + 4 + 4 * n_layers
     if len(data) < head:
         raise InputError(path, "has a damaged LAZ chunk")
@@ -410,24 +465,26 @@ def _copy_chunk(data: bytes, count: int, in_size: int, n_layers: int, returns: n
     layer_sizes = struct.unpack_from(f"<{n_layers}I", data, in_size + 4)
     if head + sum(layer_sizes) != len(data):
         raise InputError(path, "has a damaged LAZ chunk (its layers do not fill it)")
-    changed = code(returns, classes, np.ascontiguousarray(tail), buffer, sizes)
-    ends = np.cumsum(sizes)
-    new = [buffer[e - s:e] for s, e in zip(sizes.tolist(), ends.tolist(), strict=True)]
-    first = bytearray(data[:in_size])
-    first[16] = int(classes[0])
-    parts: list[Any] = [bytes(first), tail[0].tobytes(), struct.pack("<I", count)]
-    out_sizes = list(layer_sizes)
-    out_sizes[_CLASS_LAYER] = int(sizes[0]) if changed else 0
-    out_sizes += [int(s) for s in sizes[1:]]
-    parts.append(struct.pack(f"<{len(out_sizes)}I", *out_sizes))
-    at = head
+    changed = code(returns, classes, coded_bytes, buffer, sizes)
+    ends = np.cumsum(sizes).tolist()
+    new = [buffer[e - s:e] for s, e in zip(sizes.tolist(), ends, strict=True)]
     view = memoryview(data)
-    for i, s in enumerate(layer_sizes):
-        if i == _CLASS_LAYER:
-            if changed:
-                parts.append(new[0])
-        else:
-            parts.append(view[at:at + s])
-        at += s
-    parts.extend(new[1:])
-    return b"".join(parts)
+    starts = np.concatenate(([head], head + np.cumsum(layer_sizes))).tolist()
+    old = [view[starts[i]:starts[i + 1]] for i in range(n_layers)]
+    # the layers: the point's own (x/y ... GPS time, colours) with the classification coded
+    # anew, then one per extra byte of the output record, copied or coded anew
+    n_extra_in = in_size - shape.std_size
+    base = n_layers - n_extra_in
+    layers: list[Any] = old[:base]
+    layers[_CLASS_LAYER] = new[0] if changed else b""
+    by_offset = {off: k + 1 for k, off in enumerate(shape.coded)}
+    for j in range(shape.out_size - shape.std_size):
+        k = by_offset.get(shape.std_size + j)
+        layers.append(new[k] if k is not None else old[base + j])
+    first = bytearray(shape.out_size)
+    first[:in_size] = data[:in_size]
+    first[16] = int(classes[0])
+    for k, off in enumerate(shape.coded):
+        first[off] = int(coded_bytes[0, k])
+    return b"".join([bytes(first), struct.pack("<I", count),
+                     struct.pack(f"<{len(layers)}I", *[len(x) for x in layers]), *layers])
