@@ -397,30 +397,55 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
             cloud.classification = cls.classification
             record.extra["class_counts"] = {str(k): v for k, v in sorted(cls.counts.items())}
 
-        # ---- audit
-        from .audit import audit_line
+        # ---- classified.laz: the classes are final once the model has refined them. When the
+        # inputs' compressed layers are copied (little of the GIL needed) it is written on a
+        # thread of its own while the audit runs (as in the tiled run)
+        background: _Background | None = None
+        if records is not None and records.layers:
+            from .io.las import write_classified
 
-        with record.stage("audit"):
-            task = bar.add_task("audit", total=None, rate="")
-            audit = audit_line(cloud, cls, model, config, conductors, rules,
-                               progress=_stage_progress(bar, task))
+            background = _Background(partial(
+                write_classified, cloud, tmp / "classified.laz", cls.classification.copy(),
+                {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
+                                         "height above ground [m]")},
+                records=records, report=record.extra.get("classified_copy")))
 
-        # ---- tolerance (construction check) when design values are given
-        tolerance_rows = None
-        if config.design:
-            from .audit.tolerance import check_tolerance
+        def classified_beside(path: Path) -> None:
+            background.result()
+            record.extra["classified_copy"]["written_beside_audit"] = {
+                "seconds": round(background.seconds, 3),
+                "thread_cpu_seconds": round(background.cpu_seconds, 3)}
 
-            with record.stage("tolerance"):
-                tolerance_rows = check_tolerance(model, audit, config, conductors)
+        try:
+            # ---- audit
+            from .audit import audit_line
 
-        # ---- write
-        with record.stage("write"):
-            task = bar.add_task("write", total=None, rate="")
-            from .outputs import write_outputs
+            with record.stage("audit"):
+                task = bar.add_task("audit", total=None, rate="")
+                audit = audit_line(cloud, cls, model, config, conductors, rules,
+                                   progress=_stage_progress(bar, task))
 
-            summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
-                                    record, tolerance_rows=tolerance_rows,
-                                    progress=_stage_progress(bar, task), records=records)
+            # ---- tolerance (construction check) when design values are given
+            tolerance_rows = None
+            if config.design:
+                from .audit.tolerance import check_tolerance
+
+                with record.stage("tolerance"):
+                    tolerance_rows = check_tolerance(model, audit, config, conductors)
+
+            # ---- write
+            with record.stage("write"):
+                task = bar.add_task("write", total=None, rate="")
+                from .outputs import write_outputs
+
+                summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
+                                        record, tolerance_rows=tolerance_rows,
+                                        progress=_stage_progress(bar, task), records=records,
+                                        classified_writer=(None if background is None
+                                                           else classified_beside))
+        finally:
+            if background is not None:
+                background.stop()  # an error: let it finish before the folders go
         _finish_record_and_report(tmp, record, options)
     if console is not None and show_summary:
         from .outputs import print_summary

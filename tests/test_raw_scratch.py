@@ -317,13 +317,17 @@ def test_scratch_removed_after_an_error(corridor, tmp_path, monkeypatch, tiled):
     assert not (tmp_path / "out").exists()
 
 
-def test_audit_error_stops_the_classified_copy_beside_it(corridor, tmp_path, monkeypatch):
-    # the tiled run writes classified.laz on its own thread while the audit tasks run (the
-    # inputs' layers are copied); an audit error stops it before the work folder is removed
+@pytest.mark.parametrize("tiled", [False, True])
+def test_audit_error_stops_the_classified_copy_beside_it(corridor, tmp_path, monkeypatch,
+                                                         tiled):
+    # classified.laz is written on its own thread while the audit runs (the inputs' layers
+    # are copied); an audit error stops it before the work folder and the output go
+    import clearaudit.audit as audit_mod
     import clearaudit.tiling as tiling_mod
 
     started = []
-    original = las_mod.write_classified_stream
+    name = "write_classified_stream" if tiled else "write_classified"
+    original = getattr(las_mod, name)
 
     def tracking_writer(*args, **kwargs):
         started.append(kwargs["records"].layers)
@@ -332,16 +336,18 @@ def test_audit_error_stops_the_classified_copy_beside_it(corridor, tmp_path, mon
     def failing_audit(*args, **kwargs):
         raise RuntimeError("audit failed (simulated)")
 
-    monkeypatch.setattr(las_mod, "write_classified_stream", tracking_writer)
+    monkeypatch.setattr(las_mod, name, tracking_writer)
     monkeypatch.setattr(tiling_mod, "audit_tile", failing_audit)
+    monkeypatch.setattr(audit_mod, "audit_line", failing_audit)
     with pytest.raises(RuntimeError, match="simulated"):
-        _audit(corridor, tmp_path / "out", tiled=True)
+        _audit(corridor, tmp_path / "out", tiled=tiled)
     assert started == [True]
     assert _leftovers(tmp_path) == []
     assert not (tmp_path / "out").exists()
 
 
-def test_classified_copy_beside_the_audit_is_recorded(corridor, tmp_path):
-    info = _audit(corridor, tmp_path / "out", tiled=True)
+@pytest.mark.parametrize("tiled", [False, True])
+def test_classified_copy_beside_the_audit_is_recorded(corridor, tmp_path, tiled):
+    info = _audit(corridor, tmp_path / "out", tiled=tiled)
     beside = info["written_beside_audit"]
     assert beside["seconds"] > 0 and beside["thread_cpu_seconds"] > 0
