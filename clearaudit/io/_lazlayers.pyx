@@ -11,7 +11,7 @@ keep every other layer's bytes as they are and code just these:
 The coder is the adaptive multi-symbol range coder of the LAZ format (32-bit base and length,
 15-bit distributions, 256-symbol models updated on a growing cycle, halved past 2**15
 counts), with the contexts the format defines for these two layers. Chunks whose points
-change scanner channel are not handled here (the caller codes those chunks in full).
+change scanner channel are not handled here (the copy then re-compresses every point).
 
 References
 ----------

@@ -912,7 +912,7 @@ def variable_chunks(header: Any) -> bool:
 
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
                keep: Callable[[np.ndarray], np.ndarray] | None = None,
-               chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: BinaryIO | None = None):
+               chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: _ScratchSink | None = None):
     """Stream points ``start:stop`` of one input file as local-metre chunks.
 
     Parameters

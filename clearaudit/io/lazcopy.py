@@ -9,7 +9,8 @@ of the output is the input chunk with
 
 * the first point's raw record carrying its new class and extra bytes,
 * the classification layer coded anew,
-* one new layer per new extra byte,
+* one layer per byte of the new extra dimensions coded anew (appended, or in place of
+  those of an input dimension with the same name and layout: a classified copy read again),
 
 and every other layer's bytes copied as they are. What the new layers need of the points —
 their return byte (the classification layer's context) and their original class (kept where
