@@ -562,7 +562,6 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     paths, tile specs and small summaries go to and from the tasks. ``cluster``: a local
     Dask cluster already starting (:class:`clearaudit.distributed.LocalClusterStart`).
     """
-    from .audit.engine import merge_findings, prepare_wire_states, survey_latitude
     from .classify import ClassifyOptions
     from .cloud import Cloud
     from .distributed import engine_for
@@ -739,9 +738,12 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                               partial(engine.map_batches, fit_jobs)))
                 record.extra["model_points"] = model_cloud.n_points
                 # what the audit needs of the gathered points; they go before the refine
-                # tasks so the driver does not hold them through the rest of the run
-                latitude = survey_latitude(model_cloud)
+                # tasks so the driver does not hold them through the rest of the run: the
+                # survey's latitude comes from every k-th of them (the points
+                # audit.engine.survey_latitude averages)
                 n_model_points = model_cloud.n_points
+                latitude_probe = model_cloud.subset(
+                    np.arange(0, n_model_points, max(1, n_model_points // 1000)))
                 del model_cloud
 
                 # Classes the line model can settle (as in the in-memory run): one task per
@@ -764,10 +766,16 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # the audit's wire states (survey temperature, conditions, curves) need the
                 # model, not the refined classes: prepared on a thread of its own while the
                 # refine tasks run (it only reads the model)
-                prepared = _Background(partial(
-                    prepare_wire_states, model, config, conductors, rules,
-                    latitude_deg=latitude, ground_z_m=ground_sample,
-                    origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m)))
+                # (the audit engine is imported there too, off the driver's own path)
+                def prepare() -> Any:
+                    from .audit.engine import prepare_wire_states, survey_latitude
+
+                    return prepare_wire_states(
+                        model, config, conductors, rules,
+                        latitude_deg=survey_latitude(latitude_probe), ground_z_m=ground_sample,
+                        origin_z_m=float(setup.origin[2]) * float(setup.vertical_unit_m))
+
+                prepared = _Background(prepare)
                 changes: dict[str, int] = {}
                 counts = {}
                 for _, res in engine.run([(refine_tile, (str(work), t, by_cell, ctx, line), {})
@@ -830,6 +838,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     # merges and writes
                     engine.finish()
                     release_free_memory()  # the audit tasks' freed pages, before the merge
+                    from .audit.engine import merge_findings
+
                     audit = merge_findings(plan, model, conductors, rules, blocks)
 
                 tolerance_rows = None
