@@ -28,6 +28,7 @@ from collections.abc import Callable, Iterable
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from functools import partial
+from importlib import import_module
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -601,6 +602,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 paths = [p.absolute() for p in paths]
                 work = work.absolute()
             engine.check_access(paths, work)
+            # the classifier's modules (scipy.ndimage ...) imported on a thread of their own
+            # while the inputs are read, not by the first tiles of the classify stage
+            warm = _Background(partial(import_module, "clearaudit.classify.core"))
             # ---- read: split every input once into cell buckets (parallel over ranges)
             # (glibc's freed blocks kept for reuse while this process splits: the tile
             # stages' peaks would grow with the survey, see tiling.kept_heap)
@@ -679,6 +683,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                                      for r in structures_rows])
 
             # ---- classify: one task per tile
+            warm.result()
             with record.stage("classify", engine=engine):
                 task = bar.add_task("classify", total=kept, rate="")
                 progress = _stage_progress(bar, task)
