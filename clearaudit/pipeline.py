@@ -567,8 +567,6 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     from .cloud import Cloud
     from .distributed import engine_for
     from .io.las import plan_record_scratch, read_setup, write_classified_stream
-    from .model import build_line_model
-    from .model.line import fit_jobs
     from .threads import inner_threads
     from .tiling import (
         Corridor,
@@ -602,9 +600,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 paths = [p.absolute() for p in paths]
                 work = work.absolute()
             engine.check_access(paths, work)
-            # the classifier's modules (scipy.ndimage ...) imported on a thread of their own
-            # while the inputs are read, not by the first tiles of the classify stage
-            warm = _Background(partial(import_module, "clearaudit.classify.core"))
+            # the classifier's and the line model's modules (scipy.ndimage, scipy.optimize
+            # ...) imported on a thread of their own while the inputs are read, not by the
+            # first tiles of the classify stage or on the driver's path
+            warm = _Background(partial(_import_all, ("clearaudit.classify.core",
+                                                     "clearaudit.model.line")))
             # ---- read: split every input once into cell buckets (parallel over ranges)
             # (glibc's freed blocks kept for reuse while this process splits: the tile
             # stages' peaks would grow with the survey, see tiling.kept_heap)
@@ -713,6 +713,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
 
             # ---- model: from the gathered wire / structure / insulator points
             with record.stage("model", engine=engine):
+                from .model import build_line_model
+                from .model.line import fit_jobs
+
                 task = bar.add_task("model", total=None, rate="")
                 model_cloud = Cloud(
                     xyz=np.concatenate([r["model_xyz"] for r in results]).reshape(-1, 3),
@@ -878,6 +881,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return summary
+
+
+def _import_all(names: Iterable[str]) -> None:
+    for name in names:
+        import_module(name)
 
 
 class _Cancelled(Exception):
