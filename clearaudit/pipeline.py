@@ -26,7 +26,7 @@ import tempfile
 import time
 from collections.abc import Callable, Iterable
 from contextlib import contextmanager, nullcontext
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import partial
 from importlib import import_module
 from pathlib import Path
@@ -613,7 +613,11 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     (kept_heap() if in_process else nullcontext(False)) as kept:
                 if kept:
                     record.extra["execution"]["heap_kept"] = "read"
-                setup = read_setup(paths, crs=options.crs)
+                # the inputs' SHA-256 (for the run record) on a thread of its own while they
+                # are split: hashlib leaves the GIL for large blocks, and the split reads the
+                # same files
+                setup = read_setup(paths, crs=options.crs, hashes=False)
+                hashing = _Background(partial(_hash_files, setup.files))
                 corridor = None
                 if structures_rows and options.corridor_buffer_m > 0:
                     poly = np.array([[r["x"], r["y"]] for r in structures_rows])
@@ -645,6 +649,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     decoded += res["decoded"]
                     kept += res["kept"]
                     progress(decoded, setup.total_points)
+                setup = replace(setup, sources=tuple(
+                    replace(info, sha256=digest)
+                    for info, digest in zip(setup.sources, hashing.result(), strict=True)))
                 for info, rec_in in zip(setup.sources, record.inputs, strict=False):
                     rec_in.update({"sha256": info.sha256, "point_count": info.point_count,
                                    "point_format": info.point_format, "las_version": info.version,
@@ -881,6 +888,12 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return summary
+
+
+def _hash_files(paths: Iterable[Path]) -> list[str]:
+    from .io.las import file_sha256
+
+    return [file_sha256(p) for p in paths]
 
 
 def _import_all(names: Iterable[str]) -> None:
