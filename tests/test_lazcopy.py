@@ -269,3 +269,24 @@ def test_kernel_checks_its_buffers():
     assert _lazlayers.code_chunk_layers(ret, cls, extra, np.empty(3 * _lazlayers.layer_capacity(n), np.uint8), sizes)
     assert not _lazlayers.code_chunk_layers(ret, np.full(n, 5, np.uint8), extra,
                                  np.empty(3 * _lazlayers.layer_capacity(n), np.uint8), sizes)
+
+
+def test_short_laszip_record_is_not_read_as_layers():
+    # a damaged laszip record is left to the reader's own error, not misread here
+    from types import SimpleNamespace
+
+    def header(data):
+        vlr = SimpleNamespace(record_data=data)
+        return SimpleNamespace(are_points_compressed=True,
+                               vlrs=SimpleNamespace(get=lambda name: [vlr]))
+
+    assert lazcopy.laszip_items(header(b"\x03\x00" * 10)) is None
+    whole = bytes(lazrs_vlr_record())
+    assert lazcopy.laszip_items(header(whole))[0] == 3
+    assert lazcopy.laszip_items(header(whole[:-2])) is None
+
+
+def lazrs_vlr_record() -> bytes:
+    import lazrs
+
+    return lazrs.LazVlr.new_for_compression(6, 4).record_data()

@@ -70,13 +70,16 @@ class ChannelsChange(ValueError):
 
 def laszip_items(header: Any) -> tuple[int, int, list[tuple[int, int, int]]] | None:
     """(compressor, chunk size, [(item type, size, version)]) of a LAZ header's laszip
-    record, or None for an uncompressed file."""
+    record, or None for an uncompressed file or a laszip record too short to hold them (the
+    reader then reports the file)."""
     if not header.are_points_compressed:
         return None
     found = header.vlrs.get("LasZipVlr")
     if not found:
         return None
     data = bytes(found[0].record_data)
+    if len(data) < 34 or len(data) < 34 + 6 * struct.unpack_from("<H", data, 32)[0]:
+        return None
     compressor, = struct.unpack_from("<H", data, 0)
     chunk_size, = struct.unpack_from("<I", data, 12)
     count, = struct.unpack_from("<H", data, 32)
