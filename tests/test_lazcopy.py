@@ -31,7 +31,7 @@ from clearaudit.io.las import (
 )
 from clearaudit.tiling import plan_parts
 
-REAL = Path(__file__).resolve().parents[2] / "shared" / "real-clouds"
+REAL = Path(__file__).parent / "data" / "real"  # the AHN4 crops (CC0), bundled
 HAG = {"height_above_ground": (np.float32, "height above ground [m]")}
 
 
