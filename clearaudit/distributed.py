@@ -118,7 +118,7 @@ class InProcessEngine(Engine):
 
     def run(self, tasks: Sequence[Task], costs: Sequence[float] | None = None
             ) -> Iterator[tuple[int, Any]]:
-        order = start_order(len(tasks), costs)
+        order = start_order(len(tasks), costs, self.threads)
         if self.threads == 1 or len(tasks) <= 1:
             for k in order:
                 fn, args, kwargs = tasks[k]
@@ -145,9 +145,19 @@ class InProcessEngine(Engine):
         return {"engine": self.name, "workers": 1, "threads": self.threads}
 
 
-def start_order(n: int, costs: Sequence[float] | None) -> list[int]:
-    """Task positions ``0..n-1`` in the order to start them: decreasing ``costs`` (ties and
-    ``costs=None``: list order)."""
+def start_order(n: int, costs: Sequence[float] | None, workers: int = 1) -> list[int]:
+    """Task positions ``0..n-1`` in the order to start them on ``workers`` threads or worker
+    processes that each take the next task as they become free.
+
+    With one worker: decreasing ``costs`` (ties and ``costs=None``: list order). With more,
+    the tasks are first shared out largest first, each to the least loaded worker (the LPT
+    rule of list scheduling), then single tasks are moved or swapped between the most and the
+    least loaded worker while that lowers the largest load; the order given is the one in
+    which free workers, taking the next task, follow that plan when the costs are right.
+    The plan matters at a stage's end: with seven tiles on two threads, LPT left one thread
+    idle for the last tile while a 3 + 4 split ended both at once (common practice, no
+    source: list scheduling and its local-search refinements).
+    """
     if costs is None:
         return list(range(n))
     if len(costs) != n:
@@ -155,7 +165,63 @@ def start_order(n: int, costs: Sequence[float] | None) -> list[int]:
     values = [float(c) for c in costs]
     if not all(math.isfinite(v) for v in values):
         raise ValueError("task costs must be finite numbers")
-    return sorted(range(n), key=lambda k: -values[k])
+    lpt = sorted(range(n), key=lambda k: -values[k])
+    workers = int(workers)
+    if workers < 2 or n <= workers:
+        return lpt
+    queues: list[list[int]] = [[] for _ in range(workers)]
+    loads = [0.0] * workers
+    for k in lpt:
+        w = min(range(workers), key=lambda i: (loads[i], i))
+        queues[w].append(k)
+        loads[w] += values[k]
+    _balance(queues, loads, values)
+    for q in queues:
+        q.sort(key=lambda k: (-values[k], k))
+    order: list[int] = []
+    free = [0.0] * workers
+    heads = [0] * workers
+    while len(order) < n:
+        w = min((i for i in range(workers) if heads[i] < len(queues[i])),
+                key=lambda i: (free[i], i))
+        k = queues[w][heads[w]]
+        heads[w] += 1
+        free[w] += values[k]
+        order.append(k)
+    return order
+
+
+def _balance(queues: list[list[int]], loads: list[float], values: list[float]) -> None:
+    """Move or swap single tasks between the most and the least loaded worker while that
+    lowers the larger of their two loads (in place)."""
+    for _ in range(4 * sum(len(q) for q in queues)):
+        hi = max(range(len(loads)), key=lambda i: (loads[i], -i))
+        lo = min(range(len(loads)), key=lambda i: (loads[i], i))
+        gap = loads[hi] - loads[lo]
+        best, best_peak = None, loads[hi]
+        for a in queues[hi]:
+            if 0.0 < values[a] < gap:  # move a
+                peak = max(loads[hi] - values[a], loads[lo] + values[a])
+                if peak < best_peak - 1e-12:
+                    best, best_peak = (a, None), peak
+            for b in queues[lo]:  # swap a and b
+                d = values[a] - values[b]
+                if 0.0 < d < gap:
+                    peak = max(loads[hi] - d, loads[lo] + d)
+                    if peak < best_peak - 1e-12:
+                        best, best_peak = (a, b), peak
+        if best is None:
+            return
+        a, b = best
+        queues[hi].remove(a)
+        queues[lo].append(a)
+        loads[hi] -= values[a]
+        loads[lo] += values[a]
+        if b is not None:
+            queues[lo].remove(b)
+            queues[hi].append(b)
+            loads[lo] -= values[b]
+            loads[hi] += values[b]
 
 
 def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
@@ -248,7 +314,7 @@ class DaskEngine(Engine):
             raise RuntimeError("the Dask engine was finished; no more tasks can run")
 
         futures = {}
-        order = start_order(len(tasks), costs)
+        order = start_order(len(tasks), costs, self.n_workers)
         for rank, k in enumerate(order):
             fn, args, kwargs = tasks[k]
             # the scheduler starts higher priorities first

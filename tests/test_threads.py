@@ -67,6 +67,48 @@ def test_costs_start_the_largest_tasks_first_and_keep_positions():
     assert started[:2] in ([4, 3], [3, 4]) and sorted(started) == list(range(5))
 
 
+def _dispatch(order, costs, workers):
+    """Each task of ``order`` goes to the worker that frees first (what a thread pool or a
+    Dask scheduler does); the stage's end (makespan)."""
+    free = [0.0] * workers
+    for k in order:
+        w = min(range(workers), key=lambda i: (free[i], i))
+        free[w] += costs[k]
+    return max(free)
+
+
+def test_start_order_ends_a_stage_no_later_than_longest_first():
+    # Reference: the best split found by trying every assignment (brute force), and the LPT
+    # rule of list scheduling (common practice, no source). The order must end no later
+    # than LPT, and at the optimum for the measured p10M tile costs (seven tiles, two
+    # threads: LPT leaves the last tile alone, a 3 + 4 split ends both threads together).
+    import itertools
+
+    from clearaudit.distributed import start_order
+
+    def best(costs, workers):
+        return min(max(sum(c for c, w in zip(costs, plan, strict=True) if w == i)
+                       for i in range(workers))
+                   for plan in itertools.product(range(workers), repeat=len(costs)))
+
+    p10m = [1.608, 1.534, 1.638, 1.529, 1.388, 1.377, 1.278]
+    lpt = sorted(range(7), key=lambda k: -p10m[k])
+    order = start_order(7, p10m, 2)
+    assert sorted(order) == list(range(7))
+    assert _dispatch(order, p10m, 2) == pytest.approx(best(p10m, 2))
+    assert _dispatch(order, p10m, 2) < _dispatch(lpt, p10m, 2) - 0.2
+    rng = np.random.default_rng(4)
+    for _ in range(60):
+        n, workers = int(rng.integers(3, 9)), int(rng.integers(2, 4))
+        costs = list(rng.uniform(0.5, 2.0, n))
+        order = start_order(n, costs, workers)
+        assert sorted(order) == list(range(n))
+        lpt = sorted(range(n), key=lambda k: -costs[k])
+        assert _dispatch(order, costs, workers) <= _dispatch(lpt, costs, workers) + 1e-12
+        assert _dispatch(order, costs, workers) >= best(costs, workers) - 1e-12
+    assert start_order(3, [3.0, 1.0, 2.0], 5) == [0, 2, 1]  # more workers than tasks: LPT
+
+
 def _fails(k: int) -> int:
     if k == 3:
         raise ValueError("tile 3 is broken")
