@@ -412,10 +412,7 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                 records=records, report=record.extra.get("classified_copy")))
 
         def classified_beside(path: Path) -> None:
-            background.result()
-            record.extra["classified_copy"]["written_beside_audit"] = {
-                "seconds": round(background.seconds, 3),
-                "thread_cpu_seconds": round(background.cpu_seconds, 3)}
+            _wait_for_copy(background, record)
 
         try:
             # ---- audit
@@ -872,10 +869,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         if background is None:
                             write_classified(path)
                             return
-                        background.result()  # written beside the audit: wait for it
-                        record.extra["classified_copy"]["written_beside_audit"] = {
-                            "seconds": round(background.seconds, 3),
-                            "thread_cpu_seconds": round(background.cpu_seconds, 3)}
+                        _wait_for_copy(background, record)  # written beside the audit
 
                     cls_summary = _ClassCounts(dict(sorted(counts.items())))  # completion order: sorted
                     summary = write_outputs(tmp, frame, cls_summary, model, audit, config, conductors,
@@ -899,6 +893,15 @@ def _hash_files(paths: Iterable[Path]) -> list[str]:
 def _import_all(names: Iterable[str]) -> None:
     for name in names:
         import_module(name)
+
+
+def _wait_for_copy(background: _Background, record: RunRecord) -> None:
+    """Wait for classified.laz written beside the audit (re-raising its error) and record
+    its thread's time in ``run.json`` ``classified_copy.written_beside_audit``."""
+    background.result()
+    record.extra["classified_copy"]["written_beside_audit"] = {
+        "seconds": round(background.seconds, 3),
+        "thread_cpu_seconds": round(background.cpu_seconds, 3)}
 
 
 class _Cancelled(Exception):

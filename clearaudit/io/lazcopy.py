@@ -153,8 +153,10 @@ class _SideReader:
             self._fh = None
 
 
-def _chunk_table(fh: BinaryIO, header: Any, path: Path) -> tuple[list[int], int]:
-    """Byte sizes of an input's chunks and where the first chunk starts."""
+def _chunk_table(fh: BinaryIO, header: Any, path: Path
+                 ) -> tuple[list[int], int, list[int]]:
+    """Byte sizes of an input's chunks, where the first chunk starts, and the point counts
+    the table gives (the chunk size each, unless the chunks vary in size)."""
     import lazrs
 
     fh.seek(header.offset_to_point_data)
@@ -165,7 +167,7 @@ def _chunk_table(fh: BinaryIO, header: Any, path: Path) -> tuple[list[int], int]
         raise InputError(path, f"its LAZ chunk table cannot be read ({exc})") from None
     if table is None:
         raise InputError(path, "has no LAZ chunk table")
-    return [int(nbytes) for _, nbytes in table], fh.tell()
+    return [int(nbytes) for _, nbytes in table], fh.tell(), [int(n) for n, _ in table]
 
 
 def _region_dtype(start: int, out_dtype: np.dtype, names: set[str]) -> np.dtype:
@@ -181,13 +183,16 @@ def _region_dtype(start: int, out_dtype: np.dtype, names: set[str]) -> np.dtype:
 @dataclass(frozen=True)
 class _ChunkShape:
     """Record sizes of a copy: input, output, standard part (before the extra bytes), the
-    input's layers per chunk, and the output record bytes coded anew (extra bytes)."""
+    input's layers per chunk, the output record bytes coded anew (extra bytes), and for each
+    extra byte of the output record where its layer comes from: ``(True, k)`` the k-th
+    layer coded anew (0 is the classification), ``(False, i)`` the input chunk's i-th."""
 
     in_size: int
     out_size: int
     std_size: int
     n_layers: int
     coded: list[int]
+    extra_from: tuple[tuple[bool, int], ...]
 
 
 class _Fields(dict):
@@ -307,7 +312,9 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
     buffer = np.empty((n_coded + 1) * layer_capacity(capacity_points), dtype=np.uint8)
     sizes = np.empty(n_coded + 1, dtype=np.int64)
     shape = _ChunkShape(in_size=in_size, out_size=out_size, std_size=std_size,
-                        n_layers=n_layers, coded=coded)
+                        n_layers=n_layers, coded=coded,
+                        extra_from=_extra_layer_sources(coded, std_size, in_size, out_size,
+                                                        n_layers))
     total = 0
     for meta, (chunk_bytes, first_at), file_counts, ranges, (lo, hi), file_values in zip(
             metas, tables, counts, side_ranges, bounds, values, strict=True):
@@ -406,39 +413,21 @@ def chunk_layout(metas: Sequence[Any]) -> tuple[list[tuple[list[int], int]], lis
     InputError
         An input's chunk table cannot be read or does not hold its points.
     """
-    tables = []
+    tables, counts = [], []
     for meta in metas:
         with open(meta.path, "rb") as src:
-            tables.append(_chunk_table(src, meta.header, meta.path))
-    return tables, _chunk_point_counts(metas, tables)
-
-
-def _chunk_point_counts(metas: Sequence[Any], tables: Sequence[tuple[list[int], int]]
-                        ) -> list[list[int]]:
-    """Points of every chunk of every input (each chunk's own count is read at write time
-    and checked against these)."""
-    out = []
-    for meta, (chunk_bytes, _) in zip(metas, tables, strict=True):
+            chunk_bytes, first_at, listed = _chunk_table(src, meta.header, meta.path)
         n = meta.point_count
         _, in_chunk, _ = laszip_items(meta.header)
         if in_chunk == VARIABLE_CHUNKS:
-            counts = _variable_counts(meta, len(chunk_bytes))
-        else:
-            counts = [in_chunk] * (n // in_chunk) + ([n % in_chunk] if n % in_chunk else [])
-        if len(counts) != len(chunk_bytes) or sum(counts) != n:
+            file_counts = listed
+        else:  # a table of equal chunks lists the chunk size for the last one too
+            file_counts = [in_chunk] * (n // in_chunk) + ([n % in_chunk] if n % in_chunk else [])
+        if len(file_counts) != len(chunk_bytes) or sum(file_counts) != n:
             raise InputError(meta.path, f"its LAZ chunks do not hold its {n} points")
-        out.append(counts)
-    return out
-
-
-def _variable_counts(meta: Any, n_chunks: int) -> list[int]:
-    import lazrs
-
-    with open(meta.path, "rb") as src:
-        src.seek(meta.header.offset_to_point_data)
-        vlr = lazrs.LazVlr(bytes(meta.header.vlrs.get("LasZipVlr")[0].record_data))
-        table = lazrs.read_chunk_table(src, vlr)
-    return [int(count) for count, _ in table][:n_chunks]
+        tables.append((chunk_bytes, first_at))
+        counts.append(file_counts)
+    return tables, counts
 
 
 def _blocks(counts: Sequence[int], block_points: int) -> Iterator[list[int]]:
@@ -453,6 +442,15 @@ def _blocks(counts: Sequence[int], block_points: int) -> Iterator[list[int]]:
         size += m
     if block:
         yield block
+
+
+def _extra_layer_sources(coded: list[int], std_size: int, in_size: int, out_size: int,
+                         n_layers: int) -> tuple[tuple[bool, int], ...]:
+    """Where each extra-byte layer of an output chunk comes from (see :class:`_ChunkShape`)."""
+    new_of = {off: k + 1 for k, off in enumerate(coded)}
+    base = n_layers - (in_size - std_size)  # the input chunk's first extra-byte layer
+    return tuple((True, new_of[std_size + j]) if std_size + j in new_of else (False, base + j)
+                 for j in range(out_size - std_size))
 
 
 def _copy_chunk(data: bytes, count: int, shape: _ChunkShape, returns: np.ndarray,
@@ -477,14 +475,9 @@ def _copy_chunk(data: bytes, count: int, shape: _ChunkShape, returns: np.ndarray
     old = [view[starts[i]:starts[i + 1]] for i in range(n_layers)]
     # the layers: the point's own (x/y ... GPS time, colours) with the classification coded
     # anew, then one per extra byte of the output record, copied or coded anew
-    n_extra_in = in_size - shape.std_size
-    base = n_layers - n_extra_in
-    layers: list[Any] = old[:base]
+    layers: list[Any] = old[:n_layers - (in_size - shape.std_size)]
     layers[_CLASS_LAYER] = new[0] if changed else b""
-    by_offset = {off: k + 1 for k, off in enumerate(shape.coded)}
-    for j in range(shape.out_size - shape.std_size):
-        k = by_offset.get(shape.std_size + j)
-        layers.append(new[k] if k is not None else old[base + j])
+    layers.extend(new[i] if anew else old[i] for anew, i in shape.extra_from)
     first = bytearray(shape.out_size)
     first[:in_size] = data[:in_size]
     first[16] = int(classes[0])
