@@ -62,6 +62,25 @@ def _raster_cells(extent: np.ndarray, size: float, most: int) -> tuple[float, np
         size *= 2.0
 
 
+def _cells_near(centres: np.ndarray, lo: np.ndarray, size: float, shape: np.ndarray,
+                bound: float) -> np.ndarray | None:
+    """Flat indices (ascending, row-major over ``shape``) of the raster cells whose centre
+    ``lo + (i + 0.5) * size`` may lie within ``bound`` of a centre on both axes (a superset:
+    one more cell on each side), or None when those boxes hold more cells than the raster."""
+    nu, nv = int(shape[0]), int(shape[1])
+    first = np.floor((centres - lo - bound) / size - 0.5).astype(np.int64) - 1
+    width = int(np.ceil(2.0 * bound / size)) + 4
+    if len(centres) * width * width > nu * nv:
+        return None
+    step = np.arange(width, dtype=np.int64)
+    iu = (first[:, 0, None] + step)[:, :, None]          # (centre, width, 1)
+    iv = (first[:, 1, None] + step)[:, None, :]          # (centre, 1, width)
+    inside = (iu >= 0) & (iu < nu) & (iv >= 0) & (iv < nv)
+    mark = np.zeros(nu * nv, dtype=bool)
+    mark[(iu * nv + iv)[inside]] = True
+    return np.flatnonzero(mark)
+
+
 def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
     r"""Positions (ascending) of the points of ``xy`` closer than ``radius`` to a centre.
 
@@ -103,15 +122,25 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     # far above the round-off of the distances (≈ 1e-16 of the coordinates' magnitude)
     tol = 1e-12 * (float(np.max(np.abs(np.concatenate([lo, hi])))) + radius) + 1e-12
     half = size * np.sqrt(0.5) + tol
-    gu, gv = np.meshgrid(lo[0] + (np.arange(shape[0]) + 0.5) * size,
-                         lo[1] + (np.arange(shape[1]) + 0.5) * size, indexing="ij")
-    d_cell, _ = tree.query(np.column_stack([gu.ravel(), gv.ravel()]),
-                           distance_upper_bound=radius + half + tol)
-    del gu, gv
-    state = np.full(len(d_cell), 2, dtype=np.uint8)   # 2: test each point
-    state[d_cell + half <= radius - tol] = 1          # every point within the radius
-    state[d_cell - half > radius + tol] = 0           # none (also beyond the query: inf)
-    del d_cell
+    bound = radius + half + tol
+    # only the cells whose centre lies within ``bound`` of a centre (on each axis: a box
+    # around each centre, one cell wider on each side) can be nearer than the query's bound;
+    # the others are beyond it (state 0, as the query would find). The boxes are queried
+    # alone unless they hold more cells than the raster.
+    cells = _cells_near(centres, lo, size, shape, bound)
+    if cells is None:
+        cells = np.arange(int(shape[0]) * int(shape[1]), dtype=np.int64)
+    iu, iv = np.divmod(cells, int(shape[1]))
+    d_cell, _ = tree.query(np.column_stack([lo[0] + (iu + 0.5) * size,
+                                            lo[1] + (iv + 0.5) * size]),
+                           distance_upper_bound=bound)
+    del iu, iv
+    state = np.zeros(int(shape[0]) * int(shape[1]), dtype=np.uint8)
+    near_state = np.full(len(d_cell), 2, dtype=np.uint8)   # 2: test each point
+    near_state[d_cell + half <= radius - tol] = 1          # every point within the radius
+    near_state[d_cell - half > radius + tol] = 0           # none (also beyond the query: inf)
+    state[cells] = near_state
+    del d_cell, near_state, cells
     from .classify.kernels import raster_state
 
     # each point's cell state in one compiled pass: min(int((x - lo) / size), last) per axis

@@ -520,3 +520,27 @@ def test_kept_heap_leaves_malloc_alone_when_the_environment_sets_it(monkeypatch)
     monkeypatch.setenv("CLEARAUDIT_KEEP_HEAP", "0")  # turned off outright
     with kept_heap() as kept:
         assert not kept and not heap_kept()
+
+
+@pytest.mark.parametrize("n_centres", [1, 40, 3000])
+def test_near_points_boxes_around_the_centres_and_the_whole_raster(n_centres):
+    # reference: cKDTree.query with distance_upper_bound over every point. Few centres are
+    # looked up through the raster cells around them; thousands (boxes holding more cells
+    # than the raster) through the whole raster: the same points either way
+    from clearaudit.arrays import _cells_near
+
+    rng = np.random.default_rng(n_centres)
+    xy = rng.uniform([0, 0], [300, 80], size=(30_000, 2)) + 4.1e5
+    centres = rng.uniform([-30, -30], [330, 110], size=(n_centres, 2)) + 4.1e5
+    radius = 6.5
+    d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(xy, centres, radius), np.flatnonzero(np.isfinite(d)))
+    # the cells chosen hold every cell centre within the bound of a centre (Chebyshev box)
+    lo, size, shape, bound = xy.min(axis=0), radius / 8.0, np.array([300, 90]), radius + 1.0
+    cells = _cells_near(centres[:5], lo, size, shape, bound)
+    iu, iv = np.divmod(np.arange(shape[0] * shape[1]), shape[1])
+    centre_xy = np.column_stack([lo[0] + (iu + 0.5) * size, lo[1] + (iv + 0.5) * size])
+    dd, _ = cKDTree(centres[:5]).query(centre_xy, distance_upper_bound=bound)
+    assert set(np.flatnonzero(np.isfinite(dd))) <= set(cells)
+    assert np.all(np.diff(cells) > 0)
+    assert _cells_near(centres, lo, size, np.array([10, 10]), bound) is None
