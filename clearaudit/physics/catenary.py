@@ -60,7 +60,7 @@ def _positive(value: ArrayLike, message: str) -> np.ndarray:
             raise ValueError(message)
         return np.asarray(value, dtype=float)
     v = np.asarray(value, dtype=float)
-    if np.any(~(v > 0)):
+    if not (v > 0).all():  # the same test as np.any(~(v > 0)), without its wrapper
         raise ValueError(message)
     return v
 

@@ -139,6 +139,24 @@ def _unstressed_length(span_length, height_difference, horizontal_tension, unit_
     return length / (1.0 + model.strain(mean_tension, temperature_shift))
 
 
+def _bisect(residual, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``_BISECTION_STEPS`` halvings of the brackets [lo, hi] (``residual`` < 0 at lo).
+
+    A step is a function of (lo, hi) alone, so once a step leaves both unchanged (every
+    bracket down to adjacent floats, about 55 steps in log C) the remaining steps would too:
+    they are skipped, with the same result bit for bit.
+    """
+    for _ in range(_BISECTION_STEPS):
+        mid = 0.5 * (lo + hi)
+        below = residual(mid) < 0
+        new_lo = np.where(below, mid, lo)
+        new_hi = np.where(below, hi, mid)
+        if np.array_equal(new_lo, lo) and np.array_equal(new_hi, hi):
+            break
+        lo, hi = new_lo, new_hi
+    return lo, hi
+
+
 def _solve_horizontal_tension(span_length, height_difference, unstressed_length, unit_weight,
                               temperature_shift, model: _StrainModel) -> np.ndarray:
     """H such that the catenary's average tension matches the strain of its arc length.
@@ -164,11 +182,7 @@ def _solve_horizontal_tension(span_length, height_difference, unstressed_length,
     if np.any(r_hi < 0):
         raise ValueError("The conductor would be tighter than C = 1e9 m in the final "
                          "condition; check the inputs (units, temperature, load).")
-    for _ in range(_BISECTION_STEPS):
-        mid = 0.5 * (lo + hi)
-        below = residual(mid) < 0
-        lo = np.where(below, mid, lo)
-        hi = np.where(below, hi, mid)
+    lo, hi = _bisect(residual, lo, hi)
     return w * np.exp(0.5 * (lo + hi))
 
 
@@ -391,11 +405,7 @@ core_thermal_expansion
     hi = np.full_like(lo, np.log(_MAX_CONSTANT_M))
     if np.any(residual(lo) > 0) or np.any(residual(hi) < 0):
         raise ValueError("No knee point found for these inputs.")
-    for _ in range(_BISECTION_STEPS):
-        mid = 0.5 * (lo + hi)
-        below = residual(mid) < 0
-        lo = np.where(below, mid, lo)
-        hi = np.where(below, hi, mid)
+    lo, hi = _bisect(residual, lo, hi)
     constant = np.exp(0.5 * (lo + hi))
     strain = catenary.arc_length(L, h, constant) / S0 - 1.0
     return te + (strain - e_min) / a_out - shift
