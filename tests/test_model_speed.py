@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import optimize, special, stats
+from scipy import special, stats
 from scipy.optimize._numdiff import approx_derivative
 
 from clearaudit.model import line, wires
@@ -54,24 +54,6 @@ def test_central_difference_jacobian(fit_tilt):
     # the truncation error of the two schemes
     reference = approx_derivative(problem.residuals, p, method="3-point")
     assert np.max(np.abs(jac - reference)) <= 1e-6 * np.max(np.abs(reference))
-
-
-@pytest.mark.skipif(not fit._LSQ_WORKERS, reason="least_squares without workers")
-@pytest.mark.parametrize("fit_tilt", [True, False])
-def test_least_squares_with_vectorised_differences_is_unchanged(fit_tilt):
-    problem, p = _problem(fit_tilt)
-    lower = np.array([-np.inf, -np.inf, np.log(0.25 * problem.span), -np.inf, -np.inf, -1.4])
-    upper = np.array([np.inf, np.inf, np.log(1e5), np.inf, np.inf, 1.4])
-    kw = dict(bounds=(lower[:p.size], upper[:p.size]), loss="soft_l1", f_scale=0.05,
-              x_scale=np.array([1.0, 1.0, 0.01, 1.0, 1.0, 0.01])[:p.size], method="trf",
-              tr_solver="lsmr", xtol=1e-9, ftol=1e-9, gtol=1e-9, max_nfev=200)
-    # reference: scipy's own loop over the shifted parameter vectors
-    plain = optimize.least_squares(problem.residuals, p, **kw)
-    mapped = optimize.least_squares(problem.residuals, p, workers=problem.map_residuals, **kw)
-    assert np.array_equal(plain.x, mapped.x)
-    assert np.array_equal(plain.jac, mapped.jac)
-    assert plain.nfev == mapped.nfev and plain.status == mapped.status
-    assert fit._solve(problem, p, "soft_l1", 0.05).x.tolist() == plain.x.tolist()
 
 
 def test_student_t_quantile_is_scipy_stats():
