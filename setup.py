@@ -8,5 +8,7 @@ setup(ext_modules=cythonize(
                extra_compile_args=["-O3", "-ffp-contract=off"])
      for name in ("_neighbours", "_grid")]
     + [Extension("clearaudit.io._lazlayers", ["clearaudit/io/_lazlayers.pyx"],
-                 extra_compile_args=["-O3"])],
+                 extra_compile_args=["-O3"]),
+       Extension("clearaudit.model._irls", ["clearaudit/model/_irls.pyx"],
+                 extra_compile_args=["-O3", "-ffp-contract=off"])],
     compiler_directives={"language_level": 3}))

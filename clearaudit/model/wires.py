@@ -163,8 +163,25 @@ def robust_polyfit(x: np.ndarray, y: np.ndarray, degree: int, *, iterations: int
     xm = x.mean()
     xs = max(np.ptp(x) / 2.0, 1e-9)
     xn = (x - xm) / xs
-    w = np.ones_like(x)
     coef_n = np.zeros(degree + 1)
+    w = np.ones_like(x)
+    if degree <= 3 and np.isfinite(xn).all() and np.isfinite(y).all():
+        # compiled: every iteration in one call (falls back below on a singular system)
+        from ._irls import irls_polyfit
+
+        status = irls_polyfit(np.ascontiguousarray(xn), np.ascontiguousarray(y), degree,
+                              int(iterations), float(tuning), float(min_scale), coef_n, w)
+        if status != 2:
+            if status == 1:
+                w = np.ones_like(x)
+            return _compose_linear(coef_n, 1.0 / xs, -xm / xs), w
+        coef_n, w = np.zeros(degree + 1), np.ones_like(x)
+    return _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, xs)
+
+
+def _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, xs):
+    """The IRLS loop of :func:`robust_polyfit` with numpy's least squares (minimum-norm
+    solutions of singular systems; non-finite samples)."""
     A = np.vander(xn, degree + 1)
     for _ in range(iterations):
         sw = np.sqrt(w)
