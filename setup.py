@@ -10,5 +10,8 @@ setup(ext_modules=cythonize(
     + [Extension("clearaudit.io._lazlayers", ["clearaudit/io/_lazlayers.pyx"],
                  extra_compile_args=["-O3"]),
        Extension("clearaudit.model._irls", ["clearaudit/model/_irls.pyx"],
+                 extra_compile_args=["-O3", "-ffp-contract=off"]),
+       Extension("clearaudit.physics._catenary_residuals",
+                 ["clearaudit/physics/_catenary_residuals.pyx"],
                  extra_compile_args=["-O3", "-ffp-contract=off"])],
     compiler_directives={"language_level": 3}))

@@ -141,3 +141,23 @@ def test_point_grid_candidates_hold_every_point_of_the_rectangle():
     assert line._PointGrid(np.zeros((0, 2))).candidates(corners).size == 0
     far = corners + 5000.0
     assert grid.candidates(far).size == 0
+
+
+@pytest.mark.parametrize("fit_tilt", [True, False])
+def test_compiled_residuals_are_the_numpy_model(fit_tilt):
+    # the compiled residuals against the same model written with numpy (fit._curve, whose
+    # catenary is checked against the closed forms in test_fit.py / test_catenary.py): the
+    # normal distances agree to rounding
+    problem, p = _problem(fit_tilt)
+    rows = np.vstack([p, p + 0.01, p * 1.001])
+    full = rows if fit_tilt else np.column_stack([rows, np.zeros(3)])
+    got = problem.residuals_many(rows)
+    for q, row in zip(full, got, strict=True):
+        lateral, z, dv, dz = fit._curve(problem.s, problem.span, q[0], q[1], np.exp(q[2]),
+                                        q[3], q[4], q[5], with_slopes=True)
+        want = np.concatenate([problem.lateral_weight * (problem.v - lateral)
+                               / np.sqrt(1.0 + dv * dv), (problem.z - z) / np.sqrt(1.0 + dz * dz)])
+        np.testing.assert_allclose(row, want, rtol=1e-9, atol=1e-12)
+    r_v, r_z = problem.components(p)
+    np.testing.assert_array_equal(np.concatenate([problem.lateral_weight * r_v, r_z]),
+                                  problem.residuals(p))

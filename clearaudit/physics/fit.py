@@ -331,42 +331,42 @@ class _Problem:
         self.direction = direction
         self.normal = np.array([-direction[1], direction[0]])
         rel = xyz[:, :2] - origin
-        self.s = rel @ direction
-        self.v = rel @ self.normal
-        self.z = xyz[:, 2]
-        self.span = span
+        self.s = np.ascontiguousarray(rel @ direction)
+        self.v = np.ascontiguousarray(rel @ self.normal)
+        self.z = np.ascontiguousarray(xyz[:, 2], dtype=float)
+        self.span = float(span)
         self.fit_tilt = fit_tilt
         self.lateral_weight = 1.0
 
     def full(self, p):
         return p if self.fit_tilt else np.append(p, 0.0)
 
-    def components(self, p):
-        z_a, z_b, log_c, y_a, y_b, tilt = self.full(p)
-        lateral, z, dv, dz = _curve(self.s, self.span, z_a, z_b, np.exp(log_c), y_a, y_b,
-                                    tilt, with_slopes=True)
-        return (self.v - lateral) / np.sqrt(1.0 + dv * dv), (self.z - z) / np.sqrt(1.0 + dz * dz)
+    def _evaluate(self, params, lateral_weight):
+        """Residual rows of the parameter rows ``params`` (compiled: the operations of
+        :func:`_curve`, one pass over the points per row)."""
+        from ._catenary_residuals import catenary_residuals
 
-    def residuals(self, p):
-        r_v, r_z = self.components(p)
-        return np.concatenate([self.lateral_weight * r_v, r_z])
-
-    def residuals_many(self, params):
-        """Residuals of several parameter vectors (rows of ``params``) in one evaluation.
-
-        The parameters enter :func:`_curve` as columns, so every element goes through the
-        same floating-point operations as in :meth:`residuals`: row ``i`` of the result
-        equals ``residuals(params[i])`` bit for bit (checked in tests/test_model_speed.py).
-        """
-        params = np.asarray(params, dtype=float)
+        params = np.asarray(params, dtype=float).reshape(-1, 6 if self.fit_tilt else 5)
         if not self.fit_tilt:
             params = np.column_stack([params, np.zeros(len(params))])
-        z_a, z_b, log_c, y_a, y_b, tilt = (params[:, k:k + 1] for k in range(6))
-        lateral, z, dv, dz = _curve(self.s, self.span, z_a, z_b, np.exp(log_c), y_a, y_b,
-                                    tilt, with_slopes=True)
-        r_v = (self.v - lateral) / np.sqrt(1.0 + dv * dv)
-        r_z = (self.z - z) / np.sqrt(1.0 + dz * dz)
-        return np.concatenate([self.lateral_weight * r_v, r_z], axis=1)
+        out = np.empty((len(params), 2 * self.s.size))
+        catenary_residuals(self.s, self.v, self.z, self.span, np.ascontiguousarray(params),
+                           float(lateral_weight), out)
+        return out
+
+    def components(self, p):
+        """Lateral and vertical residuals (unweighted) at ``p``."""
+        row = self._evaluate(p, 1.0)[0]
+        return row[:self.s.size], row[self.s.size:]
+
+    def residuals(self, p):
+        return self._evaluate(p, self.lateral_weight)[0]
+
+    def residuals_many(self, params):
+        """Residuals of several parameter vectors (rows of ``params``) in one evaluation:
+        row ``i`` equals ``residuals(params[i])`` bit for bit (the same compiled loop;
+        checked in tests/test_model_speed.py)."""
+        return self._evaluate(params, self.lateral_weight)
 
     def map_residuals(self, function, parameter_vectors):
         """Map-like callable for the ``workers`` argument of least_squares: its finite
