@@ -52,6 +52,22 @@ def class_mask(classes: np.ndarray, codes) -> np.ndarray:
     return table[classes]
 
 
+def median_1d(values: np.ndarray) -> float:
+    """Median of a 1-D array: the value :func:`numpy.median` gives (the middle order
+    statistic, or the mean of the two middle ones; NaN when any value is NaN or the array is
+    empty), without its general-axis overhead."""
+    n = values.size
+    if n == 0:
+        return float("nan")
+    if n % 2:
+        part = np.partition(values, [(n - 1) // 2, -1])
+        middle = part[(n - 1) // 2]
+    else:
+        part = np.partition(values, [n // 2 - 1, n // 2, -1])
+        middle = (part[n // 2 - 1] + part[n // 2]) / 2.0
+    return float("nan") if np.isnan(part[-1]) else float(middle)
+
+
 def _raster_cells(extent: np.ndarray, size: float, most: int) -> tuple[float, np.ndarray]:
     """Cell size (``size`` or a power-of-two multiple of it) and shape of a raster over
     ``extent`` with at most ``most`` cells."""

@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from ..arrays import column_bounds
+from ..arrays import column_bounds, median_1d
 
 
 @dataclass
@@ -197,18 +197,7 @@ def _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, 
     return _compose_linear(coef_n, 1.0 / xs, -xm / xs), w
 
 
-def _median(values: np.ndarray) -> float:
-    """Median of a non-empty 1-D array: the value :func:`numpy.median` gives (the middle order
-    statistic, or the mean of the two middle ones; NaN when any value is NaN), without its
-    general-axis overhead."""
-    n = values.size
-    if n % 2:
-        part = np.partition(values, [(n - 1) // 2, -1])
-        middle = part[(n - 1) // 2]
-    else:
-        part = np.partition(values, [n // 2 - 1, n // 2, -1])
-        middle = (part[n // 2 - 1] + part[n // 2]) / 2.0
-    return float("nan") if np.isnan(part[-1]) else float(middle)
+_median = median_1d  # numpy.median of a 1-D array, without its general-axis overhead
 
 
 def _trimmed(c: np.ndarray) -> np.ndarray:

@@ -87,6 +87,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import special
 
+from clearaudit.arrays import median_1d
 from clearaudit.physics import catenary
 
 __all__ = ["PARAMETER_NAMES", "CatenaryFit", "fit_catenary"]
@@ -282,7 +283,7 @@ def _robust_direction(xy: np.ndarray, f_scale: float) -> tuple[np.ndarray, np.nd
         _, vectors = np.linalg.eigh(cov)
         direction = vectors[:, -1]
         distance = np.abs(d @ np.array([-direction[1], direction[0]]))
-        scale = max(1.4826 * np.median(distance), f_scale)
+        scale = max(1.4826 * median_1d(distance), f_scale)
         weights = np.minimum(1.0, 2.0 * scale / np.maximum(distance, 1e-12))  # Huber
     return centre, direction / np.hypot(*direction)
 
@@ -378,8 +379,8 @@ class _Problem:
     def balance(self, p):
         """Weight the lateral residuals by sigma_vertical / sigma_lateral (robust scales)."""
         r_v, r_z = self.components(p)
-        sigma_v = max(1.4826 * np.median(np.abs(r_v - np.median(r_v))), 1e-4)
-        sigma_z = max(1.4826 * np.median(np.abs(r_z - np.median(r_z))), 1e-4)
+        sigma_v = max(1.4826 * median_1d(np.abs(r_v - median_1d(r_v))), 1e-4)
+        sigma_z = max(1.4826 * median_1d(np.abs(r_z - median_1d(r_z))), 1e-4)
         self.lateral_weight = float(np.clip(sigma_z / sigma_v, 0.1, 10.0))
 
     def jacobian(self, p):
@@ -404,7 +405,7 @@ def _initial_guess(problem: _Problem, fit_tilt: bool, f_scale: float) -> np.ndar
             sw = np.sqrt(weights)
             c, *_ = np.linalg.lstsq(design * sw[:, None], values * sw, rcond=None)
             r = np.abs(values - design @ c)
-            scale = max(1.4826 * np.median(r), f_scale)
+            scale = max(1.4826 * median_1d(r), f_scale)
             weights = np.minimum(1.0, 2.0 * scale / np.maximum(r, 1e-12))
         coef[name] = c
     cz, cv = coef["z"], coef["v"]
@@ -575,7 +576,7 @@ def _minimise(problem: _Problem, x0: np.ndarray, lower: np.ndarray, upper: np.nd
 def _inliers(problem: _Problem, p: np.ndarray, f_scale: float) -> tuple[np.ndarray, np.ndarray]:
     r_v, r_z = problem.components(p)
     weighted = np.hypot(problem.lateral_weight * r_v, r_z)
-    sigma = 1.4826 * np.median(np.abs(np.concatenate([problem.lateral_weight * r_v, r_z])))
+    sigma = 1.4826 * median_1d(np.abs(np.concatenate([problem.lateral_weight * r_v, r_z])))
     return weighted <= max(3.0 * f_scale, 4.0 * sigma), np.hypot(r_v, r_z)
 
 
