@@ -1597,9 +1597,24 @@ def nearest_curve(points: np.ndarray, curves: list[np.ndarray]
     if len(pts) == 0 or not curves:
         return best_d, best_curve, best_param
     bound, _ = cKDTree(np.concatenate(curves)).query(pts)
+    # the points that can be near a curve's box: within the box's half-diagonal plus the
+    # largest bound of its centre (a superset of those the exact box test below keeps)
+    reach = float(np.max(bound)) + 1e-9
+    point_tree = cKDTree(pts) if np.isfinite(reach) else None
     for j, curve in enumerate(curves):                   # a loop over curves
-        gap = np.maximum(np.maximum(curve.min(axis=0) - pts, pts - curve.max(axis=0)), 0.0)
-        near = np.flatnonzero(np.sqrt(np.einsum("ij,ij->i", gap, gap)) <= bound + 1e-9)
+        lo, hi = curve.min(axis=0), curve.max(axis=0)
+        if np.isfinite(reach):
+            some = np.asarray(point_tree.query_ball_point(
+                0.5 * (lo + hi), 0.5 * float(np.sqrt(np.sum((hi - lo) ** 2))) * (1 + 1e-12)
+                + reach + 1e-9), dtype=np.int64)
+        else:
+            some = np.arange(len(pts))
+        if some.size == 0:
+            continue
+        some.sort()
+        sub = pts[some]
+        gap = np.maximum(np.maximum(lo - sub, sub - hi), 0.0)
+        near = some[np.sqrt(np.einsum("ij,ij->i", gap, gap)) <= bound[some] + 1e-9]
         if near.size == 0:
             continue
         d, _, param = polyline_distance(pts[near], curve)
