@@ -155,3 +155,29 @@ def test_fit_catenary_recovers_a_known_wire():
     true_sag = float(catenary.sag(span, 4.0, c))
     assert abs(result.sag_m - true_sag) <= max(3 * result.sag_ci95_m, 0.02)
     assert result.catenary_constant_m == pytest.approx(c, rel=0.02)
+
+
+@pytest.mark.parametrize("loss", ["soft_l1", "huber", "linear", "cauchy"])
+@pytest.mark.parametrize("fit_tilt", [True, False])
+def test_compiled_loop_is_the_numpy_loop(loss, fit_tilt):
+    # the compiled loop against the same steps written with numpy (fit._minimise_numpy):
+    # the same minimum to rounding (the sums and the damped solve round differently)
+    problem, p0 = _problem(5, fit_tilt, n=800, outliers=0.1)
+    lower, upper = _bounds(problem, p0.size)
+    got = _mine(problem, p0, loss)
+    ref = fit._minimise_numpy(problem, p0, lower, upper, SCALES[:p0.size], loss, 0.05)
+    assert got.status > 0 and ref.status > 0
+    assert got.cost == pytest.approx(ref.cost, rel=1e-9)
+    np.testing.assert_allclose(got.x, ref.x, rtol=0.0, atol=1e-5)
+
+
+def test_fits_on_threads_equal_fits_on_one():
+    # the compiled loop leaves the GIL: fits run on two threads give the same results
+    from concurrent.futures import ThreadPoolExecutor
+
+    problems = [_problem(seed, seed % 2 == 0, n=400, outliers=0.1) for seed in range(8)]
+    serial = [_mine(p, x0, "soft_l1").x for p, x0 in problems]
+    with ThreadPoolExecutor(2) as pool:
+        threaded = list(pool.map(lambda px: _mine(px[0], px[1], "soft_l1").x, problems))
+    for a, b in zip(serial, threaded, strict=True):
+        np.testing.assert_array_equal(a, b)

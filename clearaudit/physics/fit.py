@@ -476,6 +476,26 @@ def _loss_terms(z: np.ndarray, loss: str) -> tuple[np.ndarray, np.ndarray, np.nd
 def _minimise(problem: _Problem, x0: np.ndarray, lower: np.ndarray, upper: np.ndarray,
               scales: np.ndarray, loss: str, f_scale: float, *, ftol: float = 1e-9,
               xtol: float = 1e-9, gtol: float = 1e-9, max_nfev: int = 200) -> _Solution:
+    """:func:`_minimise_numpy`'s loop in compiled code (``_catenary_residuals.minimise``:
+    the same steps and tests, sums and the damped system's solve (Cholesky) in its own order),
+    without the GIL, so that fits on several threads share the cores; checked against
+    :func:`_minimise_numpy` and scipy's least_squares in tests/test_fit_solver.py."""
+    from ._catenary_residuals import LOSSES, minimise
+
+    x = np.array(np.clip(np.asarray(x0, dtype=float), lower, upper), dtype=float)
+    status, cost, nfev, njev = minimise(
+        problem.s, problem.v, problem.z, problem.span, float(problem.lateral_weight), x,
+        np.ascontiguousarray(lower, dtype=float), np.ascontiguousarray(upper, dtype=float),
+        np.ascontiguousarray(scales, dtype=float), LOSSES[loss], float(f_scale), float(ftol),
+        float(xtol), float(gtol), int(max_nfev))
+    return _Solution(x=x, status=int(status), cost=float(cost), nfev=int(nfev),
+                     njev=int(njev))
+
+
+def _minimise_numpy(problem: _Problem, x0: np.ndarray, lower: np.ndarray,
+                    upper: np.ndarray, scales: np.ndarray, loss: str, f_scale: float, *,
+                    ftol: float = 1e-9, xtol: float = 1e-9, gtol: float = 1e-9,
+                    max_nfev: int = 200) -> _Solution:
     """Minimise the robust cost 0.5 f^2 sum rho((r_i/f)^2) of ``problem``'s residuals within
     the bounds: a damped Gauss-Newton (Levenberg-Marquardt) iteration.
 
