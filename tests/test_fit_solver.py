@@ -181,3 +181,14 @@ def test_fits_on_threads_equal_fits_on_one():
         threaded = list(pool.map(lambda px: _mine(px[0], px[1], "soft_l1").x, problems))
     for a, b in zip(serial, threaded, strict=True):
         np.testing.assert_array_equal(a, b)
+
+
+def test_a_start_that_does_not_evaluate_is_not_converged():
+    # a point with no finite residual (fit_catenary drops such points before; the loop itself
+    # must not call a start it cannot evaluate converged)
+    problem, p0 = _problem(6, True, n=100)
+    problem.z[3] = np.nan
+    got = _mine(problem, p0, "soft_l1")
+    assert got.status == 0
+    assert not np.isfinite(got.cost)
+    np.testing.assert_array_equal(got.x, np.clip(p0, *_bounds(problem, p0.size)))

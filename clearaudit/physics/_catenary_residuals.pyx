@@ -228,7 +228,7 @@ def minimise(const double[::1] s, const double[::1] v, const double[::1] z, doub
     cdef double x_new[6]
     cdef int free_idx[6]
     cdef int nfree, a, c, status = 0, nfev, njev
-    cdef bint stepped, small_step
+    cdef bint stepped, small_step, usable
     cdef double cost, cost_new, damping = -1.0, growth = 2.0, g, gmax, dmax, t
     cdef double norm_dx, norm_x, predicted, actual, ratio, previous, factor
     with nogil:
@@ -241,18 +241,23 @@ def minimise(const double[::1] s, const double[::1] v, const double[::1] z, doub
         nfev = 1
         njev = 1
         _jacobian(&f, &x[0], r, &upper[0], jac, work)
-        while nfev < max_nfev:
+        while nfev < max_nfev and isfinite(cost):  # a start that does not evaluate: status 0
+            usable = True
             for a in range(k):
                 g = 0.0
                 for i in range(m):
                     g += jac[a * m + i] * psi[i]
                 gradient[a] = g
+                usable = usable and isfinite(g)
                 for c in range(a + 1):
                     t = 0.0
                     for i in range(m):
                         t += jac[a * m + i] * weight[i] * jac[c * m + i]
                     hessian[a * 6 + c] = t
                     hessian[c * 6 + a] = t
+                    usable = usable and isfinite(t)
+            if not usable:  # no usable slope or curvature: not converged (status 0)
+                break
             nfree = 0
             gmax = 0.0
             for a in range(k):
@@ -285,6 +290,8 @@ def minimise(const double[::1] s, const double[::1] v, const double[::1] z, doub
                 if _cholesky_solve(system, nfree, rhs):
                     damping *= growth
                     growth *= 2.0
+                    if not isfinite(damping):  # no damping makes the system solvable
+                        break
                     continue
                 for a in range(k):
                     dx[a] = 0.0
