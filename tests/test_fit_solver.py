@@ -2,7 +2,9 @@
 
 The fit minimises the robust cost of a span's residuals with a compact damped Gauss-Newton
 loop (``fit._minimise``) instead of calling least_squares for every span. Both minimise the same
-function; the checks: the loss terms are scipy's, the cost reached is never higher than
+function; the checks: the cost it reports is scipy's (0.5 f^2 sum rho) at its parameters, the
+same loop written with numpy (``_numpy_loop`` below, with scipy's loss terms) reaches the same
+minimum, the cost reached is never higher than
 least_squares reaches from the same start with the same settings (lower where least_squares
 stops early), the parameters agree where the minimum is well defined, bounds hold, and a
 budget of evaluations that runs out is reported as such.
@@ -19,6 +21,113 @@ from clearaudit.physics import fit
 
 _LSQ = importlib.import_module("scipy.optimize._lsq.least_squares")
 SCALES = np.array([1.0, 1.0, 0.01, 1.0, 1.0, 0.01])
+_EPS = float(np.finfo(float).eps)
+_SQRT_EPS = float(np.sqrt(_EPS))
+
+
+def _loss_terms(z: np.ndarray, loss: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """rho(z), rho'(z), rho''(z) of the robust losses of scipy.optimize.least_squares, at
+    z = (r / f_scale)^2 (its documented definitions)."""
+    if loss == "soft_l1":
+        t = 1.0 + z
+        root = np.sqrt(t)
+        return 2.0 * (root - 1.0), 1.0 / root, -0.5 / (t * root)
+    if loss == "huber":
+        inside = z <= 1.0
+        zz = np.where(inside, 1.0, z)
+        root = np.sqrt(zz)
+        return (np.where(inside, z, 2.0 * root - 1.0), np.where(inside, 1.0, 1.0 / root),
+                np.where(inside, 0.0, -0.5 / (zz * root)))
+    if loss == "cauchy":
+        t = 1.0 + z
+        return np.log1p(z), 1.0 / t, -1.0 / (t * t)
+    if loss == "arctan":
+        t = 1.0 + z * z
+        return np.arctan(z), 1.0 / t, -2.0 * z / (t * t)
+    return z, np.ones_like(z), np.zeros_like(z)
+
+
+def _numpy_loop(problem, x0, lower, upper, scales, loss, f_scale, *, ftol=1e-9, xtol=1e-9,
+                gtol=1e-9, max_nfev=200):
+    """Reference: the loop of ``fit._minimise`` (see its docstring) written with numpy
+    (vectorised residuals, LAPACK's solve), as the compiled loop was first written and
+    measured against least_squares."""
+    x = np.clip(np.asarray(x0, dtype=float), lower, upper)
+    f2 = f_scale * f_scale
+
+    def evaluate(p):
+        with np.errstate(all="ignore"):  # a trial step far off overflows: it is rejected
+            r = problem.residuals(p)
+            z = (r / f_scale) ** 2
+            rho0, rho1, rho2 = _loss_terms(z, loss)
+            weight = rho1 + 2.0 * rho2 * z
+            cost = 0.5 * f2 * float(np.sum(rho0))
+        return r, (cost if np.isfinite(cost) else np.inf), rho1 * r, np.maximum(weight, _EPS)
+
+    def jacobian(p, r):
+        step = _SQRT_EPS * np.maximum(1.0, np.abs(p))
+        step = np.where(p + step <= upper, step, -step)
+        shifted = p + np.diag(step)
+        step = np.diag(shifted) - p
+        return ((problem.residuals_many(shifted) - r) / step[:, None]).T
+
+    r, cost, psi, weight = evaluate(x)
+    nfev, njev = 1, 1
+    jac = jacobian(x, r)
+    damping, growth = -1.0, 2.0
+    status = 0
+    while nfev < max_nfev:
+        gradient = jac.T @ psi
+        hessian = (jac * weight[:, None]).T @ jac
+        held = ((x <= lower) & (gradient > 0)) | ((x >= upper) & (gradient < 0))
+        free = ~held
+        g_scaled = gradient * scales
+        if np.max(np.abs(g_scaled[free]), initial=0.0) < gtol:
+            status = 1
+            break
+        h_scaled = (hessian * scales[:, None] * scales[None, :])[np.ix_(free, free)]
+        if damping < 0:
+            damping = 1e-3 * max(float(np.max(np.diag(h_scaled), initial=0.0)), 1e-12)
+        stepped = False
+        while nfev < max_nfev:
+            try:
+                d = np.linalg.solve(h_scaled + damping * np.eye(int(free.sum())),
+                                    -g_scaled[free])
+            except np.linalg.LinAlgError:
+                damping *= growth
+                growth *= 2.0
+                continue
+            dx = np.zeros_like(x)
+            dx[free] = d * scales[free]
+            x_new = np.clip(x + dx, lower, upper)
+            dx = x_new - x
+            small_step = np.linalg.norm(dx) <= xtol * (xtol + np.linalg.norm(x))
+            predicted = -(gradient @ dx + 0.5 * dx @ hessian @ dx)
+            r_new, cost_new, psi_new, weight_new = evaluate(x_new)
+            nfev += 1
+            actual = cost - cost_new
+            if predicted > 0 and actual > 1e-4 * predicted:
+                ratio = actual / predicted
+                damping *= max(1.0 / 3.0, 1.0 - (2.0 * ratio - 1.0) ** 3)
+                growth = 2.0
+                x, r, psi, weight = x_new, r_new, psi_new, weight_new
+                previous, cost = cost, cost_new
+                stepped = True
+                if actual < ftol * previous:
+                    status = 2
+                elif small_step:
+                    status = 3
+                break
+            if small_step:  # no smaller step can lower the cost measurably
+                status = 3
+                break
+            damping *= growth
+            growth *= 2.0
+        if status or not stepped:
+            break
+        jac = jacobian(x, r)
+        njev += 1
+    return fit._Solution(x=x, status=status, cost=cost, nfev=nfev, njev=njev)
 
 
 def _problem(seed: int, fit_tilt: bool, n: int = 600, outliers: float = 0.0,
@@ -58,9 +167,10 @@ def _mine(problem, p0, loss, f_scale=0.05, **kw):
 
 @pytest.mark.parametrize("loss", ["soft_l1", "huber", "cauchy", "arctan", "linear"])
 def test_loss_terms_are_scipys(loss):
-    # reference library: scipy's own loss functions (rho, rho', rho'' at z = (f/f_scale)^2)
+    # the numpy reference loop's loss terms against the reference library: scipy's own loss
+    # functions (rho, rho', rho'' at z = (f/f_scale)^2)
     z = np.concatenate([[0.0, 1e-12, 0.5, 1.0, 1.0 + 1e-12, 3.0], np.geomspace(1e-6, 1e6, 40)])
-    got = fit._loss_terms(z, loss)
+    got = _loss_terms(z, loss)
     if loss == "linear":
         want = (z, np.ones_like(z), np.zeros_like(z))
     else:
@@ -160,12 +270,12 @@ def test_fit_catenary_recovers_a_known_wire():
 @pytest.mark.parametrize("loss", ["soft_l1", "huber", "linear", "cauchy"])
 @pytest.mark.parametrize("fit_tilt", [True, False])
 def test_compiled_loop_is_the_numpy_loop(loss, fit_tilt):
-    # the compiled loop against the same steps written with numpy (fit._minimise_numpy):
+    # the compiled loop against the same steps written with numpy (_numpy_loop above):
     # the same minimum to rounding (the sums and the damped solve round differently)
     problem, p0 = _problem(5, fit_tilt, n=800, outliers=0.1)
     lower, upper = _bounds(problem, p0.size)
     got = _mine(problem, p0, loss)
-    ref = fit._minimise_numpy(problem, p0, lower, upper, SCALES[:p0.size], loss, 0.05)
+    ref = _numpy_loop(problem, p0, lower, upper, SCALES[:p0.size], loss, 0.05)
     assert got.status > 0 and ref.status > 0
     assert got.cost == pytest.approx(ref.cost, rel=1e-9)
     np.testing.assert_allclose(got.x, ref.x, rtol=0.0, atol=1e-5)

@@ -20,8 +20,8 @@ def _reference(x, y, degree, iterations=10, tuning=4.685, min_scale=0.02):
     xm = x.mean()
     xs = max(np.ptp(x) / 2.0, 1e-9)
     xn = (x - xm) / xs
-    return wires._irls_lstsq(x, xn, np.asarray(y, float), degree, np.zeros(degree + 1),
-                             np.ones_like(x), iterations, tuning, min_scale, xm, xs)
+    return wires._irls_lstsq(x, xn, np.asarray(y, float), degree, iterations, tuning,
+                             min_scale, xm, xs)
 
 
 @pytest.mark.parametrize("degree", [0, 1, 2, 3])

@@ -32,6 +32,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..arrays import column_bounds, median_1d
+from ._irls import irls_polyfit
 
 
 @dataclass
@@ -163,31 +164,28 @@ def robust_polyfit(x: np.ndarray, y: np.ndarray, degree: int, *, iterations: int
     xm = x.mean()
     xs = max(np.ptp(x) / 2.0, 1e-9)
     xn = (x - xm) / xs
-    coef_n = np.zeros(degree + 1)
-    w = np.ones_like(x)
     if degree <= 3 and np.isfinite(xn).all() and np.isfinite(y).all():
-        # compiled: every iteration in one call (falls back below on a singular system)
-        from ._irls import irls_polyfit
-
+        # compiled: every iteration in one call (a singular system falls back below)
+        coef_n, w = np.zeros(degree + 1), np.ones_like(x)
         status = irls_polyfit(np.ascontiguousarray(xn), np.ascontiguousarray(y), degree,
                               int(iterations), float(tuning), float(min_scale), coef_n, w)
         if status != 2:
-            if status == 1:
-                w = np.ones_like(x)
-            return _compose_linear(coef_n, 1.0 / xs, -xm / xs), w
-        coef_n, w = np.zeros(degree + 1), np.ones_like(x)
-    return _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, xs)
+            return _compose_linear(coef_n, 1.0 / xs, -xm / xs), \
+                (np.ones_like(x) if status == 1 else w)
+    return _irls_lstsq(x, xn, y, degree, iterations, tuning, min_scale, xm, xs)
 
 
-def _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, xs):
+def _irls_lstsq(x, xn, y, degree, iterations, tuning, min_scale, xm, xs):
     """The IRLS loop of :func:`robust_polyfit` with numpy's least squares (minimum-norm
     solutions of singular systems; non-finite samples)."""
+    coef_n = np.zeros(degree + 1)
+    w = np.ones_like(x)
     A = np.vander(xn, degree + 1)
     for _ in range(iterations):
         sw = np.sqrt(w)
         coef_n, *_ = np.linalg.lstsq(A * sw[:, None], y * sw, rcond=None)
         r = y - A @ coef_n
-        scale = max(1.4826 * _median(np.abs(r[w > 0] if np.any(w > 0) else r)), min_scale)
+        scale = max(1.4826 * median_1d(np.abs(r[w > 0] if np.any(w > 0) else r)), min_scale)
         u = r / (tuning * scale)
         w = np.where(np.abs(u) < 1.0, (1.0 - u**2) ** 2, 0.0)
         if w.sum() < degree + 1:
@@ -195,9 +193,6 @@ def _irls_lstsq(x, xn, y, degree, coef_n, w, iterations, tuning, min_scale, xm, 
             break
     # back to polynomial in x
     return _compose_linear(coef_n, 1.0 / xs, -xm / xs), w
-
-
-_median = median_1d  # numpy.median of a 1-D array, without its general-axis overhead
 
 
 def _trimmed(c: np.ndarray) -> np.ndarray:

@@ -3,8 +3,8 @@
 
 ``catenary_residuals``: the model of :func:`clearaudit.physics.fit._curve` (tilted catenary in
 its span frame) and the first-order normal distances of the points from it, for several
-parameter vectors in one call. ``minimise``: the damped Gauss-Newton loop of
-``fit._minimise_numpy`` (the same steps, tests and termination), whole in compiled code.
+parameter vectors in one call. ``minimise``: the damped Gauss-Newton loop described in
+``fit._minimise`` (steps, tests and termination), whole in compiled code.
 Both run without the GIL, so fits on several threads share the cores. The operations of the
 model and their order are those of ``_curve``; the transcendental functions are the C
 library's.
@@ -189,7 +189,7 @@ def minimise(const double[::1] s, const double[::1] v, const double[::1] z, doub
              double lateral_weight, double[::1] x, const double[::1] lower,
              const double[::1] upper, const double[::1] scales, int loss, double f_scale,
              double ftol, double xtol, double gtol, int max_nfev):
-    """The loop of ``fit._minimise_numpy`` on x (updated in place; 5 or 6 parameters).
+    """The loop of ``fit._minimise`` on x (updated in place; 5 or 6 parameters).
 
     Returns (status, cost, nfev, njev): status 1 gradient small, 2 cost change small, 3 step
     small, 0 evaluations exhausted.

@@ -89,6 +89,9 @@ from scipy import special
 
 from clearaudit.arrays import median_1d
 from clearaudit.physics import catenary
+from clearaudit.physics._catenary_residuals import LOSSES as _LOSS_CODES
+from clearaudit.physics._catenary_residuals import catenary_residuals as _compiled_residuals
+from clearaudit.physics._catenary_residuals import minimise as _compiled_minimise
 
 __all__ = ["PARAMETER_NAMES", "CatenaryFit", "fit_catenary"]
 
@@ -102,7 +105,6 @@ _MIN_CONSTANT_PER_SPAN = 0.25  # C < L/4 means sag > half the span: not a power 
 _MAX_TILT_RAD = 1.4
 _BIN_M = 1.0
 _FIRST_PASS_POINTS = 500
-_EPS = float(np.finfo(float).eps)
 
 
 @dataclass(eq=False)
@@ -325,7 +327,7 @@ def _one_sided(stations: np.ndarray, span: float) -> bool:
 
 
 class _Problem:
-    """Points in one span frame and the residual function for least_squares."""
+    """Points in one span frame and their residuals from the curve."""
 
     def __init__(self, xyz, origin, direction, span, fit_tilt):
         self.origin = origin
@@ -345,14 +347,12 @@ class _Problem:
     def _evaluate(self, params, lateral_weight):
         """Residual rows of the parameter rows ``params`` (compiled: the operations of
         :func:`_curve`, one pass over the points per row)."""
-        from ._catenary_residuals import catenary_residuals
-
         params = np.asarray(params, dtype=float).reshape(-1, 6 if self.fit_tilt else 5)
         if not self.fit_tilt:
             params = np.column_stack([params, np.zeros(len(params))])
         out = np.empty((len(params), 2 * self.s.size))
-        catenary_residuals(self.s, self.v, self.z, self.span, np.ascontiguousarray(params),
-                           float(lateral_weight), out)
+        _compiled_residuals(self.s, self.v, self.z, self.span, np.ascontiguousarray(params),
+                            float(lateral_weight), out)
         return out
 
     def components(self, p):
@@ -368,13 +368,6 @@ class _Problem:
         row ``i`` equals ``residuals(params[i])`` bit for bit (the same compiled loop;
         checked in tests/test_model_speed.py)."""
         return self._evaluate(params, self.lateral_weight)
-
-    def map_residuals(self, function, parameter_vectors):
-        """Map-like callable for the ``workers`` argument of least_squares: its finite
-        differences evaluate the residuals at one shifted parameter vector per parameter;
-        here all of them at once (:meth:`residuals_many`). ``function`` is scipy's wrapper
-        of :meth:`residuals` and gives the same values."""
-        return list(self.residuals_many(np.array(list(parameter_vectors))))
 
     def balance(self, p):
         """Weight the lateral residuals by sigma_vertical / sigma_lateral (robust scales)."""
@@ -448,54 +441,9 @@ class _Solution:
     njev: int
 
 
-_SQRT_EPS = float(np.sqrt(np.finfo(float).eps))
-
-
-def _loss_terms(z: np.ndarray, loss: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """rho(z), rho'(z), rho''(z) of the robust losses of scipy.optimize.least_squares, at
-    z = (r / f_scale)^2 (its documented definitions)."""
-    if loss == "soft_l1":
-        t = 1.0 + z
-        root = np.sqrt(t)
-        return 2.0 * (root - 1.0), 1.0 / root, -0.5 / (t * root)
-    if loss == "huber":
-        inside = z <= 1.0
-        zz = np.where(inside, 1.0, z)
-        root = np.sqrt(zz)
-        return (np.where(inside, z, 2.0 * root - 1.0), np.where(inside, 1.0, 1.0 / root),
-                np.where(inside, 0.0, -0.5 / (zz * root)))
-    if loss == "cauchy":
-        t = 1.0 + z
-        return np.log1p(z), 1.0 / t, -1.0 / (t * t)
-    if loss == "arctan":
-        t = 1.0 + z * z
-        return np.arctan(z), 1.0 / t, -2.0 * z / (t * t)
-    return z, np.ones_like(z), np.zeros_like(z)
-
-
 def _minimise(problem: _Problem, x0: np.ndarray, lower: np.ndarray, upper: np.ndarray,
               scales: np.ndarray, loss: str, f_scale: float, *, ftol: float = 1e-9,
               xtol: float = 1e-9, gtol: float = 1e-9, max_nfev: int = 200) -> _Solution:
-    """:func:`_minimise_numpy`'s loop in compiled code (``_catenary_residuals.minimise``:
-    the same steps and tests, sums and the damped system's solve (Cholesky) in its own order),
-    without the GIL, so that fits on several threads share the cores; checked against
-    :func:`_minimise_numpy` and scipy's least_squares in tests/test_fit_solver.py."""
-    from ._catenary_residuals import LOSSES, minimise
-
-    x = np.array(np.clip(np.asarray(x0, dtype=float), lower, upper), dtype=float)
-    status, cost, nfev, njev = minimise(
-        problem.s, problem.v, problem.z, problem.span, float(problem.lateral_weight), x,
-        np.ascontiguousarray(lower, dtype=float), np.ascontiguousarray(upper, dtype=float),
-        np.ascontiguousarray(scales, dtype=float), LOSSES[loss], float(f_scale), float(ftol),
-        float(xtol), float(gtol), int(max_nfev))
-    return _Solution(x=x, status=int(status), cost=float(cost), nfev=int(nfev),
-                     njev=int(njev))
-
-
-def _minimise_numpy(problem: _Problem, x0: np.ndarray, lower: np.ndarray,
-                    upper: np.ndarray, scales: np.ndarray, loss: str, f_scale: float, *,
-                    ftol: float = 1e-9, xtol: float = 1e-9, gtol: float = 1e-9,
-                    max_nfev: int = 200) -> _Solution:
     """Minimise the robust cost 0.5 f^2 sum rho((r_i/f)^2) of ``problem``'s residuals within
     the bounds: a damped Gauss-Newton (Levenberg-Marquardt) iteration.
 
@@ -508,89 +456,25 @@ def _minimise_numpy(problem: _Problem, x0: np.ndarray, lower: np.ndarray,
     and a step is taken when the cost falls (ratio to the model's prediction > 1e-4; the
     damping then follows Nielsen's rule). The Jacobian is scipy's forward-difference rule
     (step sqrt(eps) max(1, |x|), turned inwards at an upper bound), evaluated for all
-    parameters at once. Checked against least_squares in tests/test_fit_solver.py.
+    parameters at once.
+
+    The loop is compiled (``_catenary_residuals.minimise``) and runs without the GIL, so
+    fits on several threads share the cores. Checked against least_squares and against the
+    same loop written with numpy in tests/test_fit_solver.py.
 
     References
     ----------
     Madsen, K., Nielsen, H. B., Tingleff, O. (2004). *Methods for Non-Linear Least Squares
     Problems*, 2nd ed. IMM, DTU, ch. 3.2 (damping update).
     """
-    x = np.clip(np.asarray(x0, dtype=float), lower, upper)
-    f2 = f_scale * f_scale
-
-    def evaluate(p):
-        with np.errstate(all="ignore"):  # a trial step far off overflows: it is rejected
-            r = problem.residuals(p)
-            z = (r / f_scale) ** 2
-            rho0, rho1, rho2 = _loss_terms(z, loss)
-            weight = rho1 + 2.0 * rho2 * z
-            cost = 0.5 * f2 * float(np.sum(rho0))
-        return r, (cost if np.isfinite(cost) else np.inf), rho1 * r, np.maximum(weight, _EPS)
-
-    def jacobian(p, r):
-        step = _SQRT_EPS * np.maximum(1.0, np.abs(p))
-        step = np.where(p + step <= upper, step, -step)
-        shifted = p + np.diag(step)
-        step = np.diag(shifted) - p
-        return ((problem.residuals_many(shifted) - r) / step[:, None]).T
-
-    r, cost, psi, weight = evaluate(x)
-    nfev, njev = 1, 1
-    jac = jacobian(x, r)
-    damping, growth = -1.0, 2.0
-    status = 0
-    while nfev < max_nfev:
-        gradient = jac.T @ psi
-        hessian = (jac * weight[:, None]).T @ jac
-        held = ((x <= lower) & (gradient > 0)) | ((x >= upper) & (gradient < 0))
-        free = ~held
-        g_scaled = gradient * scales
-        if np.max(np.abs(g_scaled[free]), initial=0.0) < gtol:
-            status = 1
-            break
-        h_scaled = (hessian * scales[:, None] * scales[None, :])[np.ix_(free, free)]
-        if damping < 0:
-            damping = 1e-3 * max(float(np.max(np.diag(h_scaled), initial=0.0)), 1e-12)
-        stepped = False
-        while nfev < max_nfev:
-            try:
-                d = np.linalg.solve(h_scaled + damping * np.eye(int(free.sum())),
-                                    -g_scaled[free])
-            except np.linalg.LinAlgError:
-                damping *= growth
-                growth *= 2.0
-                continue
-            dx = np.zeros_like(x)
-            dx[free] = d * scales[free]
-            x_new = np.clip(x + dx, lower, upper)
-            dx = x_new - x
-            small_step = np.linalg.norm(dx) <= xtol * (xtol + np.linalg.norm(x))
-            predicted = -(gradient @ dx + 0.5 * dx @ hessian @ dx)
-            r_new, cost_new, psi_new, weight_new = evaluate(x_new)
-            nfev += 1
-            actual = cost - cost_new
-            if predicted > 0 and actual > 1e-4 * predicted:
-                ratio = actual / predicted
-                damping *= max(1.0 / 3.0, 1.0 - (2.0 * ratio - 1.0) ** 3)
-                growth = 2.0
-                x, r, psi, weight = x_new, r_new, psi_new, weight_new
-                previous, cost = cost, cost_new
-                stepped = True
-                if actual < ftol * previous:
-                    status = 2
-                elif small_step:
-                    status = 3
-                break
-            if small_step:  # no smaller step can lower the cost measurably
-                status = 3
-                break
-            damping *= growth
-            growth *= 2.0
-        if status or not stepped:
-            break
-        jac = jacobian(x, r)
-        njev += 1
-    return _Solution(x=x, status=status, cost=cost, nfev=nfev, njev=njev)
+    x = np.array(np.clip(np.asarray(x0, dtype=float), lower, upper), dtype=float)
+    status, cost, nfev, njev = _compiled_minimise(
+        problem.s, problem.v, problem.z, problem.span, float(problem.lateral_weight), x,
+        np.ascontiguousarray(lower, dtype=float), np.ascontiguousarray(upper, dtype=float),
+        np.ascontiguousarray(scales, dtype=float), _LOSS_CODES[loss], float(f_scale),
+        float(ftol), float(xtol), float(gtol), int(max_nfev))
+    return _Solution(x=x, status=int(status), cost=float(cost), nfev=int(nfev),
+                     njev=int(njev))
 
 
 def _inliers(problem: _Problem, p: np.ndarray, f_scale: float) -> tuple[np.ndarray, np.ndarray]:
