@@ -19,6 +19,22 @@ def column_bounds(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return lo, hi
 
 
+def take_rows(a: np.ndarray, index: np.ndarray) -> np.ndarray:
+    """``a[index]`` along the first axis (an integer index array or a boolean mask), by
+    :func:`numpy.take`: the same values in the same order, a new C-ordered array.
+
+    numpy's fancy indexing gathers the rows of a 2-D array element by element: for an (n, 3)
+    float64 cloud ``np.take`` is 3-5 times faster, and a boolean mask with scattered points
+    (ground among vegetation, say) indexes about 6 times slower than its positions do.
+    """
+    index = np.asarray(index)
+    if index.dtype == bool:
+        if index.shape != a.shape[:1]:
+            raise IndexError(f"boolean index of shape {index.shape} for {len(a)} rows")
+        index = np.flatnonzero(index)
+    return np.take(a, index, axis=0)
+
+
 def code_counts(codes: np.ndarray) -> np.ndarray:
     """Number of points per uint8 class code (length 256).
 
@@ -49,7 +65,7 @@ def class_mask(classes: np.ndarray, codes) -> np.ndarray:
         return np.isin(classes, np.asarray(codes))
     table = np.zeros(256, dtype=bool)
     table[[c for c in np.asarray(codes, dtype=np.int64).ravel().tolist() if 0 <= c < 256]] = True
-    return table[classes]
+    return np.take(table, classes)  # table[classes], twice as fast for uint8 codes
 
 
 def median_1d(values: np.ndarray) -> float:
@@ -129,7 +145,8 @@ def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarra
     tree = cKDTree(centres)
 
     def query(which: np.ndarray | slice) -> np.ndarray:
-        d, _ = tree.query(xy[which], distance_upper_bound=radius)
+        d, _ = tree.query(xy[which] if isinstance(which, slice) else take_rows(xy, which),
+                          distance_upper_bound=radius)
         return np.isfinite(d)
 
     size, shape = _raster_cells(hi - lo, radius / 8.0, max(4 * len(xy), 1 << 12))

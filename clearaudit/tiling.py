@@ -48,7 +48,7 @@ from typing import Any
 
 import numpy as np
 
-from .arrays import class_counts, class_mask, column_bounds, near_points
+from .arrays import class_counts, class_mask, column_bounds, near_points, take_rows
 from .cloud import (
     GROUND,
     TRANSMISSION_TOWER,
@@ -751,17 +751,17 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     # the line model's points: wires, structures, insulators, ground near structures
     model_mask = class_mask(cls, MODEL_CLASSES)
     ground_own = np.flatnonzero(cls == GROUND)
-    anchors = [xyz[class_mask(full_cls, (TRANSMISSION_TOWER, WIRE_CONNECTOR)), :2]]
+    anchors = [take_rows(xyz, class_mask(full_cls, (TRANSMISSION_TOWER, WIRE_CONNECTOR)))[:, :2]]
     if given_structures_xy is not None and len(given_structures_xy):
         anchors.append(np.asarray(given_structures_xy, dtype=float).reshape(-1, 2))
     anchor_xy = np.concatenate(anchors)
     if len(anchor_xy) and len(ground_own):
         anchor_xy = np.unique(np.floor(anchor_xy), axis=0) + 0.5  # 1 m cells: a small tree
-        near = ground_own[near_points(xyz[ground_own, :2], anchor_xy,
+        near = ground_own[near_points(take_rows(xyz, ground_own)[:, :2], anchor_xy,
                                       STRUCTURE_GROUND_RADIUS_M + 1.0)]
         # one ground point per STRUCTURE_GROUND_CELL_M cell: the median height under a
         # structure needs a sample, not every point
-        cell = np.floor(xyz[near, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)
+        cell = np.floor(take_rows(xyz, near)[:, :2] / STRUCTURE_GROUND_CELL_M).astype(np.int64)
         if len(cell):
             # one number per cell (the rows' order): unique over one column, not over rows
             cell -= column_bounds(cell)[0]
@@ -773,7 +773,7 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     ground_z = xyz[ground_own[::97], 2] if len(ground_own) else np.zeros(0)
     return {"tile": tile.id, "n_owned": n_own, "n_context": len(ctx_rec),
             "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
-            "model_xyz": xyz[local], "model_cls": cls[local], "model_local": local,
+            "model_xyz": take_rows(xyz, local), "model_cls": cls[local], "model_local": local,
             "ground_z_sample": ground_z, "timings_s": timings, "info": info, "note": note,
             "options": used,
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}

@@ -77,6 +77,39 @@ def test_column_bounds_match_numpy(dtype):
         column_bounds(a[:0])
 
 
+def test_take_rows_equals_numpy_fancy_and_boolean_indexing():
+    # reference: numpy's own indexing a[index] / a[mask]
+    from clearaudit.arrays import take_rows
+    from clearaudit.classify.grid import GridFrame
+
+    rng = np.random.default_rng(11)
+    a = rng.normal(size=(5_003, 3)) * 100
+    idx = rng.integers(0, len(a), 2_000)
+    mask = rng.random(len(a)) < 0.5
+    for arr in (a, a[:, :2], a[::2], a[:, 2], a.astype(np.float32)):
+        i = idx[idx < len(arr)]
+        m = mask[:len(arr)]
+        for got, want in ((take_rows(arr, i), arr[i]), (take_rows(arr, m), arr[m]),
+                          (take_rows(arr, -i - 1), arr[-i - 1]),
+                          (take_rows(arr, i[:0]), arr[i[:0]]),
+                          (take_rows(arr, np.sort(i)), arr[np.sort(i)])):
+            assert got.dtype == want.dtype and got.shape == want.shape
+            np.testing.assert_array_equal(got, want)
+            assert got.flags["C_CONTIGUOUS"]
+    with pytest.raises(IndexError):
+        take_rows(a, mask[:-1])
+    with pytest.raises(IndexError):
+        take_rows(a, np.array([len(a)]))
+    # grid locations and their bilinear weights: a mask picks what its positions pick
+    frame, loc = GridFrame.fit_locate(a[:, :2], 1.0, margin=1.0)
+    loc.sampler()
+    grid = rng.normal(size=frame.shape).astype(np.float32)
+    by_mask, by_index = loc.subset(mask), loc.subset(np.flatnonzero(mask))
+    np.testing.assert_array_equal(by_mask.fu, loc.fu[mask])
+    np.testing.assert_array_equal(by_mask.sampler()(grid), by_index.sampler()(grid))
+    np.testing.assert_array_equal(by_mask.sampler()(grid), loc.sampler()(grid)[mask])
+
+
 def test_record_take_and_concat_match_numpy():
     # reference: numpy's own fancy indexing and concatenation of the structured records
     from clearaudit.tiling import RECORD, concat_records, take_records

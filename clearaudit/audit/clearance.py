@@ -30,7 +30,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from ..arrays import column_bounds
+from ..arrays import column_bounds, take_rows
 
 __all__ = [
     "Findings",
@@ -73,11 +73,12 @@ def _nearest_segment(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | N
     best_param = np.zeros(len(points))
     for offset in (-1, 0):  # segments (k-1, k) and (k, k+1)
         i0 = np.clip(k + offset, 0, n - 2)
-        t, c = _project(points, vertices[i0], vertices[i0 + 1])
+        # np.take: the rows vertices[i0], faster than a fancy index
+        t, c = _project(points, np.take(vertices, i0, axis=0), np.take(vertices, i0 + 1, axis=0))
         d = np.linalg.norm(points - c, axis=1)
         better = d < best_d
         best_d = np.where(better, d, best_d)
-        best_c[better] = c[better]
+        np.copyto(best_c, c, where=better[:, None])  # best_c[better] = c[better]
         best_param = np.where(better, i0 + t, best_param)
     return best_d, best_c, best_param
 
@@ -593,7 +594,7 @@ def radial_findings(points: np.ndarray, tree: cKDTree, curve: np.ndarray,
     if idx.size == 0:
         empty = np.zeros(0)
         return empty.astype(int), empty, empty, empty
-    p = points[idx]
+    p = take_rows(points, idx)
     d, closest, param = polyline_distance(p, curve)
     frac = np.interp(param, np.arange(len(curve)), fraction)
     ci = np.interp(param, np.arange(len(curve)), ci_along)

@@ -38,7 +38,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from clearaudit.arrays import class_mask
+from clearaudit.arrays import class_mask, take_rows
 from clearaudit.cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -578,7 +578,7 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
             heights = heights.copy()
             heights[missing] = xyz[veg_ctx[missing], 2] - ground_model.height_at(
                 xyz[veg_ctx[missing], :2])
-        tops = find_tree_tops(xyz[veg_ctx], heights, window_m=opts.tree_window_m,
+        tops = find_tree_tops(take_rows(xyz, veg_ctx), heights, window_m=opts.tree_window_m,
                               min_height_m=opts.min_tree_height_m)
         cell_m = tops.grid[0] if tops.grid is not None else 1.0
         top_code = _cell_code(tops.xy, cell_m)
@@ -1242,7 +1242,7 @@ def _state_points(points: np.ndarray, sub: np.ndarray, curves: list[np.ndarray],
                   ) -> tuple[np.ndarray, ...]:
     """The candidates ``sub`` of one wire state that can be within ``reach_m`` of any of its
     curves (plan, or 3-D with ``three_d``), with their station bins, offsets and heights."""
-    p = points[sub]
+    p = take_rows(points, sub)
     u, v = _frame(p[:, :2], origin, axis)
     ub = np.floor(u / _BIN_M).astype(np.int64)
     window = _CurveWindow(curves, origin, axis, reach_m)
@@ -1309,7 +1309,7 @@ def _ground_candidates(points: np.ndarray, near: tuple, curve: np.ndarray, origi
         if not np.array_equal(want, measured):
             measured = want
             idx = np.sort(sub[at[measured]])
-            result = polyline_overhead(points[idx], curve)
+            result = polyline_overhead(take_rows(points, idx), curve)
         lateral, wire_z, _ = result
         under = lateral <= lateral_m
         if np.any(under):
@@ -1338,7 +1338,7 @@ def _make_group(kind: str, xyz: np.ndarray, idx: np.ndarray, two_d: bool = False
                 tree: bool = False) -> _Group:
     """The group's points; its k-d tree (xy when ``two_d``) now with ``tree``, else on demand
     (:meth:`_Group.search_tree`)."""
-    pts = xyz[idx]
+    pts = take_rows(xyz, idx)
     group = _Group(kind, idx, pts, None, two_d)
     if tree:
         group.search_tree()
@@ -1355,7 +1355,7 @@ def _members(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def _radial(points, idx, state, cond, curve, frac, ci_along, required, key) -> Findings:
     """3-D clearance of candidate points ``idx`` to one curve; entries within reach."""
-    p = points[idx]
+    p = take_rows(points, idx)
     d, closest, param = polyline_distance(p, curve)
     ci = np.interp(param, np.arange(len(curve)), ci_along)
     # The curve's uncertainty is vertical; project it on the point-to-wire direction.
@@ -1368,7 +1368,7 @@ def _radial(points, idx, state, cond, curve, frac, ci_along, required, key) -> F
 def _building(points, idx, labels, by_label, state, cond, curve, frac, ci_along, b_h, b_v
               ) -> Findings:
     """One entry per building inside (or, within the 95 % interval, near) the box envelope."""
-    offset, wire_z, param = polyline_offsets(points[idx], curve)
+    offset, wire_z, param = polyline_offsets(take_rows(points, idx), curve)
     ci = np.interp(param, np.arange(len(curve)), ci_along)
     d_v = np.abs(wire_z - points[idx, 2])
     flagged = (np.abs(offset) < b_h) & (d_v - ci < b_v)

@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from ..arrays import class_mask, code_counts
+from ..arrays import class_mask, code_counts, take_rows
 from ..cloud import (
     BUILDING,
     GROUND,
@@ -295,7 +295,7 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
         ground_frame.locate(xyz[:, :2])
     del location
     model_idx = np.flatnonzero(model_points)
-    ground = build_ground_model(xyz[model_idx], ground_frame, opts.inpaint_max_cells,
+    ground = build_ground_model(take_rows(xyz, model_idx), ground_frame, opts.inpaint_max_cells,
                                 location=ground_location.subset(model_idx))
     del model_idx
     # HAG: one vectorised bilinear pass of the float32 ground grid over all points
@@ -325,10 +325,13 @@ def classify(cloud: Cloud, options: ClassifyOptions | None = None, *,
     above = np.flatnonzero(rest & (hag >= opts.object_min_hag_m))
     info["object_points"] = int(len(above))
     if len(above):
-        feats = eigen_features(xyz[above], opts.feature_radius_m, opts.feature_max_neighbours,
+        xyz_above = take_rows(xyz, above)
+        feats = eigen_features(xyz_above, opts.feature_radius_m, opts.feature_max_neighbours,
                                sparse_radius=opts.feature_sparse_radius_m)
         t = step("features", 0.75, t)
-        object_classes, object_info = classify_objects(xyz[above], hag[above], feats, frame, opts)
+        object_classes, object_info = classify_objects(xyz_above, np.take(hag, above), feats,
+                                                       frame, opts)
+        del xyz_above
         classes[above] = object_classes
         info.update(object_info)
         # low parts of structures (footings, leg bases) below the object height threshold

@@ -237,7 +237,10 @@ class PointLocation:
 
     def subset(self, which: np.ndarray) -> PointLocation:
         """The locations of some of the points (index array or boolean mask)."""
-        part = PointLocation(self.fu[which], self.fv[which], self.shape)
+        which = np.asarray(which)
+        if which.dtype == bool:
+            which = np.flatnonzero(which)
+        part = PointLocation(np.take(self.fu, which), np.take(self.fv, which), self.shape)
         sampler = self._cache.get("sampler")
         if sampler is not None:
             part._cache["sampler"] = sampler.subset(which)
@@ -308,8 +311,13 @@ class BilinearSampler:
     row: int
 
     def subset(self, which: np.ndarray) -> BilinearSampler:
-        return BilinearSampler(self.k00[which], self.a[which], self.b[which],
-                               self.outside[which], self.shape, self.row)
+        """The weights of some of the points (index array or boolean mask)."""
+        which = np.asarray(which)
+        if which.dtype == bool:
+            which = np.flatnonzero(which)
+        return BilinearSampler(np.take(self.k00, which), np.take(self.a, which),
+                               np.take(self.b, which), np.take(self.outside, which),
+                               self.shape, self.row)
 
     def __call__(self, grid: np.ndarray) -> np.ndarray:
         """Grid values at the points, in the grid's dtype (float32 grids: half the traffic)."""

@@ -420,7 +420,7 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
             slope = at(np.hypot(gu, gv).astype(np.float32))
         resid = at(model.astype(np.float32))
         np.subtract(z, resid, out=resid)
-        r = resid[inside]
+        r = np.compress(inside, resid)  # resid[inside]; a scattered mask: ~5x faster
         if len(r) > 2_000_000:  # the MAD of a regular one-in-k sample is as good
             r = r[:: len(r) // 1_000_000]
         r = np.ascontiguousarray(r, dtype=np.float32)
@@ -429,5 +429,5 @@ def refine_ground(xyz: np.ndarray, is_ground: np.ndarray, frame: GridFrame, *,
         window = float(np.clip(2.5 * sigma, min_threshold_m, max_threshold_m))
     threshold = float(np.clip(sigma_factor * sigma, min_threshold_m, max_threshold_m))
     keep = resid <= threshold + slope_scaler * slope
-    ground[idx[~keep]] = False
+    ground[np.compress(~keep, idx)] = False
     return ground, threshold

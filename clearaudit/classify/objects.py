@@ -35,6 +35,7 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import connected_components
 
+from ..arrays import take_rows
 from ..cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -1103,11 +1104,11 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         raise ValueError("find_ground_roofs needs a positive cell, 0 < min_area <= max_area "
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
-    sel = slice(None) if which is None else np.asarray(which)
-    # copies (fancy index, or explicit without ``which``): they are shifted in place below
-    x = xyz[sel, 0] if which is not None else xyz[:, 0].copy()
-    y = xyz[sel, 1] if which is not None else xyz[:, 1].copy()
-    z = xyz[sel, 2]
+    # the chosen rows gathered once (np.take: 3-5 times faster than a fancy index per
+    # column); x and y are copies, shifted in place below
+    pts = xyz if which is None else take_rows(xyz, which)
+    x, y, z = (np.array(pts[:, c]) for c in range(3))
+    del pts
     n = len(z)
     grid = _anchored_frame(x, y, cell_m, ring_cells + 2)
     none = np.zeros(0, np.int64)
@@ -1141,8 +1142,8 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
             "min_cell_points": 0.0})
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
-    u -= ((ci + 0.5) * grid.cell)[k]  # offsets from the cell centre
-    v -= ((cj + 0.5) * grid.cell)[k]
+    u -= np.take((ci + 0.5) * grid.cell, k)  # offsets from the cell centre
+    v -= np.take((cj + 0.5) * grid.cell, k)
     zc, gu, gv, rms, _ = _cell_planes(z, u, v, grid, cells, k, cnt=cnt)
     del u, v
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
