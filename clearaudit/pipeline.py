@@ -550,8 +550,29 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
     return total, area
 
 
-#: Points per split task of a tiled run (a range of one input file).
-SPLIT_PART_POINTS = 1_000_000
+#: Least and most points per split task of a tiled run (a range of one input file); see
+#: :func:`split_part_points`.
+SPLIT_PART_MIN_POINTS = 1_000_000
+SPLIT_PART_MAX_POINTS = 8_000_000
+#: The LASzip writers' default chunk: ranges start on a chunk's first point where they can.
+_LAZ_CHUNK_POINTS = 50_000
+
+
+def split_part_points(total_points: int, workers: int) -> int:
+    """Points per split task: about two ranges per worker or thread, rounded up to whole
+    LAZ chunks of 50 000 points, at least :data:`SPLIT_PART_MIN_POINTS` and at most
+    :data:`SPLIT_PART_MAX_POINTS` (the read stage's progress advances task by task).
+
+    Few ranges, because every task opens its range with lazrs's parallel decoder, which
+    spends 15-19 ms holding the GIL on the seek and the first read (p10M's read stage:
+    2.24-2.45 s in ten ranges of a million points, 1.94-2.15 s in two to four). The split's
+    memory does not grow with a range (its chunks and buffers are of fixed size), and the
+    outputs do not depend on the ranges: a cell's points follow the input order whatever
+    the cut (tested).
+    """
+    per_task = -(-int(total_points) // (2 * max(1, int(workers))))
+    per_task = -(-per_task // _LAZ_CHUNK_POINTS) * _LAZ_CHUNK_POINTS
+    return int(min(max(per_task, SPLIT_PART_MIN_POINTS), SPLIT_PART_MAX_POINTS))
 #: Points per chunk of the tiled run's classified copy (its buffers are ≈ 90 bytes a point:
 #: the run's peak when the tiles are small; a multiple of the LAZ chunk, 50 000 points).
 WRITE_CHUNK_POINTS = 1_000_000
@@ -627,13 +648,15 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     corridor = Corridor(poly, options.corridor_buffer_m / setup.horizontal_unit_m)
                 grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]),
                             float(options.tile_cell_m))
-                # the plan never depends on the engine: a Dask run equals the in-process run.
-                # Parts of a fixed size: a part's task holds its decode buffers and its cells'
-                # append buffers (one million points each), so the split's memory is that of
-                # the parts in flight whatever the survey's size, and small parts balance
-                # the workers.
+                # the tiles never depend on the engine: a Dask run equals the in-process run.
+                # The ranges split in parallel do (two per worker, split_part_points), but
+                # not what comes of them: a cell's points follow the input order whatever
+                # the cut. A part's task holds its decode buffers and its cells' append
+                # buffers (of fixed size), so the split's memory is that of the parts in
+                # flight whatever the survey's size.
                 tile_points = options.tile_points
-                parts = plan_parts(setup, SPLIT_PART_POINTS)
+                parts = plan_parts(setup, split_part_points(setup.total_points,
+                                                            engine.n_workers))
                 # each part also keeps what classified.laz needs of its points (compressed
                 # inputs) in the work folder: 3 bytes a point when the compressed layers of
                 # layered inputs are copied, else the raw point records

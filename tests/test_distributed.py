@@ -82,6 +82,33 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
     assert read_cells(tmp_path, tiles[0].cells, then=second[:0]).tobytes() == first.tobytes()
 
 
+def test_the_cut_into_ranges_changes_no_cell(corridor, tmp_path):
+    # reference: the same split in one range; cut into ranges of any size (chunk-aligned or
+    # not) every cell holds the same records in the same order, byte for byte
+    from clearaudit.pipeline import split_part_points
+
+    setup = read_setup(corridor["cloud"], hashes=False)
+    grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]), 100.0)
+    made = {}
+    for size in (setup.total_points, 300_000, 123_457):
+        work = tmp_path / f"cut{size}"
+        cells: dict = {}
+        for part in plan_parts(setup, size):
+            for c, k in split_part(work, setup, part, grid, flush_points=50_000)["cells"].items():
+                cells[c] = cells.get(c, 0) + k
+        made[size] = {c: read_cells(work, (c,)).tobytes() for c in sorted(cells)}
+    whole = made.pop(setup.total_points)
+    assert len(whole) > 2
+    for cut in made.values():
+        assert cut == whole
+    # about two ranges per worker, in whole 50 000-point chunks, within the bounds
+    assert split_part_points(9_222_369, 2) == 2_350_000
+    assert split_part_points(9_222_369, 1) == 4_650_000
+    assert split_part_points(100_000, 2) == 1_000_000
+    assert split_part_points(10**10, 4) == 8_000_000
+    assert split_part_points(0, 0) == 1_000_000
+
+
 def test_dask_run_identical_to_in_process(corridor, tmp_path):
     # reference: the in-process run on one thread, tile after tile; the same tiles on two
     # threads of this process and on a local Dask cluster must give identical outputs
