@@ -331,6 +331,36 @@ def test_chunked_culling_equals_in_memory_filter(tmp_path):
     assert all(a[0] < b[0] for a, b in zip(seen, seen[1:], strict=False))
 
 
+def test_decode_steps_keep_the_parallel_decoders_threads_busy(tmp_path):
+    # common practice (no source): LASzip writers' default chunk is 50 000 points; a
+    # step of whole chunks, a multiple of the decoder's threads, changes no point read
+    from clearaudit.io.las import balanced_step, read_range, read_setup
+
+    cloud = make_cloud(n=130_000, seed=9)
+    laz = write_cloud(cloud, tmp_path / "c.laz")
+    las = write_cloud(cloud, tmp_path / "c.las")
+    with laspy.open(laz) as reader:
+        header = reader.header
+    assert balanced_step(250_000, header, threads=2) == 200_000
+    assert balanced_step(250_000, header, threads=4) == 200_000
+    assert balanced_step(250_000, header, threads=8) == 400_000
+    assert balanced_step(250_000, header, threads=3) == 300_000
+    assert balanced_step(250_000, header, threads=1) == 250_000
+    assert balanced_step(250_000, header, threads=64) == 1_000_000  # at most four times
+    assert balanced_step(70_000, header, threads=2) == 100_000
+    assert balanced_step(20_000, header, threads=2) == 20_000  # less than a chunk: as asked
+    with laspy.open(las) as reader:
+        assert balanced_step(250_000, reader.header, threads=2) == 250_000
+    setup = read_setup(laz, hashes=False)
+    ref = read_cloud(laz)
+    for size in (7_000, 60_000, 250_000):
+        got = list(read_range(setup, 0, 10_000, 125_000, chunk_size=size))
+        np.testing.assert_array_equal(np.concatenate([g[2] for g in got]),
+                                      np.arange(10_000, 125_000))
+        np.testing.assert_array_equal(np.concatenate([g[0] for g in got]),
+                                      ref.xyz[10_000:125_000])
+
+
 def test_corridor_mask_matches_shapely_distance():
     shapely = pytest.importorskip("shapely")
     rng = np.random.default_rng(3)

@@ -910,6 +910,44 @@ def variable_chunks(header: Any) -> bool:
     return laz is not None and laz[1] == VARIABLE_CHUNKS
 
 
+def decoder_threads() -> int:
+    """Threads of lazrs's parallel decoder (rayon's pool: the CPUs this process may use,
+    or ``RAYON_NUM_THREADS``)."""
+    fixed = os.environ.get("RAYON_NUM_THREADS", "")
+    if fixed.isdigit() and int(fixed) > 0:
+        return int(fixed)
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def balanced_step(points: int, header: Any, threads: int | None = None) -> int:
+    """Points to decode per call near ``points`` that keep the parallel decoder's threads
+    equally busy: a whole number of the file's LAZ chunks, a multiple of the threads where
+    that costs at most four times ``points`` (``points`` itself when it is less than a LAZ
+    chunk, for an uncompressed file and for variable-size chunks).
+
+    lazrs decodes the chunks of one call in parallel and holds the GIL meanwhile, so a
+    call's last round of chunks leaves threads idle that nothing else can use: 250 000
+    points (five chunks of 50 000) on two threads decoded p10M's layers in 1.18-1.21 s,
+    200 000 or 300 000 in 0.99-1.17 s. The points decoded per call change no result.
+    """
+    from .lazcopy import VARIABLE_CHUNKS, laszip_items
+
+    laz = laszip_items(header)
+    if laz is None or laz[1] == VARIABLE_CHUNKS or laz[1] <= 0:
+        return points
+    chunk = int(laz[1])
+    if points < chunk:
+        return points
+    threads = decoder_threads() if threads is None else max(1, int(threads))
+    per_round = chunk * threads
+    if per_round <= 4 * points:
+        return per_round * max(1, round(points / per_round))
+    return chunk * max(1, (4 * points) // chunk)
+
+
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
                keep: Callable[[np.ndarray], np.ndarray] | None = None,
                chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: _ScratchSink | None = None):
@@ -927,7 +965,8 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     keep
         Optional ``keep(xy_crs) -> bool mask``, as in :func:`read_cloud`.
     chunk_size
-        Points decoded per step. [points]
+        Points decoded per step, rounded to whole LAZ chunks for the parallel decoder
+        (:func:`balanced_step`). [points]
     records_to
         Optional sink (``RecordScratch.writer``) that keeps what the classified copy needs
         of every decoded point, ``keep`` or not, chunk by chunk. Unless it keeps whole
@@ -957,6 +996,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     whole = records_to is not None and not records_to.layers
     with _open_reader(path, None if whole else _XYZ_CLASS_LAYERS) as reader:
         shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
+        chunk_size = balanced_step(chunk_size, reader.header)
         if start and variable_chunks(reader.header):
             # lazrs 0.8 mispositions a seek past the first chunk of a file whose chunks vary
             # in size (it takes the point's chunk and offset as if the chunks were equal):
