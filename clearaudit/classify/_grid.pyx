@@ -608,12 +608,17 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
         raise ValueError("raster_state: mismatched array shapes")
     if not size > 0:
         raise ValueError("raster_state: the cell size must be positive")
-    for k in range(n):
-        t = (xy[k, 0] - lo0) / size
-        u = (xy[k, 1] - lo1) / size
-        if not (t >= 0 and u >= 0 and t < 9.0e18 and u < 9.0e18):
-            raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
-        out[k] = state[_raster_cell(t, u, n0, n1)]
+    cdef bint bad = False
+    with nogil:
+        for k in range(n):
+            t = (xy[k, 0] - lo0) / size
+            u = (xy[k, 1] - lo1) / size
+            if not (t >= 0 and u >= 0 and t < 9.0e18 and u < 9.0e18):
+                bad = True
+                break
+            out[k] = state[_raster_cell(t, u, n0, n1)]
+    if bad:
+        raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
 
 
 def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx, double rx,
@@ -636,19 +641,20 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
         raise ValueError("corridor_local: mismatched array shapes")
     if not cell > 0:
         raise ValueError("corridor_local: the cell size must be positive")
-    for i in range(n):
-        x = <double>(<int64_t>X[i] - kx) * sx
-        if rx != 0.0:
-            x = x + rx
-        y = <double>(<int64_t>Y[i] - ky) * sy
-        if ry != 0.0:
-            y = y + ry
-        local_x[i] = x
-        local_y[i] = y
-        cx = x + ox
-        cy = y + oy
-        if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
-            state[i] = 0
-            continue
-        # inside the box: both offsets >= 0 and finite
-        state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
+    with nogil:
+        for i in range(n):
+            x = <double>(<int64_t>X[i] - kx) * sx
+            if rx != 0.0:
+                x = x + rx
+            y = <double>(<int64_t>Y[i] - ky) * sy
+            if ry != 0.0:
+                y = y + ry
+            local_x[i] = x
+            local_y[i] = y
+            cx = x + ox
+            cy = y + oy
+            if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
+                state[i] = 0
+                continue
+            # inside the box: both offsets >= 0 and finite
+            state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
