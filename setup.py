@@ -9,6 +9,8 @@ setup(ext_modules=cythonize(
      for name in ("_neighbours", "_grid")]
     + [Extension("clearaudit.io._lazlayers", ["clearaudit/io/_lazlayers.pyx"],
                  extra_compile_args=["-O3"]),
+       Extension("clearaudit.audit._polyline", ["clearaudit/audit/_polyline.pyx"],
+                 extra_compile_args=["-O3", "-ffp-contract=off"]),
        Extension("clearaudit.model._irls", ["clearaudit/model/_irls.pyx"],
                  extra_compile_args=["-O3", "-ffp-contract=off"]),
        Extension("clearaudit.physics._catenary_residuals",

@@ -258,3 +258,67 @@ def test_nearest_curve_equals_every_point_against_every_segment():
         np.testing.assert_allclose(np.linalg.norm(pts[mine] - on, axis=1), d[mine], atol=1e-9)
     empty = nearest_curve(np.zeros((0, 3)), curves)
     assert all(len(a) == 0 for a in empty)
+
+
+def test_compiled_nearest_segment_equals_the_numpy_form():
+    # reference: the numpy form (clearance._nearest_segment_numpy); in plan the compiled pass
+    # gives the same numbers bit for bit (no fused multiply-add, sums in numpy's order)
+    from clearaudit.audit.clearance import (
+        _SCAN_VERTICES,
+        _nearest_segment,
+        _nearest_segment_numpy,
+    )
+
+    def _numpy_nearest_segment(points, vertices):
+        return _nearest_segment_numpy(points, vertices, None)
+
+    dims = 2
+    rng = np.random.default_rng(17 + dims)
+    for case in range(40):
+        k = int(rng.integers(2, 140)) if case % 10 else _SCAN_VERTICES + 40  # tree path
+        s = np.sort(rng.uniform(0, 400, k))
+        curve = np.column_stack([s, 0.02 * s + rng.normal(0, 0.3, k),
+                                 25 + 0.002 * (s - 200) ** 2])[:, :dims]
+        pts = np.column_stack([rng.uniform(-50, 450, 800), rng.uniform(-40, 40, 800),
+                               rng.uniform(0, 40, 800)])[:, :dims] * 1.0
+        pts[:3] = curve[:3]                             # on vertices
+        d, c, p = _nearest_segment(pts, curve, None)
+        rd, rc, rp = _numpy_nearest_segment(pts, curve)
+        np.testing.assert_array_equal(d, rd)
+        np.testing.assert_array_equal(c, rc)
+        np.testing.assert_array_equal(p, rp)
+    # a given tree and a strided view of the points give the same
+    view = np.column_stack([pts, pts[:, :1]])[:, :dims]
+    for got, want in zip(_nearest_segment(view, curve, cKDTree(curve)),
+                         _numpy_nearest_segment(pts, curve), strict=True):
+        np.testing.assert_array_equal(got, want)
+    d, c, p = _nearest_segment(pts[:0], curve, None)
+    assert d.shape == (0,) and c.shape == (0, dims) and p.shape == (0,)
+    # the wire's height over each point (polyline_overhead, polyline_offsets): the numpy
+    # form's segment and interpolation from the numpy form's parameter
+    from clearaudit.audit.clearance import polyline_offsets, polyline_overhead
+
+    wire = np.column_stack([curve, 30 + 0.01 * (curve[:, 0] - 180) ** 2])
+    cloud = np.column_stack([pts, rng.uniform(0, 20, len(pts))])
+    lateral, wire_z, param = polyline_overhead(cloud, wire)
+    rd, _, rp = _numpy_nearest_segment(pts, curve)
+    i0 = np.clip(np.floor(rp).astype(int), 0, len(wire) - 2)
+    want_z = wire[i0, 2] + (rp - i0) * (wire[i0 + 1, 2] - wire[i0, 2])
+    np.testing.assert_array_equal(lateral, rd)
+    np.testing.assert_array_equal(param, rp)
+    np.testing.assert_array_equal(wire_z, want_z)
+    offset, wire_z2, _ = polyline_offsets(cloud, wire)
+    np.testing.assert_array_equal(np.abs(offset), rd)
+    np.testing.assert_array_equal(wire_z2, want_z)
+    # a repeated vertex (a zero-length segment; the two equally near vertices may be taken
+    # either way): the point found lies on the polyline at its parameter, no farther than
+    # the nearest vertex
+    curve = curve[:60].copy()
+    curve[5] = curve[4]
+    d, c, p = _nearest_segment(pts, curve, None)
+    i0 = np.minimum(np.floor(p).astype(int), len(curve) - 2)
+    on = curve[i0] + (p - i0)[:, None] * (curve[i0 + 1] - curve[i0])
+    np.testing.assert_allclose(c, on, atol=1e-9)
+    np.testing.assert_allclose(d, np.linalg.norm(pts - c, axis=1), atol=1e-9)
+    vertex = np.min(np.linalg.norm(pts[:, None, :] - curve[None], axis=2), axis=1)
+    assert np.all(d <= vertex + 1e-12)

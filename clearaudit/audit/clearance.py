@@ -31,6 +31,7 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from ..arrays import column_bounds, take_rows
+from ._polyline import nearest_segment as _nearest_segment_pass
 
 __all__ = [
     "Findings",
@@ -54,17 +55,38 @@ def _segments(polyline: np.ndarray):
     return p
 
 
-def _project(points: np.ndarray, p0: np.ndarray, p1: np.ndarray):
-    d = p1 - p0
-    dd = np.einsum("ij,ij->i", d, d)
-    t = np.einsum("ij,ij->i", points - p0, d) / np.where(dd > 0, dd, 1.0)
-    t = np.clip(t, 0.0, 1.0)
-    closest = p0 + t[:, None] * d
-    return t, closest
+#: Polylines with more vertices than this find each point's nearest vertex with a k-d tree;
+#: shorter ones (the audit's curves have 101) are scanned in the compiled pass.
+_SCAN_VERTICES = 256
 
 
 def _nearest_segment(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | None):
-    """Nearest point on the polyline through ``vertices`` (any dimension)."""
+    """Nearest point on the polyline through ``vertices``: the distance, the point and the
+    parameter (vertex index plus fraction), from the two segments at each point's nearest
+    vertex. In plan (two columns) by the compiled pass
+    (:func:`clearaudit.audit._polyline.nearest_segment`, the same numbers as the numpy form
+    below); in 3-D by the numpy form, whose sums of three products numpy takes in an order
+    of its own."""
+    pts = np.asarray(points, dtype=np.float64)
+    verts = np.asarray(vertices, dtype=np.float64)
+    if pts.ndim != 2 or pts.shape[1] != 2:
+        return _nearest_segment_numpy(pts, verts, tree)
+    n = len(pts)
+    if tree is None and len(verts) > _SCAN_VERTICES:
+        tree = cKDTree(verts)
+    nearest = np.zeros(0, dtype=np.int64) if tree is None else \
+        np.ascontiguousarray(tree.query(pts)[1], dtype=np.int64)
+    dist = np.empty(n)
+    closest = np.empty((n, 2))
+    param = np.empty(n)
+    _nearest_segment_pass(pts, verts, nearest, dist, closest, param)
+    return dist, closest, param
+
+
+def _nearest_segment_numpy(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | None):
+    """:func:`_nearest_segment` in numpy (any dimension): the nearest vertex by a k-d tree,
+    then segments ``(k - 1, k)`` and ``(k, k + 1)``, each by orthogonal projection clipped to
+    the segment; the later one wins only when strictly nearer."""
     tree = tree or cKDTree(vertices)
     _, k = tree.query(points)
     n = len(vertices)
@@ -74,10 +96,14 @@ def _nearest_segment(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | N
     for offset in (-1, 0):  # segments (k-1, k) and (k, k+1)
         i0 = np.clip(k + offset, 0, n - 2)
         # np.take: the rows vertices[i0], faster than a fancy index
-        t, c = _project(points, np.take(vertices, i0, axis=0), np.take(vertices, i0 + 1, axis=0))
-        d = np.linalg.norm(points - c, axis=1)
-        better = d < best_d
-        best_d = np.where(better, d, best_d)
+        p0, p1 = np.take(vertices, i0, axis=0), np.take(vertices, i0 + 1, axis=0)
+        d = p1 - p0
+        dd = np.einsum("ij,ij->i", d, d)
+        t = np.clip(np.einsum("ij,ij->i", points - p0, d) / np.where(dd > 0, dd, 1.0), 0.0, 1.0)
+        c = p0 + t[:, None] * d
+        dist = np.linalg.norm(points - c, axis=1)
+        better = dist < best_d
+        best_d = np.where(better, dist, best_d)
         np.copyto(best_c, c, where=better[:, None])  # best_c[better] = c[better]
         best_param = np.where(better, i0 + t, best_param)
     return best_d, best_c, best_param
@@ -154,10 +180,17 @@ def _plan_projection(pts: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree | N
     """Nearest plan position on the polyline: (vertices, lateral, closest xy, parameter,
     segment index, polyline height there)."""
     poly = _segments(polyline)
-    lateral, closest, param = _nearest_segment(pts[:, :2], poly[:, :2], tree_xy)
-    i0 = np.clip(np.floor(param).astype(int), 0, len(poly) - 2)
-    t = param - i0
-    wire_z = poly[i0, 2] + t * (poly[i0 + 1, 2] - poly[i0, 2])
+    n, k = len(pts), len(poly)
+    # one compiled pass: the nearest plan point, then the segment and the polyline's height
+    # there, i0 = clip(floor(param), 0, k - 2) and z[i0] + (param - i0) (z[i0 + 1] - z[i0])
+    if tree_xy is None and k > _SCAN_VERTICES:
+        tree_xy = cKDTree(poly[:, :2])
+    nearest = np.zeros(0, dtype=np.int64) if tree_xy is None else \
+        np.ascontiguousarray(tree_xy.query(pts[:, :2])[1], dtype=np.int64)
+    lateral, closest, param = np.empty(n), np.empty((n, 2)), np.empty(n)
+    i0, wire_z = np.empty(n, dtype=np.int64), np.empty(n)
+    _nearest_segment_pass(pts[:, :2], poly[:, :2], nearest, lateral, closest, param,
+                          np.ascontiguousarray(poly[:, 2]), i0, wire_z)
     return poly, lateral, closest, param, i0, wire_z
 
 
