@@ -110,6 +110,28 @@ def test_take_rows_equals_numpy_fancy_and_boolean_indexing():
     np.testing.assert_array_equal(by_mask.sampler()(grid), loc.sampler()(grid)[mask])
 
 
+def test_records_in_box_equals_the_tile_test_on_the_records():
+    # reference: TileSpec.near on the records' own coordinates (numpy)
+    from clearaudit.classify.kernels import records_in_box
+    from clearaudit.tiling import RECORD, TileSpec, make_records, record_xyz
+
+    rng = np.random.default_rng(21)
+    xyz = rng.uniform(-30, 230, size=(20_000, 3))
+    xyz[:50, 0] = 0.0 - 40.0          # on the lower bound: kept
+    xyz[50:100, 0] = 200.0 + 40.0     # on the upper bound: dropped
+    xyz[100, 1] = np.nan
+    rec = make_records(xyz, np.zeros(len(xyz), np.uint8), np.arange(len(xyz)))
+    tile = TileSpec("t0_0", ((0, 0),), (0.0, 0.0, 200.0, 100.0), 40.0, (), len(xyz))
+    want = np.flatnonzero(tile.near(record_xyz(rec)[:, :2], 40.0))
+    out = np.empty(len(rec), np.int64)
+    m = records_in_box(rec.view(np.uint8), RECORD.itemsize, -40.0, -40.0, 240.0, 140.0, out)
+    np.testing.assert_array_equal(out[:m], want)
+    with pytest.raises(ValueError):
+        records_in_box(rec.view(np.uint8)[:-1], RECORD.itemsize, 0, 0, 1, 1, out)
+    with pytest.raises(ValueError):
+        records_in_box(rec.view(np.uint8), RECORD.itemsize, 0, 0, 1, 1, out[:-1])
+
+
 def test_record_take_and_concat_match_numpy():
     # reference: numpy's own fancy indexing and concatenation of the structured records
     from clearaudit.tiling import RECORD, concat_records, take_records

@@ -658,3 +658,26 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
                 continue
             # inside the box: both offsets >= 0 and finite
             state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
+
+
+def records_in_box(const unsigned char[::1] raw, Py_ssize_t itemsize, double lo0, double lo1,
+                   double hi0, double hi1, int64_t[::1] out):
+    """Positions of the packed records whose x, y (float64 at bytes 0 and 8 of each
+    ``itemsize``-byte record) satisfy ``lo0 <= x < hi0`` and ``lo1 <= y < hi1``, ascending,
+    written to ``out``; returns how many. The records are read in place (a memory-mapped
+    file), with no copy of their coordinates."""
+    cdef Py_ssize_t n, i, m = 0
+    cdef double x, y
+    if itemsize < 16 or raw.shape[0] % itemsize != 0:
+        raise ValueError("records_in_box: the bytes are not whole records of x, y, ...")
+    n = raw.shape[0] // itemsize
+    if out.shape[0] < n:
+        raise ValueError("records_in_box: the output is shorter than the records")
+    with nogil:
+        for i in range(n):
+            memcpy(&x, &raw[i * itemsize], 8)
+            memcpy(&y, &raw[i * itemsize + 8], 8)
+            if x >= lo0 and x < hi0 and y >= lo1 and y < hi1:
+                out[m] = i
+                m += 1
+    return m
