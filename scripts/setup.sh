@@ -25,7 +25,7 @@ done
 if ! "$PYTHON" -m venv --help >/dev/null 2>&1 || ! "$PYTHON" -c 'import ensurepip' 2>/dev/null; then
   missing="$missing python3-venv"
 fi
-# A C compiler and the Python headers build the compiled kernel (clearaudit/classify/*.pyx).
+# A C compiler and the Python headers build the compiled kernels (clearaudit/*/*.pyx).
 if ! command -v cc >/dev/null 2>&1 && ! command -v gcc >/dev/null 2>&1; then
   missing="$missing gcc libc6-dev"
 fi
