@@ -141,3 +141,23 @@ def test_isolated_vegetation_return_among_wire_points_is_absorbed():
     _absorb_isolated_vegetation(xyz, cls, hag, 1.5, 2, 1.0)
     assert cls[101] == 14
     assert np.all(cls[102:] == 5)
+
+
+def test_cells_next_to_anchors_hold_every_point_within_reach():
+    # reference: brute-force plan distances (numpy); the cell test must keep every point
+    # within the reach of an anchor (a superset: the k-d tree measures the kept ones)
+    from clearaudit.classify.refine import _next_to
+
+    rng = np.random.default_rng(8)
+    for reach in (0.3, 2.5, 7.0):
+        xy = rng.uniform(-50, 250, size=(20_000, 2)) + 1.0e5
+        anchors = rng.uniform(0, 200, size=(300, 2)) + 1.0e5
+        anchors[:20] = xy[:20] + rng.uniform(-reach, reach, size=(20, 2)) * 0.999
+        kept = _next_to(xy, anchors, reach)
+        d = np.min(np.hypot(xy[:, None, 0] - anchors[None, :, 0],
+                            xy[:, None, 1] - anchors[None, :, 1]), axis=1)
+        assert np.all(kept[d < reach])
+        assert kept.sum() < len(xy)             # a prefilter, not everything
+    assert not _next_to(xy[:0], anchors, 1.0).any()
+    assert not _next_to(xy, anchors[:0], 1.0).any()
+    assert _next_to(xy, anchors, 1e-6, max_cells=1000).all()   # too many cells: no test

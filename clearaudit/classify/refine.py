@@ -26,7 +26,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from ..arrays import class_counts, class_mask, near_points
+from ..arrays import class_counts, class_mask, column_bounds, near_points
 from ..cloud import (
     HIGH_VEGETATION,
     LOW_VEGETATION,
@@ -317,10 +317,15 @@ def _absorb_isolated_vegetation(xyz: np.ndarray, cls: np.ndarray, hag: np.ndarra
     # only vegetation points within reach of a wire point can change, so the (costly)
     # neighbour count is done for those alone; their neighbours all lie within
     # reach + radius of a wire point, so the counting tree holds only those
-    wire_tree = cKDTree(np.take(xyz, wire, axis=0))
+    wire_xyz = np.take(xyz, wire, axis=0)
+    wire_tree = cKDTree(wire_xyz)
     pad = 0.01 * (reach_m + radius_m) + 1e-6  # [m] round-off allowance; only widens the set
-    near_any, _ = wire_tree.query(np.take(xyz, veg, axis=0),
-                                  distance_upper_bound=reach_m + radius_m + pad)
+    bound = reach_m + radius_m + pad
+    # only the vegetation in plan cells next to a wire point's cell can be within the bound
+    # (cells a little wider than it): the k-d tree measures those alone, and keeps the same
+    # points as a query of every vegetation point
+    veg = veg[_next_to(np.take(xyz, veg, axis=0)[:, :2], wire_xyz[:, :2], bound)]
+    near_any, _ = wire_tree.query(np.take(xyz, veg, axis=0), distance_upper_bound=bound)
     around = veg[np.isfinite(near_any)]
     if len(around) == 0:
         return
@@ -332,3 +337,35 @@ def _absorb_isolated_vegetation(xyz: np.ndarray, cls: np.ndarray, hag: np.ndarra
     neighbours = cKDTree(xyz[around]).query_ball_point(xyz[cand], radius_m, return_length=True)
     lone = np.asarray(neighbours) <= max_points
     cls[cand[lone]] = cls[wire_of[lone]]
+
+
+def _next_to(xy: np.ndarray, anchors: np.ndarray, reach_m: float,
+             max_cells: int = 50_000_000) -> np.ndarray:
+    """Whether each point lies in a plan cell next to (or in) a cell holding an anchor, with
+    cells 1.001 times ``reach_m`` wide: a superset of the points within ``reach_m`` of an
+    anchor in plan (or in 3-D). All True when the cells would be too many."""
+    if len(xy) == 0 or len(anchors) == 0:
+        return np.zeros(len(xy), dtype=bool)
+    cell = 1.001 * float(reach_m)
+    (xlo, xhi), (alo, ahi) = column_bounds(xy), column_bounds(anchors)
+    lo = np.minimum(xlo, alo) - 2.0 * cell
+    hi = np.maximum(xhi, ahi) + 2.0 * cell
+    if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+        return np.ones(len(xy), dtype=bool)
+    span = np.floor((hi - lo) / cell) + 1.0
+    if float(span[0]) * float(span[1]) > max_cells:
+        return np.ones(len(xy), dtype=bool)
+    n1 = int(span[1])
+
+    def flat(pts: np.ndarray) -> np.ndarray:  # cell number, a cell or more from every edge
+        i = np.floor((pts[:, 0] - lo[0]) / cell).astype(np.int64)
+        j = np.floor((pts[:, 1] - lo[1]) / cell).astype(np.int64)
+        i *= n1
+        i += j
+        return i
+
+    a = flat(anchors)
+    marked = np.zeros(int(span[0]) * n1, dtype=bool)
+    for step in (-n1 - 1, -n1, -n1 + 1, -1, 0, 1, n1 - 1, n1, n1 + 1):
+        marked[a + step] = True
+    return np.take(marked, flat(xy))
