@@ -103,6 +103,11 @@ def low_point_offset(span_length: ArrayLike, height_difference: ArrayLike,
     L = np.asarray(span_length, dtype=float)
     h = np.asarray(height_difference, dtype=float)
     C = _check_constant(catenary_constant)
+    return _low_point_offset(L, h, C)
+
+
+def _low_point_offset(L: np.ndarray, h: np.ndarray, C: np.ndarray) -> np.ndarray:
+    """:func:`low_point_offset` of float arrays already checked (C > 0)."""
     return L / 2.0 - C * np.arcsinh(h / (2.0 * C * np.sinh(L / (2.0 * C))))
 
 
@@ -265,6 +270,11 @@ def arc_length(span_length: ArrayLike, height_difference: ArrayLike,
     L = np.asarray(span_length, dtype=float)
     h = np.asarray(height_difference, dtype=float)
     C = _check_constant(catenary_constant)
+    return _arc_length(L, h, C)
+
+
+def _arc_length(L: np.ndarray, h: np.ndarray, C: np.ndarray) -> np.ndarray:
+    """:func:`arc_length` of float arrays already checked (C > 0)."""
     return np.hypot(h, 2.0 * C * np.sinh(L / (2.0 * C)))
 
 
@@ -372,10 +382,17 @@ def average_tension(horizontal_tension: ArrayLike, unit_weight: ArrayLike,
     w = np.asarray(unit_weight, dtype=float)
     L = _check_span(span_length)
     h = np.asarray(height_difference, dtype=float)
-    C = _check_constant(H / w)
-    x0 = low_point_offset(L, h, C)
+    _check_constant(H / w)
+    return _average_tension(H, w, L, h)
+
+
+def _average_tension(H: np.ndarray, w: np.ndarray, L: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """:func:`average_tension` of float arrays already checked (L > 0, H / w > 0): the same
+    operations without the checks, for the change-of-state solver's inner loop."""
+    C = H / w
+    x0 = _low_point_offset(L, h, C)
     integral = L / 2.0 + 0.5 * C * np.cosh((L - 2.0 * x0) / C) * np.sinh(L / C)
-    return H * integral / arc_length(L, h, C)
+    return H * integral / _arc_length(L, h, C)
 
 
 def parabolic_sag(span_length: ArrayLike, catenary_constant: ArrayLike) -> np.ndarray:

@@ -166,11 +166,18 @@ def _solve_horizontal_tension(span_length, height_difference, unstressed_length,
     """
     L, h, S0, w, dt = np.broadcast_arrays(span_length, height_difference, unstressed_length,
                                           unit_weight, temperature_shift)
+    # the inner loop's catenary functions without their argument checks (the same
+    # operations): L and w are checked by the callers, C = exp(log C) > 0
+    Lf, hf, wf = (np.asarray(a, dtype=float) for a in (L, h, w))
+    if not np.all(Lf > 0):  # the checks the catenary functions would make, once
+        raise ValueError("The span length must be positive.")
+    if not np.all(wf > 0):
+        raise ValueError("The catenary constant must be positive.")
 
     def residual(log_constant):
         constant = np.exp(log_constant)
-        strain = catenary.arc_length(L, h, constant) / S0 - 1.0
-        return (catenary.average_tension(w * constant, w, L, h)
+        strain = catenary._arc_length(Lf, hf, constant) / S0 - 1.0
+        return (catenary._average_tension(np.asarray(wf * constant, dtype=float), wf, Lf, hf)
                 - model.tension(strain, dt))
 
     lo = np.log(_MIN_CONSTANT_PER_SPAN * L)
