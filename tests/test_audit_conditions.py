@@ -226,3 +226,22 @@ def test_states_keep_recipes_not_samples(section):
     a, b = curve[0], curve[-1]
     chord = a[2] + frac * (b[2] - a[2])
     assert float(np.max(chord - curve[:, 2])) == pytest.approx(st.sag_m["mot"], rel=2e-3)
+
+
+def test_frame_points_equal_the_numpy_expression():
+    # reference: numpy's a + x[:, None] * ex + z[:, None] * ez, bit for bit
+    from clearaudit.audit._polyline import frame_points
+
+    rng = np.random.default_rng(4)
+    for n in (1, 2, 7, 801):
+        a = rng.normal(size=3) * 1e4
+        ex = rng.normal(size=3)
+        ex /= np.linalg.norm(ex)
+        ez = rng.normal(size=3)
+        x = np.sort(rng.uniform(0, 400, n))
+        z = rng.normal(size=n) * 30
+        out = np.empty((n, 3))
+        frame_points(a, ex, ez, x, z, out)
+        np.testing.assert_array_equal(out, a + x[:, None] * ex + z[:, None] * ez)
+    with pytest.raises(ValueError):
+        frame_points(a, ex, ez, x, z[:-1], out)

@@ -115,3 +115,20 @@ def nearest_segment(const double[:, :] pts, const double[:, :] verts,
                 seg[i] = i0
                 t = param[i] - <double>i0
                 wz[i] = vz[i0] + t * (vz[i0 + 1] - vz[i0])
+
+
+def frame_points(const double[::1] a, const double[::1] ex, const double[::1] ez,
+                 const double[::1] x, const double[::1] z, double[:, ::1] out):
+    """``out = a + x[:, None] * ex + z[:, None] * ez``: points given in a plane's frame
+    (origin ``a``, unit axes ``ex``, ``ez``), each sum and product rounded on its own in
+    numpy's order (see setup.py), so the same numbers as the numpy expression."""
+    cdef Py_ssize_t n = x.shape[0], i, c
+    cdef double t
+    if a.shape[0] != 3 or ex.shape[0] != 3 or ez.shape[0] != 3 or z.shape[0] != n \
+            or out.shape[0] != n or out.shape[1] != 3:
+        raise ValueError("frame_points: mismatched shapes")
+    with nogil:
+        for i in range(n):
+            for c in range(3):
+                t = a[c] + x[i] * ex[c]
+                out[i, c] = t + z[i] * ez[c]

@@ -38,6 +38,8 @@ import numpy as np
 from clearaudit.physics import catenary, loading
 from clearaudit.physics.state_change import ConductorMechanics, ruling_span
 
+from ._polyline import frame_points
+
 __all__ = [
     "CONDITION_GROUP",
     "ConditionSpec",
@@ -252,7 +254,10 @@ def catenary_curve(attachment_a: np.ndarray, attachment_b: np.ndarray, constant_
     n = _n_samples(span, slope_end, spacing_m)
     x = np.linspace(0.0, span, n)
     z = catenary.catenary_height(x, span, h, constant_m)
-    return a + x[:, None] * ex + z[:, None] * ez, x / span, span, h
+    curve = np.empty((n, 3))
+    frame_points(np.ascontiguousarray(a), np.ascontiguousarray(ex), np.ascontiguousarray(ez),
+                 x, np.ascontiguousarray(z, dtype=float), curve)  # a + x ex + z ez
+    return curve, x / span, span, h
 
 
 def fit_curve(fit: Any, spacing_m: float = 0.5) -> tuple[np.ndarray, np.ndarray]:
