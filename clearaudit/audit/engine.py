@@ -38,7 +38,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from clearaudit.arrays import class_mask, take_rows
+from clearaudit.arrays import class_mask, column_bounds, take_rows
 from clearaudit.cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -393,8 +393,8 @@ def prepare_wire_states(model: Any, config: Any, conductors: dict[str, Any], rul
     for k, st in enumerate(states):
         plan_xy = [c[:, :2] for c in st.curves.values()]
         pad = max([pad] + [_thin_curve(c)[1] for c in plan_xy])
-        stacked = np.concatenate(plan_xy)
-        boxes[k] = [*np.min(stacked, axis=0), *np.max(stacked, axis=0)]
+        lo, hi = column_bounds(np.concatenate(plan_xy))  # numpy's min / max per column
+        boxes[k] = [*lo, *hi]
     return WireStates(voltage_kv=voltage, altitude_m=altitude, altitude_note=altitude_note,
                       survey_temperature=survey_t, specs=specs, insulator_length_m=insulator,
                       states=states, notes=notes,
