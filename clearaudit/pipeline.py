@@ -573,6 +573,8 @@ def split_part_points(total_points: int, workers: int) -> int:
     per_task = -(-int(total_points) // (2 * max(1, int(workers))))
     per_task = -(-per_task // _LAZ_CHUNK_POINTS) * _LAZ_CHUNK_POINTS
     return int(min(max(per_task, SPLIT_PART_MIN_POINTS), SPLIT_PART_MAX_POINTS))
+
+
 #: Points per chunk of the tiled run's classified copy (its buffers are ≈ 90 bytes a point:
 #: the run's peak when the tiles are small; a multiple of the LAZ chunk, 50 000 points).
 WRITE_CHUNK_POINTS = 1_000_000
