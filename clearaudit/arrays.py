@@ -19,6 +19,16 @@ def column_bounds(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return lo, hi
 
 
+def positions(index: np.ndarray, n: int) -> np.ndarray:
+    """An integer index array as it is, a boolean mask over ``n`` rows as its positions."""
+    index = np.asarray(index)
+    if index.dtype != bool:
+        return index
+    if index.shape != (n,):
+        raise IndexError(f"boolean index of shape {index.shape} for {n} rows")
+    return np.flatnonzero(index)
+
+
 def take_rows(a: np.ndarray, index: np.ndarray) -> np.ndarray:
     """``a[index]`` along the first axis (an integer index array or a boolean mask), by
     :func:`numpy.take`: the same values in the same order, a new C-ordered array.
@@ -27,12 +37,7 @@ def take_rows(a: np.ndarray, index: np.ndarray) -> np.ndarray:
     float64 cloud ``np.take`` is 3-5 times faster, and a boolean mask with scattered points
     (ground among vegetation, say) indexes about 6 times slower than its positions do.
     """
-    index = np.asarray(index)
-    if index.dtype == bool:
-        if index.shape != a.shape[:1]:
-            raise IndexError(f"boolean index of shape {index.shape} for {len(a)} rows")
-        index = np.flatnonzero(index)
-    return np.take(a, index, axis=0)
+    return np.take(a, positions(index, len(a)), axis=0)
 
 
 def code_counts(codes: np.ndarray) -> np.ndarray:

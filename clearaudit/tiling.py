@@ -510,10 +510,14 @@ class TileSpec:
         x0, y0, x1, y1 = self.box
         return (xy[:, 0] >= x0) & (xy[:, 0] < x1) & (xy[:, 1] >= y0) & (xy[:, 1] < y1)
 
-    def near(self, xy: np.ndarray, margin_m: float) -> np.ndarray:
+    def near_box(self, margin_m: float) -> tuple[float, float, float, float]:
+        """The box grown by ``margin_m``: (x, y) with ``lo <= . < hi`` is near. [m]"""
         x0, y0, x1, y1 = self.box
-        return ((xy[:, 0] >= x0 - margin_m) & (xy[:, 0] < x1 + margin_m)
-                & (xy[:, 1] >= y0 - margin_m) & (xy[:, 1] < y1 + margin_m))
+        return x0 - margin_m, y0 - margin_m, x1 + margin_m, y1 + margin_m
+
+    def near(self, xy: np.ndarray, margin_m: float) -> np.ndarray:
+        lo0, lo1, hi0, hi1 = self.near_box(margin_m)
+        return (xy[:, 0] >= lo0) & (xy[:, 0] < hi0) & (xy[:, 1] >= lo1) & (xy[:, 1] < hi1)
 
 
 def plan_tiles(cell_counts: dict[tuple[int, int], int], grid: Grid, tile_points: int,
@@ -638,19 +642,16 @@ def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
     return out
 
 
-def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None,
-                 block: int = 1_000_000) -> tuple[np.ndarray, list[tuple[tuple[int, int], np.ndarray]]]:
-    """Records of the context cells within ``margin_m`` of the tile box (read in blocks).
+def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None
+                 ) -> tuple[np.ndarray, list[tuple[tuple[int, int], np.ndarray]]]:
+    """Records of the context cells within ``margin_m`` of the tile box.
 
     Returns the records and, per context cell, the positions (within that cell's records)
     of the points kept, so per-point results of neighbouring tiles can be looked up.
     """
     from .classify.kernels import records_in_box
 
-    margin = tile.overlap_m if margin_m is None else float(margin_m)
-    x0, y0, x1, y1 = tile.box
-    # TileSpec.near's bounds, the same float64 values
-    lo0, lo1, hi0, hi1 = x0 - margin, y0 - margin, x1 + margin, y1 + margin
+    lo0, lo1, hi0, hi1 = tile.near_box(tile.overlap_m if margin_m is None else float(margin_m))
     parts, where = [], []
     for cell in tile.context_cells:
         offset = 0
@@ -661,13 +662,12 @@ def read_context(work: str | Path, tile: TileSpec, margin_m: float | None = None
                 continue
             raw = np.memmap(f, dtype=np.uint8, mode="r")
             # the records' x, y tested where they lie (one compiled pass, no copy of the
-            # coordinates); the kept records gathered block by block
+            # coordinates: TileSpec.near's test), then the kept records gathered
             pos = np.empty(size // RECORD.itemsize, dtype=np.int64)
             sel = pos[:records_in_box(raw, RECORD.itemsize, lo0, lo1, hi0, hi1, pos)]
             records = raw.view(RECORD)
-            for s in range(0, len(sel), block):
-                parts.append(take_records(records, sel[s:s + block]))
             if len(sel):
+                parts.append(take_records(records, sel))
                 picked.append(sel + offset)
             offset += len(records)
             del raw, records

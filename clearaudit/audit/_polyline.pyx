@@ -1,9 +1,11 @@
 # cython: language_level=3, boundscheck=False, wraparound=False, cdivision=True, initializedcheck=False
 """Nearest point of a polyline to each of many points, in one compiled pass.
 
-The same arithmetic as the numpy form (kept in tests/test_audit_clearance.py as the
-reference), in the same order and without fused multiply-add (see setup.py), so the
-distances, nearest points and parameters are the same numbers; the loop leaves the GIL.
+The same arithmetic as the numpy form (``clearance._nearest_segment_numpy``, its reference
+in tests/test_audit_clearance.py), in the same order and without fused multiply-add (see
+setup.py), so in plan the distances, nearest points and parameters are the same numbers
+(numpy sums three products in an order of its own, so the package keeps the numpy form for
+3-D); the loops leave the GIL.
 """
 from libc.math cimport floor, sqrt, INFINITY
 from libc.stdint cimport int64_t

@@ -72,15 +72,20 @@ def _nearest_segment(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | N
     if pts.ndim != 2 or pts.shape[1] != 2:
         return _nearest_segment_numpy(pts, verts, tree)
     n = len(pts)
-    if tree is None and len(verts) > _SCAN_VERTICES:
-        tree = cKDTree(verts)
-    nearest = np.zeros(0, dtype=np.int64) if tree is None else \
-        np.ascontiguousarray(tree.query(pts)[1], dtype=np.int64)
-    dist = np.empty(n)
-    closest = np.empty((n, 2))
-    param = np.empty(n)
-    _nearest_segment_pass(pts, verts, nearest, dist, closest, param)
+    dist, closest, param = np.empty(n), np.empty((n, 2)), np.empty(n)
+    _nearest_segment_pass(pts, verts, _nearest_vertices(pts, verts, tree), dist, closest, param)
     return dist, closest, param
+
+
+def _nearest_vertices(pts_xy: np.ndarray, verts_xy: np.ndarray, tree: cKDTree | None
+                      ) -> np.ndarray:
+    """Each point's nearest vertex by a k-d tree (the one given, or one built for a long
+    polyline), or an empty array: the compiled pass then scans the vertices itself."""
+    if tree is None and len(verts_xy) > _SCAN_VERTICES:
+        tree = cKDTree(verts_xy)
+    if tree is None:
+        return np.zeros(0, dtype=np.int64)
+    return np.ascontiguousarray(tree.query(pts_xy)[1], dtype=np.int64)
 
 
 def _nearest_segment_numpy(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | None):
@@ -180,17 +185,14 @@ def _plan_projection(pts: np.ndarray, polyline: np.ndarray, tree_xy: cKDTree | N
     """Nearest plan position on the polyline: (vertices, lateral, closest xy, parameter,
     segment index, polyline height there)."""
     poly = _segments(polyline)
-    n, k = len(pts), len(poly)
+    n = len(pts)
     # one compiled pass: the nearest plan point, then the segment and the polyline's height
     # there, i0 = clip(floor(param), 0, k - 2) and z[i0] + (param - i0) (z[i0 + 1] - z[i0])
-    if tree_xy is None and k > _SCAN_VERTICES:
-        tree_xy = cKDTree(poly[:, :2])
-    nearest = np.zeros(0, dtype=np.int64) if tree_xy is None else \
-        np.ascontiguousarray(tree_xy.query(pts[:, :2])[1], dtype=np.int64)
     lateral, closest, param = np.empty(n), np.empty((n, 2)), np.empty(n)
     i0, wire_z = np.empty(n, dtype=np.int64), np.empty(n)
-    _nearest_segment_pass(pts[:, :2], poly[:, :2], nearest, lateral, closest, param,
-                          np.ascontiguousarray(poly[:, 2]), i0, wire_z)
+    _nearest_segment_pass(pts[:, :2], poly[:, :2],
+                          _nearest_vertices(pts[:, :2], poly[:, :2], tree_xy),
+                          lateral, closest, param, np.ascontiguousarray(poly[:, 2]), i0, wire_z)
     return poly, lateral, closest, param, i0, wire_z
 
 

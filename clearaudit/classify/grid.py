@@ -10,7 +10,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from ..arrays import column_bounds
+from ..arrays import column_bounds, positions
 from ..threads import run_chunks
 from .kernels import bilinear as _bilinear
 from .kernels import cell_extreme as _cell_extreme
@@ -237,9 +237,7 @@ class PointLocation:
 
     def subset(self, which: np.ndarray) -> PointLocation:
         """The locations of some of the points (index array or boolean mask)."""
-        which = np.asarray(which)
-        if which.dtype == bool:
-            which = np.flatnonzero(which)
+        which = positions(which, len(self.fu))  # np.take: faster than fancy indexing
         part = PointLocation(np.take(self.fu, which), np.take(self.fv, which), self.shape)
         sampler = self._cache.get("sampler")
         if sampler is not None:
@@ -312,9 +310,7 @@ class BilinearSampler:
 
     def subset(self, which: np.ndarray) -> BilinearSampler:
         """The weights of some of the points (index array or boolean mask)."""
-        which = np.asarray(which)
-        if which.dtype == bool:
-            which = np.flatnonzero(which)
+        which = positions(which, len(self.k00))
         return BilinearSampler(np.take(self.k00, which), np.take(self.a, which),
                                np.take(self.b, which), np.take(self.outside, which),
                                self.shape, self.row)

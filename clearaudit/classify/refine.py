@@ -324,9 +324,11 @@ def _absorb_isolated_vegetation(xyz: np.ndarray, cls: np.ndarray, hag: np.ndarra
     # only the vegetation in plan cells next to a wire point's cell can be within the bound
     # (cells a little wider than it): the k-d tree measures those alone, and keeps the same
     # points as a query of every vegetation point
-    veg = veg[_next_to(np.take(xyz, veg, axis=0)[:, :2], wire_xyz[:, :2], bound)]
-    near_any, _ = wire_tree.query(np.take(xyz, veg, axis=0), distance_upper_bound=bound)
-    around = veg[np.isfinite(near_any)]
+    veg_xyz = np.take(xyz, veg, axis=0)
+    next_to = np.flatnonzero(_next_to(veg_xyz[:, :2], wire_xyz[:, :2], bound))
+    near_any, _ = wire_tree.query(np.take(veg_xyz, next_to, axis=0), distance_upper_bound=bound)
+    around = veg[next_to[np.isfinite(near_any)]]
+    del veg_xyz
     if len(around) == 0:
         return
     dist, nearest = wire_tree.query(xyz[around], distance_upper_bound=reach_m)

@@ -913,13 +913,12 @@ def variable_chunks(header: Any) -> bool:
 def decoder_threads() -> int:
     """Threads of lazrs's parallel decoder (rayon's pool: the CPUs this process may use,
     or ``RAYON_NUM_THREADS``)."""
+    from ..threads import available_cores
+
     fixed = os.environ.get("RAYON_NUM_THREADS", "")
     if fixed.isdigit() and int(fixed) > 0:
         return int(fixed)
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
+    return available_cores()
 
 
 def balanced_step(points: int, header: Any, threads: int | None = None) -> int:

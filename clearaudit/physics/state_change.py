@@ -166,10 +166,11 @@ def _solve_horizontal_tension(span_length, height_difference, unstressed_length,
     """
     L, h, S0, w, dt = np.broadcast_arrays(span_length, height_difference, unstressed_length,
                                           unit_weight, temperature_shift)
-    # the inner loop's catenary functions without their argument checks (the same
-    # operations): L and w are checked by the callers, C = exp(log C) > 0
+    # the inner loop calls the catenary functions' unchecked forms (the same operations):
+    # their checks are made here once (L > 0, and w > 0 so that C = H / w > 0 for every
+    # C = exp(log C) tried), with the messages the catenary functions give
     Lf, hf, wf = (np.asarray(a, dtype=float) for a in (L, h, w))
-    if not np.all(Lf > 0):  # the checks the catenary functions would make, once
+    if not np.all(Lf > 0):
         raise ValueError("The span length must be positive.")
     if not np.all(wf > 0):
         raise ValueError("The catenary constant must be positive.")
@@ -177,7 +178,7 @@ def _solve_horizontal_tension(span_length, height_difference, unstressed_length,
     def residual(log_constant):
         constant = np.exp(log_constant)
         strain = catenary._arc_length(Lf, hf, constant) / S0 - 1.0
-        return (catenary._average_tension(np.asarray(wf * constant, dtype=float), wf, Lf, hf)
+        return (catenary._average_tension(wf * constant, wf, Lf, hf)
                 - model.tension(strain, dt))
 
     lo = np.log(_MIN_CONSTANT_PER_SPAN * L)
