@@ -17,8 +17,8 @@ before and after the case's audits, the ratios using the mean: a shared host's s
 end-to-end audit time and their ratio (target <= 4), classification alone vs decompression
 (target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
 flat for tiled runs), the time per km of line, and with --dask the speed-up of a local
-2-worker Dask cluster over the in-process tiled run with a check that the outputs are
-identical, the tiled peaks by survey size (flat-memory target), and the time laspy+lazrs
+2-worker Dask cluster over the in-process tiled run on one thread and over the same cluster
+engine with one worker, each with a check that the outputs are identical, the tiled peaks by survey size (flat-memory target), and the time laspy+lazrs
 need to decode only the layers the audit reads (x/y with the returns, z, class: the read
 floor of the run, whose classified.laz copies the other layers of these layered inputs
 instead of re-compressing every point). Every audit runs in its own child process so its peak memory is its own. On a
@@ -197,6 +197,11 @@ def machine() -> str:
             f"{platform.python_version()}, {platform.system()} {platform.release()}")
 
 
+#: the runs of a case, in the order they are made and printed: in memory; tiled in-process on
+#: one thread and on every core; on a local Dask cluster with one worker and with two
+MODES = ("memory", "serial", "tiled", "dask1", "dask")
+
+
 def case(cache: Path, work: Path, label: str, n_spans: int, density: float, modes: list[str],
          tile_points: int | None, tiles: int | None = None) -> dict:
     """Generate (cached) and audit one case; ``tiles``: generator tile size, or one LAZ."""
@@ -215,6 +220,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             extra.append(f"tile_points={tile_points}")
         if mode == "dask":
             extra.append("workers=2")
+        if mode == "dask1":  # the same engine on one worker: what the second worker adds
+            extra.append("workers=1")
         if mode == "serial":  # tiled, in-process, one tile after the other on one thread
             extra.append("threads=1")
         r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
@@ -245,6 +252,10 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
     if "serial" in modes and "dask" in modes:
         result["dask_speedup"] = result["serial"]["audit_s"] / result["dask"]["audit_s"]
         result["dask_identical"] = same_outputs(work / f"{label}-serial", work / f"{label}-dask")
+    if "dask1" in modes and "dask" in modes:
+        result["dask_scaling"] = result["dask1"]["audit_s"] / result["dask"]["audit_s"]
+        result["dask_scaling_identical"] = same_outputs(work / f"{label}-dask1",
+                                                        work / f"{label}-dask")
     if "tiled" in modes and "dask" in modes:
         result["dask_vs_threads"] = result["tiled"]["audit_s"] / result["dask"]["audit_s"]
         result["dask_threads_identical"] = same_outputs(work / f"{label}-tiled",
@@ -264,7 +275,7 @@ def print_results(results: list[dict]) -> None:
           "audit CPU / decompress CPU |")
     print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in results:
-        for mode in ("memory", "serial", "tiled", "dask"):
+        for mode in MODES:
             m = r.get(mode)
             if not m:
                 continue
@@ -292,6 +303,10 @@ def print_results(results: list[dict]) -> None:
         if "dask_speedup" in r:
             print(f"dask 2 workers on {r['case']}: speed-up {r['dask_speedup']:.2f} x over "
                   f"in-process tiled on one thread; identical outputs: {r['dask_identical']}")
+        if "dask_scaling" in r:
+            print(f"dask 2 workers on {r['case']}: speed-up {r['dask_scaling']:.2f} x over the "
+                  f"same cluster engine with 1 worker; identical outputs: "
+                  f"{r['dask_scaling_identical']}")
         if "dask_vs_threads" in r:
             print(f"dask 2 workers on {r['case']}: {r['dask_vs_threads']:.2f} x the speed of "
                   f"in-process tiles (one thread per core), driver peak {r['dask']['peak_rss_mb']:.0f} "
@@ -306,7 +321,7 @@ def print_results(results: list[dict]) -> None:
         print(f"tiled peak RSS MB by survey size: {peaks}; largest / smallest of the "
               f"multi-tile cases = {spread} (target: flat)")
     for r in results:
-        for mode in ("memory", "serial", "tiled", "dask"):
+        for mode in MODES:
             if r.get(mode):
                 m = r[mode]
                 print(f"ratio {r['case']} {mode}: audit/decompress = {m['ratio_audit']:.2f}, "
@@ -347,7 +362,8 @@ def main(argv: list[str] | None = None) -> int:
                         "bounded-memory generator and audited tiled (e.g. 100e6)")
     p.add_argument("--dask", action="store_true",
                    help="also run the first --points case tiled on one thread and on a local "
-                        "2-worker Dask cluster (speed-ups over the one-thread run), and the "
+                        "Dask cluster of 1 and of 2 workers (speed-ups of the 2 workers over "
+                        "the one-thread run and over the 1-worker cluster), and the "
                         "longest --km line on the cluster (against 2 in-process threads)")
     p.add_argument("--tiled-only-above", type=float, default=20e6,
                    help="skip the in-memory run above this many points")
@@ -362,8 +378,7 @@ def main(argv: list[str] | None = None) -> int:
     work.mkdir(exist_ok=True)
     results = []
     if args.tiny:
-        results.append(case(cache, work, "tiny", 2, 1.5, ["memory", "serial", "tiled", "dask"],
-                            100_000))
+        results.append(case(cache, work, "tiny", 2, 1.5, list(MODES), 100_000))
         results.append(case(cache, work, "tiny-stream", 3, 1.0, ["tiled"], 100_000,
                             tiles=50_000))
     for pts in args.points:
@@ -371,7 +386,7 @@ def main(argv: list[str] | None = None) -> int:
         spans = max(2, round(pts / (POINTS_PER_SPAN_PER_DENSITY * density)))
         modes = (["memory"] if pts <= args.tiled_only_above else []) + ["tiled"]
         if args.dask and pts == args.points[0]:
-            modes += ["serial", "dask"]
+            modes += ["serial", "dask1", "dask"]
         results.append(case(cache, work, f"p{pts / 1e6:g}M", spans, density, modes, None))
     for pts in args.stream_points:
         from clearaudit.synth import points_per_span

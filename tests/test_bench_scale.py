@@ -17,12 +17,14 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert proc.returncode == 0, proc.stderr[-3000:]
     out = proc.stdout
     assert "machine:" in out
-    for mode in ("memory", "serial", "tiled", "dask"):
+    for mode in ("memory", "serial", "tiled", "dask1", "dask"):
         assert f"ratio tiny {mode}: audit/decompress = " in out
     assert "classify/decompress = " in out and "peak RSS per point = " in out
-    # the Dask run and the threaded in-process run must reproduce the one-thread run exactly
+    # the Dask runs (1 and 2 workers) and the threaded in-process run must reproduce the
+    # one-thread run exactly
     assert "in-process threads on tiny: speed-up " in out
-    assert out.count("identical outputs: True") == 3
+    assert out.count("identical outputs: True") == 4
+    assert "dask 2 workers on tiny: speed-up " in out and "cluster engine with 1 worker" in out
     assert "dask 2 workers on tiny: " in out and "the speed of in-process tiles" in out
     # the streamed case: generated as tiles (bounded-memory generator), audited tiled
     assert "generated tiny-stream-tiles: " in out and " 3 tiles, " in out
