@@ -197,7 +197,9 @@ def build_parser() -> argparse.ArgumentParser:
                       help="hold the whole survey in memory even where a tiled run is "
                            "automatic (not with --workers/--scheduler)")
     p.add_argument("--tile-points", type=int, metavar="N",
-                   help="largest number of points owned by one tile (default 1500000)")
+                   help="largest number of points owned by one tile (default 1500000, "
+                        "or 60 %% of a smaller survey's points so that it makes two or three "
+                        "tiles)")
     p.add_argument("--tile-overlap-m", type=float, metavar="M",
                    help="context read around each tile [m] (default 40)")
     p.add_argument("--work-dir", metavar="DIR",

@@ -65,7 +65,9 @@ class AuditOptions:
     #: Tiled (bounded-memory) run: None = automatic (:func:`choose_mode`), True / False to
     #: force it.
     tiled: bool | None = None
-    tile_points: int = 1_500_000
+    #: The most points a tile owns; None: 1 500 000, or fewer so that a small survey still
+    #: makes two or three tiles (:func:`clearaudit.tiling.tile_target`).
+    tile_points: int | None = None
     tile_cell_m: float = 100.0
     tile_overlap_m: float = 40.0
     #: With two threads or more, a survey above this many points (header count) runs tiled:
@@ -607,6 +609,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         refine_tile,
         release_free_memory,
         split_part,
+        tile_target,
         write_cell_offsets,
         write_model_labels,
     )
@@ -656,7 +659,6 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # the cut. A part's task holds its decode buffers and its cells' append
                 # buffers (of fixed size), so the split's memory is that of the parts in
                 # flight whatever the survey's size.
-                tile_points = options.tile_points
                 parts = plan_parts(setup, split_part_points(setup.total_points,
                                                             engine.n_workers))
                 # each part also keeps what classified.laz needs of its points (compressed
@@ -689,6 +691,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         f"{paths[0]} (+{len(paths) - 1} more files)"
                     raise InputError(label, "contains no points inside the area kept "
                                             f"(0 of {decoded} points kept)")
+                tile_points = tile_target(kept, options.tile_points)
                 tiles = plan_tiles(cells, grid, tile_points, options.tile_overlap_m)
                 # a tile's work follows the points it reads (owned and context): the tasks of
                 # each stage start largest first, so no large tile starts last
@@ -705,6 +708,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 record.extra["tiles"] = {
                     "count": len(tiles), "cell_m": options.tile_cell_m,
                     "overlap_m": options.tile_overlap_m, "target_points": tile_points,
+                    "asked_points": options.tile_points,
                     "largest_points": max(t.n_points for t in tiles)}
             ctx = TileContext(origin=setup.origin, crs=setup.crs,
                               horizontal_unit_m=setup.horizontal_unit_m,

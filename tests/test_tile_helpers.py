@@ -284,6 +284,39 @@ def test_plan_tiles_joins_scrap_blocks_into_rectangles():
 
 
 
+def test_tile_target_cuts_a_small_survey_in_two_or_three_tiles():
+    # Expected by construction (common practice, no source): an asked size wins; else the
+    # default, or 60 % of a smaller survey's points while that leaves at least 400 000
+    from clearaudit.tiling import (
+        DEFAULT_TILE_POINTS,
+        SMALL_SURVEY_MIN_TILE_POINTS,
+        Grid,
+        plan_tiles,
+        tile_target,
+    )
+
+    assert tile_target(1_100_000, 5_000_000) == 5_000_000  # asked: honoured as it is
+    assert tile_target(10, 300_000) == 300_000
+    assert tile_target(20_000_000) == DEFAULT_TILE_POINTS == 1_500_000
+    assert tile_target(2_500_000) == 1_500_000  # 60 % of it is the default itself
+    assert tile_target(2_400_000) == 1_440_000
+    assert tile_target(1_100_000) == 660_000
+    assert tile_target(666_666) == SMALL_SURVEY_MIN_TILE_POINTS == 400_000  # ceil(399 999.6)
+    assert tile_target(666_665) == DEFAULT_TILE_POINTS  # tiles would be too small: one tile
+    assert tile_target(0) == DEFAULT_TILE_POINTS
+    with pytest.raises(ValueError):
+        tile_target(1_000, 0)
+    with pytest.raises(ValueError):
+        tile_target(-1)
+    # a 2 km line along x of 1.1 M points in 100 m cells: one tile at the default size, two
+    # when the small-survey target is used
+    grid = Grid(0.0, 0.0, 100.0)
+    counts = {(i, 3): 55_000 for i in range(20)}
+    assert len(plan_tiles(counts, grid, DEFAULT_TILE_POINTS, 40.0)) == 1
+    tiles = plan_tiles(counts, grid, tile_target(sum(counts.values())), 40.0)
+    assert len(tiles) == 2 and max(t.n_points for t in tiles) <= 660_000
+
+
 @pytest.mark.parametrize("spread", [3, 40, 100_000])
 def test_route_by_cell_equals_the_stable_sort(spread):
     # reference: numpy's stable argsort of the cell numbers and a gather of the records

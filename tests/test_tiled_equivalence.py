@@ -42,7 +42,9 @@ def runs(tmp_path_factory) -> dict[str, Path]:
             # one tile: the shared engine halves, the tile plumbing and refinement only
             "one_tile": _run(base / "one_tile", tiled=True, tile_points=5_000_000),
             # 300 000 points per tile: 5 tiles of 100 m cells, seams through spans and trees
-            "tiles": _run(base / "tiles", tiled=True, tile_points=300_000)}
+            "tiles": _run(base / "tiles", tiled=True, tile_points=300_000),
+            # no size asked: a survey this small is still cut in two or three tiles
+            "small": _run(base / "small", tiled=True)}
 
 
 def _rows(path: Path) -> list[dict]:
@@ -128,6 +130,24 @@ def test_tiled_run_is_cut_into_tiles(runs):
     kept = ("read", "all") if ours else ("none", "none")
     assert (info["execution"]["heap_kept"], memory["execution"]["heap_kept"]) == kept
     assert "refine_with_model" in info["classification"]
+
+
+def test_small_survey_makes_two_or_three_tiles_with_the_same_findings(runs):
+    # tiling.tile_target: 60 % of the points kept (the sample's 1.19 M points), recorded
+    import json
+    import math
+
+    info = json.loads((runs["small"] / "run.json").read_text())
+    assert 2 <= info["tiles"]["count"] <= 3 and info["tiles"]["asked_points"] is None
+    assert info["tiles"]["target_points"] == math.ceil(0.6 * info["points_read"])
+    assert info["tiles"]["largest_points"] <= info["tiles"]["target_points"]
+    asked = json.loads((runs["tiles"] / "run.json").read_text())["tiles"]
+    assert asked["asked_points"] == asked["target_points"] == 300_000
+    for name in ("violations.csv", "hazard_trees.csv"):
+        a, b = _rows(runs["memory"] / name), _rows(runs["small"] / name)
+        assert _match(a, b) == ([], []), name
+    assert _span_deviation(runs["memory"], runs["small"]) < SPAN_TOL
+    assert _class_agreement(runs["memory"], runs["small"]) >= 0.99
 
 
 def test_tiled_hazard_trees_equal_in_memory(runs):
