@@ -13,7 +13,8 @@ one generator for every line length, so the time-per-km table compares like with
 audit reads the folder.
 
 For every case it prints: the time laspy+lazrs need merely to decompress the LAZ (timed
-before and after the case's audits, the ratios using the mean: a shared host's speed drifts), the
+before the case's first audit and after each, each audit's ratios using the mean of the two
+timings around it: a shared host's speed drifts), the
 end-to-end audit time and their ratio (target <= 4), classification alone vs decompression
 (target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
 flat for tiled runs), the time per km of line, and with --dask the speed-up of a local
@@ -209,9 +210,10 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
         paths = generate_tiles(cache, f"{label}-tiles", n_spans, density, tiles)
     else:
         paths = generate(cache, label, n_spans, density)
-    dec_s, n, dec_cpu = decompress_seconds(paths["cloud"])
+    timings = [decompress_seconds(paths["cloud"])]  # (wall s, points, CPU s)
+    n = timings[0][1]
     result = {"case": label, "points": n, "spans": n_spans, "density": density,
-              "line_km": None, "decompress_s": dec_s, "decompress_cpu_s": dec_cpu,
+              "line_km": None,
               "layers_s": layers_seconds(paths["cloud"]),
               "files": len(cloud_files(paths["cloud"]))}
     for mode in modes:
@@ -225,6 +227,10 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
         if mode == "serial":  # tiled, in-process, one tile after the other on one thread
             extra.append("threads=1")
         r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
+        # the decompression again right after each audit: a shared host's speed drifts over
+        # a case's minutes, so each audit is compared with the two timings around it (the
+        # one before it and the one after it), not with timings taken minutes away
+        timings.append(decompress_seconds(paths["cloud"]))
         print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, CPU "
               f"{r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB", flush=True)
         spans = list(csv.DictReader(open(work / f"{label}-{mode}" / "spans.csv")))
@@ -236,19 +242,18 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
                         "bytes_per_point": r["peak_rss_mb"] * 2**20 / n,
                         "s_per_km": r["audit_s"] / km if km else None,
                         "cpu_s": r["cpu_s"], "cpu_s_per_km": r["cpu_s"] / km if km else None,
-                        "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb")}
-    # the decompression again after the audits: a shared host's speed drifts over a case's
-    # minutes, so the ratios use the mean of the two timings (both are kept and printed)
-    dec_after, _, cpu_after = decompress_seconds(paths["cloud"])
-    result.update({"decompress_before_s": dec_s, "decompress_after_s": dec_after,
-                   "decompress_s": (dec_s + dec_after) / 2.0,
-                   "decompress_cpu_s": (dec_cpu + cpu_after) / 2.0})
-    dec_s, dec_cpu = result["decompress_s"], result["decompress_cpu_s"]
+                        "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb"),
+                        "decompress_around_s": (timings[-2][0], timings[-1][0]),
+                        "decompress_s": (timings[-2][0] + timings[-1][0]) / 2.0,
+                        "decompress_cpu_s": (timings[-2][2] + timings[-1][2]) / 2.0}
+    result["decompress_timings_s"] = [t[0] for t in timings]
+    result["decompress_s"] = sum(t[0] for t in timings) / len(timings)
+    result["decompress_cpu_s"] = sum(t[2] for t in timings) / len(timings)
     for mode in modes:
         m = result[mode]
-        m["ratio_audit"] = m["audit_s"] / dec_s
-        m["ratio_classify"] = m["classify_s"] / dec_s
-        m["ratio_audit_cpu"] = m["cpu_s"] / dec_cpu
+        m["ratio_audit"] = m["audit_s"] / m["decompress_s"]
+        m["ratio_classify"] = m["classify_s"] / m["decompress_s"]
+        m["ratio_audit_cpu"] = m["cpu_s"] / m["decompress_cpu_s"]
     if "serial" in modes and "dask" in modes:
         result["dask_speedup"] = result["serial"]["audit_s"] / result["dask"]["audit_s"]
         result["dask_identical"] = same_outputs(work / f"{label}-serial", work / f"{label}-dask")
@@ -281,16 +286,16 @@ def print_results(results: list[dict]) -> None:
                 continue
             print(f"| {r['case']} | {r['points']:,} | {r.get('files', 1)} | {r['line_km']:.2f} | "
                   f"{mode} | "
-                  f"{r['decompress_s']:.2f} | {m['audit_s']:.1f} | {m['ratio_audit']:.2f} | "
+                  f"{m['decompress_s']:.2f} | {m['audit_s']:.1f} | {m['ratio_audit']:.2f} | "
                   f"{m['ratio_classify']:.2f} | {m['peak_rss_mb']:.0f} | "
                   f"{m['bytes_per_point']:.0f} | {m['s_per_km'] or float('nan'):.1f} | "
                   f"{m['cpu_s']:.1f} | {m['cpu_s_per_km'] or float('nan'):.1f} | "
                   f"{m['ratio_audit_cpu']:.2f} |")
     for r in results:
-        if "decompress_after_s" in r:
-            print(f"decompress {r['case']}: {r['decompress_before_s']:.2f} s before its audits, "
-                  f"{r['decompress_after_s']:.2f} s after; the ratios use the mean "
-                  f"{r['decompress_s']:.2f} s")
+        if "decompress_timings_s" in r:
+            times = ", ".join(f"{t:.2f}" for t in r["decompress_timings_s"])
+            print(f"decompress {r['case']}: {times} s, before its first audit and after each "
+                  "(each audit's ratios use the mean of the two timings around it)")
     for r in results:
         # the read floor: the layers the audit decodes (classified.laz copies the others)
         print(f"floor {r['case']}: decoding the layers the audit reads (x/y, z, class) takes "
