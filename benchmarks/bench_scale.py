@@ -148,6 +148,9 @@ def run_child(cloud: Path, line: Path, out: Path, extra: list[str]) -> dict:
 
 def _child(argv: list[str]) -> None:
     cloud, line, out, *extra = argv
+    from clearaudit.threads import one_blas_thread_from_start
+
+    one_blas_thread_from_start()  # as the command line does, before numpy is loaded
     from clearaudit.pipeline import AuditOptions, run_audit
 
     kw: dict = {}

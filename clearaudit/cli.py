@@ -267,6 +267,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from .threads import one_blas_thread_from_start
+
+    one_blas_thread_from_start()  # before numpy is loaded (see there)
     parser = build_parser()
     args = parser.parse_args(argv)
     # Without -v only the final one-line error reaches stderr; notes and warnings of a run are

@@ -134,6 +134,25 @@ def blas_one_thread() -> Iterator[int | None]:
             else None
 
 
+def one_blas_thread_from_start() -> bool:
+    """Ask OpenBLAS for one thread before numpy or scipy loads it (``OPENBLAS_NUM_THREADS=1``
+    unless the environment already sets a value); whether one thread is what it will start.
+
+    When loaded, numpy's and scipy's OpenBLAS each start a thread per core that spins for a
+    while before it sleeps: 0.25 CPU s on 2 cores (a process importing both and sleeping
+    1 s used 0.50-0.54 instead of 0.26-0.29 CPU s), taken from the start of a run that keeps
+    BLAS on one thread anyway (:func:`blas_one_thread`). The command line calls this first;
+    a program that imported numpy before is left as it is (False), as is a value it set.
+    Child processes (a local Dask cluster's workers) inherit the setting, as Dask would set
+    it for them.
+    """
+    import sys
+
+    if "numpy" in sys.modules or "scipy" in sys.modules:
+        return False
+    return os.environ.setdefault("OPENBLAS_NUM_THREADS", "1").strip() == "1"
+
+
 def blas_threads() -> int | None:
     """The largest thread count of the BLAS libraries loaded (None: none found)."""
     try:

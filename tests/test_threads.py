@@ -261,3 +261,33 @@ def test_shared_setting_applies_once_and_restores_after_the_last_holder():
     with unchanged.hold() as state:
         assert state is None
     assert log[-1] == "restore"
+
+
+def test_the_command_line_asks_openblas_for_one_thread_before_numpy_loads_it():
+    # threadpoolctl (a reference library) reads the thread count OpenBLAS started with
+    import os
+    import subprocess
+    import sys
+
+    code = ("import sys; import clearaudit.cli as c; assert 'numpy' not in sys.modules; "
+            "c.main(['conductors']); "
+            "from threadpoolctl import threadpool_info; import numpy, scipy.linalg; "
+            "print(sorted({i['num_threads'] for i in threadpool_info() "
+            "if i.get('user_api') == 'blas'}))")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         env=env, check=True).stdout.strip().splitlines()[-1]
+    assert out == "[1]"
+    # a value the user set is kept; with numpy already loaded nothing is changed
+    env["OPENBLAS_NUM_THREADS"] = "2"
+    code2 = ("import os; from clearaudit.threads import one_blas_thread_from_start as f; "
+             "print(f(), os.environ['OPENBLAS_NUM_THREADS'])")
+    out = subprocess.run([sys.executable, "-c", code2], capture_output=True, text=True,
+                         env=env, check=True).stdout.strip()
+    assert out == "False 2"
+    env.pop("OPENBLAS_NUM_THREADS")
+    code3 = ("import os, numpy; from clearaudit.threads import one_blas_thread_from_start as f; "
+             "print(f(), 'OPENBLAS_NUM_THREADS' in os.environ)")
+    out = subprocess.run([sys.executable, "-c", code3], capture_output=True, text=True,
+                         env=env, check=True).stdout.strip()
+    assert out == "False False"
