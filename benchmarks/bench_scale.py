@@ -14,15 +14,15 @@ audit reads the folder.
 
 For every case it prints: the time laspy+lazrs need merely to decompress the LAZ (timed
 before the case's first audit and after each, each audit's ratios using the mean of the two
-timings around it: a shared host's speed drifts), the
-end-to-end audit time and their ratio (target <= 4), classification alone vs decompression
-(target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
+timings around it: a shared host's speed drifts), the end-to-end audit time and their
+ratio (target <= 4), classification alone vs decompression (target <= 1.5), the peak resident memory per input point (target <= 150 B/point in memory;
 flat for tiled runs), the time per km of line, and with --dask the speed-up of a local
 2-worker Dask cluster over the in-process tiled run on one thread and over the same cluster
-engine with one worker, each with a check that the outputs are identical, the tiled peaks by survey size (flat-memory target), and the time laspy+lazrs
-need to decode only the layers the audit reads (x/y with the returns, z, class: the read
-floor of the run, whose classified.laz copies the other layers of these layered inputs
-instead of re-compressing every point). Every audit runs in its own child process so its peak memory is its own. On a
+engine with one worker, each with a check that the outputs are identical, the tiled peaks
+by survey size (flat-memory target), and the time laspy+lazrs need to decode only the
+layers the audit reads (x/y with the returns, z, class: the read floor of the run, whose
+classified.laz copies the other layers of these layered inputs instead of re-compressing
+every point). Every audit runs in its own child process so its peak memory is its own. On a
 shared machine the wall times vary with the load; the CPU times (audit process and its
 workers; decompression in the parent) are printed beside them.
 Generation is not part of any measurement; its time and peak memory are printed.
