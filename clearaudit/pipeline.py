@@ -808,8 +808,13 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # what every refine and audit task needs: sent once per worker for both
                 # stages, not pickled into every task (a long line's spans are megabytes)
                 by_cell = engine.share({c: t.id for t in tiles for c in t.cells})
+                # the structures' extents depend on the model alone: computed here once,
+                # not by every refine task (each went through every span's wires)
+                from .classify.refine import structure_extents
+
                 line = engine.share(SimpleNamespace(structures=model.structures,
-                                                    spans=model.spans))
+                                                    spans=model.spans,
+                                                    extents=structure_extents(model)))
                 # the audit's wire states (survey temperature, conditions, curves) need the
                 # model, not the refined classes: prepared on a thread of its own while the
                 # refine tasks run (it only reads the model)

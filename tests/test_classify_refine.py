@@ -114,6 +114,26 @@ def test_structure_extents_reach_the_crossarm_tips(corridor):
         assert ext[s["id"]]["radius_m"] >= reach
 
 
+def test_refine_with_extents_given_equals_refine_computing_them(corridor):
+    """The extents computed once for all tiles give the same classes as each computing its own
+    (common practice, no source: the same function of the same model)."""
+    scene, cloud, result, model = corridor
+    saved = result.classification.copy()
+    tree = scene.truth["planted_trees"][0]
+    idx = _tree_points(scene, tree)
+    try:
+        outcomes = []
+        for extents in (None, structure_extents(model)):
+            result.classification[:] = saved
+            result.classification[idx] = 15  # something for the refinement to correct
+            counts = refine_with_model(cloud, result, model, extents=extents)
+            outcomes.append((counts, result.classification.copy()))
+        assert outcomes[0][0] == outcomes[1][0] and outcomes[0][0]
+        np.testing.assert_array_equal(outcomes[0][1], outcomes[1][1])
+    finally:
+        result.classification[:] = saved
+
+
 def test_refine_rejects_mismatched_inputs(corridor):
     _, cloud, result, model = corridor
 

@@ -123,7 +123,8 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
                       arm_depth_m: float = 5.0, top_margin_m: float = 3.0,
                       voxel_m: float = 1.0, max_member_scattering: float = 0.1,
                       min_foliage_scattering: float = 0.05, isolated_radius_m: float = 1.5,
-                      isolated_max_points: int = 2, wire_reach_m: float = 1.0) -> dict[str, int]:
+                      isolated_max_points: int = 2, wire_reach_m: float = 1.0,
+                      extents: dict[str, dict[str, Any]] | None = None) -> dict[str, int]:
     """Correct structure, vegetation and wire labels with the line model (in place).
 
     Parameters
@@ -155,6 +156,9 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     wire_reach_m
         An isolated vegetation point this close to a wire or insulator point takes that
         point's class. [m]
+    extents
+        ``structure_extents(model, margin_m)`` when already known: it depends on the model
+        alone, so the tiles of a line share one (computed once instead of once per tile).
 
     Returns
     -------
@@ -185,7 +189,8 @@ def refine_with_model(cloud: Cloud, result: Any, model: Any, *, margin_m: float 
     xyz = cloud.xyz
     hag = np.asarray(result.height_above_ground_m, np.float64)
     before = cls.copy()
-    extents = structure_extents(model, margin_m)
+    if extents is None:
+        extents = structure_extents(model, margin_m)
     ids = list(extents)
     interesting = np.flatnonzero(class_mask(cls, _STRUCTURE + _VEGETATION + _WIRE) & (hag > 0.3))
     if not ids:
