@@ -1368,9 +1368,10 @@ def _radial(points, idx, state, cond, curve, frac, ci_along, required, key) -> F
 def _building(points, idx, labels, by_label, state, cond, curve, frac, ci_along, b_h, b_v
               ) -> Findings:
     """One entry per building inside (or, within the 95 % interval, near) the box envelope."""
-    offset, wire_z, param = polyline_offsets(take_rows(points, idx), curve)
+    p = take_rows(points, idx)
+    offset, wire_z, param = polyline_offsets(p, curve)
     ci = np.interp(param, np.arange(len(curve)), ci_along)
-    d_v = np.abs(wire_z - points[idx, 2])
+    d_v = np.abs(wire_z - p[:, 2])  # the gathered rows' heights: points[idx, 2]
     flagged = (np.abs(offset) < b_h) & (d_v - ci < b_v)
     if not np.any(flagged):
         return Findings.empty()

@@ -167,13 +167,11 @@ def _solve_horizontal_tension(span_length, height_difference, unstressed_length,
     L, h, S0, w, dt = np.broadcast_arrays(span_length, height_difference, unstressed_length,
                                           unit_weight, temperature_shift)
     # the inner loop calls the catenary functions' unchecked forms (the same operations):
-    # their checks are made here once (L > 0, and w > 0 so that C = H / w > 0 for every
-    # C = exp(log C) tried), with the messages the catenary functions give
-    Lf, hf, wf = (np.asarray(a, dtype=float) for a in (L, h, w))
-    if not np.all(Lf > 0):
-        raise ValueError("The span length must be positive.")
-    if not np.all(wf > 0):
-        raise ValueError("The catenary constant must be positive.")
+    # their checks are made here once, by the catenary module's own checks (L > 0, and
+    # w > 0 so that C = H / w > 0 for every C = exp(log C) tried)
+    Lf = catenary._check_span(L)
+    wf = catenary._positive(w, "The unit weight must be positive.")
+    hf = np.asarray(h, dtype=float)
 
     def residual(log_constant):
         constant = np.exp(log_constant)
