@@ -68,11 +68,13 @@ def test_sag_calculator_measured_temperature_and_csv(tmp_path, capsys):
     (lambda d: (d / "text.laz").write_text("hello") and d / "text.laz", "not a las"),
     (lambda d: _truncated(d), "truncated or corrupt"),
     (lambda d: _empty(d), "no points"),
+    (lambda d: _beyond_bounds(d), "beyond the bounds in its header"),
 ])
-def test_audit_bad_cloud_exit_2_nothing_written(tmp_path, make, fragment):
+@pytest.mark.parametrize("mode", [[], ["--tiled"]])
+def test_audit_bad_cloud_exit_2_nothing_written(tmp_path, make, fragment, mode):
     cloud = make(tmp_path)
     out = tmp_path / "out"
-    r = run_cli("audit", str(cloud), "--voltage-kv", "230", "--out", str(out))
+    r = run_cli("audit", str(cloud), "--voltage-kv", "230", "--out", str(out), *mode)
     assert r.returncode == 2, r.stderr
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "Traceback" not in r.stderr
@@ -109,6 +111,19 @@ def _truncated(d: Path) -> Path:
     src = (SAMPLE / "tarnwick_velloran_230kv.laz").read_bytes()
     p = d / "cut.laz"
     p.write_bytes(src[: len(src) // 2])
+    return p
+
+
+def _beyond_bounds(d: Path) -> Path:
+    """The sample with a header whose x bounds end 50 m past the smallest x: most points lie
+    beyond them (as after damage that still decodes, or a stale header)."""
+    p = d / "bounds.laz"
+    p.write_bytes((SAMPLE / "tarnwick_velloran_230kv.laz").read_bytes())
+    with laspy.open(p) as f:
+        lo = float(f.header.mins[0])
+    with open(p, "r+b") as fh:  # ASPRS LAS 1.2-1.4 header: max x at byte 179, min x at 187
+        fh.seek(179)
+        fh.write(np.array([lo + 50.0], dtype="<f8").tobytes())
     return p
 
 

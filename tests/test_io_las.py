@@ -478,6 +478,51 @@ def test_corrupt_laz_body(tmp_path):
         assert cloud.n_points == 1065
 
 
+def _set_header_bounds(path: Path, mins, maxs) -> None:
+    """Overwrite the bounds in a LAS/LAZ header in place (ASPRS LAS 1.2-1.4: max x, min x,
+    max y, min y, max z, min z as little-endian doubles from byte 179)."""
+    values = np.array([maxs[0], mins[0], maxs[1], mins[1], maxs[2], mins[2]], dtype="<f8")
+    with open(path, "r+b") as fh:
+        fh.seek(179)
+        fh.write(values.tobytes())
+
+
+@pytest.mark.parametrize("suffix", [".laz", ".las"])
+def test_points_beyond_the_header_bounds(tmp_path, suffix):
+    # LAZ has no checksums: damaged chunks can decode to points anywhere. A point beyond the
+    # header's bounds by more than HEADER_BOUNDS_SLACK (1 unit of length) stops the read with
+    # an error naming the file, in memory and streamed alike. Reference: laspy's scaled
+    # coordinates of the same file (which point is the first one beyond the bound).
+    from clearaudit.io.las import HEADER_BOUNDS_SLACK, read_range, read_setup
+
+    path = write_cloud(make_cloud(n=3000), tmp_path / f"c{suffix}")
+    las = laspy.read(path)
+    x = np.asarray(las.x)
+    mins = np.array(las.header.mins, dtype=float)
+    maxs = np.array(las.header.maxs, dtype=float)
+    # a header whose bounds were rounded (within the slack) still reads, the same points
+    _set_header_bounds(path, mins + 0.6 * HEADER_BOUNDS_SLACK, maxs - 0.6 * HEADER_BOUNDS_SLACK)
+    cloud = read_cloud(path, crs="EPSG:32617")
+    assert cloud.n_points == 3000
+    setup = read_setup(path, hashes=False)
+    assert sum(len(c[0]) for c in read_range(setup, 0, chunk_size=1000)) == 3000
+    # a header with no bounds at all (every value 0) is not tested
+    _set_header_bounds(path, np.zeros(3), np.zeros(3))
+    assert read_cloud(path, crs="EPSG:32617").n_points == 3000
+    # bounds that leave points out: the first such point is named, with its x
+    cut = float(np.quantile(x, 0.5))
+    _set_header_bounds(path, mins, [cut, maxs[1], maxs[2]])
+    first = int(np.flatnonzero(x > cut + HEADER_BOUNDS_SLACK)[0])
+    for read in (lambda: read_cloud(path, crs="EPSG:32617"),
+                 lambda: list(read_range(read_setup(path, hashes=False), 0, chunk_size=1000))):
+        with pytest.raises(InputError) as err:
+            read()
+        assert err.value.source == str(path)
+        problem = err.value.problem
+        assert "beyond the bounds in its header" in problem and f"point {first}," in problem
+        assert f"x = {x[first]:.3f}" in problem and "corrupt" in problem
+
+
 def test_empty_cloud(tmp_path):
     empty = Cloud(xyz=np.empty((0, 3)), origin=np.zeros(3), crs=pyproj.CRS("EPSG:32617"))
     path = write_cloud(empty, tmp_path / "empty.laz")

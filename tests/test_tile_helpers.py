@@ -132,6 +132,29 @@ def test_records_in_box_equals_the_tile_test_on_the_records():
         records_in_box(rec.view(np.uint8), RECORD.itemsize, 0, 0, 1, 1, out[:-1])
 
 
+@pytest.mark.parametrize("point_format", [0, 1, 3, 6, 8])
+def test_record_int_bounds_equals_numpy_on_laspy_records(point_format):
+    # reference: numpy's min and max of laspy's own X, Y, Z fields of the same records
+    import laspy
+
+    from clearaudit.classify.kernels import record_int_bounds
+
+    rng = np.random.default_rng(point_format)
+    points = laspy.ScaleAwarePointRecord.zeros(3001, header=laspy.LasHeader(
+        point_format=point_format, version="1.4" if point_format >= 6 else "1.2"))
+    for name in "XYZ":
+        points[name] = rng.integers(-2**31, 2**31 - 1, len(points), dtype=np.int64)
+    raw = points.array.view(np.uint8).reshape(-1)
+    lo, hi = np.empty(3, np.int64), np.empty(3, np.int64)
+    record_int_bounds(raw, points.array.dtype.itemsize, lo, hi)
+    np.testing.assert_array_equal(lo, [points[n].min() for n in "XYZ"])
+    np.testing.assert_array_equal(hi, [points[n].max() for n in "XYZ"])
+    record_int_bounds(raw[:0], points.array.dtype.itemsize, lo, hi)
+    assert (lo > hi).all()  # no records
+    with pytest.raises(ValueError):
+        record_int_bounds(raw[:-1], points.array.dtype.itemsize, lo, hi)
+
+
 def test_record_take_and_concat_match_numpy():
     # reference: numpy's own fancy indexing and concatenation of the structured records
     from clearaudit.tiling import RECORD, concat_records, take_records

@@ -660,6 +660,36 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
             state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
 
 
+def record_int_bounds(const unsigned char[::1] raw, Py_ssize_t itemsize, int64_t[::1] lo,
+                      int64_t[::1] hi):
+    """Smallest and largest of the integer X, Y, Z (int32 at bytes 0, 4 and 8 of each
+    ``itemsize``-byte LAS point record, every point format) of packed records, written to
+    ``lo`` and ``hi`` (length 3); one pass, read in place. No records: ``lo`` > ``hi``."""
+    cdef Py_ssize_t n, i, a
+    cdef int32_t v[3]
+    cdef int64_t mn[3]
+    cdef int64_t mx[3]
+    if itemsize < 12 or raw.shape[0] % itemsize != 0:
+        raise ValueError("record_int_bounds: the bytes are not whole records of X, Y, Z, ...")
+    if lo.shape[0] != 3 or hi.shape[0] != 3:
+        raise ValueError("record_int_bounds: lo and hi hold three values")
+    n = raw.shape[0] // itemsize
+    for a in range(3):
+        mn[a] = 2147483647
+        mx[a] = -2147483648
+    with nogil:
+        for i in range(n):
+            memcpy(&v[0], &raw[i * itemsize], 12)
+            for a in range(3):
+                if v[a] < mn[a]:
+                    mn[a] = v[a]
+                if v[a] > mx[a]:
+                    mx[a] = v[a]
+    for a in range(3):
+        lo[a] = mn[a]
+        hi[a] = mx[a]
+
+
 def records_in_box(const unsigned char[::1] raw, Py_ssize_t itemsize, double lo0, double lo1,
                    double hi0, double hi1, int64_t[::1] out):
     """Positions of the packed records whose x, y (float64 at bytes 0 and 8 of each

@@ -340,6 +340,63 @@ class _Shift:
         return out
 
 
+class _HeaderBox:
+    """The bounds a file's header gives, as integer record values, to test decoded points.
+
+    LAZ carries no checksums: a damaged chunk may decode to points without an error, and
+    such points land almost anywhere. A point more than :data:`HEADER_BOUNDS_SLACK` units of
+    length (1 m, or 1 ft in a file in feet) beyond the header's bounds is taken as a sign of
+    damage or of a wrong header, and the file is refused (see :meth:`check`). The slack also
+    covers a header whose bounds were computed before the coordinates were rounded to the
+    scale. A header with no bounds at all (every value 0) is not tested.
+    """
+
+    def __init__(self, header: Any) -> None:
+        mins = np.asarray(header.mins, dtype=np.float64)
+        maxs = np.asarray(header.maxs, dtype=np.float64)
+        scales = np.asarray(header.scales, dtype=np.float64)
+        offsets = np.asarray(header.offsets, dtype=np.float64)
+        self.active = bool(np.any(mins != 0.0) or np.any(maxs != 0.0))
+        slack = 1.0 + HEADER_BOUNDS_SLACK / np.abs(scales)  # [record steps]
+        self.lo = np.floor((mins - offsets) / scales - slack)
+        self.hi = np.ceil((maxs - offsets) / scales + slack)
+        self.mins, self.maxs, self.scales, self.offsets = mins, maxs, scales, offsets
+
+    def check(self, path: Path, chunk: Any, first: int) -> None:
+        """Raise :class:`InputError` naming ``path`` if a point of ``chunk`` (whose first point
+        is point ``first`` of the file) lies beyond the header's bounds."""
+        if not self.active or len(chunk) == 0:
+            return
+        from ..classify.kernels import record_int_bounds
+
+        records = chunk.array
+        lo, hi = np.empty(3, np.int64), np.empty(3, np.int64)
+        if records.flags.c_contiguous:  # one compiled pass over the records (X, Y, Z lead)
+            record_int_bounds(records.view(np.uint8).reshape(-1), records.dtype.itemsize,
+                              lo, hi)
+        else:
+            for axis, name in enumerate("XYZ"):
+                lo[axis], hi[axis] = records[name].min(), records[name].max()
+        if (lo >= self.lo).all() and (hi <= self.hi).all():
+            return
+        for axis, name in enumerate("XYZ"):
+            if lo[axis] >= self.lo[axis] and hi[axis] <= self.hi[axis]:
+                continue
+            ints = np.asarray(records[name])
+            i = int(np.argmax((ints < self.lo[axis]) | (ints > self.hi[axis])))
+            value = float(ints[i]) * self.scales[axis] + self.offsets[axis]
+            label = "xyz"[axis]
+            raise InputError(path, f"has points beyond the bounds in its header (the first: "
+                                   f"point {first + i}, {label} = {value:.3f}; header {label} "
+                                   f"{self.mins[axis]:.3f} to {self.maxs[axis]:.3f}): the file is "
+                                   f"corrupt, or its header's bounds are wrong")
+
+
+#: How far beyond its header's bounds a point may lie before the file is refused, in the
+#: file's units of length (m or ft). See :class:`_HeaderBox`.
+HEADER_BOUNDS_SLACK = 1.0
+
+
 # =============================================================================== record scratch
 #: Free disk space left over after the scratch and what the run itself writes: at least this
 #: much, and at least a tenth of the scratch. [bytes]
@@ -690,6 +747,7 @@ def read_cloud(
         header = meta.header
         shift = _Shift.between(header.scales, header.offsets, origin_arr)
         n_file = 0
+        box = _HeaderBox(header)
         with _open_reader(meta.path, selection) as reader, \
                 _record_sink(records, file_id) as sink:
             for chunk in _chunks(reader, meta.path, chunk_size):
@@ -700,6 +758,7 @@ def read_cloud(
                         f"is truncated or corrupt (header says {meta.point_count} points, "
                         f"more could be read)",
                     )
+                box.check(meta.path, chunk, n_file)
                 _keep_records(sink, chunk)
                 lx = shift.local_into(np.asarray(chunk.X), 0, np.empty(m))
                 ly = shift.local_into(np.asarray(chunk.Y), 1, np.empty(m))
@@ -995,6 +1054,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     whole = records_to is not None and not records_to.layers
     with _open_reader(path, None if whole else _XYZ_CLASS_LAYERS) as reader:
         shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
+        box = _HeaderBox(reader.header)
         chunk_size = balanced_step(chunk_size, reader.header)
         if start and variable_chunks(reader.header):
             # lazrs 0.8 mispositions a seek past the first chunk of a file whose chunks vary
@@ -1020,6 +1080,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             if m == 0:
                 raise InputError(path, f"is truncated or corrupt (header says {count} points, "
                                        f"{position} could be read)")
+            box.check(path, chunk, position)
             _keep_records(records_to, chunk)
             index = np.arange(position, position + m, dtype=np.int64)
             raster = getattr(keep, "raster", None)
