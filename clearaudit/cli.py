@@ -45,6 +45,11 @@ def cmd_info(args: argparse.Namespace) -> int:
         lo, hi = d["bounds_min"], d["bounds_max"]
         table.add_row("bounds min (x, y, z)", ", ".join(f"{v:.3f}" for v in lo))
         table.add_row("bounds max (x, y, z)", ", ".join(f"{v:.3f}" for v in hi))
+        if d.get("beyond_header_bounds"):
+            table.add_row("[bold red]warning[/]", "points lie beyond the bounds in the header "
+                          "(header: " + ", ".join(f"{v:.3f}" for v in d["header_bounds_min"])
+                          + " to " + ", ".join(f"{v:.3f}" for v in d["header_bounds_max"])
+                          + "): the file is corrupt or its header is wrong; an audit refuses it")
         hist = d.get("class_counts", {})
         table.add_row("classes", "\n".join(
             f"{int(c):>3} {CLASS_NAMES.get(int(c), 'user defined'):<38} {n:>12,}"

@@ -504,6 +504,7 @@ def test_points_beyond_the_header_bounds(tmp_path, suffix):
     _set_header_bounds(path, mins + 0.6 * HEADER_BOUNDS_SLACK, maxs - 0.6 * HEADER_BOUNDS_SLACK)
     cloud = read_cloud(path, crs="EPSG:32617")
     assert cloud.n_points == 3000
+    assert describe(path)[0]["beyond_header_bounds"] is False
     setup = read_setup(path, hashes=False)
     assert sum(len(c[0]) for c in read_range(setup, 0, chunk_size=1000)) == 3000
     # a header with no bounds at all (every value 0) is not tested
@@ -513,6 +514,7 @@ def test_points_beyond_the_header_bounds(tmp_path, suffix):
     cut = float(np.quantile(x, 0.5))
     _set_header_bounds(path, mins, [cut, maxs[1], maxs[2]])
     first = int(np.flatnonzero(x > cut + HEADER_BOUNDS_SLACK)[0])
+    assert describe(path)[0]["beyond_header_bounds"] is True  # `info` shows, not refuses
     for read in (lambda: read_cloud(path, crs="EPSG:32617"),
                  lambda: list(read_range(read_setup(path, hashes=False), 0, chunk_size=1000))):
         with pytest.raises(InputError) as err:

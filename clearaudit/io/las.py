@@ -1355,6 +1355,7 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
         h_m, v_m = crs_units_m(the_crs, str(meta.path))
         h_name, v_name = crs_unit_names(the_crs)
         counts = np.zeros(256, dtype=np.int64)
+        box = _HeaderBox(header)
         lo = np.full(3, np.inf)
         hi = np.full(3, -np.inf)
         n = 0
@@ -1383,6 +1384,10 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
             "bounds_max": (hi * scales + offsets).tolist() if n else None,
             "header_bounds_min": [float(v) for v in header.mins],
             "header_bounds_max": [float(v) for v in header.maxs],
+            # points more than HEADER_BOUNDS_SLACK beyond the header's bounds: an audit
+            # refuses the file (damage that still decodes, or a wrong header)
+            "beyond_header_bounds": bool(n and box.active
+                                         and ((lo < box.lo).any() or (hi > box.hi).any())),
             "scales": scales.tolist(),
             "offsets": offsets.tolist(),
             **crs_label(the_crs),
