@@ -275,6 +275,31 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
     return result
 
 
+def km_scaling(results: list[dict]) -> list[str]:
+    """The time-per-km table's lines for the ``--km`` lines (tiled, in-process): seconds per km
+    at each length, the marginal seconds per km between consecutive lengths, and the
+    least-squares line ``t = fixed + slope * km`` (numpy.polyfit). Time per km is constant
+    when the marginal values are alike and the fixed part is small against the shortest
+    line's time; the fixed part is what a run costs whatever the line's length (start-up,
+    imports, the stages' ends)."""
+    import numpy as np
+
+    rows = sorted((float(r["line_km"]), float(r["tiled"]["audit_s"])) for r in results
+                  if r.get("km_case") and r.get("tiled") and r.get("line_km"))
+    if len(rows) < 2:
+        return []
+    km = np.array([k for k, _ in rows])
+    t = np.array([s for _, s in rows])
+    slope, fixed = np.polyfit(km, t, 1)
+    each = ", ".join(f"{k:.1f} km {s / k:.2f}" for k, s in rows)
+    marginal = ", ".join(f"{k0:.1f}-{k1:.1f} km {(s1 - s0) / (k1 - k0):.2f}"
+                         for (k0, s0), (k1, s1) in zip(rows[:-1], rows[1:], strict=True))
+    return [f"time per km (tiled): {each} s/km; marginal between lengths: {marginal} s/km",
+            f"time per km (tiled): least-squares line over the lengths: {fixed:.2f} s fixed "
+            f"+ {slope:.3f} s/km (the fixed part is {fixed / rows[0][1] * 100:.0f} % of the "
+            f"{rows[0][0]:.1f} km line's time)"]
+
+
 def print_results(results: list[dict]) -> None:
     print(f"machine: {machine()}")
     print("| case | points | files | line km | mode | decompress s | audit s | audit/decompress "
@@ -328,6 +353,8 @@ def print_results(results: list[dict]) -> None:
         spread = f"{max(many) / min(many):.2f}" if len(many) > 1 else "n/a"
         print(f"tiled peak RSS MB by survey size: {peaks}; largest / smallest of the "
               f"multi-tile cases = {spread} (target: flat)")
+    for line in km_scaling(results):
+        print(line)
     for r in results:
         for mode in MODES:
             if r.get(mode):
@@ -410,6 +437,7 @@ def main(argv: list[str] | None = None) -> int:
         modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km) else [])
         results.append(case(cache, work, f"k{km:g}km", spans, 4.0, modes, None,
                             tiles=2_000_000))
+        results[-1]["km_case"] = True
     print_results(results)
     if args.json:
         Path(args.json).write_text(json.dumps(results, indent=1, default=str))

@@ -35,3 +35,26 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     # the decompression timed before the first audit and after each of the five
     line = next(t for t in out.splitlines() if t.startswith("decompress tiny: "))
     assert len(line.split(" s, ")[0].split(", ")) == 6 and "the two timings around it" in line
+
+
+def test_km_scaling_lines_match_numpy_polyfit():
+    # reference: numpy.polyfit's straight line through the same (km, seconds) points, and the
+    # differences of consecutive rows by hand
+    import importlib.util
+
+    import numpy as np
+
+    spec = importlib.util.spec_from_file_location("bench_scale", SCRIPT)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    rows = [(50.18, 57.6), (2.03, 4.0), (10.22, 13.6)]
+    results = [{"km_case": True, "line_km": k, "tiled": {"audit_s": s}} for k, s in rows]
+    results.append({"line_km": 6.0, "tiled": {"audit_s": 99.0}})  # not a --km line
+    lines = bench.km_scaling(results)
+    assert len(lines) == 2
+    assert "2.0 km 1.97, 10.2 km 1.33, 50.2 km 1.15 s/km" in lines[0]
+    assert f"2.0-10.2 km {(13.6 - 4.0) / (10.22 - 2.03):.2f}" in lines[0]
+    assert f"10.2-50.2 km {(57.6 - 13.6) / (50.18 - 10.22):.2f}" in lines[0]
+    slope, fixed = np.polyfit([2.03, 10.22, 50.18], [4.0, 13.6, 57.6], 1)
+    assert f"{fixed:.2f} s fixed + {slope:.3f} s/km" in lines[1]
+    assert bench.km_scaling(results[:1]) == []
