@@ -446,10 +446,15 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     buffered = 0
     decoded = kept = 0
 
+    # the folders made one level at a time, never the work folder itself: a task still
+    # running after its run was cancelled (a Dask worker's) must not bring back a work folder
+    # the driver has removed (FileNotFoundError instead)
+    (work / "cells").mkdir(exist_ok=True)
+
     def flush() -> None:
         for (i, j), arrays in buffers.items():
             folder = _cell_dir(work, i, j)
-            folder.mkdir(parents=True, exist_ok=True)
+            folder.mkdir(exist_ok=True)
             with open(folder / f"p{part.part:06d}.bin", "ab") as fh:
                 for a in arrays:
                     a.tofile(fh)
@@ -784,8 +789,7 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
         full_cls = result.classification
         ground_model, timings, info = result.ground, result.timings_s, result.info
         used = result.options
-    folder = work / "tiles"
-    folder.mkdir(parents=True, exist_ok=True)
+    (work / "tiles").mkdir(exist_ok=True)  # not the work folder itself (see split_part)
     np.save(_tile_file(work, tile.id, "cls.npy"), cls)
     np.save(_tile_file(work, tile.id, "hag.npy"), hag.astype(np.float32))
     np.save(_tile_file(work, tile.id, "key.npy"), record_keys(own))
@@ -1068,8 +1072,7 @@ def write_cell_offsets(work: str | Path, tile: TileSpec) -> None:
     for cell in tile.cells:
         offsets[cell] = at
         at += sum(os.path.getsize(f) // RECORD.itemsize for f in _cell_files(Path(work), cell))
-    folder = Path(work) / "tiles"
-    folder.mkdir(parents=True, exist_ok=True)
+    (Path(work) / "tiles").mkdir(exist_ok=True)  # not the work folder itself (see split_part)
     with open(_tile_file(Path(work), tile.id, "cells.pkl"), "wb") as fh:
         pickle.dump(offsets, fh)
 

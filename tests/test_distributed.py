@@ -82,6 +82,26 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
     assert read_cells(tmp_path, tiles[0].cells, then=second[:0]).tobytes() == first.tobytes()
 
 
+def test_tasks_never_bring_back_a_removed_work_folder(corridor, tmp_path):
+    # a Dask worker's task still running after the driver was interrupted and removed the
+    # work folder must fail, not make the folder again (it was left behind, 18-104 MB, when
+    # a run on a local cluster was interrupted with Ctrl-C)
+    from clearaudit.tiling import write_cell_offsets
+
+    setup = read_setup(corridor["cloud"], hashes=False)
+    grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]), 100.0)
+    gone = tmp_path / "gone"
+    part = plan_parts(setup, 300_000)[0]
+    with pytest.raises(FileNotFoundError):
+        split_part(gone, setup, part, grid, flush_points=50_000)
+    assert not gone.exists()
+    cells = split_part(tmp_path, setup, part, grid, flush_points=50_000)["cells"]
+    tile = plan_tiles(cells, grid, 120_000, 40.0)[0]
+    with pytest.raises(FileNotFoundError):
+        write_cell_offsets(gone, tile)
+    assert not gone.exists()
+
+
 def test_the_cut_into_ranges_changes_no_cell(corridor, tmp_path):
     # reference: the same split in one range; cut into ranges of any size (chunk-aligned or
     # not) every cell holds the same records in the same order, byte for byte
@@ -92,6 +112,7 @@ def test_the_cut_into_ranges_changes_no_cell(corridor, tmp_path):
     made = {}
     for size in (setup.total_points, 300_000, 123_457):
         work = tmp_path / f"cut{size}"
+        work.mkdir()  # the driver makes the work folder; tasks never do (see below)
         cells: dict = {}
         for part in plan_parts(setup, size):
             for c, k in split_part(work, setup, part, grid, flush_points=50_000)["cells"].items():
