@@ -29,6 +29,9 @@ class InputError(ClearauditError):
         self.problem = problem
         super().__init__(f"{self.source}: {problem}" if self.source else problem)
 
+    def __reduce__(self):  # picklable (a Dask worker's error comes back to the driver)
+        return (type(self), (self.source, self.problem))
+
 
 class StageError(ClearauditError):
     """A processing stage failed for a reason that is not the user's input."""
@@ -37,3 +40,37 @@ class StageError(ClearauditError):
         self.stage = stage
         self.problem = problem
         super().__init__(f"stage {stage!r}: {problem}")
+
+    def __reduce__(self):
+        return (type(self), (self.stage, self.problem))
+
+
+class StorageError(ClearauditError):
+    """The disk ran full (or over its quota) while a run wrote its files: not the input's
+    fault, so the command line prints one line and exits with code 1. The run's partial
+    output folder and its work folder are removed as for any other error."""
+
+    def __init__(self, folders: list[str | Path], problem: str):
+        self.folders = [str(f) for f in folders]
+        self.problem = problem
+        super().__init__(f"{problem} (writing in {' and '.join(self.folders)}); free some space "
+                         f"there or choose other folders (--out, --work-dir)")
+
+    def __reduce__(self):
+        return (type(self), (self.folders, self.problem))
+
+
+#: ``errno`` values of a full disk or an exhausted quota.
+DISK_FULL_ERRNOS = frozenset({28, 122})  # ENOSPC, EDQUOT (Linux)
+
+
+def is_disk_full(exc: BaseException) -> bool:
+    """Whether ``exc`` (or an exception it was raised from) is a full disk or quota."""
+    seen = 0
+    while exc is not None and seen < 10:
+        if isinstance(exc, OSError) and exc.errno in DISK_FULL_ERRNOS:
+            return True
+        exc = exc.__cause__ or exc.__context__
+        seen += 1
+    return False
+

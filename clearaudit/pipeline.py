@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 
 from . import CAUTION, __version__
-from .errors import InputError, StageError
+from .errors import ClearauditError, InputError, StageError, StorageError, is_disk_full
 
 OUTPUT_SCHEMA_VERSION = "1.0"
 
@@ -229,8 +229,19 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
     from .tiling import small_pages
 
     check_engine(options)  # threads, workers, scheduler (it must answer) before any work
-    with run_threads(options.threads), small_pages(), blas_one_thread():
-        return _run_audit(options, console, show_summary)
+    try:
+        with run_threads(options.threads), small_pages(), blas_one_thread():
+            return _run_audit(options, console, show_summary)
+    except ClearauditError:
+        raise
+    except Exception as exc:
+        if not is_disk_full(exc):
+            raise
+        out = Path(options.out).absolute()
+        folders = [out.parent]
+        if options.work_dir and Path(options.work_dir).absolute() != out.parent:
+            folders.append(Path(options.work_dir).absolute())
+        raise StorageError(folders, "no space left on the device") from exc
 
 
 def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):

@@ -457,7 +457,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
             folder.mkdir(exist_ok=True)
             with open(folder / f"p{part.part:06d}.bin", "ab") as fh:
                 for a in arrays:
-                    a.tofile(fh)
+                    fh.write(a)  # (not ndarray.tofile: its OSError on a full disk has no errno)
         buffers.clear()
 
     with (records.writer(part.file_id, part.start) if records is not None

@@ -436,3 +436,87 @@ def test_dask_engine_checks_every_worker_sees_inputs_and_work_folder(tmp_path, m
         assert not any(p.name.startswith(".workers-probe") for p in tmp_path.iterdir())
         monkeypatch.undo()
         engine.finish()
+
+
+def test_errors_survive_pickling():
+    # reference: the standard library's pickle round trip (how a Dask worker's error comes
+    # back to the driver): the same class, file or folders, and message
+    import pickle
+
+    from clearaudit.errors import StageError, StorageError
+
+    for exc in (InputError("a.laz", "is truncated or corrupt"), InputError(None, "no input"),
+                StageError("model", "no spans"), StorageError(["/tmp", "/w"], "no space left")):
+        back = pickle.loads(pickle.dumps(exc))
+        assert type(back) is type(exc) and str(back) == str(exc)
+        assert back.problem == exc.problem
+
+
+def test_a_full_disk_is_one_clear_error_and_leaves_nothing(corridor, tmp_path, monkeypatch):
+    # a full disk while the tiles are written (simulated: errno ENOSPC from the split, as a
+    # 20 MB tmpfs gave it) becomes a StorageError naming the folders; the partial output
+    # folder and the work folder are gone
+    import errno
+
+    import clearaudit.tiling as tiling
+    from clearaudit.errors import StorageError, is_disk_full
+
+    def full(*args, **kwargs):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(tiling, "split_part", full)
+    out = tmp_path / "out" / "audit"
+    with pytest.raises(StorageError) as err:
+        _run(corridor, out, work_dir=tmp_path / "work")
+    assert "no space left on the device" in str(err.value)
+    assert str(tmp_path / "work") in str(err.value) and str(out.parent) in str(err.value)
+    assert not out.exists() and not [p for p in (tmp_path / "out").iterdir()]
+    assert not [p for p in (tmp_path / "work").iterdir()]
+    assert not is_disk_full(RuntimeError("not a disk"))
+    try:
+        try:
+            full()
+        except OSError as exc:
+            raise RuntimeError("a library's own error") from exc
+    except RuntimeError as wrapped:
+        assert is_disk_full(wrapped)
+
+
+def test_task_errors_come_back_as_values():
+    # an expected error (bad input, full disk) is returned by the task wrapper, not raised on
+    # the worker (where Dask would log its traceback on the console); others still raise
+    import errno
+
+    from clearaudit.distributed import _task, _TaskFailure
+
+    def bad_input():
+        raise InputError("x.laz", "is truncated or corrupt")
+
+    def full_disk():
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    def bug():
+        raise ZeroDivisionError("a bug")
+
+    for fn, kind in ((bad_input, InputError), (full_disk, OSError)):
+        result = _task(fn, (), {})
+        assert isinstance(result, _TaskFailure) and isinstance(result.exc, kind)
+    with pytest.raises(ZeroDivisionError):
+        _task(bug, (), {})
+
+
+def _raise_input_error(k):
+    raise InputError(f"tile{k}.laz", "is truncated or corrupt")
+
+
+def test_a_workers_input_error_reaches_the_driver_quietly(capfd):
+    # on a local cluster a task's input error is raised on the driver (the same class and
+    # message), and no worker prints Dask's "Compute Failed" report with its traceback
+    from clearaudit.distributed import engine_for
+
+    with engine_for(workers=1) as engine:
+        with pytest.raises(InputError) as err:
+            list(engine.run([(_raise_input_error, (k,), {}) for k in range(3)]))
+    assert err.value.problem == "is truncated or corrupt"
+    assert err.value.source.startswith("tile")
+    assert "Compute Failed" not in capfd.readouterr().err

@@ -466,7 +466,7 @@ class RecordScratch:
                 sink = _ScratchSink(fh, self.layers)
                 yield sink
             if self.layers:
-                sink.bounds().tofile(final.with_suffix(_BOUNDS_SUFFIX))
+                final.with_suffix(_BOUNDS_SUFFIX).write_bytes(sink.bounds().tobytes())
             os.replace(partial, final)
         except BaseException:
             partial.unlink(missing_ok=True)
