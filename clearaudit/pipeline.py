@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import os
 import platform
 import shutil
 import sys
@@ -260,6 +261,27 @@ def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):
             cluster.close()
 
 
+def _refuse_unwritable(folder: Path, option: str) -> None:
+    """Raise :class:`InputError` naming ``option`` when ``folder`` (or, where it does not exist
+    yet, the nearest folder above it, in which it would be made) cannot take new files: a
+    read-only file system, missing permission, or a file in the way. Nothing is created."""
+    probe = folder
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise InputError(option, f"{folder} cannot be created: {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        reason = "read-only file system" if _read_only(probe) else "no permission to write"
+        raise InputError(option, f"cannot write in {probe} ({reason})")
+
+
+def _read_only(folder: Path) -> bool:
+    try:
+        return bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+    except OSError:
+        return False
+
+
 def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, console=None,
                       show_summary: bool = True):
     from .config import load_line_file, read_structures_csv
@@ -289,6 +311,10 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
 
         rules = load_rule_set(config.line.rule_set, config.clearance,
                               base_dir=config.source.parent if config.source else None)
+        # the output folder's and the work folder's places must take files (before any work)
+        _refuse_unwritable(Path(options.out).absolute().parent, "--out")
+        if options.work_dir:
+            _refuse_unwritable(Path(options.work_dir).absolute(), "--work-dir")
         refuse_out_over_inputs(options.out, [*paths, *([config.source] if config.source else []),
                                              *([config.structures_file]
                                                if config.structures_file else [])])

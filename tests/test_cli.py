@@ -136,3 +136,38 @@ def _empty(d: Path) -> Path:
     p = d / "empty.las"
     las.write(p)
     return p
+
+
+def test_audit_unwritable_out_or_work_dir_exit_2_before_any_work(tmp_path):
+    # a file where a folder must be: refused during validation, one line naming the option
+    blocker = tmp_path / "blocker"
+    blocker.write_text("a file, not a folder")
+    cloud = SAMPLE / "tarnwick_velloran_230kv.laz"
+    for option, args in (("--out", ["--out", str(blocker / "sub" / "o")]),
+                         ("--work-dir", ["--out", str(tmp_path / "o"), "--tiled",
+                                         "--work-dir", str(blocker / "w")])):
+        r = run_cli("audit", str(cloud), "--voltage-kv", "230", *args)
+        assert r.returncode == 2, r.stderr
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith(f"clearaudit: error: {option}: ")
+        assert "cannot be created" in lines[0] and "is a file, not a folder" in lines[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["blocker"]
+
+
+def test_unwritable_folders_are_named_with_the_reason(tmp_path, monkeypatch):
+    # read-only file systems and missing permissions (simulated: the tests may run as root,
+    # for whom permission bits do not apply, and cannot mount a read-only file system)
+    import clearaudit.pipeline as pipeline
+    from clearaudit.errors import InputError
+
+    target = tmp_path / "not" / "yet"
+    pipeline._refuse_unwritable(target, "--out")  # nothing made, nothing refused
+    assert not (tmp_path / "not").exists()
+    monkeypatch.setattr(pipeline.os, "access", lambda *a, **k: False)
+    with pytest.raises(InputError, match=r"cannot write in .* \(no permission to write\)"):
+        pipeline._refuse_unwritable(target, "--out")
+    monkeypatch.setattr(pipeline, "_read_only", lambda folder: True)
+    with pytest.raises(InputError) as err:
+        pipeline._refuse_unwritable(target, "--work-dir")
+    assert err.value.source == "--work-dir"
+    assert err.value.problem == f"cannot write in {tmp_path} (read-only file system)"
