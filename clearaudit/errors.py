@@ -73,4 +73,3 @@ def is_disk_full(exc: BaseException) -> bool:
         exc = exc.__cause__ or exc.__context__
         seen += 1
     return False
-

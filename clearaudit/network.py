@@ -305,10 +305,10 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
     from .distributed import check_engine
     from .pipeline import (
         AuditOptions,
-        _refuse_unwritable,
         atomic_output_dir,
         package_versions,
         refuse_out_over_inputs,
+        refuse_unwritable,
         run_audit,
     )
 
@@ -319,9 +319,9 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
     refuse_out_over_inputs(out, [manifest.path] + [p for line in manifest.lines for p in
                                                    (*line.clouds, line.line_file, line.structures)
                                                    if p is not None])
-    _refuse_unwritable(out.absolute().parent, "--out")
+    refuse_unwritable(out.absolute().parent, "--out")
     if work_dir is not None:
-        _refuse_unwritable(Path(work_dir).absolute(), "--work-dir")
+        refuse_unwritable(Path(work_dir).absolute(), "--work-dir")
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     cluster = None
     rows: list[dict[str, Any]] = []

@@ -261,7 +261,7 @@ def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):
             cluster.close()
 
 
-def _refuse_unwritable(folder: Path, option: str) -> None:
+def refuse_unwritable(folder: Path, option: str) -> None:
     """Raise :class:`InputError` naming ``option`` when ``folder`` (or, where it does not exist
     yet, the nearest folder above it, in which it would be made) cannot take new files: a
     read-only file system, missing permission, or a file in the way. Nothing is created."""
@@ -312,9 +312,9 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
         rules = load_rule_set(config.line.rule_set, config.clearance,
                               base_dir=config.source.parent if config.source else None)
         # the output folder's and the work folder's places must take files (before any work)
-        _refuse_unwritable(Path(options.out).absolute().parent, "--out")
+        refuse_unwritable(Path(options.out).absolute().parent, "--out")
         if options.work_dir:
-            _refuse_unwritable(Path(options.work_dir).absolute(), "--work-dir")
+            refuse_unwritable(Path(options.work_dir).absolute(), "--work-dir")
         refuse_out_over_inputs(options.out, [*paths, *([config.source] if config.source else []),
                                              *([config.structures_file]
                                                if config.structures_file else [])])

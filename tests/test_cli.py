@@ -161,13 +161,13 @@ def test_unwritable_folders_are_named_with_the_reason(tmp_path, monkeypatch):
     from clearaudit.errors import InputError
 
     target = tmp_path / "not" / "yet"
-    pipeline._refuse_unwritable(target, "--out")  # nothing made, nothing refused
+    pipeline.refuse_unwritable(target, "--out")  # nothing made, nothing refused
     assert not (tmp_path / "not").exists()
     monkeypatch.setattr(pipeline.os, "access", lambda *a, **k: False)
     with pytest.raises(InputError, match=r"cannot write in .* \(no permission to write\)"):
-        pipeline._refuse_unwritable(target, "--out")
+        pipeline.refuse_unwritable(target, "--out")
     monkeypatch.setattr(pipeline, "_read_only", lambda folder: True)
     with pytest.raises(InputError) as err:
-        pipeline._refuse_unwritable(target, "--work-dir")
+        pipeline.refuse_unwritable(target, "--work-dir")
     assert err.value.source == "--work-dir"
     assert err.value.problem == f"cannot write in {tmp_path} (read-only file system)"

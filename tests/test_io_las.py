@@ -523,6 +523,18 @@ def test_points_beyond_the_header_bounds(tmp_path, suffix):
         problem = err.value.problem
         assert "beyond the bounds in its header" in problem and f"point {first}," in problem
         assert f"x = {x[first]:.3f}" in problem and "corrupt" in problem
+    # beyond on two axes: the first point that is beyond on either is named
+    y = np.asarray(las.y)
+    cut_y = float(np.quantile(y, 0.5))
+    _set_header_bounds(path, mins, [cut, cut_y, maxs[2]])
+    over_x = np.flatnonzero(x > cut + HEADER_BOUNDS_SLACK)
+    over_y = np.flatnonzero(y > cut_y + HEADER_BOUNDS_SLACK)
+    first = int(min(over_x[0], over_y[0]))
+    axis = "x" if over_x[0] <= over_y[0] else "y"
+    value = (x if axis == "x" else y)[first]
+    with pytest.raises(InputError) as err:
+        read_cloud(path, crs="EPSG:32617")
+    assert f"point {first}, {axis} = {value:.3f}" in err.value.problem
 
 
 def test_empty_cloud(tmp_path):

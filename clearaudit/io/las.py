@@ -379,17 +379,20 @@ class _HeaderBox:
                 lo[axis], hi[axis] = records[name].min(), records[name].max()
         if (lo >= self.lo).all() and (hi <= self.hi).all():
             return
+        # the chunk's first point beyond the bounds, and the first of its axes that is
+        firsts = []
         for axis, name in enumerate("XYZ"):
-            if lo[axis] >= self.lo[axis] and hi[axis] <= self.hi[axis]:
-                continue
-            ints = np.asarray(records[name])
-            i = int(np.argmax((ints < self.lo[axis]) | (ints > self.hi[axis])))
-            value = float(ints[i]) * self.scales[axis] + self.offsets[axis]
-            label = "xyz"[axis]
-            raise InputError(path, f"has points beyond the bounds in its header (the first: "
-                                   f"point {first + i}, {label} = {value:.3f}; header {label} "
-                                   f"{self.mins[axis]:.3f} to {self.maxs[axis]:.3f}): the file is "
-                                   f"corrupt, or its header's bounds are wrong")
+            if lo[axis] < self.lo[axis] or hi[axis] > self.hi[axis]:
+                ints = np.asarray(records[name])
+                beyond = (ints < self.lo[axis]) | (ints > self.hi[axis])
+                firsts.append((int(np.argmax(beyond)), axis, ints))
+        i, axis, ints = min(firsts, key=lambda f: (f[0], f[1]))
+        value = float(ints[i]) * self.scales[axis] + self.offsets[axis]
+        label = "xyz"[axis]
+        raise InputError(path, f"has points beyond the bounds in its header (the first: "
+                               f"point {first + i}, {label} = {value:.3f}; header {label} "
+                               f"{self.mins[axis]:.3f} to {self.maxs[axis]:.3f}): the file is "
+                               f"corrupt, or its header's bounds are wrong")
 
 
 #: How far beyond its header's bounds a point may lie before the file is refused, in the
