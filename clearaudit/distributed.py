@@ -249,6 +249,15 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
         release_free_memory()
 
 
+def _cluster_failure(exc: BaseException) -> bool:
+    """Whether ``exc`` comes from the Dask cluster itself, not from a task's own code."""
+    import asyncio
+
+    module = type(exc).__module__.split(".")[0]
+    return (module in ("distributed", "tornado")
+            or isinstance(exc, asyncio.CancelledError | asyncio.TimeoutError | ConnectionError))
+
+
 class _TaskFailure:
     """A task's expected error, carried back to the driver as its result (see :func:`_task`)."""
 
@@ -316,6 +325,7 @@ class DaskEngine(Engine):
 
     def __init__(self, client: Any, on_done: Callable[[], None] | None = None):
         self.client = client
+        self.address = getattr(getattr(client, "scheduler", None), "address", None)
         self.n_workers = len(client.scheduler_info().get("workers", {})) or 1
         self._on_done = on_done
         self._final_memory: dict[str, float] | None = None
@@ -337,14 +347,33 @@ class DaskEngine(Engine):
                                      priority=len(order) - rank)
             futures[fut] = k
         try:
-            for fut in as_completed(futures, loop=self.client.loop):
-                result = fut.result()
-                if isinstance(result, _TaskFailure):
-                    raise result.exc
-                yield futures[fut], result
+            with self._cluster_failures():
+                for fut in as_completed(futures, loop=self.client.loop):
+                    result = fut.result()
+                    if isinstance(result, _TaskFailure):
+                        raise result.exc
+                    yield futures[fut], result
         finally:
             for fut in futures:
                 fut.release()
+
+    @contextmanager
+    def _cluster_failures(self) -> Iterator[None]:
+        """Turn the cluster's own failures (the scheduler lost, a task cancelled by it, a task
+        that killed its workers again and again) into one :class:`EngineError`; the tasks'
+        errors pass unchanged."""
+        from .errors import ClearauditError, EngineError
+
+        try:
+            yield
+        except (ClearauditError, KeyboardInterrupt, SystemExit, GeneratorExit):
+            raise
+        except BaseException as exc:  # distributed's cancellations are asyncio.CancelledError
+            if not _cluster_failure(exc):
+                raise
+            text = str(exc).strip().splitlines()[0][:200] if str(exc).strip() else ""
+            raise EngineError(self.address, f"{type(exc).__name__}: {text}".rstrip(": ")
+                              ) from exc
 
     def check_access(self, inputs: Sequence[Path], work: Path) -> None:
         """Raise :class:`InputError` unless every worker connected now can read ``inputs``
@@ -371,7 +400,8 @@ class DaskEngine(Engine):
     def share(self, value: Any) -> Any:
         if self._final_memory is not None:
             raise RuntimeError("the Dask engine was finished; nothing more can be shared")
-        [future] = self.client.scatter([value], broadcast=True, hash=False)
+        with self._cluster_failures():
+            [future] = self.client.scatter([value], broadcast=True, hash=False)
         self._shared.append(future)
         return future
 
@@ -598,18 +628,33 @@ def engine_for(workers: int = 0, scheduler: str | None = None,
     if not workers and not scheduler:
         yield InProcessEngine(threads)
         return
-    if scheduler:
-        client = _connect(str(scheduler))
-        try:
-            yield DaskEngine(client)
-        finally:
-            client.close()
-        return
-    if started is not None:
-        yield DaskEngine(started.client(), on_done=started.close_soon)
-        return
-    with LocalClusterStart(int(workers)) as cluster:
-        yield DaskEngine(cluster.client(), on_done=cluster.close_soon)
+    with _quiet_client():
+        if scheduler:
+            client = _connect(str(scheduler))
+            try:
+                yield DaskEngine(client)
+            finally:
+                client.close()
+            return
+        if started is not None:
+            yield DaskEngine(started.client(), on_done=started.close_soon)
+            return
+        with LocalClusterStart(int(workers)) as cluster:
+            yield DaskEngine(cluster.client(), on_done=cluster.close_soon)
+
+
+@contextmanager
+def _quiet_client() -> Iterator[None]:
+    """The Dask client's own log messages kept off the console while a run uses it: its
+    failures reach the user as the run's one-line error (:class:`EngineError`), and a lost
+    scheduler also had it print "Failed to reconnect to scheduler" beside that line."""
+    log = logging.getLogger("distributed.client")
+    level = log.level
+    log.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        log.setLevel(level)
 
 
 __all__ = ["DaskEngine", "Engine", "InProcessEngine", "LocalClusterStart", "check_engine",

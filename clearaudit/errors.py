@@ -73,3 +73,18 @@ def is_disk_full(exc: BaseException) -> bool:
         exc = exc.__cause__ or exc.__context__
         seen += 1
     return False
+
+
+class EngineError(ClearauditError):
+    """The Dask cluster failed under a run (its scheduler lost, a task that kept killing its
+    workers): the command line prints one line and exits with code 1; nothing is written."""
+
+    def __init__(self, address: str | None, problem: str):
+        self.address = address
+        self.problem = problem
+        where = f"the Dask cluster at {address}" if address else "the Dask cluster"
+        super().__init__(f"{where} failed while the audit ran ({problem}); nothing was written")
+
+    def __reduce__(self):
+        return (type(self), (self.address, self.problem))
+

@@ -443,10 +443,11 @@ def test_errors_survive_pickling():
     # back to the driver): the same class, file or folders, and message
     import pickle
 
-    from clearaudit.errors import StageError, StorageError
+    from clearaudit.errors import EngineError, StageError, StorageError
 
     for exc in (InputError("a.laz", "is truncated or corrupt"), InputError(None, "no input"),
-                StageError("model", "no spans"), StorageError(["/tmp", "/w"], "no space left")):
+                StageError("model", "no spans"), StorageError(["/tmp", "/w"], "no space left"),
+                EngineError("tcp://h:8786", "KilledWorker: x")):
         back = pickle.loads(pickle.dumps(exc))
         assert type(back) is type(exc) and str(back) == str(exc)
         assert back.problem == exc.problem
@@ -520,3 +521,28 @@ def test_a_workers_input_error_reaches_the_driver_quietly(capfd):
     assert err.value.problem == "is truncated or corrupt"
     assert err.value.source.startswith("tile")
     assert "Compute Failed" not in capfd.readouterr().err
+
+
+def _die(k):
+    import os
+
+    os._exit(3)  # the worker process dies (as if the system killed it for memory)
+
+
+def test_a_failing_cluster_is_one_engine_error(capfd):
+    # a task that kills its worker (Dask then gives up on it: KilledWorker) ends the run with
+    # one EngineError naming the cluster, and the tasks' own errors are not taken for it
+    import dask
+
+    from clearaudit.distributed import _cluster_failure, engine_for
+    from clearaudit.errors import EngineError
+
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
+        with engine_for(workers=1) as engine:
+            with pytest.raises(EngineError) as err:
+                list(engine.run([(_die, (0,), {})]))
+    assert "KilledWorker" in err.value.problem and "nothing was written" in str(err.value)
+    assert str(err.value).startswith("the Dask cluster at tcp://")
+    assert "Traceback" not in capfd.readouterr().err
+    assert not _cluster_failure(ValueError("a task's own error"))
+    assert not _cluster_failure(InputError("a.laz", "is truncated or corrupt"))
