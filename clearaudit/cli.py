@@ -300,6 +300,12 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("clearaudit: interrupted", file=sys.stderr)
         return 130
+    except MemoryError:
+        # the partial output folder and the work folder are gone already (as for any error)
+        print("clearaudit: error: out of memory; nothing was written. Run it in tiles "
+              "(--tiled) or with smaller tiles (--tile-points), or on a Dask cluster "
+              "(--workers, --scheduler)", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -171,3 +171,22 @@ def test_unwritable_folders_are_named_with_the_reason(tmp_path, monkeypatch):
         pipeline.refuse_unwritable(target, "--work-dir")
     assert err.value.source == "--work-dir"
     assert err.value.problem == f"cannot write in {tmp_path} (read-only file system)"
+
+
+def test_out_of_memory_is_one_line_and_leaves_nothing(tmp_path, monkeypatch, capsys):
+    # a tile that runs out of memory (simulated): one line with what to try, exit code 1, no
+    # output folder, no partial or work folder left beside it
+    import clearaudit.tiling as tiling
+
+    def no_memory(*args, **kwargs):
+        raise MemoryError
+
+    monkeypatch.setattr(tiling, "classify_tile", no_memory)
+    out = tmp_path / "o"
+    assert main(["audit", str(SAMPLE / "tarnwick_velloran_230kv.laz"), "--line",
+                 str(SAMPLE / "tarnwick_velloran_230kv.line.toml"), "--out", str(out),
+                 "--tiled", "--no-report"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("clearaudit: error: out of memory")
+    assert "--tiled" in err[0] and "--tile-points" in err[0]
+    assert list(tmp_path.iterdir()) == []
