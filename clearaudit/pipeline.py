@@ -957,8 +957,44 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     background.stop()  # on an error: stop it before the work folder goes
             _finish_record_and_report(tmp, record, options)
     finally:
-        shutil.rmtree(work, ignore_errors=True)
+        remove_settled(work)
     return summary
+
+
+#: How long a failed run keeps removing its work folder while tasks still running on a Dask
+#: cluster write into it. [s]
+WORK_REMOVAL_WAIT_S = 15.0
+
+
+def remove_settled(folder: Path, wait_s: float = WORK_REMOVAL_WAIT_S) -> bool:
+    """Remove ``folder`` and everything in it; returns whether it is gone.
+
+    After a failed run on a Dask cluster, tasks already running go on (a worker cannot be
+    interrupted) and may still add files while the folder is being removed, so that one pass
+    leaves it behind (70 MB of cell buckets after a truncated input on a local cluster). The
+    folder is renamed first, so tasks find no folder under its name (they make folders one
+    level at a time under it, never the folder itself, and fail instead); the renamed tree
+    is removed, again until it stays gone or ``wait_s`` has passed (a task may still write
+    to a file it holds open).
+    """
+    deadline = time.monotonic() + max(float(wait_s), 0.0)
+    target = folder
+    if folder.exists():
+        # renamed first (one atomic step): a task's paths under the old name then lead
+        # nowhere, so it can no longer add entries while the tree is removed
+        moved = folder.with_name(folder.name + ".removing")
+        try:
+            os.replace(folder, moved)
+            target = moved
+        except OSError:
+            pass
+    while True:
+        shutil.rmtree(target, ignore_errors=True)
+        if not target.exists() and not folder.exists():
+            return True
+        if time.monotonic() >= deadline:
+            return False
+        time.sleep(0.1)
 
 
 def _hash_files(paths: Iterable[Path]) -> list[str]:

@@ -546,3 +546,56 @@ def test_a_failing_cluster_is_one_engine_error(capfd):
     assert "Traceback" not in capfd.readouterr().err
     assert not _cluster_failure(ValueError("a task's own error"))
     assert not _cluster_failure(InputError("a.laz", "is truncated or corrupt"))
+
+
+def test_work_folder_removal_outlasts_tasks_still_writing(tmp_path):
+    # a task still running after a failed run keeps adding cell files while the driver removes
+    # the work folder (as Dask workers did after a truncated input: 70 MB left behind); the
+    # removal is repeated until the folder stays gone, and the task then fails to write
+    import threading
+
+    from clearaudit.pipeline import remove_settled
+
+    work = tmp_path / "work"
+    (work / "cells").mkdir(parents=True)
+    started, failed = threading.Event(), []
+
+    def straggler():
+        k = 0
+        while True:
+            try:
+                cell = work / "cells" / f"c{k % 50}"
+                cell.mkdir(exist_ok=True)  # one level at a time, as split_part does
+                with open(cell / f"p{k:06d}.bin", "ab") as fh:
+                    fh.write(b"x" * 4096)
+            except FileNotFoundError:
+                failed.append(k)
+                return
+            k += 1
+            started.set()
+
+    t = threading.Thread(target=straggler)
+    t.start()
+    started.wait(5)
+    assert remove_settled(work, wait_s=10.0)
+    t.join(10)
+    assert failed and not work.exists()
+    assert remove_settled(tmp_path / "never-made", wait_s=0.0)
+
+
+def test_a_truncated_input_on_dask_leaves_no_work_folder(corridor, tmp_path):
+    # the error of one split task ends the run while the other tasks still write: one
+    # InputError naming the file, and neither the output nor the work folder left behind
+    import shutil
+
+    bad = tmp_path / "in" / corridor["cloud"].name
+    bad.parent.mkdir()
+    shutil.copy(corridor["cloud"], bad)
+    with open(bad, "r+b") as fh:
+        fh.truncate(int(bad.stat().st_size * 0.6))
+    work = tmp_path / "work"
+    work.mkdir()
+    with pytest.raises(InputError) as err:
+        _run({**corridor, "cloud": bad}, tmp_path / "out", workers=2, work_dir=work)
+    assert err.value.source == str(bad.absolute()) or err.value.source == str(bad)
+    assert list(work.iterdir()) == [] and not (tmp_path / "out").exists()
