@@ -87,4 +87,3 @@ class EngineError(ClearauditError):
 
     def __reduce__(self):
         return (type(self), (self.address, self.problem))
-

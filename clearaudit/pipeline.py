@@ -238,11 +238,10 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
     except Exception as exc:
         if not is_disk_full(exc):
             raise
-        out = Path(options.out).absolute()
-        folders = [out.parent]
-        if options.work_dir and Path(options.work_dir).absolute() != out.parent:
-            folders.append(Path(options.work_dir).absolute())
-        raise StorageError(folders, "no space left on the device") from exc
+        out_parent = Path(options.out).absolute().parent
+        work = Path(options.work_dir).absolute() if options.work_dir else out_parent
+        raise StorageError(list(dict.fromkeys((out_parent, work))),
+                           "no space left on the device") from exc
 
 
 def _run_audit(options: AuditOptions, console=None, show_summary: bool = True):

@@ -718,6 +718,12 @@ def _tile_file(work: Path, tile_id: str, what: str) -> Path:
     return work / "tiles" / f"{tile_id}.{what}"
 
 
+def _make_tiles_folder(work: Path) -> None:
+    """The work folder's ``tiles`` folder, made if missing, never the work folder itself (a
+    task running after its run failed must not bring back a folder the driver removed)."""
+    (work / "tiles").mkdir(exist_ok=True)
+
+
 @dataclass
 class TileContext:
     """What a tile task needs besides its spec (picklable, small)."""
@@ -789,7 +795,7 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
         full_cls = result.classification
         ground_model, timings, info = result.ground, result.timings_s, result.info
         used = result.options
-    (work / "tiles").mkdir(exist_ok=True)  # not the work folder itself (see split_part)
+    _make_tiles_folder(work)
     np.save(_tile_file(work, tile.id, "cls.npy"), cls)
     np.save(_tile_file(work, tile.id, "hag.npy"), hag.astype(np.float32))
     np.save(_tile_file(work, tile.id, "key.npy"), record_keys(own))
@@ -1072,7 +1078,7 @@ def write_cell_offsets(work: str | Path, tile: TileSpec) -> None:
     for cell in tile.cells:
         offsets[cell] = at
         at += sum(os.path.getsize(f) // RECORD.itemsize for f in _cell_files(Path(work), cell))
-    (Path(work) / "tiles").mkdir(exist_ok=True)  # not the work folder itself (see split_part)
+    _make_tiles_folder(Path(work))
     with open(_tile_file(Path(work), tile.id, "cells.pkl"), "wb") as fh:
         pickle.dump(offsets, fh)
 

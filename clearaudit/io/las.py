@@ -362,6 +362,11 @@ class _HeaderBox:
         self.hi = np.ceil((maxs - offsets) / scales + slack)
         self.mins, self.maxs, self.scales, self.offsets = mins, maxs, scales, offsets
 
+    def holds(self, lo: np.ndarray, hi: np.ndarray) -> bool:
+        """Whether integer record bounds ``lo``, ``hi`` (X, Y, Z) lie within the header's
+        bounds and the slack (always, for a header with no bounds)."""
+        return not self.active or bool((lo >= self.lo).all() and (hi <= self.hi).all())
+
     def check(self, path: Path, chunk: Any, first: int) -> None:
         """Raise :class:`InputError` naming ``path`` if a point of ``chunk`` (whose first point
         is point ``first`` of the file) lies beyond the header's bounds."""
@@ -377,7 +382,7 @@ class _HeaderBox:
         else:
             for axis, name in enumerate("XYZ"):
                 lo[axis], hi[axis] = records[name].min(), records[name].max()
-        if (lo >= self.lo).all() and (hi <= self.hi).all():
+        if self.holds(lo, hi):
             return
         # the chunk's first point beyond the bounds, and the first of its axes that is
         firsts = []
@@ -1389,8 +1394,7 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
             "header_bounds_max": [float(v) for v in header.maxs],
             # points more than HEADER_BOUNDS_SLACK beyond the header's bounds: an audit
             # refuses the file (damage that still decodes, or a wrong header)
-            "beyond_header_bounds": bool(n and box.active
-                                         and ((lo < box.lo).any() or (hi > box.hi).any())),
+            "beyond_header_bounds": bool(n) and not box.holds(lo, hi),
             "scales": scales.tolist(),
             "offsets": offsets.tolist(),
             **crs_label(the_crs),
