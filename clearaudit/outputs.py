@@ -382,7 +382,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
             "not_fitted": sum(r.get("status") == "not_fitted" for r in span_rows),
             "violations": violations, "hazard_trees": hazards,
             "survey_temperature": audit.survey_temperature,
-            "class_counts": cls.counts}
+            "class_counts": cls.counts,
+            "repeated_points": getattr(record, "extra", {}).get("repeated_points")}
 
 
 def print_summary(console: Any, summary: dict, out: Path, units: str = "metric") -> None:
@@ -400,6 +401,10 @@ def print_summary(console: Any, summary: dict, out: Path, units: str = "metric")
     for code, n in sorted(summary["class_counts"].items()):
         table.add_row(f"{code} {CLASS_NAMES.get(int(code), '')}", f"{n:,}")
     console.print(table)
+    repeated = summary.get("repeated_points") or {}
+    if repeated.get("points"):
+        console.print(f"{repeated['points']:,} points repeated in overlapping input files were "
+                      "counted once (classified.laz gives each copy its twin's class).")
     st = summary["survey_temperature"]
     console.print(f"[bold]{summary['line']}[/]: {summary['spans']} spans, {summary['wires']} wires "
                   f"({summary['fitted']} fitted, {summary['partial']} partial, "

@@ -375,6 +375,7 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                    structures_rows: list[dict] | None, conductors: dict, rules: Any,
                    total_points: int, scratch: Path, console=None, show_summary: bool = True):
     """The in-memory run: read every (corridor) point, classify, model, audit, write."""
+    from .duplicates import cloud_copies, compare_step_m
     from .io.las import corridor_mask, inputs_crs, plan_record_scratch, read_cloud
 
     with atomic_output_dir(options.out, options.overwrite) as tmp, _progress_bar(console) as bar:
@@ -395,6 +396,28 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                 entry.update({"sha256": info.sha256, "point_count": info.point_count,
                               "point_format": info.point_format, "las_version": info.version,
                               "crs": info.crs_origin})
+            # points delivered twice (tiles with overlapping buffers) counted once; the
+            # whole cloud (``read``) kept for classified.laz, where a copy gets its twin's
+            # results (``twin_of``: every point's place in the cloud analysed)
+            read, twin_of = cloud, None
+            step = compare_step_m([np.asarray(info.scales) * cloud.unit_m
+                                   for info in cloud.sources])
+            copy, twin, n_pairs = cloud_copies(cloud.xyz, cloud.source_id, step)
+            record.extra["repeated_points"] = {"files_overlapping": n_pairs,
+                                               "points": int(len(copy)), "by_file": {},
+                                               "compare_step_m": step}
+            if len(copy):
+                keep = np.ones(cloud.n_points, dtype=bool)
+                keep[copy] = False
+                twin_of = np.cumsum(keep) - 1
+                twin_of[copy] = twin_of[twin]
+                files, counts = np.unique(cloud.source_id[copy], return_counts=True)
+                record.extra["repeated_points"]["by_file"] = {
+                    cloud.sources[int(f)].path: int(c)
+                    for f, c in zip(files, counts, strict=True)}
+                cloud = cloud.subset(keep)
+                del keep
+            del copy, twin
             record.extra["points_read"] = cloud.n_points
             record.extra["crs"] = None if cloud.crs is None else cloud.crs.to_string()
             record.extra["horizontal_unit_m"] = cloud.horizontal_unit_m
@@ -446,14 +469,20 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
         # inputs' compressed layers are copied (little of the GIL needed) it is written on a
         # thread of its own while the audit runs (as in the tiled run)
         background: _Background | None = None
-        if records is not None and records.layers:
+        copy_writer = None
+        if (records is not None and records.layers) or twin_of is not None:
             from .io.las import write_classified
 
-            background = _Background(partial(
-                write_classified, cloud, tmp / "classified.laz", cls.classification.copy(),
-                {"height_above_ground": (cls.height_above_ground_m.astype(np.float32),
-                                         "height above ground [m]")},
-                records=records, report=record.extra.get("classified_copy")))
+            codes = cls.classification.copy()
+            hag = cls.height_above_ground_m.astype(np.float32)
+            if twin_of is not None:  # every point read, a copy with its twin's results
+                codes, hag = codes[twin_of], hag[twin_of]
+            copy_writer = partial(write_classified, read, classification=codes,
+                                  extra_dims={"height_above_ground": (
+                                      hag, "height above ground [m]")},
+                                  records=records, report=record.extra.get("classified_copy"))
+        if records is not None and records.layers:
+            background = _Background(partial(copy_writer, path=tmp / "classified.laz"))
 
         def classified_beside(path: Path) -> None:
             _wait_for_copy(background, record)
@@ -483,8 +512,9 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                 summary = write_outputs(tmp, cloud, cls, model, audit, config, conductors, rules,
                                         record, tolerance_rows=tolerance_rows,
                                         progress=_stage_progress(bar, task), records=records,
-                                        classified_writer=(None if background is None
-                                                           else classified_beside))
+                                        classified_writer=(
+                                            classified_beside if background is not None
+                                            else copy_writer))
         finally:
             if background is not None:
                 background.stop()  # an error: let it finish before the folders go
@@ -494,6 +524,25 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
 
         print_summary(console, summary, options.out, options.units)
     return options.out
+
+
+#: Points of repeated-point search per task (:func:`clearaudit.tiling.drop_later_copies`).
+COPY_TASK_POINTS = 2_000_000
+
+
+def _cell_groups(shared: list[tuple[int, int]], counts: dict[tuple[int, int], int]
+                 ) -> list[list[tuple[int, int]]]:
+    """The cells to search for repeated points, in groups of about
+    :data:`COPY_TASK_POINTS` points (one task each)."""
+    groups: list[list[tuple[int, int]]] = []
+    size = COPY_TASK_POINTS
+    for cell in shared:
+        if size >= COPY_TASK_POINTS:
+            groups.append([])
+            size = 0
+        groups[-1].append(cell)
+        size += counts[cell]
+    return groups
 
 
 def _reserve_bytes(paths: list[Path], total_points: int, tiled: bool) -> int:
@@ -630,6 +679,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
     from .classify import ClassifyOptions
     from .cloud import Cloud
     from .distributed import engine_for
+    from .duplicates import BOX_SLACK_M, compare_step_m, overlapping_files
     from .io.las import plan_record_scratch, read_setup, write_classified_stream
     from .threads import inner_threads
     from .tiling import (
@@ -638,7 +688,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
         TileContext,
         TileResults,
         audit_tile,
+        cells_of_several_files,
         classify_tile,
+        drop_later_copies,
         kept_heap,
         plan_parts,
         plan_tiles,
@@ -727,6 +779,32 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                         f"{paths[0]} (+{len(paths) - 1} more files)"
                     raise InputError(label, "contains no points inside the area kept "
                                             f"(0 of {decoded} points kept)")
+                # points delivered twice (tiles with overlapping buffers) counted once: only
+                # where the files' header boxes meet, in the cells holding points of two
+                # files or more, before the tiles are planned
+                pairs = overlapping_files(setup.file_min, setup.file_max, slack_m=BOX_SLACK_M)
+                step = compare_step_m([np.asarray(info.scales) * setup.unit_m
+                                       for info in setup.sources])
+                copies = {"files_overlapping": len(pairs), "points": 0, "by_file": {},
+                          "compare_step_m": step}
+                cells_with_copies: set[tuple[int, int]] = set()
+                if pairs:
+                    shared = cells_of_several_files(work, sorted(cells),
+                                                    [p.file_id for p in parts])
+                    copies["cells_compared"] = len(shared)
+                    copies["seconds"] = 0.0
+                    for _, res in engine.run([(drop_later_copies, (str(work), group, step), {})
+                                              for group in _cell_groups(shared, cells)]):
+                        copies["seconds"] = round(copies["seconds"] + res["seconds"], 3)
+                        for c, n in res["dropped"].items():
+                            cells[c] -= n
+                            kept -= n
+                            copies["points"] += n
+                            cells_with_copies.add(c)
+                        for fid, n in res["by_file"].items():
+                            name = str(setup.files[fid])
+                            copies["by_file"][name] = copies["by_file"].get(name, 0) + n
+                record.extra["repeated_points"] = copies
                 tile_points = tile_target(kept, options.tile_points)
                 tiles = plan_tiles(cells, grid, tile_points, options.tile_overlap_m)
                 # a tile's work follows the points it reads (owned and context): the tasks of
@@ -881,7 +959,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
             # held little) it is written on a thread of its own while the audit runs, and the
             # write stage waits for it. Re-compressing every point holds the GIL throughout:
             # then it is written in the write stage (overlapping it gained nothing).
-            lookup = TileResults(work, tiles)
+            lookup = TileResults(work, tiles, cells_with_copies)
             max_code = max(counts) if counts else 0
             write_task = bar.add_task("write", total=setup.total_points, rate="")
             write_progress = _stage_progress(bar, write_task)

@@ -41,6 +41,7 @@ import pickle
 import platform
 import resource
 import time
+from collections.abc import Iterable, Sequence
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -724,6 +725,76 @@ def _make_tiles_folder(work: Path) -> None:
     (work / "tiles").mkdir(exist_ok=True)
 
 
+# =============================================================================== copies
+def cells_of_several_files(work: str | Path, cells: Iterable[tuple[int, int]],
+                           part_files: Sequence[int]) -> list[tuple[int, int]]:
+    """The cells holding points of two input files or more (``part_files``: the input file
+    of every split part, by part number)."""
+    work = Path(work)
+    return [cell for cell in cells
+            if len({part_files[int(f.stem[1:])] for f in _cell_files(work, cell)}) > 1]
+
+
+def drop_later_copies(work: str | Path, cells: Sequence[tuple[int, int]], step_m: float
+                      ) -> dict[str, Any]:
+    """Take out of these cells the points that repeat a point of an earlier input file
+    (tiles delivered with overlapping buffers, see :mod:`clearaudit.duplicates`).
+
+    A point and its repeat lie in one cell, so cells are independent: the tasks of a run get
+    disjoint cells. Runs before the tiles are planned. Each cell's copies are kept in its
+    ``copies.npy`` (rows: copy key, ascending; the twin's position among the cell's records
+    left), for the classified copy (:class:`TileResults`).
+
+    Parameters
+    ----------
+    work
+        Work folder.
+    cells
+        The cells (each holding points of two files or more).
+    step_m
+        Coordinates are compared after rounding to this step. [m]
+
+    Returns
+    -------
+    dict
+        ``dropped`` {cell: points}, ``by_file`` {file id: points}, ``seconds``.
+    """
+    from .duplicates import later_copies
+
+    t0 = time.perf_counter()
+    work = Path(work)
+    dropped: dict[tuple[int, int], int] = {}
+    by_file: dict[int, int] = {}
+    for cell in cells:
+        files = _cell_files(work, cell)
+        rec = read_cells(work, (cell,))
+        key = record_keys(rec)
+        copy, twin = later_copies(record_xyz(rec), key >> KEY_SHIFT, step_m)
+        if len(copy) == 0:
+            continue
+        keep = np.ones(len(rec), dtype=bool)
+        keep[copy] = False
+        at = 0
+        for f in files:
+            m = os.path.getsize(f) // RECORD.itemsize
+            part = rec[at:at + m][keep[at:at + m]]
+            at += m
+            if len(part) == m:
+                continue
+            tmp = f.with_name(f.name + ".tmp")
+            with open(tmp, "wb") as fh:
+                fh.write(part)
+            os.replace(tmp, f)
+        place = np.cumsum(keep) - 1  # a kept record's position once the copies are out
+        table = np.stack([key[copy], place[twin]])  # copy keys ascend: positions ascend
+        np.save(_cell_dir(work, *cell) / "copies.npy", table)
+        dropped[cell] = len(copy)
+        per_file = np.bincount(key[copy] >> KEY_SHIFT)
+        for fid in np.flatnonzero(per_file).tolist():
+            by_file[fid] = by_file.get(fid, 0) + int(per_file[fid])
+    return {"dropped": dropped, "by_file": by_file, "seconds": time.perf_counter() - t0}
+
+
 @dataclass
 class TileContext:
     """What a tile task needs besides its spec (picklable, small)."""
@@ -1095,9 +1166,12 @@ class TileResults:
     mapped, so the writer's memory does not grow with the survey.
     """
 
-    def __init__(self, work: str | Path, tiles: list[TileSpec]):
+    def __init__(self, work: str | Path, tiles: list[TileSpec],
+                 cells_with_copies: Iterable[tuple[int, int]] = ()):
         self.work = Path(work)
         self.parts: list[tuple[tuple[Path, ...], np.ndarray, int, int]] = []
+        self.copies: list[tuple[Path, tuple[Path, ...], int, int, int]] = []
+        cells_with_copies = set(cells_with_copies)
         for t in tiles:
             # the classes refined with the line model when that stage ran
             cls_name = "rcls.npy" if _tile_file(self.work, t.id, "rcls.npy").exists() \
@@ -1116,6 +1190,17 @@ class TileResults:
                 if not np.all(np.isin(falls, bounds)):
                     raise RuntimeError(f"tile {t.id}: its keys do not ascend within a cell")
                 self.parts.append((paths, runs, int(runs[:, 2].min()), int(runs[:, 3].max())))
+                # points left out as repeats of another file's points (drop_later_copies):
+                # their twin's results, found by the twin's place in the cell
+                repeats = [c for c in t.cells if c in cells_with_copies]
+                if repeats:
+                    offsets = _cell_offsets(self.work, t.id)
+                    for c in repeats:
+                        path = _cell_dir(self.work, *c) / "copies.npy"
+                        table = np.load(path, mmap_mode="r")
+                        self.copies.append((path, paths, offsets[c], int(table[0, 0]),
+                                            int(table[0, -1])))
+                        del table
             del key
 
     def values(self, file_id: int, start: int, stop: int):
@@ -1143,10 +1228,23 @@ class TileResults:
                     codes[at] = cls[a:b]
                     hag[at] = height[a:b]
             del key, cls, height  # unmapped here: their pages leave the resident set
+        for copies, paths, start, kmin, kmax in self.copies:
+            if kmax < lo or kmin >= hi:
+                continue
+            table = np.load(copies, mmap_mode="r")
+            a, b = (int(v) for v in np.searchsorted(table[0], [lo, hi]))
+            if b > a:
+                at = np.array(table[0, a:b]) - lo
+                twin = start + np.asarray(table[1, a:b])
+                has_new[at] = True
+                codes[at] = np.load(paths[1], mmap_mode="r")[twin]
+                hag[at] = np.load(paths[2], mmap_mode="r")[twin]
+            del table
         return has_new, codes, {"height_above_ground": hag}
 
 
 __all__ = ["Corridor", "Grid", "RECORD", "SplitPart", "TileContext", "TileResults", "TileSpec",
-           "audit_tile", "classify_tile", "peak_rss_mb", "plan_parts", "plan_tiles",
+           "audit_tile", "cells_of_several_files", "classify_tile", "drop_later_copies",
+           "peak_rss_mb", "plan_parts", "plan_tiles",
            "read_cells", "read_context", "refine_tile", "split_part", "tile_states",
            "write_cell_offsets", "write_model_labels"]

@@ -891,6 +891,8 @@ class ReadSetup:
     whole_files
         Files read in one range from their first point: LAZ files with variable-size chunks,
         in which lazrs 0.8 does not seek to the right point (see :func:`read_range`).
+    file_min, file_max
+        Each file's bounds from its header, in local metres, shape (n_files, 3). [m]
     """
 
     files: tuple[Path, ...]
@@ -903,6 +905,8 @@ class ReadSetup:
     header_min: np.ndarray
     header_max: np.ndarray
     whole_files: frozenset[int] = frozenset()
+    file_min: np.ndarray | None = None
+    file_max: np.ndarray | None = None
 
     @property
     def total_points(self) -> int:
@@ -949,8 +953,9 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
         label = str(files[0]) if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more files)"
         raise InputError(label, "contains no points")
     unit = np.array([h_unit, h_unit, v_unit])
-    lo = np.min([np.asarray(m.header.mins, dtype=np.float64) for m in metas], axis=0)
-    hi = np.max([np.asarray(m.header.maxs, dtype=np.float64) for m in metas], axis=0)
+    mins = np.array([np.asarray(m.header.mins, dtype=np.float64) for m in metas])
+    maxs = np.array([np.asarray(m.header.maxs, dtype=np.float64) for m in metas])
+    lo, hi = mins.min(axis=0), maxs.max(axis=0)
     sources = tuple(
         SourceInfo(path=str(m.path), version=str(m.header.version),
                    point_format=int(m.header.point_format.id), point_count=m.point_count,
@@ -965,7 +970,8 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
                      origin=origin_arr, sources=sources, header_min=(lo - origin_arr) * unit,
                      header_max=(hi - origin_arr) * unit,
                      whole_files=frozenset(i for i, m in enumerate(metas)
-                                           if variable_chunks(m.header)))
+                                           if variable_chunks(m.header)),
+                     file_min=(mins - origin_arr) * unit, file_max=(maxs - origin_arr) * unit)
 
 
 def variable_chunks(header: Any) -> bool:

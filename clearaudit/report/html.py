@@ -137,6 +137,16 @@ def _run_section(folder: OutputFolder, units: DisplayUnits) -> str:
             [[i.get("path", ""), i.get("sha256", ""), fmt_number(i.get("point_count")),
               _as_text(i.get("point_format", MISSING)), _as_text(i.get("crs") or MISSING)]
              for i in inputs], numeric={2}))
+    repeated = run.get("repeated_points") or {}
+    if repeated.get("points"):
+        files = "; ".join(f"{name}: {fmt_number(n)}"
+                          for name, n in (repeated.get("by_file") or {}).items())
+        parts.append(
+            f"<p>{esc(fmt_number(repeated['points']))} points of later input files repeat points "
+            f"of earlier files (overlapping tiles; coordinates compared to "
+            f"{esc(fmt_number(1000.0 * float(repeated.get('compare_step_m') or 0.0), 1))} mm) "
+            f"and were counted once; in classified.laz each copy has its twin's class "
+            f"({esc(files)}).</p>")
     options = run.get("options") or {}
     if options:
         # Plain options here; the line file and the rule set (long nested tables) are listed by
