@@ -85,14 +85,29 @@ def later_copies(xyz: np.ndarray, file_id: np.ndarray, step_m: float
     if n < 2 or file_id.min() == file_id.max():
         return none, none
     q = np.floor(xyz / float(step_m) + 0.5).astype(np.int64)
-    # by coordinates, then by input order (np.lexsort: the last key first; stable)
-    order = np.lexsort((q[:, 2], q[:, 1], q[:, 0]))
-    qs = q[order]
-    same = np.all(qs[1:] == qs[:-1], axis=1)
-    if not same.any():
-        return none, none
-    starts = np.flatnonzero(np.concatenate([[True], ~same]))
-    first = order[starts[np.cumsum(np.concatenate([[True], ~same])) - 1]]  # per sorted item
+    q -= q.min(axis=0)
+    bits = [int(v).bit_length() for v in q.max(axis=0)]
+    if sum(bits) <= 63:
+        # the three steps packed into one integer (a cell of the tiled run: 17 + 17 bits in
+        # plan and the heights): a sort of the values tells whether anything repeats at all
+        packed = (q[:, 0] << (bits[1] + bits[2])) | (q[:, 1] << bits[2]) | q[:, 2]
+        values = np.sort(packed)
+        if not np.any(values[1:] == values[:-1]):
+            return none, none
+        order = np.argsort(packed)  # not stable: each group's first point is found below
+        sorted_key = packed[order]
+        new = np.concatenate([[True], sorted_key[1:] != sorted_key[:-1]])
+        del packed, values, sorted_key
+    else:
+        order = np.lexsort((q[:, 2], q[:, 1], q[:, 0]))
+        qs = q[order]
+        new = np.concatenate([[True], np.any(qs[1:] != qs[:-1], axis=1)])
+        del qs
+        if new.all():
+            return none, none
+    starts = np.flatnonzero(new)
+    # each group's first point in input order (the least position), for each sorted item
+    first = np.minimum.reduceat(order, starts)[np.cumsum(new) - 1]
     later = np.flatnonzero(file_id[order] > file_id[first])
     copy, twin = order[later], first[later]
     arrange = np.argsort(copy, kind="stable")

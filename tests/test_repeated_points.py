@@ -35,9 +35,11 @@ def _reference_copies(xyz, file_id, step):
     return copy, twin[copy]
 
 
-def test_later_copies_match_numpy_unique():
+@pytest.mark.parametrize("stretch", [1.0, 1e6])  # one packed key; three keys (wide extent)
+def test_later_copies_match_numpy_unique(stretch):
     rng = np.random.default_rng(5)
     base = np.round(rng.uniform(0, 50, (4000, 3)), 3)
+    base[:, 0] = np.round(base[:, 0] * stretch, 3)
     # three files: the second repeats part of the first, the third part of both and itself
     files = [base[:2000], np.concatenate([base[1500:2500], base[1500:1600]]),
              np.concatenate([base[2400:3000], base[100:200], base[2400:2450]])]
