@@ -116,13 +116,14 @@ def decompress_seconds(path: Path) -> tuple[float, int, float]:
 
 def layers_seconds(path: Path) -> float:
     """Wall time for laspy + lazrs (parallel) to decode only the layers the audit reads of
-    every point (x/y with the returns, z, class; laspy's ``decompression_selection``): the
-    read floor of the run. [s]"""
+    every point (x/y with the returns, z, class, and the flags for the withheld flag; laspy's
+    ``decompression_selection``): the read floor of the run. [s]"""
     import laspy
     import numpy as np
 
     wanted = (laspy.DecompressionSelection.XY_RETURNS_CHANNEL | laspy.DecompressionSelection.Z
-              | laspy.DecompressionSelection.CLASSIFICATION)
+              | laspy.DecompressionSelection.CLASSIFICATION
+              | laspy.DecompressionSelection.FLAGS)
     t0 = time.perf_counter()
     for f in cloud_files(path):
         with laspy.open(str(f), decompression_selection=wanted) as reader:

@@ -50,6 +50,9 @@ def cmd_info(args: argparse.Namespace) -> int:
                           "(header: " + ", ".join(f"{v:.3f}" for v in d["header_bounds_min"])
                           + " to " + ", ".join(f"{v:.3f}" for v in d["header_bounds_max"])
                           + "): the file is corrupt or its header is wrong; an audit refuses it")
+        if d.get("withheld_points"):
+            table.add_row("withheld", f"{d['withheld_points']:,} points flagged withheld "
+                          "(an audit leaves them out)")
         hist = d.get("class_counts", {})
         table.add_row("classes", "\n".join(
             f"{int(c):>3} {CLASS_NAMES.get(int(c), 'user defined'):<38} {n:>12,}"

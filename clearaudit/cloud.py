@@ -63,6 +63,8 @@ class SourceInfo:
     crs_wkt: str | None
     crs_origin: str  # "file-wkt", "file-geotiff", "override", "none"
     sha256: str | None = None
+    #: points flagged withheld (not analysed) among those the read kept
+    withheld_points: int = 0
 
 
 @dataclass

@@ -383,7 +383,8 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
             "violations": violations, "hazard_trees": hazards,
             "survey_temperature": audit.survey_temperature,
             "class_counts": cls.counts,
-            "repeated_points": getattr(record, "extra", {}).get("repeated_points")}
+            "repeated_points": getattr(record, "extra", {}).get("repeated_points"),
+            "withheld_points": getattr(record, "extra", {}).get("withheld_points")}
 
 
 def print_summary(console: Any, summary: dict, out: Path, units: str = "metric") -> None:
@@ -401,6 +402,9 @@ def print_summary(console: Any, summary: dict, out: Path, units: str = "metric")
     for code, n in sorted(summary["class_counts"].items()):
         table.add_row(f"{code} {CLASS_NAMES.get(int(code), '')}", f"{n:,}")
     console.print(table)
+    if summary.get("withheld_points"):
+        console.print(f"{summary['withheld_points']:,} points flagged withheld in the input files "
+                      "were not analysed (classified.laz keeps them as they were).")
     repeated = summary.get("repeated_points") or {}
     if repeated.get("points"):
         console.print(f"{repeated['points']:,} points repeated in overlapping input files were "

@@ -395,7 +395,8 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
             for info, entry in zip(cloud.sources, record.inputs, strict=False):
                 entry.update({"sha256": info.sha256, "point_count": info.point_count,
                               "point_format": info.point_format, "las_version": info.version,
-                              "crs": info.crs_origin})
+                              "crs": info.crs_origin, "withheld_points": info.withheld_points})
+            record.extra["withheld_points"] = sum(i.withheld_points for i in cloud.sources)
             # points delivered twice (tiles with overlapping buffers) counted once; the
             # whole cloud (``read``) kept for classified.laz, where a copy gets its twin's
             # results (``twin_of``: every point's place in the cloud analysed)
@@ -760,25 +761,30 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 progress = _stage_progress(bar, task)
                 cells: dict[tuple[int, int], int] = {}
                 decoded = kept = 0
-                for _, res in engine.run([(split_part, (str(work), setup, p, grid, corridor),
+                withheld = [0] * len(setup.files)
+                for k, res in engine.run([(split_part, (str(work), setup, p, grid, corridor),
                                            keep_records) for p in parts]):
                     for c, n in res["cells"].items():
                         cells[c] = cells.get(c, 0) + n
                     decoded += res["decoded"]
                     kept += res["kept"]
+                    withheld[parts[k].file_id] += res["withheld"]
                     progress(decoded, setup.total_points)
                 setup = replace(setup, sources=tuple(
                     replace(info, sha256=digest)
                     for info, digest in zip(setup.sources, hashing.result(), strict=True)))
-                for info, rec_in in zip(setup.sources, record.inputs, strict=False):
+                for info, rec_in, n_withheld in zip(setup.sources, record.inputs, withheld,
+                                                    strict=False):
                     rec_in.update({"sha256": info.sha256, "point_count": info.point_count,
                                    "point_format": info.point_format, "las_version": info.version,
-                                   "crs": info.crs_origin})
+                                   "crs": info.crs_origin, "withheld_points": n_withheld})
+                record.extra["withheld_points"] = sum(withheld)
                 if kept == 0:
                     label = str(paths[0]) if len(paths) == 1 else \
                         f"{paths[0]} (+{len(paths) - 1} more files)"
+                    also = f"; {sum(withheld)} flagged withheld" if sum(withheld) else ""
                     raise InputError(label, "contains no points inside the area kept "
-                                            f"(0 of {decoded} points kept)")
+                                            f"(0 of {decoded} points kept{also})")
                 # points delivered twice (tiles with overlapping buffers) counted once: only
                 # where the files' header boxes meet, in the cells holding points of two
                 # files or more, before the tiles are planned

@@ -436,7 +436,8 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     Returns
     -------
     dict
-        ``cells`` {(i, j): points}, ``decoded``, ``kept``, ``seconds``, ``peak_rss_mb``.
+        ``cells`` {(i, j): points}, ``decoded``, ``kept``, ``withheld`` (points in the
+        corridor flagged withheld, not kept), ``seconds``, ``peak_rss_mb``.
     """
     t0 = time.perf_counter()
     work = Path(work)
@@ -446,6 +447,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     counts: dict[tuple[int, int], int] = {}
     buffered = 0
     decoded = kept = 0
+    tally: dict[str, int] = {}  # points flagged withheld, never kept (read_range)
 
     # the folders made one level at a time, never the work folder itself: a task still
     # running after its run was cancelled (a Dask worker's) must not bring back a work folder
@@ -464,7 +466,8 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     with (records.writer(part.file_id, part.start) if records is not None
           else nullcontext()) as sink:
         for xyz, cls, index, n in read_range(setup, part.file_id, part.start, part.stop,
-                                             keep=keep, chunk_size=chunk_size, records_to=sink):
+                                             keep=keep, chunk_size=chunk_size, records_to=sink,
+                                             tally=tally):
             decoded += n
             if len(xyz) == 0:
                 continue
@@ -481,6 +484,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
                 buffered = 0
     flush()
     return {"cells": counts, "decoded": decoded, "kept": kept,
+            "withheld": tally.get("withheld", 0),
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
 
 

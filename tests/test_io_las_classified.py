@@ -190,7 +190,7 @@ def test_raw_copy_equals_copy_by_name(tmp_path, monkeypatch, fmt):
     rng = np.random.default_rng(fmt)
     n = 2000
     src = random_las(tmp_path / f"in{fmt}.laz", fmt, n, rng, version="1.4", crs="EPSG:32617")
-    cloud = read_cloud(src)
+    cloud = read_cloud(src, skip_withheld=False)  # every point, withheld or not
     codes = rng.integers(1, 20, n).astype(np.uint8)
     extras = {"height_above_ground": (rng.uniform(0, 30, n).astype(np.float32), "height")}
     raw = laspy.read(write_classified(cloud, tmp_path / "raw.laz", codes, extras))

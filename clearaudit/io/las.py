@@ -156,11 +156,13 @@ def _chunks(reader: laspy.LasReader, path: Path, chunk_size: int):
         yield chunk
 
 
-#: The LAZ layers :func:`read_range` uses (x, y with the returns and channel, z, class); the
-#: others of a layered file (point formats 6-10) are not decoded.
+#: The LAZ layers :func:`read_range` uses (x, y with the returns and channel, z, class, and
+#: the flags for the withheld flag); the others of a layered file (point formats 6-10) are
+#: not decoded.
 _XYZ_CLASS_LAYERS = (laspy.DecompressionSelection.XY_RETURNS_CHANNEL
                      | laspy.DecompressionSelection.Z
-                     | laspy.DecompressionSelection.CLASSIFICATION)
+                     | laspy.DecompressionSelection.CLASSIFICATION
+                     | laspy.DecompressionSelection.FLAGS)
 
 
 #: Fields decoded with the x/y layer of a layered LAZ file.
@@ -653,6 +655,17 @@ def _keep_records(sink: _ScratchSink | None, chunk: Any) -> None:
         sink.keep(chunk)
 
 
+def _withheld(chunk: Any) -> np.ndarray | None:
+    """The chunk's points flagged withheld, or None when there are none.
+
+    ASPRS, LAS Specification 1.4 R15 (2019), Tables 8 and 16: a withheld point "should not
+    be included in processing (synonymous with Deleted)". Withheld points are read (and
+    copied into the classified copy as they are) but never analysed.
+    """
+    flags = np.asarray(chunk.withheld)
+    return flags.astype(bool) if flags.any() else None
+
+
 # =============================================================================== reading
 def read_cloud(
     paths: str | Path | Iterable[str | Path],
@@ -664,6 +677,7 @@ def read_cloud(
     progress: Callable[[int, int], Any] | None = None,
     origin: Sequence[float] | None = None,
     records: RecordScratch | None = None,
+    skip_withheld: bool = True,
 ) -> Cloud:
     """Read LAS/LAZ files into one :class:`~clearaudit.cloud.Cloud` in local metres.
 
@@ -692,6 +706,11 @@ def read_cloud(
         Optional :class:`RecordScratch` (from :func:`plan_record_scratch`): the raw point
         records of every point of its files, ``keep`` or not, are appended to scratch files
         chunk by chunk as they are decoded, for :func:`write_classified`.
+    skip_withheld
+        Leave out the points flagged withheld (LAS 1.4 R15, Tables 8 and 16: such a point
+        "should not be included in processing"); each file's count of them (among the points
+        ``keep`` keeps) is in its ``SourceInfo.withheld_points``. Their records are still kept
+        in ``records``, so the classified copy holds them as they were.
 
     Returns
     -------
@@ -755,6 +774,7 @@ def read_cloud(
         header = meta.header
         shift = _Shift.between(header.scales, header.offsets, origin_arr)
         n_file = 0
+        withheld_file = 0
         box = _HeaderBox(header)
         with _open_reader(meta.path, selection) as reader, \
                 _record_sink(records, file_id) as sink:
@@ -778,6 +798,12 @@ def read_cloud(
                     np.add(ly, origin_arr[1], out=xy_crs[:, 1])
                     mask = _call_keep(keep, xy_crs)
                     del xy_crs
+                withheld = _withheld(chunk) if skip_withheld else None
+                if withheld is not None:
+                    withheld_file += int(np.count_nonzero(withheld if mask is None
+                                                          else withheld & mask))
+                    mask = ~withheld if mask is None else mask & ~withheld
+                if mask is not None:
                     k = int(np.count_nonzero(mask))
                     if k == m:
                         mask = None
@@ -820,6 +846,7 @@ def read_cloud(
                 # own pass over the file: LAZ decoding reads through laspy; hashing 57 MB
                 # takes about 0.05 s, so it is not worth threading through the decoder
                 sha256=file_sha256(meta.path),
+                withheld_points=withheld_file,
             )
         )
 
@@ -827,8 +854,10 @@ def read_cloud(
     if total == 0:
         raise InputError(label, "contains no points")
     if n_points == 0:
+        withheld = sum(i.withheld_points for i in sources)
+        also = f"; {withheld} flagged withheld" if withheld else ""
         raise InputError(
-            label, f"contains no points inside the area kept (0 of {total} points kept)"
+            label, f"contains no points inside the area kept (0 of {total} points kept{also})"
         )
 
     def trim(a: np.ndarray) -> np.ndarray:
@@ -1022,7 +1051,8 @@ def balanced_step(points: int, header: Any, threads: int | None = None) -> int:
 
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
                keep: Callable[[np.ndarray], np.ndarray] | None = None,
-               chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: _ScratchSink | None = None):
+               chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: _ScratchSink | None = None,
+               tally: dict[str, int] | None = None):
     """Stream points ``start:stop`` of one input file as local-metre chunks.
 
     Parameters
@@ -1042,7 +1072,10 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     records_to
         Optional sink (``RecordScratch.writer``) that keeps what the classified copy needs
         of every decoded point, ``keep`` or not, chunk by chunk. Unless it keeps whole
-        records, only the x, y, z and class layers of a layered LAZ file are decoded.
+        records, only the x, y, z, class and flags layers of a layered LAZ file are decoded.
+    tally
+        Optional dict; ``tally["withheld"]`` is increased by the points that ``keep`` would
+        keep but that are flagged withheld, which are never yielded (see :func:`read_cloud`).
 
     Yields
     ------
@@ -1097,6 +1130,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             box.check(path, chunk, position)
             _keep_records(records_to, chunk)
             index = np.arange(position, position + m, dtype=np.int64)
+            withheld = _withheld(chunk)
             raster = getattr(keep, "raster", None)
             if raster is not None:
                 # a corridor: local x, y and each point's raster state in one compiled pass;
@@ -1116,15 +1150,20 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
                     xy_test = np.column_stack((local_x[test] + origin[0],
                                                local_y[test] + origin[1]))
                     state[test[keep.exact(xy_test, np.arange(len(test)))]] = 1
-                sel = np.flatnonzero(state == 1)
+                inside = state == 1
             else:
                 local_x = shift.local(np.asarray(chunk.X), 0)
                 local_y = shift.local(np.asarray(chunk.Y), 1)
+                inside = None
                 if keep is not None:
                     xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
-                    sel = np.flatnonzero(_call_keep(keep, xy_crs))
-                else:
-                    sel = slice(None)
+                    inside = np.asarray(_call_keep(keep, xy_crs), dtype=bool)
+            if withheld is not None:
+                if tally is not None:
+                    tally["withheld"] = tally.get("withheld", 0) + int(np.count_nonzero(
+                        withheld if inside is None else withheld & inside))
+                inside = ~withheld if inside is None else inside & ~withheld
+            sel = slice(None) if inside is None else np.flatnonzero(inside)
             local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
             xyz = np.empty((len(local_z), 3), dtype=np.float64)
             xyz[:, 0] = local_x[sel] * unit[0]
@@ -1358,7 +1397,8 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
         point_count, bounds_min, bounds_max`` (from the points, CRS units),
         ``header_bounds_min, header_bounds_max, scales, offsets, crs_name, crs_epsg,
         crs_origin, horizontal_unit, vertical_unit, horizontal_unit_m, vertical_unit_m,
-        class_counts`` ({code: count}), ``extra_dimensions``.
+        class_counts`` ({code: count}), ``withheld_points`` (flagged withheld: an audit
+        leaves them out), ``extra_dimensions``.
     """
     files = resolve_inputs(paths)
     override = parse_crs_option(crs)
@@ -1372,10 +1412,11 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
         box = _HeaderBox(header)
         lo = np.full(3, np.inf)
         hi = np.full(3, -np.inf)
-        n = 0
+        n = withheld = 0
         with _open_reader(meta.path) as reader:
             for chunk in _chunks(reader, meta.path, chunk_size):
                 n += len(chunk)
+                withheld += int(np.count_nonzero(np.asarray(chunk.withheld)))
                 counts += np.bincount(np.asarray(chunk.classification, dtype=np.uint8),
                                       minlength=256)
                 for axis, name in enumerate("XYZ"):
@@ -1410,6 +1451,7 @@ def describe(paths: str | Path | Iterable[str | Path], crs: Any = None,
             "horizontal_unit_m": h_m,
             "vertical_unit_m": v_m,
             "class_counts": {int(c): int(counts[c]) for c in np.flatnonzero(counts)},
+            "withheld_points": withheld,
             "extra_dimensions": list(header.point_format.extra_dimension_names),
         }
         out.append(info)

@@ -133,10 +133,11 @@ def _run_section(folder: OutputFolder, units: DisplayUnits) -> str:
     if inputs:
         parts.append("<h3>Input files</h3>")
         parts.append(_table(
-            ["File", "SHA-256", "Points", "Point format", "CRS"],
+            ["File", "SHA-256", "Points", "Withheld (not analysed)", "Point format", "CRS"],
             [[i.get("path", ""), i.get("sha256", ""), fmt_number(i.get("point_count")),
+              fmt_number(i.get("withheld_points")),
               _as_text(i.get("point_format", MISSING)), _as_text(i.get("crs") or MISSING)]
-             for i in inputs], numeric={2}))
+             for i in inputs], numeric={2, 3}))
     repeated = run.get("repeated_points") or {}
     if repeated.get("points"):
         files = "; ".join(f"{name}: {fmt_number(n)}"
