@@ -375,6 +375,7 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                    structures_rows: list[dict] | None, conductors: dict, rules: Any,
                    total_points: int, scratch: Path, console=None, show_summary: bool = True):
     """The in-memory run: read every (corridor) point, classify, model, audit, write."""
+    from .cloud import Cloud
     from .duplicates import cloud_copies, compare_step_m
     from .io.las import corridor_mask, inputs_crs, plan_record_scratch, read_cloud
 
@@ -398,8 +399,8 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                               "crs": info.crs_origin, "withheld_points": info.withheld_points})
             record.extra["withheld_points"] = sum(i.withheld_points for i in cloud.sources)
             # points delivered twice (tiles with overlapping buffers) counted once; the
-            # whole cloud (``read``) kept for classified.laz, where a copy gets its twin's
-            # results (``twin_of``: every point's place in the cloud analysed)
+            # whole read's bookkeeping (``read``) kept for classified.laz, where a copy gets
+            # its twin's results (``twin_of``: every point's place in the cloud analysed)
             read, twin_of = cloud, None
             step = compare_step_m([np.asarray(info.scales) * cloud.unit_m
                                    for info in cloud.sources])
@@ -416,6 +417,15 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                 record.extra["repeated_points"]["by_file"] = {
                     cloud.sources[int(f)].path: int(c)
                     for f, c in zip(files, counts, strict=True)}
+                # the writer needs the points' files and places, not their coordinates:
+                # the whole read's coordinates are not kept (an unwritten array holds no
+                # memory)
+                read = Cloud(xyz=np.empty((cloud.n_points, 3)), origin=cloud.origin,
+                             crs=cloud.crs, horizontal_unit_m=cloud.horizontal_unit_m,
+                             vertical_unit_m=cloud.vertical_unit_m,
+                             classification=np.zeros(cloud.n_points, dtype=np.uint8),
+                             source_id=cloud.source_id, source_index=cloud.source_index,
+                             sources=cloud.sources)
                 cloud = cloud.subset(keep)
                 del keep
             del copy, twin

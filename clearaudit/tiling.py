@@ -778,20 +778,27 @@ def drop_later_copies(work: str | Path, cells: Sequence[tuple[int, int]], step_m
             continue
         keep = np.ones(len(rec), dtype=bool)
         keep[copy] = False
+        place = np.cumsum(keep) - 1  # a kept record's position once the copies are out
+        table = np.stack([key[copy], place[twin]])  # copy keys ascend: positions ascend
+        # everything written aside first, then put in place (a task that dies midway leaves
+        # the cell as it was, or the window of a few renames)
+        done = []
         at = 0
         for f in files:
             m = os.path.getsize(f) // RECORD.itemsize
             part = rec[at:at + m][keep[at:at + m]]
             at += m
-            if len(part) == m:
-                continue
-            tmp = f.with_name(f.name + ".tmp")
-            with open(tmp, "wb") as fh:
-                fh.write(part)
+            if len(part) < m:
+                tmp = f.with_name(f.name + ".tmp")
+                with open(tmp, "wb") as fh:
+                    fh.write(part)
+                done.append((tmp, f))
+        copies = _cell_dir(work, *cell) / "copies.npy"
+        with open(copies.with_name("copies.tmp"), "wb") as fh:
+            np.save(fh, table)
+        done.append((copies.with_name("copies.tmp"), copies))
+        for tmp, f in done:
             os.replace(tmp, f)
-        place = np.cumsum(keep) - 1  # a kept record's position once the copies are out
-        table = np.stack([key[copy], place[twin]])  # copy keys ascend: positions ascend
-        np.save(_cell_dir(work, *cell) / "copies.npy", table)
         dropped[cell] = len(copy)
         per_file = np.bincount(key[copy] >> KEY_SHIFT)
         for fid in np.flatnonzero(per_file).tolist():
