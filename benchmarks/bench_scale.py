@@ -327,8 +327,8 @@ def print_results(results: list[dict]) -> None:
                   "(each audit's ratios use the mean of the two timings around it)")
     for r in results:
         # the read floor: the layers the audit decodes (classified.laz copies the others)
-        print(f"floor {r['case']}: decoding the layers the audit reads (x/y, z, class) takes "
-              f"{r['layers_s']:.2f} s = {r['layers_s'] / r['decompress_s']:.2f} x the full "
+        print(f"floor {r['case']}: decoding the layers the audit reads (x/y, z, class, flags) "
+              f"takes {r['layers_s']:.2f} s = {r['layers_s'] / r['decompress_s']:.2f} x the full "
               "decompression; classified.laz copies the other layers")
     for r in results:
         if "threads_speedup" in r:

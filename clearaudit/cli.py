@@ -33,7 +33,8 @@ def cmd_info(args: argparse.Namespace) -> int:
     from .io.las import describe
 
     console = _console()
-    for d in describe(args.clouds, crs=args.crs):
+    described = describe(args.clouds, crs=args.crs)
+    for d in described:
         table = Table(title=str(d["path"]), show_header=False, title_justify="left")
         table.add_column("key", style="bold")
         table.add_column("value")
@@ -58,7 +59,28 @@ def cmd_info(args: argparse.Namespace) -> int:
             f"{int(c):>3} {CLASS_NAMES.get(int(c), 'user defined'):<38} {n:>12,}"
             for c, n in sorted(hist.items(), key=lambda kv: int(kv[0]))))
         console.print(table)
+    boxed = [d for d in described if d["bounds_min"] is not None]
+    if len(boxed) > 1:
+        import numpy as np
+
+        from .duplicates import BOX_SLACK_M, overlapping_files
+
+        # the files' point boxes in metres, grown as the audit grows the header boxes
+        lo = np.array([np.asarray(d["bounds_min"]) * _unit_scale(d) for d in boxed])
+        hi = np.array([np.asarray(d["bounds_max"]) * _unit_scale(d) for d in boxed])
+        pairs = overlapping_files(lo, hi, slack_m=BOX_SLACK_M)
+        if pairs:
+            names = [Path(d["path"]).name for d in boxed]
+            console.print(f"{len(pairs)} pair(s) of files overlap: "
+                          + ", ".join(f"{names[i]} & {names[j]}" for i, j in pairs[:10])
+                          + (" …" if len(pairs) > 10 else "")
+                          + ". An audit counts a point repeated between two files once.")
     return 0
+
+
+def _unit_scale(d: dict) -> list[float]:
+    """Metres per file unit for x, y, z of one :func:`describe` entry. [m/unit]"""
+    return [d["horizontal_unit_m"], d["horizontal_unit_m"], d["vertical_unit_m"]]
 
 
 def cmd_sample(args: argparse.Namespace) -> int:

@@ -35,6 +35,18 @@ def test_info_on_sample(capsys):
     assert "unclassified" in out
 
 
+def test_info_names_overlapping_files(capsys, tmp_path):
+    # two copies of the sample: their boxes meet (the box test is checked against a double
+    # loop in test_repeated_points)
+    import shutil
+
+    for name in ("a.laz", "b.laz"):
+        shutil.copy(SAMPLE / "tarnwick_velloran_230kv.laz", tmp_path / name)
+    assert main(["info", str(tmp_path)]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "1 pair(s) of files overlap: a.laz & b.laz" in out
+
+
 def test_conductors_listing(capsys):
     assert main(["conductors", "drake"]) == 0
     assert "795" in capsys.readouterr().out
