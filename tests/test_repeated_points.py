@@ -225,3 +225,29 @@ def test_real_crop_in_buffered_tiles(tmp_path):
         for name in ("sag_survey_m", "horizontal_tension_n"):
             if ra[name]:
                 assert float(rb[name]) == pytest.approx(float(ra[name]), rel=1e-6)
+
+
+def test_a_header_without_bounds_is_compared_with_every_file(delivery, tmp_path):
+    # some writers leave the header's bounds at 0: such a file's box is unknown, so it must
+    # be searched for repeats like a file whose box meets every other (LAS 1.4 R15, Table 3:
+    # the bounds are the header's Max/Min X, Y, Z, eight-byte doubles from byte 179)
+    import struct
+
+    from clearaudit.io.las import read_setup
+
+    folder = tmp_path / "nobounds"
+    folder.mkdir()
+    for name in ("a.laz", "b.laz"):
+        shutil.copy(delivery["cloud"], folder / name)
+    with open(folder / "b.laz", "r+b") as fh:
+        fh.seek(179)
+        fh.write(struct.pack("<6d", *([0.0] * 6)))
+    b = laspy.read(folder / "b.laz")
+    assert list(b.header.mins) == [0.0, 0.0, 0.0] and list(b.header.maxs) == [0.0, 0.0, 0.0]
+    setup = read_setup(folder, hashes=False)
+    assert np.all(np.isinf(setup.file_min[1])) and overlapping_files(
+        setup.file_min, setup.file_max) == [(0, 1)]
+    out = _audit(delivery, folder, "nobounds", tiled=True, tile_points=120_000)
+    once = _audit(delivery, delivery["cloud"], "once-nobounds", tiled=True, tile_points=120_000)
+    assert _record(out)["repeated_points"]["points"] == _record(once)["points_read"]
+    assert (out / "violations.csv").read_bytes() == (once / "violations.csv").read_bytes()

@@ -289,6 +289,13 @@ def inputs_crs(paths: str | Path | Iterable[str | Path], crs: Any = None) -> tup
 
 
 # =============================================================================== coordinates
+def _with_bounds(metas: Sequence[_FileMeta]) -> list[_FileMeta]:
+    """The files whose headers give bounds (some writers leave every value 0: such a header
+    says nothing of where the points are); all of them when none does."""
+    known = [m for m in metas if _HeaderBox(m.header).active]
+    return known or list(metas)
+
+
 def _auto_origin(metas: Sequence[_FileMeta]) -> np.ndarray:
     """Local origin: header minimum x, y rounded down (z = 0), snapped to the first file's grid.
 
@@ -296,7 +303,8 @@ def _auto_origin(metas: Sequence[_FileMeta]) -> np.ndarray:
     file's coordinates convert with a pure integer shift. Heights stay relative to the
     vertical datum (origin z near 0) so local z reads as an elevation.
     """
-    mins = np.min([np.asarray(m.header.mins, dtype=np.float64) for m in metas], axis=0)
+    mins = np.min([np.asarray(m.header.mins, dtype=np.float64) for m in _with_bounds(metas)],
+                  axis=0)
     target = np.floor(mins / ORIGIN_ROUNDING) * ORIGIN_ROUNDING
     target[2] = 0.0
     target = np.where(np.isfinite(target), target, 0.0)
@@ -921,7 +929,8 @@ class ReadSetup:
         Files read in one range from their first point: LAZ files with variable-size chunks,
         in which lazrs 0.8 does not seek to the right point (see :func:`read_range`).
     file_min, file_max
-        Each file's bounds from its header, in local metres, shape (n_files, 3). [m]
+        Each file's bounds from its header, in local metres, shape (n_files, 3); infinite
+        for a header with no bounds (every value 0). [m]
     """
 
     files: tuple[Path, ...]
@@ -984,7 +993,9 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
     unit = np.array([h_unit, h_unit, v_unit])
     mins = np.array([np.asarray(m.header.mins, dtype=np.float64) for m in metas])
     maxs = np.array([np.asarray(m.header.maxs, dtype=np.float64) for m in metas])
-    lo, hi = mins.min(axis=0), maxs.max(axis=0)
+    no_bounds = np.array([not _HeaderBox(m.header).active for m in metas])[:, None]
+    told = ~no_bounds[:, 0] if not no_bounds.all() else np.ones(len(metas), dtype=bool)
+    lo, hi = mins[told].min(axis=0), maxs[told].max(axis=0)  # the headers that give bounds
     sources = tuple(
         SourceInfo(path=str(m.path), version=str(m.header.version),
                    point_format=int(m.header.point_format.id), point_count=m.point_count,
@@ -1000,7 +1011,9 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
                      header_max=(hi - origin_arr) * unit,
                      whole_files=frozenset(i for i, m in enumerate(metas)
                                            if variable_chunks(m.header)),
-                     file_min=(mins - origin_arr) * unit, file_max=(maxs - origin_arr) * unit)
+                     # a header with no bounds (every value 0): a box that meets every box
+                     file_min=np.where(no_bounds, -np.inf, (mins - origin_arr) * unit),
+                     file_max=np.where(no_bounds, np.inf, (maxs - origin_arr) * unit))
 
 
 def variable_chunks(header: Any) -> bool:
