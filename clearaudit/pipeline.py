@@ -641,9 +641,12 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
         with _las_errors(path, "open"), laspy.open(str(path)) as reader:
             header = reader.header
             total += int(header.point_count)
-            if header.point_count:
-                lo = np.minimum(lo, np.asarray(header.mins[:2], dtype=float))
-                hi = np.maximum(hi, np.asarray(header.maxs[:2], dtype=float))
+            mins = np.asarray(header.mins[:2], dtype=float)
+            maxs = np.asarray(header.maxs[:2], dtype=float)
+            # a header without bounds (every value 0) says nothing of the box
+            if header.point_count and (mins.any() or maxs.any()):
+                lo = np.minimum(lo, mins)
+                hi = np.maximum(hi, maxs)
     area = float(np.prod(np.maximum(hi - lo, 0.0))) * unit_m**2 if total else 0.0
     return total, area
 
