@@ -18,6 +18,7 @@ survey of tiles that do not overlap costs nothing.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
@@ -28,17 +29,19 @@ COMPARE_STEP_M = 0.001
 BOX_SLACK_M = 1.0
 
 
-def compare_step_m(scales_m: Sequence[Sequence[float]]) -> float:
-    """Step the coordinates of points from files with these coordinate scales are compared at:
-    :data:`COMPARE_STEP_M`, or the coarsest scale when coarser. [m]
+def compare_step_m(sources: Sequence[Any], unit_m: Sequence[float]) -> float:
+    """Step the coordinates of points from these files are compared at:
+    :data:`COMPARE_STEP_M`, or the coarsest coordinate scale when coarser. [m]
 
     Parameters
     ----------
-    scales_m
-        Each file's (x, y, z) scale in metres. [m]
+    sources
+        The files (:class:`~clearaudit.cloud.SourceInfo`: ``scales`` in CRS units).
+    unit_m
+        Metres per CRS unit for x, y, z. [m/unit]
     """
-    coarsest = max((float(s) for file in scales_m for s in file), default=0.0)
-    return max(COMPARE_STEP_M, coarsest)
+    scales = [np.asarray(info.scales, dtype=np.float64) * unit_m for info in sources]
+    return max(COMPARE_STEP_M, max((float(s.max()) for s in scales), default=0.0))
 
 
 def overlapping_files(lo: np.ndarray, hi: np.ndarray, slack_m: float = 0.0) -> list[tuple[int, int]]:

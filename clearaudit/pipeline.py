@@ -402,8 +402,7 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
             # whole read's bookkeeping (``read``) kept for classified.laz, where a copy gets
             # its twin's results (``twin_of``: every point's place in the cloud analysed)
             read, twin_of = cloud, None
-            step = compare_step_m([np.asarray(info.scales) * cloud.unit_m
-                                   for info in cloud.sources])
+            step = compare_step_m(cloud.sources, cloud.unit_m)
             copy, twin, n_pairs = cloud_copies(cloud.xyz, cloud.source_id, step)
             record.extra["repeated_points"] = {"files_overlapping": n_pairs,
                                                "points": int(len(copy)), "by_file": {},
@@ -633,7 +632,7 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
     """
     import laspy
 
-    from .io.las import _las_errors, inputs_crs
+    from .io.las import _las_errors, header_gives_bounds, inputs_crs
 
     _, unit_m, _ = inputs_crs(paths, crs=crs)
     total, lo, hi = 0, np.full(2, np.inf), np.full(2, -np.inf)
@@ -641,12 +640,10 @@ def _header_extent(paths: list[Path], crs: str | None = None) -> tuple[int, floa
         with _las_errors(path, "open"), laspy.open(str(path)) as reader:
             header = reader.header
             total += int(header.point_count)
-            mins = np.asarray(header.mins[:2], dtype=float)
-            maxs = np.asarray(header.maxs[:2], dtype=float)
             # a header without bounds (every value 0) says nothing of the box
-            if header.point_count and (mins.any() or maxs.any()):
-                lo = np.minimum(lo, mins)
-                hi = np.maximum(hi, maxs)
+            if header.point_count and header_gives_bounds(header):
+                lo = np.minimum(lo, np.asarray(header.mins[:2], dtype=float))
+                hi = np.maximum(hi, np.asarray(header.maxs[:2], dtype=float))
     area = float(np.prod(np.maximum(hi - lo, 0.0))) * unit_m**2 if total else 0.0
     return total, area
 
@@ -802,8 +799,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 # where the files' header boxes meet, in the cells holding points of two
                 # files or more, before the tiles are planned
                 pairs = overlapping_files(setup.file_min, setup.file_max, slack_m=BOX_SLACK_M)
-                step = compare_step_m([np.asarray(info.scales) * setup.unit_m
-                                       for info in setup.sources])
+                step = compare_step_m(setup.sources, setup.unit_m)
                 copies = {"files_overlapping": len(pairs), "points": 0, "by_file": {},
                           "compare_step_m": step}
                 cells_with_copies: set[tuple[int, int]] = set()

@@ -669,7 +669,11 @@ def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
 
     The files are read straight into one array; ``then`` (records) is appended after them.
     """
-    files = [f for c in cells for f in _cell_files(Path(work), c)]
+    return _read_record_files([f for c in cells for f in _cell_files(Path(work), c)], then)
+
+
+def _read_record_files(files: list[Path], then: np.ndarray | None = None) -> np.ndarray:
+    """The records of these bucket files, one after the other, then ``then``."""
     sizes = [f.stat().st_size // RECORD.itemsize for f in files]
     n = sum(sizes)
     out = np.empty(n + (0 if then is None else len(then)), dtype=RECORD)
@@ -771,7 +775,7 @@ def drop_later_copies(work: str | Path, cells: Sequence[tuple[int, int]], step_m
     by_file: dict[int, int] = {}
     for cell in cells:
         files = _cell_files(work, cell)
-        rec = read_cells(work, (cell,))
+        rec = _read_record_files(files)
         key = record_keys(rec)
         copy, twin = later_copies(record_xyz(rec), key >> KEY_SHIFT, step_m)
         if len(copy) == 0:
@@ -785,7 +789,7 @@ def drop_later_copies(work: str | Path, cells: Sequence[tuple[int, int]], step_m
         done = []
         at = 0
         for f in files:
-            m = os.path.getsize(f) // RECORD.itemsize
+            m = f.stat().st_size // RECORD.itemsize
             part = rec[at:at + m][keep[at:at + m]]
             at += m
             if len(part) < m:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import shutil
 from pathlib import Path
+from types import SimpleNamespace
 
 import laspy
 import numpy as np
@@ -79,8 +80,14 @@ def test_overlapping_files_match_a_double_loop():
 
 
 def test_compare_step_is_a_millimetre_or_the_coarsest_scale():
-    assert compare_step_m([(0.001, 0.001, 0.001), (0.0001,) * 3]) == 0.001
-    assert compare_step_m([(0.001,) * 3, (0.01, 0.01, 0.01)]) == 0.01
+    def files(*scales):
+        return [SimpleNamespace(scales=s) for s in scales]
+
+    metres = (1.0, 1.0, 1.0)
+    assert compare_step_m(files((0.001, 0.001, 0.001), (0.0001,) * 3), metres) == 0.001
+    assert compare_step_m(files((0.001,) * 3, (0.01, 0.01, 0.01)), metres) == 0.01
+    # a file in feet (0.01 ft = 3.048 mm; the international foot, from memory)
+    assert compare_step_m(files((0.01,) * 3), (0.3048,) * 3) == pytest.approx(0.003048)
 
 
 def test_cloud_copies_only_where_files_meet():
@@ -99,6 +106,20 @@ def test_cloud_copies_only_where_files_meet():
 
 
 # ------------------------------------------------------------------------------ end to end
+def _buffered_tiles(src: Path, folder: Path, buffer_m: float) -> tuple[int, int]:
+    """``src`` cut at its median x into tiles ``a.laz`` and ``b.laz`` in ``folder``, each
+    with ``buffer_m`` of the other's side; (points of ``src``, points in both tiles)."""
+    las = laspy.read(src)
+    x = np.asarray(las.x)
+    cut = float(np.median(x))
+    folder.mkdir()
+    for name, keep in (("a", x < cut + buffer_m), ("b", x >= cut - buffer_m)):
+        out = laspy.LasData(las.header.copy())
+        out.points = las.points[keep]
+        out.write(folder / f"{name}.laz")
+    return len(x), int(np.count_nonzero((x < cut + buffer_m) & (x >= cut - buffer_m)))
+
+
 @pytest.fixture(scope="module")
 def delivery(tmp_path_factory) -> dict[str, Path]:
     """A small corridor as one file, as two buffered tiles, and as one file passed twice."""
@@ -106,22 +127,14 @@ def delivery(tmp_path_factory) -> dict[str, Path]:
     c = generate_corridor(seed=23, n_spans=3, density_per_m2=3.0,
                           span_length_m=(250.0, 300.0), classified=False, name="buffers")
     paths = write_corridor(c, base, "buffers")
-    las = laspy.read(paths["cloud"])
-    x = np.asarray(las.x)
-    cut = float(np.median(x))
     tiles = base / "tiles"
-    tiles.mkdir()
-    for name, keep in (("a", x < cut + 30.0), ("b", x >= cut - 30.0)):
-        out = laspy.LasData(las.header.copy())
-        out.points = las.points[keep]
-        out.write(tiles / f"{name}.laz")
+    points, buffer_points = _buffered_tiles(paths["cloud"], tiles, 30.0)
     twice = base / "twice"
     twice.mkdir()
     for name in ("a", "b"):
         shutil.copy(paths["cloud"], twice / f"{name}.laz")
     return {"cloud": paths["cloud"], "line": paths["line"], "tiles": tiles, "twice": twice,
-            "buffer_points": int(np.count_nonzero((x < cut + 30.0) & (x >= cut - 30.0))),
-            "points": len(x), "base": base}
+            "buffer_points": buffer_points, "points": points, "base": base}
 
 
 def _audit(d, clouds, name, **kw) -> Path:
@@ -193,16 +206,8 @@ def test_real_crop_in_buffered_tiles(tmp_path):
     # on each side of the cut: the same findings as the crop in one file. Before repeated
     # points were counted once, the crop cut this way gave 8 violations instead of 4.
     real = Path(__file__).parent / "data" / "real" / "ahn4_powerline_12BZ1_21.laz"
-    las = laspy.read(real)
-    x = np.asarray(las.x)
-    cut = float(np.median(x))
     tiles = tmp_path / "tiles"
-    tiles.mkdir()
-    for name, keep in (("a", x < cut + 20.0), ("b", x >= cut - 20.0)):
-        out = laspy.LasData(las.header.copy())
-        out.points = las.points[keep]
-        out.write(tiles / f"{name}.laz")
-    buffer = int(np.count_nonzero((x < cut + 20.0) & (x >= cut - 20.0)))
+    _, buffer = _buffered_tiles(real, tiles, 20.0)
 
     def audit(clouds, name):
         return run_audit(AuditOptions(clouds=[clouds], out=tmp_path / name, voltage_kv=150.0,

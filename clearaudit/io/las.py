@@ -289,10 +289,16 @@ def inputs_crs(paths: str | Path | Iterable[str | Path], crs: Any = None) -> tup
 
 
 # =============================================================================== coordinates
+def header_gives_bounds(header: Any) -> bool:
+    """Whether a LAS header gives the bounds of its points: some writers leave every value
+    0, and such a header says nothing of where the points are."""
+    return bool(np.any(np.asarray(header.mins, dtype=np.float64) != 0.0)
+                or np.any(np.asarray(header.maxs, dtype=np.float64) != 0.0))
+
+
 def _with_bounds(metas: Sequence[_FileMeta]) -> list[_FileMeta]:
-    """The files whose headers give bounds (some writers leave every value 0: such a header
-    says nothing of where the points are); all of them when none does."""
-    known = [m for m in metas if _HeaderBox(m.header).active]
+    """The files whose headers give bounds; all of them when none does."""
+    known = [m for m in metas if header_gives_bounds(m.header)]
     return known or list(metas)
 
 
@@ -366,7 +372,7 @@ class _HeaderBox:
         maxs = np.asarray(header.maxs, dtype=np.float64)
         scales = np.asarray(header.scales, dtype=np.float64)
         offsets = np.asarray(header.offsets, dtype=np.float64)
-        self.active = bool(np.any(mins != 0.0) or np.any(maxs != 0.0))
+        self.active = header_gives_bounds(header)
         slack = 1.0 + HEADER_BOUNDS_SLACK / np.abs(scales)  # [record steps]
         self.lo = np.floor((mins - offsets) / scales - slack)
         self.hi = np.ceil((maxs - offsets) / scales + slack)
@@ -674,6 +680,16 @@ def _withheld(chunk: Any) -> np.ndarray | None:
     return flags.astype(bool) if flags.any() else None
 
 
+def _leave_out(kept: np.ndarray | None, withheld: np.ndarray | None
+               ) -> tuple[np.ndarray | None, int]:
+    """The mask ``kept`` (None: every point) without the ``withheld`` points (None: none),
+    and how many of the points it kept were withheld."""
+    if withheld is None:
+        return kept, 0
+    count = int(np.count_nonzero(withheld if kept is None else withheld & kept))
+    return (~withheld if kept is None else kept & ~withheld), count
+
+
 # =============================================================================== reading
 def read_cloud(
     paths: str | Path | Iterable[str | Path],
@@ -806,11 +822,8 @@ def read_cloud(
                     np.add(ly, origin_arr[1], out=xy_crs[:, 1])
                     mask = _call_keep(keep, xy_crs)
                     del xy_crs
-                withheld = _withheld(chunk) if skip_withheld else None
-                if withheld is not None:
-                    withheld_file += int(np.count_nonzero(withheld if mask is None
-                                                          else withheld & mask))
-                    mask = ~withheld if mask is None else mask & ~withheld
+                mask, left_out = _leave_out(mask, _withheld(chunk) if skip_withheld else None)
+                withheld_file += left_out
                 if mask is not None:
                     k = int(np.count_nonzero(mask))
                     if k == m:
@@ -993,9 +1006,10 @@ def read_setup(paths: str | Path | Iterable[str | Path], *, crs: Any = None,
     unit = np.array([h_unit, h_unit, v_unit])
     mins = np.array([np.asarray(m.header.mins, dtype=np.float64) for m in metas])
     maxs = np.array([np.asarray(m.header.maxs, dtype=np.float64) for m in metas])
-    no_bounds = np.array([not _HeaderBox(m.header).active for m in metas])[:, None]
-    told = ~no_bounds[:, 0] if not no_bounds.all() else np.ones(len(metas), dtype=bool)
-    lo, hi = mins[told].min(axis=0), maxs[told].max(axis=0)  # the headers that give bounds
+    no_bounds = np.array([not header_gives_bounds(m.header) for m in metas])[:, None]
+    bounded = _with_bounds(metas)  # the survey's bounds from the headers that give them
+    lo = np.min([np.asarray(m.header.mins, dtype=np.float64) for m in bounded], axis=0)
+    hi = np.max([np.asarray(m.header.maxs, dtype=np.float64) for m in bounded], axis=0)
     sources = tuple(
         SourceInfo(path=str(m.path), version=str(m.header.version),
                    point_format=int(m.header.point_format.id), point_count=m.point_count,
@@ -1171,11 +1185,9 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
                 if keep is not None:
                     xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
                     inside = np.asarray(_call_keep(keep, xy_crs), dtype=bool)
-            if withheld is not None:
-                if tally is not None:
-                    tally["withheld"] = tally.get("withheld", 0) + int(np.count_nonzero(
-                        withheld if inside is None else withheld & inside))
-                inside = ~withheld if inside is None else inside & ~withheld
+            inside, left_out = _leave_out(inside, withheld)
+            if tally is not None and left_out:
+                tally["withheld"] = tally.get("withheld", 0) + left_out
             sel = slice(None) if inside is None else np.flatnonzero(inside)
             local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
             xyz = np.empty((len(local_z), 3), dtype=np.float64)
