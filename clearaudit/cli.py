@@ -125,7 +125,7 @@ def cmd_network(args: argparse.Namespace) -> int:
     result = run_network(args.manifest, args.out, workers=args.workers, scheduler=args.scheduler,
                          threads=args.threads, skip_report=args.no_report,
                          overwrite=args.overwrite, units=args.units, work_dir=args.work_dir,
-                         console=console)
+                         resume=args.resume, console=console)
     print_network_summary(console, result, args.units)
     # the lines that failed were named on stderr as they failed; the others are complete
     if result["bad_input"]:
@@ -255,11 +255,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--units", choices=("metric", "imperial"), default="metric",
                    help="unit system of the reports and terminal summaries")
     p.add_argument("--work-dir", metavar="DIR",
-                   help="folder for the lines' temporary tile files (default: inside the output "
-                        "folder while it is written; with --scheduler, storage every worker "
-                        "shares)")
+                   help="folder for the lines' temporary tile files (default: beside the "
+                        "lines' folders while they are written, see --resume; with "
+                        "--scheduler, storage every worker shares)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--no-report", action="store_true", help="skip the HTML reports")
+    p.add_argument("--resume", action="store_true",
+                   help="reuse the lines an interrupted run of the same command finished (kept "
+                        "beside --out until the last line has run) when their inputs, options "
+                        "and clearaudit version are the same; the others are audited again")
     p.set_defaults(func=cmd_network)
 
     p = sub.add_parser("info", help="describe LAS/LAZ files (points, bounds, CRS, classes)")

@@ -7,7 +7,9 @@ writes it); the network folder adds ``lines.csv`` (one row per line: status and 
 ``work_list.csv`` / ``work_list.geojson`` (every violation and hazard tree of every line,
 ranked across the network) and ``network.json`` (the run record). A line whose input is bad
 is listed as failed with its one-line error and the other lines go on; the exit code is then 2
-(1 when a stage could not finish for another reason).
+(1 when a stage could not finish for another reason). The lines finished so far are kept
+beside the output folder until the last line has run, so that an interrupted run can be
+resumed (``--resume``) without auditing them again (:func:`reuse_problem`).
 
 Manifest (TOML; paths relative to the manifest)::
 
@@ -29,6 +31,7 @@ import heapq
 import json
 import math
 import re
+import shutil
 import sys
 import time
 import tomllib
@@ -262,11 +265,14 @@ def _work_geojson(path: Path, rows: list[dict[str, str]]) -> None:
 
 
 def _line_row(line: NetworkLine, status: str, seconds: float, folder: Path | None,
-              error: str = "", findings: Findings = ([], [], [])) -> dict[str, Any]:
+              error: str = "", findings: Findings = ([], [], []), reused: bool = False
+              ) -> dict[str, Any]:
     """A row of lines.csv: ``folder`` and its ``findings`` (:func:`read_findings`) for a
-    line that ran, None and the ``error`` for one that failed."""
+    line that ran (``reused``: kept from an interrupted run), None and the ``error`` for one
+    that failed."""
     row: dict[str, Any] = {"line": line.name, "status": status, "seconds": round(seconds, 1),
-                           "folder": "" if folder is None else line.name, "error": error}
+                           "folder": "" if folder is None else line.name, "error": error,
+                           "reused": "yes" if reused else ""}
     if folder is None:
         return row
     run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
@@ -285,20 +291,92 @@ def _line_row(line: NetworkLine, status: str, seconds: float, folder: Path | Non
 
 LINE_COLUMNS = ["line", "status", "line_name", "voltage_kv", "spans", "wire_spans", "violations",
                 "violations_at_survey", "hazard_trees", "largest_deficit_m", "seconds", "folder",
-                "error"]
+                "error", "reused"]
 
 
 # ------------------------------------------------------------------------------------- the run
+def kept_lines_folder(out: str | Path) -> Path:
+    """Where a network run keeps the lines it has finished until the last line has run:
+    ``.<out name>.lines`` beside ``out``. An interrupted run leaves them there for
+    ``--resume``."""
+    out = Path(out).resolve()
+    return out.parent / f".{out.name}.lines"
+
+
+#: Options of a line's audit not compared as text when a kept line is reused: the files are
+#: compared by their contents (:func:`reuse_problem`), and the engine changes no result but
+#: the run's mode (tiled or in memory), which is compared itself.
+_NOT_COMPARED = ("clouds", "out", "line_file", "structures_file", "work_dir", "overwrite",
+                 "workers", "scheduler", "threads", "line_config", "rule_set")
+
+
+def reuse_problem(folder: Path, options: Any) -> str | None:
+    """Why the audit folder ``folder`` (kept by an interrupted network run) cannot stand for
+    the audit ``options`` would run now; None when it can.
+
+    It can when it was written by this version of clearaudit, with the same options (the
+    engine aside), the same input files (the same list of clouds, and every input's SHA-256
+    as recorded in its run.json) and the same mode (tiled or in memory) as
+    :func:`clearaudit.pipeline.choose_mode` would choose now.
+    """
+    from .pipeline import _header_extent, choose_mode
+    from .threads import inner_threads, run_threads
+
+    try:
+        run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return "its run record cannot be read"
+    if run.get("clearaudit_version") != __version__:
+        return f"it was written by clearaudit {run.get('clearaudit_version')}, this is {__version__}"
+    was = {k: v for k, v in run.get("options", {}).items() if k not in _NOT_COMPARED}
+    now = {k: v for k, v in options.to_dict().items() if k not in _NOT_COMPARED}
+    if was != now:
+        changed = sorted(k for k in set(was) | set(now) if was.get(k) != now.get(k))
+        return f"its options differ ({', '.join(changed)})"
+    inputs = run.get("inputs", [])
+    clouds = [str(p) for p in resolve_inputs(options.clouds)]
+    if [i.get("path") for i in inputs if not i.get("role")] != clouds:
+        return "the list of its point cloud files has changed"
+    line_files = [i.get("path") for i in inputs if i.get("role") == "line file"]
+    if line_files != ([] if options.line_file is None else [str(options.line_file)]):
+        return "its line file is another"
+    for item in inputs:
+        path = item.get("path")
+        try:
+            same = path is not None and file_sha256(path) == item.get("sha256")
+        except OSError:
+            same = False
+        if not same:
+            return f"{path} has changed or is missing"
+    paths = resolve_inputs(options.clouds)
+    total, footprint = _header_extent(paths, options.crs)
+    with run_threads(options.threads):
+        tiled, _ = choose_mode(options, total, footprint, inner_threads())
+    mode = "tiled" if tiled else "in-memory"
+    if run.get("execution", {}).get("mode") != mode:
+        return f"it ran {run.get('execution', {}).get('mode')}, this run would be {mode}"
+    return None
+
+
+def _finished_lines(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.iterdir() if p.is_dir() and not p.name.startswith("."))
+
+
 def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                 scheduler: str | None = None, threads: int = 0, skip_report: bool = False,
                 overwrite: bool = False, units: str = "metric", work_dir: str | Path | None = None,
-                console: Any = None) -> dict:
+                resume: bool = False, console: Any = None) -> dict:
     """Audit every line of a manifest into ``out/<line name>/`` and write the network files.
 
     Returns a dict with ``lines`` (the rows of lines.csv), ``failed`` (names; ``bad_input``
-    those whose input was at fault), ``work_list`` and ``out``.
+    those whose input was at fault), ``reused`` (names), ``work_list`` and ``out``.
     Lines run one after the other, each with all of the engine's workers; with ``workers``
     one local Dask cluster serves every line.
+
+    Each finished line is kept in :func:`kept_lines_folder` until the last line has run; an
+    interrupted run leaves them there. With ``resume`` a kept line is taken as it is when
+    :func:`reuse_problem` finds nothing against it (else it is audited again); without
+    ``resume`` kept lines stop the run before any work, so none is thrown away unasked.
     """
     from types import SimpleNamespace
 
@@ -322,13 +400,29 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
     refuse_unwritable(out.absolute().parent, "--out")
     if work_dir is not None:
         refuse_unwritable(Path(work_dir).absolute(), "--work-dir")
+    kept = kept_lines_folder(out)
+    if kept.exists() and not kept.is_dir():
+        raise InputError(kept, "is in the way of the folder that keeps the finished lines "
+                               "(not a folder): remove it")
+    earlier = _finished_lines(kept) if kept.is_dir() else []
+    if earlier and not resume:
+        raise InputError(kept, f"holds {len(earlier)} line(s) an interrupted run of this "
+                               "network finished: add --resume to reuse them, or remove the "
+                               "folder")
     started = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
     cluster = None
     rows: list[dict[str, Any]] = []
     findings: dict[str, Findings] = {}
     failed: list[str] = []
     bad_input: list[str] = []
+    reused: list[str] = []
     with atomic_output_dir(out, overwrite) as tmp:
+        kept.mkdir(exist_ok=True)
+        # a kept line that the manifest no longer lists is not part of this network
+        listed = {line.name for line in manifest.lines}
+        for name in earlier:
+            if name not in listed:
+                shutil.rmtree(kept / name)
         try:
             address = scheduler
             if workers:
@@ -340,13 +434,33 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                 if console is not None:
                     console.print(f"[bold]line {k} of {len(manifest.lines)}: {line.name}[/]")
                 t0 = time.perf_counter()
+                folder = kept / line.name
                 options = AuditOptions(
-                    clouds=line.clouds, out=tmp / line.name, line_file=line.line_file,
+                    clouds=line.clouds, out=folder, line_file=line.line_file,
                     crs=line.crs, voltage_kv=line.voltage_kv, units=units,
                     trust_classes=line.trust_classes, structures_file=line.structures,
                     scheduler=address, threads=0 if address else threads,
                     skip_report=skip_report, tiled=line.tiled,
                     work_dir=None if work_dir is None else Path(work_dir))
+                if folder.is_dir():
+                    try:
+                        problem = reuse_problem(folder, options)
+                    except ClearauditError as exc:  # an input gone bad: the audit will say
+                        problem = str(exc)
+                    if problem is None:
+                        run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+                        findings[line.name] = read_findings(folder)
+                        rows.append(_line_row(line, "ok", sum(s.get("seconds", 0.0)
+                                                              for s in run.get("stages", [])),
+                                              folder, findings=findings[line.name],
+                                              reused=True))
+                        reused.append(line.name)
+                        if console is not None:
+                            console.print(f"{line.name}: kept from the interrupted run")
+                        continue
+                    if console is not None:
+                        console.print(f"{line.name}: audited again: {problem}")
+                    shutil.rmtree(folder)
                 try:
                     run_audit(options, console=console, show_summary=False)
                 except ClearauditError as exc:  # bad input, or a stage that cannot finish
@@ -357,14 +471,22 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                                           str(exc)))
                     print(f"clearaudit: error: line {line.name!r}: {exc}", file=sys.stderr)
                     continue
-                findings[line.name] = read_findings(tmp / line.name)
-                rows.append(_line_row(line, "ok", time.perf_counter() - t0, tmp / line.name,
+                findings[line.name] = read_findings(folder)
+                rows.append(_line_row(line, "ok", time.perf_counter() - t0, folder,
                                       findings=findings[line.name]))
                 if console is not None:
                     r = rows[-1]
                     console.print(f"{line.name}: {r['spans']} spans, {r['violations']} "
                                   f"violations, {r['hazard_trees']} hazard trees "
                                   f"({r['seconds']:.1f} s)")
+        except BaseException:
+            done = _finished_lines(kept)
+            if done:
+                print(f"clearaudit: {len(done)} finished line(s) kept in {kept}: run the same "
+                      "command again with --resume to reuse them", file=sys.stderr)
+            else:
+                shutil.rmtree(kept, ignore_errors=True)
+            raise
         finally:
             if cluster is not None:
                 cluster.close()
@@ -380,14 +502,27 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                          "sha256": file_sha256(manifest.path)},
             "options": {"workers": workers, "scheduler": scheduler, "threads": threads,
                         "skip_report": skip_report, "units": units,
-                        "work_dir": None if work_dir is None else str(work_dir)},
+                        "work_dir": None if work_dir is None else str(work_dir),
+                        "resume": resume},
             "packages": package_versions(), "python": sys.version.split()[0],
-            "lines": rows, "failed": failed, "work_list_rows": len(work),
+            "lines": rows, "failed": failed, "reused": reused, "work_list_rows": len(work),
             "ranking": "each line's findings in their own priority order, merged across lines "
                        "by the same urgency key (clearaudit.audit.priority.finding_key)"}
         (tmp / "network.json").write_text(json.dumps(record, indent=1), encoding="utf-8")
+        # the finished lines join the network's folder last (renames on one file system); a
+        # failure among the renames puts them back, so they stay kept for --resume
+        moved: list[str] = []
+        try:
+            for name in _finished_lines(kept):
+                (kept / name).rename(tmp / name)
+                moved.append(name)
+        except BaseException:
+            for name in moved:
+                (tmp / name).rename(kept / name)
+            raise
+    shutil.rmtree(kept, ignore_errors=True)
     return {"out": out, "lines": rows, "failed": failed, "bad_input": bad_input,
-            "work_list": work, "name": manifest.name}
+            "reused": reused, "work_list": work, "name": manifest.name}
 
 
 def print_network_summary(console: Any, result: dict, units: str = "metric") -> None:

@@ -232,3 +232,142 @@ def test_work_list_keeps_its_columns_when_no_line_has_findings(tmp_path):
     columns, rows = network_work_list({})
     assert rows == [] and columns[:2] == ["network_priority", "line"]
     assert columns[2:2 + len(VIOLATION_COLUMNS)] == VIOLATION_COLUMNS
+
+
+# ------------------------------------------------------------------- an interrupted run resumed
+@pytest.fixture
+def interrupted(tmp_path_factory):
+    """The sample network stopped (as by Ctrl-C) when its second line starts: the first line
+    is finished (made for each test: the resumed run uses it up)."""
+    import contextlib
+    import io
+
+    import clearaudit.pipeline as pipeline
+    from clearaudit.network import run_network
+
+    tmp = tmp_path_factory.mktemp("interrupted")
+    manifest = _manifest(tmp)
+    out = tmp / "out"
+    real = pipeline.run_audit
+
+    def stop_at_south(options, **kw):
+        if Path(options.out).name == "south-230":
+            raise KeyboardInterrupt
+        return real(options, **kw)
+
+    patch = pytest.MonkeyPatch()
+    patch.setattr(pipeline, "run_audit", stop_at_south)
+    err = io.StringIO()
+    try:
+        with contextlib.redirect_stderr(err), pytest.raises(KeyboardInterrupt):
+            run_network(manifest, out)
+    finally:
+        patch.undo()
+    return tmp, manifest, out, err.getvalue()
+
+
+def _audit_options(tmp: Path, **changes):
+    """The options run_network gives the north line of :func:`_manifest` (in this process)."""
+    from dataclasses import replace
+
+    from clearaudit.network import kept_lines_folder
+    from clearaudit.pipeline import AuditOptions
+
+    options = AuditOptions(clouds=[tmp / "north" / "north.laz"],
+                           out=kept_lines_folder(tmp / "out") / "north-230",
+                           line_file=tmp / "north" / "north.line.toml")
+    return replace(options, **changes)
+
+
+def test_a_kept_line_is_reused_only_with_the_same_inputs_options_version_and_mode(
+        interrupted, monkeypatch):
+    import clearaudit.network as network
+    import clearaudit.pipeline as pipeline
+    from clearaudit.network import kept_lines_folder, reuse_problem
+
+    tmp, _, out, _ = interrupted
+    folder = kept_lines_folder(out) / "north-230"
+    assert reuse_problem(folder, _audit_options(tmp)) is None
+    assert reuse_problem(folder, _audit_options(tmp, voltage_kv=115.0)) == \
+        "its options differ (voltage_kv)"
+    assert "tiled" in reuse_problem(folder, _audit_options(tmp, tiled=True))
+    # the engine changes no result: its options are not compared
+    assert reuse_problem(folder, _audit_options(tmp, threads=1, scheduler=None)) is None
+    extra = _audit_options(tmp, clouds=[tmp / "north" / "north.laz",
+                                        tmp / "south" / "south.laz"])
+    assert reuse_problem(folder, extra) == "the list of its point cloud files has changed"
+    line_file = tmp / "north" / "north.line.toml"
+    text = line_file.read_bytes()
+    try:
+        line_file.write_bytes(text + b"\n# a comment\n")
+        assert reuse_problem(folder, _audit_options(tmp)) == f"{line_file} has changed or is missing"
+    finally:
+        line_file.write_bytes(text)
+    assert reuse_problem(folder, _audit_options(tmp)) is None
+    monkeypatch.setattr(pipeline, "choose_mode", lambda *a: (True, "test"))
+    assert reuse_problem(folder, _audit_options(tmp)) == \
+        "it ran in-memory, this run would be tiled"
+    monkeypatch.undo()
+    monkeypatch.setattr(network, "__version__", "0.0.1")
+    assert reuse_problem(folder, _audit_options(tmp)).startswith("it was written by clearaudit")
+
+
+def test_an_interrupted_network_run_resumes_with_the_lines_it_finished(interrupted, network_run,
+                                                                      monkeypatch, capsys):
+    import clearaudit.pipeline as pipeline
+    from clearaudit.network import kept_lines_folder
+
+    tmp, manifest, out, err = interrupted
+    kept = kept_lines_folder(out)
+    # the interrupted run wrote no network folder; the finished line waits beside it
+    assert not out.exists()
+    assert sorted(p.name for p in kept.iterdir()) == ["north-230"]
+    assert (kept / "north-230" / "run.json").exists()
+    assert "1 finished line(s) kept in" in err and "--resume" in err
+    # without --resume the kept line stops the run before any work, and nothing is lost
+    assert main(["network", str(manifest), "--out", str(out)]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1 and "--resume" in lines[0] and str(kept) in lines[0]
+    assert not out.exists() and (kept / "north-230" / "run.json").exists()
+    # with --resume only the line left is audited
+    real = pipeline.run_audit
+    audited = []
+
+    def counting(options, **kw):
+        audited.append(Path(options.out).name)
+        return real(options, **kw)
+
+    monkeypatch.setattr(pipeline, "run_audit", counting)
+    assert main(["network", str(manifest), "--out", str(out), "--resume"]) == 0
+    assert audited == ["south-230"]
+    assert not kept.exists()
+    rows = {r["line"]: r for r in _rows(out / "lines.csv")}
+    assert rows["north-230"]["reused"] == "yes" and rows["south-230"]["reused"] == ""
+    assert all(r["status"] == "ok" for r in rows.values())
+    assert json.loads((out / "network.json").read_text())["reused"] == ["north-230"]
+    # the same results as the run that was never interrupted
+    whole, _ = network_run
+    for name in ("north-230", "south-230"):
+        for f in ("spans.csv", "violations.csv", "hazard_trees.csv"):
+            assert (out / name / f).read_bytes() == (whole / name / f).read_bytes()
+    assert (out / "work_list.csv").read_bytes() == (whole / "work_list.csv").read_bytes()
+    for column in ("spans", "violations", "hazard_trees", "largest_deficit_m"):
+        assert [r[column] for r in rows.values()] == \
+            [r[column] for r in _rows(whole / "lines.csv")]
+
+
+def test_a_run_stopped_before_any_line_finished_leaves_nothing(tmp_path, monkeypatch, capsys):
+    import clearaudit.pipeline as pipeline
+    from clearaudit.network import kept_lines_folder
+
+    manifest = _manifest(tmp_path)
+    out = tmp_path / "out"
+
+    def stop(options, **kw):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(pipeline, "run_audit", stop)
+    assert main(["network", str(manifest), "--out", str(out)]) == 130
+    assert capsys.readouterr().err.strip().splitlines() == ["clearaudit: interrupted"]
+    assert not out.exists() and not kept_lines_folder(out).exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["network.toml", "north", "south"]
