@@ -125,7 +125,8 @@ def cmd_network(args: argparse.Namespace) -> int:
     result = run_network(args.manifest, args.out, workers=args.workers, scheduler=args.scheduler,
                          threads=args.threads, skip_report=args.no_report,
                          overwrite=args.overwrite, units=args.units, work_dir=args.work_dir,
-                         resume=args.resume, console=console)
+                         resume=args.resume, lines_at_once=args.lines_at_once,
+                         console=console)
     print_network_summary(console, result, args.units)
     # the lines that failed were named on stderr as they failed; the others are complete
     if result["bad_input"]:
@@ -260,6 +261,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "--scheduler, storage every worker shares)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--no-report", action="store_true", help="skip the HTML reports")
+    p.add_argument("--lines-at-once", type=int, default=1, metavar="N",
+                   help="with --workers or --scheduler, audit N lines side by side (each "
+                        "line's results are those it has alone; a large cluster is kept busy "
+                        "between one line's stages and by lines of few tiles)")
     p.add_argument("--resume", action="store_true",
                    help="reuse the lines an interrupted run of the same command finished (kept "
                         "beside --out until the last line has run) when their inputs, options "

@@ -20,12 +20,14 @@ from __future__ import annotations
 import logging
 import math
 import os
+import threading
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
 from .errors import InputError
+from .threads import SharedSetting
 
 log = logging.getLogger(__name__)
 
@@ -33,6 +35,27 @@ Task = tuple[Callable[..., Any], tuple, dict]
 
 #: Seconds to wait for a scheduler given with ``--scheduler``.
 CONNECT_TIMEOUT_S = 10.0
+
+_STOP = threading.Event()
+
+
+@contextmanager
+def stop_runs() -> Iterator[None]:
+    """While the block runs, the runs of this process stop at their engine's next step
+    (:func:`check_stop`): the lines of a network run side by side on threads, when one
+    of them, or the user, stops the run."""
+    _STOP.set()
+    try:
+        yield
+    finally:
+        _STOP.clear()
+
+
+def check_stop() -> None:
+    """Raise ``KeyboardInterrupt`` inside :func:`stop_runs` (a run's cleanup then runs as
+    for Ctrl-C)."""
+    if _STOP.is_set():
+        raise KeyboardInterrupt("stopped with the other lines of the run")
 
 
 class Engine:
@@ -119,10 +142,12 @@ class InProcessEngine(Engine):
     def run(self, tasks: Sequence[Task], costs: Sequence[float] | None = None
             ) -> Iterator[tuple[int, Any]]:
         order = start_order(len(tasks), costs, self.threads)
+        check_stop()
         if self.threads == 1 or len(tasks) <= 1:
             for k in order:
                 fn, args, kwargs = tasks[k]
                 yield k, fn(*args, **kwargs)
+                check_stop()
             return
         from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
 
@@ -138,6 +163,7 @@ class InProcessEngine(Engine):
                 # in position order among those done together
                 for fut in sorted(done, key=futures.__getitem__):
                     yield futures[fut], fut.result()
+                check_stop()
         finally:
             pool.shutdown(wait=True, cancel_futures=True)
 
@@ -338,6 +364,7 @@ class DaskEngine(Engine):
         if self._final_memory is not None:
             raise RuntimeError("the Dask engine was finished; no more tasks can run")
 
+        check_stop()
         futures = {}
         order = start_order(len(tasks), costs, self.n_workers)
         for rank, k in enumerate(order):
@@ -352,6 +379,7 @@ class DaskEngine(Engine):
                     result = fut.result()
                     if isinstance(result, _TaskFailure):
                         raise result.exc
+                    check_stop()
                     yield futures[fut], result
         finally:
             for fut in futures:
@@ -648,13 +676,22 @@ def _quiet_client() -> Iterator[None]:
     """The Dask client's own log messages kept off the console while a run uses it: its
     failures reach the user as the run's one-line error (:class:`EngineError`), and a lost
     scheduler also had it print "Failed to reconnect to scheduler" beside that line."""
+    with _QUIET_CLIENT.hold():  # runs side by side (network lines): the first sets, the last restores
+        yield
+
+
+def _client_log_quiet() -> int:
     log = logging.getLogger("distributed.client")
     level = log.level
     log.setLevel(logging.CRITICAL)
-    try:
-        yield
-    finally:
-        log.setLevel(level)
+    return level
+
+
+def _client_log_restore(level: int) -> None:
+    logging.getLogger("distributed.client").setLevel(level)
+
+
+_QUIET_CLIENT = SharedSetting(_client_log_quiet, _client_log_restore)
 
 
 __all__ = ["DaskEngine", "Engine", "InProcessEngine", "LocalClusterStart", "check_engine",

@@ -295,6 +295,49 @@ LINE_COLUMNS = ["line", "status", "line_name", "voltage_kv", "spans", "wire_span
 
 
 # ------------------------------------------------------------------------------------- the run
+@dataclass
+class _LineResult:
+    """What one line of a network run gave: its row of lines.csv, its findings (None when it
+    failed), its error, whether it was kept from an interrupted run, a note for the console."""
+
+    row: dict[str, Any]
+    findings: Findings | None
+    error: ClearauditError | None = None
+    reused: bool = False
+    note: str | None = None
+
+
+def _each_line(one: Any, lines: list[NetworkLine], at_once: int):
+    """``(k, one(k + 1, lines[k]))`` for every line, in the order they finish: one after
+    the other, or ``at_once`` side by side on threads of this process.
+
+    Side by side, a stop (Ctrl-C, an error) asks the lines still running to stop at their
+    engine's next step (:func:`clearaudit.distributed.stop_runs`) and waits for them, so each
+    removes its own partial folders before the stop goes on.
+    """
+    if at_once <= 1 or len(lines) <= 1:
+        for k, line in enumerate(lines):
+            yield k, one(k + 1, line)
+        return
+    from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+
+    from .distributed import stop_runs
+
+    pool = ThreadPoolExecutor(min(at_once, len(lines)), thread_name_prefix="clearaudit-line")
+    futures = {pool.submit(one, k + 1, line): k for k, line in enumerate(lines)}
+    try:
+        pending = set(futures)
+        while pending:
+            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in sorted(done, key=futures.__getitem__):
+                yield futures[fut], fut.result()
+    except BaseException:
+        with stop_runs():
+            pool.shutdown(wait=True, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+
+
 def kept_lines_folder(out: str | Path) -> Path:
     """Where a network run keeps the lines it has finished until the last line has run:
     ``.<out name>.lines`` beside ``out``. An interrupted run leaves them there for
@@ -365,13 +408,17 @@ def _finished_lines(folder: Path) -> list[str]:
 def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                 scheduler: str | None = None, threads: int = 0, skip_report: bool = False,
                 overwrite: bool = False, units: str = "metric", work_dir: str | Path | None = None,
-                resume: bool = False, console: Any = None) -> dict:
+                resume: bool = False, lines_at_once: int = 1, console: Any = None) -> dict:
     """Audit every line of a manifest into ``out/<line name>/`` and write the network files.
 
     Returns a dict with ``lines`` (the rows of lines.csv), ``failed`` (names; ``bad_input``
     those whose input was at fault), ``reused`` (names), ``work_list`` and ``out``.
     Lines run one after the other, each with all of the engine's workers; with ``workers``
     one local Dask cluster serves every line.
+
+    ``lines_at_once`` lines run side by side on a Dask engine (a line alone leaves most of a
+    large cluster idle: its few tiles, and its driver's own steps between the stages); each
+    line's results are the same as when it runs alone (:func:`_each_line`).
 
     Each finished line is kept in :func:`kept_lines_folder` until the last line has run; an
     interrupted run leaves them there. With ``resume`` a kept line is taken as it is when
@@ -392,6 +439,12 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
 
     manifest = load_manifest(manifest_path)
     out = Path(out)
+    if isinstance(lines_at_once, bool) or not isinstance(lines_at_once, int) or lines_at_once < 1:
+        raise InputError("--lines-at-once", f"must be a positive count, not {lines_at_once}")
+    if lines_at_once > 1 and not (workers or scheduler):
+        raise InputError("--lines-at-once", "runs lines side by side on a Dask engine: give "
+                                            "--workers or --scheduler (in this process each "
+                                            "line already uses every core)")
     # the engine's options once, before anything is written (not once per line)
     check_engine(SimpleNamespace(threads=threads, workers=workers, scheduler=scheduler))
     refuse_out_over_inputs(out, [manifest.path] + [p for line in manifest.lines for p in
@@ -430,8 +483,12 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
 
                 cluster = LocalClusterStart(workers)
                 address = cluster.client().scheduler.address
-            for k, line in enumerate(manifest.lines, start=1):
-                if console is not None:
+            at_once = max(1, int(lines_at_once))
+            quiet = at_once > 1  # progress bars of lines side by side would overwrite
+
+            def one(k: int, line: NetworkLine) -> _LineResult:
+                """Audit (or take from the kept lines) one line; its result for the table."""
+                if console is not None and not quiet:
                     console.print(f"[bold]line {k} of {len(manifest.lines)}: {line.name}[/]")
                 t0 = time.perf_counter()
                 folder = kept / line.name
@@ -442,6 +499,7 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                     scheduler=address, threads=0 if address else threads,
                     skip_report=skip_report, tiled=line.tiled,
                     work_dir=None if work_dir is None else Path(work_dir))
+                note = None
                 if folder.is_dir():
                     try:
                         problem = reuse_problem(folder, options)
@@ -449,36 +507,50 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                         problem = str(exc)
                     if problem is None:
                         run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
-                        findings[line.name] = read_findings(folder)
-                        rows.append(_line_row(line, "ok", sum(s.get("seconds", 0.0)
-                                                              for s in run.get("stages", [])),
-                                              folder, findings=findings[line.name],
-                                              reused=True))
-                        reused.append(line.name)
-                        if console is not None:
-                            console.print(f"{line.name}: kept from the interrupted run")
-                        continue
-                    if console is not None:
-                        console.print(f"{line.name}: audited again: {problem}")
+                        found = read_findings(folder)
+                        row = _line_row(line, "ok", sum(s.get("seconds", 0.0)
+                                                        for s in run.get("stages", [])),
+                                        folder, findings=found, reused=True)
+                        return _LineResult(row, found, reused=True,
+                                           note=f"{line.name}: kept from the interrupted run")
+                    note = f"{line.name}: audited again: {problem}"
+                    if console is not None and not quiet:
+                        console.print(note)
+                        note = None
                     shutil.rmtree(folder)
                 try:
-                    run_audit(options, console=console, show_summary=False)
+                    run_audit(options, console=None if quiet else console, show_summary=False)
                 except ClearauditError as exc:  # bad input, or a stage that cannot finish
-                    failed.append(line.name)
-                    if isinstance(exc, InputError):
-                        bad_input.append(line.name)
-                    rows.append(_line_row(line, "failed", time.perf_counter() - t0, None,
-                                          str(exc)))
-                    print(f"clearaudit: error: line {line.name!r}: {exc}", file=sys.stderr)
-                    continue
-                findings[line.name] = read_findings(folder)
-                rows.append(_line_row(line, "ok", time.perf_counter() - t0, folder,
-                                      findings=findings[line.name]))
-                if console is not None:
-                    r = rows[-1]
+                    return _LineResult(_line_row(line, "failed", time.perf_counter() - t0,
+                                                 None, str(exc)),
+                                       None, error=exc, note=note)
+                found = read_findings(folder)
+                return _LineResult(_line_row(line, "ok", time.perf_counter() - t0, folder,
+                                             findings=found), found, note=note)
+
+            results: list[_LineResult | None] = [None] * len(manifest.lines)
+            for k, res in _each_line(one, manifest.lines, at_once):
+                results[k] = res
+                line = manifest.lines[k]
+                if res.note and console is not None:
+                    console.print(res.note)
+                if res.error is not None:
+                    print(f"clearaudit: error: line {line.name!r}: {res.error}", file=sys.stderr)
+                elif console is not None and not res.reused:
+                    r = res.row
                     console.print(f"{line.name}: {r['spans']} spans, {r['violations']} "
                                   f"violations, {r['hazard_trees']} hazard trees "
                                   f"({r['seconds']:.1f} s)")
+            for line, res in zip(manifest.lines, results, strict=True):
+                rows.append(res.row)
+                if res.findings is not None:
+                    findings[line.name] = res.findings
+                if res.reused:
+                    reused.append(line.name)
+                if res.error is not None:
+                    failed.append(line.name)
+                    if isinstance(res.error, InputError):
+                        bad_input.append(line.name)
         except BaseException:
             done = _finished_lines(kept)
             if done:
@@ -503,7 +575,7 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
             "options": {"workers": workers, "scheduler": scheduler, "threads": threads,
                         "skip_report": skip_report, "units": units,
                         "work_dir": None if work_dir is None else str(work_dir),
-                        "resume": resume},
+                        "resume": resume, "lines_at_once": lines_at_once},
             "packages": package_versions(), "python": sys.version.split()[0],
             "lines": rows, "failed": failed, "reused": reused, "work_list_rows": len(work),
             "ranking": "each line's findings in their own priority order, merged across lines "

@@ -99,6 +99,9 @@ class RunRecord:
 
     @contextmanager
     def stage(self, name: str, engine=None):
+        from .distributed import check_stop
+
+        check_stop()  # lines of a network side by side: one stopped, all stop
         t0 = time.perf_counter()
         c0 = time.process_time()
         entry: dict[str, Any] = {"name": name}

@@ -371,3 +371,76 @@ def test_a_run_stopped_before_any_line_finished_leaves_nothing(tmp_path, monkeyp
     assert capsys.readouterr().err.strip().splitlines() == ["clearaudit: interrupted"]
     assert not out.exists() and not kept_lines_folder(out).exists()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["network.toml", "north", "south"]
+
+
+# ----------------------------------------------------------------------- lines side by side
+def test_lines_side_by_side_on_a_cluster_give_each_lines_own_results(network_run, tmp_path,
+                                                                     monkeypatch):
+    import threading
+
+    import clearaudit.pipeline as pipeline
+
+    whole, _ = network_run
+    manifest = _manifest(tmp_path)
+    # north in memory in this process (as in network_run), south's tiles on the cluster,
+    # both at once
+    text = manifest.read_text()
+    manifest.write_text(text.replace('line_file = "north/north.line.toml"\n',
+                                     'line_file = "north/north.line.toml"\ntiled = false\n'))
+    real = pipeline.run_audit
+    running, most = set(), [0]
+    lock = threading.Lock()
+
+    def watched(options, **kw):
+        with lock:
+            running.add(Path(options.out).name)
+            most[0] = max(most[0], len(running))
+        try:
+            return real(options, **kw)
+        finally:
+            with lock:
+                running.discard(Path(options.out).name)
+
+    monkeypatch.setattr(pipeline, "run_audit", watched)
+    out = tmp_path / "out"
+    assert main(["network", str(manifest), "--out", str(out), "--workers", "2",
+                 "--lines-at-once", "2"]) == 0
+    assert most[0] == 2  # the two lines did run at once
+    rows = _rows(out / "lines.csv")
+    assert [r["line"] for r in rows] == ["north-230", "south-230"]  # the manifest's order
+    for name in ("north-230", "south-230"):
+        for f in ("spans.csv", "violations.csv", "hazard_trees.csv"):
+            assert (out / name / f).read_bytes() == (whole / name / f).read_bytes(), (name, f)
+    assert (out / "work_list.csv").read_bytes() == (whole / "work_list.csv").read_bytes()
+    assert json.loads((out / "network.json").read_text())["options"]["lines_at_once"] == 2
+
+
+def test_lines_at_once_needs_a_cluster_and_a_positive_count(tmp_path, capsys):
+    manifest = _manifest(tmp_path)
+    out = tmp_path / "out"
+    for args, problem in ((["--lines-at-once", "2"], "Dask engine"),
+                          (["--lines-at-once", "0", "--workers", "1"], "positive count")):
+        assert main(["network", str(manifest), "--out", str(out), *args]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and err[0].startswith("clearaudit: error: --lines-at-once: ")
+        assert problem in err[0]
+        assert not out.exists()
+
+
+def test_a_stop_reaches_every_run_of_the_process_at_its_engines_next_step():
+    from clearaudit.distributed import InProcessEngine, check_stop, stop_runs
+
+    def square(x):
+        return x * x
+
+    engine = InProcessEngine(2)
+    assert sorted(r for _, r in engine.run([(square, (k,), {}) for k in range(4)])) == [0, 1, 4, 9]
+    with stop_runs():
+        with pytest.raises(KeyboardInterrupt):
+            check_stop()
+        with pytest.raises(KeyboardInterrupt):
+            list(engine.run([(square, (k,), {}) for k in range(4)]))
+        with pytest.raises(KeyboardInterrupt):
+            list(InProcessEngine(1).run([(square, (k,), {}) for k in range(4)]))
+    check_stop()  # cleared when the block ends
+    assert [r for _, r in InProcessEngine(1).run([(square, (3,), {})])] == [9]
