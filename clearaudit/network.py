@@ -484,7 +484,8 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                 cluster = LocalClusterStart(workers)
                 address = cluster.client().scheduler.address
             at_once = max(1, int(lines_at_once))
-            quiet = at_once > 1  # progress bars of lines side by side would overwrite
+            # progress bars of lines side by side would overwrite one another
+            quiet = at_once > 1 and len(manifest.lines) > 1
 
             def one(k: int, line: NetworkLine) -> _LineResult:
                 """Audit (or take from the kept lines) one line; its result for the table."""
