@@ -349,8 +349,8 @@ def kept_lines_folder(out: str | Path) -> Path:
 #: Options of a line's audit not compared as text when a kept line is reused: the files are
 #: compared by their contents (:func:`reuse_problem`), and the engine changes no result but
 #: the run's mode (tiled or in memory), which is compared itself.
-_NOT_COMPARED = ("clouds", "out", "line_file", "structures_file", "work_dir", "overwrite",
-                 "workers", "scheduler", "threads", "line_config", "rule_set")
+_NOT_COMPARED = ("clouds", "out", "final_out", "line_file", "structures_file", "work_dir",
+                 "overwrite", "workers", "scheduler", "threads", "line_config", "rule_set")
 
 
 def reuse_problem(folder: Path, options: Any) -> str | None:
@@ -499,7 +499,8 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                     trust_classes=line.trust_classes, structures_file=line.structures,
                     scheduler=address, threads=0 if address else threads,
                     skip_report=skip_report, tiled=line.tiled,
-                    work_dir=None if work_dir is None else Path(work_dir))
+                    work_dir=None if work_dir is None else Path(work_dir),
+                    final_out=out / line.name)
                 note = None
                 if folder.is_dir():
                     try:

@@ -78,6 +78,10 @@ class AuditOptions:
     in_memory_max_points: int = 20_000_000
     in_memory_max_footprint_m2: float = 25e6  # 25 km² of bounding box (5 km × 5 km)
     work_dir: Path | None = None
+    #: Where the output folder will be once its caller moves it into place (a network run
+    #: keeps each line beside its own folder until the last line has run); None: ``out``.
+    #: Recorded in run.json as ``output_folder`` and named by the report.
+    final_out: Path | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {k: (str(v) if isinstance(v, Path) else
@@ -574,7 +578,7 @@ def _reserve_bytes(paths: list[Path], total_points: int, tiled: bool) -> int:
 def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOptions) -> None:
     """Write run.json, then the report (which reads it), then run.json again with the report's
     stage time. The report names the final output folder, not the temporary one."""
-    record.extra["output_folder"] = str(options.out)
+    record.extra["output_folder"] = str(options.final_out or options.out)
 
     def dump() -> None:
         (tmp / "run.json").write_text(json.dumps(record.to_dict(), indent=1,

@@ -72,6 +72,9 @@ def test_each_line_gets_a_contract_folder_and_a_row(network_run):
     checker = _checker()
     for name in ("north-230", "south-230"):
         assert (out / name / "spans.csv").exists()
+        # the run record and the report name the line's folder where it ends up
+        run = json.loads((out / name / "run.json").read_text())
+        assert run["output_folder"] == str(out / name)
         if checker is not None:
             r = subprocess.run([sys.executable, str(checker), str(out / name)],
                                capture_output=True, text=True, timeout=120)
