@@ -362,7 +362,7 @@ def reuse_problem(folder: Path, options: Any) -> str | None:
     as recorded in its run.json) and the same mode (tiled or in memory) as
     :func:`clearaudit.pipeline.choose_mode` would choose now.
     """
-    from .pipeline import _header_extent, choose_mode
+    from .pipeline import _header_extent, available_memory_bytes, choose_mode
     from .threads import inner_threads, run_threads
 
     try:
@@ -394,7 +394,8 @@ def reuse_problem(folder: Path, options: Any) -> str | None:
     paths = resolve_inputs(options.clouds)
     total, footprint = _header_extent(paths, options.crs)
     with run_threads(options.threads):
-        tiled, _ = choose_mode(options, total, footprint, inner_threads())
+        tiled, _ = choose_mode(options, total, footprint, inner_threads(),
+                               available_memory_bytes())
     mode = "tiled" if tiled else "in-memory"
     if run.get("execution", {}).get("mode") != mode:
         return f"it ran {run.get('execution', {}).get('mode')}, this run would be {mode}"

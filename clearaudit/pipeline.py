@@ -339,7 +339,8 @@ def _validate_and_run(options: AuditOptions, record: RunRecord, cluster: Any, co
     from .tiling import numpy_huge_page_requests
 
     threads = inner_threads()
-    tiled, mode_reason = choose_mode(options, total_points, footprint_m2, threads)
+    tiled, mode_reason = choose_mode(options, total_points, footprint_m2, threads,
+                                     available_memory_bytes())
     record.extra["execution"] = {"mode": "tiled" if tiled else "in-memory",
                                  "mode_reason": mode_reason,
                                  "threads": threads,
@@ -596,8 +597,56 @@ def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOption
     dump()
 
 
+#: Peak resident memory of the in-memory run per point of the headers, to foresee whether a
+#: survey fits: 135-137 B/point measured on p10M (docs/scaling.md), the bound of the scaling
+#: targets 150. [bytes]
+IN_MEMORY_BYTES_PER_POINT = 150
+#: The most of the memory still available to the process an in-memory run may plan to take.
+IN_MEMORY_SHARE = 0.6
+
+
+def available_memory_bytes(meminfo: str | Path = "/proc/meminfo",
+                           cgroup: str | Path = "/sys/fs/cgroup") -> int | None:
+    """Memory this process can still take: Linux ``MemAvailable``, and in a container whose
+    memory is limited (cgroup v2 ``memory.max`` or v1 ``memory.limit_in_bytes``) no more than
+    the limit less the group's working set (its usage less its inactive file pages, which the
+    kernel drops first). None where neither is known. [bytes]
+
+    ``meminfo`` and ``cgroup`` (the cgroup file system's mount) are the files read.
+    """
+    found: list[int] = []
+    try:
+        with open(meminfo, encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    found.append(int(line.split()[1]) * 1024)
+                    break
+    except (OSError, ValueError, IndexError):
+        pass
+    for limit_file, usage_file, stat_file, inactive in (
+            ("memory.max", "memory.current", "memory.stat", "inactive_file"),
+            ("memory/memory.limit_in_bytes", "memory/memory.usage_in_bytes",
+             "memory/memory.stat", "total_inactive_file")):
+        root = Path(cgroup)
+        try:
+            text = (root / limit_file).read_text(encoding="ascii").strip()
+            if text == "max" or int(text) >= 1 << 60:  # no limit
+                continue
+            usage = int((root / usage_file).read_text(encoding="ascii").strip())
+            dropped = 0
+            for line in (root / stat_file).read_text(encoding="ascii").splitlines():
+                key, _, value = line.partition(" ")
+                if key == inactive:
+                    dropped = int(value)
+                    break
+            found.append(max(0, int(text) - (usage - dropped)))
+        except (OSError, ValueError):
+            continue
+    return min(found) if found else None
+
+
 def choose_mode(options: AuditOptions, total_points: int, footprint_m2: float,
-                threads: int) -> tuple[bool, str]:
+                threads: int, available_bytes: int | None = None) -> tuple[bool, str]:
     """Tiled or in-memory run, and why (recorded in ``run.json`` ``execution.mode_reason``).
 
     ``--tiled`` / ``tiled=False`` decide; otherwise a run is tiled on Dask, for a survey
@@ -606,7 +655,9 @@ def choose_mode(options: AuditOptions, total_points: int, footprint_m2: float,
     survey of more than ``tiled_min_points`` points: its tiles are then the run's parallel
     work, which the in-memory run's whole-cloud passes do not share out. On one thread the
     in-memory run stays the faster up to ``in_memory_max_points`` (docs/scaling.md, "Which
-    run").
+    run"). With ``available_bytes`` (:func:`available_memory_bytes`) a survey whose in-memory
+    run would take more than ``IN_MEMORY_SHARE`` of it (``IN_MEMORY_BYTES_PER_POINT`` per
+    header point) runs tiled too: a laptop busy with other work, or a container's limit.
     """
     if options.tiled is not None:
         return bool(options.tiled), ("asked for (--tiled)" if options.tiled
@@ -619,6 +670,11 @@ def choose_mode(options: AuditOptions, total_points: int, footprint_m2: float,
     if footprint_m2 > options.in_memory_max_footprint_m2:
         return True, (f"a bounding box of {footprint_m2 / 1e6:.1f} km², more than the "
                       f"{options.in_memory_max_footprint_m2 / 1e6:g} km² gridded in memory")
+    need = total_points * IN_MEMORY_BYTES_PER_POINT
+    if available_bytes is not None and need > IN_MEMORY_SHARE * available_bytes:
+        return True, (f"{total_points} points in the headers would need up to "
+                      f"{need / 1e9:.1f} GB in memory, more than {IN_MEMORY_SHARE:.0%} of the "
+                      f"{available_bytes / 1e9:.1f} GB available")
     if total_points > options.tiled_min_points:
         if threads >= 2:
             return True, (f"{total_points} points in the headers, more than "

@@ -7,6 +7,7 @@ functions, which must give identical outputs.
 from __future__ import annotations
 
 import csv
+import os
 import time
 from pathlib import Path
 
@@ -265,6 +266,49 @@ def test_choose_mode_rules(tmp_path):
         opts = AuditOptions(clouds=[], out=tmp_path / "o", **kw)
         got, reason = choose_mode(opts, points, area, threads)
         assert got is tiled and why in reason, (kw, points, area, threads, reason)
+    # with the memory still available: 150 B a header point may take at most 60 % of it
+    # (the in-memory run's measured 135-137 B/point, docs/scaling.md)
+    gb = 1e9
+    for kw, points, threads, available, tiled, why in (
+            ({}, 1_000_000, 1, 1.0 * gb, False, "at most"),           # 0.15 GB of 0.6
+            ({}, 1_000_000, 1, 0.2 * gb, True, "0.2 GB available"),   # 0.15 GB > 0.12
+            ({}, 4_000_000, 1, 0.99 * gb, True, "up to 0.6 GB"),      # 0.6 GB > 0.594
+            ({}, 4_000_000, 1, 1.01 * gb, False, "on one thread"),    # 0.6 GB < 0.606
+            ({"tiled": False}, 4_000_000, 1, 0.1 * gb, False, "asked for"),  # the user decides
+            ({}, 1_000_000, 2, None, False, "at most")):                     # not known
+        opts = AuditOptions(clouds=[], out=tmp_path / "o", **kw)
+        got, reason = choose_mode(opts, points, 1e6, threads, available)
+        assert got is tiled and why in reason, (kw, points, available, reason)
+
+
+def test_available_memory_is_the_least_of_the_machines_and_the_containers(tmp_path):
+    from clearaudit.pipeline import available_memory_bytes
+
+    got = available_memory_bytes()
+    assert got is None or 0 <= got <= os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    meminfo = tmp_path / "meminfo"
+    meminfo.write_text("MemTotal: 100 kB\nMemAvailable: 8000000 kB\n")
+    # a cgroup v2 limit of 2 GiB with 1.5 GiB used, 0.25 GiB of it inactive file pages
+    v2 = tmp_path / "v2"
+    v2.mkdir()
+    (v2 / "memory.max").write_text(f"{2 << 30}\n")
+    (v2 / "memory.current").write_text(f"{3 << 29}\n")
+    (v2 / "memory.stat").write_text(f"anon 1\ninactive_file {1 << 28}\nactive_file 5\n")
+    # min(8 000 000 kB, 2 GiB - (1.5 GiB - 0.25 GiB)) = 0.75 GiB
+    assert available_memory_bytes(meminfo, v2) == (2 << 30) - ((3 << 29) - (1 << 28))
+    (v2 / "memory.max").write_text("max\n")
+    assert available_memory_bytes(meminfo, v2) == 8_000_000 * 1024
+    # cgroup v1: no limit is a huge number
+    v1 = tmp_path / "v1" / "memory"
+    v1.mkdir(parents=True)
+    (v1 / "memory.limit_in_bytes").write_text("9223372036854771712\n")
+    (v1 / "memory.usage_in_bytes").write_text("4099342336\n")
+    (v1 / "memory.stat").write_text("total_inactive_file 0\n")
+    assert available_memory_bytes(meminfo, v1.parent) == 8_000_000 * 1024
+    (v1 / "memory.limit_in_bytes").write_text(f"{1 << 30}\n")
+    (v1 / "memory.usage_in_bytes").write_text(f"{1 << 29}\n")
+    assert available_memory_bytes(meminfo, v1.parent) == 1 << 29
+    assert available_memory_bytes(tmp_path / "none", tmp_path / "none") is None
 
 
 def test_in_memory_flag(corridor, tmp_path, capsys):
