@@ -606,13 +606,16 @@ IN_MEMORY_SHARE = 0.6
 
 
 def available_memory_bytes(meminfo: str | Path = "/proc/meminfo",
-                           cgroup: str | Path = "/sys/fs/cgroup") -> int | None:
-    """Memory this process can still take: Linux ``MemAvailable``, and in a container whose
-    memory is limited (cgroup v2 ``memory.max`` or v1 ``memory.limit_in_bytes``) no more than
-    the limit less the group's working set (its usage less its inactive file pages, which the
-    kernel drops first). None where neither is known. [bytes]
+                           cgroup: str | Path = "/sys/fs/cgroup",
+                           own_cgroup: str | Path = "/proc/self/cgroup") -> int | None:
+    """Memory this process can still take: Linux ``MemAvailable``, and where its memory
+    control group or one above it sets a limit (cgroup v2 ``memory.max``, v1
+    ``memory.limit_in_bytes``: containers, batch jobs) no more than that limit less the
+    group's working set (its usage less its inactive file pages, which the kernel drops
+    first). None where none of these is known. [bytes]
 
-    ``meminfo`` and ``cgroup`` (the cgroup file system's mount) are the files read.
+    ``meminfo``, ``cgroup`` (the cgroup file system's mount) and ``own_cgroup`` (the
+    process's groups) are the files read.
     """
     found: list[int] = []
     try:
@@ -623,25 +626,39 @@ def available_memory_bytes(meminfo: str | Path = "/proc/meminfo",
                     break
     except (OSError, ValueError, IndexError):
         pass
-    for limit_file, usage_file, stat_file, inactive in (
-            ("memory.max", "memory.current", "memory.stat", "inactive_file"),
-            ("memory/memory.limit_in_bytes", "memory/memory.usage_in_bytes",
-             "memory/memory.stat", "total_inactive_file")):
-        root = Path(cgroup)
-        try:
-            text = (root / limit_file).read_text(encoding="ascii").strip()
-            if text == "max" or int(text) >= 1 << 60:  # no limit
+    groups: dict[str, str] = {}  # "v1" / "v2": the process's group, relative to its hierarchy
+    try:
+        for line in Path(own_cgroup).read_text(encoding="ascii").splitlines():
+            number, controllers, path = line.split(":", 2)
+            if number == "0" and controllers == "":
+                groups["v2"] = path
+            elif "memory" in controllers.split(","):
+                groups["v1"] = path
+    except (OSError, ValueError):
+        pass
+    for version, mount, limit_file, usage_file, inactive in (
+            ("v2", Path(cgroup), "memory.max", "memory.current", "inactive_file"),
+            ("v1", Path(cgroup) / "memory", "memory.limit_in_bytes", "memory.usage_in_bytes",
+             "total_inactive_file")):
+        rel = groups.get(version, "/").strip("/")
+        # the process's group and every group above it, up to the hierarchy's root
+        folders = [mount / rel] if rel else []
+        folders += [mount / p for p in Path(rel).parents if str(p) != "."] + [mount]
+        for folder in dict.fromkeys(folders):
+            try:
+                text = (folder / limit_file).read_text(encoding="ascii").strip()
+                if text == "max" or int(text) >= 1 << 60:  # no limit here
+                    continue
+                usage = int((folder / usage_file).read_text(encoding="ascii").strip())
+                dropped = 0
+                for line in (folder / "memory.stat").read_text(encoding="ascii").splitlines():
+                    key, _, value = line.partition(" ")
+                    if key == inactive:
+                        dropped = int(value)
+                        break
+                found.append(max(0, int(text) - (usage - dropped)))
+            except (OSError, ValueError):
                 continue
-            usage = int((root / usage_file).read_text(encoding="ascii").strip())
-            dropped = 0
-            for line in (root / stat_file).read_text(encoding="ascii").splitlines():
-                key, _, value = line.partition(" ")
-                if key == inactive:
-                    dropped = int(value)
-                    break
-            found.append(max(0, int(text) - (usage - dropped)))
-        except (OSError, ValueError):
-            continue
     return min(found) if found else None
 
 

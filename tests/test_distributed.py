@@ -295,20 +295,34 @@ def test_available_memory_is_the_least_of_the_machines_and_the_containers(tmp_pa
     (v2 / "memory.current").write_text(f"{3 << 29}\n")
     (v2 / "memory.stat").write_text(f"anon 1\ninactive_file {1 << 28}\nactive_file 5\n")
     # min(8 000 000 kB, 2 GiB - (1.5 GiB - 0.25 GiB)) = 0.75 GiB
-    assert available_memory_bytes(meminfo, v2) == (2 << 30) - ((3 << 29) - (1 << 28))
+    none = tmp_path / "none"
+    assert available_memory_bytes(meminfo, v2, none) == (2 << 30) - ((3 << 29) - (1 << 28))
     (v2 / "memory.max").write_text("max\n")
-    assert available_memory_bytes(meminfo, v2) == 8_000_000 * 1024
+    assert available_memory_bytes(meminfo, v2, none) == 8_000_000 * 1024
+    # the process's own group (/proc/self/cgroup) and the groups above it: the least counts
+    own = tmp_path / "self-cgroup"
+    own.write_text("0::/jobs/audit-7\n")
+    job = v2 / "jobs" / "audit-7"
+    job.mkdir(parents=True)
+    (job / "memory.max").write_text(f"{1 << 30}\n")
+    (job / "memory.current").write_text(f"{1 << 28}\n")
+    (job / "memory.stat").write_text("inactive_file 0\n")
+    assert available_memory_bytes(meminfo, v2, own) == 3 << 28
+    (v2 / "jobs" / "memory.max").write_text(f"{1 << 29}\n")   # a tighter limit above it
+    (v2 / "jobs" / "memory.current").write_text(f"{1 << 28}\n")
+    (v2 / "jobs" / "memory.stat").write_text("inactive_file 0\n")
+    assert available_memory_bytes(meminfo, v2, own) == 1 << 28
     # cgroup v1: no limit is a huge number
     v1 = tmp_path / "v1" / "memory"
     v1.mkdir(parents=True)
     (v1 / "memory.limit_in_bytes").write_text("9223372036854771712\n")
     (v1 / "memory.usage_in_bytes").write_text("4099342336\n")
     (v1 / "memory.stat").write_text("total_inactive_file 0\n")
-    assert available_memory_bytes(meminfo, v1.parent) == 8_000_000 * 1024
+    assert available_memory_bytes(meminfo, v1.parent, none) == 8_000_000 * 1024
     (v1 / "memory.limit_in_bytes").write_text(f"{1 << 30}\n")
     (v1 / "memory.usage_in_bytes").write_text(f"{1 << 29}\n")
-    assert available_memory_bytes(meminfo, v1.parent) == 1 << 29
-    assert available_memory_bytes(tmp_path / "none", tmp_path / "none") is None
+    assert available_memory_bytes(meminfo, v1.parent, none) == 1 << 29
+    assert available_memory_bytes(none, none, none) is None
 
 
 def test_in_memory_flag(corridor, tmp_path, capsys):
