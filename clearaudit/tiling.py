@@ -672,6 +672,28 @@ def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
     return _read_record_files([f for c in cells for f in _cell_files(Path(work), c)], then)
 
 
+def read_cells_at(work: str | Path, cells: tuple[tuple[int, int], ...],
+                  positions: np.ndarray) -> np.ndarray:
+    """``read_cells(work, cells)[positions]`` (positions ascending) without reading the cells
+    whole: each file is memory-mapped and only the records asked for are copied."""
+    positions = np.asarray(positions, dtype=np.int64)
+    out = np.empty(len(positions), dtype=RECORD)
+    files = [f for c in cells for f in _cell_files(Path(work), c)]
+    sizes = np.array([f.stat().st_size // RECORD.itemsize for f in files], dtype=np.int64)
+    starts = np.concatenate([[0], np.cumsum(sizes)])
+    if len(positions) and (positions[0] < 0 or positions[-1] >= starts[-1]):
+        raise IndexError("record positions beyond the cells' records")
+    cuts = np.searchsorted(positions, starts)
+    for k, f in enumerate(files):
+        a, b = int(cuts[k]), int(cuts[k + 1])
+        if a == b:
+            continue
+        raw = np.memmap(f, dtype=_RAW, mode="r")
+        out.view(_RAW)[a:b] = raw[positions[a:b] - starts[k]]
+        del raw
+    return out
+
+
 def _read_record_files(files: list[Path], then: np.ndarray | None = None) -> np.ndarray:
     """The records of these bucket files, one after the other, then ``then``."""
     sizes = [f.stat().st_size // RECORD.itemsize for f in files]
@@ -942,12 +964,19 @@ def _labels_at(table: np.ndarray, row: int, positions: np.ndarray) -> np.ndarray
 
 
 def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
-          names: tuple[str, ...]) -> tuple[np.ndarray, int, dict[str, np.ndarray]]:
+          names: tuple[str, ...], select: Any = None
+          ) -> tuple[np.ndarray, int, dict[str, np.ndarray]]:
     """The tile's owned records followed by its context records, and per-point arrays.
 
     ``names`` are per-point arrays the tiles keep on disk (``cls``, ``rcls``, ``hag``,
     ``wire``, ``other``): the owned points' from this tile, the context points' from the tiles
     that own them.
+
+    ``select(arrays)``, when given, picks points by their arrays (a mask over owned + context
+    points): only their records are read (the owned ones gathered from the memory-mapped
+    cell files, not read whole) and only their values returned, in the same order; the
+    arrays then also hold ``"_owned_at"``, the picked owned points' positions among the
+    tile's owned points.
 
     Returns
     -------
@@ -982,15 +1011,28 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
             arrays[name].append(_labels_at(data["labels"], _SPARSE_ROWS[name], at))
         offset += n
     records = take_records(records, keep)
-    both = read_cells(work, tile.cells, then=records)
-    n_own = len(both) - len(records)
+    if select is None:
+        both = read_cells(work, tile.cells, then=records)
+        n_own = len(both) - len(records)
+    else:  # the owned count from the tile's own files, the records once the points are picked
+        n_own = sum(os.path.getsize(f) // RECORD.itemsize for c in tile.cells
+                    for f in _cell_files(work, c))
     if sparse:
         table = _load(work, tile.id, "labels")
         for name in sparse:
             own = np.full(n_own, -1, dtype=np.int64)
             own[table[0]] = table[_SPARSE_ROWS[name]]
             arrays[name][0] = own
-    return (both, n_own, {name: np.concatenate(parts) for name, parts in arrays.items()})
+    out = {name: np.concatenate(parts) for name, parts in arrays.items()}
+    if select is None:
+        return both, n_own, out
+    picked = np.asarray(select(out), dtype=bool)
+    owned_at = np.flatnonzero(picked[:n_own])
+    both = concat_records([read_cells_at(work, tile.cells, owned_at),
+                           take_records(records, picked[n_own:])])
+    out = {name: a[picked] for name, a in out.items()}
+    out["_owned_at"] = owned_at
+    return both, len(owned_at), out
 
 
 def write_model_labels(work: str | Path, tile: TileSpec, at: np.ndarray, wire: np.ndarray,
@@ -1070,14 +1112,21 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
 
     t0 = time.perf_counter()
     work = Path(work)
-    rec, n_own, arrays = _view(work, tile, tiles_by_cell, ("cls", "hag", "wire"))
+    # only the points the corrections can read or change (refine_with_model: more than
+    # 0.3 m above ground, or of a wire or hardware class) are read: the same classes as a
+    # view of every point, for about a fifth of the records on a vegetated corridor
+    rec, n_pick, arrays = _view(work, tile, tiles_by_cell, ("cls", "hag", "wire"),
+                                select=_refine_reads)
+    owned_at = arrays.pop("_owned_at")
+    cls = _load(work, tile.id, "cls").astype(np.uint8)
+    before = cls.copy()
     result = _ViewResult(arrays["cls"].astype(np.uint8), arrays["hag"].astype(np.float64))
-    before = result.classification[:n_own].copy()
     if len(rec):
         refine_with_model(_cloud(ctx, record_xyz(rec), result.classification), result,
                           _ViewModel(line.structures, line.spans, arrays["wire"]),
                           extents=getattr(line, "extents", None))
-    cls = result.classification[:n_own]
+    cls[owned_at] = result.classification[:n_pick]
+    n_own = len(cls)
     np.save(_tile_file(work, tile.id, "rcls.npy"), cls)
     changed = np.flatnonzero(cls != before)
     changes: dict[str, int] = {}
@@ -1089,6 +1138,15 @@ def refine_tile(work: str | Path, tile: TileSpec, tiles_by_cell: dict[tuple[int,
     return {"tile": tile.id, "n_owned": n_own, "changes": changes,
             "counts": {int(c): int(k) for c, k in zip(codes, counts, strict=True)},
             "seconds": time.perf_counter() - t0, "peak_rss_mb": peak_rss_mb()}
+
+
+def _refine_reads(arrays: dict[str, np.ndarray]) -> np.ndarray:
+    """The points :func:`clearaudit.classify.refine_with_model` reads or changes: those more
+    than 0.3 m above ground (every step works among them) and those of a wire or hardware
+    class at any height (isolated vegetation next to them takes their class)."""
+    # compared in float64 as refine_with_model compares (a float32 0.3 lies above 0.3)
+    return (arrays["hag"].astype(np.float64) > 0.3) | class_mask(
+        arrays["cls"], (WIRE_GUARD, WIRE_CONDUCTOR, WIRE_CONNECTOR))
 
 
 # =============================================================================== task C: audit

@@ -181,3 +181,30 @@ def test_cells_next_to_anchors_hold_every_point_within_reach():
     assert not _next_to(xy[:0], anchors, 1.0).any()
     assert not _next_to(xy, anchors[:0], 1.0).any()
     assert _next_to(xy, anchors, 1e-6, max_cells=1000).all()   # too many cells: no test
+
+
+def test_refine_of_the_points_a_tile_reads_equals_refine_of_every_point(corridor):
+    """A tile's refine task reads only the points above 0.3 m or of a wire or hardware class
+    (tiling._refine_reads): refine_with_model on those alone gives them the classes it gives
+    them among every point, and leaves every other point as it was."""
+    from types import SimpleNamespace
+
+    from clearaudit.tiling import _refine_reads
+
+    _, cloud, result, model = corridor
+    cls0 = result.classification.copy()
+    hag = np.asarray(result.height_above_ground_m)
+    full = SimpleNamespace(classification=cls0.copy(), height_above_ground_m=hag, counts={},
+                           info={})
+    refine_with_model(cloud, full, model)
+    assert np.any(full.classification != cls0)  # the refinement does change classes here
+    pick = _refine_reads({"hag": hag, "cls": cls0})
+    assert 0 < pick.sum() < len(pick)
+    sub = SimpleNamespace(classification=cls0[pick].copy(), height_above_ground_m=hag[pick],
+                          counts={}, info={})
+    labels = np.asarray(model.wire_point_labels)[pick]
+    refine_with_model(cloud.subset(np.flatnonzero(pick)), sub,
+                      SimpleNamespace(structures=model.structures, spans=model.spans,
+                                      wire_point_labels=labels))
+    np.testing.assert_array_equal(sub.classification, full.classification[pick])
+    np.testing.assert_array_equal(full.classification[~pick], cls0[~pick])

@@ -81,6 +81,16 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
     both = read_cells(tmp_path, tiles[0].cells, then=second[::7])
     assert both.tobytes() == np.concatenate([first, second[::7]]).tobytes()
     assert read_cells(tmp_path, tiles[0].cells, then=second[:0]).tobytes() == first.tobytes()
+    # records picked by position without reading the cells whole: numpy's fancy indexing
+    from clearaudit.tiling import read_cells_at
+
+    rng = np.random.default_rng(3)
+    for pick in (np.sort(rng.choice(len(first), len(first) // 5, replace=False)),
+                 np.arange(len(first)), np.zeros(0, dtype=np.int64), np.array([len(first) - 1])):
+        got = read_cells_at(tmp_path, tiles[0].cells, pick)
+        assert got.dtype == first.dtype and got.tobytes() == first[pick].tobytes()
+    with pytest.raises(IndexError):
+        read_cells_at(tmp_path, tiles[0].cells, np.array([len(first)]))
 
 
 def test_tasks_never_bring_back_a_removed_work_folder(corridor, tmp_path):
