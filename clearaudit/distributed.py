@@ -149,7 +149,7 @@ class InProcessEngine(Engine):
                 yield k, fn(*args, **kwargs)
                 check_stop()
             return
-        from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+        from concurrent.futures import ThreadPoolExecutor
 
         from .threads import PoolShare
 
@@ -157,18 +157,26 @@ class InProcessEngine(Engine):
         pool = ThreadPoolExecutor(self.threads, thread_name_prefix="clearaudit-task")
         futures = {pool.submit(_one_thread, *tasks[k], share): k for k in order}
         try:
-            pending = set(futures)
-            while pending:
-                done, pending = wait(pending, return_when=FIRST_COMPLETED)
-                # in position order among those done together
-                for fut in sorted(done, key=futures.__getitem__):
-                    yield futures[fut], fut.result()
+            for k, result in as_done(futures):
+                yield k, result
                 check_stop()
         finally:
             pool.shutdown(wait=True, cancel_futures=True)
 
     def describe(self) -> dict[str, Any]:
         return {"engine": self.name, "workers": 1, "threads": self.threads}
+
+
+def as_done(futures: dict[Any, int]) -> Iterator[tuple[int, Any]]:
+    """``(position, result)`` of each ``concurrent.futures`` future (``futures``: future →
+    position) as it completes; in position order among those done together."""
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    pending = set(futures)
+    while pending:
+        done, pending = wait(pending, return_when=FIRST_COMPLETED)
+        for fut in sorted(done, key=futures.__getitem__):
+            yield futures[fut], fut.result()
 
 
 def start_order(n: int, costs: Sequence[float] | None, workers: int = 1) -> list[int]:

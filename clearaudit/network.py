@@ -319,18 +319,14 @@ def _each_line(one: Any, lines: list[NetworkLine], at_once: int):
         for k, line in enumerate(lines):
             yield k, one(k + 1, line)
         return
-    from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+    from concurrent.futures import ThreadPoolExecutor
 
-    from .distributed import stop_runs
+    from .distributed import as_done, stop_runs
 
     pool = ThreadPoolExecutor(min(at_once, len(lines)), thread_name_prefix="clearaudit-line")
     futures = {pool.submit(one, k + 1, line): k for k, line in enumerate(lines)}
     try:
-        pending = set(futures)
-        while pending:
-            done, pending = wait(pending, return_when=FIRST_COMPLETED)
-            for fut in sorted(done, key=futures.__getitem__):
-                yield futures[fut], fut.result()
+        yield from as_done(futures)
     except BaseException:
         with stop_runs():
             pool.shutdown(wait=True, cancel_futures=True)
@@ -377,8 +373,8 @@ def reuse_problem(folder: Path, options: Any) -> str | None:
         changed = sorted(k for k in set(was) | set(now) if was.get(k) != now.get(k))
         return f"its options differ ({', '.join(changed)})"
     inputs = run.get("inputs", [])
-    clouds = [str(p) for p in resolve_inputs(options.clouds)]
-    if [i.get("path") for i in inputs if not i.get("role")] != clouds:
+    paths = resolve_inputs(options.clouds)
+    if [i.get("path") for i in inputs if not i.get("role")] != [str(p) for p in paths]:
         return "the list of its point cloud files has changed"
     line_files = [i.get("path") for i in inputs if i.get("role") == "line file"]
     if line_files != ([] if options.line_file is None else [str(options.line_file)]):
@@ -391,7 +387,6 @@ def reuse_problem(folder: Path, options: Any) -> str | None:
             same = False
         if not same:
             return f"{path} has changed or is missing"
-    paths = resolve_inputs(options.clouds)
     total, footprint = _header_extent(paths, options.crs)
     with run_threads(options.threads):
         tiled, _ = choose_mode(options, total, footprint, inner_threads(),
@@ -484,9 +479,8 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
 
                 cluster = LocalClusterStart(workers)
                 address = cluster.client().scheduler.address
-            at_once = max(1, int(lines_at_once))
             # progress bars of lines side by side would overwrite one another
-            quiet = at_once > 1 and len(manifest.lines) > 1
+            quiet = lines_at_once > 1 and len(manifest.lines) > 1
 
             def one(k: int, line: NetworkLine) -> _LineResult:
                 """Audit (or take from the kept lines) one line; its result for the table."""
@@ -532,7 +526,7 @@ def run_network(manifest_path: str | Path, out: str | Path, *, workers: int = 0,
                                              findings=found), found, note=note)
 
             results: list[_LineResult | None] = [None] * len(manifest.lines)
-            for k, res in _each_line(one, manifest.lines, at_once):
+            for k, res in _each_line(one, manifest.lines, lines_at_once):
                 results[k] = res
                 line = manifest.lines[k]
                 if res.note and console is not None:
