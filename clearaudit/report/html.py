@@ -284,7 +284,7 @@ def _spans_section(folder: OutputFolder, units: DisplayUnits) -> str:
         classes = plots.VEGETATION + ((plots.GROUND,) if need_ground else ())
         xyz, cls = folder.read_points(classes=classes, keep_fraction=min(1.0, MAX_REPORT_POINTS / n))
         is_veg = np.isin(cls, plots.VEGETATION)
-        veg, ground = xyz[is_veg], xyz[~is_veg]
+        veg, ground = plots.PointsByX(xyz[is_veg]), xyz[~is_veg]
     parts = ['<section id="spans"><h2>Spans</h2>',
              f'<p class="muted">Profiles: elevation against distance along the span, in '
              f'{esc(units.length_unit)}. Wires at survey are solid, at MOT dashed; the dotted line '

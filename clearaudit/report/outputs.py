@@ -334,23 +334,31 @@ class OutputFolder:
             return np.zeros((0, 3)), np.zeros(0, dtype=np.uint8)
         import laspy
 
+        from clearaudit.arrays import class_mask
+
         rng = np.random.default_rng(seed)
         parts_xyz, parts_cls = [], []
+        # only the layers read here are decoded (x, y and the returns, z, class: laspy's
+        # decompression selection; other point formats decode whole), and only the kept
+        # points are scaled, as laspy scales them (integer * scale + offset)
+        wanted = (laspy.DecompressionSelection.XY_RETURNS_CHANNEL
+                  | laspy.DecompressionSelection.Z | laspy.DecompressionSelection.CLASSIFICATION)
         try:
-            with laspy.open(self.cloud_path) as reader:
+            with laspy.open(self.cloud_path, decompression_selection=wanted) as reader:
+                scale, offset = reader.header.scales, reader.header.offsets
                 for chunk in reader.chunk_iterator(chunk_size):
                     cls = np.asarray(chunk.classification, dtype=np.uint8)
-                    mask = np.ones(len(cls), dtype=bool)
-                    if classes is not None:
-                        mask &= np.isin(cls, classes)
+                    mask = np.ones(len(cls), dtype=bool) if classes is None else \
+                        class_mask(cls, classes)
                     if keep_fraction < 1.0:
-                        mask &= (rng.random(len(cls)) < keep_fraction) | np.isin(cls, always_keep)
+                        mask &= (rng.random(len(cls)) < keep_fraction) | class_mask(cls, always_keep)
                     if not mask.any():
                         continue
-                    xyz = np.column_stack([np.asarray(chunk.x)[mask], np.asarray(chunk.y)[mask],
-                                           np.asarray(chunk.z)[mask]])
+                    at = np.flatnonzero(mask)
+                    xyz = np.column_stack([np.asarray(chunk[name])[at] * scale[k] + offset[k]
+                                           for k, name in enumerate(("X", "Y", "Z"))])
                     xyz = self.to_local_m(xyz)
-                    c = cls[mask]
+                    c = cls[at]
                     if bbox_local_m is not None:
                         x0, y0, x1, y1 = bbox_local_m
                         inside = ((xyz[:, 0] >= x0) & (xyz[:, 0] <= x1)

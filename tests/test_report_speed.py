@@ -1,0 +1,141 @@
+"""The report's faster paths draw exactly what the plain ones drew.
+
+- ``OutputFolder.read_points`` decodes only the x/y, z and class layers of classified.laz and
+  scales only the kept points: checked against laspy reading every layer and scaling every
+  point itself (laspy's ``x = X * scale + offset``, the reference outside the project), for
+  a layered (format 6) and a point-interleaved (format 3) file, with the same thinning.
+- A span profile given its vegetation as :class:`~clearaudit.report.plots.PointsByX` looks
+  only at the band of x the span can reach: the PNG bytes are those of the profile given
+  every point.
+- ``png_bytes`` renders through an uncompressed PNG: the pixels are those of matplotlib's own
+  ``savefig(bbox_inches="tight")`` PNG, quantised the same way.
+"""
+from __future__ import annotations
+
+import io
+
+import laspy
+import numpy as np
+import pytest
+from report_fixture import make_output_folder
+
+from clearaudit.report import plots
+from clearaudit.report.format import DisplayUnits
+from clearaudit.report.outputs import read_outputs
+
+
+@pytest.fixture(scope="module")
+def out_dir(tmp_path_factory):
+    return make_output_folder(tmp_path_factory.mktemp("report-speed") / "audit",
+                              line_name="Kestrel Ridge 132 kV")
+
+
+def _reference_points(path, classes, keep_fraction, always_keep, seed, chunk_size, to_local):
+    """Every layer decoded and every point scaled by laspy; the same random thinning."""
+    rng = np.random.default_rng(seed)
+    xyz_parts, cls_parts = [], []
+    with laspy.open(path) as reader:
+        for chunk in reader.chunk_iterator(chunk_size):
+            cls = np.asarray(chunk.classification, dtype=np.uint8)
+            mask = np.ones(len(cls), bool) if classes is None else np.isin(cls, classes)
+            if keep_fraction < 1.0:
+                mask &= (rng.random(len(cls)) < keep_fraction) | np.isin(cls, always_keep)
+            xyz = np.column_stack([np.asarray(chunk.x)[mask], np.asarray(chunk.y)[mask],
+                                   np.asarray(chunk.z)[mask]])
+            xyz_parts.append(to_local(xyz))
+            cls_parts.append(cls[mask])
+    return np.concatenate(xyz_parts), np.concatenate(cls_parts)
+
+
+@pytest.mark.parametrize("point_format", [6, 3])
+def test_read_points_matches_laspy(out_dir, tmp_path, point_format):
+    folder = read_outputs(out_dir)
+    if point_format != 6:  # the same points in a point-interleaved format (no layers)
+        las = laspy.read(folder.cloud_path)
+        converted = laspy.convert(las, point_format_id=point_format, file_version="1.2")
+        converted.write(folder.cloud_path)
+    with laspy.open(folder.cloud_path) as reader:
+        assert reader.header.point_format.id == point_format
+        n = reader.header.point_count
+    chunk = max(1, n // 3 + 7)  # several chunks, the last one short
+    for kw in ({"classes": (2, 3, 4, 5), "keep_fraction": 0.4},
+               {"keep_fraction": 0.25, "always_keep": (13, 14, 15, 16)},
+               {"classes": (3, 4, 5)},
+               {}):
+        got = folder.read_points(chunk_size=chunk, seed=3, **kw)
+        want = _reference_points(folder.cloud_path, kw.get("classes"),
+                                 kw.get("keep_fraction", 1.0), kw.get("always_keep", ()), 3,
+                                 chunk, folder.to_local_m)
+        assert len(got[0]) > 0
+        np.testing.assert_array_equal(got[0], want[0])
+        np.testing.assert_array_equal(got[1], want[1])
+
+
+def test_points_by_x_band():
+    rng = np.random.default_rng(5)
+    xyz = rng.uniform(-100, 100, size=(5000, 3))
+    xyz[::7, 0] = np.round(xyz[::7, 0])  # ties on the band's edges
+    index = plots.PointsByX(xyz)
+    for x0, x1 in ((-20.0, 30.0), (5.0, 5.0), (150.0, 200.0), (-100.0, 100.0)):
+        want = np.flatnonzero((xyz[:, 0] >= x0) & (xyz[:, 0] <= x1))
+        np.testing.assert_array_equal(index.within_x(x0, x1), want)
+
+
+def test_span_profile_same_with_points_by_x(out_dir):
+    folder = read_outputs(out_dir)
+    units = DisplayUnits("metric")
+    xyz, cls = folder.read_points(classes=plots.VEGETATION + (plots.GROUND,))
+    veg = xyz[np.isin(cls, plots.VEGETATION)]
+    assert len(veg) > 100
+    # points at the edges of what a profile draws (stations -5 ... length + 5, 20 m either
+    # side of the axis), just inside and just outside: the band of x must keep them all
+    extra = []
+    for sid in folder.span_ids():
+        axis = folder.span_axis(folder.span_record(sid))
+        if axis is None:
+            continue
+        start, u, length = axis
+        v = np.array([-u[1], u[0]])
+        for s in (-5.2, -4.9, 0.0, length + 4.9, length + 5.2):
+            for off in (-20.3, -19.9, 0.0, 19.9, 20.3):
+                extra.append([*(start + s * u + off * v), 3.0])
+    veg = np.vstack([veg, np.array(extra)])
+    index = plots.PointsByX(veg)
+    for sid in folder.span_ids():
+        plain = plots.span_profile(folder, sid, units, vegetation_xyz=veg)
+        banded = plots.span_profile(folder, sid, units, vegetation_xyz=index)
+        assert banded == plain, sid
+
+
+def test_span_profile_thinned_vegetation_same(out_dir, monkeypatch):
+    """With more points near a span than a profile draws, the same random subset is drawn."""
+    folder = read_outputs(out_dir)
+    units = DisplayUnits("metric")
+    xyz, cls = folder.read_points(classes=plots.VEGETATION)
+    monkeypatch.setattr(plots, "MAX_PROFILE_POINTS", max(10, len(xyz) // 20))
+    sid = folder.span_ids()[0]
+    assert plots.span_profile(folder, sid, units, vegetation_xyz=plots.PointsByX(xyz)) == \
+        plots.span_profile(folder, sid, units, vegetation_xyz=xyz)
+
+
+def test_png_bytes_pixels_as_savefig():
+    from PIL import Image
+
+    def figure():
+        fig, ax = plots.plt.subplots(figsize=(6, 3))
+        x = np.linspace(0, 300, 200)
+        ax.plot(x, 40 + 1e-3 * (x - 150) ** 2, label="wire")
+        ax.scatter(x[::5], 20 + np.sin(x[::5]), s=4, alpha=0.5, label="trees")
+        ax.set_title("Span A-B")
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=2)
+        return fig
+
+    ref = io.BytesIO()
+    fig = figure()
+    fig.savefig(ref, format="png", dpi=100, bbox_inches="tight", facecolor="white")
+    plots.plt.close(fig)
+    want = Image.open(io.BytesIO(ref.getvalue())).convert("RGB").quantize(
+        colors=256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE).convert("RGB")
+    got = Image.open(io.BytesIO(plots.png_bytes(figure(), dpi=100))).convert("RGB")
+    assert got.size == want.size
+    np.testing.assert_array_equal(np.asarray(got), np.asarray(want))
