@@ -26,6 +26,9 @@ every point). Every audit runs in its own child process so its peak memory is it
 shared machine the wall times vary with the load; the CPU times (audit process and its
 workers; decompression in the parent) are printed beside them.
 Generation is not part of any measurement; its time and peak memory are printed.
+The audits run without the HTML report (``--no-report``); the report a default run adds is
+timed separately on each tiled run's output (``report …`` lines: seconds, per span profile,
+and against the audit and the decompression).
 """
 from __future__ import annotations
 
@@ -174,6 +177,28 @@ def _child(argv: list[str]) -> None:
     print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak, "cpu_s": cpu}))
 
 
+def _report_child(argv: list[str]) -> None:
+    """Build the HTML report of an audit's output folder, timed as in a run (imports too)."""
+    (out,) = argv
+    from clearaudit.threads import one_blas_thread_from_start
+
+    one_blas_thread_from_start()
+    t0 = time.perf_counter()
+    from clearaudit.report.html import build_report
+
+    build_report(out)
+    print(json.dumps({"seconds": time.perf_counter() - t0}))
+
+
+def report_seconds(out: Path) -> float:
+    """Wall time of the HTML report of an output folder, in a child process. [s]"""
+    proc = subprocess.run([sys.executable, __file__, "_report", str(out)], capture_output=True,
+                          text=True, check=False)
+    if proc.returncode != 0:
+        raise RuntimeError(f"report failed: {proc.stderr[-2000:]}")
+    return float(json.loads(proc.stdout.strip().splitlines()[-1])["seconds"])
+
+
 def same_outputs(a: Path, b: Path) -> bool:
     import laspy
     import numpy as np
@@ -241,6 +266,11 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
         km = sum(float(s["span_length_m"] or 0) for s in spans
                  if s["wire_id"] == spans[0]["wire_id"]) / 1000.0 if spans else 0.0
         result["line_km"] = km
+        if mode == "tiled":
+            # the audits here run without the report (--no-report); what the report adds to
+            # a default run, timed on this output (one profile per span)
+            result["report_s"] = report_seconds(work / f"{label}-{mode}")
+            result["report_spans"] = len({row["span_id"] for row in spans})
         result[mode] = {"audit_s": r["audit_s"], "peak_rss_mb": r["peak_rss_mb"],
                         "classify_s": r["stages"]["classify"]["seconds"],
                         "bytes_per_point": r["peak_rss_mb"] * 2**20 / n,
@@ -357,6 +387,14 @@ def print_results(results: list[dict]) -> None:
     for line in km_scaling(results):
         print(line)
     for r in results:
+        if r.get("report_s") is not None and r.get("tiled"):
+            n = max(1, int(r.get("report_spans") or 0))
+            print(f"report {r['case']}: the HTML report of the tiled run took "
+                  f"{r['report_s']:.1f} s ({r['report_s'] / n:.2f} s per span profile, "
+                  f"{n} spans), {r['report_s'] / r['tiled']['audit_s']:.2f} x the audit and "
+                  f"{r['report_s'] / r['decompress_s']:.2f} x the decompression (the audits "
+                  f"above ran without it: --no-report)")
+    for r in results:
         for mode in MODES:
             if r.get(mode):
                 m = r[mode]
@@ -383,6 +421,9 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     if argv and argv[0] == "_child":
         _child(argv[1:])
+        return 0
+    if argv and argv[0] == "_report":
+        _report_child(argv[1:])
         return 0
     if argv and argv[0] == "_generate":
         _generate_child(argv[1:])

@@ -31,6 +31,9 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     assert "ratio tiny-stream tiled: audit/decompress = " in out
     assert "| tiny-stream | " in out and " | 3 | " in out
     assert "tiled peak RSS MB by survey size: tiny" in out and "(target: flat)" in out
+    # what the report adds to a default run, timed on the tiled run's output
+    assert "report tiny: the HTML report of the tiled run took " in out
+    assert "report tiny-stream: the HTML report of the tiled run took " in out
     assert "floor tiny: decoding the layers the audit reads (x/y, z, class, flags) takes " in out
     # the decompression timed before the first audit and after each of the five
     line = next(t for t in out.splitlines() if t.startswith("decompress tiny: "))
