@@ -576,7 +576,8 @@ def _reserve_bytes(paths: list[Path], total_points: int, tiled: bool) -> int:
     return sum(p.stat().st_size for p in paths) + per_point * int(total_points)
 
 
-def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOptions) -> None:
+def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOptions,
+                              map_profiles: Callable[[list], list] | None = None) -> None:
     """Write run.json, then the report (which reads it), then run.json again with the report's
     stage time. The report names the final output folder, not the temporary one."""
     record.extra["output_folder"] = str(options.final_out or options.out)
@@ -593,8 +594,26 @@ def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOption
     from .report import build_report
 
     with record.stage("report"):
-        build_report(tmp, units=options.units)
+        build_report(tmp, units=options.units, map_profiles=map_profiles)
     dump()
+
+
+def _profiles_on(engine: Any) -> Callable[[list], list]:
+    """The report's span profiles drawn by an engine's workers (a Dask engine: each worker
+    draws its share; matplotlib holds the GIL, so threads of this process would not). The
+    saved outputs the profiles read are sent to the workers once."""
+    from .report.plots import render_profiles
+
+    def run(jobs: list) -> list:
+        if not jobs:
+            return []
+        handle = engine.share(jobs[0][0])
+        try:
+            return engine.map_batches(render_profiles, [(handle, *job[1:]) for job in jobs])
+        finally:
+            engine.release(handle)
+
+    return run
 
 
 #: Peak resident memory of the in-memory run per point of the headers, to foresee whether a
@@ -1096,8 +1115,10 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     for handle in (by_cell, line, states):
                         engine.release(handle)
                     # the last tasks have run: a local cluster shuts down while the driver
-                    # merges and writes
-                    engine.finish()
+                    # merges and writes; unless its workers are to draw the report's profiles
+                    report_on_engine = engine.name != "in-process" and not options.skip_report
+                    if not report_on_engine:
+                        engine.finish()
                     release_free_memory()  # the audit tasks' freed pages, before the merge
                     from .audit.engine import merge_findings
 
@@ -1127,7 +1148,9 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
             finally:
                 if background is not None:
                     background.stop()  # on an error: stop it before the work folder goes
-            _finish_record_and_report(tmp, record, options)
+            _finish_record_and_report(tmp, record, options,
+                                      _profiles_on(engine) if report_on_engine else None)
+            engine.finish()  # (again: a no-op when the audit stage finished it)
     finally:
         remove_settled(work)
     return summary

@@ -4,9 +4,10 @@
   scales only the kept points: checked against laspy reading every layer and scaling every
   point itself (laspy's ``x = X * scale + offset``, the reference outside the project), for
   a layered (format 6) and a point-interleaved (format 3) file, with the same thinning.
-- A span profile given its vegetation as :class:`~clearaudit.report.plots.PointsByX` looks
-  only at the band of x the span can reach: the PNG bytes are those of the profile given
-  every point.
+- A span profile given its vegetation as :class:`~clearaudit.report.plots.PointsByCell`, or
+  the points cut to the box the span can reach (:func:`~clearaudit.report.html.profile_jobs`,
+  what the workers of a Dask run draw from), gives the PNG bytes of the profile given every
+  point.
 - ``png_bytes`` renders through an uncompressed PNG: the pixels are those of matplotlib's own
   ``savefig(bbox_inches="tight")`` PNG, quantised the same way.
 """
@@ -71,17 +72,34 @@ def test_read_points_matches_laspy(out_dir, tmp_path, point_format):
         np.testing.assert_array_equal(got[1], want[1])
 
 
-def test_points_by_x_band():
+def test_points_by_cell_box_and_span():
     rng = np.random.default_rng(5)
-    xyz = rng.uniform(-100, 100, size=(5000, 3))
-    xyz[::7, 0] = np.round(xyz[::7, 0])  # ties on the band's edges
-    index = plots.PointsByX(xyz)
-    for x0, x1 in ((-20.0, 30.0), (5.0, 5.0), (150.0, 200.0), (-100.0, 100.0)):
-        want = np.flatnonzero((xyz[:, 0] >= x0) & (xyz[:, 0] <= x1))
-        np.testing.assert_array_equal(index.within_x(x0, x1), want)
+    xyz = rng.uniform(-300, 300, size=(20000, 3))
+    xyz[::7, :2] = np.round(xyz[::7, :2] / 50.0) * 50.0  # on cell edges and box edges
+    index = plots.PointsByCell(xyz, cell_m=50.0)
+    for x0, y0, x1, y1 in ((-20.0, -40.0, 30.0, 100.0), (50.0, 50.0, 50.0, 50.0),
+                           (400.0, 0.0, 500.0, 10.0), (-300.0, -300.0, 300.0, 300.0),
+                           (-1000.0, -1000.0, 1000.0, 1000.0), (10.0, 10.0, 0.0, 0.0)):
+        want = np.flatnonzero((xyz[:, 0] >= x0) & (xyz[:, 0] <= x1)
+                              & (xyz[:, 1] >= y0) & (xyz[:, 1] <= y1))
+        np.testing.assert_array_equal(index.within_box(x0, y0, x1, y1), want)
+    # every point within the reach of a span's segment (any direction) is near it, and so
+    # is every point a profile draws (5 m beyond the ends, 20 m across: reach 25 m)
+    for angle in (0.0, 0.3, 0.7853981633974483, 1.5707963267948966, 2.5):
+        u = np.array([np.cos(angle), np.sin(angle)])
+        start, length, reach = np.array([-120.0, 35.0]), 260.0, 25.0
+        rel = xyz[:, :2] - start
+        s, off = rel @ u, rel @ np.array([-u[1], u[0]])
+        dist = np.hypot(np.clip(s, None, 0.0) + np.clip(s - length, 0.0, None), off)
+        drawn = (s >= -5.0) & (s <= length + 5.0) & (np.abs(off) <= 20.0)
+        got = index.near_span((start, u, length), reach)
+        assert np.all(np.diff(got) > 0)
+        assert np.isin(np.flatnonzero(dist <= reach), got).all()
+        assert np.isin(np.flatnonzero(drawn), got).all() and drawn.sum() > 50
+    assert len(plots.PointsByCell(np.zeros((0, 3))).within_box(0, 0, 1, 1)) == 0
 
 
-def test_span_profile_same_with_points_by_x(out_dir):
+def test_span_profile_same_with_points_by_cell(out_dir):
     folder = read_outputs(out_dir)
     units = DisplayUnits("metric")
     xyz, cls = folder.read_points(classes=plots.VEGETATION + (plots.GROUND,))
@@ -100,11 +118,15 @@ def test_span_profile_same_with_points_by_x(out_dir):
             for off in (-20.3, -19.9, 0.0, 19.9, 20.3):
                 extra.append([*(start + s * u + off * v), 3.0])
     veg = np.vstack([veg, np.array(extra)])
-    index = plots.PointsByX(veg)
+    index = plots.PointsByCell(veg)
     for sid in folder.span_ids():
         plain = plots.span_profile(folder, sid, units, vegetation_xyz=veg)
         banded = plots.span_profile(folder, sid, units, vegetation_xyz=index)
         assert banded == plain, sid
+        axis = folder.span_axis(folder.span_record(sid))
+        if axis is not None:  # the points cut to the span's box, as a worker gets them
+            cut = veg[index.near_span(axis, 25.0)]
+            assert plots.span_profile(folder, sid, units, vegetation_xyz=cut) == plain, sid
 
 
 def test_span_profile_thinned_vegetation_same(out_dir, monkeypatch):
@@ -114,7 +136,7 @@ def test_span_profile_thinned_vegetation_same(out_dir, monkeypatch):
     xyz, cls = folder.read_points(classes=plots.VEGETATION)
     monkeypatch.setattr(plots, "MAX_PROFILE_POINTS", max(10, len(xyz) // 20))
     sid = folder.span_ids()[0]
-    assert plots.span_profile(folder, sid, units, vegetation_xyz=plots.PointsByX(xyz)) == \
+    assert plots.span_profile(folder, sid, units, vegetation_xyz=plots.PointsByCell(xyz)) == \
         plots.span_profile(folder, sid, units, vegetation_xyz=xyz)
 
 
@@ -139,3 +161,40 @@ def test_png_bytes_pixels_as_savefig():
     got = Image.open(io.BytesIO(plots.png_bytes(figure(), dpi=100))).convert("RGB")
     assert got.size == want.size
     np.testing.assert_array_equal(np.asarray(got), np.asarray(want))
+
+
+def test_profile_jobs_draw_what_the_report_drew(out_dir):
+    """The jobs (points cut per span) give every span the profile drawn from all points."""
+    from clearaudit.report.html import MAX_REPORT_POINTS, profile_jobs
+
+    folder = read_outputs(out_dir)
+    units = DisplayUnits("imperial")
+    n = folder.point_count()
+    xyz, cls = folder.read_points(classes=plots.VEGETATION + (plots.GROUND,),
+                                  keep_fraction=min(1.0, MAX_REPORT_POINTS / n))
+    is_veg = np.isin(cls, plots.VEGETATION)
+    jobs = profile_jobs(folder, units)
+    pngs = plots.render_profiles(jobs)
+    assert [j[2] for j in jobs] == folder.span_ids()
+    for (_, _, sid, veg, _), png in zip(jobs, pngs, strict=True):
+        assert veg is None or len(veg) < is_veg.sum()
+        assert png == plots.span_profile(folder, sid, units, vegetation_xyz=xyz[is_veg],
+                                         ground_xyz=xyz[~is_veg]), sid
+
+
+def test_profiles_on_a_dask_cluster_same_report(out_dir, tmp_path):
+    """Two local Dask workers draw the profiles: the report is the one drawn here."""
+    pytest.importorskip("distributed")
+    import re
+
+    from clearaudit.distributed import engine_for
+    from clearaudit.pipeline import _profiles_on
+    from clearaudit.report.html import build_report
+
+    here = build_report(out_dir, out_path=tmp_path / "here.html").read_text(encoding="utf-8")
+    with engine_for(workers=2) as engine:
+        there = build_report(out_dir, out_path=tmp_path / "there.html",
+                             map_profiles=_profiles_on(engine)).read_text(encoding="utf-8")
+    stamp = re.compile(r"report generated [^·<]*")
+    assert stamp.sub("", there) == stamp.sub("", here)
+    assert there.count("data:image/png;base64,") == here.count("data:image/png;base64,") > 3

@@ -13,7 +13,7 @@ import datetime as _dt
 import math
 import re
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from html import escape
 from pathlib import Path
 
@@ -275,7 +275,19 @@ def _span_table(folder: OutputFolder, wires: list[dict], units: DisplayUnits) ->
     return _table(headers, rows, numeric=set(range(3, 9)), row_classes=classes)
 
 
-def _spans_section(folder: OutputFolder, units: DisplayUnits) -> str:
+#: How far from a span's axis segment the points of its profile can lie: the vegetation
+#: drawn (20 m across, 5 m beyond the ends) and the ground line (3 m across). [m]
+_PROFILE_REACH_M = plots.PROFILE_HALF_WIDTH_M + plots.PROFILE_BEYOND_ENDS_M
+
+
+def profile_jobs(folder: OutputFolder, units: DisplayUnits) -> list[tuple]:
+    """What each span's profile draws: ``(folder, units, span_id, vegetation_xyz,
+    ground_xyz)`` per span (:func:`clearaudit.report.plots.render_profiles`).
+
+    The vegetation and ground points (a sample of at most :data:`MAX_REPORT_POINTS` of
+    classified.laz) are cut to the box each span's profile can reach, in the points' order,
+    so a profile draws the same points whether it gets them all or only these.
+    """
     span_ids = folder.span_ids()
     need_ground = any(sid not in (folder.model.get("ground_profile") or {}) for sid in span_ids)
     veg = ground = None
@@ -284,19 +296,38 @@ def _spans_section(folder: OutputFolder, units: DisplayUnits) -> str:
         classes = plots.VEGETATION + ((plots.GROUND,) if need_ground else ())
         xyz, cls = folder.read_points(classes=classes, keep_fraction=min(1.0, MAX_REPORT_POINTS / n))
         is_veg = np.isin(cls, plots.VEGETATION)
-        veg, ground = plots.PointsByX(xyz[is_veg]), xyz[~is_veg]
+        veg, ground = plots.PointsByCell(xyz[is_veg]), plots.PointsByCell(xyz[~is_veg])
+    jobs = []
+    for sid in span_ids:
+        axis = folder.span_axis(folder.span_record(sid))
+        v = g = None
+        if veg is not None and axis is not None:
+            v = veg.xyz[veg.near_span(axis, _PROFILE_REACH_M)]
+            g = ground.xyz[ground.near_span(axis, _PROFILE_REACH_M)]
+        jobs.append((folder, units.system, sid, v, g))
+    return jobs
+
+
+def _spans_section(folder: OutputFolder, units: DisplayUnits,
+                   map_profiles: Callable[[list], list] | None = None) -> str:
+    span_ids = folder.span_ids()
+    jobs = profile_jobs(folder, units)
+    # the profiles are the report's longest part: an engine's workers may draw them
+    pngs = (map_profiles or plots.render_profiles)(jobs)
+    if len(pngs) != len(span_ids):
+        raise RuntimeError("the profile renderer returned a different number of images")
     parts = ['<section id="spans"><h2>Spans</h2>',
              f'<p class="muted">Profiles: elevation against distance along the span, in '
              f'{esc(units.length_unit)}. Wires at survey are solid, at MOT dashed; the dotted line '
              f'is the required ground clearance below the lowest phase at MOT. Violation markers '
              f'are coloured by clearance deficit (darker = larger deficit).</p>']
-    for sid in span_ids:
+    for k, sid in enumerate(span_ids):
         span = folder.span_record(sid)
         wires = folder.wires_of(sid)
         length = to_number(span.get("span_length_m"))
         if not math.isfinite(length) and folder.span_axis(span) is not None:
             length = folder.span_axis(span)[2]
-        png = plots.span_profile(folder, sid, units, vegetation_xyz=veg, ground_xyz=ground)
+        png = pngs[k]
         anchor = "span-" + "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in sid)
         parts.append(f'<div class="span" id="{esc(anchor)}">')
         parts.append(f"<h3>Span {esc(sid)} {_badge(span.get('status'))}</h3>")
@@ -513,7 +544,8 @@ def _construction_section(folder: OutputFolder, units: DisplayUnits) -> str:
     return "".join(parts)
 
 
-def render_report(folder: OutputFolder, units: str = "metric") -> str:
+def render_report(folder: OutputFolder, units: str = "metric",
+                  map_profiles: Callable[[list], list] | None = None) -> str:
     """The report as an HTML string (see :func:`build_report`)."""
     du = DisplayUnits(units)
     name = folder.line_name or "unnamed line"
@@ -532,7 +564,7 @@ def render_report(folder: OutputFolder, units: str = "metric") -> str:
           f"clearance deficit. Coordinates relative to the local origin "
           f"({esc(fmt_number(folder.origin[0], 1))}, {esc(fmt_number(folder.origin[1], 1))}) "
           f"in CRS units, shown in {esc(du.length_unit)}.</figcaption></figure></section>",
-        _spans_section(folder, du), _vegetation_section(folder, du),
+        _spans_section(folder, du, map_profiles), _vegetation_section(folder, du),
         _other_violations_section(folder, du), _construction_section(folder, du),
         _not_fitted_section(folder),
     ]
@@ -559,7 +591,8 @@ def render_report(folder: OutputFolder, units: str = "metric") -> str:
 
 
 def build_report(out_dir: str | Path, *, units: str = "metric",
-                 out_path: str | Path | None = None) -> Path:
+                 out_path: str | Path | None = None,
+                 map_profiles: Callable[[list], list] | None = None) -> Path:
     """Write the HTML audit report of a saved output folder.
 
     Parameters
@@ -570,6 +603,10 @@ def build_report(out_dir: str | Path, *, units: str = "metric",
         ``"metric"`` (m, kN, °C) or ``"imperial"`` (ft, lbf, °F); display only.
     out_path
         Where to write the report; default ``out_dir/report.html``.
+    map_profiles
+        Draws the span profiles: called with :func:`profile_jobs`'s list, returns one PNG
+        per job in order, as :func:`clearaudit.report.plots.render_profiles` does (the
+        default, in this process). A run on Dask passes its workers' map.
 
     Returns
     -------
@@ -584,7 +621,7 @@ def build_report(out_dir: str | Path, *, units: str = "metric",
     """
     DisplayUnits(units)  # validate before reading anything
     folder = read_outputs(out_dir)
-    html_text = render_report(folder, units)
+    html_text = render_report(folder, units, map_profiles)
     target = Path(out_path) if out_path is not None else folder.path / "report.html"
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = target.with_name(target.name + ".tmp")

@@ -23,6 +23,10 @@ VEGETATION = (3, 4, 5)
 GROUND = 2
 #: Largest number of vegetation points drawn in one span profile.
 MAX_PROFILE_POINTS = 15_000
+#: Vegetation drawn in a span profile: within this distance of the span's axis. [m]
+PROFILE_HALF_WIDTH_M = 20.0
+#: ... and within this distance beyond its ends. [m]
+PROFILE_BEYOND_ENDS_M = 5.0
 
 
 def png_bytes(fig, dpi: int = theme.FIGURE_DPI) -> bytes:
@@ -49,6 +53,18 @@ def png_bytes(fig, dpi: int = theme.FIGURE_DPI) -> bytes:
     full = io.BytesIO()
     img.save(full, format="PNG")  # the true-colour image, compressed as matplotlib does
     return out.getvalue() if out.tell() < full.tell() else full.getvalue()
+
+
+def render_profiles(items: list) -> list[bytes]:
+    """Span profiles of a batch, for an engine's workers: one PNG per item.
+
+    Each item is ``(folder, units, span_id, vegetation_xyz, ground_xyz)``: the saved outputs
+    (:class:`~clearaudit.report.outputs.OutputFolder`), the unit system's name, the span, and
+    the vegetation and ground points the report cut to the span's box (see
+    :func:`clearaudit.report.html.profile_jobs`): the same image as the report draws itself.
+    """
+    return [span_profile(folder, sid, DisplayUnits(units), vegetation_xyz=veg, ground_xyz=ground)
+            for folder, units, sid, veg, ground in items]
 
 
 def _deficit_norm(folder: OutputFolder, units: DisplayUnits) -> tuple[Normalize, object]:
@@ -162,27 +178,68 @@ def _abs_z(folder: OutputFolder, z_crs) -> np.ndarray:
     return np.asarray(z_crs, dtype=float) * folder.vertical_unit_m
 
 
-class PointsByX:
-    """Points sorted by x once, so that each span's profile examines only the points in a
-    band of x around the span rather than all of them (a long line's report draws hundreds
-    of spans over millions of points).
+class PointsByCell:
+    """Points grouped by square cells of their plan position once, so that each span's
+    profile looks only at the points in its box rather than at all of them (a long line's
+    report draws hundreds of spans over millions of points).
 
     Parameters
     ----------
     xyz
         Points in local metres, shape (n, 3). [m]
+    cell_m
+        Cell edge. [m]
     """
 
-    def __init__(self, xyz: np.ndarray):
+    def __init__(self, xyz: np.ndarray, cell_m: float = 50.0):
         self.xyz = np.asarray(xyz, dtype=float).reshape(-1, 3)
-        self.order = np.argsort(self.xyz[:, 0], kind="stable")
-        self.x = self.xyz[self.order, 0]
+        self.cell_m = float(cell_m)
+        xy = self.xyz[:, :2]
+        self.lo = xy.min(axis=0) if len(xy) else np.zeros(2)
+        ij = np.floor((xy - self.lo) / self.cell_m).astype(np.int64)
+        self.ny = int(ij[:, 1].max()) + 1 if len(ij) else 1
+        key = ij[:, 0] * self.ny + ij[:, 1]
+        self.order = np.argsort(key, kind="stable")
+        self.keys, self.starts = np.unique(key[self.order], return_index=True)
+        self.starts = np.append(self.starts, len(key))
 
-    def within_x(self, x0: float, x1: float) -> np.ndarray:
-        """Positions (ascending, as in ``xyz``) of the points with ``x0 <= x <= x1``."""
-        lo = int(np.searchsorted(self.x, x0, side="left"))
-        hi = int(np.searchsorted(self.x, x1, side="right"))
-        return np.sort(self.order[lo:hi])
+    def within_box(self, x0: float, y0: float, x1: float, y1: float) -> np.ndarray:
+        """Positions (ascending, as in ``xyz``) of the points with ``x0 <= x <= x1`` and
+        ``y0 <= y <= y1``."""
+        if not len(self.keys) or x1 < x0 or y1 < y0:
+            return np.zeros(0, dtype=np.int64)
+        i0, j0 = np.floor((np.array([x0, y0]) - self.lo) / self.cell_m).astype(np.int64)
+        i1, j1 = np.floor((np.array([x1, y1]) - self.lo) / self.cell_m).astype(np.int64)
+        j0, j1 = max(j0, 0), min(j1, self.ny - 1)
+        parts = []
+        for i in range(max(i0, 0), i1 + 1):  # one row of cells after the other (few)
+            a, b = np.searchsorted(self.keys, [i * self.ny + j0, i * self.ny + j1 + 1])
+            if b > a:
+                parts.append(self.order[self.starts[a]:self.starts[b]])
+        if not parts:
+            return np.zeros(0, dtype=np.int64)
+        pos = np.sort(np.concatenate(parts))
+        x, y = self.xyz[pos, 0], self.xyz[pos, 1]
+        return pos[(x >= x0) & (x <= x1) & (y >= y0) & (y <= y1)]
+
+    def near_span(self, axis: tuple, reach_m: float) -> np.ndarray:
+        """Positions (ascending) of the points in the box of a span's axis segment grown by
+        ``reach_m`` (and 1 m for round-off): every point within ``reach_m`` of the segment
+        is among them, and every point within ``a`` beyond its ends and ``b`` across it
+        when ``a + b <= reach_m`` (each coordinate moves by at most ``a + b``).
+
+        Parameters
+        ----------
+        axis
+            ``(start, unit_direction, length)`` of :meth:`OutputFolder.span_axis`. [m]
+        reach_m
+            How far from the segment the points can lie. [m]
+        """
+        start, u, length = axis
+        end = start + u * length
+        pad = float(reach_m) + 1.0
+        return self.within_box(min(start[0], end[0]) - pad, min(start[1], end[1]) - pad,
+                               max(start[0], end[0]) + pad, max(start[1], end[1]) + pad)
 
 
 def _local_to_abs_z(folder: OutputFolder, z_local_m) -> np.ndarray:
@@ -195,9 +252,9 @@ def span_profile(
     span_id: str,
     units: DisplayUnits,
     *,
-    vegetation_xyz: np.ndarray | PointsByX | None = None,
+    vegetation_xyz: np.ndarray | PointsByCell | None = None,
     ground_xyz: np.ndarray | None = None,
-    corridor_half_width_m: float = 20.0,
+    corridor_half_width_m: float = PROFILE_HALF_WIDTH_M,
 ) -> bytes:
     """Side profile of one span.
 
@@ -215,8 +272,8 @@ def span_profile(
         Display unit system.
     vegetation_xyz, ground_xyz
         Vegetation and ground points in local metres, shape (n, 3); may be ``None``. [m]
-        Vegetation given as :class:`PointsByX` (built once for all spans) is looked at only
-        in the band of x the span's drawn corridor can reach: the same points are drawn.
+        Vegetation given as :class:`PointsByCell` (built once for all spans) is looked at only
+        in the box the span's drawn corridor can reach: the same points are drawn.
     corridor_half_width_m
         Vegetation farther than this from the span axis is not drawn. [m]
 
@@ -235,20 +292,15 @@ def span_profile(
     if ground is not None:
         gs, gz = ground
         ax.plot(gs * f, gz * f, color=theme.GROUND_LINE_COLOUR, lw=1.4, label="ground")
-    veg = vegetation_xyz.xyz if isinstance(vegetation_xyz, PointsByX) else vegetation_xyz
+    veg = vegetation_xyz.xyz if isinstance(vegetation_xyz, PointsByCell) else vegetation_xyz
     if veg is not None and len(veg) and axis is not None:
-        if isinstance(vegetation_xyz, PointsByX):
-            # a point drawn lies within the span's stations -5 ... length + 5 and within the
-            # corridor's half-width of its axis, so its x within that much of the ends' x
-            # (1 m more for round-off)
-            start, u, _ = axis
-            ends_x = (start[0], start[0] + u[0] * length)
-            pad = corridor_half_width_m + 5.0 + 1.0
-            cand = vegetation_xyz.within_x(min(ends_x) - pad, max(ends_x) + pad)
+        if isinstance(vegetation_xyz, PointsByCell):
+            cand = vegetation_xyz.near_span(axis, corridor_half_width_m + PROFILE_BEYOND_ENDS_M)
         else:
             cand = np.arange(len(veg))
         s, off = folder.station_offset(span, veg[cand, :2])
-        near = (np.abs(off) <= corridor_half_width_m) & (s >= -5) & (s <= length + 5)
+        b = PROFILE_BEYOND_ENDS_M
+        near = (np.abs(off) <= corridor_half_width_m) & (s >= -b) & (s <= length + b)
         idx = cand[near]  # positions in ``veg``, ascending
         if idx.size > MAX_PROFILE_POINTS:
             idx = np.random.default_rng(0).choice(idx, MAX_PROFILE_POINTS, replace=False)
