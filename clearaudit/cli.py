@@ -140,7 +140,20 @@ def cmd_report(args: argparse.Namespace) -> int:
     out = Path(args.out_dir)
     if not (out / "model.json").exists():
         raise InputError(out, "is not an audit output folder (no model.json)")
-    path = build_report(out, units=args.units)
+    if not (args.workers or args.scheduler):
+        path = build_report(out, units=args.units)
+    else:
+        # the span profiles drawn by a Dask cluster's workers (the saved outputs are sent to
+        # them: they need not see the folder)
+        from types import SimpleNamespace
+
+        from .distributed import check_engine, engine_for
+        from .pipeline import profiles_on_engine
+
+        check_engine(SimpleNamespace(threads=0, workers=args.workers, scheduler=args.scheduler))
+        with engine_for(args.workers, args.scheduler) as engine:
+            path = build_report(out, units=args.units, map_profiles=profiles_on_engine(engine))
+            engine.finish()
     _console().print(f"wrote {path}")
     return 0
 
@@ -283,6 +296,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("report", help="rebuild report.html from a saved audit folder")
     p.add_argument("out_dir", metavar="OUT_DIR")
     p.add_argument("--units", choices=("metric", "imperial"), default="metric")
+    p.add_argument("--workers", type=int, default=0,
+                   help="draw the span profiles on a local Dask cluster with N workers "
+                        "(0: in this process)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="draw the span profiles on an existing Dask cluster")
     p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("view", help="3D viewer of a saved audit folder")

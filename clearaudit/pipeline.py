@@ -598,7 +598,7 @@ def _finish_record_and_report(tmp: Path, record: RunRecord, options: AuditOption
     dump()
 
 
-def _profiles_on(engine: Any) -> Callable[[list], list]:
+def profiles_on_engine(engine: Any) -> Callable[[list], list]:
     """The report's span profiles drawn by an engine's workers (a Dask engine: each worker
     draws its share; matplotlib holds the GIL, so threads of this process would not). The
     saved outputs the profiles read are sent to the workers once."""
@@ -1149,7 +1149,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 if background is not None:
                     background.stop()  # on an error: stop it before the work folder goes
             _finish_record_and_report(tmp, record, options,
-                                      _profiles_on(engine) if report_on_engine else None)
+                                      profiles_on_engine(engine) if report_on_engine else None)
             engine.finish()  # (again: a no-op when the audit stage finished it)
     finally:
         remove_settled(work)

@@ -182,19 +182,47 @@ def test_profile_jobs_draw_what_the_report_drew(out_dir):
                                          ground_xyz=xyz[~is_veg]), sid
 
 
-def test_profiles_on_a_dask_cluster_same_report(out_dir, tmp_path):
+def testprofiles_on_engine_a_dask_cluster_same_report(out_dir, tmp_path):
     """Two local Dask workers draw the profiles: the report is the one drawn here."""
     pytest.importorskip("distributed")
     import re
 
     from clearaudit.distributed import engine_for
-    from clearaudit.pipeline import _profiles_on
+    from clearaudit.pipeline import profiles_on_engine
     from clearaudit.report.html import build_report
 
     here = build_report(out_dir, out_path=tmp_path / "here.html").read_text(encoding="utf-8")
     with engine_for(workers=2) as engine:
         there = build_report(out_dir, out_path=tmp_path / "there.html",
-                             map_profiles=_profiles_on(engine)).read_text(encoding="utf-8")
+                             map_profiles=profiles_on_engine(engine)).read_text(encoding="utf-8")
     stamp = re.compile(r"report generated [^·<]*")
     assert stamp.sub("", there) == stamp.sub("", here)
     assert there.count("data:image/png;base64,") == here.count("data:image/png;base64,") > 3
+
+
+def test_report_command_on_a_local_cluster(out_dir, tmp_path):
+    """``clearaudit report DIR --workers 2``: the same images as the report drawn here; a bad
+    worker count is one line and exit code 2, the report left as it was."""
+    pytest.importorskip("distributed")
+    import re
+    import shutil
+    import subprocess
+    import sys
+
+    folder = tmp_path / "audit"
+    shutil.copytree(out_dir, folder)
+    (folder / "report.html").unlink(missing_ok=True)
+    cmd = [sys.executable, "-m", "clearaudit.cli", "report", str(folder)]
+    bad = subprocess.run(cmd + ["--workers", "-1"], capture_output=True, text=True, timeout=300)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
+    assert "--workers" in bad.stderr and "Traceback" not in bad.stderr
+    assert not (folder / "report.html").exists()
+    done = subprocess.run(cmd + ["--workers", "2"], capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-2000:]
+    from clearaudit.report.html import build_report
+
+    here = build_report(out_dir, out_path=tmp_path / "here.html").read_text(encoding="utf-8")
+    there = (folder / "report.html").read_text(encoding="utf-8")
+    images = re.compile(r"data:image/png;base64,[A-Za-z0-9+/=]+")
+    assert images.findall(there) == images.findall(here)
+    assert len(images.findall(here)) > 3
