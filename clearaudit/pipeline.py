@@ -1150,7 +1150,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     background.stop()  # on an error: stop it before the work folder goes
             _finish_record_and_report(tmp, record, options,
                                       profiles_on_engine(engine) if report_on_engine else None)
-            engine.finish()  # (again: a no-op when the audit stage finished it)
+            if report_on_engine:
+                engine.finish()
     finally:
         remove_settled(work)
     return summary

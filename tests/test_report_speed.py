@@ -4,10 +4,10 @@
   scales only the kept points: checked against laspy reading every layer and scaling every
   point itself (laspy's ``x = X * scale + offset``, the reference outside the project), for
   a layered (format 6) and a point-interleaved (format 3) file, with the same thinning.
-- A span profile given its vegetation as :class:`~clearaudit.report.plots.PointsByCell`, or
-  the points cut to the box the span can reach (:func:`~clearaudit.report.html.profile_jobs`,
-  what the workers of a Dask run draw from), gives the PNG bytes of the profile given every
-  point.
+- A span profile given the points cut to the box the span can reach
+  (:class:`~clearaudit.report.plots.PointsByCell`, :func:`~clearaudit.report.html.profile_jobs`:
+  what the report and the workers of a Dask run draw from) gives the PNG bytes of the profile
+  given every point.
 - ``png_bytes`` renders through an uncompressed PNG: the pixels are those of matplotlib's own
   ``savefig(bbox_inches="tight")`` PNG, quantised the same way.
 """
@@ -22,6 +22,7 @@ from report_fixture import make_output_folder
 
 from clearaudit.report import plots
 from clearaudit.report.format import DisplayUnits
+from clearaudit.report.html import _PROFILE_REACH_M
 from clearaudit.report.outputs import read_outputs
 
 
@@ -121,12 +122,12 @@ def test_span_profile_same_with_points_by_cell(out_dir):
     index = plots.PointsByCell(veg)
     for sid in folder.span_ids():
         plain = plots.span_profile(folder, sid, units, vegetation_xyz=veg)
-        banded = plots.span_profile(folder, sid, units, vegetation_xyz=index)
-        assert banded == plain, sid
         axis = folder.span_axis(folder.span_record(sid))
-        if axis is not None:  # the points cut to the span's box, as a worker gets them
-            cut = veg[index.near_span(axis, 25.0)]
-            assert plots.span_profile(folder, sid, units, vegetation_xyz=cut) == plain, sid
+        # the points cut to the span's box with the report's reach, as the report (and a
+        # worker) passes them
+        cut = veg if axis is None else veg[index.near_span(axis, _PROFILE_REACH_M)]
+        banded = plots.span_profile(folder, sid, units, vegetation_xyz=cut)
+        assert banded == plain, sid
 
 
 def test_span_profile_thinned_vegetation_same(out_dir, monkeypatch):
@@ -136,7 +137,13 @@ def test_span_profile_thinned_vegetation_same(out_dir, monkeypatch):
     xyz, cls = folder.read_points(classes=plots.VEGETATION)
     monkeypatch.setattr(plots, "MAX_PROFILE_POINTS", max(10, len(xyz) // 20))
     sid = folder.span_ids()[0]
-    assert plots.span_profile(folder, sid, units, vegetation_xyz=plots.PointsByCell(xyz)) == \
+    span = folder.span_record(sid)
+    axis = folder.span_axis(span)
+    s, off = folder.station_offset(span, xyz[:, :2])
+    drawn = (np.abs(off) <= plots.PROFILE_HALF_WIDTH_M) & (s >= -5.0) & (s <= axis[2] + 5.0)
+    assert drawn.sum() > plots.MAX_PROFILE_POINTS  # the thinning really happens
+    cut = xyz[plots.PointsByCell(xyz).near_span(axis, _PROFILE_REACH_M)]
+    assert plots.span_profile(folder, sid, units, vegetation_xyz=cut) == \
         plots.span_profile(folder, sid, units, vegetation_xyz=xyz)
 
 

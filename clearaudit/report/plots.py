@@ -252,7 +252,7 @@ def span_profile(
     span_id: str,
     units: DisplayUnits,
     *,
-    vegetation_xyz: np.ndarray | PointsByCell | None = None,
+    vegetation_xyz: np.ndarray | None = None,
     ground_xyz: np.ndarray | None = None,
     corridor_half_width_m: float = PROFILE_HALF_WIDTH_M,
 ) -> bytes:
@@ -272,8 +272,8 @@ def span_profile(
         Display unit system.
     vegetation_xyz, ground_xyz
         Vegetation and ground points in local metres, shape (n, 3); may be ``None``. [m]
-        Vegetation given as :class:`PointsByCell` (built once for all spans) is looked at only
-        in the box the span's drawn corridor can reach: the same points are drawn.
+        The report passes only the points in the span's box (:class:`PointsByCell`), in
+        their order: the same points are drawn as from all of them.
     corridor_half_width_m
         Vegetation farther than this from the span axis is not drawn. [m]
 
@@ -292,21 +292,15 @@ def span_profile(
     if ground is not None:
         gs, gz = ground
         ax.plot(gs * f, gz * f, color=theme.GROUND_LINE_COLOUR, lw=1.4, label="ground")
-    veg = vegetation_xyz.xyz if isinstance(vegetation_xyz, PointsByCell) else vegetation_xyz
-    if veg is not None and len(veg) and axis is not None:
-        if isinstance(vegetation_xyz, PointsByCell):
-            cand = vegetation_xyz.near_span(axis, corridor_half_width_m + PROFILE_BEYOND_ENDS_M)
-        else:
-            cand = np.arange(len(veg))
-        s, off = folder.station_offset(span, veg[cand, :2])
+    if vegetation_xyz is not None and len(vegetation_xyz) and axis is not None:
+        s, off = folder.station_offset(span, vegetation_xyz[:, :2])
         b = PROFILE_BEYOND_ENDS_M
         near = (np.abs(off) <= corridor_half_width_m) & (s >= -b) & (s <= length + b)
-        idx = cand[near]  # positions in ``veg``, ascending
+        idx = np.flatnonzero(near)
         if idx.size > MAX_PROFILE_POINTS:
             idx = np.random.default_rng(0).choice(idx, MAX_PROFILE_POINTS, replace=False)
         if idx.size:
-            ax.scatter(s[np.searchsorted(cand, idx)] * f,
-                       _local_to_abs_z(folder, veg[idx, 2]) * f, s=2,
+            ax.scatter(s[idx] * f, _local_to_abs_z(folder, vegetation_xyz[idx, 2]) * f, s=2,
                        color=theme.VEGETATION_POINT_COLOUR, alpha=0.55, lw=0,
                        label=f"vegetation within {units.fmt_length(corridor_half_width_m, 0)}")
 
@@ -380,9 +374,7 @@ def span_profile(
     title = f"Span {span_id}"
     if math.isfinite(length):
         title += f" — {units.fmt_length(length, 1)}"
-    # y given: matplotlib then skips its search for top-edge decorations to avoid, which
-    # the profile has none of (the same place; ~20 ms a draw)
-    ax.set_title(title, y=1.0)
+    ax.set_title(title)
     ax.grid(True, color="#e4e4e4", lw=0.6)
     if math.isfinite(length):
         ax.set_xlim(-0.03 * length * f, 1.03 * length * f)
