@@ -380,6 +380,75 @@ def test_corridor_mask_matches_shapely_distance():
         corridor_mask(line, -1.0)
 
 
+def _corridor_numpy(line: np.ndarray, buffer: float, xy: np.ndarray) -> np.ndarray:
+    """The corridor test in plain numpy, every point against every segment: within the
+    buffer of a segment's box grown by it and ``d^2 <= buffer^2`` with ``t = clip(((p - a) .
+    (b - a)) / |b - a|^2, 0, 1)``, each product and sum rounded on its own (the compiled
+    kernel's order)."""
+    keep = np.zeros(len(xy), dtype=bool)
+    px, py = xy[:, 0], xy[:, 1]
+    for a, b in zip(line[:-1], line[1:], strict=True):
+        lo, hi = np.minimum(a, b) - buffer, np.maximum(a, b) + buffer
+        ab0, ab1 = float(b[0] - a[0]), float(b[1] - a[1])
+        denom = ab0 * ab0 + ab1 * ab1
+        if denom > 0.0:
+            t = np.clip(((px - a[0]) * ab0 + (py - a[1]) * ab1) / denom, 0.0, 1.0)
+            dx, dy = px - (a[0] + t * ab0), py - (a[1] + t * ab1)
+        else:
+            dx, dy = px - a[0], py - a[1]
+        inside = (px >= lo[0]) & (px <= hi[0]) & (py >= lo[1]) & (py <= hi[1])
+        keep |= inside & (dx * dx + dy * dy <= buffer * buffer)
+    return keep
+
+
+def test_corridor_exact_kernel_equals_the_numpy_form_on_the_edge():
+    # The compiled exact test (the points of raster cells that straddle the buffer's edge)
+    # against every segment tested in plain numpy, value for value; points placed on the
+    # buffer's edge to the last bit and one ulp either side, and many points of a long bent
+    # line whose raster cells are coarse (most of its corridor straddles). Reference also:
+    # shapely's distances away from the edge (GEOS, a general-purpose geometry library).
+    shapely = pytest.importorskip("shapely")
+    rng = np.random.default_rng(11)
+    line = np.array([[503_000.0, 4_100_000.0], [503_400.0, 4_100_090.0],
+                     [503_400.0, 4_100_090.0], [503_950.0, 4_100_700.0],
+                     [504_100.0, 4_101_900.0], [503_000.0, 4_103_000.0]])
+    buffer = 45.0
+    keep = corridor_mask(line, buffer)
+    # points on the edge: foot on a segment, out along the normal by exactly the buffer
+    k = rng.integers(0, len(line) - 1, 40_000)
+    a, b = line[k], line[k + 1]
+    ab = b - a
+    length = np.hypot(ab[:, 0], ab[:, 1])
+    ok = length > 0
+    a, ab, length = a[ok], ab[ok], length[ok]
+    u = rng.uniform(0, 1, len(a))[:, None]
+    normal = np.column_stack((-ab[:, 1], ab[:, 0])) / length[:, None]
+    side = rng.choice([-1.0, 1.0], len(a))[:, None]
+    edge = a + u * ab + side * buffer * normal
+    around = np.concatenate([edge, np.nextafter(edge, edge + 1), np.nextafter(edge, edge - 1)])
+    box_lo, box_hi = line.min(axis=0) - buffer, line.max(axis=0) + buffer
+    spread = rng.uniform(box_lo, box_hi, size=(200_000, 2))
+    pts = np.concatenate([around, spread])
+    want = _corridor_numpy(line, buffer, pts)
+    got = keep(pts)
+    np.testing.assert_array_equal(got, want)
+    assert 0.2 < want[:len(around)].mean() < 0.8  # the edge points fall on both sides
+    # the kernel alone, on every point (not only those of straddling cells)
+    from clearaudit.classify.kernels import corridor_exact
+
+    out = np.empty(len(pts), dtype=np.uint8)
+    at = np.flatnonzero(np.all((pts >= box_lo) & (pts <= box_hi), axis=1))
+    out = np.empty(len(at), dtype=np.uint8)
+    corridor_exact(pts, at, *keep.raster[8:], out)
+    np.testing.assert_array_equal(out.view(bool), want[at])
+    dist = shapely.distance(shapely.points(spread), shapely.LineString(line))
+    clear = np.abs(dist - buffer) > 1e-9
+    np.testing.assert_array_equal(got[len(around):][clear], (dist <= buffer)[clear])
+    with pytest.raises(IndexError):
+        corridor_exact(pts, np.array([len(pts)], dtype=np.int64), *keep.raster[8:],
+                       np.empty(1, dtype=np.uint8))
+
+
 def test_read_range_compiled_corridor_pass_equals_the_numpy_form():
     # reference: the same corridor through the numpy path (a keep callable without the
     # compiled raster), and shapely's distances for the kept points. Local origin away from

@@ -621,26 +621,107 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
         raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
 
 
+cdef inline bint _near_polyline(double px, double py, const double[:, ::1] seg, double b2,
+                                int axis, double lo_axis, double per_unit, int64_t n_buckets,
+                                const int64_t[::1] bucket_start,
+                                const int64_t[::1] bucket_seg) noexcept nogil:
+    """Whether the point (``px``, ``py``) lies within ``sqrt(b2)`` of a segment of the
+    polyline: the segments listed for its bucket along the sweep axis, each only if the
+    point is inside its box grown by the buffer (``seg`` rows: a0, a1, ab0, ab1,
+    ab0 * ab0 + ab1 * ab1, box lo0, lo1, hi0, hi1). With ``t = clip(((p0 - a0) ab0 +
+    (p1 - a1) ab1) / |ab|^2, 0, 1)``, ``d^2 = (p0 - (a0 + t ab0))^2 + (p1 - (a1 + t ab1))^2``
+    (``p - a`` for a segment of zero length) — each operation rounded as the numpy form."""
+    cdef double s = ((px if axis == 0 else py) - lo_axis) * per_unit
+    cdef int64_t b = <int32_t>s  # numpy's astype(int32): truncation (s >= 0 in the box)
+    cdef int64_t q, k
+    cdef double t, dx, dy
+    if b > n_buckets - 1:
+        b = n_buckets - 1
+    for q in range(bucket_start[b], bucket_start[b + 1]):
+        k = bucket_seg[q]
+        if not (px >= seg[k, 5] and px <= seg[k, 7] and py >= seg[k, 6] and py <= seg[k, 8]):
+            continue
+        if seg[k, 4] > 0.0:
+            t = ((px - seg[k, 0]) * seg[k, 2] + (py - seg[k, 1]) * seg[k, 3]) / seg[k, 4]
+            if t < 0.0:
+                t = 0.0
+            elif t > 1.0:
+                t = 1.0
+            dx = px - (seg[k, 0] + t * seg[k, 2])
+            dy = py - (seg[k, 1] + t * seg[k, 3])
+        else:
+            dx = px - seg[k, 0]
+            dy = py - seg[k, 1]
+        dx = dx * dx
+        dy = dy * dy
+        if dx + dy <= b2:
+            return True
+    return False
+
+
+cdef int _check_polyline(const double[:, ::1] seg, int axis, int64_t n_buckets,
+                         const int64_t[::1] bucket_start, const int64_t[::1] bucket_seg,
+                         str name) except -1:
+    cdef Py_ssize_t q
+    if seg.shape[1] != 9 or axis not in (0, 1) or n_buckets < 1 or \
+            bucket_start.shape[0] != n_buckets + 1 or bucket_start[0] != 0 or \
+            bucket_start[n_buckets] != bucket_seg.shape[0]:
+        raise ValueError(f"{name}: mismatched polyline arrays")
+    for q in range(n_buckets):
+        if bucket_start[q + 1] < bucket_start[q]:
+            raise ValueError(f"{name}: bucket starts must not decrease")
+    for q in range(bucket_seg.shape[0]):
+        if bucket_seg[q] < 0 or bucket_seg[q] >= seg.shape[0]:
+            raise IndexError(f"{name}: a bucket lists a segment that does not exist")
+    return 0
+
+
+def corridor_exact(const double[:, :] xy, const int64_t[::1] at, const double[:, ::1] seg,
+                   double b2, int axis, double lo_axis, double per_unit, int64_t n_buckets,
+                   const int64_t[::1] bucket_start, const int64_t[::1] bucket_seg,
+                   unsigned char[::1] out):
+    """``out[i]``: whether point ``xy[at[i]]`` [CRS unit] (inside the corridor's box) lies
+    within the buffer of the polyline (:func:`_near_polyline`; the polyline's data as
+    :func:`clearaudit.io.las.corridor_mask` prepares them)."""
+    cdef Py_ssize_t n = at.shape[0], i, m = xy.shape[0]
+    _check_polyline(seg, axis, n_buckets, bucket_start, bucket_seg, "corridor_exact")
+    if out.shape[0] != n or xy.shape[1] < 2:
+        raise ValueError("corridor_exact: mismatched array shapes")
+    for i in range(n):
+        if at[i] < 0 or at[i] >= m:
+            raise IndexError("corridor_exact: a position beyond the points")
+    with nogil:
+        for i in range(n):
+            out[i] = _near_polyline(xy[at[i], 0], xy[at[i], 1], seg, b2, axis, lo_axis,
+                                    per_unit, n_buckets, bucket_start, bucket_seg)
+
+
 def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx, double rx,
                    int64_t ky, double sy, double ry, double ox, double oy, double lo0,
                    double lo1, double hi0, double hi1, double cell, int64_t n0, int64_t n1,
-                   const unsigned char[::1] cell_state, double[::1] local_x, double[::1] local_y,
-                   unsigned char[::1] state):
-    """Local coordinates of LAS integer records and their corridor raster state, one pass.
+                   const unsigned char[::1] cell_state, const double[:, ::1] seg, double b2,
+                   int axis, double lo_axis, double per_unit, int64_t n_buckets,
+                   const int64_t[::1] bucket_start, const int64_t[::1] bucket_seg,
+                   double[::1] local_x, double[::1] local_y, unsigned char[::1] state):
+    """Local coordinates of LAS integer records and whether each lies in the corridor, one
+    pass.
 
     ``local = (X - k) * scale (+ r)`` per axis, as :meth:`clearaudit.io.las._Shift.local`;
     the CRS position ``local + origin`` is tested against the corridor's box and raster
     (:func:`clearaudit.io.las.corridor_mask`): ``state`` 0 outside the box or in a dropped
-    cell, 1 in a kept cell, 2 in a cell whose points need the exact test — the same
-    roundings as the numpy form.
+    cell, 1 in a kept cell; a point of a cell that straddles the buffer's edge gets the exact
+    test (:func:`corridor_exact`), 1 within the buffer, 0 beyond — the same roundings as the
+    numpy form.
     """
     cdef Py_ssize_t n = X.shape[0], i
     cdef double x, y, cx, cy
+    cdef unsigned char st
     if Y.shape[0] != n or local_x.shape[0] != n or local_y.shape[0] != n or \
             state.shape[0] != n or n0 < 1 or n1 < 1 or cell_state.shape[0] != n0 * n1:
         raise ValueError("corridor_local: mismatched array shapes")
     if not cell > 0:
         raise ValueError("corridor_local: the cell size must be positive")
+    _check_polyline(seg, axis, n_buckets, bucket_start, bucket_seg, "corridor_local")
     with nogil:
         for i in range(n):
             x = <double>(<int64_t>X[i] - kx) * sx
@@ -657,7 +738,11 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
                 state[i] = 0
                 continue
             # inside the box: both offsets >= 0 and finite
-            state[i] = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
+            st = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
+            if st == 2:
+                st = _near_polyline(cx, cy, seg, b2, axis, lo_axis, per_unit, n_buckets,
+                                    bucket_start, bucket_seg)
+            state[i] = st
 
 
 def record_int_bounds(const unsigned char[::1] raw, Py_ssize_t itemsize, int64_t[::1] lo,

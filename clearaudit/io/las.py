@@ -383,21 +383,15 @@ class _HeaderBox:
         bounds and the slack (always, for a header with no bounds)."""
         return not self.active or bool((lo >= self.lo).all() and (hi <= self.hi).all())
 
-    def check(self, path: Path, chunk: Any, first: int) -> None:
+    def check(self, path: Path, chunk: Any, first: int,
+              bounds: tuple[np.ndarray, np.ndarray] | None = None) -> None:
         """Raise :class:`InputError` naming ``path`` if a point of ``chunk`` (whose first point
-        is point ``first`` of the file) lies beyond the header's bounds."""
+        is point ``first`` of the file) lies beyond the header's bounds. ``bounds``: the
+        chunk's :func:`_int_bounds`, when already known."""
         if not self.active or len(chunk) == 0:
             return
-        from ..classify.kernels import record_int_bounds
-
         records = chunk.array
-        lo, hi = np.empty(3, np.int64), np.empty(3, np.int64)
-        if records.flags.c_contiguous:  # one compiled pass over the records (X, Y, Z lead)
-            record_int_bounds(records.view(np.uint8).reshape(-1), records.dtype.itemsize,
-                              lo, hi)
-        else:
-            for axis, name in enumerate("XYZ"):
-                lo[axis], hi[axis] = records[name].min(), records[name].max()
+        lo, hi = _int_bounds(chunk) if bounds is None else bounds
         if self.holds(lo, hi):
             return
         # the chunk's first point beyond the bounds, and the first of its axes that is
@@ -414,6 +408,21 @@ class _HeaderBox:
                                f"point {first + i}, {label} = {value:.3f}; header {label} "
                                f"{self.mins[axis]:.3f} to {self.maxs[axis]:.3f}): the file is "
                                f"corrupt, or its header's bounds are wrong")
+
+
+def _int_bounds(chunk: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Smallest and largest integer X, Y, Z (int64, (3,) each) of a decoded chunk (not
+    empty): one compiled pass over contiguous records (X, Y, Z lead every point format)."""
+    from ..classify.kernels import record_int_bounds
+
+    records = chunk.array
+    lo, hi = np.empty(3, np.int64), np.empty(3, np.int64)
+    if records.flags.c_contiguous:
+        record_int_bounds(records.view(np.uint8).reshape(-1), records.dtype.itemsize, lo, hi)
+    else:
+        for axis, name in enumerate("XYZ"):
+            lo[axis], hi[axis] = records[name].min(), records[name].max()
+    return lo, hi
 
 
 #: How far beyond its header's bounds a point may lie before the file is refused, in the
@@ -550,7 +559,9 @@ class _ScratchSink:
         self._lo = np.full(3, np.iinfo(np.int64).max, dtype=np.int64)
         self._hi = np.full(3, np.iinfo(np.int64).min, dtype=np.int64)
 
-    def keep(self, chunk: Any) -> None:
+    def keep(self, chunk: Any, bounds: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+        """Append the chunk's records (or their side bytes, ``layers``); ``bounds``: the
+        chunk's :func:`_int_bounds`, when already known."""
         records = np.ascontiguousarray(chunk.array)
         if not self.layers:
             self.fh.write(records.view(np.uint8))
@@ -560,10 +571,9 @@ class _ScratchSink:
             return
         raw = records.view(np.uint8).reshape(m, records.dtype.itemsize)
         self.fh.write(np.ascontiguousarray(raw[:, _LAYER_SIDE_BYTES]))
-        for axis, name in enumerate("XYZ"):
-            ints = records[name]
-            self._lo[axis] = min(self._lo[axis], int(ints.min()))
-            self._hi[axis] = max(self._hi[axis], int(ints.max()))
+        lo, hi = _int_bounds(chunk) if bounds is None else bounds
+        np.minimum(self._lo, lo, out=self._lo)
+        np.maximum(self._hi, hi, out=self._hi)
 
     def bounds(self) -> np.ndarray:
         return np.concatenate((self._lo, self._hi)).astype("<i8")
@@ -663,10 +673,11 @@ def _record_sink(records: RecordScratch | None, file_id: int, start: int = 0):
     return nullcontext(None) if records is None else records.writer(file_id, start)
 
 
-def _keep_records(sink: _ScratchSink | None, chunk: Any) -> None:
+def _keep_records(sink: _ScratchSink | None, chunk: Any,
+                  bounds: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Append what the scratch keeps of a decoded chunk (see :class:`RecordScratch`)."""
     if sink is not None:
-        sink.keep(chunk)
+        sink.keep(chunk, bounds)
 
 
 def _withheld(chunk: Any) -> np.ndarray | None:
@@ -810,8 +821,10 @@ def read_cloud(
                         f"is truncated or corrupt (header says {meta.point_count} points, "
                         f"more could be read)",
                     )
-                box.check(meta.path, chunk, n_file)
-                _keep_records(sink, chunk)
+                # the integer bounds once, for the header test and the scratch
+                bounds = _int_bounds(chunk) if box.active or sink is not None else None
+                box.check(meta.path, chunk, n_file, bounds)
+                _keep_records(sink, chunk, bounds)
                 lx = shift.local_into(np.asarray(chunk.X), 0, np.empty(m))
                 ly = shift.local_into(np.asarray(chunk.Y), 1, np.empty(m))
                 mask = None
@@ -1154,15 +1167,17 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             if m == 0:
                 raise InputError(path, f"is truncated or corrupt (header says {count} points, "
                                        f"{position} could be read)")
-            box.check(path, chunk, position)
-            _keep_records(records_to, chunk)
+            # the integer bounds once, for the header test and the scratch
+            bounds = _int_bounds(chunk) if box.active or records_to is not None else None
+            box.check(path, chunk, position, bounds)
+            _keep_records(records_to, chunk, bounds)
             index = np.arange(position, position + m, dtype=np.int64)
             withheld = _withheld(chunk)
             raster = getattr(keep, "raster", None)
             if raster is not None:
-                # a corridor: local x, y and each point's raster state in one compiled pass;
-                # only the points of straddling cells get the exact test (the same values
-                # and the same kept points as the numpy form below)
+                # a corridor: local x, y and whether each point is kept in one compiled pass
+                # (the raster, then the exact test for the points of straddling cells: the
+                # same values and the same kept points as the numpy form below)
                 from ..classify.kernels import corridor_local
 
                 local_x, local_y = np.empty(m), np.empty(m)
@@ -1172,12 +1187,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
                                int(shift.k[1]), float(shift.scale[1]), float(shift.r[1]),
                                float(origin[0]), float(origin[1]), *raster,
                                local_x, local_y, state)
-                test = np.flatnonzero(state == 2)
-                if len(test):
-                    xy_test = np.column_stack((local_x[test] + origin[0],
-                                               local_y[test] + origin[1]))
-                    state[test[keep.exact(xy_test, np.arange(len(test)))]] = 1
-                inside = state == 1
+                inside = state.view(bool)
             else:
                 local_x = shift.local(np.asarray(chunk.X), 0)
                 local_y = shift.local(np.asarray(chunk.Y), 1)
@@ -1341,62 +1351,36 @@ def corridor_mask(
         mask[inside] = exact(xy, inside)
         return mask
 
+    # the exact test's polyline (:func:`clearaudit.classify.kernels.corridor_exact`): per
+    # segment its start, direction, squared length and box grown by the buffer, and per
+    # bucket along the sweep axis the segments whose slab covers it (in segment order)
+    ab = ends - starts
+    seg = np.ascontiguousarray(np.column_stack(
+        (starts, ab, ab[:, 0] * ab[:, 0] + ab[:, 1] * ab[:, 1], lo, hi)), dtype=np.float64)
+    span = seg_b1 - seg_b0 + 1
+    bucket_seg = np.repeat(np.arange(len(seg), dtype=np.int64), span)
+    bucket_of = (np.arange(int(span.sum()), dtype=np.int64)
+                 - np.repeat(np.cumsum(span) - span, span) + np.repeat(seg_b0, span))
+    order = np.argsort(bucket_of, kind="stable")  # each bucket's segments in segment order
+    bucket_seg = np.ascontiguousarray(bucket_seg[order])
+    bucket_start = np.concatenate(([0], np.cumsum(np.bincount(bucket_of, minlength=n_buckets))))
+    polyline = (seg, float(b2), axis, float(all_lo[axis]), float(per_unit), int(n_buckets),
+                bucket_start.astype(np.int64), bucket_seg)
+
     def exact(xy: np.ndarray, inside: np.ndarray) -> np.ndarray:
         """Whether each point ``xy[inside]`` (inside the box) lies within the buffer: the
-        per-segment distances, for the points of the raster cells that straddle it."""
-        x, y = xy[:, 0], xy[:, 1]
-        s = np.take(x if axis == 0 else y, inside)
-        s -= all_lo[axis]
-        s *= per_unit
-        # s >= 0 inside the box, so truncation is the floor used for the segments above
-        ib = s.astype(np.int32)
-        del s
-        np.minimum(ib, n_buckets - 1, out=ib)
-        bucket = ib.astype(np.int16)
-        del ib
-        order = np.argsort(bucket, kind="stable")  # radix sort for 16-bit keys
-        bounds = np.concatenate(([0], np.cumsum(np.bincount(bucket, minlength=n_buckets))))
-        del bucket
-        inside = np.take(inside, order)
-        pts = np.take(xy, inside, axis=0)  # np.take: much faster than xy[inside] on rows
-        best = np.zeros(len(pts), dtype=bool)
-        for a, b, l0, h0, b0, b1 in zip(starts, ends, lo, hi, seg_b0, seg_b1, strict=True):
-            i0, i1 = int(bounds[b0]), int(bounds[b1 + 1])
-            if i1 <= i0:
-                continue
-            slab = pts[i0:i1]
-            px, py = slab[:, 0], slab[:, 1]
-            in_box = ~best[i0:i1]
-            in_box &= px >= l0[0]
-            in_box &= px <= h0[0]
-            in_box &= py >= l0[1]
-            in_box &= py <= h0[1]
-            if not in_box.any():
-                continue
-            # the distance is worked out for the whole slab (contiguous, no gather) and only
-            # counted where the point is in the segment's box
-            ab = b - a
-            denom = float(ab @ ab)
-            if denom > 0.0:
-                t = np.clip(((slab - a) @ ab) / denom, 0.0, 1.0)
-                dx = px - (a[0] + t * ab[0])
-                dy = py - (a[1] + t * ab[1])
-            else:
-                dx = px - a[0]
-                dy = py - a[1]
-            dx *= dx
-            dy *= dy
-            dx += dy
-            in_box &= dx <= b2
-            best[i0:i1] |= in_box
-        out = np.empty(len(best), dtype=bool)
-        out[order] = best  # the points were visited bucket by bucket
-        return out
+        per-segment distances (compiled), for the points of the raster cells that straddle
+        it."""
+        from ..classify.kernels import corridor_exact
+
+        out = np.empty(len(inside), dtype=np.uint8)
+        corridor_exact(xy, np.ascontiguousarray(inside, dtype=np.int64), *polyline, out)
+        return out.view(bool)
 
     # for readers that test the raster in a compiled pass (read_range): the box, the raster
     # and the exact test of the straddling cells' points
     keep.raster = (float(all_lo[0]), float(all_lo[1]), float(all_hi[0]), float(all_hi[1]),
-                   float(cell), int(n_cells[0]), int(n_cells[1]), cell_state)
+                   float(cell), int(n_cells[0]), int(n_cells[1]), cell_state, *polyline)
     keep.exact = exact
     return keep
 
