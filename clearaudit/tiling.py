@@ -465,14 +465,14 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
 
     with (records.writer(part.file_id, part.start) if records is not None
           else nullcontext()) as sink:
-        for xyz, cls, index, n in read_range(setup, part.file_id, part.start, part.stop,
-                                             keep=keep, chunk_size=chunk_size, records_to=sink,
-                                             tally=tally):
+        for xyz, cls, index, n, ci, cj in read_range(
+                setup, part.file_id, part.start, part.stop, keep=keep, chunk_size=chunk_size,
+                records_to=sink, tally=tally, cells=(grid.x0, grid.y0, grid.cell_m)):
             decoded += n
             if len(xyz) == 0:
                 continue
-            rec, cell_i, cell_j, starts, stops = route_by_cell(
-                xyz, cls, (np.int64(part.file_id) << KEY_SHIFT) | index, *grid.cells(xyz))
+            index |= np.int64(part.file_id) << KEY_SHIFT  # the key
+            rec, cell_i, cell_j, starts, stops = route_by_cell(xyz, cls, index, ci, cj)
             for i, j, a, b in zip(cell_i.tolist(), cell_j.tolist(), starts.tolist(),
                                   stops.tolist(), strict=True):
                 buffers.setdefault((i, j), []).append(rec[a:b])

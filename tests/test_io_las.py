@@ -468,14 +468,29 @@ def test_read_range_compiled_corridor_pass_equals_the_numpy_form():
     def plain(xy):  # the same test, by the numpy form
         return keep(xy)
 
+    def everything(xy):  # no corridor, by the numpy form
+        return np.ones(len(xy), dtype=bool)
+
+    cells = (-312.5, -87.25, 50.0)  # a grid (x0, y0, cell) [m]: Grid.cells' formula below
     for chunk in (1000, 37_000):
-        fast = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=chunk))
-        slow = list(read_range(setup, 0, 5, None, keep=plain, chunk_size=chunk))
-        assert len(fast) == len(slow) > 1
-        for a, b in zip(fast, slow, strict=True):
-            for u, v in zip(a[:3], b[:3], strict=True):
-                np.testing.assert_array_equal(u, v)
-            assert a[3] == b[3]
+        for compiled, numpy_form in ((keep, plain), (None, everything)):
+            fast = list(read_range(setup, 0, 5, None, keep=compiled, chunk_size=chunk,
+                                   cells=cells))
+            slow = list(read_range(setup, 0, 5, None, keep=numpy_form, chunk_size=chunk,
+                                   cells=cells))
+            assert len(fast) == len(slow) > 1
+            for a, b in zip(fast, slow, strict=True):
+                assert len(a) == len(b) == 6
+                for u, v in zip(a[:3] + a[4:], b[:3] + b[4:], strict=True):
+                    assert u.dtype == v.dtype
+                    np.testing.assert_array_equal(u, v)
+                assert a[3] == b[3]
+                np.testing.assert_array_equal(a[4], np.floor((a[0][:, 0] + 312.5) / 50.0))
+                np.testing.assert_array_equal(a[5], np.floor((a[0][:, 1] + 87.25) / 50.0))
+        # without cells: the first four of the same
+        plain4 = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=chunk))
+        assert all(len(a) == 4 for a in plain4)
+    fast = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=37_000))
     xyz = np.concatenate([c[0] for c in fast])
     assert 0 < len(xyz) < setup.total_points
     dist = shapely.distance(shapely.points(xyz[:, :2] + setup.origin[:2]),

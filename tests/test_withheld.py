@@ -60,6 +60,22 @@ def test_read_leaves_withheld_points_out(corridor, tmp_path, point_format):
     index = np.concatenate([c[2] for c in read_range(setup, 0, chunk_size=50_000, tally=tally)])
     np.testing.assert_array_equal(index, np.flatnonzero(~flagged))
     assert tally["withheld"] == int(flagged.sum())
+    # with a corridor: the compiled chunk pass against the numpy form (a plain callable)
+    from clearaudit.io.las import corridor_mask
+
+    lo, hi = setup.header_min[:2] + setup.origin[:2], setup.header_max[:2] + setup.origin[:2]
+    keep = corridor_mask(np.array([lo + [30.0, 20.0], hi - [40.0, 10.0]]), 25.0)
+    got = {}
+    for name, k in (("compiled", keep), ("numpy", lambda xy: keep(xy))):
+        t: dict[str, int] = {}
+        chunks = list(read_range(setup, 0, keep=k, chunk_size=30_000, tally=t,
+                                 cells=(0.0, 0.0, 40.0)))
+        got[name] = ([np.concatenate([c[i] for c in chunks]) for i in (0, 1, 2, 4, 5)], t)
+    for u, v in zip(got["compiled"][0], got["numpy"][0], strict=True):
+        np.testing.assert_array_equal(u, v)
+    assert got["compiled"][1] == got["numpy"][1]
+    assert 0 < got["compiled"][1]["withheld"] < int(flagged.sum())
+    assert not flagged[got["compiled"][0][2]].any()
 
 
 def _with_extra_points(src: Path, dst: Path, withheld: bool) -> tuple[int, np.ndarray]:

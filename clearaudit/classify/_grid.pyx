@@ -5,7 +5,7 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabs, fabsf, sqrt
+from libc.math cimport NAN, fabs, fabsf, floor, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
 from libc.string cimport memcpy
@@ -743,6 +743,85 @@ def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx
                 st = _near_polyline(cx, cy, seg, b2, axis, lo_axis, per_unit, n_buckets,
                                     bucket_start, bucket_seg)
             state[i] = st
+
+
+def chunk_points(const int32_t[:] X, const int32_t[:] Y, const int32_t[:] Z,
+                 const unsigned char[:] cls, const unsigned char[:] withheld,
+                 const int64_t[::1] k, const double[::1] scale, const double[::1] r,
+                 const double[::1] unit, double ox, double oy, int64_t position,
+                 bint corridor, double lo0, double lo1, double hi0, double hi1, double cell,
+                 int64_t n0, int64_t n1, const unsigned char[::1] cell_state,
+                 const double[:, ::1] seg, double b2, int axis, double lo_axis,
+                 double per_unit, int64_t n_buckets, const int64_t[::1] bucket_start,
+                 const int64_t[::1] bucket_seg, double gx0, double gy0, double grid_cell,
+                 double[:, ::1] xyz, unsigned char[::1] out_cls, int64_t[::1] index,
+                 int64_t[::1] ci, int64_t[::1] cj):
+    """One decoded chunk's kept points in local metres with their class, point index and
+    grid cell, in one pass (the streaming reader's chunk step, see
+    :func:`clearaudit.io.las.read_range`).
+
+    Per point: ``local = (X - k) * scale (+ r)`` per axis (:meth:`clearaudit.io.las._Shift.
+    local`); with ``corridor``, kept only where :func:`corridor_local` keeps it (box, raster,
+    exact test); a point flagged ``withheld`` (an empty array: none) is never kept. A kept
+    point's ``xyz`` is ``local * unit`` per axis, its ``index`` ``position + i``, its cell
+    ``floor((x - gx0) / grid_cell)``, ``floor((y - gy0) / grid_cell)``
+    (:meth:`clearaudit.tiling.Grid.cells`). Returns ``(kept, withheld)``: the points written
+    (in input order) and the points the corridor kept that were withheld.
+    """
+    cdef Py_ssize_t n = X.shape[0], i, m = 0, held = 0
+    cdef double x, y, z, cx, cy
+    cdef unsigned char st
+    cdef bint any_held = withheld.shape[0] != 0
+    if Y.shape[0] != n or Z.shape[0] != n or cls.shape[0] != n or \
+            (any_held and withheld.shape[0] != n):
+        raise ValueError("chunk_points: mismatched point arrays")
+    if k.shape[0] != 3 or scale.shape[0] != 3 or r.shape[0] != 3 or unit.shape[0] != 3:
+        raise ValueError("chunk_points: k, scale, r and unit hold three values")
+    if xyz.shape[0] < n or xyz.shape[1] != 3 or out_cls.shape[0] < n or index.shape[0] < n \
+            or ci.shape[0] < n or cj.shape[0] < n:
+        raise ValueError("chunk_points: the outputs are shorter than the chunk")
+    if not grid_cell > 0:
+        raise ValueError("chunk_points: the grid's cell size must be positive")
+    if corridor:
+        if n0 < 1 or n1 < 1 or cell_state.shape[0] != n0 * n1 or not cell > 0:
+            raise ValueError("chunk_points: mismatched corridor raster")
+        _check_polyline(seg, axis, n_buckets, bucket_start, bucket_seg, "chunk_points")
+    with nogil:
+        for i in range(n):
+            x = <double>(<int64_t>X[i] - k[0]) * scale[0]
+            if r[0] != 0.0:
+                x = x + r[0]
+            y = <double>(<int64_t>Y[i] - k[1]) * scale[1]
+            if r[1] != 0.0:
+                y = y + r[1]
+            if corridor:
+                cx = x + ox
+                cy = y + oy
+                if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
+                    continue
+                st = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
+                if st == 0:
+                    continue
+                if st == 2 and not _near_polyline(cx, cy, seg, b2, axis, lo_axis, per_unit,
+                                                   n_buckets, bucket_start, bucket_seg):
+                    continue
+            if any_held and withheld[i]:
+                held += 1
+                continue
+            z = <double>(<int64_t>Z[i] - k[2]) * scale[2]
+            if r[2] != 0.0:
+                z = z + r[2]
+            x = x * unit[0]
+            y = y * unit[1]
+            xyz[m, 0] = x
+            xyz[m, 1] = y
+            xyz[m, 2] = z * unit[2]
+            out_cls[m] = cls[i]
+            index[m] = position + i
+            ci[m] = <int64_t>floor((x - gx0) / grid_cell)
+            cj[m] = <int64_t>floor((y - gy0) / grid_cell)
+            m += 1
+    return m, held
 
 
 def record_int_bounds(const unsigned char[::1] raw, Py_ssize_t itemsize, int64_t[::1] lo,

@@ -1089,10 +1089,19 @@ def balanced_step(points: int, header: Any, threads: int | None = None) -> int:
     return chunk * max(1, (4 * points) // chunk)
 
 
+#: :func:`read_range`'s compiled chunk step without a corridor: an empty raster and polyline
+_NO_CORRIDOR = (0.0, 0.0, 0.0, 0.0, 1.0, 1, 1, np.zeros(1, dtype=np.uint8),
+                np.zeros((0, 9)), 0.0, 0, 0.0, 0.0, 1, np.zeros(2, dtype=np.int64),
+                np.zeros(0, dtype=np.int64))
+#: ... and without withheld points
+_NO_FLAGS = np.zeros(0, dtype=np.uint8)
+
+
 def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None = None, *,
                keep: Callable[[np.ndarray], np.ndarray] | None = None,
                chunk_size: int = DEFAULT_CHUNK_SIZE, records_to: _ScratchSink | None = None,
-               tally: dict[str, int] | None = None):
+               tally: dict[str, int] | None = None,
+               cells: tuple[float, float, float] | None = None):
     """Stream points ``start:stop`` of one input file as local-metre chunks.
 
     Parameters
@@ -1116,12 +1125,16 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
     tally
         Optional dict; ``tally["withheld"]`` is increased by the points that ``keep`` would
         keep but that are flagged withheld, which are never yielded (see :func:`read_cloud`).
+    cells
+        Optional grid ``(x0, y0, cell)`` [m]: each kept point's grid cell is yielded too,
+        ``floor((x - x0) / cell)``, ``floor((y - y0) / cell)`` (``clearaudit.tiling.Grid``).
 
     Yields
     ------
-    (xyz, classification, index, n_decoded)
+    (xyz, classification, index, n_decoded) or, with ``cells``, (..., cell_i, cell_j)
         ``xyz`` (m, 3) float64 local metres, ``classification`` uint8, ``index`` int64 point
-        index in the file, ``n_decoded`` the points decoded for this chunk (before ``keep``).
+        index in the file, ``n_decoded`` the points decoded for this chunk (before ``keep``),
+        ``cell_i``, ``cell_j`` int64.
 
     Notes
     -----
@@ -1171,40 +1184,55 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             bounds = _int_bounds(chunk) if box.active or records_to is not None else None
             box.check(path, chunk, position, bounds)
             _keep_records(records_to, chunk, bounds)
-            index = np.arange(position, position + m, dtype=np.int64)
             withheld = _withheld(chunk)
             raster = getattr(keep, "raster", None)
-            if raster is not None:
-                # a corridor: local x, y and whether each point is kept in one compiled pass
-                # (the raster, then the exact test for the points of straddling cells: the
-                # same values and the same kept points as the numpy form below)
-                from ..classify.kernels import corridor_local
+            if keep is None or raster is not None:
+                # one compiled pass: local coordinates, the corridor (its raster, then the
+                # exact test for the points of straddling cells), the withheld flag, the kept
+                # points' units, indices and grid cells (the same values and the same kept
+                # points as the numpy form below)
+                from ..classify.kernels import chunk_points
 
-                local_x, local_y = np.empty(m), np.empty(m)
-                state = np.empty(m, dtype=np.uint8)
-                corridor_local(np.asarray(chunk.X), np.asarray(chunk.Y),
-                               int(shift.k[0]), float(shift.scale[0]), float(shift.r[0]),
-                               int(shift.k[1]), float(shift.scale[1]), float(shift.r[1]),
-                               float(origin[0]), float(origin[1]), *raster,
-                               local_x, local_y, state)
-                inside = state.view(bool)
-            else:
-                local_x = shift.local(np.asarray(chunk.X), 0)
-                local_y = shift.local(np.asarray(chunk.Y), 1)
-                inside = None
-                if keep is not None:
-                    xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
-                    inside = np.asarray(_call_keep(keep, xy_crs), dtype=bool)
+                xyz = np.empty((m, 3), dtype=np.float64)
+                cls = np.empty(m, dtype=np.uint8)
+                index = np.empty(m, dtype=np.int64)
+                ci, cj = np.empty(m, dtype=np.int64), np.empty(m, dtype=np.int64)
+                corridor = raster if raster is not None else _NO_CORRIDOR
+                kept, left_out = chunk_points(
+                    np.asarray(chunk.X), np.asarray(chunk.Y), np.asarray(chunk.Z),
+                    np.asarray(chunk.classification, dtype=np.uint8),
+                    _NO_FLAGS if withheld is None else withheld.view(np.uint8),
+                    shift.k.astype(np.int64), shift.scale.astype(np.float64),
+                    shift.r.astype(np.float64), np.asarray(unit, dtype=np.float64),
+                    float(origin[0]), float(origin[1]), position, raster is not None,
+                    *corridor, *(cells if cells is not None else (0.0, 0.0, 1.0)),
+                    xyz, cls, index, ci, cj)
+                if tally is not None and left_out:
+                    tally["withheld"] = tally.get("withheld", 0) + left_out
+                out = (xyz[:kept], cls[:kept], index[:kept], m)
+                yield out + (ci[:kept], cj[:kept]) if cells is not None else out
+                position += m
+                continue
+            index = np.arange(position, position + m, dtype=np.int64)
+            local_x = shift.local(np.asarray(chunk.X), 0)
+            local_y = shift.local(np.asarray(chunk.Y), 1)
+            xy_crs = np.column_stack((local_x + origin[0], local_y + origin[1]))
+            inside = np.asarray(_call_keep(keep, xy_crs), dtype=bool)
             inside, left_out = _leave_out(inside, withheld)
             if tally is not None and left_out:
                 tally["withheld"] = tally.get("withheld", 0) + left_out
-            sel = slice(None) if inside is None else np.flatnonzero(inside)
+            sel = np.flatnonzero(inside)
             local_z = shift.local(np.asarray(chunk.Z)[sel], 2)
             xyz = np.empty((len(local_z), 3), dtype=np.float64)
             xyz[:, 0] = local_x[sel] * unit[0]
             xyz[:, 1] = local_y[sel] * unit[1]
             xyz[:, 2] = local_z * unit[2]
-            yield (xyz, np.asarray(chunk.classification, dtype=np.uint8)[sel], index[sel], m)
+            out = (xyz, np.asarray(chunk.classification, dtype=np.uint8)[sel], index[sel], m)
+            if cells is not None:
+                x0, y0, size = cells
+                out += (np.floor((xyz[:, 0] - x0) / size).astype(np.int64),
+                        np.floor((xyz[:, 1] - y0) / size).astype(np.int64))
+            yield out
             position += m
 
 
