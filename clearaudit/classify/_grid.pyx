@@ -696,55 +696,6 @@ def corridor_exact(const double[:, :] xy, const int64_t[::1] at, const double[:,
                                     per_unit, n_buckets, bucket_start, bucket_seg)
 
 
-def corridor_local(const int32_t[:] X, const int32_t[:] Y, int64_t kx, double sx, double rx,
-                   int64_t ky, double sy, double ry, double ox, double oy, double lo0,
-                   double lo1, double hi0, double hi1, double cell, int64_t n0, int64_t n1,
-                   const unsigned char[::1] cell_state, const double[:, ::1] seg, double b2,
-                   int axis, double lo_axis, double per_unit, int64_t n_buckets,
-                   const int64_t[::1] bucket_start, const int64_t[::1] bucket_seg,
-                   double[::1] local_x, double[::1] local_y, unsigned char[::1] state):
-    """Local coordinates of LAS integer records and whether each lies in the corridor, one
-    pass.
-
-    ``local = (X - k) * scale (+ r)`` per axis, as :meth:`clearaudit.io.las._Shift.local`;
-    the CRS position ``local + origin`` is tested against the corridor's box and raster
-    (:func:`clearaudit.io.las.corridor_mask`): ``state`` 0 outside the box or in a dropped
-    cell, 1 in a kept cell; a point of a cell that straddles the buffer's edge gets the exact
-    test (:func:`corridor_exact`), 1 within the buffer, 0 beyond — the same roundings as the
-    numpy form.
-    """
-    cdef Py_ssize_t n = X.shape[0], i
-    cdef double x, y, cx, cy
-    cdef unsigned char st
-    if Y.shape[0] != n or local_x.shape[0] != n or local_y.shape[0] != n or \
-            state.shape[0] != n or n0 < 1 or n1 < 1 or cell_state.shape[0] != n0 * n1:
-        raise ValueError("corridor_local: mismatched array shapes")
-    if not cell > 0:
-        raise ValueError("corridor_local: the cell size must be positive")
-    _check_polyline(seg, axis, n_buckets, bucket_start, bucket_seg, "corridor_local")
-    with nogil:
-        for i in range(n):
-            x = <double>(<int64_t>X[i] - kx) * sx
-            if rx != 0.0:
-                x = x + rx
-            y = <double>(<int64_t>Y[i] - ky) * sy
-            if ry != 0.0:
-                y = y + ry
-            local_x[i] = x
-            local_y[i] = y
-            cx = x + ox
-            cy = y + oy
-            if not (cx >= lo0 and cx <= hi0 and cy >= lo1 and cy <= hi1):
-                state[i] = 0
-                continue
-            # inside the box: both offsets >= 0 and finite
-            st = cell_state[_raster_cell((cx - lo0) / cell, (cy - lo1) / cell, n0, n1)]
-            if st == 2:
-                st = _near_polyline(cx, cy, seg, b2, axis, lo_axis, per_unit, n_buckets,
-                                    bucket_start, bucket_seg)
-            state[i] = st
-
-
 def chunk_points(const int32_t[:] X, const int32_t[:] Y, const int32_t[:] Z,
                  const unsigned char[:] cls, const unsigned char[:] withheld,
                  const int64_t[::1] k, const double[::1] scale, const double[::1] r,
@@ -761,9 +712,10 @@ def chunk_points(const int32_t[:] X, const int32_t[:] Y, const int32_t[:] Z,
     :func:`clearaudit.io.las.read_range`).
 
     Per point: ``local = (X - k) * scale (+ r)`` per axis (:meth:`clearaudit.io.las._Shift.
-    local`); with ``corridor``, kept only where :func:`corridor_local` keeps it (box, raster,
-    exact test); a point flagged ``withheld`` (an empty array: none) is never kept. A kept
-    point's ``xyz`` is ``local * unit`` per axis, its ``index`` ``position + i``, its cell
+    local`). With ``corridor``, the CRS position ``local + origin`` is kept only inside the
+    corridor's box (:func:`clearaudit.io.las.corridor_mask`), in a kept raster cell, or in a
+    cell straddling the buffer's edge and within the buffer (:func:`corridor_exact`'s test).
+    A point flagged ``withheld`` (an empty array: none) is never kept. A kept point's ``xyz`` is ``local * unit`` per axis, its ``index`` ``position + i``, its cell
     ``floor((x - gx0) / grid_cell)``, ``floor((y - gy0) / grid_cell)``
     (:meth:`clearaudit.tiling.Grid.cells`). Returns ``(kept, withheld)``: the points written
     (in input order) and the points the corridor kept that were withheld.
