@@ -454,10 +454,14 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     # the driver has removed (FileNotFoundError instead)
     (work / "cells").mkdir(exist_ok=True)
 
+    made: set[tuple[int, int]] = set()  # the cells' folders this task made or found
+
     def flush() -> None:
         for (i, j), arrays in buffers.items():
             folder = _cell_dir(work, i, j)
-            folder.mkdir(exist_ok=True)
+            if (i, j) not in made:
+                folder.mkdir(exist_ok=True)
+                made.add((i, j))
             with open(folder / f"p{part.part:06d}.bin", "ab") as fh:
                 for a in arrays:
                     fh.write(a)  # (not ndarray.tofile: its OSError on a full disk has no errno)
@@ -880,7 +884,9 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     own = read_cells(work, tile.cells)
     ctx_rec, _ = read_context(work, tile)
     n_own = len(own)
-    xyz = np.concatenate([own["xyz"], ctx_rec["xyz"]])
+    # the coordinates as opaque 24-byte items (copied whole, not value by value)
+    xyz = np.concatenate([own.view(_FILL)["xyz"], ctx_rec.view(_FILL)["xyz"]]
+                         ).view("<f8").reshape(-1, 3)
     vendor = np.concatenate([own["cls"], ctx_rec["cls"]])
     note = None
     try:

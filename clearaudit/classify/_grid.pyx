@@ -5,7 +5,7 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabs, fabsf, floor, sqrt
+from libc.math cimport NAN, fabs, fabsf, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport free, malloc
 from libc.string cimport memcpy
@@ -621,6 +621,15 @@ def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_
         raise ValueError("raster_state: a point lies below the raster's corner or is not finite")
 
 
+cdef inline int64_t _floor_int(double t) noexcept nogil:
+    """``int64(floor(t))`` for a finite ``t`` within int64's range, without libm's call:
+    the truncation, one less below a negative non-integer."""
+    cdef int64_t i = <int64_t>t
+    if t < <double>i:
+        i -= 1
+    return i
+
+
 cdef inline bint _near_polyline(double px, double py, const double[:, ::1] seg, double b2,
                                 int axis, double lo_axis, double per_unit, int64_t n_buckets,
                                 const int64_t[::1] bucket_start,
@@ -770,8 +779,8 @@ def chunk_points(const int32_t[:] X, const int32_t[:] Y, const int32_t[:] Z,
             xyz[m, 2] = z * unit[2]
             out_cls[m] = cls[i]
             index[m] = position + i
-            ci[m] = <int64_t>floor((x - gx0) / grid_cell)
-            cj[m] = <int64_t>floor((y - gy0) / grid_cell)
+            ci[m] = _floor_int((x - gx0) / grid_cell)
+            cj[m] = _floor_int((y - gy0) / grid_cell)
             m += 1
     return m, held
 

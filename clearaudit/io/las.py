@@ -569,8 +569,13 @@ class _ScratchSink:
         m = len(records)
         if not m:
             return
-        raw = records.view(np.uint8).reshape(m, records.dtype.itemsize)
-        self.fh.write(np.ascontiguousarray(raw[:, _LAYER_SIDE_BYTES]))
+        # the side bytes as one opaque 3-byte item per record (copied item by item, ~2x
+        # faster than a (m, 3) byte slice)
+        side = np.dtype({"names": ["s"], "formats": [(np.void, _LAYER_SIDE_BYTES.stop
+                                                      - _LAYER_SIDE_BYTES.start)],
+                         "offsets": [_LAYER_SIDE_BYTES.start],
+                         "itemsize": records.dtype.itemsize})
+        self.fh.write(np.ascontiguousarray(records.view(side)["s"]))
         lo, hi = _int_bounds(chunk) if bounds is None else bounds
         np.minimum(self._lo, lo, out=self._lo)
         np.maximum(self._hi, hi, out=self._hi)
