@@ -26,6 +26,8 @@ from clearaudit.io.las import (
     corridor_mask,
     describe,
     read_cloud,
+    read_range,
+    read_setup,
     resolve_inputs,
     write_cloud,
 )
@@ -108,6 +110,12 @@ def test_round_trip_every_point_format(tmp_path, point_format, suffix):
     assert back.sources[0].point_format == point_format
     assert back.sources[0].crs_origin == "file-wkt" or (
         version < "1.4" and back.sources[0].crs_origin in ("file-geotiff", "file-wkt"))
+    # the streamed reader's compiled chunk pass: the same points as read_cloud's numpy form
+    setup = read_setup(out, hashes=False)
+    got = list(read_range(setup, 0, chunk_size=700, cells=(0.0, 0.0, 25.0)))
+    np.testing.assert_array_equal(np.concatenate([g[0] for g in got]), back.xyz)
+    np.testing.assert_array_equal(np.concatenate([g[1] for g in got]), back.classification)
+    np.testing.assert_array_equal(np.concatenate([g[2] for g in got]), back.source_index)
 
 
 def test_write_is_atomic(tmp_path):
@@ -159,6 +167,17 @@ def test_us_survey_foot_crs_gives_metres(tmp_path):
     d_ft = np.hypot(*((ints[i] - ints[j]) * 0.01))
     d_m = np.hypot(*(cloud.xyz[i, :2] - cloud.xyz[j, :2]))
     assert d_m == pytest.approx(d_ft * 1200 / 3937, rel=1e-14)
+    # the streamed reader (compiled chunk pass, the units applied in it): the same metres,
+    # and with a corridor (in the file's feet) the points of read_cloud's keep
+    setup = read_setup(path, hashes=False)
+    got = list(read_range(setup, 0, chunk_size=300))
+    np.testing.assert_array_equal(np.concatenate([g[0] for g in got]), cloud.xyz)
+    line = cloud.origin[:2] + np.array([[100.0, 50.0], [700.0, 600.0]])
+    keep = corridor_mask(line, 150.0)
+    kept = read_cloud(path, keep=keep)
+    got = list(read_range(setup, 0, chunk_size=300, keep=keep))
+    np.testing.assert_array_equal(np.concatenate([g[0] for g in got]), kept.xyz)
+    assert 0 < kept.n_points < cloud.n_points
 
 
 def test_compound_crs_with_metre_height(tmp_path):
