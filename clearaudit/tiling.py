@@ -329,10 +329,12 @@ def make_records(xyz: np.ndarray, cls: np.ndarray, key: np.ndarray) -> np.ndarra
     return rec.view(RECORD)
 
 
-def record_xyz(records: np.ndarray) -> np.ndarray:
-    """The records' points as one contiguous (n, 3) float64 array. [m]"""
-    _records(records)
-    return np.ascontiguousarray(records.view(_FILL)["xyz"]).view("<f8").reshape(-1, 3)
+def record_xyz(*records: np.ndarray) -> np.ndarray:
+    """The points of one or more record arrays, one after the other, as one contiguous
+    (n, 3) float64 array (each point's coordinates copied as one 24-byte item). [m]"""
+    parts = [_records(r).view(_FILL)["xyz"] for r in records]
+    xyz = np.ascontiguousarray(parts[0]) if len(parts) == 1 else np.concatenate(parts)
+    return xyz.view("<f8").reshape(-1, 3)
 
 
 def record_keys(records: np.ndarray) -> np.ndarray:
@@ -884,9 +886,7 @@ def classify_tile(work: str | Path, tile: TileSpec, ctx: TileContext, classify_o
     own = read_cells(work, tile.cells)
     ctx_rec, _ = read_context(work, tile)
     n_own = len(own)
-    # the coordinates as opaque 24-byte items (copied whole, not value by value)
-    xyz = np.concatenate([own.view(_FILL)["xyz"], ctx_rec.view(_FILL)["xyz"]]
-                         ).view("<f8").reshape(-1, 3)
+    xyz = record_xyz(own, ctx_rec)
     vendor = np.concatenate([own["cls"], ctx_rec["cls"]])
     note = None
     try:

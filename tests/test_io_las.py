@@ -353,7 +353,7 @@ def test_chunked_culling_equals_in_memory_filter(tmp_path):
 def test_decode_steps_keep_the_parallel_decoders_threads_busy(tmp_path):
     # common practice (no source): LASzip writers' default chunk is 50 000 points; a
     # step of whole chunks, a multiple of the decoder's threads, changes no point read
-    from clearaudit.io.las import balanced_step, read_range, read_setup
+    from clearaudit.io.las import balanced_step
 
     cloud = make_cloud(n=130_000, seed=9)
     laz = write_cloud(cloud, tmp_path / "c.laz")
@@ -455,7 +455,6 @@ def test_corridor_exact_kernel_equals_the_numpy_form_on_the_edge():
     # the kernel alone, on every point (not only those of straddling cells)
     from clearaudit.classify.kernels import corridor_exact
 
-    out = np.empty(len(pts), dtype=np.uint8)
     at = np.flatnonzero(np.all((pts >= box_lo) & (pts <= box_hi), axis=1))
     out = np.empty(len(at), dtype=np.uint8)
     corridor_exact(pts, at, *keep.raster[8:], out)
@@ -472,8 +471,6 @@ def test_read_range_compiled_corridor_pass_equals_the_numpy_form():
     # reference: the same corridor through the numpy path (a keep callable without the
     # compiled raster), and shapely's distances for the kept points. Local origin away from
     # the files' offsets (a shift with a remainder), a corridor that cuts through the points.
-    from clearaudit.io.las import read_range, read_setup
-
     shapely = pytest.importorskip("shapely")
     path = Path(__file__).resolve().parents[1] / "sample_clouds" / "tarnwick_velloran_230kv.laz"
     setup = read_setup([path], origin=(506_300.123, 3_942_000.456, 200.0))
@@ -509,6 +506,12 @@ def test_read_range_compiled_corridor_pass_equals_the_numpy_form():
         # without cells: the first four of the same
         plain4 = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=chunk))
         assert all(len(a) == 4 for a in plain4)
+        with_cells = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=chunk,
+                                     cells=cells))
+        for a, b in zip(plain4, with_cells, strict=True):
+            for u, v in zip(a[:3], b[:3], strict=True):
+                np.testing.assert_array_equal(u, v)
+            assert a[3] == b[3]
     fast = list(read_range(setup, 0, 5, None, keep=keep, chunk_size=37_000))
     xyz = np.concatenate([c[0] for c in fast])
     assert 0 < len(xyz) < setup.total_points
@@ -596,7 +599,7 @@ def test_points_beyond_the_header_bounds(tmp_path, suffix):
     # header's bounds by more than HEADER_BOUNDS_SLACK (1 unit of length) stops the read with
     # an error naming the file, in memory and streamed alike. Reference: laspy's scaled
     # coordinates of the same file (which point is the first one beyond the bound).
-    from clearaudit.io.las import HEADER_BOUNDS_SLACK, read_range, read_setup
+    from clearaudit.io.las import HEADER_BOUNDS_SLACK
 
     path = write_cloud(make_cloud(n=3000), tmp_path / f"c{suffix}")
     las = laspy.read(path)

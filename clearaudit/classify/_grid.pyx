@@ -724,7 +724,8 @@ def chunk_points(const int32_t[:] X, const int32_t[:] Y, const int32_t[:] Z,
     local`). With ``corridor``, the CRS position ``local + origin`` is kept only inside the
     corridor's box (:func:`clearaudit.io.las.corridor_mask`), in a kept raster cell, or in a
     cell straddling the buffer's edge and within the buffer (:func:`corridor_exact`'s test).
-    A point flagged ``withheld`` (an empty array: none) is never kept. A kept point's ``xyz`` is ``local * unit`` per axis, its ``index`` ``position + i``, its cell
+    A point flagged ``withheld`` (an empty array: none) is never kept. A kept point's
+    ``xyz`` is ``local * unit`` per axis, its ``index`` ``position + i``, its cell
     ``floor((x - gx0) / grid_cell)``, ``floor((y - gy0) / grid_cell)``
     (:meth:`clearaudit.tiling.Grid.cells`). Returns ``(kept, withheld)``: the points written
     (in input order) and the points the corridor kept that were withheld.

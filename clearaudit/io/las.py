@@ -1161,6 +1161,17 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
         shift = _Shift.between(reader.header.scales, reader.header.offsets, origin)
         box = _HeaderBox(reader.header)
         chunk_size = balanced_step(chunk_size, reader.header)
+        raster = getattr(keep, "raster", None)
+        compiled = keep is None or raster is not None
+        if compiled:
+            # what the compiled chunk pass needs besides the chunk, prepared once
+            from ..classify.kernels import chunk_points
+
+            fixed = (shift.k.astype(np.int64), shift.scale.astype(np.float64),
+                     shift.r.astype(np.float64), np.asarray(unit, dtype=np.float64),
+                     float(origin[0]), float(origin[1]))
+            corridor = (raster is not None, *(raster if raster is not None else _NO_CORRIDOR),
+                        *(cells if cells is not None else (0.0, 0.0, 1.0)))
         if start and variable_chunks(reader.header):
             # lazrs 0.8 mispositions a seek past the first chunk of a file whose chunks vary
             # in size (it takes the point's chunk and offset as if the chunks were equal):
@@ -1190,28 +1201,20 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             box.check(path, chunk, position, bounds)
             _keep_records(records_to, chunk, bounds)
             withheld = _withheld(chunk)
-            raster = getattr(keep, "raster", None)
-            if keep is None or raster is not None:
+            if compiled:
                 # one compiled pass: local coordinates, the corridor (its raster, then the
                 # exact test for the points of straddling cells), the withheld flag, the kept
                 # points' units, indices and grid cells (the same values and the same kept
                 # points as the numpy form below)
-                from ..classify.kernels import chunk_points
-
                 xyz = np.empty((m, 3), dtype=np.float64)
                 cls = np.empty(m, dtype=np.uint8)
                 index = np.empty(m, dtype=np.int64)
                 ci, cj = np.empty(m, dtype=np.int64), np.empty(m, dtype=np.int64)
-                corridor = raster if raster is not None else _NO_CORRIDOR
                 kept, left_out = chunk_points(
                     np.asarray(chunk.X), np.asarray(chunk.Y), np.asarray(chunk.Z),
                     np.asarray(chunk.classification, dtype=np.uint8),
                     _NO_FLAGS if withheld is None else withheld.view(np.uint8),
-                    shift.k.astype(np.int64), shift.scale.astype(np.float64),
-                    shift.r.astype(np.float64), np.asarray(unit, dtype=np.float64),
-                    float(origin[0]), float(origin[1]), position, raster is not None,
-                    *corridor, *(cells if cells is not None else (0.0, 0.0, 1.0)),
-                    xyz, cls, index, ci, cj)
+                    *fixed, position, *corridor, xyz, cls, index, ci, cj)
                 if tally is not None and left_out:
                     tally["withheld"] = tally.get("withheld", 0) + left_out
                 out = (xyz[:kept], cls[:kept], index[:kept], m)
@@ -1410,11 +1413,10 @@ def corridor_mask(
         corridor_exact(xy, np.ascontiguousarray(inside, dtype=np.int64), *polyline, out)
         return out.view(bool)
 
-    # for readers that test the raster in a compiled pass (read_range): the box, the raster
-    # and the exact test of the straddling cells' points
+    # for readers that test the corridor in a compiled pass (read_range): the box, the raster
+    # and the polyline of the straddling cells' exact test
     keep.raster = (float(all_lo[0]), float(all_lo[1]), float(all_hi[0]), float(all_hi[1]),
                    float(cell), int(n_cells[0]), int(n_cells[1]), cell_state, *polyline)
-    keep.exact = exact
     return keep
 
 
