@@ -470,3 +470,49 @@ def test_engine_map_batches_keeps_item_order():
         assert engine.map_batches(lambda b: b, []) == []
         with pytest.raises(RuntimeError, match="number of results"):
             engine.map_batches(lambda b: b[:-1], range(5))
+
+
+def _whole_grid_peaks(dt, dz, opts):
+    """The sub-conductor peaks as found on the whole histogram grid: numpy's histogram2d and
+    scipy's filters over every cell (the reference for the occupied-part search)."""
+    from scipy import ndimage
+
+    half = opts.max_bundle_spacing_m * 1.5
+    keep = (np.abs(dt) < half) & (np.abs(dz) < half)
+    nb = int(np.ceil(2 * half / opts.fine_cell_m))
+    hist, te, ze = np.histogram2d(dt[keep], dz[keep], bins=nb, range=[[-half, half], [-half, half]])
+    sm = ndimage.gaussian_filter(hist, opts.fine_smoothing_m / opts.fine_cell_m)
+    size = max(int(round(opts.min_subconductor_spacing_m / opts.fine_cell_m)), 3)
+    peak = (sm == ndimage.maximum_filter(sm, size=size, mode="constant")) & (
+        sm >= opts.peak_fraction * sm.max()) & (sm > 0)
+    pi, pj = np.nonzero(peak)
+    centres = np.c_[0.5 * (te[pi] + te[pi + 1]), 0.5 * (ze[pj] + ze[pj + 1])]
+    centres = centres[np.argsort(-sm[pi, pj])]
+    kept = []
+    for c in centres:
+        if all(np.hypot(*(c - q)) >= opts.min_subconductor_spacing_m for q in kept):
+            kept.append(c)
+    return np.array(kept)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_sub_conductor_peaks_equal_the_whole_grid_search(seed):
+    # reference: numpy.histogram2d and scipy.ndimage's filters over the whole grid
+    from clearaudit.model.wires import SeparationOptions, _find_peaks
+
+    opts = SeparationOptions()
+    half = opts.max_bundle_spacing_m * 1.5
+    rng = np.random.default_rng(seed)
+    for n_sub in (1, 2, 3, 4):
+        for centre in ((0.0, 0.0), (half - 0.05, -half + 0.03), (-half + 0.01, 0.4)):
+            angle = rng.uniform(0, np.pi)
+            ring = 0.225 * np.c_[np.cos(angle + 2 * np.pi * np.arange(n_sub) / n_sub),
+                                 np.sin(angle + 2 * np.pi * np.arange(n_sub) / n_sub)]
+            pts = np.vstack([c + rng.normal(0, 0.03, (rng.integers(20, 400), 2))
+                             for c in np.asarray(centre) + ring * (n_sub > 1)])
+            # outliers, values on the range's edges and on bin edges
+            pts = np.vstack([pts, rng.uniform(-2 * half, 2 * half, (10, 2)),
+                             [[-half, 0.1], [0.2, -half], [0.0, 0.0], [0.02, -0.04]]])
+            dt, dz = pts[:, 0], pts[:, 1]
+            np.testing.assert_array_equal(_find_peaks(dt, dz, opts),
+                                          _whole_grid_peaks(dt, dz, opts))

@@ -77,6 +77,33 @@ def test_column_bounds_match_numpy(dtype):
         column_bounds(a[:0])
 
 
+@pytest.mark.parametrize("dtype", [np.int64, np.int32, np.int16, np.uint8, np.uint32, np.uint64,
+                                   np.float64])
+def test_unique_rows_equals_numpy_unique_along_rows(dtype):
+    # reference: numpy.unique(axis=0): rows, first positions and inverse, value for value
+    from clearaudit.arrays import unique_rows
+
+    rng = np.random.default_rng(11)
+    low = 0 if np.dtype(dtype).kind in "uf" else -6
+    for n, cols in ((1, 3), (7, 1), (2_000, 2), (60_000, 3)):
+        a = rng.integers(low, 9, size=(n, cols)).astype(dtype)
+        u, first, inv = unique_rows(a, return_index=True, return_inverse=True)
+        ref_u, ref_first, ref_inv = np.unique(a, axis=0, return_index=True, return_inverse=True)
+        np.testing.assert_array_equal(u, ref_u)
+        assert u.dtype == ref_u.dtype
+        np.testing.assert_array_equal(first, ref_first)
+        np.testing.assert_array_equal(inv, ref_inv.reshape(-1))
+        np.testing.assert_array_equal(unique_rows(a), ref_u)
+    # ranges whose mixed-radix key would not fit in int64: numpy's own path
+    wide = np.array([[-2**62, 3], [2**62, 1], [0, 5], [-2**62, 3]], dtype=np.int64)
+    u, inv = unique_rows(wide, return_inverse=True)
+    ref_u, ref_inv = np.unique(wide, axis=0, return_inverse=True)
+    np.testing.assert_array_equal(u, ref_u)
+    np.testing.assert_array_equal(inv, ref_inv.reshape(-1))
+    empty = np.zeros((0, 3), dtype=np.int64)
+    assert unique_rows(empty).shape == np.unique(empty, axis=0).shape
+
+
 def test_take_rows_equals_numpy_fancy_and_boolean_indexing():
     # reference: numpy's own indexing a[index] / a[mask]
     from clearaudit.arrays import take_rows

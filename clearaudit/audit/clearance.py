@@ -30,7 +30,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from ..arrays import column_bounds, take_rows
+from ..arrays import column_bounds, take_rows, unique_rows
 from ._polyline import nearest_segment as _nearest_segment_pass
 
 __all__ = [
@@ -308,7 +308,7 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | 
         return np.zeros(0, dtype=int)
     if thin_m is not None:
         vox = np.floor((pts - column_bounds(pts)[0]) / thin_m).astype(np.int64)
-        _, first, rep_of = np.unique(vox, axis=0, return_index=True, return_inverse=True)
+        _, first, rep_of = unique_rows(vox, return_index=True, return_inverse=True)
         rep_labels = group_obstacles(pts[first], link_m + 2.0 * math.sqrt(3.0) * thin_m, None)
         labels = rep_labels[rep_of.reshape(-1)]
     else:
@@ -324,7 +324,7 @@ def group_obstacles(xyz: np.ndarray, link_m: float = 1.5, max_extent_m: float | 
         tile = np.floor((pts[:, :2] - lo[labels]) / max_extent_m).astype(np.int64)
         tile[~long[labels]] = 0
         key = np.column_stack([labels, tile])
-        _, labels = np.unique(key, axis=0, return_inverse=True)
+        _, labels = unique_rows(key, return_inverse=True)
         labels = labels.reshape(-1)
     return labels
 

@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
-from ..arrays import column_bounds, median_1d
+from ..arrays import column_bounds, median_1d, unique_rows
 from ._irls import irls_polyfit
 
 
@@ -263,8 +263,7 @@ def point_directions(xyz: np.ndarray, voxel_m: float = 2.0, min_points: int = 4)
     if n == 0:
         return np.zeros((0, 3))
     ijk = np.floor((xyz - column_bounds(xyz)[0]) / voxel_m).astype(np.int64)
-    _, vox = np.unique(ijk, axis=0, return_inverse=True)
-    vox = vox.ravel()
+    _, vox = unique_rows(ijk, return_inverse=True)
     nv = int(vox.max()) + 1
     cnt = np.bincount(vox, minlength=nv).astype(float)
     centred = xyz - xyz.mean(axis=0)
@@ -294,6 +293,43 @@ def _grid_components(coords: np.ndarray, cell: float, min_points: int) -> np.nda
     return lab
 
 
+def _gaussian_radius(sigma: float, truncate: float = 4.0) -> int:
+    """Half width of scipy's Gaussian kernel for ``sigma`` (``ndimage.gaussian_filter``'s
+    default truncation): ``int(truncate * sigma + 0.5)``. [cells]"""
+    return int(truncate * float(sigma) + 0.5)
+
+
+def _occupied_histogram(a: np.ndarray, b: np.ndarray, half: float, bins: int, margin: int
+                        ) -> tuple[np.ndarray, tuple[int, int], tuple[np.ndarray, np.ndarray]]:
+    """The part of ``numpy.histogram2d(a, b, bins, range=[[-half, half]] * 2)`` around its
+    occupied cells: the counts over the rows and columns of the occupied cells widened by
+    ``margin`` (within the grid), the first row and column of that part, and the edges of
+    the whole grid.
+
+    The edges are numpy's (``linspace`` over the range) and a value goes to the bin numpy
+    gives it (``searchsorted`` on the edges, the last edge in the last bin), so the part
+    holds numpy's counts, as floats. A separable filter whose kernel is shorter than the
+    margin gives the same values over the part as over the whole grid: beyond the occupied
+    cells the grid holds zeros, and mirroring at an edge of the part reads zeros as well.
+    """
+    edges = np.linspace(-half, half, bins + 1)
+
+    def bin_of(v: np.ndarray) -> np.ndarray:
+        k = np.searchsorted(edges, v, side="right")
+        k[v == edges[-1]] -= 1
+        k -= 1
+        if k.size and (k.min() < 0 or k.max() >= bins):
+            raise ValueError("histogram values outside the range")
+        return k
+
+    i, j = bin_of(a), bin_of(b)
+    i0, i1 = max(int(i.min()) - margin, 0), min(int(i.max()) + margin, bins - 1)
+    j0, j1 = max(int(j.min()) - margin, 0), min(int(j.max()) + margin, bins - 1)
+    rows, cols = i1 - i0 + 1, j1 - j0 + 1
+    counts = np.bincount((i - i0) * cols + (j - j0), minlength=rows * cols)
+    return counts.reshape(rows, cols).astype(float), (i0, j0), (edges, edges)
+
+
 def _find_peaks(dt: np.ndarray, dz: np.ndarray, opts: SeparationOptions) -> np.ndarray:
     """Sub-conductor centres as peaks of the smoothed (dt, dz) histogram, shape (m, 2)."""
     half = opts.max_bundle_spacing_m * 1.5
@@ -301,14 +337,21 @@ def _find_peaks(dt: np.ndarray, dz: np.ndarray, opts: SeparationOptions) -> np.n
     if keep.sum() < 3:
         return np.array([[np.median(dt), np.median(dz)]])
     nb = int(np.ceil(2 * half / opts.fine_cell_m))
-    hist, te, ze = np.histogram2d(dt[keep], dz[keep], bins=nb, range=[[-half, half], [-half, half]])
-    sm = ndimage.gaussian_filter(hist, opts.fine_smoothing_m / opts.fine_cell_m)
+    sigma = opts.fine_smoothing_m / opts.fine_cell_m
+    # the histogram and its filters over the occupied rows and columns and a margin wider
+    # than the smoothing kernel: outside, the smoothed histogram of the whole grid is exactly
+    # zero, so no peak lies there and the filters give the same values inside (see
+    # _occupied_histogram)
+    hist, (i0, j0), (te, ze) = _occupied_histogram(dt[keep], dz[keep], half, nb,
+                                                   margin=2 * _gaussian_radius(sigma) + 1)
+    sm = ndimage.gaussian_filter(hist, sigma)
     size = max(int(round(opts.min_subconductor_spacing_m / opts.fine_cell_m)), 3)
     peak = (sm == ndimage.maximum_filter(sm, size=size, mode="constant")) & (
         sm >= opts.peak_fraction * sm.max()) & (sm > 0)
     pi, pj = np.nonzero(peak)
-    centres = np.c_[0.5 * (te[pi] + te[pi + 1]), 0.5 * (ze[pj] + ze[pj + 1])]
     strength = sm[pi, pj]
+    pi, pj = pi + i0, pj + j0
+    centres = np.c_[0.5 * (te[pi] + te[pi + 1]), 0.5 * (ze[pj] + ze[pj + 1])]
     order = np.argsort(-strength)
     centres = centres[order]
     # merge peaks closer than the minimum spacing (plateaus)
