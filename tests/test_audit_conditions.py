@@ -245,3 +245,94 @@ def test_frame_points_equal_the_numpy_expression():
         np.testing.assert_array_equal(out, a + x[:, None] * ex + z[:, None] * ez)
     with pytest.raises(ValueError):
         frame_points(a, ex, ez, x, z[:-1], out)
+
+
+def _two_sections_two_roles(section):
+    """The fixture's two spans as two sections, each with a phase and a shield wire."""
+    spans = []
+    for k, sp in enumerate(section.model.spans):
+        fit = sp.wires[0].fit
+        wires = [SimpleNamespace(wire_id="P1", role="phase", bundle_count=1, fit=fit),
+                 SimpleNamespace(wire_id="SW1", role="shield", bundle_count=1, fit=fit)]
+        spans.append(SimpleNamespace(**{**vars(sp), "section_id": f"TS{k}", "wires": wires}))
+    sections = [SimpleNamespace(id=f"TS{k}", span_ids=[sp.id], ruling_span_m=sp.length_m)
+                for k, sp in enumerate(spans)]
+    return SimpleNamespace(spans=spans, sections=sections, structure=section.model.structure)
+
+
+@pytest.mark.parametrize("strain_model", ["linear", "auto"])
+def test_changes_of_state_solved_together_equal_each_solved_alone(section, strain_model):
+    # reference: ConductorMechanics.final_tension called for one wire, section and load at a
+    # time (the form before the solves were gathered), value for value
+    from clearaudit.audit import conditions as cond
+
+    model = _two_sections_two_roles(section)
+    conductors = {"phase": section.conductor, "shield": lookup_conductor("7 No. 8 ACS")}
+    rules = load_rule_set("na-transmission")
+    specs = resolve_conditions(rules, 100.0, 20.0)
+    from clearaudit.physics.state_change import ConductorMechanics
+
+    solves = []
+    real_solve = ConductorMechanics.final_tension
+
+    def counted(self, *args, **kw):
+        solves.append(np.size(args[0]))
+        return real_solve(self, *args, **kw)
+
+    ConductorMechanics.final_tension = counted
+    try:
+        states = project_conditions(model, conductors, specs, 2.0, strain_model=strain_model,
+                                    creep_shift_c=5.0)
+    finally:
+        ConductorMechanics.final_tension = real_solve
+    assert len(states) == 4
+    # one solve per role, for both sections and every distinct load (three: MOT, wind with
+    # both sides sharing one, ice) in five variants each
+    assert solves == [2 * 3 * 5, 2 * 3 * 5]
+    for st in states:
+        mech = conductor_mechanics(conductors[st.role], strain_model)
+        w = mech.weight_n_per_m
+        span = next(s for s in model.spans if s.id == st.span_id)
+        rs = next(s for s in model.sections if s.id == span.section_id).ruling_span_m
+        h, ci = cond._fit_tension(st.fit, w)
+        h_survey, h_ci = section_tension(np.array([h]), np.array([ci]))
+        h_var, t_var = cond._variants(h_survey, h_ci, specs["survey"].temperature_c, 2.0)
+        for name, spec in specs.items():
+            if name == "survey":
+                continue
+            t_final, _, _, w_final = cond._final_load(spec, st.role,
+                                                       float(conductors[st.role].diameter_m), w)
+            alone = mech.final_tension(rs, h_var, w, t_var, w_final, t_final, creep_shift=5.0)
+            assert st.horizontal_tension_n[name] == float(alone[0])
+            assert st.horizontal_tension_ci95_n[name] == math.hypot(
+                0.5 * (alone[1] - alone[2]), 0.5 * (alone[3] - alone[4]))
+
+
+def test_a_failed_change_of_state_is_noted_on_its_own_wires_only(section, monkeypatch):
+    # One section's solve fails: the gathered solve falls back to solving wire and section
+    # one at a time, so only that section's wires carry the note and lack the conditions.
+    from clearaudit.audit import conditions as cond
+
+    model = _two_sections_two_roles(section)
+    bad_rs = model.sections[1].ruling_span_m
+    real = cond.conductor_mechanics
+
+    class Failing:
+        def __init__(self, mech):
+            self.mech = mech
+            self.weight_n_per_m = mech.weight_n_per_m
+
+        def final_tension(self, rs, *args, **kw):
+            if np.any(np.asarray(rs) == bad_rs):
+                raise ValueError("the conductor would hang slacker than C = L/2")
+            return self.mech.final_tension(rs, *args, **kw)
+
+    monkeypatch.setattr(cond, "conductor_mechanics", lambda c, m: Failing(real(c, m)))
+    rules = load_rule_set("na-transmission")
+    specs = resolve_conditions(rules, 100.0, 20.0)
+    states = project_conditions(model, {"phase": section.conductor, "shield": section.conductor},
+                                specs, 2.0)
+    for st in states:
+        failed = st.section_id == "TS1"
+        assert ("mot" in st.horizontal_tension_n) is not failed
+        assert any("change of state failed" in n for n in st.notes) is failed

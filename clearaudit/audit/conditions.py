@@ -47,6 +47,7 @@ __all__ = [
     "catenary_curve",
     "conductor_mechanics",
     "fit_curve",
+    "load_frame",
     "project_conditions",
     "resolve_conditions",
 ]
@@ -196,6 +197,29 @@ def _n_samples(length_m: float, max_slope: float, spacing_m: float) -> int:
     return max(3, int(math.ceil(length_m * math.sqrt(1.0 + max_slope**2) / spacing_m)) + 1)
 
 
+def load_frame(attachment_a: np.ndarray, attachment_b: np.ndarray,
+               load_direction: np.ndarray | None = None
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+    """The load frame of a span (see :func:`catenary_curve`): the attachment A, the frame's
+    horizontal and up axes ``e_x``, ``e_z``, and the span and height difference in it. [m]"""
+    a = np.asarray(attachment_a, dtype=float).reshape(3)
+    b = np.asarray(attachment_b, dtype=float).reshape(3)
+    g = np.array([0.0, 0.0, -1.0]) if load_direction is None else np.asarray(
+        load_direction, dtype=float).reshape(3)
+    norm = np.linalg.norm(g)
+    if not norm > 0:
+        raise ValueError("The load direction must be a non-zero vector.")
+    ez = -g / norm
+    d = b - a
+    h = float(d @ ez)
+    ex = d - h * ez
+    span = float(np.linalg.norm(ex))
+    if not span > 1e-6:
+        raise ValueError("The attachments are aligned with the load direction (no span).")
+    ex /= span
+    return a, ex, ez, span, h
+
+
 def catenary_curve(attachment_a: np.ndarray, attachment_b: np.ndarray, constant_m: float,
                    load_direction: np.ndarray | None = None, spacing_m: float = 0.5
                    ) -> tuple[np.ndarray, np.ndarray, float, float]:
@@ -232,23 +256,9 @@ def catenary_curve(attachment_a: np.ndarray, attachment_b: np.ndarray, constant_
     difference :math:`d\\cdot e_z`. For a vertical load this is the ordinary catenary; for wind
     it is the catenary in the swung plane (ASCE MOP 74 blowout).
     """
-    a = np.asarray(attachment_a, dtype=float).reshape(3)
-    b = np.asarray(attachment_b, dtype=float).reshape(3)
-    g = np.array([0.0, 0.0, -1.0]) if load_direction is None else np.asarray(
-        load_direction, dtype=float).reshape(3)
-    norm = np.linalg.norm(g)
-    if not norm > 0:
-        raise ValueError("The load direction must be a non-zero vector.")
     if not spacing_m > 0:
         raise ValueError("The sample spacing must be positive.")
-    ez = -g / norm
-    d = b - a
-    h = float(d @ ez)
-    ex = d - h * ez
-    span = float(np.linalg.norm(ex))
-    if not span > 1e-6:
-        raise ValueError("The attachments are aligned with the load direction (no span).")
-    ex /= span
+    a, ex, ez, span, h = load_frame(attachment_a, attachment_b, load_direction)
     slope_end = max(abs(float(catenary.catenary_slope(0.0, span, h, constant_m))),
                     abs(float(catenary.catenary_slope(span, span, h, constant_m))))
     n = _n_samples(span, slope_end, spacing_m)
@@ -514,10 +524,12 @@ def project_conditions(model: Any, conductors: dict[str, Any], specs: dict[str, 
             key = (span.section_id or (section_of[span.id].id if span.id in section_of
                                        else span.id), wire.wire_id)
             groups.setdefault(key, []).append((span, wire))
+    ts = specs["survey"].temperature_c
+    dt = max(float(survey_temperature_ci95_c), 0.0)
+    plans = []
     for (section_id, _wire_id), members in groups.items():
         role = members[0][1].role
-        mech = mechanics[role]
-        w = mech.weight_n_per_m
+        w = mechanics[role].weight_n_per_m
         fits = [m[1].fit for m in members]
         tens = np.array([_fit_tension(f, w) for f in fits])
         h_survey, h_ci = section_tension(tens[:, 0], tens[:, 1])
@@ -528,16 +540,16 @@ def project_conditions(model: Any, conductors: dict[str, Any], specs: dict[str, 
             or getattr(section, "ruling_span_m", None)
         if not rs:
             rs = ruling_span([f.span_length_m for f in fits])
-        ts = specs["survey"].temperature_c
-        dt = max(float(survey_temperature_ci95_c), 0.0)
         # The change of state depends only on the section's ruling span, the wire's survey
-        # tension and the final load and temperature: solve it once per wire and section for
+        # tension and the final load and temperature: solved once per wire and section for
         # every distinct load (both wind sides share one), not once per span.
-        cache: dict[tuple[float, float], Any] = {}
+        plans.append((section_id, members, role, rs, h_survey, h_ci, {}))
+    _solve_changes_of_state(plans, mechanics, conductors, specs, ts, dt, creep_shift_c)
+    for section_id, members, role, rs, h_survey, h_ci, cache in plans:
         for span, wire in members:
-            states.append(_wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci,
-                                      ts, dt, model, spans, insulator_length_m, creep_shift_c,
-                                      spacing_m, conductors[role], cache))
+            states.append(_wire_state(span, wire, section_id, mechanics[role], specs, rs,
+                                      h_survey, h_ci, ts, dt, model, spans, insulator_length_m,
+                                      creep_shift_c, spacing_m, conductors[role], cache))
     order = {(s.id, w.wire_id): i for i, s in enumerate(model.spans)
              for w in s.wires}
     states.sort(key=lambda st: (order.get((st.span_id, st.wire_id), 0),
@@ -550,6 +562,65 @@ def _is_suspension(model, structure_id) -> bool:
         return False
     structure = model.structure(structure_id) if hasattr(model, "structure") else None
     return structure is not None and getattr(structure, "kind", "") == "suspension"
+
+
+def _variants(h_survey: float, h_ci: float, ts: float, dt: float
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """Initial conditions of a change of state, for its uncertainty: nominal, H +/- its
+    half-width, survey temperature +/- its half-width. ([N], [°C])"""
+    return (np.array([h_survey, h_survey + h_ci, max(h_survey - h_ci, 0.5 * h_survey),
+                      h_survey, h_survey]),
+            np.array([ts, ts, ts, ts + dt, ts - dt]))
+
+
+def _final_load(spec: ConditionSpec, role: str, diameter: float, w: float
+                ) -> tuple[float, float, float, float]:
+    """A condition's conductor temperature [°C], vertical load (weight and ice), wind force
+    and their resultant [N/m], for a wire of ``role``."""
+    t_final = spec.temperature_c if role == "phase" else spec.shield_temperature_c
+    ice_w = loading.ice_weight_n_per_m(diameter, spec.radial_ice_m) if spec.radial_ice_m else 0.0
+    wind_f = (loading.wind_force_n_per_m(diameter, spec.radial_ice_m, spec.wind_pressure_pa)
+              if spec.wind_pressure_pa else 0.0)
+    vertical = w + ice_w
+    return t_final, vertical, wind_f, math.hypot(vertical, wind_f)
+
+
+def _solve_changes_of_state(plans: list, mechanics: dict[str, Any], conductors: dict[str, Any],
+                            specs: dict[str, ConditionSpec], ts: float, dt: float,
+                            creep_shift_c: float) -> None:
+    """Fill the plans' caches (``load -> final H of the five variants``) with every change of
+    state of a role in one vectorised solve.
+
+    Each element of the solve is the same sequence of operations as a solve of its wire and
+    section alone (the solver works element by element; its bisection stops once every
+    bracket has stopped changing, which leaves a finished element as it is), so the tensions
+    are the same numbers. When any element fails the caches are left empty and
+    :func:`_wire_state` solves group by group, so each failure is noted on its own wires.
+    """
+    for role, mech in mechanics.items():
+        w = mech.weight_n_per_m
+        diameter = float(conductors[role].diameter_m)
+        loads = sorted({(float(wf), float(tf)) for spec_name, spec in specs.items()
+                        if spec_name != "survey"
+                        for tf, _, _, wf in [_final_load(spec, role, diameter, w)]})
+        mine = [p for p in plans if p[2] == role]
+        if not mine or not loads:
+            continue
+        rows = [(k, load) for k in range(len(mine)) for load in loads]
+        h_var, t_var = zip(*(_variants(mine[k][4], mine[k][5], ts, dt) for k, _ in rows),
+                           strict=True)
+        rs = np.repeat([float(mine[k][3]) for k, _ in rows], 5)
+        w_final = np.repeat([load[0] for _, load in rows], 5)
+        t_final = np.repeat([load[1] for _, load in rows], 5)
+        try:
+            h_final = mech.final_tension(rs, np.concatenate(h_var), np.full(len(rs), w),
+                                         np.concatenate(t_var), w_final, t_final,
+                                         creep_shift=creep_shift_c)
+        except ValueError:
+            continue
+        h_final = np.asarray(h_final, dtype=float).reshape(len(rows), 5)
+        for (k, load), h in zip(rows, h_final, strict=True):
+            mine[k][6][load] = h
 
 
 def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt, model, spans,
@@ -569,18 +640,11 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
     normal_left = np.array([-fit.direction[1], fit.direction[0], 0.0])
     diameter = float(conductor.diameter_m)
     # Variants for the uncertainty: nominal, H +/-, survey temperature +/-.
-    h_var = np.array([h_survey, h_survey + h_ci, max(h_survey - h_ci, 0.5 * h_survey),
-                      h_survey, h_survey])
-    t_var = np.array([ts, ts, ts, ts + dt, ts - dt])
+    h_var, t_var = _variants(h_survey, h_ci, ts, dt)
     for name, spec in specs.items():
         if name == "survey":
             continue
-        t_final = spec.temperature_c if wire.role == "phase" else spec.shield_temperature_c
-        ice_w = loading.ice_weight_n_per_m(diameter, spec.radial_ice_m) if spec.radial_ice_m else 0.0
-        wind_f = (loading.wind_force_n_per_m(diameter, spec.radial_ice_m, spec.wind_pressure_pa)
-                  if spec.wind_pressure_pa else 0.0)
-        vertical = w + ice_w
-        w_final = math.hypot(vertical, wind_f)
+        t_final, vertical, wind_f, w_final = _final_load(spec, wire.role, diameter, w)
         load = (float(w_final), float(t_final))
         if cache is not None and load in cache:
             h_final = cache[load]
@@ -610,7 +674,9 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
                 b_c = b_c + shift
         constants = h_final / w_final
         recipe = ("catenary", a_c, b_c, float(constants[0]), g, spacing_m)
-        _, _, span_m, height_m = catenary_curve(*recipe[1:])
+        # the span and height difference in the load frame (the curve itself is sampled
+        # when it is needed: WireState.sample)
+        _, _, _, span_m, height_m = load_frame(a_c, b_c, g)
         sags = catenary.sag(span_m, height_m, constants)
         state.recipes[name] = recipe
         state.sag_m[name] = float(sags[0])
