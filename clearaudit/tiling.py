@@ -669,6 +669,25 @@ def _cell_files(work: Path, cell: tuple[int, int]) -> list[Path]:
     return sorted(folder.glob("p*.bin")) if folder.is_dir() else []
 
 
+def drop_cell_records(work: str | Path) -> int:
+    """Remove every cell's point records (its ``p*.bin`` files) once no task will read them
+    (after the audit tasks); the cells' other files stay (``copies.npy`` is read by the
+    classified copy). Files that cannot be removed are left for the work folder's removal.
+    Returns the number of files removed."""
+    removed = 0
+    cells = Path(work) / "cells"
+    if not cells.is_dir():
+        return 0
+    for folder in cells.iterdir():
+        for f in folder.glob("p*.bin"):
+            try:
+                f.unlink()
+            except OSError:
+                continue
+            removed += 1
+    return removed
+
+
 def read_cells(work: str | Path, cells: tuple[tuple[int, int], ...],
                then: np.ndarray | None = None) -> np.ndarray:
     """All records of the given cells, cell after cell, each in input order (keys sorted).
@@ -1323,7 +1342,7 @@ class TileResults:
 
 
 __all__ = ["Corridor", "Grid", "RECORD", "SplitPart", "TileContext", "TileResults", "TileSpec",
-           "audit_tile", "cells_of_several_files", "classify_tile", "drop_later_copies",
-           "peak_rss_mb", "plan_parts", "plan_tiles",
+           "audit_tile", "cells_of_several_files", "classify_tile", "drop_cell_records",
+           "drop_later_copies", "peak_rss_mb", "plan_parts", "plan_tiles",
            "read_cells", "read_context", "refine_tile", "split_part", "tile_states",
            "write_cell_offsets", "write_model_labels"]

@@ -667,3 +667,23 @@ def test_a_truncated_input_on_dask_leaves_no_work_folder(corridor, tmp_path):
         _run({**corridor, "cloud": bad}, tmp_path / "out", workers=2, work_dir=work)
     assert err.value.source == str(bad.absolute()) or err.value.source == str(bad)
     assert list(work.iterdir()) == [] and not (tmp_path / "out").exists()
+
+
+def test_cell_records_dropped_after_the_audit_keep_the_cells_other_files(tmp_path):
+    # after the audit tasks the cells' point records go (on a thread beside the merge); the
+    # repeated points' tables (copies.npy) stay for the classified copy
+    from clearaudit.tiling import drop_cell_records
+
+    work = tmp_path / "work"
+    for cell in ("c0_0", "c0_1", "c3_-2"):
+        (work / "cells" / cell).mkdir(parents=True)
+        for part in range(3):
+            (work / "cells" / cell / f"p{part:04d}.bin").write_bytes(b"\0" * 33)
+    np.save(work / "cells" / "c0_1" / "copies.npy", np.zeros((2, 1), dtype=np.int64))
+    (work / "tiles").mkdir()
+    (work / "tiles" / "t0.cls").write_bytes(b"\2")
+    assert drop_cell_records(work) == 9
+    left = sorted(p.relative_to(work).as_posix() for p in work.rglob("*") if p.is_file())
+    assert left == ["cells/c0_1/copies.npy", "tiles/t0.cls"]
+    assert drop_cell_records(work) == 0
+    assert drop_cell_records(tmp_path / "never-made") == 0
