@@ -322,3 +322,40 @@ def test_compiled_nearest_segment_equals_the_numpy_form():
     np.testing.assert_allclose(d, np.linalg.norm(pts - c, axis=1), atol=1e-9)
     vertex = np.min(np.linalg.norm(pts[:, None, :] - curve[None], axis=2), axis=1)
     assert np.all(d <= vertex + 1e-12)
+
+
+def _plan_cells_numpy(xy, lo, cell_m, nx, ny, dtype):
+    """The plan grid's cells as numpy computes them (the form the compiled pass replaced)."""
+    t = np.subtract(xy[:, 0], lo[0])
+    t *= 1.0 / cell_m
+    np.clip(t, 0.0, nx - 1, out=t)
+    key = t.astype(dtype)
+    key *= ny
+    np.subtract(xy[:, 1], lo[1], out=t)
+    t *= 1.0 / cell_m
+    np.clip(t, 0.0, ny - 1, out=t)
+    key += t.astype(dtype)
+    occupied = np.zeros(nx * ny, dtype=bool)
+    occupied[key] = True
+    return key, occupied
+
+
+@pytest.mark.parametrize("dtype", [np.int32, np.int64])
+def test_plan_cells_equal_the_numpy_form(dtype):
+    # reference: numpy's subtract, multiply, clip and cast, value for value, with points on
+    # cell edges, one ulp either side, and beyond the grid on every side (clamped)
+    from clearaudit.audit._polyline import plan_cells
+
+    rng = np.random.default_rng(8)
+    lo, cell_m, nx, ny = np.array([-1234.5678, 987.25]), 2.0, 173, 61
+    xy = lo + rng.uniform(-30.0, [nx * cell_m + 30.0, ny * cell_m + 30.0], (200_000, 2))
+    edges = lo + cell_m * rng.integers(0, [nx, ny], (20_000, 2))
+    xy = np.vstack([xy, edges, np.nextafter(edges, -np.inf), np.nextafter(edges, np.inf)])
+    key = np.empty(len(xy), dtype=dtype)
+    occupied = np.zeros(nx * ny, dtype=np.uint8)
+    plan_cells(xy, float(lo[0]), float(lo[1]), 1.0 / cell_m, nx, ny, key, occupied)
+    ref_key, ref_occupied = _plan_cells_numpy(xy, lo, cell_m, nx, ny, dtype)
+    np.testing.assert_array_equal(key, ref_key)
+    np.testing.assert_array_equal(occupied.view(bool), ref_occupied)
+    with pytest.raises(ValueError):
+        plan_cells(xy, 0.0, 0.0, 1.0, nx, ny, key[:-1], occupied)

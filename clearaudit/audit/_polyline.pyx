@@ -8,7 +8,11 @@ setup.py), so in plan the distances, nearest points and parameters are the same 
 3-D); the loops leave the GIL.
 """
 from libc.math cimport floor, sqrt, INFINITY
-from libc.stdint cimport int64_t
+from libc.stdint cimport int32_t, int64_t
+
+ctypedef fused cell_t:
+    int32_t
+    int64_t
 
 
 def nearest_segment(const double[:, :] pts, const double[:, :] verts,
@@ -134,3 +138,39 @@ def frame_points(const double[::1] a, const double[::1] ex, const double[::1] ez
             for c in range(3):
                 t = a[c] + x[i] * ex[c]
                 out[i, c] = t + z[i] * ez[c]
+
+
+def plan_cells(const double[:, :] xy, double lo0, double lo1, double inv_cell,
+               int64_t nx, int64_t ny, cell_t[::1] key, unsigned char[::1] occupied):
+    """Cell number ``i * ny + j`` of every point on a plan grid, and the occupied cells.
+
+    ``i = trunc(clip((x - lo0) * inv_cell, 0, nx - 1))`` (``j`` likewise with ``y``, ``lo1``,
+    ``ny``): the operations of the numpy form (``audit.engine._PlanGrid``), each rounded on
+    its own, so the same cells; ``occupied[k]`` is set to 1 for every cell ``k`` holding a
+    point. NaN coordinates go to cell 0 (numpy's cast of NaN is undefined). ``key`` is
+    int32 when every cell number fits, else int64.
+    """
+    cdef Py_ssize_t n = xy.shape[0], p
+    cdef double t, top_i = <double>(nx - 1), top_j = <double>(ny - 1)
+    cdef int64_t k
+    if xy.shape[1] != 2 or key.shape[0] != n or occupied.shape[0] != nx * ny or nx < 1 \
+            or ny < 1:
+        raise ValueError("plan_cells: mismatched shapes")
+    if cell_t is int32_t and nx * ny > 2147483647:
+        raise ValueError("plan_cells: cell numbers beyond int32")
+    with nogil:
+        for p in range(n):
+            t = (xy[p, 0] - lo0) * inv_cell
+            if not t > 0.0:  # NaN too
+                t = 0.0
+            elif t > top_i:
+                t = top_i
+            k = <int64_t>t * ny
+            t = (xy[p, 1] - lo1) * inv_cell
+            if not t > 0.0:
+                t = 0.0
+            elif t > top_j:
+                t = top_j
+            k += <int64_t>t
+            key[p] = <cell_t>k
+            occupied[k] = 1

@@ -48,6 +48,7 @@ from clearaudit.cloud import (
 )
 from clearaudit.errors import InputError
 
+from ._polyline import plan_cells
 from .clearance import (
     Findings,
     building_envelope,
@@ -1061,19 +1062,13 @@ class _PlanGrid:
         self.nx = int(extent[0] // cell_m) + 1
         self.ny = int(extent[1] // cell_m) + 1
         ncell = self.nx * self.ny
-        dtype = np.int32 if ncell < 2 ** 31 - 1 else np.int64
-        t = np.subtract(xy[:, 0], lo[0])
-        t *= 1.0 / cell_m
-        np.clip(t, 0.0, self.nx - 1, out=t)            # >= 0: truncation is the floor
-        key = t.astype(dtype)
-        key *= self.ny
-        np.subtract(xy[:, 1], lo[1], out=t)
-        t *= 1.0 / cell_m
-        np.clip(t, 0.0, self.ny - 1, out=t)
-        key += t.astype(dtype)
+        # every point's cell (clipped into the grid; >= 0, so truncation is the floor) and
+        # the occupied cells, in one compiled pass (plan_cells: the numpy form's operations)
+        key = np.empty(len(xy), dtype=np.int32 if ncell < 2 ** 31 - 1 else np.int64)
+        occupied = np.zeros(ncell, dtype=np.uint8)
+        plan_cells(np.asarray(xy, dtype=np.float64), float(lo[0]), float(lo[1]), 1.0 / cell_m,
+                   self.nx, self.ny, key, occupied)
         self.key = key
-        occupied = np.zeros(ncell, dtype=bool)
-        occupied[key] = True
         cells = np.flatnonzero(occupied)
         half = 0.5 * math.sqrt(2.0) * cell_m
         centre = np.column_stack([lo[0] + (cells // self.ny + 0.5) * cell_m,
