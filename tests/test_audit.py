@@ -70,10 +70,11 @@ def scene():
     config.line.altitude_m = 100.0
     config.survey.conductor_temperature_c = 20.0
     rules = load_rule_set("na-transmission")
-    result = audit_line(cloud, classification, model, config,
-                        {"phase": conductor, "shield": lookup_conductor("3/8 EHS")}, rules,
+    conductors = {"phase": conductor, "shield": lookup_conductor("3/8 EHS")}
+    result = audit_line(cloud, classification, model, config, conductors, rules,
                         options=AuditOptions(fall_in=False))
-    return SimpleNamespace(result=result, rules=rules, low_z=low_z, z100=z100)
+    return SimpleNamespace(result=result, rules=rules, low_z=low_z, z100=z100,
+                           inputs=(cloud, classification, model, config, conductors))
 
 
 def test_result_shape(scene):
@@ -98,6 +99,20 @@ def test_result_shape(scene):
     curves = r.curves[("S1-S2", "P1")]
     assert set(curves) == set(r.conditions) and len(curves["mot"]) <= 101
     assert ("S1-S2" in r.ground_profiles) and r.ground_profiles["S1-S2"].shape[1] == 2
+
+
+def test_output_curves_are_the_same_with_the_fall_in_search(scene):
+    # the fall-in search samples the survey and MOT curves and hands their downsampled
+    # copies to the outputs: the same vertices as sampling them for the outputs alone
+    cloud, classification, model, config, conductors = scene.inputs
+    with_fall_in = audit_line(cloud, classification, model, config, conductors, scene.rules,
+                              options=AuditOptions(fall_in=True))
+    assert with_fall_in.summary["trees_examined"] > 0  # the search ran
+    assert with_fall_in.curves.keys() == scene.result.curves.keys()
+    for key, curves in scene.result.curves.items():
+        assert list(with_fall_in.curves[key]) == list(curves)
+        for condition, vertices in curves.items():
+            np.testing.assert_array_equal(with_fall_in.curves[key][condition], vertices)
 
 
 def test_every_kind_is_found_once_per_condition(scene):

@@ -868,11 +868,14 @@ def merge_findings(plan: WireStates, model: Any, conductors: dict[str, Any], rul
 
     # ---- 5. trees, fall-in, priorities
     trees_info = {"trees": 0, "fall_in_trees": 0}
+    # the outputs' downsampled curves of the curves the fall-in search samples anyway
+    # (each curve is sampled from its recipe once here, not again for the outputs)
+    downsampled: dict[tuple[int, str], np.ndarray] = {}
     if tops is not None:
         trees_info["trees"] = len(tops)
         if opts.fall_in and states:
             _fall_in(rows, tops, states, rules, plan.voltage_kv, plan.altitude_m, opts,
-                     trees_info)
+                     trees_info, downsampled)
     for row in rows:
         if row["kind"] == "vegetation":
             gap = max(0.0, row["clearance_m"] - row["required_m"])
@@ -892,8 +895,10 @@ def merge_findings(plan: WireStates, model: Any, conductors: dict[str, Any], rul
     # ---- 6. span rows, curves, profiles
     survey_t = plan.survey_temperature
     span_rows = _span_rows(model, states, survey_t, ground_min, conductors)
-    curves = {(st.span_id, st.wire_id): {c: _downsample(v) for c, v in st.curves.items()}
-              for st in states}
+    curves = {(st.span_id, st.wire_id): {c: downsampled[(k, c)] if (k, c) in downsampled
+                                         else _downsample(st.curves[c]) for c in st.recipes}
+              for k, st in enumerate(states)}
+    del downsampled
     profiles = {}
     for span in model.spans:
         length = float(np.linalg.norm(np.asarray(span.b_xy, float) - np.asarray(span.a_xy,
@@ -1491,20 +1496,29 @@ def _obstacle_rows(kind: str, f: Findings, group: _Group | None, states: list[Wi
 
 
 def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: float,
-             altitude: float | None, opts: AuditOptions, info: dict) -> None:
+             altitude: float | None, opts: AuditOptions, info: dict,
+             downsampled: dict[tuple[int, str], np.ndarray] | None = None) -> None:
     """Fall-in risk of every tree; rows for risky trees that violate no clearance.
 
     The reach is checked against every wire (shield wires included: a tree on a shield wire
     is a reliability and fire risk); the clearance of a fall-in-only row is the crown's
     distance to the nearest wire whose vegetation rule applies (the energised phases).
+    ``downsampled`` (when given) receives ``(state index, condition) -> _downsample(curve)``
+    of the curves sampled here.
     """
     if len(tops) == 0:
         return
     curves, owner = [], []
+    survey_samples: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     for k, st in enumerate(states):
         for c in ("survey", "mot"):
             if c in st.curves:
-                curve = st.curves[c]  # evaluated once (the states keep recipes)
+                sample = st.sample(c)  # evaluated once (the states keep recipes)
+                curve = sample[0]
+                if c == "survey":
+                    survey_samples[k] = sample
+                if downsampled is not None:
+                    downsampled[(k, c)] = _downsample(curve)
                 curves.append(curve)
                 owner.append(np.full(len(curve), k))
     wires = np.concatenate(curves)
@@ -1530,7 +1544,7 @@ def _fall_in(rows: list[dict], tops, states: list[WireState], rules, voltage: fl
         return
     cells = np.flatnonzero(np.isin(tops.cell_tree, only))
     cell_xyz = tops.cell_xyz[cells]
-    survey = [states[k].sample("survey") for k in targets]  # (curve, fractions), once each
+    survey = [survey_samples[k] for k in targets]  # (curve, fractions), sampled above
     best_d, which, param = nearest_curve(cell_xyz, [curve for curve, _ in survey])
     best_state = np.asarray(targets)[which]
     best_frac = np.zeros(len(cells))
