@@ -500,7 +500,8 @@ def _run_in_memory(options: AuditOptions, record: RunRecord, paths: list[Path], 
                                       hag, "height above ground [m]")},
                                   records=records, report=record.extra.get("classified_copy"))
         if records is not None and records.layers:
-            background = _Background(partial(copy_writer, path=tmp / "classified.laz"))
+            background = _Background(partial(copy_writer, path=tmp / "classified.laz"),
+                                     name="clearaudit-classified-copy")
 
         def classified_beside(path: Path) -> None:
             _wait_for_copy(background, record)
@@ -1097,7 +1098,8 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                     report=record.extra.get("classified_copy"))
 
             if records is not None and records.layers:
-                background = _Background(partial(write_classified, tmp / "classified.laz"))
+                background = _Background(partial(write_classified, tmp / "classified.laz"),
+                                         name="clearaudit-classified-copy")
             try:
                 # ---- audit: driver prepares the states; one task per tile; driver merges
                 with record.stage("audit", engine=engine):
@@ -1230,7 +1232,7 @@ class _Cancelled(Exception):
 class _Background:
     """``fn()`` on a thread of its own; :meth:`result` waits and re-raises its error."""
 
-    def __init__(self, fn: Callable[[], Any], name: str = "clearaudit-classified-copy"):
+    def __init__(self, fn: Callable[[], Any], name: str = "clearaudit-background"):
         import threading
 
         self._error: BaseException | None = None

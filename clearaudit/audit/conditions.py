@@ -31,7 +31,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field, replace
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -543,13 +543,14 @@ def project_conditions(model: Any, conductors: dict[str, Any], specs: dict[str, 
         # The change of state depends only on the section's ruling span, the wire's survey
         # tension and the final load and temperature: solved once per wire and section for
         # every distinct load (both wind sides share one), not once per span.
-        plans.append((section_id, members, role, rs, h_survey, h_ci, {}))
+        plans.append(_SectionWire(section_id, members, role, rs, h_survey, h_ci, {}))
     _solve_changes_of_state(plans, mechanics, conductors, specs, ts, dt, creep_shift_c)
-    for section_id, members, role, rs, h_survey, h_ci, cache in plans:
-        for span, wire in members:
-            states.append(_wire_state(span, wire, section_id, mechanics[role], specs, rs,
-                                      h_survey, h_ci, ts, dt, model, spans, insulator_length_m,
-                                      creep_shift_c, spacing_m, conductors[role], cache))
+    for p in plans:
+        for span, wire in p.members:
+            states.append(_wire_state(span, wire, p.section_id, mechanics[p.role], specs, p.rs,
+                                      p.h_survey, p.h_ci, ts, dt, model, spans,
+                                      insulator_length_m, creep_shift_c, spacing_m,
+                                      conductors[p.role], p.cache))
     order = {(s.id, w.wire_id): i for i, s in enumerate(model.spans)
              for w in s.wires}
     states.sort(key=lambda st: (order.get((st.span_id, st.wire_id), 0),
@@ -562,6 +563,25 @@ def _is_suspension(model, structure_id) -> bool:
         return False
     structure = model.structure(structure_id) if hasattr(model, "structure") else None
     return structure is not None and getattr(structure, "kind", "") == "suspension"
+
+
+class _SectionWire(NamedTuple):
+    """One wire of one tension section: its spans' (span, wire) pairs, the ruling span [m],
+    the section's survey tension and its half-width [N], and the final tensions of the
+    changes of state solved so far (``(w_final, t_final) -> H`` of the five variants)."""
+
+    section_id: str
+    members: list
+    role: str
+    rs: float
+    h_survey: float
+    h_ci: float
+    cache: dict
+
+
+def _load_key(w_final: float, t_final: float) -> tuple[float, float]:
+    """The key of a change of state's final condition (both wind sides share one)."""
+    return float(w_final), float(t_final)
 
 
 def _variants(h_survey: float, h_ci: float, ts: float, dt: float
@@ -585,7 +605,7 @@ def _final_load(spec: ConditionSpec, role: str, diameter: float, w: float
     return t_final, vertical, wind_f, math.hypot(vertical, wind_f)
 
 
-def _solve_changes_of_state(plans: list, mechanics: dict[str, Any], conductors: dict[str, Any],
+def _solve_changes_of_state(plans: list[_SectionWire], mechanics: dict[str, Any], conductors: dict[str, Any],
                             specs: dict[str, ConditionSpec], ts: float, dt: float,
                             creep_shift_c: float) -> None:
     """Fill the plans' caches (``load -> final H of the five variants``) with every change of
@@ -600,27 +620,26 @@ def _solve_changes_of_state(plans: list, mechanics: dict[str, Any], conductors: 
     for role, mech in mechanics.items():
         w = mech.weight_n_per_m
         diameter = float(conductors[role].diameter_m)
-        loads = sorted({(float(wf), float(tf)) for spec_name, spec in specs.items()
-                        if spec_name != "survey"
-                        for tf, _, _, wf in [_final_load(spec, role, diameter, w)]})
-        mine = [p for p in plans if p[2] == role]
+        finals = [_final_load(spec, role, diameter, w) for name, spec in specs.items()
+                  if name != "survey"]
+        loads = sorted({_load_key(w_final, t_final) for t_final, _, _, w_final in finals})
+        mine = [p for p in plans if p.role == role]
         if not mine or not loads:
             continue
-        rows = [(k, load) for k in range(len(mine)) for load in loads]
-        h_var, t_var = zip(*(_variants(mine[k][4], mine[k][5], ts, dt) for k, _ in rows),
+        rows = [(p, load) for p in mine for load in loads]
+        h_var, t_var = zip(*(_variants(p.h_survey, p.h_ci, ts, dt) for p, _ in rows),
                            strict=True)
-        rs = np.repeat([float(mine[k][3]) for k, _ in rows], 5)
+        rs = np.repeat([float(p.rs) for p, _ in rows], 5)
         w_final = np.repeat([load[0] for _, load in rows], 5)
         t_final = np.repeat([load[1] for _, load in rows], 5)
         try:
-            h_final = mech.final_tension(rs, np.concatenate(h_var), np.full(len(rs), w),
-                                         np.concatenate(t_var), w_final, t_final,
-                                         creep_shift=creep_shift_c)
+            h_final = mech.final_tension(rs, np.concatenate(h_var), w, np.concatenate(t_var),
+                                         w_final, t_final, creep_shift=creep_shift_c)
         except ValueError:
             continue
         h_final = np.asarray(h_final, dtype=float).reshape(len(rows), 5)
-        for (k, load), h in zip(rows, h_final, strict=True):
-            mine[k][6][load] = h
+        for (p, load), h in zip(rows, h_final, strict=True):
+            p.cache[load] = h
 
 
 def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt, model, spans,
@@ -645,7 +664,7 @@ def _wire_state(span, wire, section_id, mech, specs, rs, h_survey, h_ci, ts, dt,
         if name == "survey":
             continue
         t_final, vertical, wind_f, w_final = _final_load(spec, wire.role, diameter, w)
-        load = (float(w_final), float(t_final))
+        load = _load_key(w_final, t_final)
         if cache is not None and load in cache:
             h_final = cache[load]
         else:

@@ -300,11 +300,11 @@ def _gaussian_radius(sigma: float, truncate: float = 4.0) -> int:
 
 
 def _occupied_histogram(a: np.ndarray, b: np.ndarray, half: float, bins: int, margin: int
-                        ) -> tuple[np.ndarray, tuple[int, int], tuple[np.ndarray, np.ndarray]]:
+                        ) -> tuple[np.ndarray, tuple[int, int], np.ndarray]:
     """The part of ``numpy.histogram2d(a, b, bins, range=[[-half, half]] * 2)`` around its
     occupied cells: the counts over the rows and columns of the occupied cells widened by
-    ``margin`` (within the grid), the first row and column of that part, and the edges of
-    the whole grid.
+    ``margin`` (within the grid), the first row and column of that part, and the bin edges
+    of the whole grid (the same on both axes).
 
     The edges are numpy's (``linspace`` over the range) and a value goes to the bin numpy
     gives it (``searchsorted`` on the edges, the last edge in the last bin), so the part
@@ -327,7 +327,7 @@ def _occupied_histogram(a: np.ndarray, b: np.ndarray, half: float, bins: int, ma
     j0, j1 = max(int(j.min()) - margin, 0), min(int(j.max()) + margin, bins - 1)
     rows, cols = i1 - i0 + 1, j1 - j0 + 1
     counts = np.bincount((i - i0) * cols + (j - j0), minlength=rows * cols)
-    return counts.reshape(rows, cols).astype(float), (i0, j0), (edges, edges)
+    return counts.reshape(rows, cols).astype(float), (i0, j0), edges
 
 
 def _find_peaks(dt: np.ndarray, dz: np.ndarray, opts: SeparationOptions) -> np.ndarray:
@@ -342,8 +342,8 @@ def _find_peaks(dt: np.ndarray, dz: np.ndarray, opts: SeparationOptions) -> np.n
     # than the smoothing kernel: outside, the smoothed histogram of the whole grid is exactly
     # zero, so no peak lies there and the filters give the same values inside (see
     # _occupied_histogram)
-    hist, (i0, j0), (te, ze) = _occupied_histogram(dt[keep], dz[keep], half, nb,
-                                                   margin=2 * _gaussian_radius(sigma) + 1)
+    hist, (i0, j0), edges = _occupied_histogram(dt[keep], dz[keep], half, nb,
+                                                margin=2 * _gaussian_radius(sigma) + 1)
     sm = ndimage.gaussian_filter(hist, sigma)
     size = max(int(round(opts.min_subconductor_spacing_m / opts.fine_cell_m)), 3)
     peak = (sm == ndimage.maximum_filter(sm, size=size, mode="constant")) & (
@@ -351,7 +351,7 @@ def _find_peaks(dt: np.ndarray, dz: np.ndarray, opts: SeparationOptions) -> np.n
     pi, pj = np.nonzero(peak)
     strength = sm[pi, pj]
     pi, pj = pi + i0, pj + j0
-    centres = np.c_[0.5 * (te[pi] + te[pi + 1]), 0.5 * (ze[pj] + ze[pj + 1])]
+    centres = np.c_[0.5 * (edges[pi] + edges[pi + 1]), 0.5 * (edges[pj] + edges[pj + 1])]
     order = np.argsort(-strength)
     centres = centres[order]
     # merge peaks closer than the minimum spacing (plateaus)
