@@ -20,6 +20,8 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     for mode in ("memory", "serial", "tiled", "dask1", "dask"):
         assert f"ratio tiny {mode}: audit/decompress = " in out
     assert "classify/decompress = " in out and "peak RSS per point = " in out
+    # every audit on a settled disk, the writeback it left timed beside it
+    assert out.count("writeback after it ") == 6
     # the Dask runs (1 and 2 workers) and the threaded in-process run must reproduce the
     # one-thread run exactly
     assert "in-process threads on tiny: speed-up " in out
