@@ -27,6 +27,9 @@ every timing starts on a settled disk (``os.sync`` first: no timing pays for the
 of the one before; the writeback each audit leaves is timed and printed beside it). On a
 shared machine the wall times vary with the load; the CPU times (audit process and its
 workers; decompression in the parent) are printed beside them.
+The modules a tiled audit imports after its clock starts (scipy's, laspy's, pyproj's,
+clearaudit's) are timed apart in a fresh process: a cost every run pays once, whatever the
+line's length, so the time-per-km table is printed with and without it.
 Generation is not part of any measurement; its time and peak memory are printed.
 The audits run without the HTML report (``--no-report``); the report a default run adds is
 timed separately on each tiled run's output (``report …`` lines: seconds, per span profile,
@@ -166,7 +169,7 @@ def run_child(cloud: Path, line: Path, out: Path, extra: list[str]) -> dict:
     child = json.loads(proc.stdout.strip().splitlines()[-1])
     run = json.loads((out / "run.json").read_text())
     return {"wall_s": wall, "audit_s": child["seconds"], "peak_rss_mb": child["peak_rss_mb"],
-            "writeback_s": writeback,
+            "writeback_s": writeback, "loaded_modules": child.get("loaded_modules", []),
             "cpu_s": child.get("cpu_s", float("nan")),
             "stages": {s["name"]: s for s in run["stages"]}, "run": run}
 
@@ -183,9 +186,13 @@ def _child(argv: list[str]) -> None:
         key, value = item.split("=", 1)
         kw[key] = {"tiled": lambda v: v == "1", "workers": int, "tile_points": int,
                    "threads": int}[key](value)
+    before = set(sys.modules)
     t0 = time.perf_counter()
     run_audit(AuditOptions(clouds=[Path(cloud)], out=Path(out), line_file=Path(line),
                            overwrite=True, skip_report=True, **kw))
+    seconds = time.perf_counter() - t0
+    # the modules the run loaded as it went (timed apart by imports_seconds)
+    loaded = [name for name in sys.modules if name not in before]
     from clearaudit.tiling import peak_rss_mb
 
     peak = peak_rss_mb()  # VmHWM: this child's own peak, not its parent's
@@ -195,7 +202,42 @@ def _child(argv: list[str]) -> None:
 
     cpu = sum(getattr(resource.getrusage(who), f) for who in
               (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN) for f in ("ru_utime", "ru_stime"))
-    print(json.dumps({"seconds": time.perf_counter() - t0, "peak_rss_mb": peak, "cpu_s": cpu}))
+    print(json.dumps({"seconds": seconds, "peak_rss_mb": peak, "cpu_s": cpu,
+                      "loaded_modules": loaded}))
+
+
+def _imports_child(argv: list[str]) -> None:
+    """Import the modules listed in a file (one name a line) in this fresh process, after
+    what an audit child imports before its clock starts; print the seconds they took."""
+    import importlib
+
+    (names,) = argv
+    from clearaudit.threads import one_blas_thread_from_start
+
+    one_blas_thread_from_start()
+    import clearaudit.pipeline  # noqa: F401  (imported before the audit child's clock too)
+
+    t0 = time.perf_counter()
+    for name in Path(names).read_text().split():
+        try:
+            importlib.import_module(name)
+        except Exception:  # noqa: BLE001 - a module made at run time, not importable alone
+            pass
+    print(json.dumps({"seconds": time.perf_counter() - t0}))
+
+
+def imports_seconds(modules: list[str], scratch: Path) -> float:
+    """Seconds a fresh process takes to import ``modules`` (the ones an audit loaded after
+    its clock started: scipy's, laspy's, pyproj's and clearaudit's own): a cost every run
+    pays once, whatever the line's length (a ``clearaudit network`` run once for all its
+    lines). Timed in a child process on a settled disk, the files in the page cache. [s]"""
+    scratch.write_text("\n".join(modules))
+    settle_disk()
+    proc = subprocess.run([sys.executable, __file__, "_imports", str(scratch)],
+                          capture_output=True, text=True, check=False)
+    if proc.returncode != 0:
+        raise RuntimeError(f"imports failed: {proc.stderr[-2000:]}")
+    return float(json.loads(proc.stdout.strip().splitlines()[-1])["seconds"])
 
 
 def _report_child(argv: list[str]) -> None:
@@ -293,6 +335,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             # the audits here run without the report (--no-report); what the report adds to
             # a default run, timed on this output (one profile per span)
             result["report_s"] = report_seconds(work / f"{label}-{mode}")
+            result["imports_s"] = imports_seconds(r["loaded_modules"],
+                                                  work / f"{label}-imports.txt")
             result["report_spans"] = len({row["span_id"] for row in spans})
         result[mode] = {"audit_s": r["audit_s"], "peak_rss_mb": r["peak_rss_mb"],
                         "classify_s": r["stages"]["classify"]["seconds"],
@@ -339,8 +383,10 @@ def km_scaling(results: list[dict]) -> list[str]:
     imports, the stages' ends)."""
     import numpy as np
 
-    rows = sorted((float(r["line_km"]), float(r["tiled"]["audit_s"])) for r in results
-                  if r.get("km_case") and r.get("tiled") and r.get("line_km"))
+    cases = sorted((r for r in results
+                    if r.get("km_case") and r.get("tiled") and r.get("line_km")),
+                   key=lambda r: float(r["line_km"]))
+    rows = [(float(r["line_km"]), float(r["tiled"]["audit_s"])) for r in cases]
     if len(rows) < 2:
         return []
     km = np.array([k for k, _ in rows])
@@ -349,10 +395,21 @@ def km_scaling(results: list[dict]) -> list[str]:
     each = ", ".join(f"{k:.1f} km {s / k:.2f}" for k, s in rows)
     marginal = ", ".join(f"{k0:.1f}-{k1:.1f} km {(s1 - s0) / (k1 - k0):.2f}"
                          for (k0, s0), (k1, s1) in zip(rows[:-1], rows[1:], strict=True))
-    return [f"time per km (tiled): {each} s/km; marginal between lengths: {marginal} s/km",
-            f"time per km (tiled): least-squares line over the lengths: {fixed:.2f} s fixed "
-            f"+ {slope:.3f} s/km (the fixed part is {fixed / rows[0][1] * 100:.0f} % of the "
-            f"{rows[0][0]:.1f} km line's time)"]
+    lines = [f"time per km (tiled): {each} s/km; marginal between lengths: {marginal} s/km",
+             f"time per km (tiled): least-squares line over the lengths: {fixed:.2f} s fixed "
+             f"+ {slope:.3f} s/km (the fixed part is {fixed / rows[0][1] * 100:.0f} % of the "
+             f"{rows[0][0]:.1f} km line's time)"]
+    if all(r.get("imports_s") is not None for r in cases):
+        # the same without the imports each run pays once (timed apart, imports_seconds)
+        imp = np.array([float(r["imports_s"]) for r in cases])
+        slope2, fixed2 = np.polyfit(km, t - imp, 1)
+        each2 = ", ".join(f"{k:.1f} km {(s - i) / k:.2f}" for (k, s), i in zip(rows, imp,
+                                                                              strict=True))
+        took = ", ".join(f"{i:.2f}" for i in imp)
+        lines.append(f"time per km (tiled) without the modules each run imports once ({took} "
+                     f"s, timed apart): {each2} s/km; least-squares line {fixed2:.2f} s fixed "
+                     f"+ {slope2:.3f} s/km")
+    return lines
 
 
 def print_results(results: list[dict]) -> None:
@@ -411,6 +468,12 @@ def print_results(results: list[dict]) -> None:
     for line in km_scaling(results):
         print(line)
     for r in results:
+        if r.get("imports_s") is not None:
+            print(f"imports {r['case']}: the modules the tiled run loaded after its clock "
+                  f"started take {r['imports_s']:.2f} s to import in a fresh process, "
+                  f"{r['imports_s'] / r['tiled']['audit_s'] * 100:.0f} % of its time (paid "
+                  "once a run, whatever the line's length)")
+    for r in results:
         if r.get("report_s") is not None and r.get("tiled"):
             n = max(1, int(r.get("report_spans") or 0))
             print(f"report {r['case']}: the HTML report of the tiled run took "
@@ -448,6 +511,9 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if argv and argv[0] == "_report":
         _report_child(argv[1:])
+        return 0
+    if argv and argv[0] == "_imports":
+        _imports_child(argv[1:])
         return 0
     if argv and argv[0] == "_generate":
         _generate_child(argv[1:])

@@ -36,6 +36,8 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
     # what the report adds to a default run, timed on the tiled run's output
     assert "report tiny: the HTML report of the tiled run took " in out
     assert "report tiny-stream: the HTML report of the tiled run took " in out
+    # the modules the tiled run imported as it went, timed apart in a fresh process
+    assert "imports tiny: the modules the tiled run loaded after its clock started take " in out
     assert "floor tiny: decoding the layers the audit reads (x/y, z, class, flags) takes " in out
     # the decompression timed before the first audit and after each of the five
     line = next(t for t in out.splitlines() if t.startswith("decompress tiny: "))
@@ -63,3 +65,13 @@ def test_km_scaling_lines_match_numpy_polyfit():
     slope, fixed = np.polyfit([2.03, 10.22, 50.18], [4.0, 13.6, 57.6], 1)
     assert f"{fixed:.2f} s fixed + {slope:.3f} s/km" in lines[1]
     assert bench.km_scaling(results[:1]) == []
+    # with the imports each run pays once, timed apart: the same line fitted to t - imports
+    imports = {50.18: 0.7, 2.03: 0.6, 10.22: 0.65}
+    for r in results:
+        r["imports_s"] = imports.get(r["line_km"])
+    lines = bench.km_scaling(results)
+    assert len(lines) == 3
+    assert "(0.60, 0.65, 0.70 s, timed apart): " in lines[2]
+    assert f"2.0 km {(4.0 - 0.6) / 2.03:.2f}, 10.2 km {(13.6 - 0.65) / 10.22:.2f}" in lines[2]
+    slope, fixed = np.polyfit([2.03, 10.22, 50.18], [3.4, 12.95, 56.9], 1)
+    assert f"{fixed:.2f} s fixed + {slope:.3f} s/km" in lines[2]
