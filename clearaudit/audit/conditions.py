@@ -605,9 +605,9 @@ def _final_load(spec: ConditionSpec, role: str, diameter: float, w: float
     return t_final, vertical, wind_f, math.hypot(vertical, wind_f)
 
 
-def _solve_changes_of_state(plans: list[_SectionWire], mechanics: dict[str, Any], conductors: dict[str, Any],
-                            specs: dict[str, ConditionSpec], ts: float, dt: float,
-                            creep_shift_c: float) -> None:
+def _solve_changes_of_state(plans: list[_SectionWire], mechanics: dict[str, Any],
+                            conductors: dict[str, Any], specs: dict[str, ConditionSpec],
+                            ts: float, dt: float, creep_shift_c: float) -> None:
     """Fill the plans' caches (``load -> final H of the five variants``) with every change of
     state of a role in one vectorised solve.
 
