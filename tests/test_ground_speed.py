@@ -44,6 +44,22 @@ def test_isolated_points_match_the_definition(voxel, min_neighbours):
     assert expected.any() or min_neighbours == 0
 
 
+@pytest.mark.parametrize("voxel", [3.0, 1.0, 0.5])
+def test_isolated_points_dense_and_sorted_counts_agree(voxel, monkeypatch):
+    # reference: the brute-force definition above, through both ways of counting (the dense
+    # count over the whole voxel block, the sorted voxel numbers), forced in turn
+    import clearaudit.classify.noise as noise
+
+    rng = np.random.default_rng(11)
+    xyz = np.concatenate([rng.normal(size=(500, 3)) * [15, 4, 2],
+                          rng.uniform(-40, 40, size=(30, 3))]) + [3.1e5, 5.7e6, 95.0]
+    expected = _isolated_brute_force(xyz, voxel, 2)
+    monkeypatch.setattr(noise, "_DENSE_MIN_VOXELS", 1 << 40)
+    np.testing.assert_array_equal(isolated_points(xyz, voxel, 2), expected)
+    monkeypatch.setattr(noise, "_DENSE_MIN_VOXELS", 0)
+    np.testing.assert_array_equal(isolated_points(xyz, voxel, 2), expected)
+
+
 def test_compact_voxel_keys_are_one_number_per_voxel():
     # reference: the voxel triple floor(xyz / e); equal keys <=> equal triples
     rng = np.random.default_rng(3)

@@ -15,6 +15,9 @@ from ..arrays import column_bounds
 from ..threads import run_chunks
 
 _CHUNK = 1 << 16  # points per chunk of the per-point passes (cache-sized temporaries)
+#: Below this many voxels in the block (or twice the points), the isolation test counts every
+#: voxel of the block (8 bytes a voxel) instead of sorting the points' voxel numbers.
+_DENSE_MIN_VOXELS = 1 << 20
 
 
 def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple[int, int, int]]:
@@ -80,16 +83,20 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
 
     Notes
     -----
-    The voxel numbers are sorted once (no inverse permutation): the sorted run lengths are the
-    points per voxel, only voxels with fewer than ``min_neighbours + 1`` points have their block
-    counted (binary search of the 26 neighbours among the occupied voxels), and the points of
+    When the block of voxels around the points is small (at most twice as many voxels as
+    points, as in a tile of a corridor), the points per voxel are counted over the whole block
+    (``bincount``) and looked up directly. Otherwise the voxel numbers are sorted once (no
+    inverse permutation): the sorted run lengths are the points per voxel, only voxels with
+    fewer than ``min_neighbours + 1`` points have their block counted (binary search of the 26 neighbours among the occupied voxels), and the points of
     the few isolated voxels are found through a hashed bit table followed by an exact test.
     """
     n = len(xyz)
     isolated = np.zeros(n, bool)
     if n == 0 or min_neighbours <= 0:
         return isolated
-    keys, (_, n_y, n_z) = compact_voxel_keys(xyz, voxel)
+    keys, (n_x, n_y, n_z) = compact_voxel_keys(xyz, voxel)
+    if n_x * n_y * n_z <= max(2 * n, _DENSE_MIN_VOXELS):
+        return _isolated_dense(keys, n_x * n_y * n_z, n_y, n_z, min_neighbours)
     ordered = np.sort(keys)
     first = np.empty(n, bool)
     first[0] = True
@@ -130,6 +137,33 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
     cand = np.flatnonzero(candidate)
     pos = np.clip(np.searchsorted(lonely, keys[cand]), 0, len(lonely) - 1)
     isolated[cand[lonely[pos] == keys[cand]]] = True
+    return isolated
+
+
+def _isolated_dense(keys: np.ndarray, n_voxels: int, n_y: int, n_z: int,
+                    min_neighbours: int) -> np.ndarray:
+    """:func:`isolated_points` on a block of few voxels: a count per voxel of the whole block.
+
+    The same counts as the sorted form, from one ``bincount`` over every voxel number (the
+    block's numbers have a border voxel on each side, so every neighbour number is valid).
+    """
+    counts = np.bincount(keys, minlength=n_voxels)
+    # only voxels that are themselves sparse need their block counted
+    sparse = np.flatnonzero((counts > 0) & (counts - 1 < min_neighbours))
+    total = np.zeros(len(sparse), dtype=np.int64)
+    d = np.array([-1, 0, 1], dtype=np.int64)
+    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
+    for off in ((di * n_y + dj) * n_z + dk).ravel():
+        total += counts[sparse + off]
+    del counts
+    lonely = np.zeros(n_voxels, bool)
+    lonely[sparse[total - 1 < min_neighbours]] = True
+    isolated = np.empty(len(keys), bool)
+
+    def work(lo: int, hi: int) -> None:
+        np.take(lonely, keys[lo:hi], out=isolated[lo:hi])
+
+    run_chunks(work, len(keys), _CHUNK)
     return isolated
 
 
