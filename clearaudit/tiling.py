@@ -40,6 +40,7 @@ import os
 import pickle
 import platform
 import resource
+import threading
 import time
 from collections.abc import Iterable, Sequence
 from contextlib import contextmanager, nullcontext
@@ -296,6 +297,32 @@ class Corridor:
     buffer_crs_units: float
 
 
+_CORRIDOR_KEEPS: dict[tuple[bytes, tuple[int, ...], float], Any] = {}
+_CORRIDOR_LOCK = threading.Lock()
+
+
+def corridor_keep(corridor: Corridor):
+    """The corridor's ``keep`` test (:func:`~clearaudit.io.las.corridor_mask`), built once per
+    process and corridor and shared by the split tasks that run there.
+
+    Building it rasterises the corridor over the polyline's box, a cost that grows with the
+    line; every split task building its own made the read stage grow with the square of the
+    line's length (the 50 km line has dozens of parts). The test is a pure function of the
+    polyline and the half-width, so the tasks of a run (and of the runs of a ``network``
+    campaign with the same corridor) may share it; the last few corridors are kept.
+    """
+    line = np.ascontiguousarray(corridor.polyline_crs, dtype=np.float64)
+    key = (line.tobytes(), line.shape, float(corridor.buffer_crs_units))
+    with _CORRIDOR_LOCK:  # one build per corridor, also when two tasks start together
+        keep = _CORRIDOR_KEEPS.get(key)
+        if keep is None:
+            keep = corridor_mask(line, corridor.buffer_crs_units)
+            while len(_CORRIDOR_KEEPS) >= 4:
+                _CORRIDOR_KEEPS.pop(next(iter(_CORRIDOR_KEEPS)))
+            _CORRIDOR_KEEPS[key] = keep
+    return keep
+
+
 def plan_parts(setup: ReadSetup, part_points: int) -> list[SplitPart]:
     """Cut the input files into point ranges of at most ``part_points`` points (a file of
     ``setup.whole_files`` is one range: it cannot be sought in)."""
@@ -443,8 +470,7 @@ def split_part(work: str | Path, setup: ReadSetup, part: SplitPart, grid: Grid,
     """
     t0 = time.perf_counter()
     work = Path(work)
-    keep = (corridor_mask(corridor.polyline_crs, corridor.buffer_crs_units)
-            if corridor is not None else None)
+    keep = corridor_keep(corridor) if corridor is not None else None
     buffers: dict[tuple[int, int], list[np.ndarray]] = {}
     counts: dict[tuple[int, int], int] = {}
     buffered = 0

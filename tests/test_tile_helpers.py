@@ -682,3 +682,31 @@ def test_near_points_boxes_around_the_centres_and_the_whole_raster(n_centres):
     assert set(np.flatnonzero(np.isfinite(dd))) <= set(cells)
     assert np.all(np.diff(cells) > 0)
     assert _cells_near(centres, lo, size, np.array([10, 10]), bound) is None
+
+
+def test_corridor_keep_is_built_once_per_corridor_and_equals_the_mask():
+    # reference: clearaudit.io.las.corridor_mask built afresh (tested against the brute-force
+    # segment distance in test_io_las); the shared test must be the same function of the points
+    import threading
+
+    from clearaudit.io.las import corridor_mask
+    from clearaudit.tiling import Corridor, corridor_keep
+
+    line = np.array([[5.0e5, 4.2e6], [5.004e5, 4.2003e6], [5.009e5, 4.2001e6]])
+    a = corridor_keep(Corridor(line, 30.0))
+    b = corridor_keep(Corridor(line.copy(), 30.0))
+    assert a is b
+    assert corridor_keep(Corridor(line, 31.0)) is not a
+    rng = np.random.default_rng(5)
+    xy = rng.uniform([4.999e5, 4.1995e6], [5.010e5, 4.2008e6], size=(20_000, 2))
+    np.testing.assert_array_equal(a(xy), corridor_mask(line, 30.0)(xy))
+    # tasks starting together share one build
+    got = []
+    other = line + [0.0, 1.0]
+    threads = [threading.Thread(target=lambda: got.append(corridor_keep(Corridor(other, 30.0))))
+               for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert len(got) == 4 and all(g is got[0] for g in got)
