@@ -27,6 +27,9 @@ every timing starts on a settled disk (``os.sync`` first: no timing pays for the
 of the one before; the writeback each audit leaves is timed and printed beside it). On a
 shared machine the wall times vary with the load; the CPU times (audit process and its
 workers; decompression in the parent) are printed beside them.
+The ``--km`` lines are audited ``--repeat`` times (default 3) and their imports timed as
+often: a 2 km line takes about 2 s, which a shared host moves by as much as the lengths
+differ per km; the run of the median time stands in the tables, and every time is printed.
 The modules a tiled audit imports after its clock starts (scipy's, laspy's, pyproj's,
 clearaudit's) are timed apart in a fresh process: a cost every run pays once, whatever the
 line's length, so the time-per-km table is printed with and without it.
@@ -42,6 +45,7 @@ import csv
 import json
 import os
 import platform
+import statistics
 import subprocess
 import sys
 import time
@@ -301,8 +305,9 @@ MODES = ("memory", "serial", "tiled", "dask1", "dask")
 
 
 def case(cache: Path, work: Path, label: str, n_spans: int, density: float, modes: list[str],
-         tile_points: int | None, tiles: int | None = None) -> dict:
-    """Generate (cached) and audit one case; ``tiles``: generator tile size, or one LAZ."""
+         tile_points: int | None, tiles: int | None = None, repeat: int = 1) -> dict:
+    """Generate (cached) and audit one case; ``tiles``: generator tile size, or one LAZ;
+    ``repeat``: audits of the tiled mode (and timings of its imports), the median kept."""
     if tiles:
         paths = generate_tiles(cache, f"{label}-tiles", n_spans, density, tiles)
     else:
@@ -323,14 +328,22 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             extra.append("workers=1")
         if mode == "serial":  # tiled, in-process, one tile after the other on one thread
             extra.append("threads=1")
-        r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
-        # the decompression again right after each audit: a shared host's speed drifts over
-        # a case's minutes, so each audit is compared with the two timings around it (the
-        # one before it and the one after it), not with timings taken minutes away
-        timings.append(decompress_seconds(paths["cloud"]))
-        print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, CPU "
-              f"{r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB, writeback after it "
-              f"{r['writeback_s']:.2f} s", flush=True)
+        runs = []
+        for _ in range(max(1, repeat) if mode == "tiled" else 1):
+            r = run_child(paths["cloud"], paths["line"], work / f"{label}-{mode}", extra)
+            # the decompression again right after each audit: a shared host's speed drifts
+            # over a case's minutes, so each audit is compared with the two timings around it
+            # (the one before it and the one after it), not with timings taken minutes away
+            timings.append(decompress_seconds(paths["cloud"]))
+            r["around"] = (timings[-2], timings[-1])
+            runs.append(r)
+            print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, "
+                  f"CPU {r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB, writeback "
+                  f"after it {r['writeback_s']:.2f} s", flush=True)
+        # repeated (a short line's seconds move with the host by as much as the lengths
+        # differ): the run of the median time stands for the mode, every figure its own
+        r = median_run(runs)
+        before, after = r["around"]
         spans = list(csv.DictReader(open(work / f"{label}-{mode}" / "spans.csv")))
         km = sum(float(s["span_length_m"] or 0) for s in spans
                  if s["wire_id"] == spans[0]["wire_id"]) / 1000.0 if spans else 0.0
@@ -339,8 +352,11 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             # the audits here run without the report (--no-report); what the report adds to
             # a default run, timed on this output (one profile per span)
             result["report_s"] = report_seconds(work / f"{label}-{mode}")
-            result["imports_s"], result["imports_skipped"] = imports_seconds(
-                r["loaded_modules"], work / f"{label}-imports.txt")
+            took = [imports_seconds(r["loaded_modules"], work / f"{label}-imports.txt")
+                    for _ in range(max(1, repeat))]
+            result["imports_runs_s"] = [t for t, _ in took]
+            result["imports_s"] = float(statistics.median(result["imports_runs_s"]))
+            result["imports_skipped"] = max(k for _, k in took)
             result["imports_modules"] = len(r["loaded_modules"])
             result["report_spans"] = len({row["span_id"] for row in spans})
         result[mode] = {"audit_s": r["audit_s"], "peak_rss_mb": r["peak_rss_mb"],
@@ -350,9 +366,10 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
                         "cpu_s": r["cpu_s"], "cpu_s_per_km": r["cpu_s"] / km if km else None,
                         "writeback_s": r["writeback_s"],
                         "workers_peak_mb": r["stages"]["classify"].get("worker_peak_rss_mb"),
-                        "decompress_around_s": (timings[-2][0], timings[-1][0]),
-                        "decompress_s": (timings[-2][0] + timings[-1][0]) / 2.0,
-                        "decompress_cpu_s": (timings[-2][2] + timings[-1][2]) / 2.0}
+                        "audit_runs_s": [x["audit_s"] for x in runs],
+                        "decompress_around_s": (before[0], after[0]),
+                        "decompress_s": (before[0] + after[0]) / 2.0,
+                        "decompress_cpu_s": (before[2] + after[2]) / 2.0}
     result["decompress_timings_s"] = [t[0] for t in timings]
     result["decompress_s"] = sum(t[0] for t in timings) / len(timings)
     result["decompress_cpu_s"] = sum(t[2] for t in timings) / len(timings)
@@ -377,6 +394,12 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
         result["threads_identical"] = same_outputs(work / f"{label}-serial",
                                                    work / f"{label}-tiled")
     return result
+
+
+def median_run(runs: list[dict]) -> dict:
+    """The run of the median audit time (of an even number, the lower middle one)."""
+    ordered = sorted(runs, key=lambda r: r["audit_s"])
+    return ordered[(len(ordered) - 1) // 2]
 
 
 def km_scaling(results: list[dict]) -> list[str]:
@@ -441,6 +464,13 @@ def print_results(results: list[dict]) -> None:
             times = ", ".join(f"{t:.2f}" for t in r["decompress_timings_s"])
             print(f"decompress {r['case']}: {times} s, before its first audit and after each "
                   "(each audit's ratios use the mean of the two timings around it)")
+    for r in results:
+        runs = (r.get("tiled") or {}).get("audit_runs_s", [])
+        if len(runs) > 1:
+            imports = ", ".join(f"{t:.2f}" for t in r.get("imports_runs_s", []))
+            print(f"repeated {r['case']} tiled: {', '.join(f'{t:.2f}' for t in runs)} s, the "
+                  f"median run stands in the tables; its imports {imports} s, the median "
+                  "taken")
     for r in results:
         # the read floor: the layers the audit decodes (classified.laz copies the others)
         print(f"floor {r['case']}: decoding the layers the audit reads (x/y, z, class, flags) "
@@ -538,6 +568,9 @@ def main(argv: list[str] | None = None) -> int:
                         "Dask cluster of 1 and of 2 workers (speed-ups of the 2 workers over "
                         "the one-thread run and over the 1-worker cluster), and the "
                         "longest --km line on the cluster (against 2 in-process threads)")
+    p.add_argument("--repeat", type=int, default=3,
+                   help="audits of each --km line (tiled) and timings of its imports; the "
+                        "median stands in the time-per-km table, all are printed")
     p.add_argument("--tiled-only-above", type=float, default=20e6,
                    help="skip the in-memory run above this many points")
     p.add_argument("--tiny", action="store_true", help="a seconds-long smoke run")
@@ -553,7 +586,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.tiny:
         results.append(case(cache, work, "tiny", 2, 1.5, list(MODES), 100_000))
         results.append(case(cache, work, "tiny-stream", 3, 1.0, ["tiled"], 100_000,
-                            tiles=50_000))
+                            tiles=50_000, repeat=2))
     for pts in args.points:
         density = 12.0
         spans = max(2, round(pts / (POINTS_PER_SPAN_PER_DENSITY * density)))
@@ -574,7 +607,7 @@ def main(argv: list[str] | None = None) -> int:
         # wire states of a long line, the workers' own reads)
         modes = ["tiled"] + (["dask"] if args.dask and km == max(args.km) else [])
         results.append(case(cache, work, f"k{km:g}km", spans, 4.0, modes, None,
-                            tiles=2_000_000))
+                            tiles=2_000_000, repeat=args.repeat))
         results[-1]["km_case"] = True
     print_results(results)
     if args.json:

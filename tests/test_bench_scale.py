@@ -21,7 +21,11 @@ def test_bench_scale_tiny_prints_ratios(tmp_path):
         assert f"ratio tiny {mode}: audit/decompress = " in out
     assert "classify/decompress = " in out and "peak RSS per point = " in out
     # every audit on a settled disk, the writeback it left timed beside it
-    assert out.count("writeback after it ") == 6
+    assert out.count("writeback after it ") == 7  # the streamed case's tiled run twice
+    # a repeated run (as the --km lines are): every time printed, the median standing
+    line = next(t for t in out.splitlines() if t.startswith("repeated tiny-stream tiled: "))
+    assert len(line.split(" s, ")[0].split(": ")[1].split(", ")) == 2
+    assert "the median run stands in the tables" in line
     # the Dask runs (1 and 2 workers) and the threaded in-process run must reproduce the
     # one-thread run exactly
     assert "in-process threads on tiny: speed-up " in out
@@ -77,3 +81,18 @@ def test_km_scaling_lines_match_numpy_polyfit():
     assert f"2.0 km {(4.0 - 0.6) / 2.03:.2f}, 10.2 km {(13.6 - 0.65) / 10.22:.2f}" in lines[2]
     slope, fixed = np.polyfit([2.03, 10.22, 50.18], [3.4, 12.95, 56.9], 1)
     assert f"{fixed:.2f} s fixed + {slope:.3f} s/km" in lines[2]
+
+
+def test_median_run_is_the_middle_run_by_time():
+    # reference: statistics.median_low over the audit times (the lower middle of an even count)
+    import importlib.util
+    import statistics
+
+    spec = importlib.util.spec_from_file_location("bench_scale", SCRIPT)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    for times in ([2.6, 1.9, 2.1], [3.0], [1.2, 0.9, 1.5, 1.1]):
+        runs = [{"audit_s": t, "id": k} for k, t in enumerate(times)]
+        chosen = bench.median_run(runs)
+        assert chosen["audit_s"] == statistics.median_low(times)
+        assert chosen is runs[times.index(chosen["audit_s"])]
