@@ -301,15 +301,15 @@ _CORRIDOR_KEEPS: dict[tuple[bytes, tuple[int, ...], float], Any] = {}
 _CORRIDOR_LOCK = threading.Lock()
 
 
-def corridor_keep(corridor: Corridor):
+def corridor_keep(corridor: Corridor) -> Any:
     """The corridor's ``keep`` test (:func:`~clearaudit.io.las.corridor_mask`), built once per
     process and corridor and shared by the split tasks that run there.
 
-    Building it rasterises the corridor over the polyline's box, a cost that grows with the
-    line; every split task building its own made the read stage grow with the square of the
-    line's length (the 50 km line has dozens of parts). The test is a pure function of the
-    polyline and the half-width, so the tasks of a run (and of the runs of a ``network``
-    campaign with the same corridor) may share it; the last few corridors are kept.
+    Building it rasterises the corridor over the polyline's box and sorts its segments into
+    buckets, a cost that grows with the line; every split task had paid it again (0.037 s a
+    part on the 10 km line's six parts), and longer lines have more parts. The test is a
+    pure function of the polyline and the half-width, so the tasks of a run may share it;
+    the last four corridors are kept.
     """
     line = np.ascontiguousarray(corridor.polyline_crs, dtype=np.float64)
     key = (line.tobytes(), line.shape, float(corridor.buffer_crs_units))

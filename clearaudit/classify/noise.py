@@ -87,8 +87,9 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
     points, as in a tile of a corridor), the points per voxel are counted over the whole block
     (``bincount``) and looked up directly. Otherwise the voxel numbers are sorted once (no
     inverse permutation): the sorted run lengths are the points per voxel, only voxels with
-    fewer than ``min_neighbours + 1`` points have their block counted (binary search of the 26 neighbours among the occupied voxels), and the points of
-    the few isolated voxels are found through a hashed bit table followed by an exact test.
+    fewer than ``min_neighbours + 1`` points have their block counted (binary search of the
+    26 neighbours among the occupied voxels), and the points of the few isolated voxels are
+    found through a hashed bit table followed by an exact test.
     """
     n = len(xyz)
     isolated = np.zeros(n, bool)
