@@ -54,10 +54,16 @@ def test_isolated_points_dense_and_sorted_counts_agree(voxel, monkeypatch):
     xyz = np.concatenate([rng.normal(size=(500, 3)) * [15, 4, 2],
                           rng.uniform(-40, 40, size=(30, 3))]) + [3.1e5, 5.7e6, 95.0]
     expected = _isolated_brute_force(xyz, voxel, 2)
+    dense_calls = []
+    dense = noise._isolated_dense
+    monkeypatch.setattr(noise, "_isolated_dense",
+                        lambda *a: dense_calls.append(1) or dense(*a))
     monkeypatch.setattr(noise, "_DENSE_MIN_VOXELS", 1 << 40)
     np.testing.assert_array_equal(isolated_points(xyz, voxel, 2), expected)
+    assert len(dense_calls) == 1  # the dense count ran
     monkeypatch.setattr(noise, "_DENSE_MIN_VOXELS", 0)
     np.testing.assert_array_equal(isolated_points(xyz, voxel, 2), expected)
+    assert len(dense_calls) == 1  # the sorted form ran
 
 
 def test_compact_voxel_keys_are_one_number_per_voxel():

@@ -96,8 +96,9 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
     if n == 0 or min_neighbours <= 0:
         return isolated
     keys, (n_x, n_y, n_z) = compact_voxel_keys(xyz, voxel)
-    if n_x * n_y * n_z <= max(2 * n, _DENSE_MIN_VOXELS):
-        return _isolated_dense(keys, n_x * n_y * n_z, n_y, n_z, min_neighbours)
+    n_voxels = n_x * n_y * n_z
+    if n_voxels <= max(2 * n, _DENSE_MIN_VOXELS):
+        return _isolated_dense(keys, n_voxels, n_y, n_z, min_neighbours)
     ordered = np.sort(keys)
     first = np.empty(n, bool)
     first[0] = True
@@ -114,9 +115,7 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
         return isolated
     k = occupied[sparse].astype(np.int64)
     total = np.zeros(len(k), dtype=np.int64)
-    d = np.array([-1, 0, 1], dtype=np.int64)
-    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
-    for off in ((di * n_y + dj) * n_z + dk).ravel():
+    for off in _block_offsets(n_y, n_z):
         target = k + off
         pos = np.clip(np.searchsorted(occupied, target), 0, len(occupied) - 1)
         found = occupied[pos] == target
@@ -141,6 +140,14 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
     return isolated
 
 
+def _block_offsets(n_y: int, n_z: int) -> np.ndarray:
+    """Voxel-number offsets of the 27 voxels of a 3 x 3 x 3 block (the centre's 0 included),
+    for numbers ``(i * n_y + j) * n_z + k`` (:func:`compact_voxel_keys`)."""
+    d = np.array([-1, 0, 1], dtype=np.int64)
+    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
+    return ((di * n_y + dj) * n_z + dk).ravel()
+
+
 def _isolated_dense(keys: np.ndarray, n_voxels: int, n_y: int, n_z: int,
                     min_neighbours: int) -> np.ndarray:
     """:func:`isolated_points` on a block of few voxels: a count per voxel of the whole block.
@@ -152,9 +159,7 @@ def _isolated_dense(keys: np.ndarray, n_voxels: int, n_y: int, n_z: int,
     # only voxels that are themselves sparse need their block counted
     sparse = np.flatnonzero((counts > 0) & (counts - 1 < min_neighbours))
     total = np.zeros(len(sparse), dtype=np.int64)
-    d = np.array([-1, 0, 1], dtype=np.int64)
-    di, dj, dk = np.meshgrid(d, d, d, indexing="ij")
-    for off in ((di * n_y + dj) * n_z + dk).ravel():
+    for off in _block_offsets(n_y, n_z):
         total += counts[sparse + off]
     del counts
     lonely = np.zeros(n_voxels, bool)
