@@ -359,3 +359,72 @@ def test_plan_cells_equal_the_numpy_form(dtype):
     np.testing.assert_array_equal(occupied.view(bool), ref_occupied)
     with pytest.raises(ValueError):
         plan_cells(xy, 0.0, 0.0, 1.0, nx, ny, key[:-1], occupied)
+
+
+def _curve_window_numpy(curves, origin, axis, reach_m, bin_m):
+    """The station-bin windows as numpy and scipy compute them (the form the compiled passes
+    replaced): longest 3-D segment, stations and offsets, numpy.minimum.at into the bins and
+    scipy.ndimage's sliding extremes with an infinite border."""
+    from scipy.ndimage import maximum_filter1d, minimum_filter1d
+
+    seg = max((float(np.max(np.linalg.norm(np.diff(c, axis=0), axis=1)))
+               for c in curves if len(c) > 1), default=0.0)
+    curve = np.concatenate(curves)
+    dx, dy = curve[:, 0] - origin[0], curve[:, 1] - origin[1]
+    u, v = dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]
+    ring = int(math.ceil((reach_m + seg + 1e-6) / bin_m)) + 1
+    b = np.floor(u / bin_m).astype(np.int64)
+    b0 = int(b.min()) - ring - 1
+    nb = int(b.max()) - b0 + ring + 2
+    out = []
+    for values in (v, curve[:, 2]):
+        lo, hi = np.full(nb, np.inf), np.full(nb, -np.inf)
+        np.minimum.at(lo, b - b0, values)
+        np.maximum.at(hi, b - b0, values)
+        out += [minimum_filter1d(lo, 2 * ring + 1, mode="constant", cval=np.inf),
+                maximum_filter1d(hi, 2 * ring + 1, mode="constant", cval=-np.inf)]
+    return b0, nb, ring, b - b0, out
+
+
+def test_curve_windows_equal_the_numpy_form():
+    # reference: numpy's ufunc.at and scipy.ndimage's minimum/maximum_filter1d (the form the
+    # compiled passes replaced), value for value, for one and several curves (their
+    # segments never join two curves), single-vertex curves, bins of several widths and
+    # windows from none to wider than the curve; and the sliding extremes by brute force
+    from clearaudit.audit.engine import _EPS_M, _CurveWindow
+
+    assert _EPS_M == 1e-6
+    rng = np.random.default_rng(17)
+    for trial in range(400):
+        curves = []
+        for _ in range(int(rng.integers(1, 4))):
+            m = int(rng.integers(1, 200))
+            x = np.cumsum(rng.uniform(0.0, 2.0, m)) + rng.uniform(-50.0, 50.0)
+            c = np.column_stack([x, rng.normal(0.0, 3.0, m) + 0.1 * x,
+                                 20.0 + rng.normal(0.0, 2.0, m)])
+            curves.append(c[:, [1, 0, 2]] if trial % 3 == 0 else c)
+        angle = rng.uniform(0.0, 2.0 * np.pi)
+        origin, axis = rng.normal(0.0, 20.0, 2), np.array([math.cos(angle), math.sin(angle)])
+        reach, bin_m = float(rng.choice([0.0, 0.3, 2.0, 10.0, 45.0])), \
+            float(rng.choice([0.1, 0.5, 1.0]))
+        w = _CurveWindow(curves if len(curves) > 1 else curves[0], origin, axis, reach, bin_m)
+        b0, nb, ring, bins, ref = _curve_window_numpy(curves, origin, axis, reach, bin_m)
+        assert (w.b0, w.nb) == (b0, nb)
+        for got, want in zip((w.v_min, w.v_max, w.z_min, w.z_max), ref, strict=True):
+            np.testing.assert_array_equal(got, want)
+        if trial % 40 == 0:  # the sliding extremes by their definition
+            v = np.concatenate([c for c in curves])
+            dx, dy = v[:, 0] - origin[0], v[:, 1] - origin[1]
+            off = dy * axis[0] - dx * axis[1]
+            near = np.abs(np.arange(nb)[:, None] - bins[None, :]) <= ring
+            np.testing.assert_array_equal(
+                w.v_min, np.where(near.any(1), np.where(near, off, np.inf).min(1), np.inf))
+            np.testing.assert_array_equal(
+                w.z_max, np.where(near.any(1), np.where(near, v[:, 2], -np.inf).max(1),
+                                  -np.inf))
+    # a vertex that is not finite: the compiled pass declines and the numpy form decides
+    from clearaudit.audit._polyline import curve_frame
+
+    bad = np.array([[0.0, 0.0, 1.0], [1.0, np.nan, 1.0]])
+    assert curve_frame(bad, np.zeros(1, dtype=np.int64), 0.0, 0.0, 1.0, 0.0, 0.5, np.empty(2),
+                       np.empty(2), np.empty(2, dtype=np.int64)) is None

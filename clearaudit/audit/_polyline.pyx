@@ -7,8 +7,9 @@ setup.py), so in plan the distances, nearest points and parameters are the same 
 (numpy sums three products in an order of its own, so the package keeps the numpy form for
 3-D); the loops leave the GIL.
 """
-from libc.math cimport floor, sqrt, INFINITY
+from libc.math cimport floor, isfinite, sqrt, INFINITY
 from libc.stdint cimport int32_t, int64_t
+from libc.stdlib cimport free, malloc
 
 ctypedef fused cell_t:
     int32_t
@@ -174,3 +175,134 @@ def plan_cells(const double[:, :] xy, double lo0, double lo1, double inv_cell,
             k += <int64_t>t
             key[p] = <cell_t>k
             occupied[k] = 1
+
+
+def curve_frame(const double[:, :] pts, const int64_t[::1] starts, double ox, double oy,
+                double ax, double ay, double bin_m, double[::1] u, double[::1] v,
+                int64_t[::1] b):
+    """Station ``u`` and offset ``v`` of curve vertices along and across a plan axis, their
+    station bins ``b = floor(u / bin_m)``, and the longest segment of the curves.
+
+    ``pts`` holds several curves one after the other, curve ``k`` from row ``starts[k]``
+    (``starts[0] == 0``, ascending); segments join the rows of one curve only. The
+    operations of the numpy form (``audit.engine._frame``, ``numpy.linalg.norm`` of
+    ``numpy.diff``), each rounded on its own, so the same numbers.
+
+    Returns
+    -------
+    (longest segment [m], smallest bin, largest bin), or None when a vertex is not finite
+    (nothing else is then computed)
+    """
+    cdef Py_ssize_t n = pts.shape[0], i, k = 1, nk = starts.shape[0]
+    cdef double dx, dy, dz, s, seg = 0.0
+    cdef int64_t lo = 0, hi = 0
+    cdef bint finite = True
+    if pts.shape[1] != 3 or u.shape[0] != n or v.shape[0] != n or b.shape[0] != n or n < 1 \
+            or nk < 1 or starts[0] != 0:
+        raise ValueError("curve_frame: mismatched shapes")
+    with nogil:
+        for i in range(n):
+            if not (isfinite(pts[i, 0]) and isfinite(pts[i, 1]) and isfinite(pts[i, 2])):
+                finite = False
+                break
+        if not finite:
+            with gil:
+                return None
+        for i in range(n):
+            dx = pts[i, 0] - ox
+            dy = pts[i, 1] - oy
+            u[i] = dx * ax + dy * ay
+            v[i] = dy * ax - dx * ay
+            b[i] = <int64_t>floor(u[i] / bin_m)
+            if i == 0 or b[i] < lo:
+                lo = b[i]
+            if i == 0 or b[i] > hi:
+                hi = b[i]
+            while k < nk and starts[k] <= i:
+                k += 1
+            if i > starts[k - 1]:  # a segment within curve k - 1
+                dx = pts[i, 0] - pts[i - 1, 0]
+                dy = pts[i, 1] - pts[i - 1, 1]
+                dz = pts[i, 2] - pts[i - 1, 2]
+                s = sqrt(dx * dx + dy * dy + dz * dz)
+                if s > seg:
+                    seg = s
+    return seg, lo, hi
+
+
+
+cdef void _slide(const double *src, Py_ssize_t nb, Py_ssize_t r, bint largest, double *out,
+                 double *pad, double *fwd, double *bwd) noexcept nogil:
+    """``out[i]`` = the least (``largest``: the greatest) of ``src[i - r .. i + r]``, the
+    values beyond both ends counting as +inf (-inf): van Herk's and Gil & Werman's running
+    extremes over blocks of the window's width (linear in ``nb`` whatever ``r``)."""
+    cdef Py_ssize_t w = 2 * r + 1, m = nb + 2 * r, k, i
+    cdef double edge = -INFINITY if largest else INFINITY
+    for k in range(m):
+        pad[k] = src[k - r] if r <= k < nb + r else edge
+    for k in range(m):
+        if k % w == 0 or (fwd[k - 1] < pad[k] if largest else fwd[k - 1] > pad[k]):
+            fwd[k] = pad[k]
+        else:
+            fwd[k] = fwd[k - 1]
+    for k in range(m - 1, -1, -1):
+        if k == m - 1 or (k + 1) % w == 0 \
+                or (bwd[k + 1] < pad[k] if largest else bwd[k + 1] > pad[k]):
+            bwd[k] = pad[k]
+        else:
+            bwd[k] = bwd[k + 1]
+    for i in range(nb):
+        # the window pad[i .. i + w - 1] spans the end of one block and the start of the next
+        if largest:
+            out[i] = bwd[i] if bwd[i] > fwd[i + w - 1] else fwd[i + w - 1]
+        else:
+            out[i] = bwd[i] if bwd[i] < fwd[i + w - 1] else fwd[i + w - 1]
+
+
+def curve_window(const int64_t[::1] b, const double[::1] v, const double[:] z, int64_t b0,
+                 Py_ssize_t ring, double[::1] v_min, double[::1] v_max, double[::1] z_min,
+                 double[::1] z_max):
+    """Per bin the range of the vertices' ``v`` and ``z`` over the bins within ``ring`` of
+    it (vertex bins ``b - b0``; ``inf`` / ``-inf`` where there is none): the values of
+    ``numpy.minimum.at`` into the bins followed by ``scipy.ndimage.minimum_filter1d`` of
+    size ``2 * ring + 1`` with an infinite border (maxima likewise), for finite ``v``, ``z``.
+    """
+    cdef Py_ssize_t n = b.shape[0], nb = v_min.shape[0], i, j, m
+    if v.shape[0] != n or z.shape[0] != n or v_max.shape[0] != nb or z_min.shape[0] != nb \
+            or z_max.shape[0] != nb or ring < 0 or nb < 1:
+        raise ValueError("curve_window: mismatched shapes")
+    for i in range(n):
+        if b[i] - b0 < 0 or b[i] - b0 >= nb:
+            raise ValueError("curve_window: a vertex outside the bins")
+    m = nb + 2 * ring
+    cdef double *ext = <double *> malloc((4 * nb + 3 * m) * sizeof(double))
+    if ext == NULL:
+        raise MemoryError()
+    cdef double *lo_v = ext
+    cdef double *hi_v = ext + nb
+    cdef double *lo_z = ext + 2 * nb
+    cdef double *hi_z = ext + 3 * nb
+    cdef double *pad = ext + 4 * nb
+    cdef double *fwd = pad + m
+    cdef double *bwd = fwd + m
+    with nogil:
+        for j in range(nb):
+            lo_v[j] = INFINITY
+            hi_v[j] = -INFINITY
+            lo_z[j] = INFINITY
+            hi_z[j] = -INFINITY
+        for i in range(n):
+            j = b[i] - b0
+            if v[i] < lo_v[j]:
+                lo_v[j] = v[i]
+            if v[i] > hi_v[j]:
+                hi_v[j] = v[i]
+            if z[i] < lo_z[j]:
+                lo_z[j] = z[i]
+            if z[i] > hi_z[j]:
+                hi_z[j] = z[i]
+        _slide(lo_v, nb, ring, False, &v_min[0], pad, fwd, bwd)
+        _slide(hi_v, nb, ring, True, &v_max[0], pad, fwd, bwd)
+        _slide(lo_z, nb, ring, False, &z_min[0], pad, fwd, bwd)
+        _slide(hi_z, nb, ring, True, &z_max[0], pad, fwd, bwd)
+    free(ext)

@@ -48,7 +48,7 @@ from clearaudit.cloud import (
 )
 from clearaudit.errors import InputError
 
-from ._polyline import plan_cells
+from ._polyline import curve_frame, curve_window, plan_cells
 from .clearance import (
     Findings,
     building_envelope,
@@ -1037,6 +1037,8 @@ def _plan_samples(curves: list[np.ndarray], step_m: float = 4.0) -> tuple[cKDTre
 _EPS_M = 1e-6
 #: Station bin of :class:`_CurveWindow`. [m]
 _BIN_M = 0.5
+#: :func:`curve_frame`'s curve starts for a single curve
+_ONE_CURVE = np.zeros(1, dtype=np.int64)
 
 
 class _PlanGrid:
@@ -1198,17 +1200,42 @@ class _CurveWindow:
                  axis: np.ndarray, reach_m: float, bin_m: float = _BIN_M):
         bin_m = float(bin_m)
         curves = curve if isinstance(curve, list) else [curve]
+        # several curves: the union of their windows
+        curve = np.ascontiguousarray(curves[0] if len(curves) == 1 else np.concatenate(curves),
+                                     dtype=np.float64)
+        self.bin_m = bin_m
+        self.reach_m = reach_m
+        # one compiled pass for the vertices' stations, offsets and bins and the longest
+        # segment, one for the ranges per bin (the same numbers as the numpy form)
+        n = len(curve)
+        u, v, b = np.empty(n), np.empty(n), np.empty(n, dtype=np.int64)
+        starts = _ONE_CURVE if len(curves) == 1 else \
+            np.cumsum([0] + [len(c) for c in curves[:-1]], dtype=np.int64)
+        got = curve_frame(curve, starts, float(origin[0]), float(origin[1]), float(axis[0]),
+                          float(axis[1]), bin_m, u, v, b)
+        if got is None:  # a vertex not finite: the numpy form decides, as it always did
+            self._numpy_form(curves, curve, origin, axis, reach_m, bin_m)
+            return
+        seg, b_lo, b_hi = got
+        ring = int(math.ceil((reach_m + seg + _EPS_M) / bin_m)) + 1
+        self.b0 = int(b_lo) - ring - 1
+        self.nb = int(b_hi) - self.b0 + ring + 2
+        self.v_min, self.v_max = np.empty(self.nb), np.empty(self.nb)
+        self.z_min, self.z_max = np.empty(self.nb), np.empty(self.nb)
+        curve_window(b, v, curve[:, 2], self.b0, ring, self.v_min, self.v_max, self.z_min,
+                     self.z_max)
+
+    def _numpy_form(self, curves: list[np.ndarray], curve: np.ndarray, origin: np.ndarray,
+                    axis: np.ndarray, reach_m: float, bin_m: float) -> None:
+        """The windows in numpy (the compiled passes' reference)."""
         seg = max((float(np.max(np.linalg.norm(np.diff(c, axis=0), axis=1)))
                    for c in curves if len(c) > 1), default=0.0)
-        curve = np.concatenate(curves)        # several curves: the union of their windows
         u, v = _frame(curve[:, :2], origin, axis)
         ring = int(math.ceil((reach_m + seg + _EPS_M) / bin_m)) + 1
         b = np.floor(u / bin_m).astype(np.int64)
         self.b0 = int(b.min()) - ring - 1
         self.nb = int(b.max()) - self.b0 + ring + 2
         b = b - self.b0
-        self.bin_m = bin_m
-        self.reach_m = reach_m
         size = 2 * ring + 1
         self.v_min, self.v_max = self._window(b, v, size)
         self.z_min, self.z_max = self._window(b, curve[:, 2], size)
