@@ -830,11 +830,12 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                 paths = [p.absolute() for p in paths]
                 work = work.absolute()
             engine.check_access(paths, work)
-            # the classifier's and the line model's modules (scipy.ndimage, scipy.optimize
-            # ...) imported on a thread of their own while the inputs are read, not by the
-            # first tiles of the classify stage or on the driver's path
-            warm = _Background(partial(_import_all, ("clearaudit.classify.core",
-                                                     "clearaudit.model.line")))
+            # the classifier's modules (scipy.ndimage, scipy.sparse ...) imported on a thread
+            # of their own while the inputs are read, not by the first tiles of the classify
+            # stage; the line model's (scipy.optimize ...) while the tiles are classified:
+            # the read stage's decoder holds the GIL nearly all the time (1.6 of its 1.75 s
+            # on p10M), the classify tiles less than half of theirs
+            warm = _Background(partial(_import_all, ("clearaudit.classify.core",)))
             # ---- read: split every input once into cell buckets (parallel over ranges)
             # (glibc's freed blocks kept for reuse while this process splits: the tile
             # stages' peaks would grow with the survey, see tiling.kept_heap)
@@ -954,6 +955,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
 
             # ---- classify: one task per tile
             warm.result()
+            warm = _Background(partial(_import_all, ("clearaudit.model.line",)))
             with record.stage("classify", engine=engine):
                 task = bar.add_task("classify", total=kept, rate="")
                 progress = _stage_progress(bar, task)
@@ -982,6 +984,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                                                                         for r in results)}
 
             # ---- model: from the gathered wire / structure / insulator points
+            warm.result()
             with record.stage("model", engine=engine):
                 from .model import build_line_model
                 from .model.line import fit_jobs
