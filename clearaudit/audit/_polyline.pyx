@@ -230,7 +230,6 @@ def curve_frame(const double[:, :] pts, const int64_t[::1] starts, double ox, do
     return seg, lo, hi
 
 
-
 cdef void _slide(const double *src, Py_ssize_t nb, Py_ssize_t r, bint largest, double *out,
                  double *pad, double *fwd, double *bwd) noexcept nogil:
     """``out[i]`` = the least (``largest``: the greatest) of ``src[i - r .. i + r]``, the
