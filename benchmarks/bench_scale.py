@@ -342,8 +342,8 @@ def case(cache: Path, work: Path, label: str, n_spans: int, density: float, mode
             print(f"audited {label} {mode}: {r['audit_s']:.1f} s (wall {r['wall_s']:.1f} s, "
                   f"CPU {r['cpu_s']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB, writeback "
                   f"after it {r['writeback_s']:.2f} s", flush=True)
-        # repeated (a short line's seconds move with the host by as much as the lengths
-        # differ): the run of the median time stands for the mode, every figure its own
+        # repeated (a shared host moves a run by more than the steps measured): the run of
+        # the median time stands for the mode, every figure its own
         r = median_run(runs)
         before, after = r["around"]
         spans = list(csv.DictReader(open(work / f"{label}-{mode}" / "spans.csv")))

@@ -955,7 +955,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
 
             # ---- classify: one task per tile
             warm.result()
-            warm = _Background(partial(_import_all, ("clearaudit.model.line",)))
+            warm_model = _Background(partial(_import_all, ("clearaudit.model.line",)))
             with record.stage("classify", engine=engine):
                 task = bar.add_task("classify", total=kept, rate="")
                 progress = _stage_progress(bar, task)
@@ -984,7 +984,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                                                                         for r in results)}
 
             # ---- model: from the gathered wire / structure / insulator points
-            warm.result()
+            warm_model.result()
             with record.stage("model", engine=engine):
                 from .model import build_line_model
                 from .model.line import fit_jobs

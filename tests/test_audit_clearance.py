@@ -422,9 +422,11 @@ def test_curve_windows_equal_the_numpy_form():
             np.testing.assert_array_equal(
                 w.z_max, np.where(near.any(1), np.where(near, v[:, 2], -np.inf).max(1),
                                   -np.inf))
-    # a vertex that is not finite: the compiled pass declines and the numpy form decides
+    # a vertex that is not finite: the compiled pass declines and the window says so
     from clearaudit.audit._polyline import curve_frame
 
     bad = np.array([[0.0, 0.0, 1.0], [1.0, np.nan, 1.0]])
     assert curve_frame(bad, np.zeros(1, dtype=np.int64), 0.0, 0.0, 1.0, 0.0, 0.5, np.empty(2),
                        np.empty(2), np.empty(2, dtype=np.int64)) is None
+    with pytest.raises(ValueError, match="not finite"):
+        _CurveWindow(bad, np.zeros(2), np.array([1.0, 0.0]), 1.0)

@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.ndimage import maximum_filter, maximum_filter1d, minimum_filter1d
+from scipy.ndimage import maximum_filter
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
@@ -1206,16 +1206,16 @@ class _CurveWindow:
         self.bin_m = bin_m
         self.reach_m = reach_m
         # one compiled pass for the vertices' stations, offsets and bins and the longest
-        # segment, one for the ranges per bin (the same numbers as the numpy form)
+        # segment, one for the ranges per bin (the numbers of numpy.ufunc.at into the bins
+        # and scipy.ndimage's 1-D filters: tests/test_audit_clearance.py)
         n = len(curve)
         u, v, b = np.empty(n), np.empty(n), np.empty(n, dtype=np.int64)
         starts = _ONE_CURVE if len(curves) == 1 else \
             np.cumsum([0] + [len(c) for c in curves[:-1]], dtype=np.int64)
         got = curve_frame(curve, starts, float(origin[0]), float(origin[1]), float(axis[0]),
                           float(axis[1]), bin_m, u, v, b)
-        if got is None:  # a vertex not finite: the numpy form decides, as it always did
-            self._numpy_form(curves, curve, origin, axis, reach_m, bin_m)
-            return
+        if got is None:
+            raise ValueError("a wire curve has a vertex that is not finite")
         seg, b_lo, b_hi = got
         ring = int(math.ceil((reach_m + seg + _EPS_M) / bin_m)) + 1
         self.b0 = int(b_lo) - ring - 1
@@ -1224,29 +1224,6 @@ class _CurveWindow:
         self.z_min, self.z_max = np.empty(self.nb), np.empty(self.nb)
         curve_window(b, v, curve[:, 2], self.b0, ring, self.v_min, self.v_max, self.z_min,
                      self.z_max)
-
-    def _numpy_form(self, curves: list[np.ndarray], curve: np.ndarray, origin: np.ndarray,
-                    axis: np.ndarray, reach_m: float, bin_m: float) -> None:
-        """The windows in numpy (the compiled passes' reference)."""
-        seg = max((float(np.max(np.linalg.norm(np.diff(c, axis=0), axis=1)))
-                   for c in curves if len(c) > 1), default=0.0)
-        u, v = _frame(curve[:, :2], origin, axis)
-        ring = int(math.ceil((reach_m + seg + _EPS_M) / bin_m)) + 1
-        b = np.floor(u / bin_m).astype(np.int64)
-        self.b0 = int(b.min()) - ring - 1
-        self.nb = int(b.max()) - self.b0 + ring + 2
-        b = b - self.b0
-        size = 2 * ring + 1
-        self.v_min, self.v_max = self._window(b, v, size)
-        self.z_min, self.z_max = self._window(b, curve[:, 2], size)
-
-    def _window(self, b, values, size):
-        lo = np.full(self.nb, np.inf)
-        hi = np.full(self.nb, -np.inf)
-        np.minimum.at(lo, b, values)
-        np.maximum.at(hi, b, values)
-        return (minimum_filter1d(lo, size, mode="constant", cval=np.inf),
-                maximum_filter1d(hi, size, mode="constant", cval=-np.inf))
 
     def bins(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Bin of each station (clipped) and whether it is inside the curve's bins; ``u`` as
