@@ -58,7 +58,7 @@ def test_read_range_matches_laspy_and_read_cloud(corridor):
     np.testing.assert_array_equal(cloud.xyz[start:stop], xyz)
 
 
-def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
+def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path, monkeypatch):
     setup = read_setup(corridor["cloud"], hashes=False)
     grid = Grid(float(setup.header_min[0]), float(setup.header_min[1]), 100.0)
     cells: dict = {}
@@ -91,6 +91,28 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path):
         assert got.dtype == first.dtype and got.tobytes() == first[pick].tobytes()
     with pytest.raises(IndexError):
         read_cells_at(tmp_path, tiles[0].cells, np.array([len(first)]))
+    # the records' fields read in steps without the records (read_points): numpy's field
+    # views of read_cells, in steps smaller than a file, of one record and of whole files
+    import clearaudit.tiling as tiling
+
+    for step in (1000, 1, tiling.READ_STEP_RECORDS):
+        monkeypatch.setattr(tiling, "READ_STEP_RECORDS", step)
+        for then in (None, second[::7], second[:0]):
+            ref = read_cells(tmp_path, tiles[0].cells, then=then)
+            got = tiling.read_points(tmp_path, tiles[0].cells, then=then)
+            assert len(got) == len(ref) and got.xyz.flags.c_contiguous
+            assert got.xyz.shape == (len(ref), 3) and got.cls.dtype == np.uint8
+            np.testing.assert_array_equal(got.xyz, ref["xyz"])
+            np.testing.assert_array_equal(got.cls, ref["cls"])
+            np.testing.assert_array_equal(got.key, ref["key"])
+        if step == 1:
+            break  # one record a step: the first tile's first cells are enough
+    for rec in (second, second[:0], second[::3]):
+        got = tiling.points_of(rec)
+        np.testing.assert_array_equal(got.xyz, rec["xyz"])
+        np.testing.assert_array_equal(got.cls, rec["cls"])
+        np.testing.assert_array_equal(got.key, rec["key"])
+    assert len(tiling.read_points(tmp_path, ())) == 0
 
 
 def test_tasks_never_bring_back_a_removed_work_folder(corridor, tmp_path):
