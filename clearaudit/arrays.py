@@ -42,6 +42,30 @@ def take_rows(a: np.ndarray, index: np.ndarray) -> np.ndarray:
     return np.take(a, positions(index, len(a)), axis=0)
 
 
+def take_columns(xyz: np.ndarray, index: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``xyz[index, 0]``, ``xyz[index, 1]``, ``xyz[index, 2]`` of an (n, 3) float64 array (row
+    positions from 0 to n - 1, or a boolean mask): three new contiguous columns, the same
+    values.
+
+    One compiled pass gathers each row's three values straight into the columns (numpy would
+    gather the rows into an (m, 3) array and then copy each strided column out of it: on
+    1.2 M ground points of a tile 32 ms against about 5).
+    """
+    from .classify.kernels import gather_columns
+
+    xyz = np.asarray(xyz)
+    if xyz.ndim != 2 or xyz.shape[1] != 3:
+        raise ValueError(f"take_columns expects an (n, 3) array, not shape {xyz.shape}")
+    rows = positions(index, len(xyz))
+    if xyz.dtype != np.float64 or rows.dtype.kind not in "iu":
+        return tuple(np.ascontiguousarray(xyz[rows, c]) for c in range(3))  # type: ignore[return-value]
+    if rows.dtype not in (np.int32, np.int64):
+        rows = rows.astype(np.int64)
+    out = tuple(np.empty(len(rows)) for _ in range(3))
+    gather_columns(xyz, np.ascontiguousarray(rows), *out)  # IndexError for a row outside
+    return out  # type: ignore[return-value]
+
+
 def unique_rows(a: np.ndarray, *, return_index: bool = False, return_inverse: bool = False
                 ) -> np.ndarray | tuple[np.ndarray, ...]:
     """``numpy.unique(a, axis=0, ...)`` for a 2-D integer array: the same rows, first

@@ -104,6 +104,32 @@ def test_unique_rows_equals_numpy_unique_along_rows(dtype):
     assert unique_rows(empty).shape == np.unique(empty, axis=0).shape
 
 
+def test_take_columns_equals_numpy_fancy_indexing_per_column():
+    # reference: numpy's own indexing a[index, c] / a[mask, c], column by column
+    from clearaudit.arrays import take_columns
+
+    rng = np.random.default_rng(12)
+    a = rng.normal(size=(5_003, 3)) * 100
+    idx = rng.integers(0, len(a), 2_000)
+    mask = rng.random(len(a)) < 0.5
+    for arr in (a, a[::2], np.asfortranarray(a), a.astype(np.float32)):
+        i = idx[idx < len(arr)]
+        for index in (i, i.astype(np.int32), np.sort(i), i[:0], mask[:len(arr)],
+                      np.arange(len(arr))):
+            got = take_columns(arr, index)
+            assert len(got) == 3
+            for c in range(3):
+                want = arr[index, c]
+                assert got[c].dtype == want.dtype and got[c].shape == want.shape
+                assert got[c].flags["C_CONTIGUOUS"]
+                np.testing.assert_array_equal(got[c], want)
+    for bad in (np.array([len(a)]), np.array([-1]), mask[:-1]):
+        with pytest.raises(IndexError):
+            take_columns(a, bad)
+    with pytest.raises(ValueError, match="n, 3"):
+        take_columns(a[:, :2], idx)
+
+
 def test_take_rows_equals_numpy_fancy_and_boolean_indexing():
     # reference: numpy's own indexing a[index] / a[mask]
     from clearaudit.arrays import take_rows

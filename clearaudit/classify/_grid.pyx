@@ -474,6 +474,27 @@ def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out,
             out[c] = v
 
 
+def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,
+                   double[::1] y, double[::1] z):
+    """``x, y, z = xyz[rows, 0], xyz[rows, 1], xyz[rows, 2]`` in one pass: the rows' three
+    columns gathered straight into their own arrays (no gathered (n, 3) array between).
+
+    ``rows`` holds row numbers in ``[0, len(xyz))``; ``x``, ``y``, ``z`` one entry per row.
+    """
+    cdef Py_ssize_t n = rows.shape[0], m = xyz.shape[0], i, r
+    if xyz.shape[1] != 3:
+        raise ValueError("gather_columns: xyz must have three columns")
+    if x.shape[0] != n or y.shape[0] != n or z.shape[0] != n:
+        raise ValueError("gather_columns: x, y and z need one entry per row")
+    _check_cells(rows, m)
+    with nogil:
+        for i in range(n):
+            r = rows[i]
+            x[i] = xyz[r, 0]
+            y[i] = xyz[r, 1]
+            z[i] = xyz[r, 2]
+
+
 def route_records(const int64_t[::1] cell, Py_ssize_t n_cells, const double[:, ::1] xyz,
                   const unsigned char[::1] cls, const int64_t[::1] key,
                   unsigned char[:, ::1] out, int64_t[::1] first):

@@ -13,6 +13,7 @@ try:
         cell_sums3,
         chunk_points,
         corridor_exact,
+        gather_columns,
         jacobi_sweep,
         median_f32,
         plane_residual_sums,
@@ -32,7 +33,7 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
         f"clearaudit's compiled kernels are missing or were built for another Python ({exc}); "
         "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
 
-__all__ = ["bilinear", "cell_extreme", "cell_sums3", "chunk_points", "corridor_exact", "jacobi_sweep", "median_f32", "moments",
+__all__ = ["bilinear", "cell_extreme", "cell_sums3", "chunk_points", "corridor_exact", "gather_columns", "jacobi_sweep", "median_f32", "moments",
            "plane_residual_sums", "plane_solve", "plane_sums", "raster_state", "record_int_bounds",
            "records_in_box",
            "route_records", "sym3_pairs", "sym3_prepare",

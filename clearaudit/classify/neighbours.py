@@ -26,7 +26,7 @@ import math
 
 import numpy as np
 
-from ..arrays import column_bounds, take_rows
+from ..arrays import column_bounds, take_columns
 from .kernels import moments as _moments
 
 _MAX_CELLS = 2 ** 62  # cell numbers are int64
@@ -73,9 +73,7 @@ class NeighbourGrid:
         self.dims = dims
         self.order = order  # sorted position → point index
         self.key = key[order]
-        sorted_pts = take_rows(pts, order)  # one gather of the rows (np.take: faster)
-        self.x, self.y, self.z = (np.ascontiguousarray(sorted_pts[:, c]) for c in range(3))
-        del sorted_pts
+        self.x, self.y, self.z = take_columns(pts, order)  # one gather, straight into columns
 
     def walk(self, rows: np.ndarray | None) -> tuple[np.ndarray, np.ndarray | None]:
         """The order to visit the points ``rows`` (None: all) in: cell by cell.

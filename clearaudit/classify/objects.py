@@ -35,7 +35,7 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import connected_components
 
-from ..arrays import take_rows
+from ..arrays import take_columns
 from ..cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -1104,11 +1104,10 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         raise ValueError("find_ground_roofs needs a positive cell, 0 < min_area <= max_area "
                          "and a ring of at least 2 cells")
     xyz = np.asarray(xyz, dtype=np.float64)
-    # the chosen rows gathered once (np.take: 3-5 times faster than a fancy index per
-    # column); x and y are copies, shifted in place below
-    pts = xyz if which is None else take_rows(xyz, which)
-    x, y, z = (np.array(pts[:, c]) for c in range(3))
-    del pts
+    # the chosen rows' columns gathered in one pass (arrays.take_columns); x and y are
+    # copies, shifted in place below
+    x, y, z = (take_columns(xyz, which) if which is not None
+               else (np.array(xyz[:, c]) for c in range(3)))
     n = len(z)
     grid = _anchored_frame(x, y, cell_m, ring_cells + 2)
     none = np.zeros(0, np.int64)
