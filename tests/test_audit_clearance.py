@@ -324,6 +324,41 @@ def test_compiled_nearest_segment_equals_the_numpy_form():
     assert np.all(d <= vertex + 1e-12)
 
 
+def test_station_search_finds_the_nearest_vertex_as_a_scan_of_every_vertex():
+    # reference: brute force, every point against every vertex with numpy (argmin: the first
+    # of equally near vertices, the compiled scan's rule); on near-straight wires, random
+    # walks that turn back, closed loops and lattice points with many exact ties
+    from clearaudit.audit.clearance import _station_nearest
+
+    rng = np.random.default_rng(23)
+    for case in range(200):
+        k = int(rng.integers(2, 700))
+        kind = case % 4
+        if kind == 0:
+            t = np.linspace(0.0, rng.uniform(50, 600), k)
+            verts = np.column_stack([t, 0.01 * rng.normal(size=k)])
+        elif kind == 1:
+            verts = np.cumsum(rng.normal(size=(k, 2)), axis=0)
+        elif kind == 2:
+            verts = rng.integers(0, 20, size=(k, 2)).astype(float)
+        else:
+            a = np.linspace(0.0, 2 * np.pi, k)
+            verts = 30.0 * np.column_stack([np.cos(a), np.sin(a)])
+        th = rng.uniform(0, 2 * np.pi)
+        rot = np.array([[np.cos(th), -np.sin(th)], [np.sin(th), np.cos(th)]])
+        verts = verts @ rot.T + rng.uniform(-1e4, 1e4, 2)
+        pts = verts[rng.integers(0, k, 200)] + rng.normal(size=(200, 2)) * rng.choice([0, 1, 30])
+        if kind == 2:
+            pts = np.round(pts * 2) / 2
+        d = (pts[:, None, :] - verts[None, :, :]) ** 2
+        want = np.argmin(d[..., 0] + d[..., 1], axis=1)
+        np.testing.assert_array_equal(_station_nearest(pts, verts), want)
+    # a point that is not finite takes vertex 0, as the scan leaves it; no points, no result
+    got = _station_nearest(np.array([[np.nan, 0.0], [1.0, 1.0]]), verts)
+    assert got[0] == 0 and got[1] == np.argmin(((verts - [1.0, 1.0]) ** 2).sum(axis=1))
+    assert _station_nearest(np.zeros((0, 2)), verts).shape == (0,)
+
+
 def _plan_cells_numpy(xy, lo, cell_m, nx, ny, dtype):
     """The plan grid's cells as numpy computes them (the form the compiled pass replaced)."""
     t = np.subtract(xy[:, 0], lo[0])

@@ -7,7 +7,7 @@ setup.py), so in plan the distances, nearest points and parameters are the same 
 (numpy sums three products in an order of its own, so the package keeps the numpy form for
 3-D); the loops leave the GIL.
 """
-from libc.math cimport floor, isfinite, sqrt, INFINITY
+from libc.math cimport fabs, floor, isfinite, sqrt, INFINITY
 from libc.stdint cimport int32_t, int64_t
 from libc.stdlib cimport free, malloc
 
@@ -122,6 +122,72 @@ def nearest_segment(const double[:, :] pts, const double[:, :] verts,
                 seg[i] = i0
                 t = param[i] - <double>i0
                 wz[i] = vz[i0] + t * (vz[i0 + 1] - vz[i0])
+
+
+def nearest_vertices(const double[:, :] pts, const double[:, :] verts,
+                     const int64_t[::1] order, const double[::1] station, double ox, double oy,
+                     double ax, double ay, int64_t[::1] out):
+    """Each point's nearest vertex in plan, exactly as the compiled pass's own scan picks it
+    (the squared distance ``dx * dx + dy * dy``; the first of equally near vertices), without
+    visiting every vertex.
+
+    ``station`` holds the vertices' stations ``(x - ox) * ax + (y - oy) * ay`` along a unit
+    axis ``(ax, ay)``, ascending, and ``order`` the vertex of each. A point's distance to a
+    vertex is at least the difference of their stations, so the vertices are visited outward
+    from the point's station, nearest station first, until that difference alone (less a
+    rounding margin) exceeds the nearest distance found.
+    """
+    cdef Py_ssize_t n = pts.shape[0], k = verts.shape[0], i, lo, hi, mid, left, right, j
+    cdef double px, py, sp, best, gap, gl, gr, dx, dy, s, tol
+    cdef int64_t v
+    if pts.shape[1] != 2 or verts.shape[1] != 2 or k < 1 or order.shape[0] != k \
+            or station.shape[0] != k or out.shape[0] != n:
+        raise ValueError("nearest_vertices: mismatched shapes")
+    for j in range(k):
+        if order[j] < 0 or order[j] >= k:
+            raise ValueError("nearest_vertices: a vertex number is out of range")
+    with nogil:
+        for i in range(n):
+            px = pts[i, 0]
+            py = pts[i, 1]
+            sp = (px - ox) * ax + (py - oy) * ay
+            # the margin covers the rounding of both stations (a few ulps of the offsets)
+            tol = 1e-9 + 1e-12 * (fabs(px - ox) + fabs(py - oy))
+            lo = 0
+            hi = k
+            while lo < hi:  # the first station not below the point's
+                mid = (lo + hi) // 2
+                if station[mid] < sp:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            left = lo - 1
+            right = lo
+            best = INFINITY
+            v = 0
+            while left >= 0 or right < k:
+                gl = sp - station[left] if left >= 0 else INFINITY
+                gr = station[right] - sp if right < k else INFINITY
+                if gl <= gr:
+                    j = order[left]
+                    gap = gl
+                    left -= 1
+                else:
+                    j = order[right]
+                    gap = gr
+                    right += 1
+                gap = gap - tol
+                if gap > 0.0 and gap * gap > best:
+                    break  # every vertex left is at least this far along the axis
+                dx = px - verts[j, 0]
+                dy = py - verts[j, 1]
+                s = 0.0
+                s = s + dx * dx
+                s = s + dy * dy
+                if s < best or (s == best and j < v):
+                    best = s
+                    v = j
+            out[i] = v
 
 
 def frame_points(const double[::1] a, const double[::1] ex, const double[::1] ez,

@@ -32,6 +32,7 @@ from scipy.spatial import cKDTree
 
 from ..arrays import column_bounds, take_rows, unique_rows
 from ._polyline import nearest_segment as _nearest_segment_pass
+from ._polyline import nearest_vertices as _nearest_vertices_pass
 
 __all__ = [
     "Findings",
@@ -79,13 +80,37 @@ def _nearest_segment(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | N
 
 def _nearest_vertices(pts_xy: np.ndarray, verts_xy: np.ndarray, tree: cKDTree | None
                       ) -> np.ndarray:
-    """Each point's nearest vertex by a k-d tree (the one given, or one built for a long
-    polyline), or an empty array: the compiled pass then scans the vertices itself."""
-    if tree is None and len(verts_xy) > _SCAN_VERTICES:
-        tree = cKDTree(verts_xy)
-    if tree is None:
-        return np.zeros(0, dtype=np.int64)
-    return np.ascontiguousarray(tree.query(pts_xy)[1], dtype=np.int64)
+    """Each point's nearest vertex by the k-d tree given; for a long polyline by a search
+    outward along the stations of its vertices (:func:`_station_nearest`); else an empty
+    array: the compiled pass then scans the vertices itself."""
+    if tree is not None:
+        return np.ascontiguousarray(tree.query(pts_xy)[1], dtype=np.int64)
+    if len(verts_xy) > _SCAN_VERTICES:
+        return _station_nearest(pts_xy, verts_xy)
+    return np.zeros(0, dtype=np.int64)
+
+
+def _station_nearest(pts_xy: np.ndarray, verts_xy: np.ndarray) -> np.ndarray:
+    """Each point's nearest vertex in plan, the one the compiled pass's scan would pick (the
+    first of equally near vertices), by :func:`clearaudit.audit._polyline.nearest_vertices`:
+    the vertices sorted by their station along the chord from the first to the last vertex,
+    each point's search starting at its own station and stopping where the station gap alone
+    exceeds the nearest distance found. A wire curve is nearly straight in plan, so a point
+    visits a few vertices: the audit's ground candidates of one curve (a median of 256
+    points, 732 vertices) took 0.22 ms with a k-d tree built and queried, against ≈ 0.03 ms.
+    """
+    verts = np.ascontiguousarray(verts_xy, dtype=np.float64)
+    pts = np.asarray(pts_xy, dtype=np.float64)
+    ox, oy = float(verts[0, 0]), float(verts[0, 1])
+    dx, dy = float(verts[-1, 0]) - ox, float(verts[-1, 1]) - oy
+    length = math.hypot(dx, dy)
+    ax, ay = (dx / length, dy / length) if length > 0 and math.isfinite(length) else (1.0, 0.0)
+    station = (verts[:, 0] - ox) * ax + (verts[:, 1] - oy) * ay
+    order = np.argsort(station, kind="stable")
+    out = np.empty(len(pts), dtype=np.int64)
+    _nearest_vertices_pass(pts, verts, order, np.ascontiguousarray(station[order]), ox, oy, ax, ay,
+                           out)
+    return out
 
 
 def _nearest_segment_numpy(points: np.ndarray, vertices: np.ndarray, tree: cKDTree | None):
