@@ -359,6 +359,44 @@ def test_station_search_finds_the_nearest_vertex_as_a_scan_of_every_vertex():
     assert _station_nearest(np.zeros((0, 2)), verts).shape == (0,)
 
 
+@pytest.mark.parametrize("dtype", [np.int32, np.int64])
+def test_cell_order_is_numpys_stable_argsort_and_cumulative_counts(dtype):
+    # reference: numpy.argsort(kind="stable") and numpy.cumsum of numpy.bincount
+    from clearaudit.audit._polyline import cell_order
+
+    rng = np.random.default_rng(29)
+    for n, ncell in ((0, 5), (1, 1), (1_000, 7), (50_000, 3_000), (200, 100_000)):
+        key = rng.integers(0, ncell, n).astype(dtype)
+        start, order = np.empty(ncell + 1, np.int64), np.empty(n, np.int64)
+        cell_order(key, start, order)
+        np.testing.assert_array_equal(order, np.argsort(key, kind="stable"))
+        want = np.zeros(ncell + 1, np.int64)
+        np.cumsum(np.bincount(key, minlength=ncell), out=want[1:])
+        np.testing.assert_array_equal(start, want)
+    with pytest.raises(IndexError):
+        cell_order(np.array([0, 5], dtype=dtype), np.empty(6, np.int64), np.empty(2, np.int64))
+    with pytest.raises(IndexError):
+        cell_order(np.array([-1], dtype=dtype), np.empty(6, np.int64), np.empty(1, np.int64))
+
+
+def test_in_box_equals_the_numpy_comparisons():
+    # reference: numpy's four comparisons; NaN coordinates fail them all, box edges half open
+    from clearaudit.audit.engine import _in_box
+
+    rng = np.random.default_rng(31)
+    xy = np.round(rng.uniform(-5, 15, size=(20_000, 2)), 1)
+    xy[::97, 0] = np.nan
+    xy[::89, 1] = np.nan
+    for box in ((0.0, 0.0, 10.0, 10.0), (2.5, -1.0, 2.6, 3.0), (5.0, 5.0, 5.0, 5.0)):
+        x0, y0, x1, y1 = box
+        want = (xy[:, 0] >= x0) & (xy[:, 0] < x1) & (xy[:, 1] >= y0) & (xy[:, 1] < y1)
+        for view in (xy, np.column_stack([xy, xy[:, :1]])[:, :2], np.asfortranarray(xy)):
+            got = _in_box(view, box)
+            assert got.dtype == bool
+            np.testing.assert_array_equal(got, want)
+    assert _in_box(xy, None).all() and len(_in_box(xy[:0], (0, 0, 1, 1))) == 0
+
+
 def _plan_cells_numpy(xy, lo, cell_m, nx, ny, dtype):
     """The plan grid's cells as numpy computes them (the form the compiled pass replaced)."""
     t = np.subtract(xy[:, 0], lo[0])

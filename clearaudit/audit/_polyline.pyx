@@ -190,6 +190,54 @@ def nearest_vertices(const double[:, :] pts, const double[:, :] verts,
             out[i] = v
 
 
+def in_box(const double[:, :] xy, double x0, double y0, double x1, double y1,
+           unsigned char[::1] out):
+    """``out = (x >= x0) & (x < x1) & (y >= y0) & (y < y1)`` for the points ``xy`` (n, 2+)
+    in one pass (a coordinate that is NaN fails every comparison, as in numpy)."""
+    cdef Py_ssize_t n = xy.shape[0], i
+    cdef double x, y
+    if xy.shape[1] < 2 or out.shape[0] != n:
+        raise ValueError("in_box: mismatched shapes")
+    with nogil:
+        for i in range(n):
+            x = xy[i, 0]
+            y = xy[i, 1]
+            out[i] = (x >= x0) & (x < x1) & (y >= y0) & (y < y1)
+
+
+def cell_order(const cell_t[::1] key, int64_t[::1] start, int64_t[::1] order):
+    """The points sorted by cell, stably (``numpy.argsort(key, kind="stable")``), into
+    ``order``, and where each cell's points start in it into ``start`` (``ncell + 1``
+    entries: numpy's ``cumsum`` of the cell counts after a leading 0), by a counting sort.
+    Every key must lie in ``0 .. ncell - 1``."""
+    cdef Py_ssize_t n = key.shape[0], ncell = start.shape[0] - 1, i, c
+    cdef int64_t total, m
+    if ncell < 0 or order.shape[0] != n:
+        raise ValueError("cell_order: mismatched shapes")
+    for i in range(n):
+        if key[i] < 0 or key[i] >= ncell:
+            raise IndexError("cell_order: a cell number is out of range")
+    with nogil:
+        for c in range(ncell + 1):
+            start[c] = 0
+        for i in range(n):
+            start[key[i] + 1] += 1
+        total = 0
+        for c in range(ncell + 1):
+            total += start[c]
+            start[c] = total
+        # start[c] is now where cell c begins; each point goes to its cell's next slot,
+        # which leaves start[c] at the end of cell c, i.e. the beginning of cell c + 1
+        for i in range(n):
+            c = key[i]
+            m = start[c]
+            order[m] = i
+            start[c] = m + 1
+        for c in range(ncell, 0, -1):
+            start[c] = start[c - 1]
+        start[0] = 0
+
+
 def frame_points(const double[::1] a, const double[::1] ex, const double[::1] ez,
                  const double[::1] x, const double[::1] z, double[:, ::1] out):
     """``out = a + x[:, None] * ex + z[:, None] * ez``: points given in a plane's frame

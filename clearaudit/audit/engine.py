@@ -48,7 +48,7 @@ from clearaudit.cloud import (
 )
 from clearaudit.errors import InputError
 
-from ._polyline import curve_frame, curve_window, plan_cells
+from ._polyline import cell_order, curve_frame, curve_window, in_box, plan_cells
 from .clearance import (
     Findings,
     building_envelope,
@@ -260,7 +260,9 @@ def _in_box(xy: np.ndarray, box: tuple[float, float, float, float] | None) -> np
     if box is None:
         return np.ones(len(xy), dtype=bool)
     x0, y0, x1, y1 = box
-    return (xy[:, 0] >= x0) & (xy[:, 0] < x1) & (xy[:, 1] >= y0) & (xy[:, 1] < y1)
+    out = np.empty(len(xy), dtype=np.uint8)
+    in_box(xy, float(x0), float(y0), float(x1), float(y1), out)  # one compiled pass
+    return out.view(bool)
 
 
 @dataclass
@@ -1141,11 +1143,13 @@ class _CellIndex:
     points near a wire's curves by cell ranges."""
 
     def __init__(self, grid: _PlanGrid, cloud_index: np.ndarray):
-        key = grid.key[cloud_index]
-        self.order = np.argsort(key)
-        # start[c]: first position of cell c in the sorted order (start[c + 1]: its end)
-        self.start = np.zeros(grid.ncell + 1, dtype=np.int64)
-        np.cumsum(np.bincount(key, minlength=grid.ncell), out=self.start[1:])
+        key = np.ascontiguousarray(grid.key[cloud_index])
+        # the points in cell order, each cell's in group order (a compiled counting sort:
+        # numpy's argsort of ~1 M cell numbers took 7.7 ms a group, this ≈ 1); start[c]: first
+        # position of cell c in that order (start[c + 1]: its end)
+        self.order = np.empty(len(key), dtype=np.int64)
+        self.start = np.empty(grid.ncell + 1, dtype=np.int64)
+        cell_order(key, self.start, self.order)
         self.grid = grid
 
     def near_curves(self, curves: list[np.ndarray], reach_m: float) -> np.ndarray:
