@@ -66,6 +66,27 @@ def test_isolated_points_dense_and_sorted_counts_agree(voxel, monkeypatch):
     assert len(dense_calls) == 1  # the sorted form ran
 
 
+def test_compiled_block_counts_equal_numpy_bincount_sums():
+    # reference: numpy.bincount of the voxel numbers and the 27 shifted counts per sparse
+    # voxel (the numpy form the kernel replaced), on random voxel blocks of both key types
+    from clearaudit.classify.kernels import isolated_in_block
+    from clearaudit.classify.noise import _block_offsets
+
+    rng = np.random.default_rng(41)
+    for dtype in (np.int32, np.int64):
+        for n_x, n_y, n_z, n, m in ((3, 3, 3, 5, 1), (12, 9, 7, 300, 2), (40, 30, 8, 3000, 4)):
+            ijk = np.column_stack([rng.integers(1, d - 1, n) for d in (n_x, n_y, n_z)])
+            keys = ((ijk[:, 0] * n_y + ijk[:, 1]) * n_z + ijk[:, 2]).astype(dtype)
+            counts = np.bincount(keys, minlength=n_x * n_y * n_z)
+            total = sum(counts[keys + off] for off in _block_offsets(n_y, n_z))
+            want = (counts[keys] - 1 < m) & (total - 1 < m)
+            got = np.empty(n, np.uint8)
+            isolated_in_block(keys, n_x * n_y * n_z, n_y, n_z, m, got)
+            np.testing.assert_array_equal(got.view(bool), want)
+        with pytest.raises(IndexError):  # a voxel on the block's border has no full block
+            isolated_in_block(np.array([0], dtype), 27, 3, 3, 1, np.empty(1, np.uint8))
+
+
 def test_compact_voxel_keys_are_one_number_per_voxel():
     # reference: the voxel triple floor(xyz / e); equal keys <=> equal triples
     rng = np.random.default_rng(3)

@@ -495,6 +495,48 @@ def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,
             z[i] = xyz[r, 2]
 
 
+def isolated_in_block(const index[::1] keys, Py_ssize_t n_voxels, Py_ssize_t n_y,
+                      Py_ssize_t n_z, Py_ssize_t min_neighbours, unsigned char[::1] out):
+    """For every point of voxel number ``keys[i]`` (``(i * n_y + j) * n_z + k`` with a border
+    voxel on every side of the occupied ones), whether fewer than ``min_neighbours`` other
+    points lie in its 3 × 3 × 3 block of voxels: the points of every voxel counted in one
+    pass, then each point of a voxel that is itself sparse sums its block's 27 counts (the
+    counts and sums of ``noise._isolated_dense``'s numpy form, per point)."""
+    cdef Py_ssize_t n = keys.shape[0], i, a, b, c
+    cdef int64_t k, total, count
+    cdef int64_t off[27]
+    if out.shape[0] != n or n_voxels < 1 or n_y < 3 or n_z < 3:
+        raise ValueError("isolated_in_block: mismatched shapes")
+    c = 0
+    for a in range(-1, 2):
+        for b in range(-1, 2):
+            for i in range(-1, 2):
+                off[c] = (a * n_y + b) * n_z + i
+                c += 1
+    for i in range(n):  # every neighbour number valid: the occupied voxels lie off the border
+        if keys[i] + off[0] < 0 or keys[i] + off[26] >= n_voxels:
+            raise IndexError("isolated_in_block: a voxel lies on the border of the block")
+    cdef int32_t *counts = <int32_t *> malloc(n_voxels * sizeof(int32_t))
+    if not counts:
+        raise MemoryError()
+    with nogil:
+        for k in range(n_voxels):
+            counts[k] = 0
+        for i in range(n):
+            counts[keys[i]] += 1
+        for i in range(n):
+            k = keys[i]
+            count = counts[k]
+            if count - 1 >= min_neighbours:
+                out[i] = 0
+                continue
+            total = 0
+            for c in range(27):
+                total += counts[k + off[c]]
+            out[i] = total - 1 < min_neighbours
+    free(counts)
+
+
 def route_records(const int64_t[::1] cell, Py_ssize_t n_cells, const double[:, ::1] xyz,
                   const unsigned char[::1] cls, const int64_t[::1] key,
                   unsigned char[:, ::1] out, int64_t[::1] first):

@@ -14,6 +14,7 @@ try:
         chunk_points,
         corridor_exact,
         gather_columns,
+        isolated_in_block,
         jacobi_sweep,
         median_f32,
         plane_residual_sums,
@@ -33,7 +34,7 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
         f"clearaudit's compiled kernels are missing or were built for another Python ({exc}); "
         "build them with `bash scripts/setup.sh` or `pip install -e .`") from exc
 
-__all__ = ["bilinear", "cell_extreme", "cell_sums3", "chunk_points", "corridor_exact", "gather_columns", "jacobi_sweep", "median_f32", "moments",
+__all__ = ["bilinear", "cell_extreme", "cell_sums3", "chunk_points", "corridor_exact", "gather_columns", "isolated_in_block", "jacobi_sweep", "median_f32", "moments",
            "plane_residual_sums", "plane_solve", "plane_sums", "raster_state", "record_int_bounds",
            "records_in_box",
            "route_records", "sym3_pairs", "sym3_prepare",

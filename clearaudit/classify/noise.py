@@ -152,25 +152,20 @@ def _isolated_dense(keys: np.ndarray, n_voxels: int, n_y: int, n_z: int,
                     min_neighbours: int) -> np.ndarray:
     """:func:`isolated_points` on a block of few voxels: a count per voxel of the whole block.
 
-    The same counts as the sorted form, from one ``bincount`` over every voxel number (the
-    block's numbers have a border voxel on each side, so every neighbour number is valid).
+    The same counts as the sorted form, from one counting pass over every voxel number (the
+    block's numbers have a border voxel on each side, so every neighbour number is valid);
+    each point of a sparse voxel then sums its block (compiled: ``isolated_in_block``; the
+    numpy form of ``bincount``, the sparse voxels' 27 shifted sums and a lookup per point
+    took 28 ms on a 1.6 M-point tile).
     """
-    counts = np.bincount(keys, minlength=n_voxels)
-    # only voxels that are themselves sparse need their block counted
-    sparse = np.flatnonzero((counts > 0) & (counts - 1 < min_neighbours))
-    total = np.zeros(len(sparse), dtype=np.int64)
-    for off in _block_offsets(n_y, n_z):
-        total += counts[sparse + off]
-    del counts
-    lonely = np.zeros(n_voxels, bool)
-    lonely[sparse[total - 1 < min_neighbours]] = True
-    isolated = np.empty(len(keys), bool)
+    from .kernels import isolated_in_block
 
-    def work(lo: int, hi: int) -> None:
-        np.take(lonely, keys[lo:hi], out=isolated[lo:hi])
-
-    run_chunks(work, len(keys), _CHUNK)
-    return isolated
+    keys = np.ascontiguousarray(keys)
+    if keys.dtype not in (np.int32, np.int64):
+        keys = keys.astype(np.int64)
+    isolated = np.empty(len(keys), np.uint8)
+    isolated_in_block(keys, int(n_voxels), int(n_y), int(n_z), int(min_neighbours), isolated)
+    return isolated.view(bool)
 
 
 def pit_cells(zmin: np.ndarray, depth: float) -> tuple[np.ndarray, np.ndarray]:
