@@ -87,6 +87,76 @@ def test_compiled_block_counts_equal_numpy_bincount_sums():
             isolated_in_block(np.array([0], dtype), 27, 3, 3, 1, np.empty(1, np.uint8))
 
 
+def _locate_numpy(frame, xy):
+    """GridFrame.locate's numpy form (float64 in this order, rounded to float32 once)."""
+    a = frame.axes
+    cu, cv = a[0, 0] / frame.cell, a[0, 1] / frame.cell
+    du, dv = a[1, 0] / frame.cell, a[1, 1] / frame.cell
+    su, sv = frame.corner[0] / frame.cell, frame.corner[1] / frame.cell
+    dx, dy = xy[:, 0] - frame.centre[0], xy[:, 1] - frame.centre[1]
+    acc = dx * cu
+    acc += dy * cv
+    acc -= su
+    fu = acc.astype(np.float32)
+    acc = dx * du
+    acc += dy * dv
+    acc -= sv
+    return fu, acc.astype(np.float32)
+
+
+def _flat_and_weights_numpy(fu, fv, shape):
+    """PointLocation.flat and the bilinear weights of its sampler, the numpy forms."""
+    n_u, n_v = shape
+    m_u, m_v = max(n_u, 2), max(n_v, 2)
+    itype = np.int32 if n_u * n_v < 2**31 else np.int64
+    flat = np.clip(fu, 0, n_u - 1).astype(itype) * n_v + np.clip(fv, 0, n_v - 1).astype(itype)
+    outside = (fu < 0) | (fu > n_u) | (fv < 0) | (fv > n_v)
+    u = np.clip(fu - np.float32(0.5), 0, n_u - 1)
+    v = np.clip(fv - np.float32(0.5), 0, n_v - 1)
+    i0 = np.minimum(u.astype(itype), m_u - 2)
+    j0 = np.minimum(v.astype(itype), m_v - 2)
+    u -= i0
+    v -= j0
+    return flat, outside, i0 * m_v + j0, u, v
+
+
+def test_compiled_grid_locations_equal_the_numpy_form():
+    # reference: the numpy forms above (the compiled passes replaced them): the same float32
+    # cell coordinates, cells and bilinear weights, for rotated frames, points beyond the
+    # grid on every side, grids one cell across (padded to two) and several cell sizes
+    from clearaudit.classify.grid import GridFrame
+
+    rng = np.random.default_rng(43)
+    for case in range(24):
+        n = int(rng.integers(1, 20_000))
+        xy = rng.normal(size=(n, 2)) * rng.uniform(1, 400, 2) + rng.uniform(-5e3, 5e3, 2)
+        if case % 6 == 5:
+            xy[:, 1] = xy[0, 1]  # one row of cells
+        cell = float(rng.choice([0.25, 1.0, 1.5, 3.0]))
+        frame, loc = GridFrame.fit_locate(xy, cell, margin=cell)
+        for pts in (xy, xy + rng.normal(size=xy.shape) * 60, np.asfortranarray(xy)):
+            fu, fv = _locate_numpy(frame, pts)
+            got = frame.locate(pts)
+            np.testing.assert_array_equal(got.fu, fu)
+            np.testing.assert_array_equal(got.fv, fv)
+            flat, outside, k00, wa, wb = _flat_and_weights_numpy(fu, fv, frame.shape)
+            np.testing.assert_array_equal(got.flat, flat)
+            s = got.sampler()
+            np.testing.assert_array_equal(s.outside, outside)
+            np.testing.assert_array_equal(s.k00, k00)
+            np.testing.assert_array_equal(s.a, wa)
+            np.testing.assert_array_equal(s.b, wb)
+            assert s.k00.dtype == k00.dtype and got.flat.dtype == flat.dtype
+    # a coordinate that is not finite counts as 0 for the cell, and is outside for sampling
+    from clearaudit.classify.grid import PointLocation
+
+    odd = PointLocation(np.array([np.nan, 2.5], np.float32), np.array([1.5, 1.5], np.float32),
+                        (4, 4))
+    assert odd.flat[0] == 0 * 4 + 1 and odd.flat[1] == 2 * 4 + 1  # the NaN coordinate as 0
+    assert odd.sampler().outside.tolist() == [True, False]
+    assert np.isnan(odd.sampler()(np.ones((4, 4)))[0])
+
+
 def test_compact_voxel_keys_are_one_number_per_voxel():
     # reference: the voxel triple floor(xyz / e); equal keys <=> equal triples
     rng = np.random.default_rng(3)

@@ -537,6 +537,95 @@ def isolated_in_block(const index[::1] keys, Py_ssize_t n_voxels, Py_ssize_t n_y
     free(counts)
 
 
+def locate_cells(const double[:, :] xy, double c0, double c1, double cu, double cv,
+                 double du, double dv, double su, double sv, float[::1] fu, float[::1] fv):
+    """Fractional cell coordinates of points in a rotated grid frame (``GridFrame.locate``):
+    ``fu = dx cu + dy cv - su`` and ``fv = dx du + dy dv - sv`` with ``dx = x - c0``,
+    ``dy = y - c1``, in float64 in that order, each rounded to float32 once."""
+    cdef Py_ssize_t n = xy.shape[0], i
+    cdef double dx, dy, acc
+    if xy.shape[1] < 2 or fu.shape[0] != n or fv.shape[0] != n:
+        raise ValueError("locate_cells: mismatched shapes")
+    with nogil:
+        for i in range(n):
+            dx = xy[i, 0] - c0
+            dy = xy[i, 1] - c1
+            acc = dx * cu
+            acc = acc + dy * cv
+            acc = acc - su
+            fu[i] = <float>acc
+            acc = dx * du
+            acc = acc + dy * dv
+            acc = acc - sv
+            fv[i] = <float>acc
+
+
+cdef inline float _clip_f32(float t, float top) noexcept nogil:
+    """numpy.clip(t, 0, top) of a float32 (NaN stays NaN)."""
+    if t < 0:
+        t = 0
+    if t > top:
+        t = top
+    return t
+
+
+def flat_cells(const float[::1] fu, const float[::1] fv, int64_t n_u, int64_t n_v,
+               index[::1] out):
+    """``PointLocation.flat``: ``i * n_v + j`` with ``i = int(clip(fu, 0, n_u - 1))`` and
+    ``j = int(clip(fv, 0, n_v - 1))`` (float32 clips, truncation); a NaN coordinate counts
+    as 0 (numpy's cast of NaN is undefined)."""
+    cdef Py_ssize_t n = fu.shape[0], p
+    cdef float top_u = <float>(n_u - 1), top_v = <float>(n_v - 1)
+    cdef index i, j
+    if fv.shape[0] != n or out.shape[0] != n or n_u < 1 or n_v < 1:
+        raise ValueError("flat_cells: mismatched shapes")
+    with nogil:
+        for p in range(n):
+            i = <index>_clip_f32(fu[p], top_u) if fu[p] == fu[p] else 0
+            j = <index>_clip_f32(fv[p], top_v) if fv[p] == fv[p] else 0
+            out[p] = i * <index>n_v + j
+
+
+def sampler_weights(const float[::1] fu, const float[::1] fv, int64_t n_u, int64_t n_v,
+                    int64_t m_u, int64_t m_v, unsigned char[::1] outside, index[::1] k00,
+                    float[::1] wa, float[::1] wb):
+    """``PointLocation._make_sampler``'s bilinear weights in one pass: ``outside`` (a
+    coordinate below 0 or above the grid's count), the lower cell centre ``k00 = i0 m_v +
+    j0`` and the weights ``wa = u - i0``, ``wb = v - j0`` with ``u = clip(fu - 0.5, 0,
+    n_u - 1)``, ``i0 = min(int(u), m_u - 2)`` (likewise ``v``, ``j0``), in float32 as numpy
+    computes them. A point with a NaN coordinate is outside (numpy's cast of NaN is
+    undefined; its weights here are 0 and its cell 0)."""
+    cdef Py_ssize_t n = fu.shape[0], p
+    cdef float u, v, fu_p, fv_p, top_u = <float>(n_u - 1), top_v = <float>(n_v - 1)
+    cdef float count_u = <float>n_u, count_v = <float>n_v
+    cdef index i0, j0, last_i = <index>(m_u - 2), last_j = <index>(m_v - 2)
+    if fv.shape[0] != n or outside.shape[0] != n or k00.shape[0] != n or wa.shape[0] != n \
+            or wb.shape[0] != n or n_u < 1 or n_v < 1 or m_u < 2 or m_v < 2:
+        raise ValueError("sampler_weights: mismatched shapes")
+    with nogil:
+        for p in range(n):
+            fu_p = fu[p]
+            fv_p = fv[p]
+            if fu_p != fu_p or fv_p != fv_p:
+                outside[p] = 1
+                k00[p] = 0
+                wa[p] = 0
+                wb[p] = 0
+                continue
+            outside[p] = (fu_p < 0) | (fu_p > count_u) | (fv_p < 0) | (fv_p > count_v)
+            u = _clip_f32(fu_p - <float>0.5, top_u)
+            v = _clip_f32(fv_p - <float>0.5, top_v)
+            i0 = <index>u
+            if i0 > last_i:
+                i0 = last_i
+            j0 = <index>v
+            if j0 > last_j:
+                j0 = last_j
+            wa[p] = u - <float>i0
+            wb[p] = v - <float>j0
+            k00[p] = i0 * <index>m_v + j0
+
+
 def route_records(const int64_t[::1] cell, Py_ssize_t n_cells, const double[:, ::1] xyz,
                   const unsigned char[::1] cls, const int64_t[::1] key,
                   unsigned char[:, ::1] out, int64_t[::1] first):

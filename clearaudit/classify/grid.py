@@ -14,7 +14,10 @@ from ..arrays import column_bounds, positions
 from ..threads import run_chunks
 from .kernels import bilinear as _bilinear
 from .kernels import cell_extreme as _cell_extreme
+from .kernels import flat_cells as _flat_cells
 from .kernels import jacobi_sweep as _jacobi_sweep
+from .kernels import locate_cells as _locate_cells
+from .kernels import sampler_weights as _sampler_weights
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
 # run about twice as fast when a chunk's temporaries stay in the processor's cache, and the
@@ -67,17 +70,7 @@ class GridFrame:
         xy = np.asarray(xy, dtype=np.float64)
         if len(xy) == 0:
             raise ValueError("cannot fit a grid to no points")
-        if centre is None:
-            centre = xy.mean(axis=0)
-        if axes is None:
-            sample = xy[:: max(1, len(xy) // 200_000)] - centre
-            cov = sample.T @ sample
-            _, vecs = np.linalg.eigh(cov)
-            major = vecs[:, 1]
-            if major[0] < 0 or (major[0] == 0 and major[1] < 0):
-                major = -major
-            axes = np.array([major, [-major[1], major[0]]])
-        axes = np.asarray(axes, float)
+        centre, axes = _orientation(xy, axes, centre)
         dx = xy[:, 0] - centre[0]
         dy = xy[:, 1] - centre[1]
         uv = np.stack([dx * axes[0, 0] + dy * axes[0, 1], dx * axes[1, 0] + dy * axes[1, 1]], axis=1)
@@ -106,14 +99,19 @@ class GridFrame:
         sample = xy[:: max(1, len(xy) // 200_000)]
         if sample.ndim == 2 and sample.strides[0] >= sample.strides[1]:
             sample = np.ascontiguousarray(sample)
-        probe = cls.fit(sample, cell)
+        if cell <= 0:
+            raise ValueError("grid cell size must be positive")
+        if len(sample) == 0:
+            raise ValueError("cannot fit a grid to no points")
+        # the orientation :meth:`fit` gives the sample (its corner and shape are not needed)
+        centre, axes = _orientation(np.asarray(sample, dtype=np.float64))
         # cell coordinates relative to the centre, then shifted to the fitted corner
-        loc = GridFrame(probe.centre, probe.axes, np.zeros(2), float(cell), (1, 1)).locate(xy)
+        loc = GridFrame(centre, axes, np.zeros(2), float(cell), (1, 1)).locate(xy)
         fu, fv = loc.fu, loc.fv
         lo = np.array([fu.min(), fv.min()], np.float64) * cell - margin
         hi = np.array([fu.max(), fv.max()], np.float64) * cell + margin
         shape = tuple(int(s) for s in np.maximum(np.ceil((hi - lo) / cell + 1e-6), 1))
-        frame = cls(probe.centre, probe.axes, lo, float(cell), shape)
+        frame = cls(centre, axes, lo, float(cell), shape)
         shift_u, shift_v = np.float32(lo[0] / cell), np.float32(lo[1] / cell)
 
         def work(start: int, stop: int) -> None:
@@ -195,24 +193,34 @@ class GridFrame:
         fu = np.empty(len(xy), np.float32)
         fv = np.empty(len(xy), np.float32)
 
+        c0, c1 = float(self.centre[0]), float(self.centre[1])
+
         def work(lo: int, hi: int) -> None:
-            # same operations and order as fu = dx·a00/c + dy·a01/c - u0/c in float64,
-            # rounded to float32 once
-            dx = xy[lo:hi, 0] - self.centre[0]
-            dy = xy[lo:hi, 1] - self.centre[1]
-            acc = dx * cu
-            term = np.multiply(dy, cv)
-            acc += term
-            acc -= su
-            fu[lo:hi] = acc
-            np.multiply(dx, du, out=acc)
-            np.multiply(dy, dv, out=term)
-            acc += term
-            acc -= sv
-            fv[lo:hi] = acc
+            # fu = dx·a00/c + dy·a01/c - u0/c in float64, rounded to float32 once: one
+            # compiled pass (the numpy form's operations in its order)
+            _locate_cells(xy[lo:hi], c0, c1, float(cu), float(cv), float(du), float(dv),
+                          float(su), float(sv), fu[lo:hi], fv[lo:hi])
 
         run_chunks(work, len(xy), _CHUNK)
         return PointLocation(fu, fv, self.shape)
+
+
+def _orientation(xy: np.ndarray, axes: np.ndarray | None = None,
+                 centre: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Centre and axes of :meth:`GridFrame.fit`: the points' mean and the principal
+    direction of a regular sample of at most about 200 000 of them (the major axis first,
+    pointing to +x, or +y when it is vertical), unless given."""
+    if centre is None:
+        centre = xy.mean(axis=0)
+    if axes is None:
+        sample = xy[:: max(1, len(xy) // 200_000)] - centre
+        cov = sample.T @ sample
+        _, vecs = np.linalg.eigh(cov)
+        major = vecs[:, 1]
+        if major[0] < 0 or (major[0] == 0 and major[1] < 0):
+            major = -major
+        axes = np.array([major, [-major[1], major[0]]])
+    return np.asarray(centre, float), np.asarray(axes, float)
 
 
 @dataclass(frozen=True)
@@ -251,11 +259,11 @@ class PointLocation:
         itype = np.int32 if n_u * n_v < 2**31 else np.int64
         out = np.empty(len(self.fu), itype)
 
+        fu, fv = np.ascontiguousarray(self.fu), np.ascontiguousarray(self.fv)
+
         def work(lo: int, hi: int) -> None:
-            i = np.clip(self.fu[lo:hi], 0, n_u - 1).astype(itype)
-            j = np.clip(self.fv[lo:hi], 0, n_v - 1).astype(itype)
-            i *= n_v
-            np.add(i, j, out=out[lo:hi])
+            # i = clip(fu, 0, n_u - 1) cast, the same for j, i * n_v + j: one compiled pass
+            _flat_cells(fu[lo:hi], fv[lo:hi], n_u, n_v, out[lo:hi])
 
         run_chunks(work, len(out), _CHUNK)
         return out
@@ -281,17 +289,15 @@ class PointLocation:
         wa = np.empty(n, np.float32)
         wb = np.empty(n, np.float32)
 
+        fu, fv = np.ascontiguousarray(self.fu), np.ascontiguousarray(self.fv)
+        flags = outside.view(np.uint8)
+
         def work(lo: int, hi: int) -> None:
-            fu_in, fv_in = self.fu[lo:hi], self.fv[lo:hi]
-            outside[lo:hi] = (fu_in < 0) | (fu_in > n_u) | (fv_in < 0) | (fv_in > n_v)
-            fu = np.clip(fu_in - np.float32(0.5), 0, n_u - 1, out=wa[lo:hi])
-            fv = np.clip(fv_in - np.float32(0.5), 0, n_v - 1, out=wb[lo:hi])
-            i0 = np.minimum(fu.astype(itype), m_u - 2)
-            j0 = np.minimum(fv.astype(itype), m_v - 2)
-            fu -= i0
-            fv -= j0
-            i0 *= m_v
-            np.add(i0, j0, out=k00[lo:hi])
+            # outside = fu < 0 | fu > n_u | fv < 0 | fv > n_v; u = clip(fu - 0.5, 0, n_u - 1),
+            # i0 = min(int(u), m_u - 2), a = u - i0 (likewise v, j0, b), k00 = i0 m_v + j0, in
+            # float32: one compiled pass (the numpy form's operations)
+            _sampler_weights(fu[lo:hi], fv[lo:hi], n_u, n_v, m_u, m_v, flags[lo:hi],
+                             k00[lo:hi], wa[lo:hi], wb[lo:hi])
 
         run_chunks(work, n, _CHUNK)
         return BilinearSampler(k00, wa, wb, outside, (n_u, n_v), m_v)
