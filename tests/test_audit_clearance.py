@@ -485,6 +485,17 @@ def test_curve_windows_equal_the_numpy_form():
         assert (w.b0, w.nb) == (b0, nb)
         for got, want in zip((w.v_min, w.v_max, w.z_min, w.z_max), ref, strict=True):
             np.testing.assert_array_equal(got, want)
+        # the window test of points (compiled): numpy's comparisons on the clipped bins,
+        # for bins inside, before and after the window, in plan and in 3-D
+        ub = rng.integers(b0 - 5, b0 + nb + 5, 300)
+        pv, pz = rng.normal(0.0, 8.0, 300), rng.normal(20.0, 4.0, 300)
+        r = reach + _EPS_M
+        ok = (ub - b0 >= 0) & (ub - b0 < nb)
+        b = np.where(ok, ub - b0, 0)
+        plan = ok & (pv >= ref[0][b] - r) & (pv <= ref[1][b] + r)
+        np.testing.assert_array_equal(w.maybe_near(ub, pv), plan)
+        np.testing.assert_array_equal(w.maybe_near(ub, pv, pz),
+                                      plan & (pz >= ref[2][b] - r) & (pz <= ref[3][b] + r))
         if trial % 40 == 0:  # the sliding extremes by their definition
             v = np.concatenate([c for c in curves])
             dx, dy = v[:, 0] - origin[0], v[:, 1] - origin[1]

@@ -238,6 +238,34 @@ def cell_order(const cell_t[::1] key, int64_t[::1] start, int64_t[::1] order):
         start[0] = 0
 
 
+def window_near(const int64_t[::1] ub, int64_t b0, const double[:] v, const double[:] z,
+                const double[::1] v_min, const double[::1] v_max, const double[::1] z_min,
+                const double[::1] z_max, double r, unsigned char[::1] out):
+    """The station-binned window test of points in one pass: ``out[i]`` is 1 when the
+    point's bin ``b = ub[i] - b0`` lies in ``0 .. nb - 1`` and ``v_min[b] - r <= v[i] <=
+    v_max[b] + r`` (and the same for ``z`` against ``z_min``, ``z_max`` unless ``z`` is
+    empty): the comparisons of the numpy form (``_CurveWindow.bins`` and ``maybe_near``)."""
+    cdef Py_ssize_t n = ub.shape[0], nb = v_min.shape[0], i
+    cdef int64_t b
+    cdef double x
+    cdef bint use_z = z.shape[0] != 0, near
+    if v.shape[0] != n or out.shape[0] != n or (use_z and z.shape[0] != n) \
+            or v_max.shape[0] != nb or z_min.shape[0] != nb or z_max.shape[0] != nb:
+        raise ValueError("window_near: mismatched shapes")
+    with nogil:
+        for i in range(n):
+            b = ub[i] - b0
+            if b < 0 or b >= nb:
+                out[i] = 0
+                continue
+            x = v[i]
+            near = (x >= v_min[b] - r) & (x <= v_max[b] + r)
+            if use_z:
+                x = z[i]
+                near = near & (x >= z_min[b] - r) & (x <= z_max[b] + r)
+            out[i] = near
+
+
 def frame_points(const double[::1] a, const double[::1] ex, const double[::1] ez,
                  const double[::1] x, const double[::1] z, double[:, ::1] out):
     """``out = a + x[:, None] * ex + z[:, None] * ez``: points given in a plane's frame

@@ -38,7 +38,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from clearaudit.arrays import class_mask, column_bounds, take_rows
+from clearaudit.arrays import class_mask, column_bounds, take_columns, take_rows
 from clearaudit.cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -48,7 +48,7 @@ from clearaudit.cloud import (
 )
 from clearaudit.errors import InputError
 
-from ._polyline import cell_order, curve_frame, curve_window, in_box, plan_cells
+from ._polyline import cell_order, curve_frame, curve_window, in_box, plan_cells, window_near
 from .clearance import (
     Findings,
     building_envelope,
@@ -638,8 +638,7 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
                         continue
                     sub, u, v, z = near[kind]
                     window = _CurveWindow(curve, origin, axis, req[kind] + ci_max[cond])
-                    b, ok = window.bins(u)
-                    idx = np.sort(sub[window.maybe_near(b, ok, v, z)])
+                    idx = np.sort(sub[window.maybe_near(u, v, z)])
                     if idx.size:
                         f = _radial(groups[kind].xyz, idx, i, cond, curve, frac, ci_along,
                                     req[kind], "any" if kind == "wire" else "value")
@@ -1041,6 +1040,8 @@ _EPS_M = 1e-6
 _BIN_M = 0.5
 #: :func:`curve_frame`'s curve starts for a single curve
 _ONE_CURVE = np.zeros(1, dtype=np.int64)
+#: No heights: the plan window test of :meth:`_CurveWindow.maybe_near`
+_NO_Z = np.zeros(0)
 
 
 class _PlanGrid:
@@ -1229,20 +1230,18 @@ class _CurveWindow:
         curve_window(b, v, curve[:, 2], self.b0, ring, self.v_min, self.v_max, self.z_min,
                      self.z_max)
 
-    def bins(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Bin of each station (clipped) and whether it is inside the curve's bins; ``u`` as
-        stations [m] (float) or as whole bins ``floor(u / bin_m)`` (int64)."""
-        b = (u if u.dtype.kind == "i" else np.floor(u / self.bin_m).astype(np.int64)) - self.b0
-        ok = (b >= 0) & (b < self.nb)
-        return np.where(ok, b, 0), ok
-
-    def maybe_near(self, b, ok, v, z=None) -> np.ndarray:
-        """Points possibly within the reach (plan when ``z`` is None, else 3-D)."""
-        r = self.reach_m + _EPS_M
-        near = ok & (v >= self.v_min[b] - r) & (v <= self.v_max[b] + r)
-        if z is not None:
-            near &= (z >= self.z_min[b] - r) & (z <= self.z_max[b] + r)
-        return near
+    def maybe_near(self, ub: np.ndarray, v: np.ndarray, z: np.ndarray | None = None
+                   ) -> np.ndarray:
+        """Points possibly within the reach (plan when ``z`` is None, else 3-D), from their
+        whole station bins ``ub = floor(u / bin_m)`` (int64), offsets ``v`` and heights ``z``:
+        in a bin of the curve, with ``v`` (and ``z``) no more than the reach outside its
+        range there (one compiled pass, ``window_near``). [m]"""
+        out = np.empty(len(ub), dtype=np.uint8)
+        window_near(np.ascontiguousarray(ub, dtype=np.int64), self.b0,
+                    np.asarray(v, dtype=np.float64),
+                    _NO_Z if z is None else np.asarray(z, dtype=np.float64),
+                    self.v_min, self.v_max, self.z_min, self.z_max, self.reach_m + _EPS_M, out)
+        return out.view(bool)
 
 
 def _state_points(points: np.ndarray, sub: np.ndarray, curves: list[np.ndarray],
@@ -1250,13 +1249,13 @@ def _state_points(points: np.ndarray, sub: np.ndarray, curves: list[np.ndarray],
                   ) -> tuple[np.ndarray, ...]:
     """The candidates ``sub`` of one wire state that can be within ``reach_m`` of any of its
     curves (plan, or 3-D with ``three_d``), with their station bins, offsets and heights."""
-    p = take_rows(points, sub)
-    u, v = _frame(p[:, :2], origin, axis)
+    x, y, z = take_columns(points, sub)  # the rows' columns, gathered in one pass
+    dx, dy = x - origin[0], y - origin[1]
+    u, v = dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]  # _frame's arithmetic
     ub = np.floor(u / _BIN_M).astype(np.int64)
     window = _CurveWindow(curves, origin, axis, reach_m)
-    b, ok = window.bins(ub)
-    keep = np.flatnonzero(window.maybe_near(b, ok, v, p[:, 2] if three_d else None))
-    return sub[keep], ub[keep], v[keep], p[keep, 2]
+    keep = np.flatnonzero(window.maybe_near(ub, v, z if three_d else None))
+    return sub[keep], ub[keep], v[keep], z[keep]
 
 
 def _frame(xy: np.ndarray, origin: np.ndarray, axis: np.ndarray
@@ -1298,11 +1297,11 @@ def _ground_candidates(points: np.ndarray, near: tuple, curve: np.ndarray, origi
     if len(sub) == 0:
         return none
     window = _CurveWindow(curve, origin, axis, lateral_m)
-    b, ok = window.bins(u)
-    at = np.flatnonzero(window.maybe_near(b, ok, v))
+    at = np.flatnonzero(window.maybe_near(u, v))
     if at.size == 0:
         return none
-    low = window.z_min[b[at]] - z[at] - _EPS_M          # wire height above the point, at least
+    # wire height above the point, at least (a point kept lies in a bin of the window)
+    low = window.z_min[u[at] - window.b0] - z[at] - _EPS_M
     pick = low - ci_max_m - _EPS_M < required[at]
     # The lowest clearance: measure the points with the lowest bounds too, until one is under
     # the wire; no point whose bound is above the lowest clearance measured can be lower.
