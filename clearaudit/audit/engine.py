@@ -1251,19 +1251,12 @@ def _state_points(points: np.ndarray, sub: np.ndarray, curves: list[np.ndarray],
     curves (plan, or 3-D with ``three_d``), with their station bins, offsets and heights."""
     x, y, z = take_columns(points, sub)  # the rows' columns, gathered in one pass
     dx, dy = x - origin[0], y - origin[1]
-    u, v = dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]  # _frame's arithmetic
+    # station along and offset across the plan axis (unit vector) from the origin [m]
+    u, v = dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]
     ub = np.floor(u / _BIN_M).astype(np.int64)
     window = _CurveWindow(curves, origin, axis, reach_m)
     keep = np.flatnonzero(window.maybe_near(ub, v, z if three_d else None))
     return sub[keep], ub[keep], v[keep], z[keep]
-
-
-def _frame(xy: np.ndarray, origin: np.ndarray, axis: np.ndarray
-           ) -> tuple[np.ndarray, np.ndarray]:
-    """Station along and offset across a plan axis (unit vector) from ``origin``. [m]"""
-    dx = xy[:, 0] - origin[0]
-    dy = xy[:, 1] - origin[1]
-    return dx * axis[0] + dy * axis[1], dy * axis[0] - dx * axis[1]
 
 
 def _state_axis(curves: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
