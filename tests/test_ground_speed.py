@@ -157,6 +157,27 @@ def test_compiled_grid_locations_equal_the_numpy_form():
     assert np.isnan(odd.sampler()(np.ones((4, 4)))[0])
 
 
+def test_bilinear_residual_equals_sampling_then_numpy_subtract_and_compress():
+    # reference: the sampler's own values, numpy's float32 subtraction and numpy.compress
+    from clearaudit.classify.grid import GridFrame
+
+    rng = np.random.default_rng(47)
+    for case in range(12):
+        n = int(rng.integers(1, 30_000))
+        xy = rng.normal(size=(n, 2)) * rng.uniform(5, 200, 2) + rng.uniform(-1e3, 1e3, 2)
+        frame, _ = GridFrame.fit_locate(xy, 1.0, margin=1.0)
+        pts = xy + (rng.normal(size=xy.shape) * 30 if case % 3 == 0 else 0.0)  # some outside
+        at = frame.locate(pts).sampler()
+        grid = rng.normal(size=frame.shape).astype(np.float32) * 3 + 100
+        z = (rng.normal(size=n) * 2 + 100).astype(np.float32)
+        inside = rng.random(n) < rng.uniform(0, 1)
+        resid, picked = at.residual(grid, z, inside)
+        want = np.subtract(z, at(grid))
+        np.testing.assert_array_equal(resid, want)
+        np.testing.assert_array_equal(picked, np.compress(inside, want))
+        assert resid.dtype == picked.dtype == np.float32
+
+
 def test_compact_voxel_keys_are_one_number_per_voxel():
     # reference: the voxel triple floor(xyz / e); equal keys <=> equal triples
     rng = np.random.default_rng(3)

@@ -70,6 +70,51 @@ def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
             out[i] = upper + lower
 
 
+def bilinear_residual(const float[::1] grid, const index[::1] k00, const float[::1] wa,
+                      const float[::1] wb, const unsigned char[::1] outside, Py_ssize_t row,
+                      const float[::1] z, const unsigned char[::1] inside, float[::1] resid,
+                      float[::1] picked):
+    """``resid = z - bilinear(grid)`` (float32, NaN outside: :func:`bilinear`'s arithmetic
+    and order, then one float32 subtraction) and, in point order, the residuals of the
+    points with ``inside`` set copied to the front of ``picked`` (``numpy.compress``);
+    returns how many were picked."""
+    cdef Py_ssize_t n = k00.shape[0], size = grid.shape[0], i, k, m = 0
+    cdef float a, b, v00, lower, upper, value
+    if wa.shape[0] != n or wb.shape[0] != n or outside.shape[0] != n or z.shape[0] != n \
+            or inside.shape[0] != n or resid.shape[0] != n or picked.shape[0] < n:
+        raise ValueError("the point arrays must have the same length")
+    if row < 1:
+        raise ValueError("a grid row holds at least one cell")
+    for i in range(n):
+        if k00[i] < 0 or k00[i] + row + 1 >= size:
+            raise IndexError("a point's cell is outside the grid")
+    with nogil:
+        for i in range(n):
+            if outside[i]:
+                value = NAN
+            else:
+                k = k00[i]
+                a = wa[i]
+                b = wb[i]
+                v00 = grid[k]
+                lower = grid[k + 1] - v00
+                lower = lower * b
+                lower = lower + v00
+                v00 = grid[k + row]
+                upper = grid[k + row + 1] - v00
+                upper = upper * b
+                upper = upper + v00
+                upper = upper - lower
+                upper = upper * a
+                value = upper + lower
+            value = z[i] - value
+            resid[i] = value
+            if inside[i]:
+                picked[m] = value
+                m += 1
+    return m
+
+
 cdef inline uint32_t _order_key(float v) noexcept nogil:
     """A key whose unsigned order is the order of the float32 values (-0 before +0)."""
     cdef uint32_t bits

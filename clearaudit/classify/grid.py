@@ -13,6 +13,7 @@ from scipy import ndimage
 from ..arrays import column_bounds, positions
 from ..threads import run_chunks
 from .kernels import bilinear as _bilinear
+from .kernels import bilinear_residual as _bilinear_residual
 from .kernels import cell_extreme as _cell_extreme
 from .kernels import flat_cells as _flat_cells
 from .kernels import jacobi_sweep as _jacobi_sweep
@@ -321,8 +322,9 @@ class BilinearSampler:
                                np.take(self.b, which), np.take(self.outside, which),
                                self.shape, self.row)
 
-    def __call__(self, grid: np.ndarray) -> np.ndarray:
-        """Grid values at the points, in the grid's dtype (float32 grids: half the traffic)."""
+    def _flat_grid(self, grid: np.ndarray) -> np.ndarray:
+        """The grid as the kernels read it: contiguous, flat, float32 or float64, padded to
+        two cells across."""
         g = np.asarray(grid)
         if g.shape != self.shape:
             raise ValueError("grid shape does not match the sampler's frame")
@@ -332,10 +334,28 @@ class BilinearSampler:
         dtype = g.dtype if g.dtype in (np.float32, np.float64) else np.float64
         if g.dtype != dtype:
             g = g.astype(dtype)
-        out = np.empty(len(self.k00), dtype)
+        return np.ascontiguousarray(g)
+
+    def residual(self, grid: np.ndarray, z: np.ndarray, inside: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+        """``z - self(grid)`` for a float32 grid and float32 ``z``, and those residuals where
+        ``inside`` is set, in point order (``numpy.compress``), in one compiled pass."""
+        g = self._flat_grid(np.asarray(grid, dtype=np.float32))
+        n = len(self.k00)
+        resid, picked = np.empty(n, np.float32), np.empty(n, np.float32)
+        k00, wa, wb = (np.ascontiguousarray(v) for v in (self.k00, self.a, self.b))
+        m = _bilinear_residual(g, k00, wa, wb, np.ascontiguousarray(self.outside).view(np.uint8),
+                               self.row, np.ascontiguousarray(z, dtype=np.float32),
+                               np.ascontiguousarray(inside, dtype=bool).view(np.uint8), resid,
+                               picked)
+        return resid, picked[:m]
+
+    def __call__(self, grid: np.ndarray) -> np.ndarray:
+        """Grid values at the points, in the grid's dtype (float32 grids: half the traffic)."""
+        g = self._flat_grid(grid)
+        out = np.empty(len(self.k00), g.dtype)
         row = self.row
 
-        g = np.ascontiguousarray(g)
         k00, wa, wb = (np.ascontiguousarray(v) for v in (self.k00, self.a, self.b))
         outside = np.ascontiguousarray(self.outside).view(np.uint8)
 
