@@ -29,84 +29,79 @@ cdef int _check_cells(const index[::1] cell, Py_ssize_t m) except -1:
     return 0
 
 
+cdef int _check_corners(const index[::1] k00, Py_ssize_t row, Py_ssize_t size) except -1:
+    """Raise unless every lower cell centre ``k00`` has its three neighbours of the bilinear
+    interpolation inside a flat grid of ``size`` cells in rows of ``row`` (the kernels below
+    index without bounds checks)."""
+    cdef Py_ssize_t i
+    if row < 1:
+        raise ValueError("a grid row holds at least one cell")
+    for i in range(k00.shape[0]):
+        if k00[i] < 0 or k00[i] + row + 1 >= size:
+            raise IndexError("a point's cell is outside the grid")
+    return 0
+
+
+cdef inline real _bilinear_at(const real *grid, Py_ssize_t k, Py_ssize_t row, real a,
+                              real b) noexcept nogil:
+    """The flat grid's value at weights ``a`` (across rows) and ``b`` (along a row) from the
+    lower cell centre ``k``: ``lower = (v01 - v00) b + v00``, ``upper = (v11 - v10) b +
+    v10``, ``(upper - lower) a + lower``, each operation rounded in the grid's precision."""
+    cdef real v00, lower, upper
+    v00 = grid[k]
+    lower = grid[k + 1] - v00
+    lower = lower * b
+    lower = lower + v00
+    v00 = grid[k + row]
+    upper = grid[k + row + 1] - v00
+    upper = upper * b
+    upper = upper + v00
+    upper = upper - lower
+    upper = upper * a
+    return upper + lower
+
+
 def bilinear(const real[::1] grid, const index[::1] k00, const float[::1] wa,
              const float[::1] wb, const unsigned char[::1] outside, Py_ssize_t row,
              real[::1] out):
     """``out[i]``: the grid (flat, rows of ``row`` cells) at point ``i`` — lower cell centre
-    ``k00[i]``, weights ``wa[i]`` (across rows) and ``wb[i]`` (along a row); NaN outside.
-
-    ``lower = (v01 - v00) b + v00``, ``upper = (v11 - v10) b + v10``,
-    ``value = (upper - lower) a + lower``, in the grid's precision.
-    """
-    cdef Py_ssize_t n = k00.shape[0]
+    ``k00[i]``, weights ``wa[i]`` (across rows) and ``wb[i]`` (along a row); NaN outside
+    (:func:`_bilinear_at`, in the grid's precision)."""
+    cdef Py_ssize_t n = k00.shape[0], i
     if wa.shape[0] != n or wb.shape[0] != n or outside.shape[0] != n or out.shape[0] != n:
         raise ValueError("the point arrays must have the same length")
-    if row < 1:
-        raise ValueError("a grid row holds at least one cell")
-    cdef Py_ssize_t size = grid.shape[0]
-    cdef Py_ssize_t i, k
-    cdef real a, b, v00, lower, upper
-    for i in range(n):
-        if k00[i] < 0 or k00[i] + row + 1 >= size:
-            raise IndexError("a point's cell is outside the grid")
+    _check_corners(k00, row, grid.shape[0])
+    if n == 0:
+        return
+    cdef const real *g = &grid[0]
     with nogil:
         for i in range(n):
             if outside[i]:
                 out[i] = NAN
-                continue
-            k = k00[i]
-            a = <real> wa[i]
-            b = <real> wb[i]
-            v00 = grid[k]
-            lower = grid[k + 1] - v00
-            lower = lower * b
-            lower = lower + v00
-            v00 = grid[k + row]
-            upper = grid[k + row + 1] - v00
-            upper = upper * b
-            upper = upper + v00
-            upper = upper - lower
-            upper = upper * a
-            out[i] = upper + lower
+            else:
+                out[i] = _bilinear_at(g, k00[i], row, <real> wa[i], <real> wb[i])
 
 
 def bilinear_residual(const float[::1] grid, const index[::1] k00, const float[::1] wa,
                       const float[::1] wb, const unsigned char[::1] outside, Py_ssize_t row,
                       const float[::1] z, const unsigned char[::1] inside, float[::1] resid,
                       float[::1] picked):
-    """``resid = z - bilinear(grid)`` (float32, NaN outside: :func:`bilinear`'s arithmetic
-    and order, then one float32 subtraction) and, in point order, the residuals of the
-    points with ``inside`` set copied to the front of ``picked`` (``numpy.compress``);
-    returns how many were picked."""
-    cdef Py_ssize_t n = k00.shape[0], size = grid.shape[0], i, k, m = 0
-    cdef float a, b, v00, lower, upper, value
+    """``resid = z - bilinear(grid)`` (float32, NaN outside: :func:`bilinear`'s values, then
+    one float32 subtraction) and, in point order, the residuals of the points with
+    ``inside`` set copied to the front of ``picked`` (``numpy.compress``); returns how many
+    were picked."""
+    cdef Py_ssize_t n = k00.shape[0], i, m = 0
+    cdef float value
     if wa.shape[0] != n or wb.shape[0] != n or outside.shape[0] != n or z.shape[0] != n \
             or inside.shape[0] != n or resid.shape[0] != n or picked.shape[0] < n:
         raise ValueError("the point arrays must have the same length")
-    if row < 1:
-        raise ValueError("a grid row holds at least one cell")
-    for i in range(n):
-        if k00[i] < 0 or k00[i] + row + 1 >= size:
-            raise IndexError("a point's cell is outside the grid")
+    _check_corners(k00, row, grid.shape[0])
+    if n == 0:
+        return 0
+    cdef const float *g = &grid[0]
     with nogil:
         for i in range(n):
-            if outside[i]:
-                value = NAN
-            else:
-                k = k00[i]
-                a = wa[i]
-                b = wb[i]
-                v00 = grid[k]
-                lower = grid[k + 1] - v00
-                lower = lower * b
-                lower = lower + v00
-                v00 = grid[k + row]
-                upper = grid[k + row + 1] - v00
-                upper = upper * b
-                upper = upper + v00
-                upper = upper - lower
-                upper = upper * a
-                value = upper + lower
+            value = NAN if outside[i] else _bilinear_at(g, k00[i], row, wa[i], wb[i])
             value = z[i] - value
             resid[i] = value
             if inside[i]:
