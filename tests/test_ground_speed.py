@@ -87,6 +87,39 @@ def test_compiled_block_counts_equal_numpy_bincount_sums():
             isolated_in_block(np.array([0], dtype), 27, 3, 3, 1, np.empty(1, np.uint8))
 
 
+def test_block_byte_counts_saturate_without_changing_answers(monkeypatch):
+    # reference: numpy.bincount's exact counts (and the brute-force definition through the
+    # sorted form): voxels of 200-700 points make the kernel's byte counts stop at 255
+    import clearaudit.classify.noise as noise
+    from clearaudit.classify.kernels import isolated_in_block
+    from clearaudit.classify.noise import _block_offsets
+
+    rng = np.random.default_rng(5)
+    n_x, n_y, n_z = 9, 8, 7
+    heavy = np.repeat(rng.integers(1, 6, size=(4, 3)), [700, 300, 254, 200], axis=0)
+    light = np.column_stack([rng.integers(1, d - 1, 40) for d in (n_x, n_y, n_z)])
+    ijk = np.concatenate([heavy, light])
+    keys = ((ijk[:, 0] * n_y + ijk[:, 1]) * n_z + ijk[:, 2]).astype(np.int64)
+    counts = np.bincount(keys, minlength=n_x * n_y * n_z)
+    total = sum(counts[keys + off] for off in _block_offsets(n_y, n_z))
+    for m in (1, 3, 200, 253, 254):
+        want = (counts[keys] - 1 < m) & (total - 1 < m)
+        got = np.empty(len(keys), np.uint8)
+        isolated_in_block(keys, n_x * n_y * n_z, n_y, n_z, m, got)
+        np.testing.assert_array_equal(got.view(bool), want)
+    with pytest.raises(ValueError, match="254"):
+        isolated_in_block(keys, n_x * n_y * n_z, n_y, n_z, 255, np.empty(len(keys), np.uint8))
+    # more than 254 neighbours asked for: the sorted form answers (the dense count can't)
+    xyz = (ijk + rng.uniform(0.05, 0.95, size=ijk.shape)) * 3.0
+    calls = []
+    dense = noise._isolated_dense
+    monkeypatch.setattr(noise, "_isolated_dense", lambda *a: calls.append(1) or dense(*a))
+    for m in (254, 300):
+        np.testing.assert_array_equal(noise.isolated_points(xyz, 3.0, m),
+                                      _isolated_brute_force(xyz, 3.0, m))
+    assert len(calls) == 1  # 254 counted densely, 300 sorted
+
+
 def _locate_numpy(frame, xy):
     """GridFrame.locate's numpy form (float64 in this order, rounded to float32 once)."""
     a = frame.axes

@@ -7,7 +7,7 @@ precision, in the order the numpy form of the same formula used, so the values a
 from libc.float cimport DBL_MAX
 from libc.math cimport NAN, fabs, fabsf, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
-from libc.stdlib cimport free, malloc
+from libc.stdlib cimport calloc, free, malloc
 from libc.string cimport memcpy
 
 ctypedef fused real:
@@ -541,12 +541,19 @@ def isolated_in_block(const index[::1] keys, Py_ssize_t n_voxels, Py_ssize_t n_y
     voxel on every side of the occupied ones), whether fewer than ``min_neighbours`` other
     points lie in its 3 × 3 × 3 block of voxels: the points of every voxel counted in one
     pass, then each point of a voxel that is itself sparse sums its block's 27 counts (the
-    counts and sums of ``noise._isolated_dense``'s numpy form, per point)."""
+    counts and sums of ``noise._isolated_dense``'s numpy form, per point).
+
+    The counts are bytes that stop at 255 (one byte a voxel; the pages of voxels no point
+    comes near are never touched): a voxel or a block that reaches 255 holds at least 255
+    points, more than ``min_neighbours`` (at most 254), so the answers are those of exact
+    counts."""
     cdef Py_ssize_t n = keys.shape[0], i, a, b, c
-    cdef int64_t k, total, count
+    cdef int64_t k, total
     cdef int64_t off[27]
     if out.shape[0] != n or n_voxels < 1 or n_y < 3 or n_z < 3:
         raise ValueError("isolated_in_block: mismatched shapes")
+    if min_neighbours > 254:
+        raise ValueError("isolated_in_block: at most 254 neighbours (byte counts)")
     c = 0
     for a in range(-1, 2):
         for b in range(-1, 2):
@@ -556,18 +563,17 @@ def isolated_in_block(const index[::1] keys, Py_ssize_t n_voxels, Py_ssize_t n_y
     for i in range(n):  # every neighbour number valid: the occupied voxels lie off the border
         if keys[i] + off[0] < 0 or keys[i] + off[26] >= n_voxels:
             raise IndexError("isolated_in_block: a voxel lies on the border of the block")
-    cdef int32_t *counts = <int32_t *> malloc(n_voxels * sizeof(int32_t))
+    cdef unsigned char *counts = <unsigned char *> calloc(n_voxels, 1)
     if not counts:
         raise MemoryError()
     with nogil:
-        for k in range(n_voxels):
-            counts[k] = 0
-        for i in range(n):
-            counts[keys[i]] += 1
         for i in range(n):
             k = keys[i]
-            count = counts[k]
-            if count - 1 >= min_neighbours:
+            if counts[k] != 255:
+                counts[k] += 1
+        for i in range(n):
+            k = keys[i]
+            if counts[k] - 1 >= min_neighbours:
                 out[i] = 0
                 continue
             total = 0

@@ -15,9 +15,13 @@ from ..arrays import column_bounds
 from ..threads import run_chunks
 
 _CHUNK = 1 << 16  # points per chunk of the per-point passes (cache-sized temporaries)
-#: Below this many voxels in the block (or twice the points), the isolation test counts every
-#: voxel of the block (8 bytes a voxel) instead of sorting the points' voxel numbers.
-_DENSE_MIN_VOXELS = 1 << 20
+#: Below this many voxels in the block (or ``_DENSE_VOXELS_PER_POINT`` times the points), the
+#: isolation test counts every voxel of the block (one byte a voxel) instead of sorting the
+#: points' voxel numbers.
+_DENSE_MIN_VOXELS = 1 << 24
+_DENSE_VOXELS_PER_POINT = 16
+#: The most neighbours the dense count answers for (its counts are bytes that stop at 255).
+_DENSE_MAX_NEIGHBOURS = 254
 
 
 def compact_voxel_keys(xyz: np.ndarray, voxel: float) -> tuple[np.ndarray, tuple[int, int, int]]:
@@ -83,9 +87,10 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
 
     Notes
     -----
-    When the block of voxels around the points is small (at most twice as many voxels as
-    points, as in a tile of a corridor), the points per voxel are counted over the whole block
-    (``bincount``) and looked up directly. Otherwise the voxel numbers are sorted once (no
+    When the block of voxels around the points is small (at most sixteen times as many voxels
+    as points, as in a tile of a corridor, bends included), the points per voxel are counted
+    over the whole block (one byte a voxel) and looked up directly. Otherwise (or with more
+    than 254 neighbours asked for) the voxel numbers are sorted once (no
     inverse permutation): the sorted run lengths are the points per voxel, only voxels with
     fewer than ``min_neighbours + 1`` points have their block counted (binary search of the
     26 neighbours among the occupied voxels), and the points of the few isolated voxels are
@@ -97,7 +102,8 @@ def isolated_points(xyz: np.ndarray, voxel: float, min_neighbours: int) -> np.nd
         return isolated
     keys, (n_x, n_y, n_z) = compact_voxel_keys(xyz, voxel)
     n_voxels = n_x * n_y * n_z
-    if n_voxels <= max(2 * n, _DENSE_MIN_VOXELS):
+    if n_voxels <= max(_DENSE_VOXELS_PER_POINT * n, _DENSE_MIN_VOXELS) \
+            and min_neighbours <= _DENSE_MAX_NEIGHBOURS:
         return _isolated_dense(keys, n_voxels, n_y, n_z, min_neighbours)
     ordered = np.sort(keys)
     first = np.empty(n, bool)
@@ -152,11 +158,13 @@ def _isolated_dense(keys: np.ndarray, n_voxels: int, n_y: int, n_z: int,
                     min_neighbours: int) -> np.ndarray:
     """:func:`isolated_points` on a block of few voxels: a count per voxel of the whole block.
 
-    The same counts as the sorted form, from one counting pass over every voxel number (the
+    The same answers as the sorted form, from one counting pass over every voxel number (the
     block's numbers have a border voxel on each side, so every neighbour number is valid);
-    each point of a sparse voxel then sums its block (compiled: ``isolated_in_block``; the
-    numpy form of ``bincount``, the sparse voxels' 27 shifted sums and a lookup per point
-    took 28 ms on a 1.6 M-point tile).
+    each point of a sparse voxel then sums its block (compiled: ``isolated_in_block``, byte
+    counts that stop at 255, so ``min_neighbours`` at most 254; the numpy form of
+    ``bincount``, the sparse voxels' 27 shifted sums and a lookup per point took 28 ms on a
+    1.6 M-point tile). On the tiles of a bent line the block holds 7-12 voxels a point: the
+    sorted form took 75-83 ms on such a 1.5 M-point tile, this one 20-35 ms.
     """
     from .kernels import isolated_in_block
 
