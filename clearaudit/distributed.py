@@ -267,10 +267,11 @@ def _task(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Any:
     tiled run on 2 threads was 10 % slower (alternating runs); the stages still trim.
     """
     from .errors import ClearauditError, is_disk_full
+    from .threads import fewer_gc_passes
     from .tiling import release_free_memory, small_pages
 
     try:
-        with small_pages():
+        with small_pages(), fewer_gc_passes():
             return fn(*args, **kwargs)
     except Exception as exc:
         # the errors a user can meet (bad input, a full disk) come back as a value that the

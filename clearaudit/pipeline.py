@@ -233,12 +233,12 @@ def run_audit(options: AuditOptions, console=None, *, show_summary: bool = True)
 
     ``console``: progress bars and (with ``show_summary``) the closing summary go there."""
     from .distributed import check_engine
-    from .threads import blas_one_thread, run_threads
+    from .threads import blas_one_thread, fewer_gc_passes, run_threads
     from .tiling import small_pages
 
     check_engine(options)  # threads, workers, scheduler (it must answer) before any work
     try:
-        with run_threads(options.threads), small_pages(), blas_one_thread():
+        with run_threads(options.threads), small_pages(), blas_one_thread(), fewer_gc_passes():
             return _run_audit(options, console, show_summary)
     except ClearauditError:
         raise

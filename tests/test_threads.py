@@ -228,6 +228,39 @@ def test_blas_one_thread_of_overlapping_runs_restores_once_the_last_ends():
     assert _blas_counts() == before
 
 
+def test_fewer_gc_passes_raises_the_thresholds_and_restores_them():
+    # reference: Python's own gc.get_threshold (common practice, no source: the collector's
+    # thresholds only change when it runs, never a result); overlapping runs restore once,
+    # a collector the program turned off stays off, thresholds already higher stay
+    import gc
+
+    from clearaudit.threads import RUN_GC_THRESHOLDS, fewer_gc_passes
+
+    before = gc.get_threshold()
+    try:
+        gc.set_threshold(700, 10, 10)
+        a, b = fewer_gc_passes(), fewer_gc_passes()
+        assert a.__enter__() == (700, 10, 10)
+        assert gc.get_threshold() == RUN_GC_THRESHOLDS
+        b.__enter__()
+        a.__exit__(None, None, None)
+        assert gc.get_threshold() == RUN_GC_THRESHOLDS
+        b.__exit__(None, None, None)
+        assert gc.get_threshold() == (700, 10, 10)
+        gc.set_threshold(50_000, 5, 500)
+        with fewer_gc_passes():
+            assert gc.get_threshold() == (50_000, 50, 500)
+        assert gc.get_threshold() == (50_000, 5, 500)
+        gc.disable()
+        try:
+            with fewer_gc_passes() as was:
+                assert was is None and gc.get_threshold() == (50_000, 5, 500)
+        finally:
+            gc.enable()
+    finally:
+        gc.set_threshold(*before)
+
+
 def test_shared_setting_applies_once_and_restores_after_the_last_holder():
     # the mechanism of small_pages, kept_heap and blas_one_thread: a process-wide value
     # (here a plain dict) applied by the first holder, restored by the last one out, also
