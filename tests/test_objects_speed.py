@@ -85,6 +85,39 @@ def test_flat_index_of_anchored_frames_matches_grid_frame():
     assert np.array_equal(rotated.flat_index(xy), _rotated_flat_index(rotated, xy))
 
 
+@pytest.mark.parametrize("itype", [np.int32, np.int64])
+def test_cell_offsets_equal_the_numpy_form(itype):
+    # reference: the roof search's former numpy form (numpy.floor of u / cell cast and
+    # clipped, then u - (i + 0.5) cell): the same cells and offsets, value for value, for
+    # points on cell edges, one ulp either side of them, beyond the grid and not finite
+    from clearaudit.classify.kernels import cell_offsets
+
+    rng = np.random.default_rng(17)
+    for cell, (n_u, n_v) in ((1.0, (40, 31)), (0.7, (9, 1)), (2.5, (1, 1)), (1.0 / 3, (50, 7))):
+        u = rng.uniform(-2 * cell, (n_u + 2) * cell, 5000)
+        v = rng.uniform(-2 * cell, (n_v + 2) * cell, 5000)
+        edges = np.arange(n_u + 1) * cell
+        u[:len(edges)] = edges
+        u[len(edges):2 * len(edges)] = np.nextafter(edges, -np.inf)
+        u[2 * len(edges):3 * len(edges)] = np.nextafter(edges, np.inf)
+        u[-3:], v[-3:] = [np.nan, -0.0, 1e300], [1.5, np.nan, -1e300]
+        # (floored values are first brought within one cell of the grid: numpy's cast of a
+        # value beyond the integers, or of NaN, is undefined; the kernel counts NaN as 0)
+        i = np.clip(np.clip(np.nan_to_num(np.floor(u / cell)), -1, n_u).astype(np.int64), 0,
+                    n_u - 1)
+        j = np.clip(np.clip(np.nan_to_num(np.floor(v / cell)), -1, n_v).astype(np.int64), 0,
+                    n_v - 1)
+        want_flat = (i * n_v + j).astype(itype)
+        want_u, want_v = u - (i + 0.5) * cell, v - (j + 0.5) * cell
+        got_u, got_v, flat = u.copy(), v.copy(), np.empty(len(u), itype)
+        cell_offsets(got_u, got_v, cell, n_u, n_v, flat)
+        np.testing.assert_array_equal(flat, want_flat)
+        np.testing.assert_array_equal(got_u, want_u)
+        np.testing.assert_array_equal(got_v, want_v)
+    with pytest.raises(ValueError):
+        cell_offsets(np.zeros(2), np.zeros(3), 1.0, 2, 2, np.empty(2, itype))
+
+
 def test_column_fill_counts_occupied_slices():
     # reference: numpy.unique of (cell, 1 m slice) pairs, the plain form of the count
     rng = np.random.default_rng(5)

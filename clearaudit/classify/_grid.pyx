@@ -632,6 +632,38 @@ def flat_cells(const float[::1] fu, const float[::1] fv, int64_t n_u, int64_t n_
             out[p] = i * <index>n_v + j
 
 
+cdef inline int64_t _floor_cell(double t, int64_t top) noexcept nogil:
+    """``clip(int(floor(t)), 0, top)`` as numpy computes it for a finite ``t`` (the floored
+    double cast to an integer, then clipped); not a number counts as 0. For ``0 <= t`` the
+    floor is the truncation, so no call to ``floor`` (a library call without SSE 4.1)."""
+    if not t >= 0:  # negative, or not a number
+        return 0
+    if t >= <double>(top + 1):
+        return top
+    return <int64_t>t
+
+
+def cell_offsets(double[::1] u, double[::1] v, double cell, int64_t n_u, int64_t n_v,
+                 index[::1] flat):
+    """The cells of an axis-aligned grid (``n_u`` × ``n_v`` cells of ``cell`` metres, ``u``
+    and ``v`` measured from its corner) and each point's offsets from its cell's centre, in
+    one pass: ``flat = i n_v + j`` with ``i = clip(int(floor(u / cell)), 0, n_u - 1)``
+    (likewise ``j``), then ``u`` and ``v`` overwritten with ``u - (i + 0.5) cell`` and ``v -
+    (j + 0.5) cell`` (float64, each operation as numpy rounds it). A coordinate that is not a
+    number counts as cell 0 (numpy's cast of NaN is undefined)."""
+    cdef Py_ssize_t n = u.shape[0], p
+    cdef int64_t i, j
+    if v.shape[0] != n or flat.shape[0] != n or n_u < 1 or n_v < 1 or not cell > 0:
+        raise ValueError("cell_offsets: mismatched shapes or a cell that is not positive")
+    with nogil:
+        for p in range(n):
+            i = _floor_cell(u[p] / cell, n_u - 1)
+            j = _floor_cell(v[p] / cell, n_v - 1)
+            flat[p] = <index>(i * n_v + j)
+            u[p] = u[p] - (<double>i + 0.5) * cell
+            v[p] = v[p] - (<double>j + 0.5) * cell
+
+
 def sampler_weights(const float[::1] fu, const float[::1] fv, int64_t n_u, int64_t n_v,
                     int64_t m_u, int64_t m_v, unsigned char[::1] outside, index[::1] k00,
                     float[::1] wa, float[::1] wb):

@@ -47,7 +47,7 @@ from ..cloud import (
 )
 from .features import EigenFeatures
 from .grid import GridFrame, cell_max, cell_min, occupied_cells
-from .kernels import plane_residual_sums, plane_solve, plane_sums
+from .kernels import cell_offsets, plane_residual_sums, plane_solve, plane_sums
 from .options import ClassifyOptions
 
 
@@ -1116,18 +1116,15 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         return empty
     shape = grid.shape
     # grid coordinates: the anchored grid is axis-aligned through the local origin, so its
-    # (u, v) are x and y less the corner (the same values and cells as grid.flat_index)
-    # in place on the columns' own copies (x and y are not needed again): same values
+    # (u, v) are x and y less the corner (the same values and cells as grid.flat_index),
+    # in place on the columns' own copies (x and y are not needed again); then each point's
+    # cell and its offsets from the cell's centre in one compiled pass (cell_offsets: the
+    # operations of the numpy form, ``floor(u / cell)`` clipped, ``u - (i + 0.5) cell``)
     u = np.subtract(x, grid.corner[0], out=x)
     v = np.subtract(y, grid.corner[1], out=y)
     del x, y
-    itype = np.int32 if grid.size < 2**31 else np.int64
-    fi = u / grid.cell
-    flat = np.clip(np.floor(fi, out=fi).astype(itype), 0, shape[0] - 1)
-    fi = np.divide(v, grid.cell, out=fi)
-    flat *= shape[1]
-    flat += np.clip(np.floor(fi, out=fi).astype(itype), 0, shape[1] - 1)
-    del fi
+    flat = np.empty(n, np.int32 if grid.size < 2**31 else np.int64)
+    cell_offsets(u, v, float(grid.cell), int(shape[0]), int(shape[1]), flat)
     # occupied cells only: the grid spans the survey's bounding box, which for a long or bent
     # corridor is many times the area holding points (``cid``: grid → occupied cell, -1 empty)
     cells, k, cid = occupied_cells(flat, grid.size, lookup=True)
@@ -1141,9 +1138,7 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
             "min_cell_points": 0.0})
     cnt = np.bincount(k, minlength=m).astype(np.float64)
     ci, cj = np.divmod(cells, shape[1])
-    u -= np.take((ci + 0.5) * grid.cell, k)  # offsets from the cell centre
-    v -= np.take((cj + 0.5) * grid.cell, k)
-    zc, gu, gv, rms, _ = _cell_planes(z, u, v, grid, cells, k, cnt=cnt)
+    zc, gu, gv, rms, _ = _cell_planes(z, u, v, grid, cells, k, cnt=cnt)  # u, v: offsets
     del u, v
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
