@@ -955,18 +955,30 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
 
             # ---- classify: one task per tile
             warm.result()
-            warm_model = _Background(partial(_import_all, ("clearaudit.model.line",)))
+            # the line model's modules are imported once fewer tiles remain than the engine
+            # runs at once (a slot would be idle): not beside the first tiles, whose threads
+            # then wait for the GIL the imports hold
+            warm_model: list[_Background] = []
+
+            def warm_model_when(remaining: int) -> None:
+                if not warm_model and remaining < max(1, engine.n_workers):
+                    warm_model.append(_Background(partial(_import_all, ("clearaudit.model.line",))))
+
+            warm_model_when(len(tiles))
             with record.stage("classify", engine=engine):
                 task = bar.add_task("classify", total=kept, rate="")
                 progress = _stage_progress(bar, task)
                 copts = ClassifyOptions(trust_classes=config.trust_classes)
                 results: list[dict | None] = [None] * len(tiles)
                 done = 0
-                for k, res in engine.run([(classify_tile, (str(work), t, ctx, copts, given_xy), {})
-                                          for t in tiles], costs=tile_costs):
+                for n_done, (k, res) in enumerate(engine.run(
+                        [(classify_tile, (str(work), t, ctx, copts, given_xy), {})
+                         for t in tiles], costs=tile_costs), start=1):
                     results[k] = res
                     done += res["n_owned"]
                     progress(done, kept)
+                    warm_model_when(len(tiles) - n_done)
+                warm_model_when(0)
                 counts: dict[int, int] = {}
                 timings: dict[str, float] = {}
                 for res in results:
@@ -984,7 +996,7 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
                                                                         for r in results)}
 
             # ---- model: from the gathered wire / structure / insulator points
-            warm_model.result()
+            warm_model[0].result()
             with record.stage("model", engine=engine):
                 from .model import build_line_model
                 from .model.line import fit_jobs
