@@ -956,12 +956,14 @@ def _run_tiled(options: AuditOptions, record: RunRecord, paths: list[Path], conf
             # ---- classify: one task per tile
             warm.result()
             # the line model's modules are imported once fewer tiles remain than the engine
-            # runs at once (a slot would be idle): not beside the first tiles, whose threads
-            # then wait for the GIL the imports hold
+            # runs at once (a slot would be idle): not beside the first tiles of this process,
+            # whose threads then wait for the GIL the imports hold (a cluster's tiles run in
+            # its workers: then at once)
             warm_model: list[_Background] = []
 
             def warm_model_when(remaining: int) -> None:
-                if not warm_model and remaining < max(1, engine.n_workers):
+                if not warm_model and (engine.name != "in-process"
+                                       or remaining < max(1, engine.n_workers)):
                     warm_model.append(_Background(partial(_import_all, ("clearaudit.model.line",))))
 
             warm_model_when(len(tiles))
