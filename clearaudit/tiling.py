@@ -741,19 +741,30 @@ class TilePoints:
         return len(self.cls)
 
 
-def _empty_points(n: int) -> tuple[TilePoints, np.ndarray, np.ndarray]:
-    """Uninitialised points for ``n`` records, with their xyz and key as opaque items."""
-    points = TilePoints(np.empty((n, 3)), np.empty(n, np.uint8), np.empty(n, np.int64))
-    return (points, points.xyz.view(_FILL["xyz"]).reshape(n),
-            points.key.view(_FILL["key"]).reshape(n))
+class _PointsFill:
+    """Uninitialised :class:`TilePoints` for ``n`` records, filled from record fields in
+    order (xyz and key copied as opaque 24- and 8-byte items)."""
+
+    def __init__(self, n: int):
+        self.points = TilePoints(np.empty((n, 3)), np.empty(n, np.uint8), np.empty(n, np.int64))
+        self._xyz = self.points.xyz.view(_FILL["xyz"]).reshape(n)
+        self._key = self.points.key.view(_FILL["key"]).reshape(n)
+        self.at = 0
+
+    def put(self, fill: np.ndarray) -> None:
+        """Copy the fields of ``fill`` (records viewed as :data:`_FILL`) to the next rows."""
+        k = len(fill)
+        rows = slice(self.at, self.at + k)
+        self._xyz[rows], self.points.cls[rows], self._key[rows] = (
+            fill["xyz"], fill["cls"], fill["key"])
+        self.at += k
 
 
 def points_of(records: np.ndarray) -> TilePoints:
     """The fields of a :data:`RECORD` array (copies)."""
-    points, xyz, key = _empty_points(len(records))
-    fill = _records(records).view(_FILL)
-    xyz[:], points.cls[:], key[:] = fill["xyz"], fill["cls"], fill["key"]
-    return points
+    out = _PointsFill(len(records))
+    out.put(_records(records).view(_FILL))
+    return out.points
 
 
 def read_points(work: str | Path, cells: tuple[tuple[int, int], ...],
@@ -767,12 +778,9 @@ def read_points(work: str | Path, cells: tuple[tuple[int, int], ...],
     """
     files = [f for c in cells for f in _cell_files(Path(work), c)]
     sizes = [f.stat().st_size // RECORD.itemsize for f in files]
-    n = sum(sizes)
-    extra = 0 if then is None else len(then)
-    points, xyz, key = _empty_points(n + extra)
+    out = _PointsFill(sum(sizes) + (0 if then is None else len(then)))
     buf = np.empty(min(READ_STEP_RECORDS, max(sizes, default=0)), dtype=_FILL)
     raw = buf.view(np.uint8)
-    at = 0
     for f, m in zip(files, sizes, strict=True):
         with open(f, "rb") as fh:
             for start in range(0, m, len(buf)):
@@ -781,14 +789,10 @@ def read_points(work: str | Path, cells: tuple[tuple[int, int], ...],
                 if got != k * RECORD.itemsize:
                     raise OSError(f"{f}: expected {m * RECORD.itemsize} bytes, read "
                                   f"{start * RECORD.itemsize + got}")
-                step = buf[:k]
-                xyz[at:at + k], points.cls[at:at + k], key[at:at + k] = (
-                    step["xyz"], step["cls"], step["key"])
-                at += k
-    if extra:
-        fill = _records(then).view(_FILL)
-        xyz[n:], points.cls[n:], key[n:] = fill["xyz"], fill["cls"], fill["key"]
-    return points
+                out.put(buf[:k])
+    if then is not None and len(then):
+        out.put(_records(then).view(_FILL))
+    return out.points
 
 
 def read_cells_at(work: str | Path, cells: tuple[tuple[int, int], ...],

@@ -244,7 +244,8 @@ def window_near(const int64_t[::1] ub, int64_t b0, const double[:] v, const doub
     """The station-binned window test of points in one pass: ``out[i]`` is 1 when the
     point's bin ``b = ub[i] - b0`` lies in ``0 .. nb - 1`` and ``v_min[b] - r <= v[i] <=
     v_max[b] + r`` (and the same for ``z`` against ``z_min``, ``z_max`` unless ``z`` is
-    empty): the comparisons of the numpy form (``_CurveWindow.bins`` and ``maybe_near``)."""
+    empty): the comparisons of the numpy form it replaced (the clipped bins and the window's
+    bounds, ``tests/test_audit_clearance.py``)."""
     cdef Py_ssize_t n = ub.shape[0], nb = v_min.shape[0], i
     cdef int64_t b
     cdef double x

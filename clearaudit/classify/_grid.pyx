@@ -632,17 +632,6 @@ def flat_cells(const float[::1] fu, const float[::1] fv, int64_t n_u, int64_t n_
             out[p] = i * <index>n_v + j
 
 
-cdef inline int64_t _floor_cell(double t, int64_t top) noexcept nogil:
-    """``clip(int(floor(t)), 0, top)`` as numpy computes it for a finite ``t`` (the floored
-    double cast to an integer, then clipped); not a number counts as 0. For ``0 <= t`` the
-    floor is the truncation, so no call to ``floor`` (a library call without SSE 4.1)."""
-    if not t >= 0:  # negative, or not a number
-        return 0
-    if t >= <double>(top + 1):
-        return top
-    return <int64_t>t
-
-
 def cell_offsets(double[::1] u, double[::1] v, double cell, int64_t n_u, int64_t n_v,
                  index[::1] flat):
     """The cells of an axis-aligned grid (``n_u`` × ``n_v`` cells of ``cell`` metres, ``u``
@@ -858,6 +847,17 @@ cdef inline int64_t _floor_int(double t) noexcept nogil:
     if t < <double>i:
         i -= 1
     return i
+
+
+cdef inline int64_t _floor_cell(double t, int64_t top) noexcept nogil:
+    """``clip(int(floor(t)), 0, top)`` as numpy computes it for a finite ``t`` (the floored
+    double cast to an integer, then clipped; :func:`_floor_int` once ``t`` lies in the
+    cells, so a value beyond int64's range is never cast); not a number counts as 0."""
+    if not t >= 0:  # negative, or not a number
+        return 0
+    if t >= <double>(top + 1):
+        return top
+    return _floor_int(t)
 
 
 cdef inline bint _near_polyline(double px, double py, const double[:, ::1] seg, double b2,

@@ -66,11 +66,8 @@ class GridFrame:
         axes, centre
             Reuse the orientation of another frame (optional).
         """
-        if cell <= 0:
-            raise ValueError("grid cell size must be positive")
         xy = np.asarray(xy, dtype=np.float64)
-        if len(xy) == 0:
-            raise ValueError("cannot fit a grid to no points")
+        _check_fit(len(xy), cell)
         centre, axes = _orientation(xy, axes, centre)
         dx = xy[:, 0] - centre[0]
         dy = xy[:, 1] - centre[1]
@@ -78,7 +75,7 @@ class GridFrame:
         lo, hi = column_bounds(uv)
         lo, hi = lo - margin, hi + margin
         shape = tuple(int(s) for s in np.maximum(np.ceil((hi - lo) / cell + 1e-9), 1))
-        return cls(np.asarray(centre, float), np.asarray(axes, float), lo, float(cell), shape)
+        return cls(centre, axes, lo, float(cell), shape)
 
     @classmethod
     def fit_locate(cls, xy: np.ndarray, cell: float, margin: float = 0.0
@@ -100,10 +97,7 @@ class GridFrame:
         sample = xy[:: max(1, len(xy) // 200_000)]
         if sample.ndim == 2 and sample.strides[0] >= sample.strides[1]:
             sample = np.ascontiguousarray(sample)
-        if cell <= 0:
-            raise ValueError("grid cell size must be positive")
-        if len(sample) == 0:
-            raise ValueError("cannot fit a grid to no points")
+        _check_fit(len(sample), cell)
         # the orientation :meth:`fit` gives the sample (its corner and shape are not needed)
         centre, axes = _orientation(np.asarray(sample, dtype=np.float64))
         # cell coordinates relative to the centre, then shifted to the fitted corner
@@ -204,6 +198,14 @@ class GridFrame:
 
         run_chunks(work, len(xy), _CHUNK)
         return PointLocation(fu, fv, self.shape)
+
+
+def _check_fit(n: int, cell: float) -> None:
+    """The checks of :meth:`GridFrame.fit`: a positive cell and at least one point."""
+    if cell <= 0:
+        raise ValueError("grid cell size must be positive")
+    if n == 0:
+        raise ValueError("cannot fit a grid to no points")
 
 
 def _orientation(xy: np.ndarray, axes: np.ndarray | None = None,
