@@ -528,6 +528,15 @@ def test_occupied_cells_match_numpy_unique():
         assert np.array_equal(lookup[cells], np.arange(len(cells)))
         assert np.all(lookup[np.setdiff1d(np.arange(size), cells)] == -1)
         assert occupied_cells(flat, size)[2] is None
+        # the int32 cell numbers the grid frames give: the same answer
+        cells32, k32, _ = occupied_cells(flat.astype(np.int32), size)
+        assert np.array_equal(cells32, ref_cells) and np.array_equal(k32, ref_k)
+    cells, k, lookup = occupied_cells(np.zeros(0, np.int64), 7, lookup=True)
+    assert len(cells) == 0 and len(k) == 0 and np.all(lookup == -1)
+    # a cell number outside the grid is refused (the compiled kernel indexes unchecked)
+    for bad in (-1, 10):
+        with pytest.raises(IndexError):
+            occupied_cells(np.array([0, bad, 3]), 10)
 
 
 def test_compiled_cell_sums_equal_bincount():

@@ -514,6 +514,48 @@ def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out,
             out[c] = v
 
 
+ctypedef fused rank:
+    int32_t
+    int64_t
+
+
+def occupied_ranks(const index[::1] flat, rank[::1] position, int64_t[::1] k):
+    """Rank the cells holding points and give every point its cell's rank, in three passes.
+
+    ``position`` (one entry per cell of the grid) receives each occupied cell's rank among
+    the occupied cells in cell order (0, 1, …) and -1 elsewhere; ``k[i]`` the rank of the
+    cell of point ``i`` (``flat[i]``). Returns the number of occupied cells. The same as
+    marking ``occupied[flat] = True``, ranking ``flatnonzero(occupied)`` and gathering
+    ``position[flat]`` with numpy; raises ``IndexError`` for a cell number outside the grid.
+    """
+    cdef Py_ssize_t n = flat.shape[0], size = position.shape[0], i, c
+    cdef int64_t m = 0
+    cdef bint outside = False
+    if k.shape[0] != n:
+        raise ValueError("occupied_ranks: k needs one entry per point")
+    with nogil:
+        for c in range(size):
+            position[c] = 0
+        for i in range(n):
+            c = flat[i]
+            if c < 0 or c >= size:
+                outside = True
+                break
+            position[c] = 1
+        if not outside:
+            for c in range(size):
+                if position[c]:
+                    position[c] = <rank> m
+                    m += 1
+                else:
+                    position[c] = -1
+            for i in range(n):
+                k[i] = position[flat[i]]
+    if outside:
+        raise IndexError("a point's cell is outside the cells")
+    return m
+
+
 def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,
                    double[::1] y, double[::1] z):
     """``x, y, z = xyz[rows, 0], xyz[rows, 1], xyz[rows, 2]`` in one pass: the rows' three

@@ -18,6 +18,7 @@ from .kernels import cell_extreme as _cell_extreme
 from .kernels import flat_cells as _flat_cells
 from .kernels import jacobi_sweep as _jacobi_sweep
 from .kernels import locate_cells as _locate_cells
+from .kernels import occupied_ranks
 from .kernels import sampler_weights as _sampler_weights
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
@@ -441,8 +442,10 @@ def occupied_cells(flat: np.ndarray, size: int, *, lookup: bool = False
                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     """The cells holding points, for per-cell work on those cells only.
 
-    A grid over a corridor's bounding box is mostly empty; a one-byte occupancy map finds
-    the occupied cells without sorting the points.
+    A grid over a corridor's bounding box is mostly empty; a map over the grid finds the
+    occupied cells without sorting the points (``kernels.occupied_ranks``: mark, rank and
+    gather in one compiled kernel, where numpy's scatter, scan, scatter, gather and cast
+    took 11-14 ms on a 1.2-1.4 M-point tile).
 
     Parameters
     ----------
@@ -459,15 +462,14 @@ def occupied_cells(flat: np.ndarray, size: int, *, lookup: bool = False
         Sorted flat indices of the occupied cells; each point's position in ``cells``
         (intp, what ``np.bincount`` counts without a cast); the lookup array or None.
     """
-    occupied = np.zeros(size, bool)
-    occupied[flat] = True
-    cells = np.flatnonzero(occupied)
-    del occupied
-    m = len(cells)
-    dtype = np.int32 if m < 2**31 - 1 else np.intp
-    position = np.full(size, -1, dtype) if lookup else np.empty(size, dtype)
-    position[cells] = np.arange(m, dtype=dtype)
-    k = position[flat].astype(np.intp)
+    flat = _cell_index(flat)
+    # ranks fit the position array's type: there are no more occupied cells than cells
+    position = np.empty(size, np.int32 if size < 2**31 - 1 else np.int64)
+    k = np.empty(len(flat), np.int64)
+    # marks, ranks and each point's rank in one compiled kernel (three passes, no sort)
+    m = occupied_ranks(flat, position, k)
+    cells = np.flatnonzero(position >= 0) if m else np.zeros(0, np.intp)
+    k = k.view(np.intp) if np.dtype(np.intp).itemsize == 8 else k.astype(np.intp)
     return cells, k, (position if lookup else None)
 
 
