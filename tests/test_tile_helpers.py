@@ -56,6 +56,32 @@ def test_near_points_is_the_bounded_tree_query(seed, offset):
     assert len(near_points(xy[:0], centres, radius)) == 0
 
 
+def test_near_points_around_clustered_anchors_queries_only_their_cells(monkeypatch):
+    # reference: cKDTree.query with distance_upper_bound. A tile's anchors: hundreds of 1 m
+    # cells at a few structures along a long strip; their boxes (shared where they start in
+    # the same raster cell) are marked instead of every cell of the raster being queried.
+    import clearaudit.arrays as arrays
+
+    rng = np.random.default_rng(31)
+    xy = rng.uniform([0, 0], [1500, 110], size=(120_000, 2))
+    towers = np.array([[120.0, 55.0], [480.0, 52.0], [860.0, 58.0], [1240.0, 54.0]])
+    centres = np.floor(np.repeat(towers, 70, axis=0) + rng.uniform(-6, 6, (280, 2))) + 0.5
+    seen = []
+
+    def spy(*args):
+        got = arrays._cells_near.__wrapped__(*args)
+        seen.append((None if got is None else len(got), int(args[3][0]) * int(args[3][1])))
+        return got
+
+    spy.__wrapped__ = arrays._cells_near
+    monkeypatch.setattr(arrays, "_cells_near", spy)
+    radius = 21.0
+    d, _ = cKDTree(centres).query(xy, distance_upper_bound=radius)
+    np.testing.assert_array_equal(near_points(xy, centres, radius), np.flatnonzero(np.isfinite(d)))
+    (queried, raster), = seen
+    assert queried is not None and queried < raster / 5
+
+
 @pytest.mark.parametrize("dtype", [np.float64, np.float32, np.int64])
 def test_column_bounds_match_numpy(dtype):
     # reference: numpy's own min / max over the rows
@@ -689,8 +715,8 @@ def test_kept_heap_leaves_malloc_alone_when_the_environment_sets_it(monkeypatch)
 @pytest.mark.parametrize("n_centres", [1, 40, 3000])
 def test_near_points_boxes_around_the_centres_and_the_whole_raster(n_centres):
     # reference: cKDTree.query with distance_upper_bound over every point. Few centres are
-    # looked up through the raster cells around them; thousands (boxes holding more cells
-    # than the raster) through the whole raster: the same points either way
+    # looked up through the raster cells around them; thousands (boxes holding more than 32
+    # cells for each cell of the raster) through the whole raster: the same points either way
     from clearaudit.arrays import _cells_near
 
     rng = np.random.default_rng(n_centres)
@@ -707,7 +733,8 @@ def test_near_points_boxes_around_the_centres_and_the_whole_raster(n_centres):
     dd, _ = cKDTree(centres[:5]).query(centre_xy, distance_upper_bound=bound)
     assert set(np.flatnonzero(np.isfinite(dd))) <= set(cells)
     assert np.all(np.diff(cells) > 0)
-    assert _cells_near(centres, lo, size, np.array([10, 10]), bound) is None
+    # boxes holding more than 32 cells for each cell of the raster: the whole raster
+    assert _cells_near(centres, lo, size, np.array([2, 2]), bound) is None
 
 
 def test_corridor_keep_is_built_once_per_corridor_and_equals_the_mask():
