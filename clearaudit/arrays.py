@@ -197,6 +197,26 @@ def _cells_near(centres: np.ndarray, lo: np.ndarray, size: float, shape: np.ndar
     return np.flatnonzero(mark)
 
 
+def hypot_within(x: np.ndarray, y: np.ndarray, limit: float) -> np.ndarray:
+    """``numpy.hypot(x, y) <= limit``, the same booleans, about ten times faster.
+
+    The sum of squares decides wherever it is clearly below or above ``limit ** 2``; libm's
+    hypot (numpy's) only in a band of 1e-12 around it and for NaN
+    (``classify.kernels.hypot_within``). Limits whose square would underflow or overflow, or
+    that are not positive and finite, go to numpy.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    limit = float(limit)
+    if x.ndim != 1 or x.shape != y.shape or not 1e-150 <= limit <= 1e150:
+        return np.hypot(x, y) <= limit
+    from .classify.kernels import hypot_within as _kernel
+
+    out = np.empty(len(x), dtype=np.uint8)
+    _kernel(x, y, limit, out)
+    return out.view(bool)
+
+
 def near_points(xy: np.ndarray, centres: np.ndarray, radius: float) -> np.ndarray:
     r"""Positions (ascending) of the points of ``xy`` closer than ``radius`` to a centre.
 

@@ -763,3 +763,31 @@ def test_corridor_keep_is_built_once_per_corridor_and_equals_the_mask():
     for t in threads:
         t.join()
     assert len(got) == 4 and all(g is got[0] for g in got)
+
+
+def test_hypot_within_is_numpys_hypot_compared():
+    # reference: numpy.hypot(x, y) <= limit, element for element, on random values, values
+    # on and one ulp either side of the circle (where only libm's hypot decides), NaN, inf,
+    # tiny and huge values, strided input and limits the kernel passes to numpy
+    from clearaudit.arrays import hypot_within
+
+    rng = np.random.default_rng(41)
+    limit = 0.35
+    x, y = rng.normal(scale=0.3, size=(2, 20_000))
+    theta = rng.uniform(0, 2 * np.pi, 4_000)
+    cx, cy = limit * np.cos(theta), limit * np.sin(theta)
+    edge_x = np.concatenate([cx, np.nextafter(cx, 1.0), np.nextafter(cx, -1.0), [limit, -limit, 0.0]])
+    edge_y = np.concatenate([cy, cy, cy, [0.0, 0.0, limit]])
+    odd_x = np.array([np.nan, 1.0, np.inf, -np.inf, np.inf, 1e-200, 1e200, 0.0, -0.2, np.nan])
+    odd_y = np.array([0.0, np.nan, np.nan, 0.0, np.inf, 1e-200, 0.0, 0.0, 0.3, np.nan])
+    for a, b in ((x, y), (edge_x, edge_y), (odd_x, odd_y)):
+        got = hypot_within(a, b, limit)
+        assert got.dtype == bool
+        np.testing.assert_array_equal(got, np.hypot(a, b) <= limit)
+    pairs = rng.normal(size=(5_000, 2))  # columns of a 2-D array: strided
+    np.testing.assert_array_equal(hypot_within(pairs[:, 0], pairs[:, 1], 1.0),
+                                  np.hypot(pairs[:, 0], pairs[:, 1]) <= 1.0)
+    for odd_limit in (0.0, -1.0, np.nan, np.inf, 1e-160, 1e160):
+        np.testing.assert_array_equal(hypot_within(odd_x, odd_y, odd_limit),
+                                      np.hypot(odd_x, odd_y) <= odd_limit)
+    assert len(hypot_within(np.zeros(0), np.zeros(0), limit)) == 0

@@ -5,7 +5,7 @@ Built with ``-ffp-contract=off``: every product and sum is rounded on its own in
 precision, in the order the numpy form of the same formula used, so the values are the same.
 """
 from libc.float cimport DBL_MAX
-from libc.math cimport NAN, fabs, fabsf, sqrt
+from libc.math cimport NAN, fabs, fabsf, hypot, sqrt
 from libc.stdint cimport int32_t, int64_t, uint32_t
 from libc.stdlib cimport calloc, free, malloc
 from libc.string cimport memcpy
@@ -554,6 +554,34 @@ def occupied_ranks(const index[::1] flat, rank[::1] position, int64_t[::1] k):
     if outside:
         raise IndexError("a point's cell is outside the cells")
     return m
+
+
+def hypot_within(const double[:] x, const double[:] y, double limit, unsigned char[::1] out):
+    """``out = numpy.hypot(x, y) <= limit`` without the hypotenuse where it cannot matter.
+
+    numpy's hypot is libm's ``hypot`` (16 ns an element here). The sum of squares decides
+    wherever it lies more than 1e-12 (relative) from ``limit ** 2``: its rounding error is a
+    few 1e-16 and libm's hypot is within one ulp, so the answer is the same there; in the
+    band between, and for NaN, libm's ``hypot`` itself decides. ``limit`` must lie in
+    [1e-150, 1e150] (its square neither underflows nor overflows; the caller passes other
+    limits to numpy).
+    """
+    cdef Py_ssize_t n = x.shape[0], i
+    if y.shape[0] != n or out.shape[0] != n:
+        raise ValueError("hypot_within: x, y and out must have the same length")
+    if not (1e-150 <= limit <= 1e150):
+        raise ValueError("hypot_within: the limit must lie in [1e-150, 1e150]")
+    cdef double lo2 = limit * limit * (1.0 - 1e-12), hi2 = limit * limit * (1.0 + 1e-12), q
+    with nogil:
+        for i in range(n):
+            q = x[i] * x[i] + y[i] * y[i]
+            if q <= lo2:
+                out[i] = 1
+            elif q > hi2:
+                out[i] = 0
+            else:
+                out[i] = hypot(x[i], y[i]) <= limit
+    return None
 
 
 def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,

@@ -35,7 +35,7 @@ import numpy as np
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import connected_components
 
-from ..arrays import take_columns
+from ..arrays import hypot_within, take_columns
 from ..cloud import (
     BUILDING,
     HIGH_VEGETATION,
@@ -1142,7 +1142,7 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
     del u, v
     # a near-vertical plane (wall points in a cell) also fits well: planar cells are those
     # no steeper than max_cell_gradient (a roof pitch or a steep bank, not a wall)
-    planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & (np.hypot(gu, gv) <= max_cell_gradient)
+    planar = np.isfinite(zc) & (rms <= max_cell_rms_m) & hypot_within(gu, gv, max_cell_gradient)
     rows, cols = [], []
     pc = np.flatnonzero(planar)
     for step, axis_grad, inside in ((shape[1], gu, ci[pc] < shape[0] - 1),
@@ -1155,7 +1155,7 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         a, b = a[keep], b[keep]
         pred = 0.5 * (axis_grad[a] + axis_grad[b]) * grid.cell
         link = ((np.abs(zc[b] - zc[a] - pred) <= link_m)
-                & (np.hypot(gu[b] - gu[a], gv[b] - gv[a]) <= max_gradient_change))
+                & hypot_within(gu[b] - gu[a], gv[b] - gv[a], max_gradient_change))
         # the same gradient test one cell further out on both sides (a 3-cell baseline): a
         # cell mixing a roof edge and the slope it meets has an intermediate gradient and
         # would otherwise bridge the crease in two small steps
@@ -1164,8 +1164,8 @@ def find_ground_roofs(xyz: np.ndarray, which: np.ndarray | None = None, *,
         wide = (a_out >= 0) & (b_out >= 0)
         wide[wide] = planar[a_out[wide]] & planar[b_out[wide]]
         w = np.flatnonzero(wide & link)
-        link[w] = np.hypot(gu[b_out[w]] - gu[a_out[w]],
-                           gv[b_out[w]] - gv[a_out[w]]) <= max_gradient_change
+        link[w] = hypot_within(gu[b_out[w]] - gu[a_out[w]], gv[b_out[w]] - gv[a_out[w]],
+                               max_gradient_change)
         rows.append(a[link])
         cols.append(b[link])
     r, c = np.concatenate(rows), np.concatenate(cols)
