@@ -113,6 +113,18 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path, monkeypatc
         np.testing.assert_array_equal(got.cls, rec["cls"])
         np.testing.assert_array_equal(got.key, rec["key"])
     assert len(tiling.read_points(tmp_path, ())) == 0
+    # the compiled split refuses bytes that are not whole records, or rows beyond the arrays
+    from clearaudit.classify.kernels import unpack_records
+
+    raw = second[:4].view(np.uint8).reshape(-1)
+    xyz, cls, key = np.empty((4, 3)), np.empty(4, np.uint8), np.empty(4, np.int64)
+    with pytest.raises(ValueError):
+        unpack_records(raw[:-1], xyz, cls, key, 0)
+    with pytest.raises(ValueError):
+        unpack_records(raw, xyz, cls, key, 1)
+    unpack_records(raw, xyz, cls, key, 0)
+    np.testing.assert_array_equal(xyz, second[:4]["xyz"])
+    np.testing.assert_array_equal(key, second[:4]["key"])
 
 
 def test_tasks_never_bring_back_a_removed_work_folder(corridor, tmp_path):

@@ -584,6 +584,28 @@ def hypot_within(const double[:] x, const double[:] y, double limit, unsigned ch
     return None
 
 
+def unpack_records(const unsigned char[::1] raw, double[:, ::1] xyz, unsigned char[::1] cls,
+                   int64_t[::1] key, Py_ssize_t at):
+    """Split packed 33-byte tile records (x, y, z float64, class uint8, key int64, little
+    endian, no padding: ``tiling.RECORD``) into ``xyz[at:]``, ``cls[at:]`` and ``key[at:]``
+    in one pass (numpy copies a structured array's fields one after the other, each with
+    its own strided walk). The caller checks the host is little endian."""
+    cdef Py_ssize_t n = raw.shape[0] // 33, i
+    if raw.shape[0] != n * 33:
+        raise ValueError("unpack_records: the bytes are not whole 33-byte records")
+    if xyz.shape[1] != 3 or at < 0 or at + n > xyz.shape[0] or at + n > cls.shape[0] \
+            or at + n > key.shape[0]:
+        raise ValueError("unpack_records: the records do not fit the arrays")
+    cdef const unsigned char *p
+    with nogil:
+        for i in range(n):
+            p = &raw[i * 33]
+            memcpy(&xyz[at + i, 0], p, 24)
+            cls[at + i] = p[24]
+            memcpy(&key[at + i], p + 25, 8)
+    return None
+
+
 def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,
                    double[::1] y, double[::1] z):
     """``x, y, z = xyz[rows, 0], xyz[rows, 1], xyz[rows, 2]`` in one pass: the rows' three

@@ -33,6 +33,7 @@ try:
         sampler_weights,
         sym3_pairs,
         sym3_prepare,
+        unpack_records,
         window_sums,
     )
     from ._neighbours import moments
@@ -44,5 +45,5 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
 __all__ = ["bilinear", "bilinear_residual", "cell_extreme", "cell_offsets", "cell_sums3", "chunk_points", "corridor_exact", "flat_cells", "gather_columns", "hypot_within", "isolated_in_block", "jacobi_sweep", "locate_cells", "median_f32", "moments", "occupied_ranks",
            "plane_residual_sums", "plane_solve", "plane_sums", "raster_state", "record_int_bounds",
            "records_in_box",
-           "route_records", "sampler_weights", "sym3_pairs", "sym3_prepare",
+           "route_records", "sampler_weights", "sym3_pairs", "sym3_prepare", "unpack_records",
            "window_sums"]
