@@ -1147,10 +1147,13 @@ def _view(work: Path, tile: TileSpec, tiles_by_cell: dict[tuple[int, int], str],
     out = {name: np.concatenate(parts) for name, parts in arrays.items()}
     if select is None:
         return both, n_own, out
-    picked = np.asarray(select(out), dtype=bool)
-    owned_at = np.flatnonzero(picked[:n_own])
+    # the picked points' positions once (a few per cent of the points): each array is then
+    # gathered, not masked again over all of them
+    picked = np.flatnonzero(np.asarray(select(out), dtype=bool))
+    cut = int(np.searchsorted(picked, n_own))
+    owned_at = picked[:cut]
     both = points_of(concat_records([read_cells_at(work, tile.cells, owned_at),
-                                     take_records(records, picked[n_own:])]))
+                                     take_records(records, picked[cut:] - n_own)]))
     out = {name: a[picked] for name, a in out.items()}
     out["_owned_at"] = owned_at
     return both, len(owned_at), out
