@@ -590,11 +590,17 @@ def point_findings(xyz: np.ndarray, classes: np.ndarray, hag: np.ndarray, plan: 
                                         else -1, -1)
         by_label = _members(labels["building"])
 
-        ground_req_by_class = {role: np.array([rules.required(
-            "ground", role, voltage, key=rules.surface_of_class(c)
-            if rules.surface_of_class(c) in rules.ground[role] else "land").value_m
-            for c in range(256)]) for role in {states[i].role for i in index}}
-        surface_lookup = np.array([rules.surface_of_class(c) for c in range(256)], dtype=object)
+        # the required ground clearance of every class code: one rule lookup per distinct
+        # surface (a few), not per code (256 lookups, each formatting its detail, took 7.5 ms
+        # of every tile)
+        surface_of = [rules.surface_of_class(c) for c in range(256)]
+        ground_req_by_class = {}
+        for role in {states[i].role for i in index}:
+            surface = [s if s in rules.ground[role] else "land" for s in surface_of]
+            value = {k: rules.required("ground", role, voltage, key=k).value_m
+                     for k in set(surface)}
+            ground_req_by_class[role] = np.array([value[k] for k in surface])
+        surface_lookup = np.array(surface_of, dtype=object)
         lateral_m = opts.ground_lateral_m
         ground_cls = classes[groups["ground"].index]
 
