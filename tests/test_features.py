@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from clearaudit.classify.features import eigen_features, sym3_eigen
 
@@ -129,3 +130,46 @@ def test_compiled_eigen_passes_equal_the_numpy_closed_form():
     assert np.array_equal(vals, ref_vals, equal_nan=True)
     assert np.array_equal(v_small, ref_small, equal_nan=True)
     assert np.array_equal(v_large, ref_large, equal_nan=True)
+
+
+def test_compiled_feature_rows_equal_the_numpy_form():
+    # reference: the numpy form the kernel replaced (features._features before it), byte for
+    # byte: negative and NaN eigenvalues, l1 at and below 1e-12, -0.0, rows written scattered
+    from clearaudit.classify.kernels import eigen_rows
+
+    rng = np.random.default_rng(8)
+    n, m = 3000, 4000
+    vals = np.sort(rng.normal(size=(n, 3)), axis=1)
+    vals[:50] = [-1e-3, -0.0, 2.0]
+    vals[50:60, 2] = 1e-12
+    vals[60:70, 2] = 1e-13
+    vals[70:75] = np.nan
+    vals[75:80, 1] = np.nan
+    v_small = rng.normal(size=(n, 3))
+    v_small[80:90, 2] = -0.0
+    v_large = rng.normal(size=(n, 3))
+    cnt = rng.integers(0, 21, n).astype(np.int32)
+    at = rng.permutation(m)[:n].astype(np.int64)
+    got = [np.zeros(m) for _ in range(4)] + [np.zeros((m, 3)), np.zeros((m, 3)),
+                                             np.zeros(m, np.int32)]
+    eigen_rows(vals, v_small, v_large, cnt, at, *got)
+    ref = [np.zeros(m) for _ in range(4)] + [np.zeros((m, 3)), np.zeros((m, 3)),
+                                             np.zeros(m, np.int32)]
+    lin, pla, sca, ver, direction, normal, count = ref
+    with np.errstate(invalid="ignore"):
+        l1 = vals[:, 2]
+        l2 = np.maximum(vals[:, 1], 0.0)
+        l3 = np.maximum(vals[:, 0], 0.0)
+        ok = l1 > 1e-12
+        safe = np.where(ok, l1, 1.0)
+        lin[at] = np.where(ok, (l1 - l2) / safe, 0.0)
+        pla[at] = np.where(ok, (l2 - l3) / safe, 0.0)
+        sca[at] = np.where(ok, l3 / safe, 0.0)
+        direction[at] = v_large
+        normal[at] = v_small
+        ver[at] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
+        count[at] = cnt
+    for a, b in zip(got, ref, strict=True):
+        assert a.tobytes() == b.tobytes()
+    with pytest.raises(IndexError):
+        eigen_rows(vals, v_small, v_large, cnt, np.full(n, m, np.int64), *got)

@@ -606,6 +606,58 @@ def unpack_records(const unsigned char[::1] raw, double[:, ::1] xyz, unsigned ch
     return None
 
 
+cdef inline double _maximum(double a, double b) noexcept nogil:
+    """numpy.maximum's rule: ``a`` when it is above ``b`` or is NaN, else ``b`` (so of
+    -0.0 and 0.0 the second, as numpy gives)."""
+    return a if (a > b or a != a) else b
+
+
+def eigen_rows(const double[:, ::1] vals, const double[:, ::1] v_small,
+               const double[:, ::1] v_large, const int32_t[::1] cnt, const int64_t[::1] at,
+               double[::1] lin, double[::1] pla, double[::1] sca, double[::1] ver,
+               double[:, ::1] direction, double[:, ::1] normal, int32_t[::1] count):
+    """The eigen features of a chunk of neighbourhoods, written to their rows ``at``.
+
+    With ``l1 = vals[:, 2]``, ``l2, l3 = maximum(vals[:, 1], 0), maximum(vals[:, 0], 0)``
+    and ``ok = l1 > 1e-12``: linearity ``(l1 - l2) / l1``, planarity ``(l2 - l3) / l1``,
+    scattering ``l3 / l1``, verticality ``1 - |v_small[:, 2]|`` (0 where not ``ok``), the
+    direction ``v_large``, the normal ``v_small`` and the count — the operations of the
+    numpy form (``features._features``) in its order, one pass instead of fifteen.
+    """
+    cdef Py_ssize_t n = vals.shape[0], i, r, m = lin.shape[0]
+    cdef double l1, l2, l3, safe
+    cdef bint ok
+    if vals.shape[1] != 3 or v_small.shape[0] != n or v_large.shape[0] != n \
+            or v_small.shape[1] != 3 or v_large.shape[1] != 3 or cnt.shape[0] != n \
+            or at.shape[0] != n:
+        raise ValueError("eigen_rows: one row of values, vectors, count and place per point")
+    if pla.shape[0] != m or sca.shape[0] != m or ver.shape[0] != m or count.shape[0] != m \
+            or direction.shape[0] != m or normal.shape[0] != m or direction.shape[1] != 3 \
+            or normal.shape[1] != 3:
+        raise ValueError("eigen_rows: the output arrays must have the same rows")
+    _check_cells(at, m)
+    with nogil:
+        for i in range(n):
+            r = at[i]
+            l1 = vals[i, 2]
+            l2 = _maximum(vals[i, 1], 0.0)
+            l3 = _maximum(vals[i, 0], 0.0)
+            ok = l1 > 1e-12
+            safe = l1 if ok else 1.0
+            lin[r] = (l1 - l2) / safe if ok else 0.0
+            pla[r] = (l2 - l3) / safe if ok else 0.0
+            sca[r] = l3 / safe if ok else 0.0
+            direction[r, 0] = v_large[i, 0]
+            direction[r, 1] = v_large[i, 1]
+            direction[r, 2] = v_large[i, 2]
+            normal[r, 0] = v_small[i, 0]
+            normal[r, 1] = v_small[i, 1]
+            normal[r, 2] = v_small[i, 2]
+            ver[r] = 1.0 - fabs(v_small[i, 2]) if ok else 0.0
+            count[r] = cnt[i]
+    return None
+
+
 def gather_columns(const double[:, :] xyz, const index[::1] rows, double[::1] x,
                    double[::1] y, double[::1] z):
     """``x, y, z = xyz[rows, 0], xyz[rows, 1], xyz[rows, 2]`` in one pass: the rows' three

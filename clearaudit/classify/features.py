@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..threads import inner_threads, run_chunks
-from .kernels import sym3_pairs, sym3_prepare
+from .kernels import eigen_rows, sym3_pairs, sym3_prepare
 from .neighbours import NeighbourGrid
 
 _CHUNK = 65_536  # points per chunk of the eigen pass (cache friendly temporaries)
@@ -163,18 +163,11 @@ def _features(grid: NeighbourGrid, rows: np.ndarray | None, radius: float, k: in
             vals[bad] = bvals
             v_small[bad] = bvecs[:, :, 0]
             v_large[bad] = bvecs[:, :, 2]
-        l1 = vals[:, 2]
-        l2 = np.maximum(vals[:, 1], 0.0)
-        l3 = np.maximum(vals[:, 0], 0.0)
-        ok = l1 > 1e-12
-        safe = np.where(ok, l1, 1.0)
-        lin[at] = np.where(ok, (l1 - l2) / safe, 0.0)
-        pla[at] = np.where(ok, (l2 - l3) / safe, 0.0)
-        sca[at] = np.where(ok, l3 / safe, 0.0)
-        direction[at] = v_large
-        normal[at] = v_small
-        ver[at] = np.where(ok, 1.0 - np.abs(v_small[:, 2]), 0.0)
-        count[at] = cnt
+        # l1 >= l2 >= l3 (l2, l3 at least 0); where l1 > 1e-12: linearity (l1 - l2) / l1,
+        # planarity (l2 - l3) / l1, scattering l3 / l1, verticality 1 - |n_z| (else 0),
+        # written with the vectors and counts to their rows in one compiled pass
+        eigen_rows(vals, v_small, v_large, cnt, np.ascontiguousarray(at, dtype=np.int64),
+                   lin, pla, sca, ver, direction, normal, count)
 
     run_chunks(chunk, n, _CHUNK, threads)
     return EigenFeatures(lin, pla, sca, ver, direction, normal, count)
