@@ -45,6 +45,14 @@ cdef inline Py_ssize_t _seek(const int64_t[::1] a, int64_t v, Py_ssize_t hint,
     return _lower(a, v, lo, hi)
 
 
+cdef struct Best:
+    # a kept neighbour: its squared distance's bits and its sorted position, side by side
+    # so that the insertion moves one 16-byte item (2-3 % of the kernel's time against two
+    # arrays)
+    uint64_t d
+    Py_ssize_t j
+
+
 def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] sx,
             const double[::1] sy, const double[::1] sz, const int64_t[::1] dims, Py_ssize_t reach,
             const int64_t[::1] rows, int k, double r2, int32_t[::1] count,
@@ -78,8 +86,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     cdef Py_ssize_t side_x = min(2 * reach + 1, <Py_ssize_t> dims[0])
     cdef Py_ssize_t side_y = min(2 * reach + 1, <Py_ssize_t> dims[1])
     cdef Py_ssize_t side = side_x * side_y
-    cdef uint64_t *best_d = <uint64_t *> malloc(k * sizeof(uint64_t))
-    cdef Py_ssize_t *best_j = <Py_ssize_t *> malloc(k * sizeof(Py_ssize_t))
+    cdef Best *best = <Best *> malloc(k * sizeof(Best))
     cdef Py_ssize_t *starts = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
     cdef Py_ssize_t *stops = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
     # per column of the block around a cell (its offset from the cell's column), where that
@@ -87,8 +94,8 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     # the next start is at or a little after it
     cdef Py_ssize_t *hints = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
     cdef Py_ssize_t *rank = <Py_ssize_t *> malloc(side * sizeof(Py_ssize_t))
-    if not best_d or not best_j or not starts or not stops or not hints or not rank:
-        free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
+    if not best or not starts or not stops or not hints or not rank:
+        free(best); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
     for t in range(side):
         hints[t] = 0
@@ -103,7 +110,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
     cdef bint failed = False
     if not buf or not cand:
         free(buf); free(cand)
-        free(best_d); free(best_j); free(starts); free(stops); free(hints); free(rank)
+        free(best); free(starts); free(stops); free(hints); free(rank)
         raise MemoryError()
     cdef int m
     # strictly closer than the radius: bits below those of r2 (checked positive and finite)
@@ -185,21 +192,20 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                     if bits > limit:
                         continue
                     j = s + u
-                    if m == k and bits == best_d[k - 1] and index[j] > index[best_j[k - 1]]:
+                    if m == k and bits == best[k - 1].d and index[j] > index[best[k - 1].j]:
                         continue
                     w = m if m < k else k - 1
-                    while w > 0 and (best_d[w - 1] > bits
-                                     or (best_d[w - 1] == bits
-                                         and index[best_j[w - 1]] > index[j])):
-                        best_d[w] = best_d[w - 1]
-                        best_j[w] = best_j[w - 1]
+                    while w > 0 and (best[w - 1].d > bits
+                                     or (best[w - 1].d == bits
+                                         and index[best[w - 1].j] > index[j])):
+                        best[w] = best[w - 1]
                         w -= 1
-                    best_d[w] = bits
-                    best_j[w] = j
+                    best[w].d = bits
+                    best[w].j = j
                     if m < k:
                         m += 1
                     if m == k:
-                        limit = best_d[k - 1]
+                        limit = best[k - 1].d
             if failed:
                 break
             count[t] = m
@@ -208,12 +214,12 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
                     out[t, u] = 0.0
                 continue
             # first moments: the running sum starts at the nearest neighbour (numpy's order)
-            j = best_j[0]
+            j = best[0].j
             s0 = sx[j] - qx
             s1 = sy[j] - qy
             s2 = sz[j] - qz
             for u in range(1, m):
-                j = best_j[u]
+                j = best[u].j
                 s0 = s0 + (sx[j] - qx)
                 s1 = s1 + (sy[j] - qy)
                 s2 = s2 + (sz[j] - qz)
@@ -224,7 +230,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             p12 = 0.0
             p22 = 0.0
             for u in range(m):
-                j = best_j[u]
+                j = best[u].j
                 ex = sx[j] - qx
                 ey = sy[j] - qy
                 ez = sz[j] - qz
@@ -245,8 +251,7 @@ def moments(const int64_t[::1] key, const int64_t[::1] index, const double[::1] 
             out[t, 5] = p22 / m - mz * mz
     free(buf)
     free(cand)
-    free(best_d)
-    free(best_j)
+    free(best)
     free(starts)
     free(stops)
     free(hints)
