@@ -503,15 +503,34 @@ def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out,
         raise ValueError("cell and values must have the same length")
     _check_cells(cell, m)
     cdef Py_ssize_t c
-    cdef double v, cur
+    cdef double v, cur, keep
+    # the rule written as selects, not branches (the compiler makes them conditional moves):
+    # a branch on data in no order was mispredicted so often that a tile's minimum of 1.6 M
+    # heights over 160 000 cells took 6.1 ms, the selects 1.6 ms; every cell is stored to
+    # (with its own value where it stays)
     with nogil:
-        for i in range(n):
-            c = cell[i]
-            v = values[i]
-            cur = out[c]
-            if cur != cur or (cur > v if largest else cur < v):
-                continue
-            out[c] = v
+        if largest:
+            for i in range(n):
+                c = cell[i]
+                v = values[i]
+                cur = out[c]
+                keep = v
+                if cur > v:
+                    keep = cur
+                if cur != cur:
+                    keep = cur
+                out[c] = keep
+        else:
+            for i in range(n):
+                c = cell[i]
+                v = values[i]
+                cur = out[c]
+                keep = v
+                if cur < v:
+                    keep = cur
+                if cur != cur:
+                    keep = cur
+                out[c] = keep
 
 
 ctypedef fused rank:
