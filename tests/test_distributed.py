@@ -81,16 +81,26 @@ def test_split_gives_every_point_exactly_one_tile(corridor, tmp_path, monkeypatc
     both = read_cells(tmp_path, tiles[0].cells, then=second[::7])
     assert both.tobytes() == np.concatenate([first, second[::7]]).tobytes()
     assert read_cells(tmp_path, tiles[0].cells, then=second[:0]).tobytes() == first.tobytes()
-    # records picked by position without reading the cells whole: numpy's fancy indexing
-    from clearaudit.tiling import read_cells_at
+    # records picked by position without reading the cells whole (and picked ones of
+    # records given after them): numpy's fancy indexing of the records' fields
+    from clearaudit.tiling import read_points_at
 
     rng = np.random.default_rng(3)
     for pick in (np.sort(rng.choice(len(first), len(first) // 5, replace=False)),
                  np.arange(len(first)), np.zeros(0, dtype=np.int64), np.array([len(first) - 1])):
-        got = read_cells_at(tmp_path, tiles[0].cells, pick)
-        assert got.dtype == first.dtype and got.tobytes() == first[pick].tobytes()
+        for then_at in (None, np.zeros(0, dtype=np.int64), np.sort(rng.choice(
+                len(second), len(second) // 3, replace=False))):
+            got = read_points_at(tmp_path, tiles[0].cells, pick, second, then_at)
+            ref = first[pick] if then_at is None else np.concatenate([first[pick],
+                                                                      second[then_at]])
+            assert len(got) == len(ref) and got.cls.dtype == np.uint8
+            np.testing.assert_array_equal(got.xyz, ref["xyz"])
+            np.testing.assert_array_equal(got.cls, ref["cls"])
+            np.testing.assert_array_equal(got.key, ref["key"])
     with pytest.raises(IndexError):
-        read_cells_at(tmp_path, tiles[0].cells, np.array([len(first)]))
+        read_points_at(tmp_path, tiles[0].cells, np.array([len(first)]))
+    with pytest.raises(IndexError):
+        read_points_at(tmp_path, tiles[0].cells, np.array([0]), second, np.array([len(second)]))
     # the records' fields read in steps without the records (read_points): numpy's field
     # views of read_cells, in steps smaller than a file, of one record and of whole files
     import clearaudit.tiling as tiling

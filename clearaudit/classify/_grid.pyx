@@ -638,6 +638,36 @@ def unpack_records(const unsigned char[::1] raw, double[:, ::1] xyz, unsigned ch
     return None
 
 
+def unpack_records_at(const unsigned char[::1] raw, const int64_t[::1] positions,
+                      double[:, ::1] xyz, unsigned char[::1] cls, int64_t[::1] key,
+                      Py_ssize_t at):
+    """``unpack_records`` of the records at ``positions`` (record numbers within ``raw``)
+    only: the picked records gathered and split in one pass, without a gathered copy of
+    them between."""
+    cdef Py_ssize_t n = raw.shape[0] // 33, m = positions.shape[0], i
+    cdef int64_t p
+    cdef bint bad = False
+    if raw.shape[0] != n * 33:
+        raise ValueError("unpack_records_at: the bytes are not whole 33-byte records")
+    if xyz.shape[1] != 3 or at < 0 or at + m > xyz.shape[0] or at + m > cls.shape[0] \
+            or at + m > key.shape[0]:
+        raise ValueError("unpack_records_at: the records do not fit the arrays")
+    cdef const unsigned char *q
+    with nogil:
+        for i in range(m):
+            p = positions[i]
+            if p < 0 or p >= n:
+                bad = True
+                break
+            q = &raw[p * 33]
+            memcpy(&xyz[at + i, 0], q, 24)
+            cls[at + i] = q[24]
+            memcpy(&key[at + i], q + 25, 8)
+    if bad:
+        raise IndexError("unpack_records_at: a position beyond the records")
+    return None
+
+
 cdef inline double _maximum(double a, double b) noexcept nogil:
     """numpy.maximum's rule: ``a`` when it is above ``b`` or is NaN, else ``b`` (so of
     -0.0 and 0.0 the second, as numpy gives)."""

@@ -35,6 +35,7 @@ try:
         sym3_pairs,
         sym3_prepare,
         unpack_records,
+        unpack_records_at,
         window_sums,
     )
     from ._neighbours import moments
@@ -46,5 +47,5 @@ except ImportError as exc:  # pragma: no cover - a source tree without its build
 __all__ = ["bilinear", "bilinear_residual", "cell_extreme", "cell_offsets", "cell_sums3", "chunk_points", "corridor_exact", "eigen_rows", "flat_cells", "gather_columns", "hypot_within", "isolated_in_block", "jacobi_sweep", "locate_cells", "median_f32", "moments", "occupied_ranks",
            "plane_residual_sums", "plane_solve", "plane_sums", "raster_state", "record_int_bounds",
            "records_in_box",
-           "route_records", "sampler_weights", "sym3_pairs", "sym3_prepare", "unpack_records",
+           "route_records", "sampler_weights", "sym3_pairs", "sym3_prepare", "unpack_records", "unpack_records_at",
            "window_sums"]
