@@ -791,3 +791,16 @@ def test_hypot_within_is_numpys_hypot_compared():
         np.testing.assert_array_equal(hypot_within(odd_x, odd_y, odd_limit),
                                       np.hypot(odd_x, odd_y) <= odd_limit)
     assert len(hypot_within(np.zeros(0), np.zeros(0), limit)) == 0
+
+
+def test_cell_files_are_the_glob_in_name_order(tmp_path):
+    # reference: pathlib's sorted(folder.glob("p*.bin")), which the directory scan replaced
+    from clearaudit.tiling import _cell_dir, _cell_files
+
+    folder = _cell_dir(tmp_path, 3, 4)
+    folder.mkdir(parents=True)
+    for name in ("p0.bin", "p10.bin", "p2.bin", "p.bin", "copies.npy", "q1.bin", "p3.binx",
+                 ".p4.bin", "P5.bin"):
+        (folder / name).write_bytes(b"")
+    assert _cell_files(tmp_path, (3, 4)) == sorted(folder.glob("p*.bin"))
+    assert _cell_files(tmp_path, (9, 9)) == []
