@@ -115,9 +115,9 @@ def bilinear_residual(const float[::1] grid, const index[::1] k00, const float[:
             value = NAN if outside[i] else _bilinear_at(g, k00[i], row, wa[i], wb[i])
             value = z[i] - value
             resid[i] = value
-            if inside[i]:
-                picked[m] = value
-                m += 1
+            # written every time, kept by the count (no branch on the points' order)
+            picked[m] = value
+            m += inside[i] != 0
     return m
 
 
