@@ -520,28 +520,16 @@ def cell_extreme(const index[::1] cell, const double[:] values, double[::1] out,
     # heights over 160 000 cells took 6.1 ms, the selects 1.6 ms; every cell is stored to
     # (with its own value where it stays)
     with nogil:
-        if largest:
-            for i in range(n):
-                c = cell[i]
-                v = values[i]
-                cur = out[c]
-                keep = v
-                if cur > v:
-                    keep = cur
-                if cur != cur:
-                    keep = cur
-                out[c] = keep
-        else:
-            for i in range(n):
-                c = cell[i]
-                v = values[i]
-                cur = out[c]
-                keep = v
-                if cur < v:
-                    keep = cur
-                if cur != cur:
-                    keep = cur
-                out[c] = keep
+        for i in range(n):
+            c = cell[i]
+            v = values[i]
+            cur = out[c]
+            keep = v
+            if (cur > v) if largest else (cur < v):  # loop-invariant: well predicted
+                keep = cur
+            if cur != cur:
+                keep = cur
+            out[c] = keep
 
 
 ctypedef fused rank:
@@ -614,6 +602,29 @@ def hypot_within(const double[:] x, const double[:] y, double limit, unsigned ch
     return None
 
 
+cdef Py_ssize_t _record_count(const unsigned char[::1] raw, Py_ssize_t m, double[:, ::1] xyz,
+                              unsigned char[::1] cls, int64_t[::1] key, Py_ssize_t at
+                              ) except -1:
+    """Records in ``raw`` (whole 33-byte records), after checking that ``m`` rows from
+    ``at`` fit ``xyz``, ``cls`` and ``key``."""
+    cdef Py_ssize_t n = raw.shape[0] // 33
+    if raw.shape[0] != n * 33:
+        raise ValueError("the bytes are not whole 33-byte tile records")
+    if xyz.shape[1] != 3 or at < 0 or at + m > xyz.shape[0] or at + m > cls.shape[0] \
+            or at + m > key.shape[0]:
+        raise ValueError("the tile records do not fit the arrays")
+    return n
+
+
+cdef inline void _split_record(const unsigned char *q, double[:, ::1] xyz,
+                               unsigned char[::1] cls, int64_t[::1] key,
+                               Py_ssize_t row) noexcept nogil:
+    """One packed record's x, y, z, class and key into row ``row`` of the arrays."""
+    memcpy(&xyz[row, 0], q, 24)
+    cls[row] = q[24]
+    memcpy(&key[row], q + 25, 8)
+
+
 def unpack_records(const unsigned char[::1] raw, double[:, ::1] xyz, unsigned char[::1] cls,
                    int64_t[::1] key, Py_ssize_t at):
     """Split packed 33-byte tile records (x, y, z float64, class uint8, key int64, little
@@ -622,19 +633,10 @@ def unpack_records(const unsigned char[::1] raw, double[:, ::1] xyz, unsigned ch
     its own strided walk). The bytes are copied as they lie, as numpy's copies of the opaque
     fields did (little endian records into native arrays: the x86-64 and ARM64 hosts
     clearaudit runs on)."""
-    cdef Py_ssize_t n = raw.shape[0] // 33, i
-    if raw.shape[0] != n * 33:
-        raise ValueError("unpack_records: the bytes are not whole 33-byte records")
-    if xyz.shape[1] != 3 or at < 0 or at + n > xyz.shape[0] or at + n > cls.shape[0] \
-            or at + n > key.shape[0]:
-        raise ValueError("unpack_records: the records do not fit the arrays")
-    cdef const unsigned char *p
+    cdef Py_ssize_t n = _record_count(raw, raw.shape[0] // 33, xyz, cls, key, at), i
     with nogil:
         for i in range(n):
-            p = &raw[i * 33]
-            memcpy(&xyz[at + i, 0], p, 24)
-            cls[at + i] = p[24]
-            memcpy(&key[at + i], p + 25, 8)
+            _split_record(&raw[i * 33], xyz, cls, key, at + i)
     return None
 
 
@@ -644,25 +646,17 @@ def unpack_records_at(const unsigned char[::1] raw, const int64_t[::1] positions
     """``unpack_records`` of the records at ``positions`` (record numbers within ``raw``)
     only: the picked records gathered and split in one pass, without a gathered copy of
     them between."""
-    cdef Py_ssize_t n = raw.shape[0] // 33, m = positions.shape[0], i
+    cdef Py_ssize_t m = positions.shape[0], i
+    cdef Py_ssize_t n = _record_count(raw, m, xyz, cls, key, at)
     cdef int64_t p
     cdef bint bad = False
-    if raw.shape[0] != n * 33:
-        raise ValueError("unpack_records_at: the bytes are not whole 33-byte records")
-    if xyz.shape[1] != 3 or at < 0 or at + m > xyz.shape[0] or at + m > cls.shape[0] \
-            or at + m > key.shape[0]:
-        raise ValueError("unpack_records_at: the records do not fit the arrays")
-    cdef const unsigned char *q
     with nogil:
         for i in range(m):
             p = positions[i]
             if p < 0 or p >= n:
                 bad = True
                 break
-            q = &raw[p * 33]
-            memcpy(&xyz[at + i, 0], q, 24)
-            cls[at + i] = q[24]
-            memcpy(&key[at + i], q + 25, 8)
+            _split_record(&raw[p * 33], xyz, cls, key, at + i)
     if bad:
         raise IndexError("unpack_records_at: a position beyond the records")
     return None
