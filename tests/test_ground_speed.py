@@ -577,3 +577,24 @@ def test_cell_min_and_max_equal_ufunc_at(itype):
         got = ours(cell, values, m)
         assert np.array_equal(got, expected, equal_nan=True)
         assert np.array_equal(np.signbit(got), np.signbit(expected))
+
+
+def test_free_boxes_equal_the_numpy_form_and_cover_every_free_cell():
+    # reference: the numpy form (_free_boxes_numpy) and the definition (every free cell lies
+    # in a box; boxes of one strip do not overlap)
+    from clearaudit.classify.grid import _free_boxes, _free_boxes_numpy
+
+    rng = np.random.default_rng(5)
+    for _ in range(300):
+        n_u, n_v = (int(v) for v in rng.integers(1, 120, 2))
+        free = rng.random((n_u, n_v)) < rng.choice([0.0, 0.002, 0.05, 0.5, 1.0])
+        strip, gap = int(rng.choice([50, 700, 1 << 16])), int(rng.integers(1, 20))
+        boxes = _free_boxes(free, strip, gap)
+        assert boxes == _free_boxes_numpy(free, strip, gap)
+        covered = np.zeros_like(free)
+        for r0, r1, c0, c1 in boxes:
+            covered[r0:r1, c0:c1] = True
+        assert not np.any(free & ~covered)
+    # a strided (transposed) mask gives the boxes of its copy
+    free = rng.random((90, 70)) < 0.03
+    assert _free_boxes(free.T, 500) == _free_boxes_numpy(np.ascontiguousarray(free.T), 500)

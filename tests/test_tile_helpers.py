@@ -804,3 +804,17 @@ def test_cell_files_are_the_glob_in_name_order(tmp_path):
         (folder / name).write_bytes(b"")
     assert _cell_files(tmp_path, (3, 4)) == sorted(folder.glob("p*.bin"))
     assert _cell_files(tmp_path, (9, 9)) == []
+
+
+def test_code_counts_equal_numpys_bincount_on_any_order_and_stride():
+    # reference: numpy.bincount (general-purpose library); the kernel's four partial tables
+    # must add up alike on runs of one code, sorted codes, random codes and strided views
+    from clearaudit.arrays import code_counts
+
+    rng = np.random.default_rng(8)
+    codes = rng.integers(0, 256, 100_003).astype(np.uint8)
+    for case in (codes, np.sort(codes), np.full(1_001, 255, np.uint8), codes[::7], codes[:3],
+                 np.zeros(0, np.uint8)):
+        np.testing.assert_array_equal(code_counts(case), np.bincount(case, minlength=256))
+    with pytest.raises(TypeError, match="uint8"):
+        code_counts(codes.astype(np.int32))

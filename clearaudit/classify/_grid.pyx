@@ -1013,6 +1013,84 @@ cdef inline int64_t _raster_cell(double t, double u, int64_t n0, int64_t n1) noe
     return i * n1 + j
 
 
+def byte_counts(const unsigned char[:] codes, int64_t[::1] counts):
+    """Add to ``counts`` (256 entries) the number of each byte value in ``codes``: the same
+    integers as ``numpy.bincount(codes, minlength=256)``, without its intp copy of the codes
+    and without holding the GIL.
+
+    Four partial tables, one for each of four points in turn, so that a run of equal codes
+    does not make each increment wait for the one before it.
+    """
+    if counts.shape[0] != 256:
+        raise ValueError("counts must have 256 entries")
+    cdef Py_ssize_t n = codes.shape[0], i, c
+    cdef int64_t part[4][256]
+    with nogil:
+        for i in range(4):
+            for c in range(256):
+                part[i][c] = 0
+        i = 0
+        while i + 4 <= n:
+            part[0][codes[i]] += 1
+            part[1][codes[i + 1]] += 1
+            part[2][codes[i + 2]] += 1
+            part[3][codes[i + 3]] += 1
+            i += 4
+        while i < n:
+            part[0][codes[i]] += 1
+            i += 1
+        for c in range(256):
+            counts[c] += part[0][c] + part[1][c] + part[2][c] + part[3][c]
+
+
+def free_boxes(const unsigned char[:, :] is_free, Py_ssize_t height, Py_ssize_t min_gap):
+    """``grid._free_boxes``' boxes (rows r0:r1, columns c0:c1, as tuples, in the same order):
+    per strip of ``height`` rows the columns holding a free cell (nonzero), their runs, and
+    runs less than ``min_gap`` columns apart merged; one pass over the cells without the GIL
+    per strip, the runs then read from the strip's column flags."""
+    cdef Py_ssize_t n_u = is_free.shape[0], n_v = is_free.shape[1], r0, r1, r, c, c0, last_end, start
+    if height < 1:
+        raise ValueError("height must be positive")
+    cdef unsigned char *column = <unsigned char *> malloc(max(n_v, 1))
+    if column == NULL:
+        raise MemoryError()
+    boxes = []
+    try:
+        r0 = 0
+        while r0 < n_u:
+            r1 = min(n_u, r0 + height)
+            with nogil:
+                for c in range(n_v):
+                    column[c] = 0
+                for r in range(r0, r1):
+                    for c in range(n_v):
+                        column[c] |= is_free[r, c] != 0
+            # runs [c0, end) of flagged columns; a run that begins min_gap or more columns
+            # after the previous run's end opens a new box, else it extends the box
+            c = 0
+            c0 = -1
+            last_end = 0
+            while c < n_v:
+                if not column[c]:
+                    c += 1
+                    continue
+                start = c
+                while c < n_v and column[c]:
+                    c += 1
+                if c0 < 0:
+                    c0 = start
+                elif start - last_end >= min_gap:
+                    boxes.append((r0, r1, c0, last_end))
+                    c0 = start
+                last_end = c
+            if c0 >= 0:
+                boxes.append((r0, r1, c0, last_end))
+            r0 = r1
+    finally:
+        free(column)
+    return boxes
+
+
 def raster_state(const double[:, :] xy, double lo0, double lo1, double size, Py_ssize_t n0,
                  Py_ssize_t n1, const unsigned char[::1] state, unsigned char[::1] out):
     """``out[i] = state[c]`` for the raster cell ``c`` of point ``i`` (one pass).

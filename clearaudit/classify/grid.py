@@ -16,6 +16,7 @@ from .kernels import bilinear as _bilinear
 from .kernels import bilinear_residual as _bilinear_residual
 from .kernels import cell_extreme as _cell_extreme
 from .kernels import flat_cells as _flat_cells
+from .kernels import free_boxes
 from .kernels import jacobi_sweep as _jacobi_sweep
 from .kernels import locate_cells as _locate_cells
 from .kernels import occupied_ranks
@@ -692,7 +693,18 @@ def _free_boxes(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
 
     The rows are cut into strips of about ``strip_cells`` cells; in each strip the columns
     with a free cell form runs, and runs less than ``min_gap`` columns apart are merged.
+    One compiled pass per strip (``free_boxes``; :func:`_free_boxes_numpy` is the numpy
+    form, the same boxes): the numpy form's loop over strips held the GIL for a few
+    milliseconds a tile.
     """
+    n_u, n_v = free.shape
+    height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
+    return free_boxes(np.asarray(free, dtype=bool).view(np.uint8), height, int(min_gap))
+
+
+def _free_boxes_numpy(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
+                      ) -> list[tuple[int, int, int, int]]:
+    """The numpy form of :func:`_free_boxes` (kept for its test)."""
     n_u, n_v = free.shape
     height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
     starts = np.arange(0, n_u, height)
