@@ -16,10 +16,9 @@ from .kernels import bilinear as _bilinear
 from .kernels import bilinear_residual as _bilinear_residual
 from .kernels import cell_extreme as _cell_extreme
 from .kernels import flat_cells as _flat_cells
-from .kernels import free_boxes
+from .kernels import free_boxes, occupied_ranks
 from .kernels import jacobi_sweep as _jacobi_sweep
 from .kernels import locate_cells as _locate_cells
-from .kernels import occupied_ranks
 from .kernels import sampler_weights as _sampler_weights
 
 # points per chunk of the per-point passes (locating, bilinear weights, sampling): the passes
