@@ -818,3 +818,30 @@ def test_code_counts_equal_numpys_bincount_on_any_order_and_stride():
         np.testing.assert_array_equal(code_counts(case), np.bincount(case, minlength=256))
     with pytest.raises(TypeError, match="uint8"):
         code_counts(codes.astype(np.int32))
+
+
+def test_files_written_in_pieces_are_the_bytes_numpy_writes(tmp_path, monkeypatch):
+    # reference: numpy.save and a plain file write (general-purpose library, the standard
+    # library): the same bytes, whatever the size of the pieces
+    import io
+
+    from clearaudit.io import files
+
+    monkeypatch.setattr(files, "PIECE_BYTES", 1000)  # many pieces on small arrays
+    rng = np.random.default_rng(4)
+    for a in (rng.integers(0, 1 << 40, 12_345), rng.random((777, 3)).astype(np.float32),
+              np.zeros(0, np.uint8), rng.integers(0, 9, (3, 2_001)).astype(np.int64),
+              np.asfortranarray(rng.random((50, 40)))):
+        np.save(tmp_path / "ref.npy", np.ascontiguousarray(a))
+        files.save_array(tmp_path / "got.npy", a)
+        assert (tmp_path / "got.npy").read_bytes() == (tmp_path / "ref.npy").read_bytes()
+        np.testing.assert_array_equal(np.load(tmp_path / "got.npy"), a)
+    raw = rng.integers(0, 256, 5_555).astype(np.uint8)
+    for data in (raw, raw.tobytes(), bytearray(raw.tobytes())):
+        buf = io.BytesIO()
+        assert files.write_pieces(buf, data) == 5_555
+        assert buf.getvalue() == raw.tobytes()
+    with pytest.raises(ValueError, match="contiguous"):
+        files.write_pieces(io.BytesIO(), raw.reshape(55, 101)[:, ::2])
+    with pytest.raises(ValueError, match="object"):
+        files.save_array(tmp_path / "o.npy", np.array([None, 1], dtype=object))

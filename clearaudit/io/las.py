@@ -50,6 +50,7 @@ from .. import __version__
 from ..cloud import Cloud, SourceInfo
 from ..errors import InputError
 from .crs import crs_label, crs_to_wkt, crs_unit_names, crs_units_m, parse_crs_option, same_crs
+from .files import write_pieces
 from .lazcopy import SIDE_BYTES as _LAYER_SIDE_BYTES
 from .lazcopy import SIDE_SIZE as _LAYER_SIDE_SIZE
 
@@ -564,7 +565,7 @@ class _ScratchSink:
         chunk's :func:`_int_bounds`, when already known."""
         records = np.ascontiguousarray(chunk.array)
         if not self.layers:
-            self.fh.write(records.view(np.uint8))
+            write_pieces(self.fh, records.view(np.uint8))  # 1 MiB a call (io.files)
             return
         m = len(records)
         if not m:
@@ -575,7 +576,7 @@ class _ScratchSink:
                                                       - _LAYER_SIDE_BYTES.start)],
                          "offsets": [_LAYER_SIDE_BYTES.start],
                          "itemsize": records.dtype.itemsize})
-        self.fh.write(np.ascontiguousarray(records.view(side)["s"]))
+        write_pieces(self.fh, np.ascontiguousarray(records.view(side)["s"]))
         lo, hi = _int_bounds(chunk) if bounds is None else bounds
         np.minimum(self._lo, lo, out=self._lo)
         np.maximum(self._hi, hi, out=self._hi)

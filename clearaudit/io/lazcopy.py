@@ -44,6 +44,7 @@ import laspy
 import numpy as np
 
 from ..errors import InputError
+from .files import write_pieces
 
 #: Byte positions (in a point format 6-10 record) of the return byte, the flags byte (the
 #: scanner channel in bits 4-5) and the class code: what the scratch keeps of each point.
@@ -353,7 +354,7 @@ def write_copy(fh: BinaryIO, header: Any, metas: Sequence[Any],
                         out = _copy_chunk(data, count, shape, returns[sl], classes[sl],
                                           coded_bytes[sl], buffer, sizes, code_chunk_layers,
                                           meta.path)
-                        fh.write(out)
+                        write_pieces(fh, out)  # 1 MiB a call (io.files)
                         chunk_table.append((count, len(out)))
                         at += count
                     start += m
