@@ -701,3 +701,31 @@ def test_field_values_must_fit_the_format(tmp_path):
     cloud.classification[:] = 40
     with pytest.raises(ValueError, match="class code 40"):
         write_cloud(cloud, tmp_path / "c.las", point_format=3, version="1.2")
+
+
+@pytest.mark.parametrize("point_format", range(11))
+def test_reused_decode_buffer_gives_laspys_records(tmp_path, point_format):
+    # reference: laspy's own LasReader.read_points (general-purpose library) on the same file,
+    # every point format, all layers and the audit's layers of a layered file
+    from clearaudit.io.las import _XYZ_CLASS_LAYERS, _reusing_reader
+
+    from las_fixture import random_las
+
+    path = random_las(tmp_path / f"f{point_format}.laz", point_format, 12_345,
+                      np.random.default_rng(point_format))
+    for selection in (None, _XYZ_CLASS_LAYERS):
+        kw = {} if selection is None else {"decompression_selection": selection}
+        with laspy.open(path, **kw) as ref, laspy.open(path, **kw) as got:
+            read = _reusing_reader(got, path)
+            buffers = set()
+            for n in (5_000, 5_000, 1_000, 5_000, 5_000):
+                a, b = ref.read_points(n), read(n)
+                assert len(a) == len(b) and got.points_read == ref.points_read
+                assert a.array.tobytes() == b.array.tobytes()
+                np.testing.assert_array_equal(a.x, b.x)
+                if len(b):
+                    buffers.add(b.array.__array_interface__["data"][0])
+            assert len(buffers) == 1  # one buffer, reused
+    las_path = random_las(tmp_path / "plain.las", point_format, 10, np.random.default_rng(0))
+    with laspy.open(las_path) as reader:
+        assert _reusing_reader(reader, las_path) == reader.read_points
