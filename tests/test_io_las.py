@@ -707,9 +707,9 @@ def test_field_values_must_fit_the_format(tmp_path):
 def test_reused_decode_buffer_gives_laspys_records(tmp_path, point_format):
     # reference: laspy's own LasReader.read_points (general-purpose library) on the same file,
     # every point format, all layers and the audit's layers of a layered file
-    from clearaudit.io.las import _XYZ_CLASS_LAYERS, _reusing_reader
-
     from las_fixture import random_las
+
+    from clearaudit.io.las import _XYZ_CLASS_LAYERS, _reusing_reader
 
     path = random_las(tmp_path / f"f{point_format}.laz", point_format, 12_345,
                       np.random.default_rng(point_format))
