@@ -15,6 +15,7 @@ import numpy as np
 from . import CAUTION, __version__
 from .cloud import Cloud
 from .io.exports import Layer, to_wgs84, write_csv, write_geojson_points, write_geopackage
+from .io.files import write_text
 from .io.las import write_classified
 
 SPAN_COLUMNS = [
@@ -351,7 +352,7 @@ def write_outputs(out: Path, cloud: Cloud, cls: Any, model: Any, audit: Any, con
         f"{config.line.name} — hazard trees",
         "trees clear of every requirement but tall enough to fall into the line")
     model_doc = build_model_json(cloud, model, audit, config, rules)
-    (out / "model.json").write_text(json_text(model_doc), encoding="utf-8")
+    write_text(out / "model.json", json_text(model_doc))  # 1 MiB a call (io.files)
     structures = Layer("structures", "POINT",
                        {"structure_id": "TEXT", "kind": "TEXT", "source": "TEXT",
                         "line_angle_deg": "REAL"}, description="towers and poles")

@@ -843,5 +843,9 @@ def test_files_written_in_pieces_are_the_bytes_numpy_writes(tmp_path, monkeypatc
         assert buf.getvalue() == raw.tobytes()
     with pytest.raises(ValueError, match="contiguous"):
         files.write_pieces(io.BytesIO(), raw.reshape(55, 101)[:, ::2])
+    text = "span 12 — sag 3.4 m, ±0.1 m\n" * 500
+    files.write_text(tmp_path / "t.json", text)
+    (tmp_path / "ref.json").write_text(text, encoding="utf-8")
+    assert (tmp_path / "t.json").read_bytes() == (tmp_path / "ref.json").read_bytes()
     with pytest.raises(ValueError, match="object"):
         files.save_array(tmp_path / "o.npy", np.array([None, 1], dtype=object))

@@ -20,6 +20,8 @@ from typing import Any
 
 import numpy as np
 
+from .files import write_text
+
 # ------------------------------------------------------------------------------------------ CSV
 
 
@@ -93,7 +95,7 @@ def write_geojson_points(path: str | Path, rows: Sequence[dict[str, Any]], colum
                          "properties": props})
     doc = {"type": "FeatureCollection", "name": name, "features": features}
     path = Path(path)
-    path.write_text(json.dumps(doc, indent=1, allow_nan=False), encoding="utf-8")
+    write_text(path, json.dumps(doc, indent=1, allow_nan=False))  # 1 MiB a call (io.files)
     return path
 
 

@@ -52,9 +52,17 @@ def save_array(target: str | Path | BinaryIO, array: np.ndarray) -> None:
         _write_npy(target, a)
 
 
+def write_text(path: str | Path, text: str, encoding: str = "utf-8") -> None:
+    """``Path(path).write_text(text, encoding=encoding)`` with the encoded bytes written in
+    pieces (:func:`write_pieces`): a model.json of 20 MB (the 100 M-point survey's) went to
+    the file in one call."""
+    with open(path, "wb") as fh:
+        write_pieces(fh, text.encode(encoding))
+
+
 def _write_npy(fh: BinaryIO, a: np.ndarray) -> None:
     np.lib.format.write_array_header_1_0(fh, np.lib.format.header_data_from_array_1_0(a))
     write_pieces(fh, a)
 
 
-__all__ = ["PIECE_BYTES", "save_array", "write_pieces"]
+__all__ = ["PIECE_BYTES", "save_array", "write_pieces", "write_text"]

@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from clearaudit import CAUTION, __version__, theme
+from clearaudit.io.files import write_text
 from clearaudit.report import plots
 from clearaudit.report.format import (
     MISSING,
@@ -625,6 +626,6 @@ def build_report(out_dir: str | Path, *, units: str = "metric",
     target = Path(out_path) if out_path is not None else folder.path / "report.html"
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = target.with_name(target.name + ".tmp")
-    tmp.write_text(html_text, encoding="utf-8")
+    write_text(tmp, html_text)  # 1 MiB a call (io.files)
     tmp.replace(target)
     return target
