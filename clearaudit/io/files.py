@@ -3,9 +3,11 @@
 On the Linux machines the benchmarks ran on (ext4, kernel 6.18), one ``write`` call of more
 than 1 MiB to a new file took about seven times as long per byte as the same bytes written
 1 MiB at a time: 10.4 MB in 16-22 ms against 2.4-3.3 ms (pieces of 64 KiB to 1 MiB alike,
-2 MiB and more as slow as one call). The work folder's files (the cells' point records, the
-raw-record scratch, the tiles' per-point arrays) are written that way; reading them is not
-affected (10 GB/s from the page cache whatever the read size).
+2 MiB and more as slow as one call; the cause was not established). The work folder's files
+(the cells' point records, the raw-record scratch, the tiles' per-point arrays) and the
+larger outputs (classified.laz's chunks, model.json, the GeoJSON layers, the report) are
+written that way; reading is not affected (10 GB/s from the page cache whatever the read
+size).
 """
 from __future__ import annotations
 
