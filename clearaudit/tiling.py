@@ -965,7 +965,7 @@ def drop_later_copies(work: str | Path, cells: Sequence[tuple[int, int]], step_m
             if len(part) < m:
                 tmp = f.with_name(f.name + ".tmp")
                 with open(tmp, "wb") as fh:
-                    write_pieces(fh, np.ascontiguousarray(part))
+                    write_pieces(fh, part)  # a copy (masked), contiguous
                 done.append((tmp, f))
         copies = _cell_dir(work, *cell) / "copies.npy"
         with open(copies.with_name("copies.tmp"), "wb") as fh:

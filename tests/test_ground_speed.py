@@ -579,10 +579,31 @@ def test_cell_min_and_max_equal_ufunc_at(itype):
         assert np.array_equal(np.signbit(got), np.signbit(expected))
 
 
+def _free_boxes_numpy(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
+                      ) -> list[tuple[int, int, int, int]]:
+    """The numpy form :func:`clearaudit.classify.grid._free_boxes` replaced."""
+    n_u, n_v = free.shape
+    height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
+    starts = np.arange(0, n_u, height)
+    columns = np.logical_or.reduceat(free, starts, axis=0)
+    edges = np.diff(np.pad(columns, ((0, 0), (1, 1))).astype(np.int8), axis=1)
+    boxes = []
+    for r0, row in zip(starts, edges, strict=True):
+        begin = np.flatnonzero(row == 1)
+        if len(begin) == 0:
+            continue
+        end = np.flatnonzero(row == -1)
+        keep = np.r_[True, begin[1:] - end[:-1] >= min_gap]
+        r1 = min(n_u, int(r0) + height)
+        for c0, c1 in zip(begin[keep], np.r_[end[np.flatnonzero(keep)[1:] - 1], end[-1]], strict=True):
+            boxes.append((int(r0), r1, int(c0), int(c1)))
+    return boxes
+
+
 def test_free_boxes_equal_the_numpy_form_and_cover_every_free_cell():
     # reference: the numpy form (_free_boxes_numpy) and the definition (every free cell lies
     # in a box; boxes of one strip do not overlap)
-    from clearaudit.classify.grid import _free_boxes, _free_boxes_numpy
+    from clearaudit.classify.grid import _free_boxes
 
     rng = np.random.default_rng(5)
     for _ in range(300):

@@ -692,34 +692,13 @@ def _free_boxes(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
 
     The rows are cut into strips of about ``strip_cells`` cells; in each strip the columns
     with a free cell form runs, and runs less than ``min_gap`` columns apart are merged.
-    One compiled pass per strip (``free_boxes``; :func:`_free_boxes_numpy` is the numpy
-    form, the same boxes): the numpy form's loop over strips held the GIL for a few
-    milliseconds a tile.
+    One compiled pass per strip (``free_boxes``; its test holds the numpy form it replaced,
+    the same boxes): that form's loop over strips held the GIL for a few milliseconds a
+    tile.
     """
     n_u, n_v = free.shape
     height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
     return free_boxes(np.asarray(free, dtype=bool).view(np.uint8), height, int(min_gap))
-
-
-def _free_boxes_numpy(free: np.ndarray, strip_cells: int = 1 << 16, min_gap: int = 16
-                      ) -> list[tuple[int, int, int, int]]:
-    """The numpy form of :func:`_free_boxes` (kept for its test)."""
-    n_u, n_v = free.shape
-    height = int(min(n_u, max(8, strip_cells // max(n_v, 1))))
-    starts = np.arange(0, n_u, height)
-    columns = np.logical_or.reduceat(free, starts, axis=0)
-    edges = np.diff(np.pad(columns, ((0, 0), (1, 1))).astype(np.int8), axis=1)
-    boxes = []
-    for r0, row in zip(starts, edges, strict=True):
-        begin = np.flatnonzero(row == 1)
-        if len(begin) == 0:
-            continue
-        end = np.flatnonzero(row == -1)
-        keep = np.r_[True, begin[1:] - end[:-1] >= min_gap]
-        r1 = min(n_u, int(r0) + height)
-        for c0, c1 in zip(begin[keep], np.r_[end[np.flatnonzero(keep)[1:] - 1], end[-1]], strict=True):
-            boxes.append((int(r0), r1, int(c0), int(c1)))
-    return boxes
 
 
 def _cascade(values: np.ndarray, levels: list[_Level], sweeps: int, depth: int = 0) -> np.ndarray:

@@ -1190,7 +1190,7 @@ def read_range(setup: ReadSetup, file_id: int, start: int = 0, stop: int | None 
             with _las_errors(path):
                 reader.seek(start)
         position = start
-        read_points = _reusing_reader(reader, path)
+        read_points = _reusing_reader(reader, path) or reader.read_points
         while position < stop:
             with _las_errors(path):
                 chunk = read_points(min(chunk_size, stop - position))
@@ -2221,41 +2221,34 @@ def _stream_raw(writer: Any, meta: _FileMeta, raw: Iterable[np.ndarray],
 
 def _record_bytes(reader: laspy.LasReader, path: Path, chunk_size: int):
     """Yield the point records of an open file chunk by chunk as (m, record size) uint8
-    arrays; LAZ chunks are decoded into one reused buffer (no fresh allocation per chunk).
+    arrays; LAZ chunks are decoded into one reused buffer (:func:`_reusing_reader`, no fresh
+    allocation per chunk).
 
     The yielded array is overwritten by the next chunk. Decoding errors become
     InputError(path).
     """
-    from laspy._compression.lazrsbackend import LazrsPointReader
-
     size = reader.header.point_format.dtype().itemsize
-    with _las_errors(path):
-        source = reader.point_source  # created on first use: may fail on a damaged file
-    if not isinstance(source, LazrsPointReader) or source.vlr.item_size() != size:
+    read = _reusing_reader(reader, path)
+    if read is None:
         for chunk in _chunks(reader, path, chunk_size):
             yield np.asarray(chunk.array).view(np.uint8).reshape(len(chunk), size)
         return
-    left = int(reader.header.point_count) - int(reader.points_read)
-    scratch = np.empty(min(chunk_size, max(left, 0)) * size, dtype=np.uint8)
-    while left > 0:
-        m = min(chunk_size, left)
-        view = scratch[:m * size]
+    while int(reader.points_read) < int(reader.header.point_count):
         with _las_errors(path):
-            source.decompressor.decompress_many(view)
-        reader.points_read += m
-        left -= m
-        yield view.reshape(m, size)
+            chunk = read(chunk_size)
+        yield np.asarray(chunk.array).view(np.uint8).reshape(len(chunk), size)
 
 
-def _reusing_reader(reader: laspy.LasReader, path: Path) -> Callable[[int], Any]:
+def _reusing_reader(reader: laspy.LasReader, path: Path) -> Callable[[int], Any] | None:
     """``reader.read_points`` with a LAZ file's chunks decoded into one buffer reused from call
-    to call (as :func:`_record_bytes` does): the records a call returns are overwritten by the
-    next call, so the caller must be done with them (read_range's loop copies what it keeps).
+    to call (read_range's chunks and the classified copy's :func:`_record_bytes`): the
+    records a call returns are overwritten by the next call, so the caller must be done with
+    them (read_range's loop copies what it keeps).
 
     laspy allocates a fresh zeroed ``bytearray`` for every call (7.5 MB for 250 000 points of
     format 6, its pages faulted in while the GIL is held); the buffer here is zeroed once, so
-    bytes of layers left undecoded stay zero as in laspy's. Other readers (LAS, another
-    record size) get ``reader.read_points`` itself.
+    bytes of layers left undecoded stay zero as in laspy's. None for other readers (LAS,
+    another record size): the caller reads them with laspy's own calls.
     """
     from laspy._compression.lazrsbackend import LazrsPointReader
     from laspy.point.record import PackedPointRecord, ScaleAwarePointRecord
@@ -2265,7 +2258,7 @@ def _reusing_reader(reader: laspy.LasReader, path: Path) -> Callable[[int], Any]
     with _las_errors(path):
         source = reader.point_source  # created on first use: may fail on a damaged file
     if not isinstance(source, LazrsPointReader) or source.vlr.item_size() != size:
-        return reader.read_points
+        return None
     scratch: list[np.ndarray] = []
 
     def read_points(n: int) -> Any:
