@@ -24,6 +24,9 @@ from typing import Any
 
 _local = threading.local()
 _run_default: list[int] = []  # stack of process-wide limits set by :func:`run_threads`
+#: whether :func:`one_blas_thread_from_start` asked OpenBLAS for one thread before numpy or
+#: scipy loaded it (then every OpenBLAS the process loads starts with one thread)
+_one_from_start: list[bool] = [False]
 
 
 def available_cores() -> int:
@@ -109,10 +112,23 @@ def _limit_blas() -> Any:
         from threadpoolctl import threadpool_limits
     except ImportError:  # pragma: no cover - a dependency; without it nothing is limited
         return None
-    import numpy  # noqa: F401  (both BLAS libraries loaded now: only those are limited)
-    import scipy.linalg  # noqa: F401
+    import numpy  # noqa: F401  (loaded now: only loaded libraries are limited)
+
+    if not _blas_one_thread_at_load():
+        # scipy's own OpenBLAS loaded now too, to be limited (its threads would start one a
+        # core). Not needed where every OpenBLAS starts with one thread: importing
+        # scipy.linalg took 0.12-0.17 s on the main thread before a run's first stage,
+        # while the line's other scipy modules come on a thread of their own
+        import scipy.linalg  # noqa: F401
 
     return threadpool_limits(limits=1, user_api="blas")
+
+
+def _blas_one_thread_at_load() -> bool:
+    """Whether every OpenBLAS library this process loads starts with one thread:
+    :func:`one_blas_thread_from_start` set it before numpy or scipy was loaded, and the
+    environment still asks for it."""
+    return _one_from_start[0] and os.environ.get("OPENBLAS_NUM_THREADS", "").strip() == "1"
 
 
 _BLAS_ONE_THREAD = SharedSetting(_limit_blas, lambda limiter: limiter.restore_original_limits())
@@ -194,7 +210,8 @@ def one_blas_thread_from_start() -> bool:
 
     if "numpy" in sys.modules or "scipy" in sys.modules:
         return False
-    return os.environ.setdefault("OPENBLAS_NUM_THREADS", "1").strip() == "1"
+    _one_from_start[0] = os.environ.setdefault("OPENBLAS_NUM_THREADS", "1").strip() == "1"
+    return _one_from_start[0]
 
 
 def blas_threads() -> int | None:

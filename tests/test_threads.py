@@ -324,3 +324,29 @@ def test_the_command_line_asks_openblas_for_one_thread_before_numpy_loads_it():
     out = subprocess.run([sys.executable, "-c", code3], capture_output=True, text=True,
                          env=env, check=True).stdout.strip()
     assert out == "False False"
+
+
+def test_blas_one_thread_from_start_leaves_scipy_linalg_unloaded_and_its_blas_on_one_thread():
+    # a run whose OpenBLAS was asked for one thread before numpy loaded (the command line):
+    # blas_one_thread does not load scipy.linalg to limit it (0.12-0.17 s on the run's main
+    # thread); scipy's OpenBLAS, loaded later, still starts with one thread.
+    # Reference: threadpoolctl (a reference library) reads the thread counts
+    import os
+    import subprocess
+    import sys
+
+    code = ("import sys; from clearaudit.threads import one_blas_thread_from_start, "
+            "blas_one_thread; assert one_blas_thread_from_start()\n"
+            "import numpy\n"
+            "with blas_one_thread() as limit:\n"
+            "    assert limit == 1 and 'scipy.linalg' not in sys.modules\n"
+            "    import scipy.linalg\n"
+            "from threadpoolctl import threadpool_info\n"
+            "print(sorted({i['num_threads'] for i in threadpool_info() "
+            "if i.get('user_api') == 'blas'}), "
+            "len([i for i in threadpool_info() if i.get('user_api') == 'blas']))")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         env=env, check=True).stdout.strip().splitlines()[-1]
+    counts, libraries = out.rsplit(" ", 1)
+    assert counts == "[1]" and int(libraries) >= 1
