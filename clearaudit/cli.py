@@ -235,7 +235,7 @@ def build_parser() -> argparse.ArgumentParser:
     mode = p.add_mutually_exclusive_group()
     mode.add_argument("--tiled", action="store_true",
                       help="bounded-memory run in tiles even for a small survey (automatic "
-                           "above 2.5 million points with two or more threads, above 20 "
+                           "above 0.67 million points with two or more threads, above 20 "
                            "million points, or with --workers/--scheduler)")
     mode.add_argument("--in-memory", action="store_true",
                       help="hold the whole survey in memory even where a tiled run is "

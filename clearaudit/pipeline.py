@@ -72,9 +72,13 @@ class AuditOptions:
     tile_cell_m: float = 100.0
     tile_overlap_m: float = 40.0
     #: With two threads or more, a survey above this many points (header count) runs tiled:
-    #: p3M, p5M and p10M ran 11-15 % faster tiled than in memory on 2 cores, with less memory
-    #: from 5 M points on (docs/scaling.md, "Which run").
-    tiled_min_points: int = 2_500_000
+    #: the most points that make one tile (:func:`clearaudit.tiling.tile_target`: 60 % of a
+    #: small survey's points a tile, at least 400 000); above them its two or more tiles run
+    #: in parallel, and the line's modules are imported beside its read stage. On 2 cores
+    #: the tiled run was the faster from the real crops of 0.70 and 0.89 M points (3-5 %) to
+    #: the demo line and the 2 km line of 1.1-1.2 M (15-17 %) and on to p10M
+    #: (docs/scaling.md, "Which run").
+    tiled_min_points: int = 666_665
     in_memory_max_points: int = 20_000_000
     in_memory_max_footprint_m2: float = 25e6  # 25 km² of bounding box (5 km × 5 km)
     work_dir: Path | None = None

@@ -303,7 +303,7 @@ def test_choose_mode_rules(tmp_path):
     from clearaudit.pipeline import choose_mode
 
     base = AuditOptions(clouds=[], out=tmp_path / "o")
-    small, mid, huge = 1_000_000, base.tiled_min_points + 1, base.in_memory_max_points + 1
+    small, mid, huge = 500_000, base.tiled_min_points + 1, base.in_memory_max_points + 1
     cases = [
         ({}, small, 1e6, 2, False, "at most"),
         ({}, base.tiled_min_points, 1e6, 2, False, "at most"),
@@ -324,15 +324,36 @@ def test_choose_mode_rules(tmp_path):
     # (the in-memory run's measured 135-137 B/point, docs/scaling.md)
     gb = 1e9
     for kw, points, threads, available, tiled, why in (
-            ({}, 1_000_000, 1, 1.0 * gb, False, "at most"),           # 0.15 GB of 0.6
+            ({}, 500_000, 1, 1.0 * gb, False, "at most"),             # 0.075 GB of 0.6
             ({}, 1_000_000, 1, 0.2 * gb, True, "0.2 GB available"),   # 0.15 GB > 0.12
             ({}, 4_000_000, 1, 0.99 * gb, True, "up to 0.6 GB"),      # 0.6 GB > 0.594
             ({}, 4_000_000, 1, 1.01 * gb, False, "on one thread"),    # 0.6 GB < 0.606
             ({"tiled": False}, 4_000_000, 1, 0.1 * gb, False, "asked for"),  # the user decides
-            ({}, 1_000_000, 2, None, False, "at most")):                     # not known
+            ({}, 500_000, 2, None, False, "at most")):                       # not known
         opts = AuditOptions(clouds=[], out=tmp_path / "o", **kw)
         got, reason = choose_mode(opts, points, 1e6, threads, available)
         assert got is tiled and why in reason, (kw, points, available, reason)
+
+
+def test_tiled_from_the_smallest_survey_that_makes_two_tiles(tmp_path):
+    # The automatic tiled run starts where a survey's points make two tiles (tile_target:
+    # a share of the points a tile, with a smallest tile): its tiles are then parallel work.
+    # Common practice (no source); the measurements behind it are in docs/scaling.md,
+    # "Which run".
+    import math
+
+    from clearaudit.tiling import (
+        DEFAULT_TILE_POINTS,
+        SMALL_SURVEY_MIN_TILE_POINTS,
+        SMALL_SURVEY_TILE_SHARE,
+        tile_target,
+    )
+
+    most = AuditOptions(clouds=[], out=tmp_path / "o").tiled_min_points  # runs in memory
+    assert tile_target(most) == DEFAULT_TILE_POINTS >= most       # one tile
+    assert tile_target(most + 1) < DEFAULT_TILE_POINTS            # two tiles from here on
+    assert tile_target(most + 1) == math.ceil(SMALL_SURVEY_TILE_SHARE * (most + 1)) \
+        >= SMALL_SURVEY_MIN_TILE_POINTS
 
 
 def test_available_memory_is_the_least_of_the_machines_and_the_containers(tmp_path):

@@ -44,6 +44,7 @@ name = "Velloran district test flights"
 name = "north-230"
 clouds = ["north/north.laz"]
 line_file = "north/north.line.toml"
+tiled = false
 
 [[line]]
 name = "south-230"
@@ -173,10 +174,8 @@ def test_bad_manifests_are_refused_before_any_work(tmp_path, capsys, extra, prob
 def test_one_local_cluster_serves_every_line_with_the_same_results(network_run, tmp_path):
     out_threads, _ = network_run
     manifest = _manifest(tmp_path)
-    # a line with tiled = false runs in memory in this process, the cluster notwithstanding
-    text = manifest.read_text()
-    manifest.write_text(text.replace('line_file = "north/north.line.toml"\n',
-                                     'line_file = "north/north.line.toml"\ntiled = false\n'))
+    # a line with tiled = false (north) runs in memory in this process, the cluster
+    # notwithstanding
     out = tmp_path / "out"
     work = tmp_path / "shared-work"
     assert main(["network", str(manifest), "--out", str(out), "--no-report",
@@ -278,7 +277,7 @@ def _audit_options(tmp: Path, **changes):
 
     options = AuditOptions(clouds=[tmp / "north" / "north.laz"],
                            out=kept_lines_folder(tmp / "out") / "north-230",
-                           line_file=tmp / "north" / "north.line.toml")
+                           line_file=tmp / "north" / "north.line.toml", tiled=False)
     return replace(options, **changes)
 
 
@@ -385,11 +384,8 @@ def test_lines_side_by_side_on_a_cluster_give_each_lines_own_results(network_run
 
     whole, _ = network_run
     manifest = _manifest(tmp_path)
-    # north in memory in this process (as in network_run), south's tiles on the cluster,
-    # both at once
-    text = manifest.read_text()
-    manifest.write_text(text.replace('line_file = "north/north.line.toml"\n',
-                                     'line_file = "north/north.line.toml"\ntiled = false\n'))
+    # north in memory in this process (the manifest's tiled = false, as in network_run),
+    # south's tiles on the cluster, both at once
     real = pipeline.run_audit
     running, most = set(), [0]
     lock = threading.Lock()
