@@ -77,7 +77,9 @@ class AuditOptions:
     #: in parallel, and the line's modules are imported beside its read stage. On 2 cores
     #: the tiled run was the faster from the real crops of 0.70 and 0.89 M points (3-5 %) to
     #: the demo line and the 2 km line of 1.1-1.2 M (15-17 %) and on to p10M
-    #: (docs/scaling.md, "Which run").
+    #: (docs/scaling.md, "Which run"). A number here, not computed from tiling's constants:
+    #: importing clearaudit.tiling loads laspy, which these options must not (a test holds
+    #: the two together).
     tiled_min_points: int = 666_665
     in_memory_max_points: int = 20_000_000
     in_memory_max_footprint_m2: float = 25e6  # 25 km² of bounding box (5 km × 5 km)

@@ -296,34 +296,39 @@ def test_shared_setting_applies_once_and_restores_after_the_last_holder():
     assert log[-1] == "restore"
 
 
-def test_the_command_line_asks_openblas_for_one_thread_before_numpy_loads_it():
-    # threadpoolctl (a reference library) reads the thread count OpenBLAS started with
-    import os
+def _fresh_python(code: str, env: dict[str, str]) -> str:
+    """The last line ``code`` prints, run by a fresh Python with the environment ``env``."""
     import subprocess
     import sys
 
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          env=env, check=True).stdout.strip().splitlines()[-1]
+
+
+def _without_openblas_setting() -> dict[str, str]:
+    import os
+
+    return {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+
+
+def test_the_command_line_asks_openblas_for_one_thread_before_numpy_loads_it():
+    # threadpoolctl (a reference library) reads the thread count OpenBLAS started with
     code = ("import sys; import clearaudit.cli as c; assert 'numpy' not in sys.modules; "
             "c.main(['conductors']); "
             "from threadpoolctl import threadpool_info; import numpy, scipy.linalg; "
             "print(sorted({i['num_threads'] for i in threadpool_info() "
             "if i.get('user_api') == 'blas'}))")
-    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         env=env, check=True).stdout.strip().splitlines()[-1]
-    assert out == "[1]"
+    env = _without_openblas_setting()
+    assert _fresh_python(code, env) == "[1]"
     # a value the user set is kept; with numpy already loaded nothing is changed
     env["OPENBLAS_NUM_THREADS"] = "2"
     code2 = ("import os; from clearaudit.threads import one_blas_thread_from_start as f; "
              "print(f(), os.environ['OPENBLAS_NUM_THREADS'])")
-    out = subprocess.run([sys.executable, "-c", code2], capture_output=True, text=True,
-                         env=env, check=True).stdout.strip()
-    assert out == "False 2"
+    assert _fresh_python(code2, env) == "False 2"
     env.pop("OPENBLAS_NUM_THREADS")
     code3 = ("import os, numpy; from clearaudit.threads import one_blas_thread_from_start as f; "
              "print(f(), 'OPENBLAS_NUM_THREADS' in os.environ)")
-    out = subprocess.run([sys.executable, "-c", code3], capture_output=True, text=True,
-                         env=env, check=True).stdout.strip()
-    assert out == "False False"
+    assert _fresh_python(code3, env) == "False False"
 
 
 def test_blas_one_thread_from_start_leaves_scipy_linalg_unloaded_and_its_blas_on_one_thread():
@@ -331,10 +336,6 @@ def test_blas_one_thread_from_start_leaves_scipy_linalg_unloaded_and_its_blas_on
     # blas_one_thread does not load scipy.linalg to limit it (0.12-0.17 s on the run's main
     # thread); scipy's OpenBLAS, loaded later, still starts with one thread.
     # Reference: threadpoolctl (a reference library) reads the thread counts
-    import os
-    import subprocess
-    import sys
-
     code = ("import sys; from clearaudit.threads import one_blas_thread_from_start, "
             "blas_one_thread; assert one_blas_thread_from_start()\n"
             "import numpy\n"
@@ -345,8 +346,5 @@ def test_blas_one_thread_from_start_leaves_scipy_linalg_unloaded_and_its_blas_on
             "print(sorted({i['num_threads'] for i in threadpool_info() "
             "if i.get('user_api') == 'blas'}), "
             "len([i for i in threadpool_info() if i.get('user_api') == 'blas']))")
-    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         env=env, check=True).stdout.strip().splitlines()[-1]
-    counts, libraries = out.rsplit(" ", 1)
+    counts, libraries = _fresh_python(code, _without_openblas_setting()).rsplit(" ", 1)
     assert counts == "[1]" and int(libraries) >= 1
