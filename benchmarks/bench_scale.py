@@ -439,6 +439,22 @@ def km_scaling(results: list[dict]) -> list[str]:
         lines.append(f"time per km (tiled) without the modules each run imports once ({took} "
                      f"s, timed apart): {each2} s/km; least-squares line {fixed2:.2f} s fixed "
                      f"+ {slope2:.3f} s/km")
+    if all(r.get("points") and r.get("spans") for r in cases):
+        # what each length carries per km: the generator draws every span's length, so a
+        # short line's few spans need not average MEAN_SPAN_M, and the points per span hardly
+        # depend on its length (wires, structures): shorter spans, more points per km
+        pts = [float(r["points"]) for r in cases]
+        per_km = ", ".join(f"{k:.1f} km {n / k / 1e6:.3f} M ({k * 1000.0 / r['spans']:.0f} m)"
+                           for (k, _), n, r in zip(rows, pts, cases, strict=True))
+        per_mpt = ", ".join(f"{k:.1f} km {s / (n / 1e6):.3f}"
+                            for (k, s), n in zip(rows, pts, strict=True))
+        line = (f"points per km (mean span): {per_km}; time per million points (tiled): "
+                f"{per_mpt} s")
+        if all(r.get("imports_s") is not None for r in cases):
+            line += ", without the imports " + ", ".join(
+                f"{k:.1f} km {(s - float(r['imports_s'])) / (n / 1e6):.3f}"
+                for (k, s), n, r in zip(rows, pts, cases, strict=True)) + " s"
+        lines.append(line)
     return lines
 
 

@@ -81,6 +81,18 @@ def test_km_scaling_lines_match_numpy_polyfit():
     assert f"2.0 km {(4.0 - 0.6) / 2.03:.2f}, 10.2 km {(13.6 - 0.65) / 10.22:.2f}" in lines[2]
     slope, fixed = np.polyfit([2.03, 10.22, 50.18], [3.4, 12.95, 56.9], 1)
     assert f"{fixed:.2f} s fixed + {slope:.3f} s/km" in lines[2]
+    # with the points and spans of each line: points per km, mean span, time per million
+    # points (with and without the imports), by hand
+    for r, (n, spans) in zip(results[:3], [(28.0e6, 143), (1.15e6, 6), (5.5e6, 29)],
+                                 strict=True):
+        r["points"], r["spans"] = n, spans
+    lines = bench.km_scaling(results)
+    assert len(lines) == 4
+    assert lines[3].startswith(f"points per km (mean span): 2.0 km {1.15 / 2.03:.3f} M "
+                               f"({2030 / 6:.0f} m), 10.2 km {5.5 / 10.22:.3f} M ")
+    assert f"time per million points (tiled): 2.0 km {4.0 / 1.15:.3f}, " in lines[3]
+    assert f"50.2 km {57.6 / 28.0:.3f} s, without the imports 2.0 km {3.4 / 1.15:.3f}, " \
+        in lines[3]
 
 
 def test_median_run_is_the_middle_run_by_time():
