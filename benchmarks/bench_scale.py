@@ -410,7 +410,9 @@ def km_scaling(results: list[dict]) -> list[str]:
     least-squares line ``t = fixed + slope * km`` (numpy.polyfit). Time per km is constant
     when the marginal values are alike and the fixed part is small against the shortest
     line's time; the fixed part is what a run costs whatever the line's length (start-up,
-    imports, the stages' ends)."""
+    imports, the stages' ends). With the imports timed apart, the same without them; with
+    each line's points and spans, its points per km, mean span and time per million points
+    (a short line's spans, drawn at random, may be shorter: more points per km)."""
     import numpy as np
 
     cases = sorted((r for r in results
@@ -443,17 +445,17 @@ def km_scaling(results: list[dict]) -> list[str]:
         # what each length carries per km: the generator draws every span's length, so a
         # short line's few spans need not average MEAN_SPAN_M, and the points per span hardly
         # depend on its length (wires, structures): shorter spans, more points per km
-        pts = [float(r["points"]) for r in cases]
-        per_km = ", ".join(f"{k:.1f} km {n / k / 1e6:.3f} M ({k * 1000.0 / r['spans']:.0f} m)"
-                           for (k, _), n, r in zip(rows, pts, cases, strict=True))
-        per_mpt = ", ".join(f"{k:.1f} km {s / (n / 1e6):.3f}"
-                            for (k, s), n in zip(rows, pts, strict=True))
-        line = (f"points per km (mean span): {per_km}; time per million points (tiled): "
-                f"{per_mpt} s")
-        if all(r.get("imports_s") is not None for r in cases):
-            line += ", without the imports " + ", ".join(
-                f"{k:.1f} km {(s - float(r['imports_s'])) / (n / 1e6):.3f}"
-                for (k, s), n, r in zip(rows, pts, cases, strict=True)) + " s"
+        per_km, per_mpt, per_mpt2 = [], [], []
+        for (k, s), r in zip(rows, cases, strict=True):
+            mpt = float(r["points"]) / 1e6
+            per_km.append(f"{k:.1f} km {mpt / k:.3f} M ({k * 1000.0 / r['spans']:.0f} m)")
+            per_mpt.append(f"{k:.1f} km {s / mpt:.3f}")
+            if r.get("imports_s") is not None:
+                per_mpt2.append(f"{k:.1f} km {(s - float(r['imports_s'])) / mpt:.3f}")
+        line = (f"points per km (mean span): {', '.join(per_km)}; time per million points "
+                f"(tiled): {', '.join(per_mpt)} s")
+        if len(per_mpt2) == len(rows):
+            line += f", without the imports {', '.join(per_mpt2)} s"
         lines.append(line)
     return lines
 
